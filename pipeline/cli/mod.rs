@@ -1,0 +1,133 @@
+//! Command-line interface: argument parsing and the verbs. Each verb returns
+//! an [`Exit`]; `main` only maps it to the process status.
+
+pub mod printer;
+
+use std::path::PathBuf;
+
+use clap::{Args, Parser, Subcommand};
+
+use printer::{Level, Printer};
+
+/// Process exit status, documented in the README.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Exit {
+    /// Everything worked.
+    Ok = 0,
+    /// A user or data problem: bad input, a failed check, or some items
+    /// failed while the rest of the run finished and wrote its outputs.
+    Problem = 1,
+    /// A bug or an environment failure (disk full, permission denied).
+    Internal = 2,
+}
+
+#[derive(Parser, Debug)]
+#[command(name = "satstep", version, about = "Breathing-challenge retinal oximetry studies: from protocol and captures to per-vessel SO2, statistics and report.", long_about = None)]
+pub struct Cli {
+    #[command(flatten)]
+    pub global: Global,
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Args, Debug, Clone)]
+pub struct Global {
+    /// Print only errors.
+    #[arg(short, long, global = true, conflicts_with = "verbose")]
+    pub quiet: bool,
+    /// Print more about each step.
+    #[arg(short, long, global = true)]
+    pub verbose: bool,
+    /// Worker threads for parallel stages (default: all cores). Results do not depend on it.
+    #[arg(long, global = true, value_name = "N")]
+    pub jobs: Option<usize>,
+    /// Never draw progress bars.
+    #[arg(long, global = true)]
+    pub no_progress: bool,
+}
+
+#[derive(Subcommand, Debug)]
+pub enum Command {
+    /// Validate a study and everything it names; writes nothing.
+    Check {
+        /// The study file, or a folder holding `study.yaml`.
+        study: PathBuf,
+    },
+    /// Work with protocol files.
+    Protocol {
+        #[command(subcommand)]
+        action: ProtocolAction,
+    },
+    /// Run a study: validate it, place captures in epochs, and write the results.
+    /// A folder with a `scenario.yaml` and no data yet is simulated first.
+    Run {
+        /// The study file, or a folder holding `study.yaml`.
+        study: PathBuf,
+    },
+    /// Write a synthetic study with known truth from a scenario file.
+    Simulate {
+        /// The scenario file.
+        scenario: PathBuf,
+        /// Folder to write the study into (created if needed).
+        #[arg(long, value_name = "DIR")]
+        out: PathBuf,
+    },
+}
+
+#[derive(Subcommand, Debug)]
+pub enum ProtocolAction {
+    /// Print a protocol's timeline: cumulative times, gas, equivalent altitude.
+    Show {
+        /// The protocol file.
+        file: PathBuf,
+    },
+}
+
+impl Global {
+    pub fn printer(&self) -> Printer {
+        let level = if self.quiet {
+            Level::Quiet
+        } else if self.verbose {
+            Level::Verbose
+        } else {
+            Level::Normal
+        };
+        Printer::new(level, self.no_progress)
+    }
+}
+
+/// Parses the arguments and runs the verb.
+pub fn main_with_args(args: impl IntoIterator<Item = std::ffi::OsString>) -> Exit {
+    let cli = match Cli::try_parse_from(args) {
+        Ok(c) => c,
+        Err(e) => {
+            let _ = e.print();
+            return if e.use_stderr() { Exit::Problem } else { Exit::Ok };
+        }
+    };
+    let printer = cli.global.printer();
+    if let Some(n) = cli.global.jobs {
+        if n == 0 {
+            printer.error("`--jobs` must be at least 1");
+            return Exit::Problem;
+        }
+        // Only fails if a pool already exists, which cannot happen here.
+        let _ = rayon::ThreadPoolBuilder::new().num_threads(n).build_global();
+    }
+    let result = match cli.command {
+        Command::Check { study } => crate::run::check(&study, &printer),
+        Command::Protocol { action: ProtocolAction::Show { file } } => crate::run::show_protocol(&file, &printer),
+        Command::Run { study } => crate::run::run(&study, &printer),
+        Command::Simulate { scenario, out } => crate::run::simulate(&scenario, &out, &printer),
+    };
+    match result {
+        Ok(exit) => exit,
+        Err(e) => {
+            printer.error(format!("{e}"));
+            for cause in e.chain().skip(1) {
+                eprintln!("  caused by: {cause}");
+            }
+            Exit::Internal
+        }
+    }
+}

@@ -1,0 +1,170 @@
+//! Typed reads from the position-keeping YAML tree. Each read that fails
+//! records a finding at the node's position and returns `None`, so a loader
+//! keeps going and reports every mistake in the file at once.
+
+use std::path::Path;
+
+use chrono::{DateTime, FixedOffset};
+
+use super::diag::{suggest, Finding, Findings, Mark};
+use super::duration::parse_seconds;
+use super::yaml::{Node, Value};
+use crate::timeline::time::parse_time;
+
+/// A mapping whose keys have been checked against the allowed names.
+pub struct MapView<'n> {
+    pub node: &'n Node,
+    entries: &'n [(Node, Node)],
+}
+
+impl<'n> MapView<'n> {
+    pub fn get(&self, key: &str) -> Option<&'n Node> {
+        self.entries.iter().find(|(k, _)| k.as_scalar() == Some(key)).map(|(_, v)| v).filter(|v| !v.is_null())
+    }
+
+    pub fn mark(&self) -> Mark {
+        self.node.mark
+    }
+}
+
+/// Reads values from one file, collecting findings.
+pub struct Reader<'a> {
+    pub file: &'a Path,
+    pub findings: &'a mut Findings,
+}
+
+impl<'a> Reader<'a> {
+    pub fn new(file: &'a Path, findings: &'a mut Findings) -> Self {
+        Reader { file, findings }
+    }
+
+    pub fn error(&mut self, mark: Mark, message: impl Into<String>) -> &mut Finding {
+        self.findings.error(self.file, Some(mark), message)
+    }
+
+    pub fn warning(&mut self, mark: Mark, message: impl Into<String>) -> &mut Finding {
+        self.findings.warning(self.file, Some(mark), message)
+    }
+
+    /// A mapping of `what` with only the `allowed` keys. Unknown keys are
+    /// reported with the nearest allowed names.
+    pub fn map<'n>(&mut self, node: &'n Node, what: &str, allowed: &[&str]) -> Option<MapView<'n>> {
+        let Value::Map(entries) = &node.value else {
+            self.error(node.mark, format!("{what} must be a mapping of `key: value` lines, found {}", node.kind()))
+                .hint(format!("allowed keys: {}", allowed.iter().map(|k| format!("`{k}`")).collect::<Vec<_>>().join(", ")));
+            return None;
+        };
+        for (k, _) in entries {
+            match k.as_scalar() {
+                Some(name) if allowed.contains(&name) => {}
+                Some(name) => {
+                    let hint = suggest(name, allowed);
+                    self.error(k.mark, format!("unknown key `{name}` in {what}")).hint(hint);
+                }
+                None => {
+                    self.error(k.mark, format!("keys in {what} must be plain names, found {}", k.kind()));
+                }
+            }
+        }
+        Some(MapView { node, entries })
+    }
+
+    pub fn required<'n>(&mut self, m: &MapView<'n>, key: &str, what: &str) -> Option<&'n Node> {
+        let v = m.get(key);
+        if v.is_none() {
+            self.error(m.mark(), format!("{what} has no `{key}`")).hint(format!("add `{key}: …` here"));
+        }
+        v
+    }
+
+    pub fn text(&mut self, node: &Node, what: &str) -> Option<String> {
+        match node.as_scalar() {
+            Some(t) => Some(t.to_string()),
+            None => {
+                self.error(node.mark, format!("{what} must be a single value, found {}", node.kind()));
+                None
+            }
+        }
+    }
+
+    pub fn number(&mut self, node: &Node, what: &str) -> Option<f64> {
+        let t = self.text(node, what)?;
+        match t.trim().parse::<f64>() {
+            Ok(v) if v.is_finite() => Some(v),
+            _ => {
+                self.error(node.mark, format!("{what} must be a number, found `{t}`"));
+                None
+            }
+        }
+    }
+
+    pub fn integer(&mut self, node: &Node, what: &str) -> Option<i64> {
+        let t = self.text(node, what)?;
+        match t.trim().parse::<i64>() {
+            Ok(v) => Some(v),
+            _ => {
+                self.error(node.mark, format!("{what} must be a whole number, found `{t}`"));
+                None
+            }
+        }
+    }
+
+    pub fn boolean(&mut self, node: &Node, what: &str) -> Option<bool> {
+        let t = self.text(node, what)?;
+        match t.trim() {
+            "true" | "True" | "yes" => Some(true),
+            "false" | "False" | "no" => Some(false),
+            _ => {
+                self.error(node.mark, format!("{what} must be `true` or `false`, found `{t}`"));
+                None
+            }
+        }
+    }
+
+    /// A duration in seconds (`90s`, `5min`, `1h30min`).
+    pub fn duration(&mut self, node: &Node, what: &str) -> Option<f64> {
+        let t = self.text(node, what)?;
+        match parse_seconds(&t) {
+            Ok(s) => Some(s),
+            Err(e) => {
+                self.error(node.mark, format!("{what}: {e}")).hint("write durations like `90s`, `5min` or `1h30min`");
+                None
+            }
+        }
+    }
+
+    /// A date-time with its UTC offset.
+    pub fn time(&mut self, node: &Node, what: &str) -> Option<DateTime<FixedOffset>> {
+        let t = self.text(node, what)?;
+        match parse_time(&t) {
+            Ok(v) => Some(v),
+            Err(e) => {
+                self.error(node.mark, format!("{what}: {e}"))
+                    .hint("write date-times as ISO 8601 with the UTC offset, e.g. `2026-03-04T09:15:00+01:00`");
+                None
+            }
+        }
+    }
+
+    pub fn list<'n>(&mut self, node: &'n Node, what: &str) -> Option<&'n [Node]> {
+        match &node.value {
+            Value::Seq(items) => Some(items),
+            _ => {
+                self.error(node.mark, format!("{what} must be a list (lines starting with `- `), found {}", node.kind()));
+                None
+            }
+        }
+    }
+
+    /// One of a fixed set of words.
+    pub fn choice(&mut self, node: &Node, what: &str, allowed: &[&str]) -> Option<String> {
+        let t = self.text(node, what)?;
+        if allowed.contains(&t.as_str()) {
+            Some(t)
+        } else {
+            let hint = suggest(&t, allowed);
+            self.error(node.mark, format!("{what} `{t}` is not known")).hint(hint);
+            None
+        }
+    }
+}

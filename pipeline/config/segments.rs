@@ -1,0 +1,123 @@
+//! Vessel-segment files, one per eye: polylines in the eye's reference
+//! capture's pixel coordinates, each a stretch of one vessel between branch
+//! points.
+//!
+//! ```yaml
+//! eye: OD
+//! segments:
+//!   - id: A1
+//!     kind: arteriole          # or venule
+//!     points: [[412.0, 300.5], [455.0, 310.0], [497.5, 331.0]]
+//!     notes: superior temporal, first order
+//! ```
+
+use std::path::Path;
+
+use super::diag::Findings;
+use super::read::Reader;
+use super::study::Eye;
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord, serde::Serialize)]
+pub enum VesselKind {
+    Arteriole,
+    Venule,
+}
+
+impl VesselKind {
+    pub const NAMES: [&'static str; 2] = ["arteriole", "venule"];
+    pub fn as_str(&self) -> &'static str {
+        match self {
+            VesselKind::Arteriole => "arteriole",
+            VesselKind::Venule => "venule",
+        }
+    }
+    pub fn from_name(s: &str) -> Option<Self> {
+        match s {
+            "arteriole" => Some(VesselKind::Arteriole),
+            "venule" => Some(VesselKind::Venule),
+            _ => None,
+        }
+    }
+}
+
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct Segment {
+    pub id: String,
+    pub kind: VesselKind,
+    /// (x, y) in pixels, x to the right, y down.
+    pub points: Vec<(f64, f64)>,
+    pub notes: String,
+}
+
+impl Segment {
+    pub fn length_px(&self) -> f64 {
+        self.points.windows(2).map(|w| ((w[1].0 - w[0].0).powi(2) + (w[1].1 - w[0].1).powi(2)).sqrt()).sum()
+    }
+}
+
+const FILE_KEYS: &[&str] = &["eye", "segments"];
+const SEGMENT_KEYS: &[&str] = &["id", "kind", "points", "notes"];
+
+/// Reads a segment file for `eye`; findings go to `findings`.
+pub fn load_segments(path: &Path, eye: Eye, findings: &mut Findings) -> Option<Vec<Segment>> {
+    let text = match std::fs::read_to_string(path) {
+        Ok(t) => t,
+        Err(e) => {
+            findings.error(path, None, format!("cannot read the segment file: {e}"));
+            return None;
+        }
+    };
+    let root = match super::yaml::parse(path, &text) {
+        Ok(n) => n,
+        Err(errs) => {
+            for e in errs {
+                findings.error(&e.file, e.mark, e.message).hint = e.hint;
+            }
+            return None;
+        }
+    };
+    let before = findings.error_count();
+    let mut r = Reader::new(path, findings);
+    let m = r.map(&root, "a segment file", FILE_KEYS)?;
+    if let Some(n) = m.get("eye") {
+        if let Some(e) = r.choice(n, "`eye`", &Eye::NAMES) {
+            if e != eye.as_str() {
+                r.error(n.mark, format!("this file is for eye `{e}` but the study names it for `{}`", eye.as_str()));
+            }
+        }
+    }
+    let mut out: Vec<Segment> = Vec::new();
+    let list = r.required(&m, "segments", "a segment file")?;
+    for item in r.list(list, "`segments`")? {
+        let Some(sm) = r.map(item, "a segment", SEGMENT_KEYS) else { continue };
+        let id = r.required(&sm, "id", "a segment").and_then(|n| r.text(n, "`id`"));
+        let kind = r
+            .required(&sm, "kind", "a segment")
+            .and_then(|n| r.choice(n, "vessel `kind`", &VesselKind::NAMES))
+            .and_then(|k| VesselKind::from_name(&k));
+        let notes = sm.get("notes").and_then(|n| r.text(n, "`notes`")).unwrap_or_default();
+        let mut points = Vec::new();
+        if let Some(pn) = r.required(&sm, "points", "a segment") {
+            for p in r.list(pn, "`points`").unwrap_or_default() {
+                let xy = r.list(p, "a point `[x, y]`").unwrap_or_default();
+                if xy.len() != 2 {
+                    r.error(p.mark, "a point is `[x, y]` in pixels");
+                    continue;
+                }
+                if let (Some(x), Some(y)) = (r.number(&xy[0], "x"), r.number(&xy[1], "y")) {
+                    points.push((x, y));
+                }
+            }
+            if points.len() < 2 {
+                r.error(pn.mark, "a segment needs at least two points");
+            }
+        }
+        if let (Some(id), Some(kind)) = (id, kind) {
+            if out.iter().any(|s| s.id == id) {
+                r.error(item.mark, format!("segment id `{id}` is used twice in this file"));
+            }
+            out.push(Segment { id, kind, points, notes });
+        }
+    }
+    (findings.error_count() == before).then_some(out)
+}

@@ -1,0 +1,828 @@
+//! Study files: who was imaged, with which instrument and protocol, which
+//! captures and reference logs belong to each session, which oximetry
+//! methods to run and which data to exclude. Paths are relative to the
+//! study file's folder. The layout is documented in the README.
+
+use std::collections::{BTreeMap, HashMap};
+use std::path::{Path, PathBuf};
+
+use chrono::{DateTime, FixedOffset};
+
+use super::csvfile::read_csv;
+use super::diag::{Findings, Mark};
+use super::protocol::{load_protocol, read_protocol, Protocol};
+use super::read::{MapView, Reader};
+use super::yaml::Node;
+use crate::timeline::time::parse_time;
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, serde::Serialize)]
+pub enum Eye {
+    /// Right eye (oculus dexter).
+    OD,
+    /// Left eye (oculus sinister).
+    OS,
+}
+
+impl Eye {
+    pub const NAMES: [&'static str; 2] = ["OD", "OS"];
+    pub fn from_name(s: &str) -> Option<Eye> {
+        match s {
+            "OD" => Some(Eye::OD),
+            "OS" => Some(Eye::OS),
+            _ => None,
+        }
+    }
+    pub fn as_str(&self) -> &'static str {
+        match self {
+            Eye::OD => "OD",
+            Eye::OS => "OS",
+        }
+    }
+}
+
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub enum BandResponse {
+    Gaussian { centre_nm: f64, fwhm_nm: f64 },
+    /// Tabulated relative response, (wavelength nm, response), ascending.
+    Table { file: PathBuf, points: Vec<(f64, f64)> },
+}
+
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct Band {
+    pub name: String,
+    pub response: BandResponse,
+}
+
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct Instrument {
+    pub name: String,
+    pub pixel_size_um: f64,
+    pub bands: Vec<Band>,
+}
+
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct Capture {
+    /// As written in the list.
+    pub listed: String,
+    pub path: PathBuf,
+    pub time: DateTime<FixedOffset>,
+    pub eye: Eye,
+    /// Where it was listed, for messages.
+    pub source: PathBuf,
+    pub mark: Mark,
+}
+
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct ReferenceLog {
+    pub path: PathBuf,
+    pub time_column: String,
+    pub spo2_column: String,
+}
+
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct Session {
+    pub id: String,
+    pub start: DateTime<FixedOffset>,
+    pub eyes: Vec<Eye>,
+    /// Recorded switch times: (epoch index, time), in epoch order.
+    pub switches: Vec<(usize, DateTime<FixedOffset>)>,
+    pub captures: Vec<Capture>,
+    pub reference: Option<ReferenceLog>,
+    pub segments: BTreeMap<Eye, PathBuf>,
+}
+
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct Subject {
+    pub id: String,
+    pub age: Option<f64>,
+    pub sex: Option<String>,
+    pub pigmentation: Option<i64>,
+    pub sessions: Vec<Session>,
+}
+
+/// How a two-band method turns ODR into SO2.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub enum Calibration {
+    /// SO2 (%) = intercept + slope · ODR.
+    Fixed { intercept: f64, slope: f64 },
+    /// Arterioles in `epoch` at the reference SpO2, venules at `venule_so2`.
+    TwoPoint { epoch: usize, venule_so2: f64 },
+    /// Regression on the reference SpO2 across subjects, leave one subject out.
+    Regression,
+}
+
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub enum MethodKind {
+    TwoBand { sensitive: usize, isosbestic: usize, calibration: Calibration, diameter_correction: bool },
+    Multiband { bands: Vec<usize>, loss: Loss, pointwise: bool },
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+pub enum Loss {
+    Squared,
+    Huber { scale: f64 },
+}
+
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct Method {
+    /// Label used in tables (defaults to the method's name).
+    pub label: String,
+    pub kind: MethodKind,
+}
+
+#[derive(Debug, Clone, PartialEq, Default, serde::Serialize)]
+pub struct Exclusions {
+    pub min_diameter_um: Option<f64>,
+    pub subjects: Vec<String>,
+    /// (capture as listed, reason).
+    pub captures: Vec<(String, String)>,
+}
+
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct Study {
+    pub id: String,
+    pub title: String,
+    pub file: PathBuf,
+    pub root: PathBuf,
+    pub protocol: Protocol,
+    pub protocol_file: Option<PathBuf>,
+    pub instrument: Instrument,
+    pub subjects: Vec<Subject>,
+    pub methods: Vec<Method>,
+    pub exclusions: Exclusions,
+    pub output: PathBuf,
+}
+
+impl Study {
+    pub fn capture_count(&self) -> usize {
+        self.subjects.iter().flat_map(|s| &s.sessions).map(|s| s.captures.len()).sum()
+    }
+}
+
+/// A study path may name the file or a folder holding `study.yaml`.
+pub fn resolve_study_path(arg: &Path) -> PathBuf {
+    if arg.is_dir() { arg.join("study.yaml") } else { arg.to_path_buf() }
+}
+
+const STUDY_KEYS: &[&str] = &["study", "title", "protocol", "instrument", "subjects", "methods", "exclusions", "output"];
+const INSTRUMENT_KEYS: &[&str] = &["name", "pixel_size_um", "bands"];
+const BAND_KEYS: &[&str] = &["name", "centre_nm", "fwhm_nm", "response"];
+const SUBJECT_KEYS: &[&str] = &["id", "age", "sex", "pigmentation", "sessions"];
+const SESSION_KEYS: &[&str] = &["id", "start", "eyes", "switches", "captures", "reference", "segments"];
+const CAPTURE_KEYS: &[&str] = &["file", "time", "eye"];
+const LOG_KEYS: &[&str] = &["file", "columns"];
+const LOG_COLUMN_KEYS: &[&str] = &["time", "spo2"];
+const METHOD_KEYS_TWO_BAND: &[&str] = &["method", "label", "sensitive", "isosbestic", "calibration", "diameter_correction"];
+const METHOD_KEYS_MULTI: &[&str] = &["method", "label", "bands", "loss", "huber_scale"];
+const METHOD_NAMES: &[&str] = &["two-band", "multiband", "multiband-pointwise"];
+const CALIBRATION_KEYS: &[&str] = &["mode", "intercept", "slope", "epoch", "venule_so2"];
+const EXCLUSION_KEYS: &[&str] = &["min_diameter_um", "subjects", "captures"];
+const EXCLUDED_CAPTURE_KEYS: &[&str] = &["file", "reason"];
+
+/// Reads and validates a study file and everything it names (protocol,
+/// capture lists, reference logs, segment files). All findings, errors and
+/// warnings, come back together; the study is `Some` only without errors.
+pub fn load_study(path: &Path) -> (Option<Study>, Findings) {
+    let mut findings = Findings::new();
+    let text = match std::fs::read_to_string(path) {
+        Ok(t) => t,
+        Err(e) => {
+            findings
+                .error(path, None, format!("cannot read the study file: {e}"))
+                .hint("give the study file, or a folder that holds `study.yaml`");
+            return (None, findings);
+        }
+    };
+    let root_node = match super::yaml::parse(path, &text) {
+        Ok(n) => n,
+        Err(errs) => {
+            for e in errs {
+                findings.error(&e.file, e.mark, e.message).hint = e.hint;
+            }
+            return (None, findings);
+        }
+    };
+    let root_dir = path.parent().map(Path::to_path_buf).unwrap_or_default();
+    let study = {
+        let mut r = Reader::new(path, &mut findings);
+        read_study(&mut r, &root_node, path, &root_dir)
+    };
+    // File-level checks that need the whole study.
+    let study = study.map(|s| {
+        check_files(&s, &mut findings);
+        s
+    });
+    if findings.has_errors() { (None, findings) } else { (study, findings) }
+}
+
+fn read_study(r: &mut Reader, node: &Node, file: &Path, root: &Path) -> Option<Study> {
+    let m = r.map(node, "the study file", STUDY_KEYS)?;
+    let id = r.required(&m, "study", "the study file").and_then(|n| r.text(n, "`study`"));
+    let title = m.get("title").and_then(|n| r.text(n, "`title`")).unwrap_or_default();
+
+    let (protocol, protocol_file) = match r.required(&m, "protocol", "the study file") {
+        None => (None, None),
+        Some(n) => match n.as_scalar() {
+            Some(rel) => {
+                let p = root.join(rel);
+                match load_protocol(&p) {
+                    Ok(proto) => (Some(proto), Some(p)),
+                    Err(f) => {
+                        if f.iter().any(|x| x.mark.is_none() && x.file == p) {
+                            r.error(n.mark, format!("cannot read the protocol file `{}`", p.display()))
+                                .hint("the path is relative to the study file's folder");
+                        } else {
+                            r.findings.extend(f);
+                        }
+                        (None, Some(p))
+                    }
+                }
+            }
+            None => (read_protocol(r, n), None),
+        },
+    };
+
+    let instrument = r.required(&m, "instrument", "the study file").and_then(|n| read_instrument(r, n, root));
+    let band_names: Vec<String> = instrument.as_ref().map(|i| i.bands.iter().map(|b| b.name.clone()).collect()).unwrap_or_default();
+
+    let mut subjects = Vec::new();
+    let mut seen_subjects: HashMap<String, Mark> = HashMap::new();
+    if let Some(n) = r.required(&m, "subjects", "the study file") {
+        if let Some(items) = r.list(n, "`subjects`") {
+            if items.is_empty() {
+                r.error(n.mark, "the study has no subjects").hint("add at least one `- id: …` under `subjects:`");
+            }
+            for item in items {
+                if let Some(s) = read_subject(r, item, root, protocol.as_ref()) {
+                    let mark = item.get("id").map(|x| x.mark).unwrap_or(item.mark);
+                    if let Some(first) = seen_subjects.get(&s.id) {
+                        r.error(mark, format!("subject `{}` is listed twice (first at line {})", s.id, first.line));
+                    }
+                    seen_subjects.insert(s.id.clone(), mark);
+                    subjects.push(s);
+                }
+            }
+        }
+    }
+
+    let methods = match m.get("methods") {
+        None => Vec::new(),
+        Some(n) => read_methods(r, n, &band_names, protocol.as_ref()),
+    };
+
+    let exclusions = match m.get("exclusions") {
+        None => Some(Exclusions::default()),
+        Some(n) => read_exclusions(r, n, &seen_subjects),
+    };
+
+    let output = match m.get("output") {
+        None => root.join("results"),
+        Some(n) => root.join(r.text(n, "`output`").unwrap_or_else(|| "results".into())),
+    };
+
+    Some(Study {
+        id: id?,
+        title,
+        file: file.to_path_buf(),
+        root: root.to_path_buf(),
+        protocol: protocol?,
+        protocol_file,
+        instrument: instrument?,
+        subjects,
+        methods,
+        exclusions: exclusions?,
+        output,
+    })
+}
+
+fn positive(r: &mut Reader, n: &Node, what: &str) -> Option<f64> {
+    let v = r.number(n, what)?;
+    if v <= 0.0 {
+        r.error(n.mark, format!("{what} must be greater than zero, found {v}"));
+        return None;
+    }
+    Some(v)
+}
+
+fn read_instrument(r: &mut Reader, node: &Node, root: &Path) -> Option<Instrument> {
+    let m = r.map(node, "`instrument`", INSTRUMENT_KEYS)?;
+    let name = m.get("name").and_then(|n| r.text(n, "`name`")).unwrap_or_else(|| "unnamed".into());
+    let pixel = r.required(&m, "pixel_size_um", "`instrument`").and_then(|n| positive(r, n, "`pixel_size_um`"));
+    let mut bands: Vec<Band> = Vec::new();
+    let mut ok = true;
+    if let Some(n) = r.required(&m, "bands", "`instrument`") {
+        match r.list(n, "`bands`") {
+            Some(items) => {
+                if items.len() < 2 {
+                    r.error(n.mark, "the instrument needs at least two bands").hint("list every spectral band in the order of the capture's pages");
+                    ok = false;
+                }
+                for item in items {
+                    match read_band(r, item, root) {
+                        Some(b) => {
+                            if bands.iter().any(|x| x.name == b.name) {
+                                r.error(item.mark, format!("band name `{}` is used twice", b.name));
+                                ok = false;
+                            }
+                            bands.push(b);
+                        }
+                        None => ok = false,
+                    }
+                }
+            }
+            None => ok = false,
+        }
+    }
+    if !ok {
+        return None;
+    }
+    Some(Instrument { name, pixel_size_um: pixel?, bands })
+}
+
+fn read_band(r: &mut Reader, node: &Node, root: &Path) -> Option<Band> {
+    let m = r.map(node, "a band", BAND_KEYS)?;
+    let name = r.required(&m, "name", "a band").and_then(|n| r.text(n, "a band's `name`"));
+    let response = match (m.get("centre_nm"), m.get("fwhm_nm"), m.get("response")) {
+        (Some(c), Some(w), None) => {
+            let c = positive(r, c, "`centre_nm`");
+            let w = positive(r, w, "`fwhm_nm`");
+            if let Some(cv) = c {
+                if !(250.0..=1000.0).contains(&cv) {
+                    r.error(m.get("centre_nm").expect("present").mark, format!("`centre_nm` {cv} is outside 250–1000 nm, the range of the hemoglobin tables"));
+                    return None;
+                }
+            }
+            Some(BandResponse::Gaussian { centre_nm: c?, fwhm_nm: w? })
+        }
+        (None, None, Some(f)) => {
+            let rel = r.text(f, "`response`")?;
+            let p = root.join(&rel);
+            read_response_table(r, &p, f.mark)
+        }
+        _ => {
+            r.error(m.mark(), "a band needs `centre_nm` and `fwhm_nm`, or a `response` file")
+                .hint("e.g. `{name: b570, centre_nm: 570, fwhm_nm: 10}` or `{name: b570, response: bands/b570.csv}`");
+            None
+        }
+    };
+    Some(Band { name: name?, response: response? })
+}
+
+fn read_response_table(r: &mut Reader, p: &Path, mark: Mark) -> Option<BandResponse> {
+    if !p.is_file() {
+        r.error(mark, format!("response file `{}` does not exist", p.display())).hint("the path is relative to the study file's folder");
+        return None;
+    }
+    let t = read_csv(p, r.findings)?;
+    let wl = t.column(p, "wavelength_nm", "a band response", r.findings)?;
+    let rs = t.column(p, "response", "a band response", r.findings)?;
+    let mut pts = Vec::new();
+    let mut ok = true;
+    for row in &t.rows {
+        let parse = |i: usize| row.field(i).and_then(|(s, m)| s.parse::<f64>().ok().filter(|v| v.is_finite()).map(|v| (v, m)));
+        match (parse(wl), parse(rs)) {
+            (Some((w, _)), Some((v, _))) if v >= 0.0 => pts.push((w, v)),
+            _ => {
+                r.findings.error(p, Some(Mark::new(row.line, 1)), "expected a wavelength in nm and a response ≥ 0");
+                ok = false;
+            }
+        }
+    }
+    if ok && (pts.len() < 2 || pts.windows(2).any(|w| w[1].0 <= w[0].0)) {
+        r.findings.error(p, None, "a band response needs at least two rows with increasing wavelengths");
+        ok = false;
+    }
+    if ok && pts.iter().all(|(_, v)| *v == 0.0) {
+        r.findings.error(p, None, "the band response is zero everywhere");
+        ok = false;
+    }
+    ok.then(|| BandResponse::Table { file: p.to_path_buf(), points: pts })
+}
+
+fn read_subject(r: &mut Reader, node: &Node, root: &Path, protocol: Option<&Protocol>) -> Option<Subject> {
+    let m = r.map(node, "a subject", SUBJECT_KEYS)?;
+    let id = r.required(&m, "id", "a subject").and_then(|n| r.text(n, "a subject's `id`"));
+    let age = m.get("age").and_then(|n| positive(r, n, "`age`"));
+    let sex = m.get("sex").and_then(|n| r.text(n, "`sex`"));
+    let pigmentation = m.get("pigmentation").and_then(|n| r.integer(n, "`pigmentation`"));
+    let mut sessions = Vec::new();
+    if let Some(n) = r.required(&m, "sessions", "a subject") {
+        if let Some(items) = r.list(n, "`sessions`") {
+            if items.is_empty() {
+                r.error(n.mark, "the subject has no sessions");
+            }
+            for item in items {
+                if let Some(s) = read_session(r, item, root, protocol) {
+                    if sessions.iter().any(|x: &Session| x.id == s.id) {
+                        r.error(item.mark, format!("session `{}` is listed twice for this subject", s.id));
+                    }
+                    sessions.push(s);
+                }
+            }
+        }
+    }
+    Some(Subject { id: id?, age, sex, pigmentation, sessions })
+}
+
+fn read_eye(r: &mut Reader, n: &Node) -> Option<Eye> {
+    r.choice(n, "eye", &Eye::NAMES).and_then(|s| Eye::from_name(&s))
+}
+
+fn read_session(r: &mut Reader, node: &Node, root: &Path, protocol: Option<&Protocol>) -> Option<Session> {
+    let m = r.map(node, "a session", SESSION_KEYS)?;
+    let id = m.get("id").and_then(|n| r.text(n, "a session's `id`")).unwrap_or_else(|| "1".into());
+    let start = r.required(&m, "start", "a session").and_then(|n| r.time(n, "`start`"));
+    let eyes: Vec<Eye> = match r.required(&m, "eyes", "a session") {
+        None => Vec::new(),
+        Some(n) => match n.as_scalar() {
+            Some(_) => read_eye(r, n).into_iter().collect(),
+            None => r.list(n, "`eyes`").map(|items| items.iter().filter_map(|i| read_eye(r, i)).collect()).unwrap_or_default(),
+        },
+    };
+    let switches = match (m.get("switches"), protocol, start) {
+        (Some(n), Some(p), Some(st)) => read_switches(r, n, p, st),
+        (Some(n), None, _) => {
+            // Without a valid protocol the epoch names cannot be checked; still read the times.
+            let _ = r.map(n, "`switches`", &[]);
+            Vec::new()
+        }
+        _ => Vec::new(),
+    };
+    let captures = match r.required(&m, "captures", "a session") {
+        None => Vec::new(),
+        Some(n) => read_captures(r, n, root, &eyes),
+    };
+    let reference = m.get("reference").and_then(|n| read_log(r, n, root));
+    let mut segments = BTreeMap::new();
+    if let Some(n) = m.get("segments") {
+        let allowed: Vec<&str> = eyes.iter().map(|e| e.as_str()).collect();
+        if let Some(sm) = r.map(n, "`segments` (one file per eye)", &allowed) {
+            for eye in &eyes {
+                if let Some(f) = sm.get(eye.as_str()) {
+                    if let Some(rel) = r.text(f, "a segment file") {
+                        let p = root.join(&rel);
+                        if !p.is_file() {
+                            r.error(f.mark, format!("segment file `{rel}` does not exist")).hint("the path is relative to the study file's folder");
+                        }
+                        segments.insert(*eye, p);
+                    }
+                }
+            }
+        }
+    }
+    if eyes.is_empty() {
+        return None;
+    }
+    Some(Session { id, start: start?, eyes, switches, captures, reference, segments })
+}
+
+fn read_switches(r: &mut Reader, node: &Node, p: &Protocol, start: DateTime<FixedOffset>) -> Vec<(usize, DateTime<FixedOffset>)> {
+    let names: Vec<&str> = p.epochs.iter().map(|e| e.name.as_str()).collect();
+    let Some(m) = r.map(node, "`switches` (epoch name: time it began)", &names) else { return Vec::new() };
+    let mut out: Vec<(usize, DateTime<FixedOffset>, Mark)> = Vec::new();
+    for (i, name) in names.iter().enumerate() {
+        if let Some(n) = m.get(name) {
+            if let Some(t) = r.time(n, &format!("switch to `{name}`")) {
+                out.push((i, t, n.mark));
+            }
+        }
+    }
+    let mut prev = (start, "the session start".to_string());
+    for (i, t, mark) in &out {
+        if *i == 0 && *t != start {
+            r.error(*mark, format!("the first epoch `{}` begins at the session's `start`", names[0]))
+                .hint("remove this switch, or move `start` to this time");
+        } else if *i > 0 && *t <= prev.0 {
+            r.error(*mark, format!("switch to `{}` at {} is not after {}", names[*i], t.to_rfc3339(), prev.1))
+                .hint("recorded switch times must follow the protocol's epoch order");
+        }
+        prev = (*t, format!("the switch to `{}`", names[*i]));
+    }
+    out.into_iter().filter(|(i, _, _)| *i > 0).map(|(i, t, _)| (i, t)).collect()
+}
+
+fn read_captures(r: &mut Reader, node: &Node, root: &Path, eyes: &[Eye]) -> Vec<Capture> {
+    let default_eye = (eyes.len() == 1).then(|| eyes[0]);
+    let mut out = Vec::new();
+    if let Some(rel) = node.as_scalar() {
+        // A CSV capture list: file,time[,eye]
+        let p = root.join(rel);
+        if !p.is_file() {
+            r.error(node.mark, format!("capture list `{rel}` does not exist")).hint("the path is relative to the study file's folder");
+            return out;
+        }
+        let Some(t) = read_csv(&p, r.findings) else { return out };
+        let fc = t.column(&p, "file", "a capture list", r.findings);
+        let tc = t.column(&p, "time", "a capture list", r.findings);
+        let ec = t.header.iter().position(|h| h == "eye");
+        let (Some(fc), Some(tc)) = (fc, tc) else { return out };
+        let list_dir = p.parent().map(Path::to_path_buf).unwrap_or_default();
+        for row in &t.rows {
+            let Some((file, fmark)) = row.field(fc).filter(|(s, _)| !s.is_empty()) else {
+                r.findings.error(&p, Some(Mark::new(row.line, 1)), "this row has no `file`");
+                continue;
+            };
+            let time = match row.field(tc) {
+                Some((s, m)) => match parse_time(s) {
+                    Ok(v) => Some(v),
+                    Err(e) => {
+                        r.findings.error(&p, Some(m), format!("`time`: {e}"))
+                            .hint("write date-times as ISO 8601 with the UTC offset, e.g. `2026-03-04T09:15:00+01:00`");
+                        None
+                    }
+                },
+                None => {
+                    r.findings.error(&p, Some(Mark::new(row.line, 1)), "this row has no `time`");
+                    None
+                }
+            };
+            let eye = match ec.and_then(|i| row.field(i)).filter(|(s, _)| !s.is_empty()) {
+                Some((s, m)) => match Eye::from_name(s).filter(|e| eyes.contains(e)) {
+                    Some(e) => Some(e),
+                    None => {
+                        r.findings.error(&p, Some(m), format!("eye `{s}` is not one of this session's eyes"))
+                            .hint(format!("this session images {}", eyes.iter().map(|e| format!("`{}`", e.as_str())).collect::<Vec<_>>().join(", ")));
+                        None
+                    }
+                },
+                None => {
+                    if default_eye.is_none() {
+                        r.findings.error(&p, Some(fmark), "the session images two eyes: say which one in an `eye` column");
+                    }
+                    default_eye
+                }
+            };
+            if let (Some(time), Some(eye)) = (time, eye) {
+                out.push(Capture { listed: file.to_string(), path: list_dir.join(file), time, eye, source: p.clone(), mark: fmark });
+            }
+        }
+        return out;
+    }
+    let Some(items) = r.list(node, "`captures` (a CSV file or a list)") else { return out };
+    for item in items {
+        let Some(m) = r.map(item, "a capture", CAPTURE_KEYS) else { continue };
+        let file = r.required(&m, "file", "a capture").and_then(|n| r.text(n, "`file`"));
+        let time = r.required(&m, "time", "a capture").and_then(|n| r.time(n, "`time`"));
+        let eye = match m.get("eye") {
+            Some(n) => read_eye(r, n),
+            None => {
+                if default_eye.is_none() {
+                    r.error(m.mark(), "the session images two eyes: say which one with `eye:`");
+                }
+                default_eye
+            }
+        };
+        if let (Some(f), Some(t), Some(e)) = (file, time, eye) {
+            out.push(Capture { path: root.join(&f), listed: f, time: t, eye: e, source: r.file.to_path_buf(), mark: item.mark });
+        }
+    }
+    out
+}
+
+fn read_log(r: &mut Reader, node: &Node, root: &Path) -> Option<ReferenceLog> {
+    let m = r.map(node, "`reference` (the SpO2 log)", LOG_KEYS)?;
+    let file_node = r.required(&m, "file", "`reference`")?;
+    let rel = r.text(file_node, "`file`")?;
+    let p = root.join(&rel);
+    let (tc, sc) = match m.get("columns") {
+        None => ("time".to_string(), "spo2".to_string()),
+        Some(n) => {
+            let cm = r.map(n, "`columns`", LOG_COLUMN_KEYS)?;
+            let t = cm.get("time").and_then(|x| r.text(x, "`time`")).unwrap_or_else(|| "time".into());
+            let s = cm.get("spo2").and_then(|x| r.text(x, "`spo2`")).unwrap_or_else(|| "spo2".into());
+            (t, s)
+        }
+    };
+    if !p.is_file() {
+        r.error(file_node.mark, format!("reference log `{rel}` does not exist")).hint("the path is relative to the study file's folder");
+        return None;
+    }
+    Some(ReferenceLog { path: p, time_column: tc, spo2_column: sc })
+}
+
+fn read_methods(r: &mut Reader, node: &Node, bands: &[String], protocol: Option<&Protocol>) -> Vec<Method> {
+    let mut out: Vec<Method> = Vec::new();
+    let Some(items) = r.list(node, "`methods`") else { return out };
+    let band_refs: Vec<&str> = bands.iter().map(|s| s.as_str()).collect();
+    for item in items {
+        let Some(kind_node) = item.get("method") else {
+            r.error(item.mark, "a method needs `method:`").hint(format!("one of {}", METHOD_NAMES.join(", ")));
+            continue;
+        };
+        let Some(kind) = r.choice(kind_node, "method", METHOD_NAMES) else { continue };
+        let keys = if kind == "two-band" { METHOD_KEYS_TWO_BAND } else { METHOD_KEYS_MULTI };
+        let Some(m) = r.map(item, &format!("method `{kind}`"), keys) else { continue };
+        let label = m.get("label").and_then(|n| r.text(n, "`label`")).unwrap_or_else(|| kind.clone());
+        if out.iter().any(|x| x.label == label) {
+            r.error(item.mark, format!("two methods are labelled `{label}`")).hint("give each a distinct `label:`");
+        }
+        let band = |r: &mut Reader, key: &str| -> Option<usize> {
+            let n = r.required(&m, key, &format!("method `{kind}`"))?;
+            let b = r.text(n, &format!("`{key}`"))?;
+            let idx = band_refs.iter().position(|x| *x == b);
+            if idx.is_none() && !band_refs.is_empty() {
+                let hint = super::diag::suggest(&b, &band_refs);
+                r.error(n.mark, format!("band `{b}` is not one of the instrument's bands")).hint(hint);
+            }
+            idx
+        };
+        let method = if kind == "two-band" {
+            let s = band(r, "sensitive");
+            let i = band(r, "isosbestic");
+            let cal = r.required(&m, "calibration", "method `two-band`").and_then(|n| read_calibration(r, n, protocol));
+            let dc = m.get("diameter_correction").and_then(|n| r.boolean(n, "`diameter_correction`")).unwrap_or(false);
+            if let (Some(s), Some(i)) = (s, i) {
+                if s == i {
+                    r.error(m.mark(), "`sensitive` and `isosbestic` must be different bands");
+                }
+            }
+            match (s, i, cal) {
+                (Some(s), Some(i), Some(c)) => Some(MethodKind::TwoBand { sensitive: s, isosbestic: i, calibration: c, diameter_correction: dc }),
+                _ => None,
+            }
+        } else {
+            let bands_sel = match m.get("bands") {
+                None => Some((0..bands.len()).collect::<Vec<_>>()),
+                Some(n) => r.list(n, "`bands`").map(|items| {
+                    items
+                        .iter()
+                        .filter_map(|b| {
+                            let t = r.text(b, "a band")?;
+                            let idx = band_refs.iter().position(|x| *x == t);
+                            if idx.is_none() {
+                                let hint = super::diag::suggest(&t, &band_refs);
+                                r.error(b.mark, format!("band `{t}` is not one of the instrument's bands")).hint(hint);
+                            }
+                            idx
+                        })
+                        .collect()
+                }),
+            };
+            if let (Some(b), Some(n)) = (&bands_sel, m.get("bands")) {
+                if b.len() < 4 {
+                    r.error(n.mark, format!("a multiband fit needs at least 4 bands, {} given", b.len()))
+                        .hint("with fewer bands than unknowns the model cannot be fitted; use `two-band` instead");
+                }
+            }
+            let loss = match m.get("loss") {
+                None => Some("huber".to_string()),
+                Some(n) => r.choice(n, "`loss`", &["huber", "squared"]),
+            };
+            let scale = match m.get("huber_scale") {
+                None => Some(1.5),
+                Some(n) => positive(r, n, "`huber_scale`"),
+            };
+            let loss = match (loss.as_deref(), scale) {
+                (Some("squared"), _) => Some(Loss::Squared),
+                (Some(_), Some(s)) => Some(Loss::Huber { scale: s }),
+                _ => None,
+            };
+            match (bands_sel, loss) {
+                (Some(b), Some(l)) => Some(MethodKind::Multiband { bands: b, loss: l, pointwise: kind == "multiband-pointwise" }),
+                _ => None,
+            }
+        };
+        if let Some(k) = method {
+            out.push(Method { label, kind: k });
+        }
+    }
+    out
+}
+
+fn read_calibration(r: &mut Reader, node: &Node, protocol: Option<&Protocol>) -> Option<Calibration> {
+    let m = r.map(node, "`calibration`", CALIBRATION_KEYS)?;
+    let mode = r.required(&m, "mode", "`calibration`").and_then(|n| r.choice(n, "calibration `mode`", &["fixed", "two-point", "regression"]))?;
+    let only = |r: &mut Reader, m: &MapView, allowed: &[&str]| {
+        for k in CALIBRATION_KEYS.iter().filter(|k| **k != "mode" && !allowed.contains(k)) {
+            if let Some(n) = m.get(k) {
+                r.error(n.mark, format!("`{k}` does not apply to calibration mode `{mode}`"));
+            }
+        }
+    };
+    match mode.as_str() {
+        "fixed" => {
+            only(r, &m, &["intercept", "slope"]);
+            let a = r.required(&m, "intercept", "a fixed calibration").and_then(|n| r.number(n, "`intercept`"));
+            let b_node = r.required(&m, "slope", "a fixed calibration");
+            let b = b_node.and_then(|n| r.number(n, "`slope`"));
+            if let (Some(b), Some(n)) = (b, b_node) {
+                if b >= 0.0 {
+                    r.warning(n.mark, format!("`slope` {b} is not negative: SO2 usually falls as the optical density ratio rises"));
+                }
+            }
+            Some(Calibration::Fixed { intercept: a?, slope: b? })
+        }
+        "two-point" => {
+            only(r, &m, &["epoch", "venule_so2"]);
+            let e_node = r.required(&m, "epoch", "a two-point calibration");
+            let e = e_node.and_then(|n| r.text(n, "`epoch`"));
+            let idx = match (e, protocol, e_node) {
+                (Some(e), Some(p), Some(n)) => {
+                    let idx = p.epoch_index(&e);
+                    if idx.is_none() {
+                        let names: Vec<&str> = p.epochs.iter().map(|x| x.name.as_str()).collect();
+                        let hint = super::diag::suggest(&e, &names);
+                        r.error(n.mark, format!("calibration epoch `{e}` is not an epoch of the protocol")).hint(hint);
+                    }
+                    idx
+                }
+                _ => None,
+            };
+            let v_node = r.required(&m, "venule_so2", "a two-point calibration");
+            let v = v_node.and_then(|n| r.number(n, "`venule_so2`"));
+            if let (Some(v), Some(n)) = (v, v_node) {
+                if !(0.0..=100.0).contains(&v) {
+                    r.error(n.mark, format!("`venule_so2` {v} is outside 0–100 %"));
+                    return None;
+                }
+            }
+            Some(Calibration::TwoPoint { epoch: idx?, venule_so2: v? })
+        }
+        _ => {
+            only(r, &m, &[]);
+            Some(Calibration::Regression)
+        }
+    }
+}
+
+fn read_exclusions(r: &mut Reader, node: &Node, subjects: &HashMap<String, Mark>) -> Option<Exclusions> {
+    let m = r.map(node, "`exclusions`", EXCLUSION_KEYS)?;
+    let min_d = m.get("min_diameter_um").and_then(|n| positive(r, n, "`min_diameter_um`"));
+    let mut subj = Vec::new();
+    if let Some(n) = m.get("subjects") {
+        for item in r.list(n, "`subjects`").unwrap_or_default() {
+            if let Some(s) = r.text(item, "a subject id") {
+                if !subjects.is_empty() && !subjects.contains_key(&s) {
+                    let ids: Vec<&str> = subjects.keys().map(|k| k.as_str()).collect();
+                    let hint = super::diag::suggest(&s, &ids);
+                    r.error(item.mark, format!("subject `{s}` is not in the study")).hint(hint);
+                }
+                subj.push(s);
+            }
+        }
+    }
+    let mut caps = Vec::new();
+    if let Some(n) = m.get("captures") {
+        for item in r.list(n, "`captures`").unwrap_or_default() {
+            let Some(cm) = r.map(item, "an excluded capture", EXCLUDED_CAPTURE_KEYS) else { continue };
+            let f = r.required(&cm, "file", "an excluded capture").and_then(|x| r.text(x, "`file`"));
+            let reason = r.required(&cm, "reason", "an excluded capture").and_then(|x| r.text(x, "`reason`"));
+            if let (Some(f), Some(reason)) = (f, reason) {
+                caps.push((f, reason));
+            }
+        }
+    }
+    Some(Exclusions { min_diameter_um: min_d, subjects: subj, captures: caps })
+}
+
+/// Checks across the study: capture files exist, none is listed twice, all
+/// fall within the protocol's span.
+fn check_files(study: &Study, findings: &mut Findings) {
+    let mut seen: HashMap<PathBuf, (PathBuf, Mark)> = HashMap::new();
+    for subj in &study.subjects {
+        for sess in &subj.sessions {
+            for (eye, p) in &sess.segments {
+                if p.is_file() {
+                    super::segments::load_segments(p, *eye, findings);
+                }
+            }
+            if let Some(log) = &sess.reference {
+                crate::timeline::reference::read_log(log, &sess.start, findings);
+            }
+            let spans = crate::timeline::assign::session_spans(&study.protocol, sess);
+            let first = spans.first().map(|s| s.start_s).unwrap_or(0.0);
+            let last = spans.last().map(|s| s.end_s).unwrap_or(0.0);
+            for c in &sess.captures {
+                if !c.path.is_file() {
+                    findings
+                        .error(&c.source, Some(c.mark), format!("capture `{}` does not exist", c.listed))
+                        .hint(format!("looked for `{}`", c.path.display()));
+                }
+                let key = c.path.canonicalize().unwrap_or_else(|_| c.path.clone());
+                if let Some((src, mark)) = seen.get(&key) {
+                    findings.error(&c.source, Some(c.mark), format!(
+                        "capture `{}` is listed twice (first at {}:{}:{})",
+                        c.listed,
+                        src.display(),
+                        mark.line,
+                        mark.col
+                    )).hint("remove one of the two lines");
+                } else {
+                    seen.insert(key, (c.source.clone(), c.mark));
+                }
+                let t = crate::timeline::time::seconds_between(&sess.start, &c.time);
+                if t < first || t >= last {
+                    findings
+                        .warning(&c.source, Some(c.mark), format!(
+                            "capture `{}` at {} is outside the protocol ({} to {} after the session start); it is kept with status `outside`",
+                            c.listed,
+                            c.time.to_rfc3339(),
+                            super::duration::format_seconds(first),
+                            super::duration::format_seconds(last)
+                        ))
+                        .hint("check the capture's time stamp and the session's `start`");
+                }
+            }
+        }
+    }
+}

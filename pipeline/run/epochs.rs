@@ -1,0 +1,154 @@
+//! The epoch stage: every listed capture with its gas epoch, status and
+//! reference SpO2, and every session's epoch spans. Nothing is dropped:
+//! captures in a settle window, outside the protocol or excluded by the
+//! study keep their row with a status that says why they are not analysed.
+
+use std::path::{Path, PathBuf};
+
+use anyhow::Result;
+
+use crate::config::diag::Findings;
+use crate::config::study::Study;
+use crate::tables::Table;
+use crate::timeline::assign::{assign, session_spans, CaptureStatus};
+use crate::timeline::reference::{read_log, reference_at, ReferenceStatus};
+use crate::timeline::time::seconds_between;
+
+/// One row of the capture table.
+#[derive(Debug, Clone, PartialEq)]
+pub struct CaptureRow {
+    pub subject: String,
+    pub session: String,
+    pub eye: String,
+    pub capture: String,
+    pub time: String,
+    pub t_s: f64,
+    pub epoch: Option<String>,
+    pub t_in_epoch_s: Option<f64>,
+    pub o2_fraction: Option<f64>,
+    /// `steady`, `settling`, `outside` or `excluded`.
+    pub status: String,
+    pub exclusion: Option<String>,
+    pub spo2: Option<f64>,
+    pub spo2_samples: i64,
+    pub spo2_range: Option<f64>,
+    pub spo2_status: String,
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub struct SpanRow {
+    pub subject: String,
+    pub session: String,
+    pub epoch: String,
+    pub start: String,
+    pub start_s: f64,
+    pub settle_end_s: f64,
+    pub end_s: f64,
+    pub start_source: &'static str,
+    pub o2_fraction: f64,
+}
+
+pub struct EpochTables {
+    pub captures: Vec<CaptureRow>,
+    pub spans: Vec<SpanRow>,
+}
+
+/// Assigns every capture. Log problems were already reported by the check;
+/// a session whose log cannot be read gets `missing` references.
+pub fn build(study: &Study) -> EpochTables {
+    let mut captures = Vec::new();
+    let mut spans_out = Vec::new();
+    let p = &study.protocol;
+    for subj in &study.subjects {
+        let subject_excluded = study.exclusions.subjects.contains(&subj.id);
+        for sess in &subj.sessions {
+            let spans = session_spans(p, sess);
+            for s in &spans {
+                let start = sess.start + chrono::Duration::microseconds((s.start_s * 1e6).round() as i64);
+                spans_out.push(SpanRow {
+                    subject: subj.id.clone(),
+                    session: sess.id.clone(),
+                    epoch: p.epochs[s.epoch].name.clone(),
+                    start: start.to_rfc3339(),
+                    start_s: s.start_s,
+                    settle_end_s: s.settle_end_s,
+                    end_s: s.end_s,
+                    start_source: if s.recorded { "recorded" } else { "planned" },
+                    o2_fraction: p.epochs[s.epoch].gas.o2_fraction,
+                });
+            }
+            let log = sess.reference.as_ref().and_then(|l| read_log(l, &sess.start, &mut Findings::new()));
+            let mut caps: Vec<_> = sess.captures.iter().collect();
+            caps.sort_by(|a, b| a.time.cmp(&b.time).then(a.listed.cmp(&b.listed)));
+            for c in caps {
+                let t = seconds_between(&sess.start, &c.time);
+                let (epoch, status) = assign(&spans, t);
+                let excluded = if subject_excluded {
+                    Some("subject excluded in the study file".to_string())
+                } else {
+                    study.exclusions.captures.iter().find(|(f, _)| *f == c.listed).map(|(_, r)| r.clone())
+                };
+                let r = log.as_ref().map(|l| reference_at(l, t, &p.reference));
+                captures.push(CaptureRow {
+                    subject: subj.id.clone(),
+                    session: sess.id.clone(),
+                    eye: c.eye.as_str().to_string(),
+                    capture: c.listed.clone(),
+                    time: c.time.to_rfc3339(),
+                    t_s: t,
+                    epoch: epoch.map(|e| p.epochs[e].name.clone()),
+                    t_in_epoch_s: epoch.map(|e| t - spans[e].start_s),
+                    o2_fraction: epoch.map(|e| p.epochs[e].gas.o2_fraction),
+                    status: if excluded.is_some() { "excluded".into() } else { status.as_str().into() },
+                    exclusion: excluded,
+                    spo2: r.and_then(|r| r.spo2),
+                    spo2_samples: r.map(|r| r.samples as i64).unwrap_or(0),
+                    spo2_range: r.and_then(|r| r.range),
+                    spo2_status: r.map(|r| r.status).unwrap_or(ReferenceStatus::Missing).as_str().into(),
+                });
+            }
+        }
+    }
+    EpochTables { captures, spans: spans_out }
+}
+
+impl EpochTables {
+    pub fn count(&self, status: CaptureStatus) -> usize {
+        self.captures.iter().filter(|c| c.status == status.as_str()).count()
+    }
+
+    pub fn write(&self, out: &Path) -> Result<Vec<PathBuf>> {
+        let dir = out.join("epochs");
+        let c = &self.captures;
+        let mut t = Table::new();
+        t.text("subject", c.iter().map(|r| &r.subject))
+            .text("session", c.iter().map(|r| &r.session))
+            .text("eye", c.iter().map(|r| &r.eye))
+            .text("capture", c.iter().map(|r| &r.capture))
+            .text("time", c.iter().map(|r| &r.time))
+            .real("t_s", c.iter().map(|r| r.t_s))
+            .opt_text("epoch", c.iter().map(|r| r.epoch.clone()))
+            .opt_real("t_in_epoch_s", c.iter().map(|r| r.t_in_epoch_s))
+            .opt_real("o2_fraction", c.iter().map(|r| r.o2_fraction))
+            .text("status", c.iter().map(|r| &r.status))
+            .opt_text("exclusion", c.iter().map(|r| r.exclusion.clone()))
+            .opt_real("spo2", c.iter().map(|r| r.spo2))
+            .int("spo2_samples", c.iter().map(|r| r.spo2_samples))
+            .opt_real("spo2_range", c.iter().map(|r| r.spo2_range))
+            .text("spo2_status", c.iter().map(|r| &r.spo2_status));
+        let mut paths = t.write(&dir, "captures")?;
+        let s = &self.spans;
+        let mut t = Table::new();
+        t.text("subject", s.iter().map(|r| &r.subject))
+            .text("session", s.iter().map(|r| &r.session))
+            .text("epoch", s.iter().map(|r| &r.epoch))
+            .text("start", s.iter().map(|r| &r.start))
+            .real("start_s", s.iter().map(|r| r.start_s))
+            .real("settle_end_s", s.iter().map(|r| r.settle_end_s))
+            .real("end_s", s.iter().map(|r| r.end_s))
+            .text("start_source", s.iter().map(|r| r.start_source))
+            .real("o2_fraction", s.iter().map(|r| r.o2_fraction));
+        paths.extend(t.write(&dir, "spans")?);
+        Ok(paths)
+    }
+}

@@ -1,0 +1,146 @@
+//! Reference SpO2 for each capture, from the pulse oximeter's log.
+//!
+//! The value for a capture at `t` is the median of the samples in the
+//! window of width `window` centred on `t + lag` (the probe shows a change
+//! `lag` after the blood has it). Empty cells, non-finite values and values
+//! outside 1–100 are dropouts and are skipped. When the range of the
+//! samples in the window exceeds the stability limit the value is kept and
+//! flagged `unstable`.
+
+use std::path::Path;
+
+use chrono::{DateTime, FixedOffset};
+
+use crate::config::csvfile::read_csv;
+use crate::config::diag::Findings;
+use crate::config::protocol::ReferenceSettings;
+use crate::config::study::ReferenceLog;
+use crate::timeline::time::{parse_time, seconds_between};
+
+/// A session's log, times in seconds from the session start, sorted.
+#[derive(Debug, Clone, Default)]
+pub struct SpO2Log {
+    pub samples: Vec<(f64, f64)>,
+    pub dropouts: usize,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum ReferenceStatus {
+    Ok,
+    Unstable,
+    /// No valid sample in the window (or no log for the session).
+    Missing,
+}
+
+impl ReferenceStatus {
+    pub fn as_str(&self) -> &'static str {
+        match self {
+            ReferenceStatus::Ok => "ok",
+            ReferenceStatus::Unstable => "unstable",
+            ReferenceStatus::Missing => "missing",
+        }
+    }
+}
+
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct CaptureReference {
+    pub spo2: Option<f64>,
+    pub samples: usize,
+    pub range: Option<f64>,
+    pub status: ReferenceStatus,
+}
+
+/// Reads a log; malformed lines are findings with `file:line:column`.
+pub fn read_log(log: &ReferenceLog, session_start: &DateTime<FixedOffset>, findings: &mut Findings) -> Option<SpO2Log> {
+    let p: &Path = &log.path;
+    let before = findings.error_count();
+    let t = read_csv(p, findings)?;
+    let tc = t.column(p, &log.time_column, "the SpO2 log", findings);
+    let sc = t.column(p, &log.spo2_column, "the SpO2 log", findings);
+    let (tc, sc) = (tc?, sc?);
+    let mut out = SpO2Log::default();
+    for row in &t.rows {
+        let Some((ts, tm)) = row.field(tc) else {
+            findings.error(p, Some(crate::config::diag::Mark::new(row.line, 1)), "this line has no time");
+            continue;
+        };
+        let time = match parse_time(ts) {
+            Ok(v) => v,
+            Err(e) => {
+                findings.error(p, Some(tm), format!("time: {e}")).hint("the log's times must be ISO 8601 with the UTC offset");
+                continue;
+            }
+        };
+        let value = row.field(sc).map(|(s, m)| (s.to_string(), m));
+        let v = match value {
+            None => None,
+            Some((s, _)) if s.is_empty() || s.eq_ignore_ascii_case("nan") || s == "-" => None,
+            Some((s, m)) => match s.parse::<f64>() {
+                Ok(v) if v.is_finite() && (1.0..=100.0).contains(&v) => Some(v),
+                Ok(_) => None,
+                Err(_) => {
+                    findings.error(p, Some(m), format!("SpO2 `{s}` is not a number")).hint("leave the cell empty for a dropout");
+                    continue;
+                }
+            },
+        };
+        match v {
+            Some(v) => out.samples.push((seconds_between(session_start, &time), v)),
+            None => out.dropouts += 1,
+        }
+    }
+    if findings.error_count() > before {
+        return None;
+    }
+    out.samples.sort_by(|a, b| a.0.total_cmp(&b.0));
+    Some(out)
+}
+
+/// The reference value for a capture at `t_s` seconds from the session start.
+pub fn reference_at(log: &SpO2Log, t_s: f64, settings: &ReferenceSettings) -> CaptureReference {
+    let centre = t_s + settings.lag_s;
+    let (lo, hi) = (centre - settings.window_s / 2.0, centre + settings.window_s / 2.0);
+    let from = log.samples.partition_point(|(t, _)| *t < lo);
+    let to = log.samples.partition_point(|(t, _)| *t <= hi);
+    let mut vals: Vec<f64> = log.samples[from..to].iter().map(|(_, v)| *v).collect();
+    if vals.is_empty() {
+        return CaptureReference { spo2: None, samples: 0, range: None, status: ReferenceStatus::Missing };
+    }
+    vals.sort_by(f64::total_cmp);
+    let n = vals.len();
+    let median = if n % 2 == 1 { vals[n / 2] } else { 0.5 * (vals[n / 2 - 1] + vals[n / 2]) };
+    let range = vals[n - 1] - vals[0];
+    let status = if range > settings.stability_limit { ReferenceStatus::Unstable } else { ReferenceStatus::Ok };
+    CaptureReference { spo2: Some(median), samples: n, range: Some(range), status }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn settings(lag: f64, window: f64) -> ReferenceSettings {
+        ReferenceSettings { lag_s: lag, window_s: window, stability_limit: 3.0, ..Default::default() }
+    }
+
+    #[test]
+    fn median_over_the_lagged_window() {
+        let log = SpO2Log { samples: (0..100).map(|t| (t as f64, if t < 50 { 98.0 } else { 90.0 })).collect(), dropouts: 0 };
+        // Capture at 30 s, lag 20 s: window 45..55 s straddles the drop.
+        let r = reference_at(&log, 30.0, &settings(20.0, 10.0));
+        assert_eq!(r.samples, 11);
+        assert_eq!(r.spo2, Some(90.0));
+        assert_eq!(r.status, ReferenceStatus::Unstable);
+        // Without the lag the window is on the plateau.
+        let r = reference_at(&log, 30.0, &settings(0.0, 10.0));
+        assert_eq!((r.spo2, r.status), (Some(98.0), ReferenceStatus::Ok));
+        let r = reference_at(&log, 500.0, &settings(0.0, 10.0));
+        assert_eq!(r.status, ReferenceStatus::Missing);
+    }
+
+    #[test]
+    fn even_count_median_is_the_mean_of_the_middle_two() {
+        let log = SpO2Log { samples: vec![(0.0, 95.0), (1.0, 97.0), (2.0, 96.0), (3.0, 94.0)], dropouts: 0 };
+        let r = reference_at(&log, 1.5, &settings(0.0, 4.0));
+        assert_eq!(r.spo2, Some(95.5));
+    }
+}

@@ -1,0 +1,111 @@
+//! Helpers shared by the integration tests: run the real binary, build small
+//! studies on disk.
+#![allow(dead_code)]
+
+use std::path::{Path, PathBuf};
+use std::process::Command;
+
+pub struct Output {
+    pub code: i32,
+    pub stdout: String,
+    pub stderr: String,
+}
+
+/// Runs `satstep` with `args` in `dir`, without colour or progress bars.
+pub fn satstep(dir: &Path, args: &[&str]) -> Output {
+    let out = Command::new(env!("CARGO_BIN_EXE_satstep"))
+        .args(args)
+        .current_dir(dir)
+        .env("NO_COLOR", "1")
+        .output()
+        .expect("the binary runs");
+    Output {
+        code: out.status.code().unwrap_or(-1),
+        stdout: String::from_utf8_lossy(&out.stdout).into_owned(),
+        stderr: String::from_utf8_lossy(&out.stderr).into_owned(),
+    }
+}
+
+pub fn repo() -> PathBuf {
+    PathBuf::from(env!("CARGO_MANIFEST_DIR"))
+}
+
+pub fn write(dir: &Path, rel: &str, text: &str) -> PathBuf {
+    let p = dir.join(rel);
+    std::fs::create_dir_all(p.parent().unwrap()).unwrap();
+    std::fs::write(&p, text).unwrap();
+    p
+}
+
+/// A tiny real two-band 16-bit TIFF.
+pub fn write_capture(dir: &Path, rel: &str) {
+    let p = dir.join(rel);
+    std::fs::create_dir_all(p.parent().unwrap()).unwrap();
+    let page: Vec<u16> = (0..64u16).map(|i| 1000 + i).collect();
+    satstep::simulate::render::write_tiff(&p, 8, 8, &[page.clone(), page]).unwrap();
+}
+
+pub const PROTOCOL: &str = "\
+name: two-step
+epochs:
+  - name: air
+    gas: air
+    duration: 10min
+    settle: 2min
+  - name: low
+    gas: {o2_fraction: 0.15}
+    duration: 10min
+    settle: 3min
+contrasts: [\"low - air\"]
+reference: {probe_site: finger, lag: 20s, window: 10s, stability_limit: 3}
+";
+
+/// A valid one-subject study in `dir`, with the given capture list body
+/// (lines `file,time`), and its capture files.
+pub fn small_study(dir: &Path, captures: &[(&str, &str)], switches: &str) {
+    write(dir, "protocol.yaml", PROTOCOL);
+    let mut list = String::from("file,time\n");
+    for (f, t) in captures {
+        list.push_str(&format!("{f},{t}\n"));
+        write_capture(dir, &format!("S1/{f}"));
+    }
+    write(dir, "S1/captures.csv", &list);
+    let mut log = String::from("time,spo2\n");
+    let start = chrono::DateTime::parse_from_rfc3339("2026-05-04T09:00:00+02:00").unwrap();
+    for s in -30..1500 {
+        let v = if s < 660 { 98 } else { 90 };
+        log.push_str(&format!("{},{}\n", (start + chrono::Duration::seconds(s)).to_rfc3339(), v));
+    }
+    write(dir, "S1/spo2.csv", &log);
+    write(dir, "S1/segments-OD.yaml", "eye: OD\nsegments:\n  - id: A1\n    kind: arteriole\n    points: [[1, 1], [6, 6]]\n");
+    write(
+        dir,
+        "study.yaml",
+        &format!(
+            "\
+study: small
+title: a small study
+protocol: protocol.yaml
+instrument:
+  pixel_size_um: 10
+  bands:
+    - {{name: b570, centre_nm: 570, fwhm_nm: 10}}
+    - {{name: b600, centre_nm: 600, fwhm_nm: 10}}
+subjects:
+  - id: S1
+    sessions:
+      - id: s1
+        start: 2026-05-04T09:00:00+02:00
+        eyes: [OD]
+{switches}        captures: S1/captures.csv
+        reference: {{file: S1/spo2.csv}}
+        segments: {{OD: S1/segments-OD.yaml}}
+methods:
+  - method: two-band
+    sensitive: b600
+    isosbestic: b570
+    calibration: {{mode: fixed, intercept: 125, slope: -110}}
+"
+        ),
+    );
+}

@@ -1,0 +1,125 @@
+//! The simulator writes studies that the rest of the program accepts, with
+//! the same bytes whatever the thread count.
+
+mod common;
+
+use std::collections::BTreeMap;
+use std::path::Path;
+
+use common::*;
+use sha2::{Digest, Sha256};
+
+fn hashes(root: &Path) -> BTreeMap<String, String> {
+    let mut out = BTreeMap::new();
+    let mut stack = vec![root.to_path_buf()];
+    while let Some(d) = stack.pop() {
+        for e in std::fs::read_dir(&d).unwrap() {
+            let p = e.unwrap().path();
+            if p.is_dir() {
+                stack.push(p);
+            } else {
+                let rel = p.strip_prefix(root).unwrap().to_string_lossy().into_owned();
+                out.insert(rel, format!("{:x}", Sha256::digest(std::fs::read(&p).unwrap())));
+            }
+        }
+    }
+    out
+}
+
+#[test]
+fn same_seed_same_bytes_whatever_the_jobs() {
+    let dir = tempfile::tempdir().unwrap();
+    let sc = repo().join("tests/fixtures/small-scenario.yaml");
+    let a = dir.path().join("a");
+    let b = dir.path().join("b");
+    let o1 = satstep(dir.path(), &["--jobs", "1", "simulate", sc.to_str().unwrap(), "--out", a.to_str().unwrap()]);
+    assert_eq!(o1.code, 0, "{}", o1.stderr);
+    let o2 = satstep(dir.path(), &["--jobs", "2", "simulate", sc.to_str().unwrap(), "--out", b.to_str().unwrap()]);
+    assert_eq!(o2.code, 0, "{}", o2.stderr);
+    let (ha, hb) = (hashes(&a), hashes(&b));
+    assert!(ha.len() > 20, "{ha:?}");
+    assert_eq!(ha, hb);
+    // The written study is valid as it stands and runs.
+    let chk = satstep(dir.path(), &["check", a.to_str().unwrap()]);
+    assert_eq!(chk.code, 0, "{}", chk.stderr);
+    let run = satstep(dir.path(), &["run", a.to_str().unwrap()]);
+    assert_eq!(run.code, 0, "{}", run.stderr);
+    // Every capture is a real multi-page 16-bit TIFF with one page per band.
+    let tif = a.join("subjects/V01/captures/c001.tif");
+    let mut dec = tiff::decoder::Decoder::new(std::fs::File::open(&tif).unwrap()).unwrap();
+    let mut pages = 1;
+    assert_eq!(dec.dimensions().unwrap(), (96, 96));
+    assert_eq!(dec.colortype().unwrap(), tiff::ColorType::Gray(16));
+    while dec.more_images() {
+        dec.next_image().unwrap();
+        pages += 1;
+    }
+    assert_eq!(pages, 4);
+}
+
+#[test]
+fn every_scenario_in_the_repository_simulates_into_a_valid_study() {
+    // The demo's scenario and the test scenarios.
+    let dir = tempfile::tempdir().unwrap();
+    for sc in [repo().join("demo-study/scenario.yaml"), repo().join("tests/fixtures/small-scenario.yaml")] {
+        let out = dir.path().join(sc.parent().unwrap().file_name().unwrap());
+        let o = satstep(dir.path(), &["simulate", sc.to_str().unwrap(), "--out", out.to_str().unwrap()]);
+        assert_eq!(o.code, 0, "{}", o.stderr);
+        let chk = satstep(dir.path(), &["check", out.to_str().unwrap()]);
+        assert_eq!(chk.code, 0, "{}: {}", sc.display(), chk.stderr);
+        assert!(chk.stderr.contains("(0 warnings)"), "{}", chk.stderr);
+        if sc.ends_with("demo-study/scenario.yaml") {
+            // The committed study file is exactly what the simulator writes.
+            let committed = std::fs::read_to_string(repo().join("demo-study/study.yaml")).unwrap();
+            let written = std::fs::read_to_string(out.join("study.yaml")).unwrap();
+            assert_eq!(committed, written, "regenerate demo-study/study.yaml with `satstep simulate`");
+        }
+    }
+}
+
+#[test]
+fn simulated_reference_and_truth_are_physiological() {
+    let dir = tempfile::tempdir().unwrap();
+    let sc = repo().join("demo-study/scenario.yaml");
+    let out = dir.path().join("demo");
+    assert_eq!(satstep(dir.path(), &["simulate", sc.to_str().unwrap(), "--out", out.to_str().unwrap()]).code, 0);
+    let run = satstep(dir.path(), &["run", out.to_str().unwrap()]);
+    assert_eq!(run.code, 0, "{}", run.stderr);
+    // Reference SpO2 of steady captures per epoch (median over subjects).
+    let csv = std::fs::read_to_string(out.join("results/epochs/captures.csv")).unwrap();
+    let mut by_epoch: BTreeMap<String, Vec<f64>> = BTreeMap::new();
+    for l in csv.lines().skip(1) {
+        let f: Vec<&str> = l.split(',').collect();
+        if f[9] == "steady" && !f[11].is_empty() {
+            by_epoch.entry(f[6].to_string()).or_default().push(f[11].parse().unwrap());
+        }
+    }
+    let median = |v: &mut Vec<f64>| {
+        v.sort_by(f64::total_cmp);
+        v[v.len() / 2]
+    };
+    let air = median(by_epoch.get_mut("air").unwrap());
+    let low15 = median(by_epoch.get_mut("low-15").unwrap());
+    let low12 = median(by_epoch.get_mut("low-12").unwrap());
+    // Healthy adults on air read 95–100; FiO2 0.15 at sea level lands in the
+    // high 80s to low 90s in published challenge studies (common practice).
+    assert!((95.0..=100.0).contains(&air), "{air}");
+    assert!((86.0..=93.0).contains(&low15), "{low15}");
+    assert!(low12 < low15 - 4.0, "{low12} vs {low15}");
+    // Truth: arterioles 92–98 and venules 52–68 on air (cohort means).
+    let truth = std::fs::read_to_string(out.join("truth/epoch_means.csv")).unwrap();
+    let mean = |epoch: &str, kind: &str| {
+        let v: Vec<f64> = truth
+            .lines()
+            .skip(1)
+            .map(|l| l.split(',').collect::<Vec<_>>())
+            .filter(|f| f[1] == epoch && f[2] == kind)
+            .map(|f| f[3].parse::<f64>().unwrap())
+            .collect();
+        v.iter().sum::<f64>() / v.len() as f64
+    };
+    assert!((92.0..=98.0).contains(&mean("air", "arteriole")), "{}", mean("air", "arteriole"));
+    assert!((52.0..=68.0).contains(&mean("air", "venule")), "{}", mean("air", "venule"));
+    let drop = mean("air", "arteriole") - mean("low-15", "arteriole");
+    assert!((5.0..=10.0).contains(&drop), "FiO2 0.15 lowers arterioles by about 6–9 points, got {drop}");
+}
