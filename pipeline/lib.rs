@@ -12,6 +12,7 @@
 
 pub mod cli;
 pub mod config;
+pub mod fit;
 pub mod oximetry;
 pub mod physiology;
 pub mod run;

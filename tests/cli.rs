@@ -234,3 +234,24 @@ fn usage_errors_exit_1_and_help_exits_0() {
     assert_eq!(satstep(dir.path(), &["--help"]).code, 0);
     assert_eq!(satstep(dir.path(), &["--jobs", "0", "check", "."]).code, 1);
 }
+
+#[test]
+fn sensitivity_writes_its_table_and_figure() {
+    let dir = tempfile::tempdir().unwrap();
+    let study = repo().join("demo-study/study.yaml");
+    let out = satstep(dir.path(), &["sensitivity", study.to_str().unwrap(), "--out", "sens"]);
+    assert_eq!(out.code, 0, "{}", out.stderr);
+    assert!(out.stdout.lines().nth(1).unwrap().trim_start().starts_with("veil     b506"));
+    let csv = std::fs::read_to_string(dir.path().join("sens/sensitivity.csv")).unwrap();
+    let lines: Vec<&str> = csv.lines().collect();
+    assert_eq!(lines[0], "veil,band,centre_nm,so2_error_points");
+    assert_eq!(lines.len(), 1 + 10 * 9, "ten veils × (eight bands + all bands)");
+    let svg = std::fs::read_to_string(dir.path().join("sens/sensitivity.svg")).unwrap();
+    assert!(svg.starts_with("<svg") && svg.contains("all bands"));
+    assert!(std::fs::metadata(dir.path().join("sens/sensitivity.png")).unwrap().len() > 10_000);
+    // An instrument with too few bands is refused with a reason.
+    write(dir.path(), "two.yaml", "name: two\npixel_size_um: 10\nbands:\n  - {name: a, centre_nm: 570, fwhm_nm: 10}\n  - {name: b, centre_nm: 600, fwhm_nm: 10}\n");
+    let out = satstep(dir.path(), &["sensitivity", "two.yaml"]);
+    assert_eq!(out.code, 1);
+    assert!(out.stderr.contains("the instrument has 2 bands; the multiband model needs at least 4"), "{}", out.stderr);
+}

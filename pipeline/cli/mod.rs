@@ -64,6 +64,26 @@ pub enum Command {
         /// The study file, or a folder holding `study.yaml`.
         study: PathBuf,
     },
+    /// SO2 error from a 1 % transmission error per band, for veils 0–0.9.
+    Sensitivity {
+        /// A study file (its `instrument:` is used) or an instrument file.
+        file: PathBuf,
+        /// Operating point: SO2 in percent.
+        #[arg(long, default_value_t = 95.0)]
+        so2: f64,
+        /// Operating point: vessel diameter in µm.
+        #[arg(long, default_value_t = 120.0)]
+        diameter: f64,
+        /// Operating point: hemoglobin in g/L.
+        #[arg(long, default_value_t = 150.0)]
+        hb: f64,
+        /// Operating point: fraction of light crossing the vessel twice.
+        #[arg(long, default_value_t = 0.3)]
+        double_pass: f64,
+        /// Folder for `sensitivity.csv` and the figure.
+        #[arg(long, value_name = "DIR", default_value = "sensitivity")]
+        out: PathBuf,
+    },
     /// Write a synthetic study with known truth from a scenario file.
     Simulate {
         /// The scenario file.
@@ -119,6 +139,10 @@ pub fn main_with_args(args: impl IntoIterator<Item = std::ffi::OsString>) -> Exi
         Command::Protocol { action: ProtocolAction::Show { file } } => crate::run::show_protocol(&file, &printer),
         Command::Run { study } => crate::run::run(&study, &printer),
         Command::Simulate { scenario, out } => crate::run::simulate(&scenario, &out, &printer),
+        Command::Sensitivity { file, so2, diameter, hb, double_pass, out } => {
+            let op = crate::oximetry::sensitivity::OperatingPoint { so2: so2 / 100.0, diameter_um: diameter, hb_g_per_l: hb, double_pass };
+            crate::run::sensitivity::sensitivity(&file, &op, &out, &printer)
+        }
     };
     match result {
         Ok(exit) => exit,

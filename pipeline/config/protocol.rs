@@ -148,21 +148,8 @@ const REFERENCE_KEYS: &[&str] = &["probe_site", "lag", "window", "stability_limi
 /// Reads and validates a protocol file. All findings are returned together.
 pub fn load_protocol(path: &Path) -> Result<Protocol, Findings> {
     let mut findings = Findings::new();
-    let text = match std::fs::read_to_string(path) {
-        Ok(t) => t,
-        Err(e) => {
-            findings.error(path, None, format!("cannot read the protocol file: {e}")).hint("check the path");
-            return Err(findings);
-        }
-    };
-    let root = match super::yaml::parse(path, &text) {
-        Ok(n) => n,
-        Err(errs) => {
-            for e in errs {
-                findings.error(&e.file, e.mark, e.message).hint = e.hint;
-            }
-            return Err(findings);
-        }
+    let Some(root) = super::read::load_tree(path, "protocol file", "check the path", &mut findings) else {
+        return Err(findings);
     };
     let p = {
         let mut r = Reader::new(path, &mut findings);

@@ -11,6 +11,27 @@ use super::duration::parse_seconds;
 use super::yaml::{Node, Value};
 use crate::timeline::time::parse_time;
 
+/// Reads and parses a YAML file; a missing file or a syntax error becomes
+/// findings (`cannot read the {what}: …` with `hint`).
+pub fn load_tree(path: &Path, what: &str, hint: &str, findings: &mut Findings) -> Option<Node> {
+    let text = match std::fs::read_to_string(path) {
+        Ok(t) => t,
+        Err(e) => {
+            findings.error(path, None, format!("cannot read the {what}: {e}")).hint(hint);
+            return None;
+        }
+    };
+    match super::yaml::parse(path, &text) {
+        Ok(n) => Some(n),
+        Err(errs) => {
+            for e in errs {
+                findings.error(&e.file, e.mark, e.message).hint = e.hint;
+            }
+            None
+        }
+    }
+}
+
 /// A mapping whose keys have been checked against the allowed names.
 pub struct MapView<'n> {
     pub node: &'n Node,

@@ -60,22 +60,7 @@ const SEGMENT_KEYS: &[&str] = &["id", "kind", "points", "notes"];
 
 /// Reads a segment file for `eye`; findings go to `findings`.
 pub fn load_segments(path: &Path, eye: Eye, findings: &mut Findings) -> Option<Vec<Segment>> {
-    let text = match std::fs::read_to_string(path) {
-        Ok(t) => t,
-        Err(e) => {
-            findings.error(path, None, format!("cannot read the segment file: {e}"));
-            return None;
-        }
-    };
-    let root = match super::yaml::parse(path, &text) {
-        Ok(n) => n,
-        Err(errs) => {
-            for e in errs {
-                findings.error(&e.file, e.mark, e.message).hint = e.hint;
-            }
-            return None;
-        }
-    };
+    let root = super::read::load_tree(path, "segment file", "check the path in the study file", findings)?;
     let before = findings.error_count();
     let mut r = Reader::new(path, findings);
     let m = r.map(&root, "a segment file", FILE_KEYS)?;

@@ -184,23 +184,8 @@ const EXCLUDED_CAPTURE_KEYS: &[&str] = &["file", "reason"];
 /// warnings, come back together; the study is `Some` only without errors.
 pub fn load_study(path: &Path) -> (Option<Study>, Findings) {
     let mut findings = Findings::new();
-    let text = match std::fs::read_to_string(path) {
-        Ok(t) => t,
-        Err(e) => {
-            findings
-                .error(path, None, format!("cannot read the study file: {e}"))
-                .hint("give the study file, or a folder that holds `study.yaml`");
-            return (None, findings);
-        }
-    };
-    let root_node = match super::yaml::parse(path, &text) {
-        Ok(n) => n,
-        Err(errs) => {
-            for e in errs {
-                findings.error(&e.file, e.mark, e.message).hint = e.hint;
-            }
-            return (None, findings);
-        }
+    let Some(root_node) = super::read::load_tree(path, "study file", "give the study file, or a folder that holds `study.yaml`", &mut findings) else {
+        return (None, findings);
     };
     let root_dir = path.parent().map(Path::to_path_buf).unwrap_or_default();
     let study = {
@@ -304,7 +289,7 @@ fn positive(r: &mut Reader, n: &Node, what: &str) -> Option<f64> {
     Some(v)
 }
 
-fn read_instrument(r: &mut Reader, node: &Node, root: &Path) -> Option<Instrument> {
+pub(crate) fn read_instrument(r: &mut Reader, node: &Node, root: &Path) -> Option<Instrument> {
     let m = r.map(node, "`instrument`", INSTRUMENT_KEYS)?;
     let name = m.get("name").and_then(|n| r.text(n, "`name`")).unwrap_or_else(|| "unnamed".into());
     let pixel = r.required(&m, "pixel_size_um", "`instrument`").and_then(|n| positive(r, n, "`pixel_size_um`"));

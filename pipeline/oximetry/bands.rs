@@ -1,11 +1,11 @@
 //! Spectral band responses and band-integrated quantities. A band is never
 //! reduced to its centre wavelength: every band quantity is an average over
-//! the band's response on a 0.5 nm grid.
+//! the band's response on a 1 nm grid (the hemoglobin table has 2 nm steps).
 
 use crate::config::study::BandResponse;
 
 /// Grid step for band integration, nm.
-pub const GRID_NM: f64 = 0.5;
+pub const GRID_NM: f64 = 1.0;
 
 /// A band sampled on the integration grid: (wavelength nm, weight), weights summing to 1.
 #[derive(Debug, Clone, PartialEq)]
@@ -14,11 +14,12 @@ pub struct SampledBand {
 }
 
 impl SampledBand {
-    /// Gaussian response from centre and full width at half maximum, cut at ±3 FWHM
-    /// and at the 250–1000 nm range of the hemoglobin table.
+    /// Gaussian response from centre and full width at half maximum, cut at
+    /// ±2.5 FWHM (where the response is below 1e-7 of its peak) and at the
+    /// 250–1000 nm range of the hemoglobin table. Grid points are whole nm.
     pub fn gaussian(centre_nm: f64, fwhm_nm: f64) -> Self {
         let sigma = fwhm_nm / (2.0 * (2.0 * std::f64::consts::LN_2).sqrt());
-        let (lo, hi) = ((centre_nm - 3.0 * fwhm_nm).max(250.0), (centre_nm + 3.0 * fwhm_nm).min(1000.0));
+        let (lo, hi) = ((centre_nm - 2.5 * fwhm_nm).floor().max(250.0), (centre_nm + 2.5 * fwhm_nm).ceil().min(1000.0));
         let n = ((hi - lo) / GRID_NM).floor() as usize;
         let raw: Vec<(f64, f64)> = (0..=n)
             .map(|i| {

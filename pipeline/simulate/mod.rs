@@ -64,21 +64,8 @@ const BAND_KEYS: &[&str] = &["name", "centre_nm", "fwhm_nm"];
 /// Reads and validates a scenario file.
 pub fn load_scenario(path: &Path) -> Result<Scenario, Findings> {
     let mut findings = Findings::new();
-    let text = match std::fs::read_to_string(path) {
-        Ok(t) => t,
-        Err(e) => {
-            findings.error(path, None, format!("cannot read the scenario file: {e}"));
-            return Err(findings);
-        }
-    };
-    let root = match crate::config::yaml::parse(path, &text) {
-        Ok(n) => n,
-        Err(errs) => {
-            for e in errs {
-                findings.error(&e.file, e.mark, e.message).hint = e.hint;
-            }
-            return Err(findings);
-        }
+    let Some(root) = crate::config::read::load_tree(path, "scenario file", "check the path", &mut findings) else {
+        return Err(findings);
     };
     let dir = path.parent().map(Path::to_path_buf).unwrap_or_default();
     let s = {
@@ -260,7 +247,7 @@ fn layout(sc: &Scenario, rng: &mut impl Rng) -> Vec<(Segment, f64, f64)> {
         let (mid, dir) = arc(kind, id.clone(), disc, a, bend, 0.12 * scale, 0.8 * scale, d, rng);
         if k == 1 || k == 4 {
             let side = if a < 0.0 { -0.55 } else { 0.55 };
-            arc(kind, format!("{id}b"), mid, dir + side, 0.0, 0.03 * scale, 0.38 * scale, rng.random_range(60.0..90.0), rng);
+            arc(kind, format!("{id}b"), mid, dir + side, 0.0, 0.03 * scale, 0.38 * scale, rng.random_range(70.0..95.0), rng);
         }
     }
     out
@@ -303,7 +290,7 @@ pub fn simulate(sc: &Scenario, out: &Path) -> Result<PathBuf> {
                     times.push((start + span * (j as f64 + 0.5) / sc.settling_captures as f64 * 0.8 + 5.0, false));
                 }
             }
-            let span = end - steady_from - 20.0;
+            let span = (end - steady_from - 20.0).max(0.0);
             for j in 0..sc.captures_per_epoch {
                 let t = steady_from + 10.0 + span * (j as f64 + rng.random_range(0.2..0.8)) / sc.captures_per_epoch as f64;
                 times.push((t.round(), true));
@@ -519,7 +506,7 @@ fn write_truth(
 
     let mut r = String::new();
     writeln!(r, "# Rendering parameters of the simulated study `{}` (seed {}).", sc.id, sc.seed)?;
-    writeln!(r, "model: multi-path vessel transmission F_bs + F_1 t + F_2 t^2 with veil, band-integrated on a 0.5 nm grid")?;
+    writeln!(r, "model: multi-path vessel transmission F_bs + F_1 t + F_2 t^2 with veil, band-integrated on a 1 nm grid")?;
     writeln!(r, "backscatter_fraction: 0.04\ndouble_pass_fraction: 0.30 + 0.12 sin(9 f + phase) along each segment\nwell_electrons: 20000\nread_noise_electrons: 6")?;
     writeln!(r, "band_offsets_px:")?;
     for ((name, _, _), (dx, dy)) in sc.bands.iter().zip(band_offsets) {

@@ -6,7 +6,7 @@
 //! `T = F_bs + F_1·t + F_2·t²`, `t = exp(−mu_a·L)` with `L` the chord through
 //! the cylindrical vessel (F_bs + F_1 + F_2 = 1, so `T = 1` at the edge),
 //! then the veil `(1 − k)·T + k`. The band average is weighted by the
-//! band response and the background reflectance on a 0.5 nm grid. Photon
+//! band response and the background reflectance on a 1 nm grid. Photon
 //! (Poisson, normal approximation at these counts) and read noise at the
 //! sensor's well depth, eye motion (translation and rotation) between
 //! captures and a small fixed offset per band.
@@ -16,7 +16,7 @@ use rand_distr::{Distribution, Normal};
 
 use crate::config::segments::Segment;
 use crate::oximetry::bands::SampledBand;
-use crate::oximetry::hemoglobin::absorption_per_cm;
+use crate::oximetry::model::VesselModel;
 
 /// Rigid motion of a capture relative to the eye's reference capture:
 /// rotation by `angle_deg` about the image centre, then translation.
@@ -69,27 +69,19 @@ pub fn background_reflectance(nm: f64, pigmentation: f64) -> f64 {
     base * (-(0.25 * pigmentation) * (550.0 / nm).powi(4)).exp()
 }
 
-/// Band-averaged exp(−n·mu_a·L) for n = 1, 2 on a chord grid of 1 µm.
+/// Band-averaged ⟨t⟩ and ⟨t²⟩ on a chord grid of 1 µm, from the engine's
+/// model family.
 pub struct ChordTable {
     pub t1: Vec<f64>,
     pub t2: Vec<f64>,
 }
 
 impl ChordTable {
-    pub fn new(band: &SampledBand, so2: f64, hb: f64, pig: f64, max_um: usize) -> Self {
-        let mu: Vec<(f64, f64, f64)> = band
-            .samples
-            .iter()
-            .map(|(l, w)| (absorption_per_cm(*l, so2, hb).unwrap_or(0.0) * 1e-4, *w * background_reflectance(*l, pig), *l))
-            .collect();
-        let den: f64 = mu.iter().map(|m| m.1).sum();
-        let mut t1 = Vec::with_capacity(max_um + 2);
-        let mut t2 = Vec::with_capacity(max_um + 2);
-        for i in 0..=max_um + 1 {
-            let l = i as f64;
-            t1.push(mu.iter().map(|(m, w, _)| w * (-m * l).exp()).sum::<f64>() / den);
-            t2.push(mu.iter().map(|(m, w, _)| w * (-2.0 * m * l).exp()).sum::<f64>() / den);
-        }
+    pub fn new(model: &VesselModel, band: usize, so2: f64, hb: f64, max_um: usize) -> Self {
+        let (t1, t2) = (0..=max_um + 1).map(|i| {
+            let ((e1, _, _), (e2, _, _)) = model.path_terms(band, so2, hb, i as f64);
+            (e1, e2)
+        }).unzip();
         ChordTable { t1, t2 }
     }
 
@@ -125,10 +117,11 @@ pub fn render(scene: &Scene, vessels: &[VesselState], motion: Motion, exposure: 
     let normal = Normal::new(0.0, 1.0).expect("unit normal");
     let max_d = 220usize;
     let mut out = Vec::with_capacity(scene.bands.len());
+    // The fundus behind the vessel weights each band's spectrum.
+    let model = VesselModel::new(scene.bands, |l| background_reflectance(l, scene.pigmentation), scene.backscatter);
     for (b, band) in scene.bands.iter().enumerate() {
         let refl = band.average(|l| background_reflectance(l, scene.pigmentation));
-        let tables: Vec<ChordTable> =
-            vessels.iter().map(|v| ChordTable::new(band, v.so2, scene.hb_g_per_l, scene.pigmentation, max_d)).collect();
+        let tables: Vec<ChordTable> = vessels.iter().map(|v| ChordTable::new(&model, b, v.so2, scene.hb_g_per_l, max_d)).collect();
         // Vessel polylines in this capture and band.
         let (ox, oy) = scene.band_offsets[b];
         let moved: Vec<(Vec<(f64, f64)>, Vec<f64>)> = vessels

@@ -1,0 +1,160 @@
+//! `two-band`: the optical density ratio method.
+//!
+//! `OD = log10(1/T)` in a band where oxy- and deoxyhemoglobin absorb
+//! differently (the sensitive band, 600–610 nm) and in one where they absorb
+//! equally (isosbestic, near 570 or 586 nm); `ODR = OD_sensitive /
+//! OD_isosbestic` is close to linear in SO2, `SO2 = a + b·ODR` with `b < 0`
+//! (Beach et al., J Appl Physiol 86:748–758, 1999; Hardarson et al., IOVS
+//! 47:5011–5016, 2006; both cited from memory). Constants belong to one instrument: they are set by
+//! calibration, in one of three ways:
+//!
+//! - fixed constants from the study file;
+//! - two reference points from a named epoch: the cohort's mean arteriolar
+//!   ODR at the cohort's mean reference SpO2 and the mean venular ODR at a
+//!   stated venular value;
+//! - regression of the reference SpO2 on arteriolar ODR across calibration
+//!   subjects, leaving each subject out of its own calibration.
+//!
+//! An optional diameter correction removes the linear dependence of ODR on
+//! vessel diameter, with the slope estimated within captures (pooled
+//! within-capture regression), before calibration.
+
+/// Optical density ratio from the two band transmissions; `None` when a
+/// transmission is not in (0, 1) and so has no positive optical density.
+pub fn odr(t_sensitive: f64, t_isosbestic: f64) -> Option<f64> {
+    if !(t_sensitive > 0.0 && t_sensitive < 1.0 && t_isosbestic > 0.0 && t_isosbestic < 1.0) {
+        return None;
+    }
+    Some(t_sensitive.log10() / t_isosbestic.log10())
+}
+
+/// Segment ODR: ratio of the mean optical densities along the segment
+/// (more stable than the mean of per-position ratios when OD_isosbestic is small).
+pub fn segment_odr(t_sensitive: &[f64], t_isosbestic: &[f64]) -> Option<f64> {
+    let (mut s, mut i, mut n) = (0.0, 0.0, 0);
+    for (a, b) in t_sensitive.iter().zip(t_isosbestic) {
+        if *a > 0.0 && *b > 0.0 {
+            s -= a.log10();
+            i -= b.log10();
+            n += 1;
+        }
+    }
+    (n > 0 && i > 0.0).then(|| s / i)
+}
+
+/// `SO2 (%) = intercept + slope · ODR`.
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+pub struct Linear {
+    pub intercept: f64,
+    pub slope: f64,
+}
+
+impl Linear {
+    pub fn apply(&self, odr: f64) -> f64 {
+        self.intercept + self.slope * odr
+    }
+}
+
+/// Two-point calibration: arterioles (`odr_a`) at `spo2_a`, venules (`odr_v`) at `so2_v`.
+pub fn two_point(odr_a: f64, spo2_a: f64, odr_v: f64, so2_v: f64) -> Option<Linear> {
+    let d = odr_a - odr_v;
+    if d.abs() < 1e-12 {
+        return None;
+    }
+    let slope = (spo2_a - so2_v) / d;
+    Some(Linear { intercept: spo2_a - slope * odr_a, slope })
+}
+
+/// Ordinary least squares of `y` on `x`.
+pub fn ols(x: &[f64], y: &[f64]) -> Option<Linear> {
+    let n = x.len() as f64;
+    if x.len() < 2 || x.len() != y.len() {
+        return None;
+    }
+    let (mx, my) = (x.iter().sum::<f64>() / n, y.iter().sum::<f64>() / n);
+    let sxx: f64 = x.iter().map(|v| (v - mx).powi(2)).sum();
+    if sxx <= 0.0 {
+        return None;
+    }
+    let sxy: f64 = x.iter().zip(y).map(|(a, b)| (a - mx) * (b - my)).sum();
+    let slope = sxy / sxx;
+    Some(Linear { intercept: my - slope * mx, slope })
+}
+
+/// Leave-one-subject-out regression calibration: for each subject, the
+/// line fitted to all *other* subjects' (ODR, SpO2) pairs.
+pub fn leave_one_subject_out<'a>(pairs: &[(&'a str, f64, f64)]) -> Vec<(&'a str, Option<Linear>)> {
+    let mut subjects: Vec<&str> = pairs.iter().map(|p| p.0).collect();
+    subjects.sort();
+    subjects.dedup();
+    subjects
+        .into_iter()
+        .map(|s| {
+            let (x, y): (Vec<f64>, Vec<f64>) = pairs.iter().filter(|p| p.0 != s).map(|p| (p.1, p.2)).unzip();
+            (s, ols(&x, &y))
+        })
+        .collect()
+}
+
+/// Pooled within-group slope of ODR on diameter: each group (a capture and
+/// vessel kind) is centred on its own means, so the slope reflects diameter
+/// alone and not differences in saturation between groups.
+pub fn within_group_slope(groups: &[Vec<(f64, f64)>]) -> Option<f64> {
+    let (mut sxx, mut sxy) = (0.0, 0.0);
+    for g in groups {
+        if g.len() < 2 {
+            continue;
+        }
+        let n = g.len() as f64;
+        let (mx, my) = (g.iter().map(|p| p.0).sum::<f64>() / n, g.iter().map(|p| p.1).sum::<f64>() / n);
+        for (d, o) in g {
+            sxx += (d - mx).powi(2);
+            sxy += (d - mx) * (o - my);
+        }
+    }
+    (sxx > 0.0).then(|| sxy / sxx)
+}
+
+/// ODR corrected to the reference diameter.
+pub fn diameter_corrected(odr: f64, diameter_um: f64, slope: f64, reference_um: f64) -> f64 {
+    odr - slope * (diameter_um - reference_um)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn odr_of_known_transmissions() {
+        // OD_s = 0.1, OD_i = 0.2 → ODR 0.5.
+        let r = odr(10f64.powf(-0.1), 10f64.powf(-0.2)).unwrap();
+        assert!((r - 0.5).abs() < 1e-12);
+        assert!(odr(1.2, 0.5).is_none() && odr(0.5, 0.0).is_none());
+    }
+
+    #[test]
+    fn two_point_passes_through_both_points() {
+        let c = two_point(0.6, 97.0, 0.9, 60.0).unwrap();
+        assert!((c.apply(0.6) - 97.0).abs() < 1e-12 && (c.apply(0.9) - 60.0).abs() < 1e-12);
+        assert!(c.slope < 0.0);
+    }
+
+    #[test]
+    fn leave_one_out_never_uses_the_subject_itself() {
+        // Subject C is an outlier; its own calibration must not see it.
+        let pairs = [("A", 0.5, 98.0), ("A", 0.7, 80.0), ("B", 0.55, 93.5), ("B", 0.65, 84.5), ("C", 0.6, 10.0)];
+        let cal = leave_one_subject_out(&pairs);
+        let c = cal.iter().find(|(s, _)| *s == "C").unwrap().1.unwrap();
+        assert!((c.slope + 90.0).abs() < 1e-9 && (c.intercept - 143.0).abs() < 1e-9, "{c:?}");
+        let a = cal.iter().find(|(s, _)| *s == "A").unwrap().1.unwrap();
+        assert!(a.slope != c.slope);
+    }
+
+    #[test]
+    fn within_group_slope_ignores_differences_between_groups() {
+        // Two groups at different levels, both with slope 0.002 per µm.
+        let g1 = vec![(80.0, 0.60), (120.0, 0.68)];
+        let g2 = vec![(90.0, 0.90), (130.0, 0.98)];
+        assert!((within_group_slope(&[g1, g2]).unwrap() - 0.002).abs() < 1e-12);
+    }
+}

@@ -1,0 +1,153 @@
+//! `satstep sensitivity`: how a 1 % transmission error in each band, and
+//! independent 1 % errors in all bands, move the multiband SO2 estimate,
+//! for veils from 0 to 0.9. Writes `sensitivity.csv` and a figure
+//! (`sensitivity.svg`, `sensitivity.png`); prints the table.
+
+use std::path::Path;
+
+use anyhow::{Context, Result};
+use plotters::prelude::*;
+
+use crate::cli::printer::Printer;
+use crate::cli::Exit;
+use crate::config::diag::Findings;
+use crate::config::read::Reader;
+use crate::config::study::Instrument;
+use crate::oximetry::bands::SampledBand;
+use crate::oximetry::model::VesselModel;
+use crate::oximetry::sensitivity::{so2_errors, OperatingPoint};
+use crate::tables::Table;
+
+/// Colour-blind-safe palette (Okabe & Ito, 2008), in a fixed order.
+pub const PALETTE: [RGBColor; 8] = [
+    RGBColor(0, 114, 178),
+    RGBColor(230, 159, 0),
+    RGBColor(0, 158, 115),
+    RGBColor(204, 121, 167),
+    RGBColor(86, 180, 233),
+    RGBColor(213, 94, 0),
+    RGBColor(240, 228, 66),
+    RGBColor(120, 120, 120),
+];
+
+/// Reads the instrument from a study file (only its `instrument:` is
+/// needed, so this works before any data exist) or from an instrument file
+/// (`name`, `pixel_size_um`, `bands` at the top).
+pub fn load_instrument(path: &Path) -> Result<Instrument, Findings> {
+    let mut findings = Findings::new();
+    let Some(root) = crate::config::read::load_tree(path, "file", "give a study file or an instrument file", &mut findings) else {
+        return Err(findings);
+    };
+    let dir = path.parent().map(Path::to_path_buf).unwrap_or_default();
+    let node = root.get("instrument").cloned().unwrap_or(root);
+    let inst = {
+        let mut r = Reader::new(path, &mut findings);
+        crate::config::study::read_instrument(&mut r, &node, &dir)
+    };
+    match inst {
+        Some(i) if !findings.has_errors() => Ok(i),
+        _ => Err(findings),
+    }
+}
+
+pub fn sensitivity(file: &Path, op: &OperatingPoint, out: &Path, printer: &Printer) -> Result<Exit> {
+    let inst = match load_instrument(file) {
+        Ok(i) => i,
+        Err(f) => {
+            printer.findings(&f);
+            printer.error(format!("`{}` has {} errors", file.display(), f.error_count()));
+            return Ok(Exit::Problem);
+        }
+    };
+    if inst.bands.len() < 4 {
+        printer.error(format!("the instrument has {} bands; the multiband model needs at least 4", inst.bands.len()));
+        return Ok(Exit::Problem);
+    }
+    let bands: Vec<SampledBand> = inst.bands.iter().map(|b| SampledBand::from_response(&b.response)).collect();
+    let model = VesselModel::new(&bands, |_| 1.0, 0.04);
+    let ks: Vec<f64> = (0..=9).map(|i| i as f64 / 10.0).collect();
+    let mut rows = Vec::new();
+    for k in &ks {
+        let Some((per, all)) = so2_errors(&model, op, *k, 0.01) else {
+            printer.error(format!("the model cannot be linearised at veil {k}: the bands do not separate the unknowns"));
+            return Ok(Exit::Problem);
+        };
+        rows.push((*k, per, all));
+    }
+    let names: Vec<String> = inst.bands.iter().map(|b| b.name.clone()).collect();
+    let (mut tk, mut tb, mut tc, mut te) = (vec![], vec![], vec![], vec![]);
+    for (k, per, all) in &rows {
+        for (b, e) in per.iter().enumerate() {
+            tk.push(*k);
+            tb.push(names[b].clone());
+            tc.push(Some((bands[b].centroid_nm() * 100.0).round() / 100.0));
+            te.push(*e);
+        }
+        tk.push(*k);
+        tb.push("all bands".to_string());
+        tc.push(None);
+        te.push(*all);
+    }
+    std::fs::create_dir_all(out).with_context(|| format!("cannot create `{}`", out.display()))?;
+    let mut t = Table::new();
+    t.real("veil", tk).text("band", &tb).opt_real("centre_nm", tc).real("so2_error_points", te);
+    t.write(out, "sensitivity")?;
+    draw(&out.join("sensitivity.svg"), &out.join("sensitivity.png"), &names, &rows, op)?;
+
+    let mut s = format!(
+        "SO2 error (points) for a 1 % transmission error, at SO2 {:.0} %, diameter {:.0} µm, hemoglobin {:.0} g/L, double-pass fraction {:.2}\n",
+        op.so2 * 100.0,
+        op.diameter_um,
+        op.hb_g_per_l,
+        op.double_pass
+    );
+    s.push_str(&format!("{:>5}", "veil"));
+    for n in &names {
+        s.push_str(&format!(" {n:>8}"));
+    }
+    s.push_str(&format!(" {:>9}\n", "all bands"));
+    for (k, per, all) in &rows {
+        s.push_str(&format!("{k:>5.1}"));
+        for e in per {
+            s.push_str(&format!(" {e:>8.2}"));
+        }
+        s.push_str(&format!(" {all:>9.2}\n"));
+    }
+    printer.data(s);
+    printer.info(format!("wrote `sensitivity.csv`, `.parquet`, `.svg` and `.png` under `{}`", out.display()));
+    Ok(Exit::Ok)
+}
+
+fn draw(svg: &Path, png: &Path, names: &[String], rows: &[(f64, Vec<f64>, f64)], op: &OperatingPoint) -> Result<()> {
+    let ymax = rows.iter().flat_map(|r| r.1.iter().copied().chain([r.2])).fold(0.0, f64::max) * 1.08;
+    let caption = format!("SO2 error per 1 % transmission error (SO2 {:.0} %, {:.0} µm)", op.so2 * 100.0, op.diameter_um);
+    macro_rules! plot {
+        ($backend:expr) => {{
+            let root = $backend.into_drawing_area();
+            root.fill(&WHITE)?;
+            let mut chart = ChartBuilder::on(&root)
+                .caption(&caption, ("sans-serif", 20))
+                .margin(12)
+                .x_label_area_size(40)
+                .y_label_area_size(56)
+                .build_cartesian_2d(0.0..0.9, (0.05f64..ymax.max(1.0)).log_scale())?;
+            chart.configure_mesh().x_desc("veil k (fraction of background intensity)").y_desc("SO2 error (points)").light_line_style(RGBColor(235, 235, 235)).draw()?;
+            for (b, name) in names.iter().enumerate() {
+                let c = PALETTE[b % PALETTE.len()];
+                chart
+                    .draw_series(LineSeries::new(rows.iter().map(|r| (r.0, r.1[b].max(0.05))), c.stroke_width(2)))?
+                    .label(name.as_str())
+                    .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], c.stroke_width(2)));
+            }
+            chart
+                .draw_series(LineSeries::new(rows.iter().map(|r| (r.0, r.2.max(0.05))), BLACK.stroke_width(3)))?
+                .label("all bands")
+                .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], BLACK.stroke_width(3)));
+            chart.configure_series_labels().position(SeriesLabelPosition::UpperLeft).background_style(WHITE.mix(0.85)).border_style(BLACK).draw()?;
+            root.present()?;
+        }};
+    }
+    plot!(SVGBackend::new(svg, (900, 560)));
+    plot!(BitMapBackend::new(png, (900, 560)));
+    Ok(())
+}
