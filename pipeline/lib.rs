@@ -17,5 +17,6 @@ pub mod oximetry;
 pub mod physiology;
 pub mod run;
 pub mod simulate;
+pub mod stats;
 pub mod tables;
 pub mod timeline;

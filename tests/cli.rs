@@ -255,3 +255,33 @@ fn sensitivity_writes_its_table_and_figure() {
     assert_eq!(out.code, 1);
     assert!(out.stderr.contains("the instrument has 2 bands; the multiband model needs at least 4"), "{}", out.stderr);
 }
+
+#[test]
+fn mixed_writes_the_four_tables_and_matches_the_reference() {
+    let dir = tempfile::tempdir().unwrap();
+    let data = repo().join("tests/fixtures/mixed-models/sim_nested_balanced.csv");
+    let out = satstep(
+        dir.path(),
+        &["mixed", "--data", data.to_str().unwrap(), "--response", "so2", "--fixed", "epoch", "--random", "subject", "--random", "subject:eye",
+          "--reference", "epoch=air", "--contrast", "hypoxia - recovery", "--contrast", "hypoxia - air", "--out", "fit"],
+    );
+    assert_eq!(out.code, 0, "{}", out.stderr);
+    assert!(out.stdout.contains("F test for `epoch`: F = 175.047"), "{}", out.stdout);
+    let read = |f: &str| std::fs::read_to_string(dir.path().join("fit").join(f)).unwrap();
+    let fe = read("fixed_effects.csv");
+    assert!(fe.starts_with("term,estimate,std_error,df,t,p,lower_95,upper_95\n"));
+    assert!(fe.lines().nth(2).unwrap().starts_with("epoch=hypoxia,-7.9983"), "{fe}");
+    let c = read("contrasts.csv");
+    assert!(c.lines().next().unwrap().ends_with(",p_holm"));
+    assert!(c.lines().nth(1).unwrap().starts_with("hypoxia - recovery,-6.978265"), "{c}");
+    let vc = read("variance_components.csv");
+    assert_eq!(vc.lines().next().unwrap(), "group,variance,sd");
+    assert!(vc.contains("subject:eye,2.654") && vc.contains("Residual,6.495"), "{vc}");
+    assert!(read("fit.csv").starts_with("n_obs,criterion,method,converged\n180,895.0418"), "{}", read("fit.csv"));
+    // Mistakes name what is wrong.
+    let bad = satstep(dir.path(), &["mixed", "--data", data.to_str().unwrap(), "--response", "so3", "--fixed", "epoch", "--random", "subject"]);
+    assert_eq!(bad.code, 1);
+    assert!(bad.stderr.contains("no column `so3` in the header") && bad.stderr.contains("did you mean `so2`?"), "{}", bad.stderr);
+    let bad = satstep(dir.path(), &["mixed", "--data", data.to_str().unwrap(), "--response", "so2", "--fixed", "epoch", "--random", "subject", "--contrast", "hypoxia - sea"]);
+    assert!(bad.stderr.contains("`sea` is not a level of any fixed factor"), "{}", bad.stderr);
+}

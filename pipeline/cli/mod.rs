@@ -84,6 +84,33 @@ pub enum Command {
         #[arg(long, value_name = "DIR", default_value = "sensitivity")]
         out: PathBuf,
     },
+    /// Fit a linear mixed model to an exported table (REML, Satterthwaite tests).
+    Mixed {
+        /// CSV table with a header line.
+        #[arg(long, value_name = "FILE.csv")]
+        data: PathBuf,
+        /// Response column.
+        #[arg(long, value_name = "COL")]
+        response: String,
+        /// Fixed-effect column (text columns are factors, numbers covariates); repeat for more.
+        #[arg(long, value_name = "COL")]
+        fixed: Vec<String>,
+        /// Random intercept per group: `subject`, nested `subject:eye`; random slopes `Subject@Days`.
+        #[arg(long, value_name = "GROUP[:GROUP…][@SLOPE]", required = true)]
+        random: Vec<String>,
+        /// Reference level of a factor, `COL=LEVEL` (default: the first level in sorted order).
+        #[arg(long, value_name = "COL=LEVEL")]
+        reference: Vec<String>,
+        /// A contrast of factor levels, e.g. "hypoxia - recovery"; repeat for more (Holm-adjusted).
+        #[arg(long, value_name = "\"LEVEL_A - LEVEL_B\"")]
+        contrast: Vec<String>,
+        /// Maximum likelihood instead of REML.
+        #[arg(long)]
+        ml: bool,
+        /// Folder for fixed_effects.csv, contrasts.csv, variance_components.csv and fit.csv.
+        #[arg(long, value_name = "DIR")]
+        out: Option<PathBuf>,
+    },
     /// Write a synthetic study with known truth from a scenario file.
     Simulate {
         /// The scenario file.
@@ -139,6 +166,10 @@ pub fn main_with_args(args: impl IntoIterator<Item = std::ffi::OsString>) -> Exi
         Command::Protocol { action: ProtocolAction::Show { file } } => crate::run::show_protocol(&file, &printer),
         Command::Run { study } => crate::run::run(&study, &printer),
         Command::Simulate { scenario, out } => crate::run::simulate(&scenario, &out, &printer),
+        Command::Mixed { data, response, fixed, random, reference, contrast, ml, out } => {
+            let args = crate::run::mixed::MixedArgs { data, response, fixed, random, reference, contrasts: contrast, ml, out };
+            crate::run::mixed::mixed(&args, &printer)
+        }
         Command::Sensitivity { file, so2, diameter, hb, double_pass, out } => {
             let op = crate::oximetry::sensitivity::OperatingPoint { so2: so2 / 100.0, diameter_um: diameter, hb_g_per_l: hb, double_pass };
             crate::run::sensitivity::sensitivity(&file, &op, &out, &printer)

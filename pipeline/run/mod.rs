@@ -1,6 +1,7 @@
 //! The verbs behind the command line: `check`, `protocol show` and `run`.
 
 pub mod epochs;
+pub mod mixed;
 pub mod sensitivity;
 
 use std::path::Path;

@@ -1,0 +1,448 @@
+//! Linear mixed models fitted by REML or ML, with Satterthwaite degrees of
+//! freedom for any linear combination of the fixed effects.
+//!
+//! The formulation is that of Bates, Mächler, Bolker & Walker (2015),
+//! "Fitting linear mixed-effects models using lme4", J Stat Softw 67(1):
+//! `y = Xβ + Zb + ε`, `b = Λ_θ u`, `u ~ N(0, σ²I)`, `ε ~ N(0, σ²I)`. For a
+//! given θ the penalised least-squares problem is solved through the
+//! Cholesky factor `L L' = Λ'Z'ZΛ + I`, β and σ are profiled out, and the
+//! profiled deviance is
+//!
+//! ```text
+//! ML:   log|L|² + n·(1 + log(2π·r²/n))
+//! REML: log|L|² + log|R_X|² + (n − p)·(1 + log(2π·r²/(n − p)))
+//! ```
+//!
+//! with `r²` the penalised residual sum of squares and `R_X R_X' = X'X −
+//! R_ZX'R_ZX`. θ holds the lower-triangular relative covariance factor of
+//! each random-effects term; it is optimised with argmin's Nelder–Mead, with
+//! the diagonal of each factor kept non-negative (a variance on the boundary
+//! comes out as 0, not as an error).
+//!
+//! Satterthwaite's method follows lmerTest (Kuznetsova, Brockhoff &
+//! Christensen 2017, J Stat Softw 82(13)): with φ = (θ, σ), the asymptotic
+//! covariance of φ is `2·H⁻¹`, H the Hessian of the unprofiled deviance
+//! −2ℓ(φ); for a contrast `l`, `df = 2·(l'C l)² / (g' A g)`, C = vcov(β)(φ),
+//! `g = ∂(l'C l)/∂φ`. Derivatives are numerical (central differences with
+//! Richardson extrapolation), as in lmerTest.
+
+use argmin::core::{CostFunction, Executor, State};
+use argmin::solver::neldermead::NelderMead;
+use nalgebra::{DMatrix, DVector};
+
+/// One random-effects term: a grouping factor and the columns whose
+/// coefficients vary by group (an intercept, optionally slopes). The
+/// coefficients of one group are correlated, with a full covariance.
+#[derive(Debug, Clone)]
+pub struct RandomTerm {
+    pub name: String,
+    pub levels: Vec<String>,
+    /// Group of each observation (index into `levels`).
+    pub group: Vec<usize>,
+    /// Names of the varying columns (`(Intercept)` first when present).
+    pub column_names: Vec<String>,
+    /// Per column, the value for each observation.
+    pub columns: Vec<Vec<f64>>,
+}
+
+impl RandomTerm {
+    fn p(&self) -> usize {
+        self.columns.len()
+    }
+    fn q(&self) -> usize {
+        self.levels.len() * self.p()
+    }
+}
+
+#[derive(Debug, Clone)]
+pub struct LmmData {
+    pub y: Vec<f64>,
+    pub x: DMatrix<f64>,
+    pub x_names: Vec<String>,
+    pub terms: Vec<RandomTerm>,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Criterion {
+    Reml,
+    Ml,
+}
+
+/// Cross-products computed once per data set.
+struct Cross {
+    ztz: DMatrix<f64>,
+    ztx: DMatrix<f64>,
+    zty: DVector<f64>,
+    xtx: DMatrix<f64>,
+    xty: DVector<f64>,
+    yty: f64,
+    n: usize,
+    p: usize,
+    /// For each Z column: (term, position of its block start, size of the block).
+    block_of: Vec<(usize, usize, usize)>,
+}
+
+/// Everything computed at one θ.
+struct AtTheta {
+    logdet_l: f64,
+    logdet_rx: f64,
+    pwrss: f64,
+    beta: DVector<f64>,
+    /// (R_X R_X')⁻¹, so vcov(β) = σ²·this.
+    rx_inv: DMatrix<f64>,
+}
+
+pub struct Model {
+    data: LmmData,
+    cross: Cross,
+    pub criterion: Criterion,
+}
+
+#[derive(Debug, Clone)]
+pub struct Fit {
+    pub criterion: Criterion,
+    pub theta: Vec<f64>,
+    pub sigma: f64,
+    pub beta: Vec<f64>,
+    pub vcov: DMatrix<f64>,
+    /// −2 log-likelihood (REML or ML) at the optimum.
+    pub deviance: f64,
+    pub converged: bool,
+    pub evaluations: u64,
+    pub n_obs: usize,
+}
+
+/// A variance component as reported: per term, the covariance matrix of
+/// its coefficients; and the residual variance.
+#[derive(Debug, Clone)]
+pub struct Components {
+    pub terms: Vec<(String, Vec<String>, DMatrix<f64>)>,
+    pub residual: f64,
+}
+
+impl Model {
+    pub fn new(data: LmmData, criterion: Criterion) -> Self {
+        let n = data.y.len();
+        let p = data.x.ncols();
+        let q: usize = data.terms.iter().map(|t| t.q()).sum();
+        // Z as a list of nonzeros per observation.
+        let mut offsets = Vec::new();
+        let mut block_of = Vec::with_capacity(q);
+        let mut off = 0;
+        for (ti, t) in data.terms.iter().enumerate() {
+            offsets.push(off);
+            for l in 0..t.levels.len() {
+                for _ in 0..t.p() {
+                    block_of.push((ti, off + l * t.p(), t.p()));
+                }
+            }
+            off += t.q();
+        }
+        let mut ztz = DMatrix::zeros(q, q);
+        let mut ztx = DMatrix::zeros(q, p);
+        let mut zty = DVector::zeros(q);
+        let mut nz: Vec<(usize, f64)> = Vec::new();
+        for i in 0..n {
+            nz.clear();
+            for (ti, t) in data.terms.iter().enumerate() {
+                let base = offsets[ti] + t.group[i] * t.p();
+                for c in 0..t.p() {
+                    nz.push((base + c, t.columns[c][i]));
+                }
+            }
+            for &(a, va) in &nz {
+                for &(b, vb) in &nz {
+                    ztz[(a, b)] += va * vb;
+                }
+                for k in 0..p {
+                    ztx[(a, k)] += va * data.x[(i, k)];
+                }
+                zty[a] += va * data.y[i];
+            }
+        }
+        let y = DVector::from_column_slice(&data.y);
+        let cross = Cross {
+            xtx: data.x.transpose() * &data.x,
+            xty: data.x.transpose() * &y,
+            yty: y.norm_squared(),
+            ztz,
+            ztx,
+            zty,
+            n,
+            p,
+            block_of,
+        };
+        Model { data, cross, criterion }
+    }
+
+    /// Number of θ elements: a lower triangle per term.
+    pub fn n_theta(&self) -> usize {
+        self.data.terms.iter().map(|t| t.p() * (t.p() + 1) / 2).sum()
+    }
+
+    /// Positions in θ that are diagonal elements (kept ≥ 0).
+    fn diagonal_positions(&self) -> Vec<usize> {
+        let mut out = Vec::new();
+        let mut k = 0;
+        for t in &self.data.terms {
+            for c in 0..t.p() {
+                for r in c..t.p() {
+                    if r == c {
+                        out.push(k);
+                    }
+                    k += 1;
+                }
+            }
+        }
+        out
+    }
+
+    /// The lower-triangular factor of each term from θ (column-major lower triangle, as lme4).
+    fn factors(&self, theta: &[f64]) -> Vec<DMatrix<f64>> {
+        let mut k = 0;
+        self.data
+            .terms
+            .iter()
+            .map(|t| {
+                let mut m = DMatrix::zeros(t.p(), t.p());
+                for c in 0..t.p() {
+                    for r in c..t.p() {
+                        m[(r, c)] = theta[k];
+                        k += 1;
+                    }
+                }
+                m
+            })
+            .collect()
+    }
+
+    fn at(&self, theta: &[f64]) -> Option<AtTheta> {
+        let cr = &self.cross;
+        let q = cr.ztz.nrows();
+        let lam = self.factors(theta);
+        // Λ entry (row k, column j): nonzero only within a block.
+        let lam_entry = |k: usize, j: usize| -> f64 {
+            let (t, start, size) = cr.block_of[j];
+            if k < start || k >= start + size {
+                return 0.0;
+            }
+            lam[t][(k - start, j - start)]
+        };
+        // B = Z'Z Λ, then M = Λ' B + I, in O(q²·p).
+        let mut b: DMatrix<f64> = DMatrix::zeros(q, q);
+        for j in 0..q {
+            let (_, start, size) = cr.block_of[j];
+            for k in start..start + size {
+                let l = lam_entry(k, j);
+                if l != 0.0 {
+                    for i in 0..q {
+                        b[(i, j)] += cr.ztz[(i, k)] * l;
+                    }
+                }
+            }
+        }
+        let mut m: DMatrix<f64> = DMatrix::identity(q, q);
+        for i in 0..q {
+            let (_, start, size) = cr.block_of[i];
+            for k in start..start + size {
+                let l = lam_entry(k, i);
+                if l != 0.0 {
+                    for j in 0..q {
+                        m[(i, j)] += l * b[(k, j)];
+                    }
+                }
+            }
+        }
+        // Λ'Z'X and Λ'Z'y.
+        let mut lztx: DMatrix<f64> = DMatrix::zeros(q, cr.p);
+        let mut lzty: DVector<f64> = DVector::zeros(q);
+        for i in 0..q {
+            let (_, start, size) = cr.block_of[i];
+            for k in start..start + size {
+                let l = lam_entry(k, i);
+                if l != 0.0 {
+                    for c in 0..cr.p {
+                        lztx[(i, c)] += l * cr.ztx[(k, c)];
+                    }
+                    lzty[i] += l * cr.zty[k];
+                }
+            }
+        }
+        let chol = m.cholesky()?;
+        let l = chol.l();
+        let logdet_l = 2.0 * l.diagonal().iter().map(|d: &f64| d.ln()).sum::<f64>();
+        let rzx = l.solve_lower_triangular(&lztx)?;
+        let cu = l.solve_lower_triangular(&lzty)?;
+        let xtx_adj = &cr.xtx - rzx.transpose() * &rzx;
+        let rx = xtx_adj.clone().cholesky()?;
+        let logdet_rx = 2.0 * rx.l().diagonal().iter().map(|d: &f64| d.ln()).sum::<f64>();
+        let rhs = &cr.xty - rzx.transpose() * &cu;
+        let beta = rx.solve(&rhs);
+        let cbeta = rx.l().solve_lower_triangular(&rhs)?;
+        let pwrss = cr.yty - cu.norm_squared() - cbeta.norm_squared();
+        let rx_inv = rx.inverse();
+        Some(AtTheta { logdet_l, logdet_rx, pwrss: pwrss.max(0.0), beta, rx_inv })
+    }
+
+    /// The profiled deviance at θ.
+    pub fn profiled_deviance(&self, theta: &[f64]) -> f64 {
+        let Some(a) = self.at(theta) else { return f64::INFINITY };
+        let (n, p) = (self.cross.n as f64, self.cross.p as f64);
+        let two_pi = 2.0 * std::f64::consts::PI;
+        match self.criterion {
+            Criterion::Ml => a.logdet_l + n * (1.0 + (two_pi * a.pwrss / n).ln()),
+            Criterion::Reml => a.logdet_l + a.logdet_rx + (n - p) * (1.0 + (two_pi * a.pwrss / (n - p)).ln()),
+        }
+    }
+
+    /// −2ℓ at (θ, σ), not profiled over σ (used for Satterthwaite).
+    pub fn deviance_at(&self, theta: &[f64], sigma: f64) -> f64 {
+        let Some(a) = self.at(theta) else { return f64::INFINITY };
+        let (n, p) = (self.cross.n as f64, self.cross.p as f64);
+        let s2 = sigma * sigma;
+        let two_pi = 2.0 * std::f64::consts::PI;
+        match self.criterion {
+            Criterion::Ml => a.logdet_l + n * (two_pi * s2).ln() + a.pwrss / s2,
+            Criterion::Reml => a.logdet_l + a.logdet_rx + (n - p) * (two_pi * s2).ln() + a.pwrss / s2,
+        }
+    }
+
+    fn vcov_at(&self, theta: &[f64], sigma: f64) -> Option<DMatrix<f64>> {
+        self.at(theta).map(|a| a.rx_inv * (sigma * sigma))
+    }
+
+    /// Fits the model.
+    pub fn fit(&self) -> Option<Fit> {
+        let nt = self.n_theta();
+        let diag = self.diagonal_positions();
+        let start: Vec<f64> = (0..nt).map(|k| if diag.contains(&k) { 1.0 } else { 0.0 }).collect();
+        let count = std::sync::atomic::AtomicU64::new(0);
+        let cost = DevianceCost { model: self, diag: &diag, count: &count };
+        let mut simplex = vec![start.clone()];
+        for k in 0..nt {
+            let mut v = start.clone();
+            v[k] += if diag.contains(&k) { 0.5 } else { 0.25 };
+            simplex.push(v);
+        }
+        let mut best = start;
+        let mut converged = false;
+        // Nelder–Mead restarted from its own optimum until it stops moving,
+        // which guards against a premature collapse of the simplex.
+        for round in 0..4 {
+            let solver = NelderMead::new(simplex.clone()).with_sd_tolerance(1e-12).ok()?;
+            let res = Executor::new(cost.clone(), solver).configure(|s| s.max_iters(4000)).run().ok()?;
+            let x = res.state().get_best_param()?.clone();
+            let moved = x.iter().zip(&best).map(|(a, b)| (a - b).abs()).fold(0.0, f64::max);
+            best = x;
+            if round > 0 && moved < 1e-9 {
+                converged = true;
+                break;
+            }
+            simplex = vec![best.clone()];
+            for k in 0..nt {
+                let mut v = best.clone();
+                v[k] += 0.05 * best[k].abs().max(0.1);
+                simplex.push(v);
+            }
+        }
+        let theta: Vec<f64> = best.iter().enumerate().map(|(k, v)| if diag.contains(&k) { v.abs() } else { *v }).collect();
+        let a = self.at(&theta)?;
+        let (n, p) = (self.cross.n as f64, self.cross.p as f64);
+        let s2 = match self.criterion {
+            Criterion::Ml => a.pwrss / n,
+            Criterion::Reml => a.pwrss / (n - p),
+        };
+        Some(Fit {
+            criterion: self.criterion,
+            sigma: s2.sqrt(),
+            beta: a.beta.iter().copied().collect(),
+            vcov: a.rx_inv * s2,
+            deviance: self.profiled_deviance(&theta),
+            theta,
+            converged,
+            evaluations: count.load(std::sync::atomic::Ordering::Relaxed),
+            n_obs: self.cross.n,
+        })
+    }
+
+    pub fn fixed_names(&self) -> &[String] {
+        &self.data.x_names
+    }
+
+    pub fn components(&self, fit: &Fit) -> Components {
+        let s2 = fit.sigma * fit.sigma;
+        let terms = self
+            .factors(&fit.theta)
+            .into_iter()
+            .zip(&self.data.terms)
+            .map(|(l, t)| (t.name.clone(), t.column_names.clone(), &l * l.transpose() * s2))
+            .collect();
+        Components { terms, residual: s2 }
+    }
+
+    /// Satterthwaite degrees of freedom for `l'β`.
+    pub fn satterthwaite(&self, fit: &Fit, l: &[f64]) -> f64 {
+        let mut phi = fit.theta.clone();
+        phi.push(fit.sigma);
+        let np = phi.len();
+        let dev = |v: &[f64]| self.deviance_at(&v[..np - 1], v[np - 1]);
+        let h = hessian(&dev, &phi);
+        let lv = DVector::from_column_slice(l);
+        let var = |v: &[f64]| self.vcov_at(&v[..np - 1], v[np - 1]).map(|c| (lv.transpose() * c * &lv)[0]).unwrap_or(f64::NAN);
+        let g = gradient(&var, &phi);
+        let Some(hinv) = h.clone().try_inverse() else { return f64::NAN };
+        let a = hinv * 2.0;
+        let gv = DVector::from_vec(g);
+        let denom = (gv.transpose() * a * &gv)[0];
+        let v0 = var(&phi);
+        2.0 * v0 * v0 / denom
+    }
+}
+
+#[derive(Clone)]
+struct DevianceCost<'a> {
+    model: &'a Model,
+    diag: &'a [usize],
+    count: &'a std::sync::atomic::AtomicU64,
+}
+
+impl CostFunction for DevianceCost<'_> {
+    type Param = Vec<f64>;
+    type Output = f64;
+    fn cost(&self, x: &Vec<f64>) -> Result<f64, argmin::core::Error> {
+        // The diagonal of each factor enters through |·|: the optimiser may
+        // cross zero, and a variance at zero is a valid estimate.
+        let t: Vec<f64> = x.iter().enumerate().map(|(k, v)| if self.diag.contains(&k) { v.abs() } else { *v }).collect();
+        self.count.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+        Ok(self.model.profiled_deviance(&t))
+    }
+}
+
+/// Richardson-extrapolated central difference derivative of `f` along one coordinate.
+fn derivative(f: &dyn Fn(&[f64]) -> f64, x: &[f64], k: usize) -> f64 {
+    let h0 = 1e-3 * x[k].abs().max(1e-2);
+    let d = |h: f64| {
+        let (mut a, mut b) = (x.to_vec(), x.to_vec());
+        a[k] += h;
+        b[k] -= h;
+        (f(&a) - f(&b)) / (2.0 * h)
+    };
+    let (d1, d2) = (d(h0), d(h0 / 2.0));
+    (4.0 * d2 - d1) / 3.0
+}
+
+fn gradient(f: &dyn Fn(&[f64]) -> f64, x: &[f64]) -> Vec<f64> {
+    (0..x.len()).map(|k| derivative(f, x, k)).collect()
+}
+
+fn hessian(f: &dyn Fn(&[f64]) -> f64, x: &[f64]) -> DMatrix<f64> {
+    let n = x.len();
+    let mut h = DMatrix::zeros(n, n);
+    for j in 0..n {
+        let gj = |v: &[f64]| derivative(f, v, j);
+        for i in 0..n {
+            h[(i, j)] = derivative(&gj, x, i);
+        }
+    }
+    (&h + h.transpose()) * 0.5
+}
