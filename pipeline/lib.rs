@@ -13,6 +13,7 @@
 pub mod cli;
 pub mod config;
 pub mod fit;
+pub mod images;
 pub mod oximetry;
 pub mod physiology;
 pub mod run;

@@ -1,0 +1,91 @@
+//! Multi-page TIFF captures, one page per spectral band in the instrument's
+//! order: 8- or 16-bit unsigned, or 32-bit float grey pages, all the same
+//! size. A capture that cannot be read, or does not match the instrument,
+//! is an error for that capture alone ([`CaptureError`]); the study goes on.
+
+use std::path::{Path, PathBuf};
+
+use tiff::decoder::{Decoder, DecodingResult};
+use tiff::ColorType;
+
+/// A capture's bands as floating-point images, row-major.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Multiband {
+    pub width: usize,
+    pub height: usize,
+    pub bands: Vec<Vec<f32>>,
+    /// Bits per sample as stored (8, 16 or 32).
+    pub bit_depth: u8,
+}
+
+impl Multiband {
+    pub fn at(&self, band: usize, x: usize, y: usize) -> f32 {
+        self.bands[band][y * self.width + x]
+    }
+}
+
+#[derive(Debug, thiserror::Error, PartialEq)]
+pub enum CaptureError {
+    #[error("cannot open `{path}`: {reason}")]
+    Open { path: PathBuf, reason: String },
+    #[error("`{path}` is not a readable TIFF (page {page}): {reason}")]
+    Decode { path: PathBuf, page: usize, reason: String },
+    #[error("`{path}` page {page} is {found}; expected single-channel 8-bit, 16-bit or 32-bit float grey")]
+    PixelType { path: PathBuf, page: usize, found: String },
+    #[error("`{path}` has {found} pages; the instrument has {expected} bands (one page per band)")]
+    BandCount { path: PathBuf, found: usize, expected: usize },
+    #[error("`{path}` page {page} is {found_w}×{found_h} pixels, page 1 is {w}×{h}")]
+    PageSize { path: PathBuf, page: usize, found_w: u32, found_h: u32, w: u32, h: u32 },
+    #[error("`{path}` is {found_w}×{found_h} pixels; this eye's captures are {w}×{h}")]
+    CaptureSize { path: PathBuf, found_w: usize, found_h: usize, w: usize, h: usize },
+}
+
+/// Reads a capture and checks its band count (and its size, when given).
+pub fn read_capture(path: &Path, bands: usize, size: Option<(usize, usize)>) -> Result<Multiband, CaptureError> {
+    let file = std::fs::File::open(path).map_err(|e| CaptureError::Open { path: path.into(), reason: e.to_string() })?;
+    let dec_err = |page: usize, e: tiff::TiffError| CaptureError::Decode { path: path.into(), page, reason: e.to_string() };
+    let mut dec = Decoder::new(std::io::BufReader::new(file)).map_err(|e| dec_err(1, e))?;
+    let mut pages: Vec<Vec<f32>> = Vec::new();
+    let (mut w0, mut h0) = (0u32, 0u32);
+    let mut depth;
+    loop {
+        let page = pages.len() + 1;
+        let (w, h) = dec.dimensions().map_err(|e| dec_err(page, e))?;
+        if page == 1 {
+            (w0, h0) = (w, h);
+        } else if (w, h) != (w0, h0) {
+            return Err(CaptureError::PageSize { path: path.into(), page, found_w: w, found_h: h, w: w0, h: h0 });
+        }
+        let ct = dec.colortype().map_err(|e| dec_err(page, e))?;
+        let (data, bits) = match ct {
+            ColorType::Gray(8) | ColorType::Gray(16) | ColorType::Gray(32) => match dec.read_image().map_err(|e| dec_err(page, e))? {
+                DecodingResult::U8(v) => (v.into_iter().map(f32::from).collect::<Vec<f32>>(), 8),
+                DecodingResult::U16(v) => (v.into_iter().map(f32::from).collect(), 16),
+                DecodingResult::F32(v) => (v, 32),
+                other => {
+                    return Err(CaptureError::PixelType { path: path.into(), page, found: format!("{:?}", std::mem::discriminant(&other)) });
+                }
+            },
+            other => return Err(CaptureError::PixelType { path: path.into(), page, found: format!("{other:?}") }),
+        };
+        if data.len() != (w as usize) * (h as usize) {
+            return Err(CaptureError::Decode { path: path.into(), page, reason: "fewer pixels than the page's size".into() });
+        }
+        depth = bits;
+        pages.push(data);
+        if !dec.more_images() {
+            break;
+        }
+        dec.next_image().map_err(|e| dec_err(page + 1, e))?;
+    }
+    if pages.len() != bands {
+        return Err(CaptureError::BandCount { path: path.into(), found: pages.len(), expected: bands });
+    }
+    let (w, h) = (w0 as usize, h0 as usize);
+    if let Some((ew, eh)) = size {
+        if (w, h) != (ew, eh) {
+            return Err(CaptureError::CaptureSize { path: path.into(), found_w: w, found_h: h, w: ew, h: eh });
+        }
+    }
+    Ok(Multiband { width: w, height: h, bands: pages, bit_depth: depth })
+}

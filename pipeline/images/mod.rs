@@ -1,0 +1,7 @@
+//! From captures to images the analysis can trust: reading multiband TIFF
+//! captures with checks against the instrument ([`ingest`]), and
+//! registering a capture to its eye's reference capture ([`register`]).
+//! Profile analysis along vessel segments follows in this folder.
+
+pub mod ingest;
+pub mod register;

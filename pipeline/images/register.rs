@@ -1,0 +1,221 @@
+//! Registration of a capture to its eye's reference capture: a rigid
+//! motion (rotation about the image centre, then translation) found in two
+//! steps. Phase correlation (Kuglin & Hines 1975) gives the translation to
+//! the pixel over a coarse set of angles; then the normalised
+//! cross-correlation over the central part of the image is maximised in
+//! (dx, dy, angle) with sub-pixel, bilinear sampling (argmin's
+//! Nelder–Mead). The match score is that correlation; a capture whose score
+//! is below the study's limit is flagged as not registered, never guessed.
+//!
+//! The motion maps reference-capture coordinates to capture coordinates:
+//! `q = R(θ)(p − c) + c + (dx, dy)`, the convention of vessel-segment files.
+
+use std::sync::Arc;
+
+use argmin::core::{CostFunction, Executor, State};
+use argmin::solver::neldermead::NelderMead;
+use rustfft::num_complex::Complex;
+use rustfft::{Fft, FftPlanner};
+
+/// Result of a registration.
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+pub struct Registration {
+    pub dx: f64,
+    pub dy: f64,
+    pub angle_deg: f64,
+    /// Normalised cross-correlation at the optimum (−1 to 1).
+    pub score: f64,
+}
+
+impl Registration {
+    pub fn apply(&self, (x, y): (f64, f64), cx: f64, cy: f64) -> (f64, f64) {
+        let (s, c) = self.angle_deg.to_radians().sin_cos();
+        let (u, v) = (x - cx, y - cy);
+        (cx + c * u - s * v + self.dx, cy + s * u + c * v + self.dy)
+    }
+}
+
+/// Bilinear sample of a row-major image; `None` outside.
+pub fn bilinear(img: &[f32], w: usize, h: usize, x: f64, y: f64) -> Option<f64> {
+    if !(x >= 0.0 && y >= 0.0 && x <= (w - 1) as f64 && y <= (h - 1) as f64) {
+        return None;
+    }
+    let (x0, y0) = (x.floor() as usize, y.floor() as usize);
+    let (x1, y1) = ((x0 + 1).min(w - 1), (y0 + 1).min(h - 1));
+    let (fx, fy) = (x - x0 as f64, y - y0 as f64);
+    let p = |xx: usize, yy: usize| img[yy * w + xx] as f64;
+    Some((p(x0, y0) * (1.0 - fx) + p(x1, y0) * fx) * (1.0 - fy) + (p(x0, y1) * (1.0 - fx) + p(x1, y1) * fx) * fy)
+}
+
+fn fft2(data: &mut [Complex<f64>], w: usize, h: usize, row: &Arc<dyn Fft<f64>>, col: &Arc<dyn Fft<f64>>) {
+    for r in data.chunks_mut(w) {
+        row.process(r);
+    }
+    let mut tmp = vec![Complex::new(0.0, 0.0); h];
+    for x in 0..w {
+        for y in 0..h {
+            tmp[y] = data[y * w + x];
+        }
+        col.process(&mut tmp);
+        for y in 0..h {
+            data[y * w + x] = tmp[y];
+        }
+    }
+}
+
+/// Integer translation of `moving` relative to `reference` by phase
+/// correlation, with both images windowed (Hann) and de-meaned.
+pub fn phase_correlation(reference: &[f64], moving: &[f64], w: usize, h: usize) -> (f64, f64, f64) {
+    let mut planner = FftPlanner::<f64>::new();
+    let (fr, fc) = (planner.plan_fft_forward(w), planner.plan_fft_forward(h));
+    let (ir, ic) = (planner.plan_fft_inverse(w), planner.plan_fft_inverse(h));
+    let window = |x: usize, y: usize| {
+        let wx = 0.5 - 0.5 * (2.0 * std::f64::consts::PI * x as f64 / (w - 1) as f64).cos();
+        let wy = 0.5 - 0.5 * (2.0 * std::f64::consts::PI * y as f64 / (h - 1) as f64).cos();
+        wx * wy
+    };
+    let prep = |img: &[f64]| {
+        let m = img.iter().sum::<f64>() / img.len() as f64;
+        (0..w * h).map(|i| Complex::new((img[i] - m) * window(i % w, i / w), 0.0)).collect::<Vec<_>>()
+    };
+    let (mut a, mut b) = (prep(reference), prep(moving));
+    fft2(&mut a, w, h, &fr, &fc);
+    fft2(&mut b, w, h, &fr, &fc);
+    let mut r: Vec<Complex<f64>> = a.iter().zip(&b).map(|(x, y)| {
+        let c = y * x.conj();
+        let n = c.norm();
+        if n > 0.0 { c / n } else { Complex::new(0.0, 0.0) }
+    }).collect();
+    fft2(&mut r, w, h, &ir, &ic);
+    let (mut best, mut bi) = (f64::MIN, 0);
+    for (i, v) in r.iter().enumerate() {
+        if v.re > best {
+            best = v.re;
+            bi = i;
+        }
+    }
+    let (px, py) = ((bi % w) as f64, (bi / w) as f64);
+    let dx = if px > w as f64 / 2.0 { px - w as f64 } else { px };
+    let dy = if py > h as f64 / 2.0 { py - h as f64 } else { py };
+    (dx, dy, best / (w * h) as f64)
+}
+
+struct Ncc<'a> {
+    reference: &'a [f32],
+    moving: &'a [f32],
+    w: usize,
+    h: usize,
+    points: Vec<(usize, usize)>,
+}
+
+impl Ncc<'_> {
+    fn score(&self, p: &[f64]) -> f64 {
+        let reg = Registration { dx: p[0], dy: p[1], angle_deg: p[2], score: 0.0 };
+        let (cx, cy) = (self.w as f64 / 2.0, self.h as f64 / 2.0);
+        let (mut n, mut sa, mut sb, mut saa, mut sbb, mut sab) = (0.0, 0.0, 0.0, 0.0, 0.0, 0.0);
+        for &(x, y) in &self.points {
+            let q = reg.apply((x as f64, y as f64), cx, cy);
+            let Some(b) = bilinear(self.moving, self.w, self.h, q.0, q.1) else { continue };
+            let a = self.reference[y * self.w + x] as f64;
+            n += 1.0;
+            sa += a;
+            sb += b;
+            saa += a * a;
+            sbb += b * b;
+            sab += a * b;
+        }
+        if n < 100.0 {
+            return -1.0;
+        }
+        let cov = sab - sa * sb / n;
+        let va = saa - sa * sa / n;
+        let vb = sbb - sb * sb / n;
+        if va <= 0.0 || vb <= 0.0 { -1.0 } else { cov / (va * vb).sqrt() }
+    }
+}
+
+impl CostFunction for Ncc<'_> {
+    type Param = Vec<f64>;
+    type Output = f64;
+    fn cost(&self, p: &Vec<f64>) -> Result<f64, argmin::core::Error> {
+        Ok(-self.score(p))
+    }
+}
+
+/// Separable Gaussian blur (σ in pixels, edges clamped).
+pub fn blur(img: &[f32], w: usize, h: usize, sigma: f64) -> Vec<f32> {
+    let r = (3.0 * sigma).ceil() as isize;
+    let k: Vec<f64> = (-r..=r).map(|i| (-(i * i) as f64 / (2.0 * sigma * sigma)).exp()).collect();
+    let ks: f64 = k.iter().sum();
+    let pass = |src: &[f32], horizontal: bool| -> Vec<f32> {
+        let mut out = vec![0.0f32; w * h];
+        for y in 0..h {
+            for x in 0..w {
+                let mut acc = 0.0;
+                for (j, kv) in k.iter().enumerate() {
+                    let o = j as isize - r;
+                    let (xx, yy) = if horizontal {
+                        ((x as isize + o).clamp(0, w as isize - 1) as usize, y)
+                    } else {
+                        (x, (y as isize + o).clamp(0, h as isize - 1) as usize)
+                    };
+                    acc += kv * src[yy * w + xx] as f64;
+                }
+                out[y * w + x] = (acc / ks) as f32;
+            }
+        }
+        out
+    };
+    pass(&pass(img, true), false)
+}
+
+/// Registers `moving` to `reference` (both one band of a capture, same size).
+/// Rotations up to `max_angle_deg` are searched. Both images are smoothed
+/// (Gaussian, σ = 1 px) first: with noisy images, bilinear interpolation
+/// would otherwise favour whole-pixel shifts, where it averages no noise away.
+pub fn register(reference: &[f32], moving: &[f32], w: usize, h: usize, max_angle_deg: f64) -> Registration {
+    let (reference, moving) = (&blur(reference, w, h, 1.0)[..], &blur(moving, w, h, 1.0)[..]);
+    let (cx, cy) = (w as f64 / 2.0, h as f64 / 2.0);
+    let refd: Vec<f64> = reference.iter().map(|v| *v as f64).collect();
+    // Coarse: phase correlation of the moving image rotated back by each angle.
+    let steps = (max_angle_deg / 0.5).ceil() as i32;
+    let mut coarse = (0.0, 0.0, 0.0, f64::MIN);
+    for k in -steps..=steps {
+        let ang = k as f64 * 0.5;
+        let (s, c) = ang.to_radians().sin_cos();
+        let unrot: Vec<f64> = (0..w * h)
+            .map(|i| {
+                let (u, v) = ((i % w) as f64 - cx, (i / w) as f64 - cy);
+                bilinear(moving, w, h, cx + c * u - s * v, cy + s * u + c * v).unwrap_or(0.0)
+            })
+            .collect();
+        let (dx, dy, peak) = phase_correlation(&refd, &unrot, w, h);
+        if peak > coarse.3 {
+            coarse = (dx, dy, ang, peak);
+        }
+    }
+    // Fine: maximise the correlation over the central 70 % of the image.
+    let margin = (0.15 * w.min(h) as f64) as usize;
+    let points: Vec<(usize, usize)> = (margin..h - margin).step_by(2).flat_map(|y| (margin..w - margin).step_by(2).map(move |x| (x, y))).collect();
+    let coarse_points = points;
+    let full: Vec<(usize, usize)> = (margin..h - margin).flat_map(|y| (margin..w - margin).map(move |x| (x, y))).collect();
+    // The translation found on the un-rotated image is that of the rotated frame.
+    let mut best = vec![coarse.0, coarse.1, coarse.2];
+    // Two passes: every other pixel from the coarse estimate, then every
+    // pixel from a small simplex around the first optimum.
+    for (pts, step) in [(coarse_points, (0.7, 0.4)), (full.clone(), (0.1, 0.05))] {
+        let ncc = Ncc { reference, moving, w, h, points: pts };
+        let s0 = best.clone();
+        let simplex = vec![s0.clone(), vec![s0[0] + step.0, s0[1], s0[2]], vec![s0[0], s0[1] + step.0, s0[2]], vec![s0[0], s0[1], s0[2] + step.1]];
+        if let Some(b) = NelderMead::new(simplex)
+            .with_sd_tolerance(1e-10)
+            .ok()
+            .and_then(|s| Executor::new(ncc, s).configure(|st| st.max_iters(800)).run().ok())
+            .and_then(|r| r.state().get_best_param().cloned())
+        {
+            best = b;
+        }
+    }
+    let ncc = Ncc { reference, moving, w, h, points: full };
+    Registration { dx: best[0], dy: best[1], angle_deg: best[2], score: ncc.score(&best) }
+}

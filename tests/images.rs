@@ -1,0 +1,147 @@
+//! The image stage on real TIFF files: ingest checks, and registration
+//! against captures rendered with known eye motion.
+
+use rand::SeedableRng;
+use satstep::config::segments::{Segment, VesselKind};
+use satstep::images::ingest::{read_capture, CaptureError};
+use satstep::images::register::register;
+use satstep::oximetry::bands::SampledBand;
+use satstep::simulate::render::{render, write_tiff, Motion, Scene, VesselState};
+
+fn vessels() -> Vec<Segment> {
+    let arc = |id: &str, kind, a: f64, bend: f64| Segment {
+        id: id.into(),
+        kind,
+        points: (0..=12)
+            .map(|k| {
+                let s = 20.0 + 150.0 * k as f64 / 12.0;
+                let ang = a + bend * s / 160.0;
+                (20.0 + s * ang.cos(), 80.0 + s * ang.sin())
+            })
+            .collect(),
+        notes: String::new(),
+    };
+    vec![
+        arc("A1", VesselKind::Arteriole, -0.6, 0.3),
+        arc("V1", VesselKind::Venule, -0.2, -0.2),
+        arc("A2", VesselKind::Arteriole, 0.25, 0.25),
+        arc("V2", VesselKind::Venule, 0.6, -0.3),
+    ]
+}
+
+fn capture(motion: Motion, noise_seed: Option<u64>) -> Vec<Vec<u16>> {
+    let bands = vec![SampledBand::gaussian(570.0, 10.0), SampledBand::gaussian(600.0, 10.0)];
+    let segs = vessels();
+    let vs: Vec<VesselState> = segs
+        .iter()
+        .map(|s| VesselState {
+            segment: s,
+            so2: if s.kind == VesselKind::Arteriole { 0.96 } else { 0.6 },
+            diameter_um: Box::new(|_| 130.0),
+            double_pass: Box::new(|_| 0.3),
+        })
+        .collect();
+    let offsets = [(0.0, 0.0), (0.0, 0.0)];
+    let scene = Scene {
+        width: 160,
+        height: 160,
+        pixel_um: 12.0,
+        bands: &bands,
+        band_offsets: &offsets,
+        pigmentation: 2.0,
+        veil: 0.1,
+        hb_g_per_l: 150.0,
+        backscatter: 0.04,
+        // Without noise: an enormous well makes shot noise negligible.
+        well_electrons: if noise_seed.is_some() { 20_000.0 } else { 1e15 },
+        read_noise_electrons: if noise_seed.is_some() { 6.0 } else { 0.0 },
+    };
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(noise_seed.unwrap_or(0));
+    render(&scene, &vs, motion, 1.0, &mut rng)
+}
+
+fn as_f32(p: &[u16]) -> Vec<f32> {
+    p.iter().map(|v| *v as f32).collect()
+}
+
+#[test]
+fn registration_recovers_known_motion() {
+    for (noise, m) in [
+        (None, Motion { dx: 3.37, dy: -2.81, angle_deg: 0.6 }),
+        (Some(3), Motion { dx: -5.2, dy: 4.45, angle_deg: -0.85 }),
+        (Some(4), Motion { dx: 0.4, dy: 1.1, angle_deg: 0.0 }),
+    ] {
+        let reference = capture(Motion::default(), noise.map(|s| s + 100));
+        let moved = capture(m, noise);
+        let r = register(&as_f32(&reference[0]), &as_f32(&moved[0]), 160, 160, 2.0);
+        eprintln!("true {m:?} found {r:?}");
+        assert!((r.dx - m.dx).abs() < 0.1 && (r.dy - m.dy).abs() < 0.1, "{r:?} vs {m:?}");
+        assert!((r.angle_deg - m.angle_deg).abs() < 0.1, "{r:?} vs {m:?}");
+        assert!(r.score > 0.9, "{r:?}");
+    }
+}
+
+#[test]
+fn ingest_reads_every_supported_depth_and_refuses_the_rest() {
+    let dir = tempfile::tempdir().unwrap();
+    let pages = capture(Motion::default(), Some(1));
+    let good = dir.path().join("good.tif");
+    write_tiff(&good, 160, 160, &pages).unwrap();
+    let c = read_capture(&good, 2, Some((160, 160))).unwrap();
+    assert_eq!((c.width, c.height, c.bands.len(), c.bit_depth), (160, 160, 2, 16));
+    assert_eq!(c.at(1, 10, 20), pages[1][20 * 160 + 10] as f32);
+
+    // 8-bit and 32-bit float pages.
+    for (name, depth) in [("u8.tif", 8u8), ("f32.tif", 32)] {
+        let p = dir.path().join(name);
+        let f = std::fs::File::create(&p).unwrap();
+        let mut enc = tiff::encoder::TiffEncoder::new(std::io::BufWriter::new(f)).unwrap();
+        for _ in 0..2 {
+            if depth == 8 {
+                enc.write_image::<tiff::encoder::colortype::Gray8>(4, 3, &[7u8; 12]).unwrap();
+            } else {
+                enc.write_image::<tiff::encoder::colortype::Gray32Float>(4, 3, &[0.25f32; 12]).unwrap();
+            }
+        }
+        drop(enc);
+        let c = read_capture(&p, 2, None).unwrap();
+        assert_eq!(c.bit_depth, depth);
+        assert_eq!(c.bands[1][5], if depth == 8 { 7.0 } else { 0.25 });
+    }
+
+    // Wrong band count, wrong size.
+    assert!(matches!(read_capture(&good, 3, None), Err(CaptureError::BandCount { found: 2, expected: 3, .. })));
+    let e = read_capture(&good, 2, Some((256, 256))).unwrap_err();
+    assert_eq!(e.to_string(), format!("`{}` is 160×160 pixels; this eye's captures are 256×256", good.display()));
+
+    // Truncated, not a TIFF, empty, missing, RGB.
+    let bytes = std::fs::read(&good).unwrap();
+    let trunc = dir.path().join("trunc.tif");
+    std::fs::write(&trunc, &bytes[..bytes.len() / 3]).unwrap();
+    assert!(matches!(read_capture(&trunc, 2, None), Err(CaptureError::Decode { .. })), "{:?}", read_capture(&trunc, 2, None));
+    let png = dir.path().join("fake.tif");
+    std::fs::write(&png, b"\x89PNG\r\n\x1a\nnot a tiff at all").unwrap();
+    assert!(matches!(read_capture(&png, 2, None), Err(CaptureError::Decode { page: 1, .. })));
+    let empty = dir.path().join("empty.tif");
+    std::fs::write(&empty, b"").unwrap();
+    assert!(matches!(read_capture(&empty, 2, None), Err(CaptureError::Decode { .. })));
+    assert!(matches!(read_capture(&dir.path().join("none.tif"), 2, None), Err(CaptureError::Open { .. })));
+    let rgb = dir.path().join("rgb.tif");
+    {
+        let f = std::fs::File::create(&rgb).unwrap();
+        let mut enc = tiff::encoder::TiffEncoder::new(std::io::BufWriter::new(f)).unwrap();
+        enc.write_image::<tiff::encoder::colortype::RGB8>(2, 2, &[1u8; 12]).unwrap();
+    }
+    let e = read_capture(&rgb, 1, None).unwrap_err();
+    assert!(matches!(e, CaptureError::PixelType { .. }), "{e:?}");
+    assert!(e.to_string().contains("expected single-channel 8-bit, 16-bit or 32-bit float grey"));
+    // Pages of different sizes.
+    let mixed = dir.path().join("mixed.tif");
+    {
+        let f = std::fs::File::create(&mixed).unwrap();
+        let mut enc = tiff::encoder::TiffEncoder::new(std::io::BufWriter::new(f)).unwrap();
+        enc.write_image::<tiff::encoder::colortype::Gray16>(4, 4, &[1u16; 16]).unwrap();
+        enc.write_image::<tiff::encoder::colortype::Gray16>(4, 2, &[1u16; 8]).unwrap();
+    }
+    assert!(matches!(read_capture(&mixed, 2, None), Err(CaptureError::PageSize { page: 2, .. })));
+}
