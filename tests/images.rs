@@ -145,3 +145,41 @@ fn ingest_reads_every_supported_depth_and_refuses_the_rest() {
     }
     assert!(matches!(read_capture(&mixed, 2, None), Err(CaptureError::PageSize { page: 2, .. })));
 }
+
+#[test]
+fn profiles_recover_known_transmission_and_diameter() {
+    use satstep::images::ingest::Multiband;
+    use satstep::images::profile::{analyse_segment, ProfileSettings};
+    use satstep::oximetry::model::{Shared, VesselModel};
+    use satstep::simulate::render::background_reflectance;
+    // One straight vessel, 130 µm at 12 µm/px, no noise: T and diameter are known.
+    let bands = vec![SampledBand::gaussian(570.0, 10.0), SampledBand::gaussian(600.0, 10.0)];
+    let seg = Segment { id: "A1".into(), kind: VesselKind::Arteriole, points: vec![(20.0, 40.0), (140.0, 120.0)], notes: String::new() };
+    for (d_um, so2, veil, noisy) in [(130.0, 0.96, 0.1, false), (90.0, 0.6, 0.3, false), (150.0, 0.6, 0.0, true)] {
+        let vs = vec![VesselState { segment: &seg, so2, diameter_um: Box::new(move |_| d_um), double_pass: Box::new(|_| 0.3) }];
+        let offsets = [(0.0, 0.0), (0.0, 0.0)];
+        let scene = Scene {
+            width: 160, height: 160, pixel_um: 12.0, bands: &bands, band_offsets: &offsets, pigmentation: 2.0, veil, hb_g_per_l: 150.0, backscatter: 0.04,
+            well_electrons: if noisy { 20_000.0 } else { 1e15 }, read_noise_electrons: if noisy { 6.0 } else { 0.0 },
+        };
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(9);
+        let pages = render(&scene, &vs, Motion::default(), 1.0, &mut rng);
+        let img = Multiband { width: 160, height: 160, bands: pages.iter().map(|p| as_f32(p)).collect(), bit_depth: 16 };
+        let model = VesselModel::new(&bands, |l| background_reflectance(l, 2.0), 0.04);
+        let mut truth = vec![0.0; 2];
+        model.transmission(&Shared { so2, hb_g_per_l: 150.0, veil }, 0.3, d_um, &mut truth, None);
+        let res = analyse_segment(&img, &seg.points, &[], 0, &ProfileSettings::default());
+        assert!(res.len() > 40);
+        let ok: Vec<_> = res.iter().filter(|r| r.flags.is_empty()).collect();
+        assert!(ok.len() > res.len() * 9 / 10, "{:?}", res.iter().map(|r| &r.flags).collect::<Vec<_>>());
+        let mean = |f: &dyn Fn(&satstep::images::profile::ProfileResult) -> f64| ok.iter().map(|r| f(r)).sum::<f64>() / ok.len() as f64;
+        let d = mean(&|r| r.diameter_px) * 12.0;
+        eprintln!("d {d_um} µm: found {d:.1}; T truth {truth:?}, found {:.4} {:.4}", mean(&|r| r.transmission[0]), mean(&|r| r.transmission[1]));
+        assert!((d - d_um).abs() / d_um < 0.05, "diameter {d} vs {d_um}");
+        for b in 0..2 {
+            let t = mean(&|r| r.transmission[b]);
+            let tol = if noisy { 0.02 } else { 0.01 };
+            assert!((t - truth[b]).abs() / truth[b] < tol, "band {b}: T {t} vs {}", truth[b]);
+        }
+    }
+}

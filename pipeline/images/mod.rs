@@ -4,4 +4,5 @@
 //! Profile analysis along vessel segments follows in this folder.
 
 pub mod ingest;
+pub mod profile;
 pub mod register;

@@ -1,5 +1,6 @@
 //! Rendering of multiband fundus captures with known vessel saturation.
 //!
+//! Each pixel averages 3×3 sub-pixel samples of the vessel transmission.
 //! Per band: a background reflectance that falls towards short wavelengths
 //! with fundus pigmentation, a smooth spatial texture, vignetting, and over
 //! each vessel the band-integrated multi-path transmission
@@ -146,21 +147,34 @@ pub fn render(scene: &Scene, vessels: &[VesselState], motion: Motion, exposure: 
             let (y0, y1) = pts.iter().fold((f64::MAX, f64::MIN), |a, p| (a.0.min(p.1), a.1.max(p.1)));
             let xs = ((x0 - r_max).floor().max(0.0) as usize)..((x1 + r_max).ceil().min(w as f64 - 1.0).max(0.0) as usize + 1);
             let ys = ((y0 - r_max).floor().max(0.0) as usize)..((y1 + r_max).ceil().min(h as f64 - 1.0).max(0.0) as usize + 1);
+            // Each pixel averages 3×3 sub-pixel samples, so that vessel
+            // edges are not stair-stepped on the pixel grid.
+            const SUB: [f64; 3] = [-1.0 / 3.0, 0.0, 1.0 / 3.0];
             for y in ys.clone() {
                 for x in xs.clone() {
-                    let (d_px, frac) = nearest_on(pts, (x as f64, y as f64), cum);
-                    // Segments end at branch points: no vessel beyond the ends.
-                    let radius_um = (v.diameter_um)(frac) / 2.0;
-                    let d_um = d_px * scene.pixel_um;
-                    if d_um >= radius_um {
-                        continue;
+                    let mut acc = 0.0;
+                    let mut inside = false;
+                    for oy in SUB {
+                        for ox in SUB {
+                            let (d_px, frac) = nearest_on(pts, (x as f64 + ox, y as f64 + oy), cum);
+                            // Segments end at branch points: no vessel beyond the ends.
+                            let radius_um = (v.diameter_um)(frac) / 2.0;
+                            let d_um = d_px * scene.pixel_um;
+                            if d_um >= radius_um {
+                                acc += 1.0;
+                                continue;
+                            }
+                            inside = true;
+                            let chord = 2.0 * (radius_um * radius_um - d_um * d_um).sqrt();
+                            let (e1, e2) = tables[vi].at(chord.min(max_d as f64));
+                            let f2 = (v.double_pass)(frac);
+                            let f1 = 1.0 - scene.backscatter - f2;
+                            acc += scene.backscatter + f1 * e1 + f2 * e2;
+                        }
                     }
-                    let chord = 2.0 * (radius_um * radius_um - d_um * d_um).sqrt();
-                    let (e1, e2) = tables[vi].at(chord.min(max_d as f64));
-                    let f2 = (v.double_pass)(frac);
-                    let f1 = 1.0 - scene.backscatter - f2;
-                    let t = scene.backscatter + f1 * e1 + f2 * e2;
-                    trans[y * w + x] *= t;
+                    if inside {
+                        trans[y * w + x] *= acc / 9.0;
+                    }
                 }
             }
         }
