@@ -38,7 +38,7 @@ pub struct ProfileSettings {
 
 impl Default for ProfileSettings {
     fn default() -> Self {
-        ProfileSettings { spacing_px: 2.0, half_length_px: 16.0, end_margin_px: 4.0, min_contrast: 0.03, max_rms: 0.05, neighbour_margin_px: 2.0 }
+        ProfileSettings { spacing_px: 2.0, half_length_px: 16.0, end_margin_px: 4.0, min_contrast: 0.03, max_rms: 0.02, neighbour_margin_px: 2.0 }
     }
 }
 
@@ -260,7 +260,13 @@ pub fn analyse_segment(img: &Multiband, line: &[(f64, f64)], others: &[Vec<(f64,
         if q[0] < st.min_contrast {
             flags.push(Flag::LowContrast);
         }
-        if !(rms <= st.max_rms) {
+        // Poor fit: residuals well above the noise seen in the background
+        // parts of the same profile (and above the floor `max_rms`).
+        let noise = {
+            let pts: Vec<f64> = s.iter().zip(&wv).filter(|(x, _)| (**x - c).abs() > r + 2.0).map(|(x, v)| v / eval_bg(&bg.expect("fitted"), *x) - 1.0).collect();
+            (pts.iter().map(|e| e * e).sum::<f64>() / pts.len().max(1) as f64).sqrt()
+        };
+        if !(rms <= st.max_rms.max(3.0 * noise)) {
             flags.push(Flag::PoorFit);
         }
         let here = (centre.0 + c * normal.0, centre.1 + c * normal.1);

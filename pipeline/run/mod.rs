@@ -1,6 +1,9 @@
 //! The verbs behind the command line: `check`, `protocol show` and `run`.
 
 pub mod epochs;
+pub mod fits;
+pub mod statistics;
+pub mod transmissions;
 pub mod mixed;
 pub mod sensitivity;
 
@@ -181,12 +184,43 @@ fn run_stages(study: &Study, printer: &Printer) -> Result<Exit> {
         printer.verbose(format!("  wrote `{}`", p.display()));
     }
     printer.info(format!("wrote the capture and epoch tables under `{}`", study.output.join("epochs").display()));
-    if !study.methods.is_empty() {
-        let labels: Vec<&str> = study.methods.iter().map(|m| m.label.as_str()).collect();
-        printer.info(format!(
-            "not run yet: image ingest, the oximetry fits ({}), statistics and the report are not part of this version",
-            labels.join(", ")
-        ));
+
+    let t0 = std::time::Instant::now();
+    let images = crate::run::transmissions::build(study, &tables);
+    images.write(&study.output, study, &tables)?;
+    let count = |s: &str| images.status.iter().filter(|x| x.status == s).count();
+    printer.info(format!(
+        "images: {} captures analysed, {} could not be read, {} did not register; {} profile positions ({:.1} s)",
+        count("ok"),
+        count("error"),
+        count("not-registered"),
+        images.positions.len(),
+        t0.elapsed().as_secs_f64()
+    ));
+    for (row, st) in tables.captures.iter().zip(&images.status) {
+        if st.status == "error" || st.status == "not-registered" {
+            printer.warn(format!("{}: {}", row.capture, st.message.clone().unwrap_or_default()));
+        }
+    }
+    let t0 = std::time::Instant::now();
+    let fits = crate::run::fits::build(study, &tables, &images);
+    crate::run::fits::write(&fits, &tables, &study.output)?;
+    printer.info(format!(
+        "fits: {} segment fits over {} methods, {} with an SO2 ({:.1} s)",
+        fits.len(),
+        study.methods.len(),
+        fits.iter().filter(|f| f.so2.is_some()).count(),
+        t0.elapsed().as_secs_f64()
+    ));
+    let stats = crate::run::statistics::build(study, &tables, &fits);
+    stats.write(&study.output)?;
+    printer.info(format!("statistics: {} subject × epoch summaries, {} contrasts, {} agreement rows", stats.summaries.len(), stats.contrasts.len(), stats.agreement.len()));
+    for (m, k, t, h) in &stats.contrasts {
+        printer.info(format!("  {m} {k}: {} = {:+.2} points (95 % CI {:+.2} to {:+.2}, df {:.1}, Holm p {:.2e})", t.label, t.estimate, t.lower, t.upper, t.df, h));
+    }
+    printer.info("not run yet: the report is not part of this version");
+    if count("error") + count("not-registered") > 0 {
+        return Ok(Exit::Problem);
     }
     Ok(Exit::Ok)
 }

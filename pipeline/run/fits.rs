@@ -1,0 +1,201 @@
+//! The fit stage: for every capture and vessel segment, the study's
+//! methods turn the unflagged positions' transmissions into SO2. Two-band
+//! calibrations that need the cohort (two reference points, regression)
+//! are made after all segment ODRs are known.
+
+use std::collections::BTreeMap;
+use std::path::Path;
+
+use anyhow::Result;
+use rayon::prelude::*;
+
+use crate::config::study::{Calibration, Loss, MethodKind, Study};
+use crate::oximetry::bands::SampledBand;
+use crate::oximetry::model::VesselModel;
+use crate::oximetry::odr::{leave_one_subject_out, segment_odr, two_point, Linear};
+use crate::oximetry::pointwise::fit_pointwise;
+use crate::oximetry::segment::{fit_segment, FitSettings, RobustLoss, SegmentSpectra};
+use crate::run::epochs::EpochTables;
+use crate::run::transmissions::{ImageTables, PositionRow};
+use crate::tables::Table;
+
+/// Fewest unflagged positions a segment needs to be fitted.
+pub const MIN_POSITIONS: usize = 8;
+
+#[derive(Debug, Clone)]
+pub struct FitRow {
+    pub capture_index: usize,
+    pub segment: String,
+    pub kind: &'static str,
+    pub method: String,
+    pub so2: Option<f64>,
+    pub so2_se: Option<f64>,
+    pub reduced_chi2: Option<f64>,
+    pub odr: Option<f64>,
+    pub iterations: i64,
+    pub evaluations: i64,
+    pub termination: String,
+    pub positions: i64,
+    pub diameter_um: f64,
+}
+
+pub fn build(study: &Study, epochs: &EpochTables, images: &ImageTables) -> Vec<FitRow> {
+    let bands: Vec<SampledBand> = study.instrument.bands.iter().map(|b| SampledBand::from_response(&b.response)).collect();
+    let mut groups: BTreeMap<(usize, String), Vec<&PositionRow>> = BTreeMap::new();
+    for r in &images.positions {
+        if r.flags.is_empty() && r.transmission.iter().all(|t| t.is_finite() && *t > 0.0) {
+            groups.entry((r.capture_index, r.segment.clone())).or_default().push(r);
+        }
+    }
+    // Every (capture, segment) that the image stage profiled, even with too few positions.
+    let mut keys: Vec<(usize, String, &'static str)> = images.positions.iter().map(|r| (r.capture_index, r.segment.clone(), r.kind)).collect();
+    keys.dedup();
+    keys.sort();
+    keys.dedup();
+    let mut out = Vec::new();
+    for m in &study.methods {
+        let rows: Vec<FitRow> = keys
+            .par_iter()
+            .map(|(ci, seg, kind)| {
+                let pos = groups.get(&(*ci, seg.clone())).cloned().unwrap_or_default();
+                let diameter = if pos.is_empty() { f64::NAN } else { pos.iter().map(|p| p.diameter_um).sum::<f64>() / pos.len() as f64 };
+                let mut row = FitRow {
+                    capture_index: *ci,
+                    segment: seg.clone(),
+                    kind,
+                    method: m.label.clone(),
+                    so2: None,
+                    so2_se: None,
+                    reduced_chi2: None,
+                    odr: None,
+                    iterations: 0,
+                    evaluations: 0,
+                    termination: String::new(),
+                    positions: pos.len() as i64,
+                    diameter_um: diameter,
+                };
+                if pos.len() < MIN_POSITIONS {
+                    row.termination = format!("too few usable positions ({} < {MIN_POSITIONS})", pos.len());
+                    return row;
+                }
+                match &m.kind {
+                    MethodKind::TwoBand { sensitive, isosbestic, .. } => {
+                        let ts: Vec<f64> = pos.iter().map(|p| p.transmission[*sensitive]).collect();
+                        let ti: Vec<f64> = pos.iter().map(|p| p.transmission[*isosbestic]).collect();
+                        row.odr = segment_odr(&ts, &ti);
+                        row.termination = if row.odr.is_some() { "odr".into() } else { "no optical density".into() };
+                    }
+                    MethodKind::Multiband { bands: sel, loss, pointwise } => {
+                        let model = VesselModel::new(&sel.iter().map(|b| bands[*b].clone()).collect::<Vec<_>>(), |_| 1.0, 0.04);
+                        let spectra = SegmentSpectra {
+                            diameters_um: pos.iter().map(|p| p.diameter_um).collect(),
+                            transmissions: pos.iter().map(|p| sel.iter().map(|b| p.transmission[*b]).collect()).collect(),
+                        };
+                        let settings = FitSettings {
+                            loss: match loss {
+                                Loss::Squared => RobustLoss::Squared,
+                                Loss::Huber { scale } => RobustLoss::Huber { scale: *scale },
+                            },
+                            ..FitSettings::default()
+                        };
+                        if *pointwise {
+                            let f = fit_pointwise(&model, &spectra, &settings);
+                            if f.so2.is_finite() {
+                                row.so2 = Some(f.so2 * 100.0);
+                                row.so2_se = Some(f.so2_se * 100.0);
+                            }
+                            row.iterations = f.positions.iter().map(|p| p.iterations as i64).sum();
+                            row.evaluations = f.positions.iter().map(|p| p.evaluations as i64).sum();
+                            row.termination = format!("{} of {} positions converged", f.n_converged, f.positions.len());
+                        } else if let Some(f) = fit_segment(&model, &spectra, &settings) {
+                            row.so2 = Some(f.so2 * 100.0);
+                            row.so2_se = Some(f.so2_se * 100.0);
+                            row.reduced_chi2 = Some(f.reduced_chi2);
+                            row.iterations = f.iterations as i64;
+                            row.evaluations = f.evaluations as i64;
+                            row.termination = f.termination.to_string();
+                        } else {
+                            row.termination = "not fitted".into();
+                        }
+                    }
+                }
+                row
+            })
+            .collect();
+        let mut rows = rows;
+        if let MethodKind::TwoBand { calibration, .. } = &m.kind {
+            calibrate(&mut rows, calibration, study, epochs);
+        }
+        out.extend(rows);
+    }
+    out
+}
+
+/// Applies the two-band calibration to rows holding ODRs.
+fn calibrate(rows: &mut [FitRow], cal: &Calibration, study: &Study, epochs: &EpochTables) {
+    let c = &epochs.captures;
+    match cal {
+        Calibration::Fixed { intercept, slope } => {
+            let l = Linear { intercept: *intercept, slope: *slope };
+            for r in rows.iter_mut() {
+                r.so2 = r.odr.map(|o| l.apply(o));
+            }
+        }
+        Calibration::TwoPoint { epoch, venule_so2 } => {
+            let name = &study.protocol.epochs[*epoch].name;
+            let in_epoch = |r: &FitRow| c[r.capture_index].status == "steady" && c[r.capture_index].epoch.as_deref() == Some(name.as_str());
+            let a: Vec<(f64, f64)> = rows.iter().filter(|r| r.kind == "arteriole" && in_epoch(r)).filter_map(|r| Some((r.odr?, c[r.capture_index].spo2?))).collect();
+            let v: Vec<f64> = rows.iter().filter(|r| r.kind == "venule" && in_epoch(r)).filter_map(|r| r.odr).collect();
+            let mean = |x: &[f64]| x.iter().sum::<f64>() / x.len() as f64;
+            let line = if a.is_empty() || v.is_empty() {
+                None
+            } else {
+                two_point(mean(&a.iter().map(|p| p.0).collect::<Vec<_>>()), mean(&a.iter().map(|p| p.1).collect::<Vec<_>>()), mean(&v), *venule_so2)
+            };
+            for r in rows.iter_mut() {
+                r.so2 = line.and_then(|l| r.odr.map(|o| l.apply(o)));
+                if line.is_none() {
+                    r.termination = format!("no two-point calibration: no arteriole with reference SpO2 and no venule in `{name}`");
+                }
+            }
+        }
+        Calibration::Regression => {
+            let pairs: Vec<(&str, f64, f64)> = rows
+                .iter()
+                .filter(|r| r.kind == "arteriole" && c[r.capture_index].status == "steady")
+                .filter_map(|r| Some((c[r.capture_index].subject.as_str(), r.odr?, c[r.capture_index].spo2?)))
+                .collect();
+            let cal: BTreeMap<String, Option<Linear>> = leave_one_subject_out(&pairs).into_iter().map(|(s, l)| (s.to_string(), l)).collect();
+            for r in rows.iter_mut() {
+                let l = cal.get(&c[r.capture_index].subject).copied().flatten();
+                r.so2 = l.and_then(|l| r.odr.map(|o| l.apply(o)));
+            }
+        }
+    }
+}
+
+pub fn write(rows: &[FitRow], epochs: &EpochTables, out: &Path) -> Result<()> {
+    let c = &epochs.captures;
+    let mut t = Table::new();
+    t.text("subject", rows.iter().map(|r| &c[r.capture_index].subject))
+        .text("session", rows.iter().map(|r| &c[r.capture_index].session))
+        .text("eye", rows.iter().map(|r| &c[r.capture_index].eye))
+        .text("capture", rows.iter().map(|r| &c[r.capture_index].capture))
+        .opt_text("epoch", rows.iter().map(|r| c[r.capture_index].epoch.clone()))
+        .text("status", rows.iter().map(|r| &c[r.capture_index].status))
+        .text("segment", rows.iter().map(|r| &r.segment))
+        .text("kind", rows.iter().map(|r| r.kind))
+        .text("method", rows.iter().map(|r| &r.method))
+        .opt_real("so2", rows.iter().map(|r| r.so2))
+        .opt_real("so2_se", rows.iter().map(|r| r.so2_se))
+        .opt_real("odr", rows.iter().map(|r| r.odr))
+        .opt_real("reduced_chi2", rows.iter().map(|r| r.reduced_chi2))
+        .int("iterations", rows.iter().map(|r| r.iterations))
+        .int("evaluations", rows.iter().map(|r| r.evaluations))
+        .text("termination", rows.iter().map(|r| &r.termination))
+        .int("positions", rows.iter().map(|r| r.positions))
+        .real("diameter_um", rows.iter().map(|r| r.diameter_um))
+        .opt_real("spo2", rows.iter().map(|r| c[r.capture_index].spo2));
+    t.write(&out.join("fits"), "so2")?;
+    Ok(())
+}
