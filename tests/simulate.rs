@@ -139,8 +139,22 @@ fn simulated_reference_and_truth_are_physiological() {
         checked += 1;
     }
     assert_eq!(checked, 18, "3 methods × 2 kinds × 3 contrasts");
-    for f in ["transmissions/positions.parquet", "transmissions/captures.csv", "fits/so2.parquet", "statistics/summaries.csv", "statistics/agreement.csv"] {
+    for f in ["transmissions/positions.parquet", "transmissions/captures.csv", "fits/so2.parquet", "statistics/summaries.csv", "statistics/agreement.csv", "statistics/paired.csv", "statistics/methods.csv"] {
         assert!(out.join("results").join(f).is_file(), "{f}");
+    }
+    // Paired t tests against the baseline see the hypoxic drop in every subject.
+    let paired = std::fs::read_to_string(out.join("results/statistics/paired.csv")).unwrap();
+    let row = paired.lines().find(|l| l.starts_with("multiband,arteriole,low-15,")).unwrap();
+    let f: Vec<&str> = row.split(',').collect();
+    assert_eq!(f[3], "8");
+    assert!(f[4].parse::<f64>().unwrap() < -5.0 && f[8].parse::<f64>().unwrap() < 1e-3, "{row}");
+    // Arteriolar SO2 rises with the reference SpO2.
+    let ag = std::fs::read_to_string(out.join("results/statistics/agreement.csv")).unwrap();
+    let head: Vec<&str> = ag.lines().next().unwrap().split(',').collect();
+    let col = head.iter().position(|h| *h == "slope_on_spo2").unwrap();
+    for l in ag.lines().skip(1) {
+        let slope: f64 = l.split(',').nth(col).unwrap().parse().unwrap();
+        assert!((0.5..1.5).contains(&slope), "{l}");
     }
 }
 

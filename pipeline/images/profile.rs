@@ -38,7 +38,7 @@ pub struct ProfileSettings {
 
 impl Default for ProfileSettings {
     fn default() -> Self {
-        ProfileSettings { spacing_px: 2.0, half_length_px: 16.0, end_margin_px: 4.0, min_contrast: 0.03, max_rms: 0.02, neighbour_margin_px: 2.0 }
+        ProfileSettings { spacing_px: 2.0, half_length_px: 16.0, end_margin_px: 4.0, min_contrast: 0.03, max_rms: 0.035, neighbour_margin_px: 2.0 }
     }
 }
 
@@ -261,12 +261,12 @@ pub fn analyse_segment(img: &Multiband, line: &[(f64, f64)], others: &[Vec<(f64,
             flags.push(Flag::LowContrast);
         }
         // Poor fit: residuals well above the noise seen in the background
-        // parts of the same profile (and above the floor `max_rms`).
+        // parts of the same profile (beyond `max_rms` + 3 × that noise).
         let noise = {
             let pts: Vec<f64> = s.iter().zip(&wv).filter(|(x, _)| (**x - c).abs() > r + 2.0).map(|(x, v)| v / eval_bg(&bg.expect("fitted"), *x) - 1.0).collect();
             (pts.iter().map(|e| e * e).sum::<f64>() / pts.len().max(1) as f64).sqrt()
         };
-        if !(rms <= st.max_rms.max(3.0 * noise)) {
+        if !(rms <= st.max_rms + 3.0 * noise) {
             flags.push(Flag::PoorFit);
         }
         let here = (centre.0 + c * normal.0, centre.1 + c * normal.1);

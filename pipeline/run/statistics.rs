@@ -2,7 +2,10 @@
 //! per subject × epoch summaries, a linear mixed model (REML) of SO2 on the
 //! epoch with random intercepts for subject, eye within subject and segment
 //! within eye, the protocol's contrasts with Satterthwaite df and Holm
-//! adjustment, and the agreement of arteriolar SO2 with the reference SpO2.
+//! adjustment, paired differences against the baseline (paired t tests),
+//! the agreement of arteriolar SO2 with the reference SpO2 (with the slope
+//! of SO2 on SpO2, subject random intercepts), and quantities for comparing
+//! the methods on the same cohort.
 
 use std::collections::BTreeMap;
 use std::path::Path;
@@ -23,8 +26,12 @@ pub struct Statistics {
     pub summaries: Vec<(String, String, String, String, i64, i64, f64, f64)>,
     /// (method, kind, test, holm p).
     pub contrasts: Vec<(String, String, Test, f64)>,
-    /// (method, agreement).
-    pub agreement: Vec<(String, crate::stats::agreement::Agreement)>,
+    /// (method, agreement, slope of SO2 on SpO2 with subject random intercepts: estimate, SE, df, lower, upper).
+    pub agreement: Vec<(String, crate::stats::agreement::Agreement, Option<Test>)>,
+    /// (method, kind, epoch, subjects, mean difference from baseline, SE, df, t, p).
+    pub paired: Vec<(String, String, String, i64, f64, f64, f64, f64, f64)>,
+    /// Method comparison rows: (method, kind, quantity, value).
+    pub comparison: Vec<(String, String, String, f64)>,
 }
 
 fn term(name: &str, keys: &[String]) -> RandomTerm {
@@ -38,7 +45,7 @@ fn term(name: &str, keys: &[String]) -> RandomTerm {
 pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics {
     let c = &epochs.captures;
     let p = &study.protocol;
-    let mut st = Statistics { summaries: vec![], contrasts: vec![], agreement: vec![] };
+    let mut st = Statistics { summaries: vec![], contrasts: vec![], agreement: vec![], paired: vec![], comparison: vec![] };
     for m in &study.methods {
         for kind in ["arteriole", "venule"] {
             let rows: Vec<&FitRow> = fits
@@ -59,6 +66,65 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
                 let segs = caps.values().map(|v| v.len() as i64).sum();
                 st.summaries.push((m.label.clone(), kind.into(), s.clone(), e.clone(), means.len() as i64, segs, mean, sd));
             }
+            // Paired differences against the baseline, over subjects with both.
+            let base = &p.epochs[p.baseline].name;
+            let subj_mean = |subject: &str, epoch: &str| -> Option<f64> {
+                by.get(&(subject.to_string(), epoch.to_string())).map(|caps| {
+                    let m: Vec<f64> = caps.values().map(|v| v.iter().sum::<f64>() / v.len() as f64).collect();
+                    m.iter().sum::<f64>() / m.len() as f64
+                })
+            };
+            let subjects: Vec<String> = {
+                let mut v: Vec<String> = by.keys().map(|k| k.0.clone()).collect();
+                v.dedup();
+                v
+            };
+            for e in p.epochs.iter().filter(|e| &e.name != base) {
+                let pairs: Vec<(f64, f64)> = subjects.iter().filter_map(|s| Some((subj_mean(s, &e.name)?, subj_mean(s, base)?))).collect();
+                let (a, b): (Vec<f64>, Vec<f64>) = pairs.iter().copied().unzip();
+                if let Some((md, se, df, t, pv)) = crate::stats::agreement::paired_t(&a, &b) {
+                    st.paired.push((m.label.clone(), kind.into(), e.name.clone(), pairs.len() as i64, md, se, df, t, pv));
+                }
+            }
+            // Method comparison: repeatability (pooled within subject × epoch
+            // SD of capture means), along-segment spread (mean SE of the
+            // segment estimates), share of values outside 0–100 %.
+            let (mut ss, mut dfw) = (0.0, 0.0);
+            for caps in by.values() {
+                let means: Vec<f64> = caps.values().map(|v| v.iter().sum::<f64>() / v.len() as f64).collect();
+                if means.len() > 1 {
+                    let mu = means.iter().sum::<f64>() / means.len() as f64;
+                    ss += means.iter().map(|x| (x - mu).powi(2)).sum::<f64>();
+                    dfw += means.len() as f64 - 1.0;
+                }
+            }
+            let all: Vec<&FitRow> = fits.iter().filter(|r| r.method == m.label && r.kind == kind && r.so2.is_some_and(f64::is_finite)).collect();
+            let outside = all.iter().filter(|r| !(0.0..=100.0).contains(&r.so2.unwrap())).count();
+            let ses: Vec<f64> = rows.iter().filter_map(|r| r.so2_se).filter(|v| v.is_finite()).collect();
+            let mut comp = |q: &str, v: f64| st.comparison.push((m.label.clone(), kind.into(), q.into(), v));
+            comp("repeatability_sd", if dfw > 0.0 { (ss / dfw).sqrt() } else { f64::NAN });
+            comp("mean_segment_se", if ses.is_empty() { f64::NAN } else { ses.iter().sum::<f64>() / ses.len() as f64 });
+            comp("values", all.len() as f64);
+            comp("share_outside_0_100", if all.is_empty() { f64::NAN } else { outside as f64 / all.len() as f64 });
+            // Slope of the retinal change on the SpO2 change (per subject and
+            // epoch against the baseline, pooled).
+            let (mut dx, mut dy) = (Vec::new(), Vec::new());
+            for s in &subjects {
+                let spo2_mean = |epoch: &str| -> Option<f64> {
+                    let v: Vec<f64> = c.iter().filter(|r| &r.subject == s && r.status == "steady" && r.epoch.as_deref() == Some(epoch)).filter_map(|r| r.spo2).collect();
+                    (!v.is_empty()).then(|| v.iter().sum::<f64>() / v.len() as f64)
+                };
+                for e in p.epochs.iter().filter(|e| &e.name != base) {
+                    if let (Some(r1), Some(r0), Some(s1), Some(s0)) = (subj_mean(s, &e.name), subj_mean(s, base), spo2_mean(&e.name), spo2_mean(base)) {
+                        dx.push(s1 - s0);
+                        dy.push(r1 - r0);
+                    }
+                }
+            }
+            if let Some(l) = crate::oximetry::odr::ols(&dx, &dy) {
+                comp("slope_change_on_spo2_change", l.slope);
+            }
+
             // Mixed model with the epochs present; the baseline is the reference.
             let present: Vec<usize> = (0..p.epochs.len()).filter(|e| rows.iter().any(|r| c[r.capture_index].epoch.as_deref() == Some(p.epochs[*e].name.as_str()))).collect();
             if rows.len() < 10 || !present.contains(&p.baseline) || present.len() < 2 {
@@ -124,7 +190,38 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
                     .filter_map(|(ci, v)| c[*ci].spo2.map(|s| (c[*ci].subject.clone(), v.iter().sum::<f64>() / v.len() as f64, s)))
                     .collect();
                 if let Some(a) = agreement(&pairs) {
-                    st.agreement.push((m.label.clone(), a));
+                    // Slope of retinal SO2 on SpO2 with subject random intercepts.
+                    let n = pairs.len();
+                    let data = LmmData {
+                        y: pairs.iter().map(|q| q.1).collect(),
+                        x: DMatrix::from_fn(n, 2, |i, j| if j == 0 { 1.0 } else { pairs[i].2 }),
+                        x_names: vec!["(Intercept)".into(), "spo2".into()],
+                        terms: vec![term("subject", &pairs.iter().map(|q| q.0.clone()).collect::<Vec<_>>())],
+                    };
+                    let sm = Model::new(data, Criterion::Reml);
+                    let slope = sm.fit().map(|f| contrast(&sm, &f, "slope on SpO2", &[0.0, 1.0]));
+                    st.agreement.push((m.label.clone(), a, slope));
+                }
+            }
+        }
+    }
+    // Agreement between methods on the same segments and captures.
+    for (i, ma) in study.methods.iter().enumerate() {
+        for mb in &study.methods[i + 1..] {
+            for kind in ["arteriole", "venule"] {
+                let get = |label: &str| -> BTreeMap<(usize, String), f64> {
+                    fits.iter()
+                        .filter(|r| r.method == label && r.kind == kind && c[r.capture_index].status == "steady")
+                        .filter_map(|r| Some(((r.capture_index, r.segment.clone()), r.so2.filter(|v| v.is_finite())?)))
+                        .collect()
+                };
+                let (a, b) = (get(&ma.label), get(&mb.label));
+                let pairs: Vec<(String, f64, f64)> = a.iter().filter_map(|(k, va)| b.get(k).map(|vb| (c[k.0].subject.clone(), *va, *vb))).collect();
+                if let Some(ag) = agreement(&pairs) {
+                    let label = format!("{} vs {}", ma.label, mb.label);
+                    for (q, v) in [("bias", ag.bias), ("loa_lower", ag.lower), ("loa_upper", ag.upper), ("pairs", ag.n as f64)] {
+                        st.comparison.push((label.clone(), kind.into(), q.into(), v));
+                    }
                 }
             }
         }
@@ -169,8 +266,29 @@ impl Statistics {
             .real("precision", a.iter().map(|r| r.1.precision))
             .real("arms", a.iter().map(|r| r.1.arms))
             .real("loa_lower", a.iter().map(|r| r.1.lower))
-            .real("loa_upper", a.iter().map(|r| r.1.upper));
+            .real("loa_upper", a.iter().map(|r| r.1.upper))
+            .opt_real("slope_on_spo2", a.iter().map(|r| r.2.as_ref().map(|t| t.estimate)))
+            .opt_real("slope_se", a.iter().map(|r| r.2.as_ref().map(|t| t.std_error)))
+            .opt_real("slope_df", a.iter().map(|r| r.2.as_ref().map(|t| t.df)))
+            .opt_real("slope_lower_95", a.iter().map(|r| r.2.as_ref().map(|t| t.lower)))
+            .opt_real("slope_upper_95", a.iter().map(|r| r.2.as_ref().map(|t| t.upper)));
         t.write(&dir, "agreement")?;
+        let q = &self.paired;
+        let mut t = Table::new();
+        t.text("method", q.iter().map(|r| &r.0))
+            .text("kind", q.iter().map(|r| &r.1))
+            .text("epoch", q.iter().map(|r| &r.2))
+            .int("subjects", q.iter().map(|r| r.3))
+            .real("mean_difference", q.iter().map(|r| r.4))
+            .real("std_error", q.iter().map(|r| r.5))
+            .real("df", q.iter().map(|r| r.6))
+            .real("t", q.iter().map(|r| r.7))
+            .real("p", q.iter().map(|r| r.8));
+        t.write(&dir, "paired")?;
+        let m = &self.comparison;
+        let mut t = Table::new();
+        t.text("method", m.iter().map(|r| &r.0)).text("kind", m.iter().map(|r| &r.1)).text("quantity", m.iter().map(|r| &r.2)).real("value", m.iter().map(|r| r.3));
+        t.write(&dir, "methods")?;
         Ok(())
     }
 }

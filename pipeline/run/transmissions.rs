@@ -102,7 +102,7 @@ pub fn build(study: &Study, epochs: &EpochTables) -> ImageTables {
         let results: Vec<(usize, ImageStatus, Vec<PositionRow>)> = analysed
             .par_iter()
             .map(|&i| {
-                let (st, rows) = analyse_capture(i, &files[i], &reference, &segs, nb, wb, &settings, study.instrument.pixel_size_um);
+                let (st, rows) = analyse_capture(i, i == ref_i, &files[i], &reference, &segs, nb, wb, &settings, study.instrument.pixel_size_um);
                 (i, st, rows)
             })
             .collect();
@@ -115,12 +115,17 @@ pub fn build(study: &Study, epochs: &EpochTables) -> ImageTables {
 }
 
 #[allow(clippy::too_many_arguments)]
-fn analyse_capture(i: usize, file: &Path, reference: &Multiband, segs: &[Segment], nb: usize, wb: usize, st: &ProfileSettings, px_um: f64) -> (ImageStatus, Vec<PositionRow>) {
+fn analyse_capture(i: usize, is_reference: bool, file: &Path, reference: &Multiband, segs: &[Segment], nb: usize, wb: usize, st: &ProfileSettings, px_um: f64) -> (ImageStatus, Vec<PositionRow>) {
     let img = match read_capture(file, nb, Some((reference.width, reference.height))) {
         Ok(m) => m,
         Err(e) => return (ImageStatus { status: "error".into(), message: Some(e.to_string()), registration: None }, vec![]),
     };
-    let reg = register(&reference.bands[wb], &img.bands[wb], img.width, img.height, 2.0);
+    // The reference capture defines the eye's coordinates: identity.
+    let reg = if is_reference {
+        Registration { dx: 0.0, dy: 0.0, angle_deg: 0.0, score: 1.0 }
+    } else {
+        register(&reference.bands[wb], &img.bands[wb], img.width, img.height, 2.0)
+    };
     if reg.score < MIN_REGISTRATION_SCORE {
         let msg = format!("match score {:.3} below {MIN_REGISTRATION_SCORE}", reg.score);
         return (ImageStatus { status: "not-registered".into(), message: Some(msg), registration: Some(reg) }, vec![]);
