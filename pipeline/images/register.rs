@@ -27,11 +27,17 @@ pub struct Registration {
     pub score: f64,
 }
 
+/// The rigid motion `q = R(angle)(p − c) + c + (dx, dy)`, shared by
+/// registration and the simulator's eye motion.
+pub fn rigid(dx: f64, dy: f64, angle_deg: f64, (x, y): (f64, f64), cx: f64, cy: f64) -> (f64, f64) {
+    let (s, c) = angle_deg.to_radians().sin_cos();
+    let (u, v) = (x - cx, y - cy);
+    (cx + c * u - s * v + dx, cy + s * u + c * v + dy)
+}
+
 impl Registration {
-    pub fn apply(&self, (x, y): (f64, f64), cx: f64, cy: f64) -> (f64, f64) {
-        let (s, c) = self.angle_deg.to_radians().sin_cos();
-        let (u, v) = (x - cx, y - cy);
-        (cx + c * u - s * v + self.dx, cy + s * u + c * v + self.dy)
+    pub fn apply(&self, p: (f64, f64), cx: f64, cy: f64) -> (f64, f64) {
+        rigid(self.dx, self.dy, self.angle_deg, p, cx, cy)
     }
 }
 

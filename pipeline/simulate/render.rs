@@ -30,10 +30,8 @@ pub struct Motion {
 
 impl Motion {
     /// Reference-capture coordinates → this capture's coordinates.
-    pub fn apply(&self, (x, y): (f64, f64), cx: f64, cy: f64) -> (f64, f64) {
-        let (s, c) = self.angle_deg.to_radians().sin_cos();
-        let (u, v) = (x - cx, y - cy);
-        (cx + c * u - s * v + self.dx, cy + s * u + c * v + self.dy)
+    pub fn apply(&self, p: (f64, f64), cx: f64, cy: f64) -> (f64, f64) {
+        crate::images::register::rigid(self.dx, self.dy, self.angle_deg, p, cx, cy)
     }
 }
 
