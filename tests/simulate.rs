@@ -148,6 +148,14 @@ fn simulated_reference_and_truth_are_physiological() {
     let f: Vec<&str> = row.split(',').collect();
     assert_eq!(f[3], "8");
     assert!(f[4].parse::<f64>().unwrap() < -5.0 && f[8].parse::<f64>().unwrap() < 1e-3, "{row}");
+    // Arteriovenous differences on air are positive (arterioles above venules).
+    let sums = std::fs::read_to_string(out.join("results/statistics/summaries.csv")).unwrap();
+    let av: Vec<f64> = sums.lines().filter(|l| l.starts_with("multiband,arteriovenous,") && l.split(',').nth(3) == Some("air")).map(|l| l.split(',').nth(6).unwrap().parse().unwrap()).collect();
+    assert_eq!(av.len(), 8);
+    assert!(av.iter().all(|d| (15.0..50.0).contains(d)), "{av:?}");
+    let methods = std::fs::read_to_string(out.join("results/statistics/methods.csv")).unwrap();
+    assert!(methods.contains("multiband-pointwise,arteriole,along_segment_sd,"), "{methods}");
+    assert!(methods.contains("two-band vs multiband,arteriole,bias,"), "{methods}");
     // Arteriolar SO2 rises with the reference SpO2.
     let ag = std::fs::read_to_string(out.join("results/statistics/agreement.csv")).unwrap();
     let head: Vec<&str> = ag.lines().next().unwrap().split(',').collect();

@@ -37,6 +37,8 @@ pub struct FitRow {
     pub termination: String,
     pub positions: i64,
     pub diameter_um: f64,
+    /// SD of the per-position estimates along the segment (pointwise fits).
+    pub along_sd: Option<f64>,
 }
 
 pub fn build(study: &Study, epochs: &EpochTables, images: &ImageTables) -> Vec<FitRow> {
@@ -73,6 +75,7 @@ pub fn build(study: &Study, epochs: &EpochTables, images: &ImageTables) -> Vec<F
                     termination: String::new(),
                     positions: pos.len() as i64,
                     diameter_um: diameter,
+                    along_sd: None,
                 };
                 if pos.len() < MIN_POSITIONS {
                     row.termination = format!("too few usable positions ({} < {MIN_POSITIONS})", pos.len());
@@ -103,6 +106,7 @@ pub fn build(study: &Study, epochs: &EpochTables, images: &ImageTables) -> Vec<F
                             if f.so2.is_finite() {
                                 row.so2 = Some(f.so2 * 100.0);
                                 row.so2_se = Some(f.so2_se * 100.0);
+                                row.along_sd = Some(f.so2_sd * 100.0).filter(|v| v.is_finite());
                             }
                             row.iterations = f.positions.iter().map(|p| p.iterations as i64).sum();
                             row.evaluations = f.positions.iter().map(|p| p.evaluations as i64).sum();

@@ -104,6 +104,10 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
             let mut comp = |q: &str, v: f64| st.comparison.push((m.label.clone(), kind.into(), q.into(), v));
             comp("repeatability_sd", if dfw > 0.0 { (ss / dfw).sqrt() } else { f64::NAN });
             comp("mean_segment_se", if ses.is_empty() { f64::NAN } else { ses.iter().sum::<f64>() / ses.len() as f64 });
+            let along: Vec<f64> = rows.iter().filter_map(|r| r.along_sd).collect();
+            if !along.is_empty() {
+                comp("along_segment_sd", along.iter().sum::<f64>() / along.len() as f64);
+            }
             comp("values", all.len() as f64);
             comp("share_outside_0_100", if all.is_empty() { f64::NAN } else { outside as f64 / all.len() as f64 });
             // Slope of the retinal change on the SpO2 change (per subject and
@@ -203,6 +207,30 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
                     st.agreement.push((m.label.clone(), a, slope));
                 }
             }
+        }
+    }
+    // Arteriovenous difference per method, subject and epoch: per capture
+    // the mean arteriolar minus the mean venular SO2, then over captures.
+    for m in &study.methods {
+        let mut per: BTreeMap<usize, (Vec<f64>, Vec<f64>)> = BTreeMap::new();
+        for r in fits.iter().filter(|r| r.method == m.label && c[r.capture_index].status == "steady") {
+            if let Some(v) = r.so2.filter(|v| v.is_finite()) {
+                let e = per.entry(r.capture_index).or_default();
+                if r.kind == "arteriole" { e.0.push(v) } else { e.1.push(v) }
+            }
+        }
+        let mut by: BTreeMap<(String, String), Vec<(f64, i64)>> = BTreeMap::new();
+        for (ci, (a, v)) in &per {
+            if !a.is_empty() && !v.is_empty() {
+                let d = a.iter().sum::<f64>() / a.len() as f64 - v.iter().sum::<f64>() / v.len() as f64;
+                by.entry((c[*ci].subject.clone(), c[*ci].epoch.clone().unwrap_or_default())).or_default().push((d, (a.len() + v.len()) as i64));
+            }
+        }
+        for ((s, e), d) in by {
+            let n = d.len() as f64;
+            let mean = d.iter().map(|x| x.0).sum::<f64>() / n;
+            let sd = if n > 1.0 { (d.iter().map(|x| (x.0 - mean).powi(2)).sum::<f64>() / (n - 1.0)).sqrt() } else { f64::NAN };
+            st.summaries.push((m.label.clone(), "arteriovenous".into(), s, e, d.len() as i64, d.iter().map(|x| x.1).sum(), mean, sd));
         }
     }
     // Agreement between methods on the same segments and captures.
