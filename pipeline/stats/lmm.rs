@@ -110,6 +110,9 @@ pub struct Fit {
     pub converged: bool,
     pub evaluations: u64,
     pub n_obs: usize,
+    /// Asymptotic covariance of φ = (θ, σ), `2·H⁻¹` with H the Hessian of
+    /// −2ℓ(φ) at the optimum; computed once per fit for Satterthwaite's df.
+    pub varpar_cov: Option<DMatrix<f64>>,
 }
 
 /// A variance component as reported: per term, the covariance matrix of
@@ -352,7 +355,13 @@ impl Model {
             Criterion::Ml => a.pwrss / n,
             Criterion::Reml => a.pwrss / (n - p),
         };
+        let mut phi = theta.clone();
+        phi.push(s2.sqrt());
+        let np = phi.len();
+        let dev = |v: &[f64]| self.deviance_at(&v[..np - 1], v[np - 1]);
+        let varpar_cov = hessian(&dev, &phi).try_inverse().map(|h| h * 2.0);
         Some(Fit {
+            varpar_cov,
             criterion: self.criterion,
             sigma: s2.sqrt(),
             beta: a.beta.iter().copied().collect(),
@@ -382,17 +391,13 @@ impl Model {
 
     /// Satterthwaite degrees of freedom for `l'β`.
     pub fn satterthwaite(&self, fit: &Fit, l: &[f64]) -> f64 {
+        let Some(a) = &fit.varpar_cov else { return f64::NAN };
         let mut phi = fit.theta.clone();
         phi.push(fit.sigma);
         let np = phi.len();
-        let dev = |v: &[f64]| self.deviance_at(&v[..np - 1], v[np - 1]);
-        let h = hessian(&dev, &phi);
         let lv = DVector::from_column_slice(l);
         let var = |v: &[f64]| self.vcov_at(&v[..np - 1], v[np - 1]).map(|c| (lv.transpose() * c * &lv)[0]).unwrap_or(f64::NAN);
-        let g = gradient(&var, &phi);
-        let Some(hinv) = h.clone().try_inverse() else { return f64::NAN };
-        let a = hinv * 2.0;
-        let gv = DVector::from_vec(g);
+        let gv = DVector::from_vec(gradient(&var, &phi));
         let denom = (gv.transpose() * a * &gv)[0];
         let v0 = var(&phi);
         2.0 * v0 * v0 / denom
