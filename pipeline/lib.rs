@@ -18,6 +18,7 @@ pub mod oximetry;
 pub mod physiology;
 pub mod run;
 pub mod simulate;
+pub mod stages;
 pub mod stats;
 pub mod tables;
 pub mod timeline;

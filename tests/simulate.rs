@@ -4,27 +4,8 @@
 mod common;
 
 use std::collections::BTreeMap;
-use std::path::Path;
 
 use common::*;
-use sha2::{Digest, Sha256};
-
-fn hashes(root: &Path) -> BTreeMap<String, String> {
-    let mut out = BTreeMap::new();
-    let mut stack = vec![root.to_path_buf()];
-    while let Some(d) = stack.pop() {
-        for e in std::fs::read_dir(&d).unwrap() {
-            let p = e.unwrap().path();
-            if p.is_dir() {
-                stack.push(p);
-            } else {
-                let rel = p.strip_prefix(root).unwrap().to_string_lossy().into_owned();
-                out.insert(rel, format!("{:x}", Sha256::digest(std::fs::read(&p).unwrap())));
-            }
-        }
-    }
-    out
-}
 
 #[test]
 fn same_seed_same_bytes_whatever_the_jobs() {
@@ -178,12 +159,19 @@ fn one_broken_capture_does_not_stop_the_study() {
     std::fs::write(&bad, &bytes[..bytes.len() / 4]).unwrap();
     let run = satstep(dir.path(), &["run", a.to_str().unwrap()]);
     assert_eq!(run.code, 1, "{}", run.stderr);
-    assert!(run.stderr.contains("1 could not be read"), "{}", run.stderr);
-    assert!(run.stderr.contains("warning: captures/c003.tif: `"), "{}", run.stderr);
+    assert!(run.stderr.contains("1 captures could not be analysed"), "{}", run.stderr);
+    assert!(run.stderr.contains("warning: capture `captures/c003.tif` (error): `"), "{}", run.stderr);
     let caps = std::fs::read_to_string(a.join("results/transmissions/captures.csv")).unwrap();
     let line = caps.lines().find(|l| l.starts_with("V02,") && l.contains("captures/c003.tif")).unwrap();
     assert!(line.contains(",error,"), "{line}");
     // Two subjects × 8 captures, one broken.
     assert_eq!(caps.lines().filter(|l| l.contains(",ok,")).count(), 15, "{caps}");
     assert!(a.join("results/statistics/contrasts.csv").is_file());
+    // Run again: nothing to recompute, and the failure is still reported.
+    let again = satstep(dir.path(), &["run", a.to_str().unwrap()]);
+    assert_eq!(again.code, 1, "{}", again.stderr);
+    assert!(again.stderr.contains("images     up to date"), "{}", again.stderr);
+    assert!(again.stderr.contains("warning: capture `captures/c003.tif` (error)"), "{}", again.stderr);
+    let manifest = std::fs::read_to_string(a.join("results/manifest.json")).unwrap();
+    assert!(manifest.contains("\"error\": 1"), "{manifest}");
 }

@@ -63,6 +63,10 @@ pub enum Command {
     Run {
         /// The study file, or a folder holding `study.yaml`.
         study: PathBuf,
+        /// Run this stage even if it is up to date (repeatable; `all` for every stage).
+        /// Stages: epochs, images, fits, statistics, report.
+        #[arg(long, value_name = "STAGE", value_parser = clap::builder::PossibleValuesParser::new(["epochs", "images", "fits", "statistics", "report", "all"]))]
+        force: Vec<String>,
     },
     /// SO2 error from a 1 % transmission error per band, for veils 0–0.9.
     Sensitivity {
@@ -164,7 +168,7 @@ pub fn main_with_args(args: impl IntoIterator<Item = std::ffi::OsString>) -> Exi
     let result = match cli.command {
         Command::Check { study } => crate::run::check(&study, &printer),
         Command::Protocol { action: ProtocolAction::Show { file } } => crate::run::show_protocol(&file, &printer),
-        Command::Run { study } => crate::run::run(&study, &printer),
+        Command::Run { study, force } => crate::run::run(&study, &force, &printer),
         Command::Simulate { scenario, out } => crate::run::simulate(&scenario, &out, &printer),
         Command::Mixed { data, response, fixed, random, reference, contrast, ml, out } => {
             let args = crate::run::mixed::MixedArgs { data, response, fixed, random, reference, contrasts: contrast, ml, out };

@@ -69,6 +69,8 @@ pub struct Capture {
     pub eye: Eye,
     /// Where it was listed, for messages.
     pub source: PathBuf,
+    /// Not part of the capture's identity (cache keys, manifest).
+    #[serde(skip)]
     pub mark: Mark,
 }
 
@@ -138,6 +140,21 @@ pub struct Exclusions {
     pub captures: Vec<(String, String)>,
 }
 
+/// Settings of the statistics stage.
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+pub struct StatisticsSettings {
+    /// Coverage of the confidence intervals of contrasts and slopes.
+    pub confidence: f64,
+    /// Holm adjustment of the contrasts' p values within a method and kind.
+    pub holm: bool,
+}
+
+impl Default for StatisticsSettings {
+    fn default() -> Self {
+        StatisticsSettings { confidence: 0.95, holm: true }
+    }
+}
+
 #[derive(Debug, Clone, PartialEq, serde::Serialize)]
 pub struct Study {
     pub id: String,
@@ -150,6 +167,7 @@ pub struct Study {
     pub subjects: Vec<Subject>,
     pub methods: Vec<Method>,
     pub exclusions: Exclusions,
+    pub statistics: StatisticsSettings,
     pub output: PathBuf,
 }
 
@@ -164,7 +182,8 @@ pub fn resolve_study_path(arg: &Path) -> PathBuf {
     if arg.is_dir() { arg.join("study.yaml") } else { arg.to_path_buf() }
 }
 
-const STUDY_KEYS: &[&str] = &["study", "title", "protocol", "instrument", "subjects", "methods", "exclusions", "output"];
+const STUDY_KEYS: &[&str] = &["study", "title", "protocol", "instrument", "subjects", "methods", "exclusions", "statistics", "output"];
+const STATISTICS_KEYS: &[&str] = &["confidence", "adjust"];
 const INSTRUMENT_KEYS: &[&str] = &["name", "pixel_size_um", "bands"];
 const BAND_KEYS: &[&str] = &["name", "centre_nm", "fwhm_nm", "response"];
 const SUBJECT_KEYS: &[&str] = &["id", "age", "sex", "pigmentation", "sessions"];
@@ -260,6 +279,11 @@ fn read_study(r: &mut Reader, node: &Node, file: &Path, root: &Path) -> Option<S
         Some(n) => read_exclusions(r, n, &seen_subjects),
     };
 
+    let statistics = match m.get("statistics") {
+        None => Some(StatisticsSettings::default()),
+        Some(n) => read_statistics(r, n),
+    };
+
     let output = match m.get("output") {
         None => root.join("results"),
         Some(n) => root.join(r.text(n, "`output`").unwrap_or_else(|| "results".into())),
@@ -276,6 +300,7 @@ fn read_study(r: &mut Reader, node: &Node, file: &Path, root: &Path) -> Option<S
         subjects,
         methods,
         exclusions: exclusions?,
+        statistics: statistics?,
         output,
     })
 }
@@ -728,6 +753,31 @@ fn read_calibration(r: &mut Reader, node: &Node, protocol: Option<&Protocol>) ->
             Some(Calibration::Regression)
         }
     }
+}
+
+fn read_statistics(r: &mut Reader, node: &Node) -> Option<StatisticsSettings> {
+    let m = r.map(node, "`statistics`", STATISTICS_KEYS)?;
+    let mut s = StatisticsSettings::default();
+    if let Some(n) = m.get("confidence") {
+        let v = r.number(n, "`confidence`")?;
+        if !(0.5..1.0).contains(&v) {
+            r.error(n.mark, format!("`confidence` is a coverage between 0.5 and 1 (0.95 for 95 % intervals), found {v}"));
+            return None;
+        }
+        s.confidence = v;
+    }
+    if let Some(n) = m.get("adjust") {
+        match r.text(n, "`adjust`")?.as_str() {
+            "holm" => s.holm = true,
+            "none" => s.holm = false,
+            other => {
+                let hint = super::diag::suggest(other, &["holm", "none"]);
+                r.error(n.mark, format!("`adjust` is `holm` or `none`, found `{other}`")).hint(hint);
+                return None;
+            }
+        }
+    }
+    Some(s)
 }
 
 fn read_exclusions(r: &mut Reader, node: &Node, subjects: &HashMap<String, Mark>) -> Option<Exclusions> {

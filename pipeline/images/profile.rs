@@ -23,7 +23,7 @@ use super::register::bilinear;
 use crate::fit::dense::DenseProblem;
 use crate::fit::{minimize, Options};
 
-#[derive(Debug, Clone, Copy, PartialEq)]
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
 pub struct ProfileSettings {
     /// Distance between profiles along the segment, px.
     pub spacing_px: f64,

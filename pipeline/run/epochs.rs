@@ -15,7 +15,7 @@ use crate::timeline::reference::{read_log, reference_at, ReferenceStatus};
 use crate::timeline::time::seconds_between;
 
 /// One row of the capture table.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct CaptureRow {
     pub subject: String,
     pub session: String,
@@ -35,7 +35,7 @@ pub struct CaptureRow {
     pub spo2_status: String,
 }
 
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct SpanRow {
     pub subject: String,
     pub session: String,
@@ -44,14 +44,18 @@ pub struct SpanRow {
     pub start_s: f64,
     pub settle_end_s: f64,
     pub end_s: f64,
-    pub start_source: &'static str,
+    pub start_source: String,
     pub o2_fraction: f64,
 }
 
+#[derive(serde::Serialize, serde::Deserialize)]
 pub struct EpochTables {
     pub captures: Vec<CaptureRow>,
     pub spans: Vec<SpanRow>,
 }
+
+/// Version of this stage's computation; bump when its results change.
+pub const VERSION: u32 = 1;
 
 /// Assigns every capture. Log problems were already reported by the check;
 /// a session whose log cannot be read gets `missing` references.
@@ -73,7 +77,7 @@ pub fn build(study: &Study) -> EpochTables {
                     start_s: s.start_s,
                     settle_end_s: s.settle_end_s,
                     end_s: s.end_s,
-                    start_source: if s.recorded { "recorded" } else { "planned" },
+                    start_source: if s.recorded { "recorded" } else { "planned" }.to_string(),
                     o2_fraction: p.epochs[s.epoch].gas.o2_fraction,
                 });
             }
@@ -146,7 +150,7 @@ impl EpochTables {
             .real("start_s", s.iter().map(|r| r.start_s))
             .real("settle_end_s", s.iter().map(|r| r.settle_end_s))
             .real("end_s", s.iter().map(|r| r.end_s))
-            .text("start_source", s.iter().map(|r| r.start_source))
+            .text("start_source", s.iter().map(|r| &r.start_source))
             .real("o2_fraction", s.iter().map(|r| r.o2_fraction));
         paths.extend(t.write(&dir, "spans")?);
         Ok(paths)

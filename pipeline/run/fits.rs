@@ -17,16 +17,18 @@ use crate::oximetry::pointwise::fit_pointwise;
 use crate::oximetry::segment::{fit_segment, FitSettings, RobustLoss, SegmentSpectra};
 use crate::run::epochs::EpochTables;
 use crate::run::transmissions::{ImageTables, PositionRow};
+use crate::stages::key::{Key, KeyBuilder};
+use crate::stages::Items;
 use crate::tables::Table;
 
 /// Fewest unflagged positions a segment needs to be fitted.
 pub const MIN_POSITIONS: usize = 8;
 
-#[derive(Debug, Clone)]
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 pub struct FitRow {
     pub capture_index: usize,
     pub segment: String,
-    pub kind: &'static str,
+    pub kind: String,
     pub method: String,
     pub so2: Option<f64>,
     pub so2_se: Option<f64>,
@@ -41,7 +43,17 @@ pub struct FitRow {
     pub along_sd: Option<f64>,
 }
 
-pub fn build(study: &Study, epochs: &EpochTables, images: &ImageTables) -> Vec<FitRow> {
+/// Version of this stage's computation; bump when its results change.
+pub const VERSION: u32 = 1;
+
+/// The stage's settings: the methods and the bands they read.
+pub fn settings_key(study: &Study) -> Key {
+    let mut k = KeyBuilder::new("fits-settings", VERSION);
+    k.value("methods", &study.methods).value("bands", &study.instrument.bands).value("min-positions", &MIN_POSITIONS);
+    k.finish()
+}
+
+pub fn build(study: &Study, epochs: &EpochTables, images: &ImageTables, items: &Items) -> Vec<FitRow> {
     let bands: Vec<SampledBand> = study.instrument.bands.iter().map(|b| SampledBand::from_response(&b.response)).collect();
     let mut groups: BTreeMap<(usize, String), Vec<&PositionRow>> = BTreeMap::new();
     for r in &images.positions {
@@ -50,21 +62,19 @@ pub fn build(study: &Study, epochs: &EpochTables, images: &ImageTables) -> Vec<F
         }
     }
     // Every (capture, segment) that the image stage profiled, even with too few positions.
-    let mut keys: Vec<(usize, String, &'static str)> = images.positions.iter().map(|r| (r.capture_index, r.segment.clone(), r.kind)).collect();
+    let mut keys: Vec<(usize, String, String)> = images.positions.iter().map(|r| (r.capture_index, r.segment.clone(), r.kind.clone())).collect();
     keys.dedup();
     keys.sort();
     keys.dedup();
     let mut out = Vec::new();
     for m in &study.methods {
-        let rows: Vec<FitRow> = keys
-            .par_iter()
-            .map(|(ci, seg, kind)| {
+        let fit_one = |(ci, seg, kind): &(usize, String, String)| -> FitRow {
                 let pos = groups.get(&(*ci, seg.clone())).cloned().unwrap_or_default();
                 let diameter = if pos.is_empty() { f64::NAN } else { pos.iter().map(|p| p.diameter_um).sum::<f64>() / pos.len() as f64 };
                 let mut row = FitRow {
                     capture_index: *ci,
                     segment: seg.clone(),
-                    kind,
+                    kind: kind.clone(),
                     method: m.label.clone(),
                     so2: None,
                     so2_se: None,
@@ -124,9 +134,32 @@ pub fn build(study: &Study, epochs: &EpochTables, images: &ImageTables) -> Vec<F
                     }
                 }
                 row
-            })
-            .collect();
-        let mut rows = rows;
+        };
+        let mut rows: Vec<FitRow> = match &m.kind {
+            // Multiband fits are the slow part: kept per capture, so that an
+            // interrupted run or a changed capture refits only what it must.
+            MethodKind::Multiband { .. } => {
+                let mut by_capture: BTreeMap<usize, Vec<(usize, String, String)>> = BTreeMap::new();
+                for k in &keys {
+                    by_capture.entry(k.0).or_default().push(k.clone());
+                }
+                let groups: Vec<(usize, Vec<(usize, String, String)>)> = by_capture.into_iter().collect();
+                let per: Vec<Vec<FitRow>> = groups
+                    .par_iter()
+                    .map(|(ci, segs)| {
+                        let mut k = KeyBuilder::new("fits-capture", VERSION);
+                        k.value("method", m).value("bands", &study.instrument.bands).value("min-positions", &MIN_POSITIONS).key("images", &images.keys[*ci]);
+                        let rows: Vec<FitRow> = items.get_or_compute(&k.finish(), || segs.iter().map(fit_one).collect());
+                        rows.into_iter().map(|mut r| {
+                            r.capture_index = *ci;
+                            r
+                        }).collect()
+                    })
+                    .collect();
+                per.into_iter().flatten().collect()
+            }
+            MethodKind::TwoBand { .. } => keys.par_iter().map(fit_one).collect(),
+        };
         if let MethodKind::TwoBand { calibration, .. } = &m.kind {
             calibrate(&mut rows, calibration, study, epochs);
         }
@@ -178,7 +211,7 @@ fn calibrate(rows: &mut [FitRow], cal: &Calibration, study: &Study, epochs: &Epo
     }
 }
 
-pub fn write(rows: &[FitRow], epochs: &EpochTables, out: &Path) -> Result<()> {
+pub fn write(rows: &[FitRow], epochs: &EpochTables, out: &Path) -> Result<Vec<std::path::PathBuf>> {
     let c = &epochs.captures;
     let mut t = Table::new();
     t.text("subject", rows.iter().map(|r| &c[r.capture_index].subject))
@@ -188,7 +221,7 @@ pub fn write(rows: &[FitRow], epochs: &EpochTables, out: &Path) -> Result<()> {
         .opt_text("epoch", rows.iter().map(|r| c[r.capture_index].epoch.clone()))
         .text("status", rows.iter().map(|r| &c[r.capture_index].status))
         .text("segment", rows.iter().map(|r| &r.segment))
-        .text("kind", rows.iter().map(|r| r.kind))
+        .text("kind", rows.iter().map(|r| &r.kind))
         .text("method", rows.iter().map(|r| &r.method))
         .opt_real("so2", rows.iter().map(|r| r.so2))
         .opt_real("so2_se", rows.iter().map(|r| r.so2_se))
@@ -200,6 +233,5 @@ pub fn write(rows: &[FitRow], epochs: &EpochTables, out: &Path) -> Result<()> {
         .int("positions", rows.iter().map(|r| r.positions))
         .real("diameter_um", rows.iter().map(|r| r.diameter_um))
         .opt_real("spo2", rows.iter().map(|r| c[r.capture_index].spo2));
-    t.write(&out.join("fits"), "so2")?;
-    Ok(())
+    t.write(&out.join("fits"), "so2")
 }

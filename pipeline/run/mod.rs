@@ -9,14 +9,19 @@ pub mod sensitivity;
 
 use std::path::Path;
 
-use anyhow::Result;
+use std::collections::BTreeMap;
+use std::path::PathBuf;
+
+use anyhow::{Context, Result};
+use rayon::prelude::*;
 
 use crate::cli::printer::Printer;
 use crate::cli::Exit;
 use crate::config::duration::format_seconds;
 use crate::config::protocol::{load_protocol, Protocol};
 use crate::config::study::{load_study, resolve_study_path, Study};
-use crate::timeline::assign::CaptureStatus;
+use crate::stages::key::{combine, hash_file, hash_file_or_missing, Key, KeyBuilder};
+use crate::stages::{manifest, Parts, Runner};
 
 /// Validates a study and everything it names. Writes nothing.
 pub fn check(arg: &Path, printer: &Printer) -> Result<Exit> {
@@ -147,8 +152,9 @@ pub fn simulate(scenario: &Path, out: &Path, printer: &Printer) -> Result<Exit> 
     Ok(Exit::Ok)
 }
 
-/// Runs a study with the stages that exist so far.
-pub fn run(arg: &Path, printer: &Printer) -> Result<Exit> {
+/// Runs a study: simulates a demo folder's data on first use, validates
+/// the study and runs its stages through the cache.
+pub fn run(arg: &Path, force: &[String], printer: &Printer) -> Result<Exit> {
     let path = resolve_study_path(arg);
     // A demo or planning folder ships its scenario; its data are generated on first use.
     let dir = if arg.is_dir() { arg.to_path_buf() } else { arg.parent().map(Path::to_path_buf).unwrap_or_default() };
@@ -165,62 +171,174 @@ pub fn run(arg: &Path, printer: &Printer) -> Result<Exit> {
         printer.error(format!("`{}` has {} errors; the run did not start", path.display(), findings.error_count()));
         return Ok(Exit::Problem);
     };
-    run_stages(&study, printer)
+    run_stages(&study, force, printer)
 }
 
-fn run_stages(study: &Study, printer: &Printer) -> Result<Exit> {
-    printer.info(format!("study `{}`: {} subjects, {} captures", study.id, study.subjects.len(), study.capture_count()));
-    let tables = crate::run::epochs::build(study);
-    let written = tables.write(&study.output)?;
-    printer.info(format!(
-        "epochs: {} captures placed: {} steady, {} settling, {} outside the protocol, {} excluded",
-        tables.captures.len(),
-        tables.count(CaptureStatus::Steady),
-        tables.count(CaptureStatus::Settling),
-        tables.count(CaptureStatus::Outside),
-        tables.captures.iter().filter(|c| c.status == "excluded").count()
-    ));
-    for p in &written {
-        printer.verbose(format!("  wrote `{}`", p.display()));
+/// Every file the run reads, in a fixed order.
+fn input_files(study: &Study) -> Vec<PathBuf> {
+    let mut v = vec![study.file.clone()];
+    v.extend(study.protocol_file.clone());
+    for sess in study.subjects.iter().flat_map(|s| &s.sessions) {
+        let mut lists: Vec<PathBuf> = sess.captures.iter().map(|c| c.source.clone()).filter(|p| *p != study.file).collect();
+        lists.dedup();
+        v.extend(lists);
+        v.extend(sess.reference.as_ref().map(|r| r.path.clone()));
+        v.extend(sess.segments.values().cloned());
+        v.extend(sess.captures.iter().map(|c| c.path.clone()));
     }
-    printer.info(format!("wrote the capture and epoch tables under `{}`", study.output.join("epochs").display()));
+    let mut seen = std::collections::BTreeSet::new();
+    v.retain(|p| seen.insert(p.clone()));
+    v
+}
 
+fn epochs_settings(study: &Study) -> Key {
+    let mut k = KeyBuilder::new("epochs-settings", epochs::VERSION);
+    k.value("protocol", &study.protocol).value("subjects", &study.subjects).value("exclusions", &study.exclusions);
+    k.finish()
+}
+
+fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit> {
+    printer.info(format!("study `{}`: {} subjects, {} captures; results under `{}`", study.id, study.subjects.len(), study.capture_count(), study.output.display()));
+    let out = &study.output;
+    std::fs::create_dir_all(out).with_context(|| format!("creating the output folder `{}`", out.display()))?;
+    let mut runner = Runner::new(out, printer, force);
+
+    // Content hashes of everything the run reads, once, in parallel.
     let t0 = std::time::Instant::now();
-    let images = crate::run::transmissions::build(study, &tables);
-    images.write(&study.output, study, &tables)?;
-    let count = |s: &str| images.status.iter().filter(|x| x.status == s).count();
-    printer.info(format!(
-        "images: {} captures analysed, {} could not be read, {} did not register; {} profile positions ({:.1} s)",
-        count("ok"),
-        count("error"),
-        count("not-registered"),
-        images.positions.len(),
-        t0.elapsed().as_secs_f64()
-    ));
-    for (row, st) in tables.captures.iter().zip(&images.status) {
-        if st.status == "error" || st.status == "not-registered" {
-            printer.warn(format!("{}: {}", row.capture, st.message.clone().unwrap_or_default()));
+    let inputs = input_files(study);
+    let hashed: Vec<(PathBuf, Option<(Key, u64)>)> = inputs
+        .par_iter()
+        .map(|p| (p.clone(), hash_file(p).ok().map(|k| (k, std::fs::metadata(p).map(|m| m.len()).unwrap_or(0)))))
+        .collect();
+    let hashes: BTreeMap<PathBuf, Key> = hashed.iter().filter_map(|(p, h)| h.map(|(k, _)| (p.clone(), k))).collect();
+    printer.verbose(format!("hashed {} input files in {:.1} s", hashed.len(), t0.elapsed().as_secs_f64()));
+    let hash = |p: &Path| hashes.get(p).copied().unwrap_or_else(|| hash_file_or_missing(p));
+
+    // Epochs and reference SpO2.
+    let logs = combine("spo2-logs", study.subjects.iter().flat_map(|s| &s.sessions).filter_map(|s| s.reference.as_ref()).map(|r| hash(&r.path)));
+    let (tables, epochs_key) = runner.stage(
+        "epochs",
+        epochs::VERSION,
+        Parts { settings: epochs_settings(study), inputs: logs, upstream: vec![] },
+        |_| {
+            let t = epochs::build(study);
+            let n = |s: &str| t.captures.iter().filter(|c| c.status == s).count();
+            let d = format!("{} captures: {} steady, {} settling, {} outside the protocol, {} excluded", t.captures.len(), n("steady"), n("settling"), n("outside"), n("excluded"));
+            Ok((t, d))
+        },
+        |t| t.write(out),
+    )?;
+
+    // Images → transmissions, capture by capture.
+    let keys = transmissions::item_keys(study, &tables, &hashes);
+    let (images, images_key) = runner.stage(
+        "images",
+        transmissions::VERSION,
+        Parts { settings: transmissions::settings_key(study), inputs: combine("captures", keys.iter().copied()), upstream: vec![("epochs", epochs_key)] },
+        |r| {
+            let analysed = tables.captures.iter().filter(|c| matches!(c.status.as_str(), "steady" | "settling")).count();
+            let items = r.items("images", analysed, "images");
+            let t = transmissions::build(study, &tables, keys.clone(), &items);
+            let detail = items.finish("captures")?;
+            let d = format!("{detail}; {} profile positions", t.positions.len());
+            Ok((t, d))
+        },
+        |t| t.write(out, study, &tables),
+    )?;
+    let failed: Vec<usize> = (0..tables.captures.len()).filter(|i| matches!(images.status[*i].status.as_str(), "error" | "not-registered")).collect();
+    for &i in &failed {
+        runner.warn(format!("capture `{}` ({}): {}", tables.captures[i].capture, images.status[i].status, images.status[i].message.clone().unwrap_or_default()));
+    }
+
+    // Fits per method.
+    let (fits, fits_key) = runner.stage(
+        "fits",
+        fits::VERSION,
+        Parts { settings: fits::settings_key(study), inputs: combine("none", []), upstream: vec![("epochs", epochs_key), ("images", images_key)] },
+        |r| {
+            let n = images.keys.len() * study.methods.iter().filter(|m| matches!(m.kind, crate::config::study::MethodKind::Multiband { .. })).count();
+            let items = r.items("fits", n, "fits");
+            let rows = fits::build(study, &tables, &images, &items);
+            let detail = items.finish("multiband capture fits")?;
+            let d = format!("{} segment fits over {} methods, {} with an SO2 ({detail})", rows.len(), study.methods.len(), rows.iter().filter(|f| f.so2.is_some()).count());
+            Ok((rows, d))
+        },
+        |rows| fits::write(rows, &tables, out),
+    )?;
+
+    // Statistics.
+    let (stats, _stats_key) = runner.stage(
+        "statistics",
+        statistics::VERSION,
+        Parts { settings: statistics::settings_key(study), inputs: combine("none", []), upstream: vec![("epochs", epochs_key), ("fits", fits_key)] },
+        |_| {
+            let s = statistics::build(study, &tables, &fits);
+            let d = format!("{} subject × epoch summaries, {} contrasts, {} agreement rows", s.summaries.len(), s.contrasts.len(), s.agreement.len());
+            Ok((s, d))
+        },
+        |s| s.write(out),
+    )?;
+    for (m, k, t, h) in &stats.contrasts {
+        printer.info(format!("  {m} {k}: {} = {:+.2} points ({:.0} % CI {:+.2} to {:+.2}, df {:.1}, adjusted p {:.2e})", t.label, t.estimate, study.statistics.confidence * 100.0, t.lower, t.upper, t.df, h));
+    }
+
+    let exit = if failed.is_empty() { Exit::Ok } else { Exit::Problem };
+    let manifest = manifest::Manifest {
+        tool: "satstep",
+        version: env!("CARGO_PKG_VERSION"),
+        cache_format: crate::stages::key::CACHE_FORMAT,
+        finished_utc: chrono::Utc::now().format("%Y-%m-%dT%H:%M:%S%.3fZ").to_string(),
+        command: std::env::args().collect(),
+        study_file: study.file.display().to_string(),
+        study: serde_json::to_value(study)?,
+        inputs: hashed.iter().map(|(p, h)| manifest::InputFile { path: p.display().to_string(), sha256: h.map(|x| x.0.hex()).unwrap_or_else(|| "unreadable".into()), bytes: h.map(|x| x.1).unwrap_or(0) }).collect(),
+        seeds: seeds(study),
+        stages: runner.log.clone(),
+        captures: capture_counts(&tables, &images, &fits),
+        warnings: runner.warnings.lock().expect("not poisoned").clone(),
+        exit_status: exit as i32,
+    };
+    manifest.write(out)?;
+    printer.info(format!("wrote `{}`", out.join("manifest.json").display()));
+    if !failed.is_empty() {
+        printer.warn(format!("{} captures could not be analysed (see `transmissions/captures.csv`); everything else was written", failed.len()));
+    }
+    Ok(exit)
+}
+
+/// The analysis draws no random numbers; a simulated study's seed is kept.
+fn seeds(study: &Study) -> BTreeMap<String, String> {
+    let mut s = BTreeMap::new();
+    s.insert("analysis".into(), "none: no stage draws random numbers".into());
+    if let Ok(text) = std::fs::read_to_string(study.root.join("truth").join("rendering.yaml")) {
+        // The simulator names its seed in the file's first line: "(seed N)".
+        if let Some(rest) = text.lines().next().and_then(|l| l.split("(seed ").nth(1)) {
+            s.insert("simulation".into(), rest.chars().take_while(char::is_ascii_digit).collect());
         }
     }
-    let t0 = std::time::Instant::now();
-    let fits = crate::run::fits::build(study, &tables, &images);
-    crate::run::fits::write(&fits, &tables, &study.output)?;
-    printer.info(format!(
-        "fits: {} segment fits over {} methods, {} with an SO2 ({:.1} s)",
-        fits.len(),
-        study.methods.len(),
-        fits.iter().filter(|f| f.so2.is_some()).count(),
-        t0.elapsed().as_secs_f64()
-    ));
-    let stats = crate::run::statistics::build(study, &tables, &fits);
-    stats.write(&study.output)?;
-    printer.info(format!("statistics: {} subject × epoch summaries, {} contrasts, {} agreement rows", stats.summaries.len(), stats.contrasts.len(), stats.agreement.len()));
-    for (m, k, t, h) in &stats.contrasts {
-        printer.info(format!("  {m} {k}: {} = {:+.2} points (95 % CI {:+.2} to {:+.2}, df {:.1}, Holm p {:.2e})", t.label, t.estimate, t.lower, t.upper, t.df, h));
+    s
+}
+
+fn capture_counts(tables: &epochs::EpochTables, images: &transmissions::ImageTables, fits: &[fits::FitRow]) -> manifest::CaptureCounts {
+    let mut with_so2 = vec![false; tables.captures.len()];
+    for f in fits {
+        if f.so2.is_some_and(f64::is_finite) {
+            with_so2[f.capture_index] = true;
+        }
     }
-    printer.info("not run yet: the report is not part of this version");
-    if count("error") + count("not-registered") > 0 {
-        return Ok(Exit::Problem);
+    let mut counts = manifest::CaptureCounts { listed: tables.captures.len(), ..Default::default() };
+    for (i, c) in tables.captures.iter().enumerate() {
+        let reason = if c.status != "steady" {
+            c.status.clone()
+        } else if images.status[i].status != "ok" {
+            images.status[i].status.clone()
+        } else if !with_so2[i] {
+            "no segment fitted".to_string()
+        } else {
+            counts.used += 1;
+            continue;
+        };
+        *counts.not_used.entry(reason).or_default() += 1;
     }
-    Ok(Exit::Ok)
+    counts
 }

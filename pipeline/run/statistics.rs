@@ -17,10 +17,11 @@ use crate::config::study::Study;
 use crate::run::epochs::EpochTables;
 use crate::run::fits::FitRow;
 use crate::stats::agreement::agreement;
-use crate::stats::infer::{contrast, holm, Test};
+use crate::stats::infer::{contrast_at, holm, Test};
 use crate::stats::lmm::{Criterion, LmmData, Model, RandomTerm};
 use crate::tables::Table;
 
+#[derive(serde::Serialize, serde::Deserialize)]
 pub struct Statistics {
     /// (method, kind, subject, epoch, captures, segments, mean, sd).
     pub summaries: Vec<(String, String, String, String, i64, i64, f64, f64)>,
@@ -40,6 +41,18 @@ fn term(name: &str, keys: &[String]) -> RandomTerm {
     levels.dedup();
     let group = keys.iter().map(|k| levels.binary_search(k).expect("present")).collect();
     RandomTerm { name: name.into(), levels, group, column_names: vec!["(Intercept)".into()], columns: vec![vec![1.0; keys.len()]] }
+}
+
+/// Version of this stage's computation; bump when its results change.
+pub const VERSION: u32 = 1;
+
+/// The stage's settings: its own section of the study, the protocol's
+/// epochs and contrasts, and the method labels it groups by.
+pub fn settings_key(study: &Study) -> crate::stages::key::Key {
+    let labels: Vec<&str> = study.methods.iter().map(|m| m.label.as_str()).collect();
+    let mut k = crate::stages::key::KeyBuilder::new("statistics-settings", VERSION);
+    k.value("statistics", &study.statistics).value("protocol", &study.protocol).value("methods", &labels);
+    k.finish()
 }
 
 pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics {
@@ -177,10 +190,11 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
                             l[1 + j] += w;
                         }
                     }
-                    contrast(&model, &fit, &ct.label, &l)
+                    contrast_at(&model, &fit, &ct.label, &l, study.statistics.confidence)
                 })
                 .collect();
-            let adj = holm(&tests.iter().map(|t| t.p).collect::<Vec<_>>());
+            let raw: Vec<f64> = tests.iter().map(|t| t.p).collect();
+            let adj = if study.statistics.holm { holm(&raw) } else { raw };
             for (t, h) in tests.into_iter().zip(adj) {
                 st.contrasts.push((m.label.clone(), kind.into(), t, h));
             }
@@ -203,7 +217,7 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
                         terms: vec![term("subject", &pairs.iter().map(|q| q.0.clone()).collect::<Vec<_>>())],
                     };
                     let sm = Model::new(data, Criterion::Reml);
-                    let slope = sm.fit().map(|f| contrast(&sm, &f, "slope on SpO2", &[0.0, 1.0]));
+                    let slope = sm.fit().map(|f| contrast_at(&sm, &f, "slope on SpO2", &[0.0, 1.0], study.statistics.confidence));
                     st.agreement.push((m.label.clone(), a, slope));
                 }
             }
@@ -258,7 +272,8 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
 }
 
 impl Statistics {
-    pub fn write(&self, out: &Path) -> Result<()> {
+    pub fn write(&self, out: &Path) -> Result<Vec<std::path::PathBuf>> {
+        let mut written = Vec::new();
         let dir = out.join("statistics");
         let s = &self.summaries;
         let mut t = Table::new();
@@ -270,7 +285,7 @@ impl Statistics {
             .int("segments", s.iter().map(|r| r.5))
             .real("mean_so2", s.iter().map(|r| r.6))
             .real("sd_so2", s.iter().map(|r| r.7));
-        t.write(&dir, "summaries")?;
+        written.extend(t.write(&dir, "summaries")?);
         let c = &self.contrasts;
         let mut t = Table::new();
         t.text("method", c.iter().map(|r| &r.0))
@@ -284,7 +299,7 @@ impl Statistics {
             .real("lower_95", c.iter().map(|r| r.2.lower))
             .real("upper_95", c.iter().map(|r| r.2.upper))
             .real("p_holm", c.iter().map(|r| r.3));
-        t.write(&dir, "contrasts")?;
+        written.extend(t.write(&dir, "contrasts")?);
         let a = &self.agreement;
         let mut t = Table::new();
         t.text("method", a.iter().map(|r| &r.0))
@@ -300,7 +315,7 @@ impl Statistics {
             .opt_real("slope_df", a.iter().map(|r| r.2.as_ref().map(|t| t.df)))
             .opt_real("slope_lower_95", a.iter().map(|r| r.2.as_ref().map(|t| t.lower)))
             .opt_real("slope_upper_95", a.iter().map(|r| r.2.as_ref().map(|t| t.upper)));
-        t.write(&dir, "agreement")?;
+        written.extend(t.write(&dir, "agreement")?);
         let q = &self.paired;
         let mut t = Table::new();
         t.text("method", q.iter().map(|r| &r.0))
@@ -312,11 +327,11 @@ impl Statistics {
             .real("df", q.iter().map(|r| r.6))
             .real("t", q.iter().map(|r| r.7))
             .real("p", q.iter().map(|r| r.8));
-        t.write(&dir, "paired")?;
+        written.extend(t.write(&dir, "paired")?);
         let m = &self.comparison;
         let mut t = Table::new();
         t.text("method", m.iter().map(|r| &r.0)).text("kind", m.iter().map(|r| &r.1)).text("quantity", m.iter().map(|r| &r.2)).real("value", m.iter().map(|r| r.3));
-        t.write(&dir, "methods")?;
-        Ok(())
+        written.extend(t.write(&dir, "methods")?);
+        Ok(written)
     }
 }

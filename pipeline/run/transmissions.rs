@@ -4,7 +4,7 @@
 //! be read or registered keeps its row with the reason; the others go on.
 
 use std::collections::BTreeMap;
-use std::path::Path;
+use std::path::{Path, PathBuf};
 
 use anyhow::Result;
 use rayon::prelude::*;
@@ -16,16 +16,18 @@ use crate::images::ingest::{read_capture, Multiband};
 use crate::images::profile::{analyse_segment, ProfileSettings};
 use crate::images::register::{register, Registration};
 use crate::run::epochs::EpochTables;
+use crate::stages::key::{hash_file_or_missing, Key, KeyBuilder};
+use crate::stages::Items;
 use crate::tables::Table;
 
 /// Lowest match score at which a capture counts as registered.
 pub const MIN_REGISTRATION_SCORE: f64 = 0.8;
 
-#[derive(Debug, Clone)]
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 pub struct PositionRow {
     pub capture_index: usize,
     pub segment: String,
-    pub kind: &'static str,
+    pub kind: String,
     pub position: usize,
     pub along_px: f64,
     pub diameter_um: f64,
@@ -33,17 +35,39 @@ pub struct PositionRow {
     pub transmission: Vec<f64>,
 }
 
-#[derive(Debug, Clone)]
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 pub struct ImageStatus {
     pub status: String,
     pub message: Option<String>,
     pub registration: Option<Registration>,
 }
 
+#[derive(serde::Serialize, serde::Deserialize)]
 pub struct ImageTables {
     pub positions: Vec<PositionRow>,
     /// One per capture row of the epoch table.
     pub status: Vec<ImageStatus>,
+    /// Each capture's cache key in this stage (downstream item keys build on it).
+    pub keys: Vec<Key>,
+}
+
+/// Version of this stage's computation; bump when its results change.
+pub const VERSION: u32 = 1;
+
+/// The profile settings for a study's instrument.
+pub fn profile_settings(study: &Study) -> ProfileSettings {
+    ProfileSettings { half_length_px: (220.0 / study.instrument.pixel_size_um).max(8.0) + 4.0, ..ProfileSettings::default() }
+}
+
+/// The stage's settings part: everything besides the files that changes what it computes.
+pub fn settings_key(study: &Study) -> Key {
+    let mut k = KeyBuilder::new("images-settings", VERSION);
+    k.value("bands", &study.instrument.bands.len())
+        .value("width-band", &width_band(study))
+        .value("pixel-size", &study.instrument.pixel_size_um)
+        .value("profile", &profile_settings(study))
+        .value("min-score", &MIN_REGISTRATION_SCORE);
+    k.finish()
 }
 
 /// The band used for registration and widths: the one nearest 570 nm
@@ -56,12 +80,60 @@ pub fn width_band(study: &Study) -> usize {
     (0..study.instrument.bands.len()).min_by(|a, b| (centre(&study.instrument.bands[*a].response) - 570.0).abs().total_cmp(&(centre(&study.instrument.bands[*b].response) - 570.0).abs())).unwrap_or(0)
 }
 
-pub fn build(study: &Study, epochs: &EpochTables) -> ImageTables {
+/// The capture file behind each row of the epoch table.
+pub fn capture_files(study: &Study, epochs: &EpochTables) -> Vec<PathBuf> {
+    epochs
+        .captures
+        .iter()
+        .map(|row| {
+            let sess = study.subjects.iter().find(|s| s.id == row.subject).and_then(|s| s.sessions.iter().find(|x| x.id == row.session));
+            sess.and_then(|s| s.captures.iter().find(|c| c.listed == row.capture)).map(|c| c.path.clone()).unwrap_or_default()
+        })
+        .collect()
+}
+
+/// Cache key of each capture: the stage settings, the capture's and its
+/// eye's reference capture's content, the eye's segments and whether the
+/// capture is analysed at all.
+pub fn item_keys(study: &Study, epochs: &EpochTables, hashes: &BTreeMap<PathBuf, Key>) -> Vec<Key> {
+    let settings = settings_key(study);
+    let files = capture_files(study, epochs);
+    let hash = |p: &Path| hashes.get(p).copied().unwrap_or_else(|| hash_file_or_missing(p));
+    let mut first: BTreeMap<(String, String, String), usize> = BTreeMap::new();
+    for (i, row) in epochs.captures.iter().enumerate() {
+        first.entry((row.subject.clone(), row.session.clone(), row.eye.clone())).or_insert(i);
+    }
+    epochs
+        .captures
+        .iter()
+        .enumerate()
+        .map(|(i, row)| {
+            let group = (row.subject.clone(), row.session.clone(), row.eye.clone());
+            let ref_i = first[&group];
+            let segs = segments_file(study, &row.subject, &row.session, &row.eye);
+            let mut k = KeyBuilder::new("images-capture", VERSION);
+            k.key("settings", &settings)
+                .key("capture", &hash(&files[i]))
+                .key("reference", &hash(&files[ref_i]))
+                .value("is-reference", &(i == ref_i))
+                .key("segments", &segs.map(|p| hash(&p)).unwrap_or_else(|| hash_file_or_missing(Path::new(""))))
+                .value("status", &row.status);
+            k.finish()
+        })
+        .collect()
+}
+
+fn segments_file(study: &Study, subject: &str, session: &str, eye: &str) -> Option<PathBuf> {
+    let sess = study.subjects.iter().find(|s| s.id == subject)?.sessions.iter().find(|x| x.id == session)?;
+    sess.segments.iter().find(|(e, _)| e.as_str() == eye).map(|(_, p)| p.clone())
+}
+
+pub fn build(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: &Items) -> ImageTables {
     let nb = study.instrument.bands.len();
     let wb = width_band(study);
-    let settings = ProfileSettings { half_length_px: (220.0 / study.instrument.pixel_size_um).max(8.0) + 4.0, ..ProfileSettings::default() };
+    let settings = profile_settings(study);
     // Capture files and segment lists per (subject, session, eye).
-    let mut files: Vec<std::path::PathBuf> = Vec::with_capacity(epochs.captures.len());
+    let files = capture_files(study, epochs);
     let mut groups: BTreeMap<(String, String, String), Vec<usize>> = BTreeMap::new();
     let mut segments: BTreeMap<(String, String, String), Vec<Segment>> = BTreeMap::new();
     for subj in &study.subjects {
@@ -73,9 +145,6 @@ pub fn build(study: &Study, epochs: &EpochTables) -> ImageTables {
         }
     }
     for (i, row) in epochs.captures.iter().enumerate() {
-        let sess = study.subjects.iter().find(|s| s.id == row.subject).and_then(|s| s.sessions.iter().find(|x| x.id == row.session));
-        let path = sess.and_then(|s| s.captures.iter().find(|c| c.listed == row.capture)).map(|c| c.path.clone()).unwrap_or_default();
-        files.push(path);
         groups.entry((row.subject.clone(), row.session.clone(), row.eye.clone())).or_default().push(i);
     }
     let mut status: Vec<ImageStatus> = (0..epochs.captures.len()).map(|_| ImageStatus { status: "not-analysed".into(), message: None, registration: None }).collect();
@@ -88,21 +157,24 @@ pub fn build(study: &Study, epochs: &EpochTables) -> ImageTables {
                 status[*i].message = Some(format!("status `{}`", epochs.captures[*i].status));
             }
         }
-        // The eye's reference capture: its earliest listed capture.
+        // The eye's reference capture: its earliest listed capture. It is
+        // read only if some capture of the eye is not in the cache.
         let Some(&ref_i) = idx.first() else { continue };
-        let reference = match read_capture(&files[ref_i], nb, None) {
-            Ok(r) => r,
-            Err(e) => {
-                for i in &analysed {
-                    status[*i] = ImageStatus { status: "error".into(), message: Some(format!("reference capture: {e}")), registration: None };
-                }
-                continue;
-            }
-        };
+        let reference: std::sync::OnceLock<Result<Multiband, String>> = std::sync::OnceLock::new();
         let results: Vec<(usize, ImageStatus, Vec<PositionRow>)> = analysed
             .par_iter()
             .map(|&i| {
-                let (st, rows) = analyse_capture(i, i == ref_i, &files[i], &reference, &segs, nb, wb, &settings, study.instrument.pixel_size_um);
+                let (st, rows) = items.get_or_compute(&keys[i], || {
+                    match reference.get_or_init(|| read_capture(&files[ref_i], nb, None).map_err(|e| e.to_string())) {
+                        Ok(r) => analyse_capture(i, i == ref_i, &files[i], r, &segs, nb, wb, &settings, study.instrument.pixel_size_um),
+                        Err(e) => (ImageStatus { status: "error".into(), message: Some(format!("reference capture: {e}")), registration: None }, vec![]),
+                    }
+                });
+                // Item results carry no capture index of their own meaning.
+                let rows = rows.into_iter().map(|mut r| {
+                    r.capture_index = i;
+                    r
+                }).collect();
                 (i, st, rows)
             })
             .collect();
@@ -111,7 +183,7 @@ pub fn build(study: &Study, epochs: &EpochTables) -> ImageTables {
             positions.extend(rows);
         }
     }
-    ImageTables { positions, status }
+    ImageTables { positions, status, keys }
 }
 
 #[allow(clippy::too_many_arguments)]
@@ -139,7 +211,7 @@ fn analyse_capture(i: usize, is_reference: bool, file: &Path, reference: &Multib
             rows.push(PositionRow {
                 capture_index: i,
                 segment: seg.id.clone(),
-                kind: seg.kind.as_str(),
+                kind: seg.kind.as_str().to_string(),
                 position: r.position,
                 along_px: r.along_px,
                 diameter_um: r.diameter_px * px_um,
@@ -152,7 +224,7 @@ fn analyse_capture(i: usize, is_reference: bool, file: &Path, reference: &Multib
 }
 
 impl ImageTables {
-    pub fn write(&self, out: &Path, study: &Study, epochs: &EpochTables) -> Result<()> {
+    pub fn write(&self, out: &Path, study: &Study, epochs: &EpochTables) -> Result<Vec<PathBuf>> {
         let dir = out.join("transmissions");
         let c = &epochs.captures;
         let p = &self.positions;
@@ -162,7 +234,7 @@ impl ImageTables {
             .text("eye", p.iter().map(|r| &c[r.capture_index].eye))
             .text("capture", p.iter().map(|r| &c[r.capture_index].capture))
             .text("segment", p.iter().map(|r| &r.segment))
-            .text("kind", p.iter().map(|r| r.kind))
+            .text("kind", p.iter().map(|r| &r.kind))
             .int("position", p.iter().map(|r| r.position as i64))
             .real("along_px", p.iter().map(|r| r.along_px))
             .real("diameter_um", p.iter().map(|r| r.diameter_um))
@@ -170,7 +242,7 @@ impl ImageTables {
         for (b, band) in study.instrument.bands.iter().enumerate() {
             t.real(&format!("t_{}", band.name), p.iter().map(|r| r.transmission[b]));
         }
-        t.write(&dir, "positions")?;
+        let mut written = t.write(&dir, "positions")?;
         let s = &self.status;
         let mut t = Table::new();
         t.text("subject", c.iter().map(|r| &r.subject))
@@ -183,7 +255,7 @@ impl ImageTables {
             .opt_real("dy_px", s.iter().map(|r| r.registration.map(|g| g.dy)))
             .opt_real("angle_deg", s.iter().map(|r| r.registration.map(|g| g.angle_deg)))
             .opt_real("match_score", s.iter().map(|r| r.registration.map(|g| g.score)));
-        t.write(&dir, "captures")?;
-        Ok(())
+        written.extend(t.write(&dir, "captures")?);
+        Ok(written)
     }
 }

@@ -14,7 +14,7 @@
 
 use statrs::distribution::{ChiSquared, ContinuousCDF, StudentsT};
 
-#[derive(Debug, Clone, Copy, PartialEq)]
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Agreement {
     pub n: usize,
     pub subjects: usize,

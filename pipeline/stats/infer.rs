@@ -8,7 +8,7 @@ use statrs::distribution::{ContinuousCDF, FisherSnedecor, StudentsT};
 
 use super::lmm::{Fit, Model};
 
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Test {
     pub label: String,
     pub estimate: f64,
@@ -22,6 +22,11 @@ pub struct Test {
 
 /// Two-sided t test of `l'β = 0` with Satterthwaite df and a 95 % interval.
 pub fn contrast(model: &Model, fit: &Fit, label: &str, l: &[f64]) -> Test {
+    contrast_at(model, fit, label, l, 0.95)
+}
+
+/// As [`contrast`], with an interval of the given coverage.
+pub fn contrast_at(model: &Model, fit: &Fit, label: &str, l: &[f64], confidence: f64) -> Test {
     let lv = DVector::from_column_slice(l);
     let est = lv.dot(&DVector::from_column_slice(&fit.beta));
     let var = (lv.transpose() * &fit.vcov * &lv)[0];
@@ -29,7 +34,7 @@ pub fn contrast(model: &Model, fit: &Fit, label: &str, l: &[f64]) -> Test {
     let df = model.satterthwaite(fit, l);
     let t = est / se;
     let (p, q) = match StudentsT::new(0.0, 1.0, df) {
-        Ok(d) => (2.0 * d.sf(t.abs()), d.inverse_cdf(0.975)),
+        Ok(d) => (2.0 * d.sf(t.abs()), d.inverse_cdf(0.5 + confidence / 2.0)),
         Err(_) => (f64::NAN, f64::NAN),
     };
     Test { label: label.to_string(), estimate: est, std_error: se, df, t, p, lower: est - q * se, upper: est + q * se }

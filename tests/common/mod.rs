@@ -2,6 +2,7 @@
 //! studies on disk.
 #![allow(dead_code)]
 
+use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 use std::process::Command;
 
@@ -108,4 +109,31 @@ methods:
 "
         ),
     );
+}
+
+/// SHA-256 of every file under `root`, by relative path, leaving out the
+/// relative paths that start with any of `skip`.
+pub fn hashes_except(root: &Path, skip: &[&str]) -> BTreeMap<String, String> {
+    use sha2::{Digest, Sha256};
+    let mut out = BTreeMap::new();
+    let mut stack = vec![root.to_path_buf()];
+    while let Some(d) = stack.pop() {
+        for e in std::fs::read_dir(&d).unwrap() {
+            let p = e.unwrap().path();
+            let rel = p.strip_prefix(root).unwrap().to_string_lossy().into_owned();
+            if skip.iter().any(|s| rel.starts_with(s)) {
+                continue;
+            }
+            if p.is_dir() {
+                stack.push(p);
+            } else {
+                out.insert(rel, format!("{:x}", Sha256::digest(std::fs::read(&p).unwrap())));
+            }
+        }
+    }
+    out
+}
+
+pub fn hashes(root: &Path) -> BTreeMap<String, String> {
+    hashes_except(root, &[])
 }

@@ -1,0 +1,60 @@
+//! The run manifest: what was run, on what, with which settings, and what
+//! came out. Written at the end of every run as `<output>/manifest.json`
+//! and kept as `<output>/manifests/<UTC time>.json`. It is the one output
+//! that differs between identical runs (times and durations).
+
+use std::collections::BTreeMap;
+use std::path::Path;
+
+use anyhow::Result;
+
+use super::StageLog;
+use crate::tables::write_bytes_atomic;
+
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct InputFile {
+    pub path: String,
+    pub sha256: String,
+    pub bytes: u64,
+}
+
+#[derive(Debug, Clone, Default, serde::Serialize)]
+pub struct CaptureCounts {
+    pub listed: usize,
+    /// Captures whose SO2 entered the statistics (steady, read, registered, fitted).
+    pub used: usize,
+    /// Not used, by reason (status from the epoch or image stage).
+    pub not_used: BTreeMap<String, usize>,
+}
+
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct Manifest {
+    pub tool: &'static str,
+    pub version: &'static str,
+    pub cache_format: u32,
+    pub finished_utc: String,
+    pub command: Vec<String>,
+    pub study_file: String,
+    /// The study as resolved (defaults filled in, paths resolved).
+    pub study: serde_json::Value,
+    pub inputs: Vec<InputFile>,
+    /// Seeds: the analysis draws no random numbers; a simulated study's
+    /// scenario seed is recorded when `truth/` is present.
+    pub seeds: BTreeMap<String, String>,
+    pub stages: Vec<StageLog>,
+    pub captures: CaptureCounts,
+    pub warnings: Vec<String>,
+    pub exit_status: i32,
+}
+
+impl Manifest {
+    pub fn write(&self, output: &Path) -> Result<()> {
+        let mut text = serde_json::to_vec_pretty(self)?;
+        text.push(b'\n');
+        write_bytes_atomic(&output.join("manifest.json"), &text)?;
+        let stamp = self.finished_utc.replace([':', '-', '.'], "");
+        let dir = output.join("manifests");
+        std::fs::create_dir_all(&dir)?;
+        write_bytes_atomic(&dir.join(format!("{stamp}.json")), &text)
+    }
+}
