@@ -16,6 +16,7 @@ pub mod fit;
 pub mod images;
 pub mod oximetry;
 pub mod physiology;
+pub mod report;
 pub mod run;
 pub mod simulate;
 pub mod stages;

@@ -99,17 +99,10 @@ pub fn build(study: &Study, epochs: &EpochTables, images: &ImageTables, items: &
                         row.termination = if row.odr.is_some() { "odr".into() } else { "no optical density".into() };
                     }
                     MethodKind::Multiband { bands: sel, loss, pointwise } => {
-                        let model = VesselModel::new(&sel.iter().map(|b| bands[*b].clone()).collect::<Vec<_>>(), |_| 1.0, 0.04);
+                        let (model, settings) = multiband_model(&bands, sel, *loss);
                         let spectra = SegmentSpectra {
                             diameters_um: pos.iter().map(|p| p.diameter_um).collect(),
                             transmissions: pos.iter().map(|p| sel.iter().map(|b| p.transmission[*b]).collect()).collect(),
-                        };
-                        let settings = FitSettings {
-                            loss: match loss {
-                                Loss::Squared => RobustLoss::Squared,
-                                Loss::Huber { scale } => RobustLoss::Huber { scale: *scale },
-                            },
-                            ..FitSettings::default()
                         };
                         if *pointwise {
                             let f = fit_pointwise(&model, &spectra, &settings);
@@ -166,6 +159,19 @@ pub fn build(study: &Study, epochs: &EpochTables, images: &ImageTables, items: &
         out.extend(rows);
     }
     out
+}
+
+/// The vessel model over the method's bands and the fit settings for its loss.
+pub fn multiband_model(bands: &[SampledBand], selected: &[usize], loss: Loss) -> (VesselModel, FitSettings) {
+    let model = VesselModel::new(&selected.iter().map(|b| bands[*b].clone()).collect::<Vec<_>>(), |_| 1.0, 0.04);
+    let settings = FitSettings {
+        loss: match loss {
+            Loss::Squared => RobustLoss::Squared,
+            Loss::Huber { scale } => RobustLoss::Huber { scale },
+        },
+        ..FitSettings::default()
+    };
+    (model, settings)
 }
 
 /// Applies the two-band calibration to rows holding ODRs.
@@ -234,4 +240,45 @@ pub fn write(rows: &[FitRow], epochs: &EpochTables, out: &Path) -> Result<Vec<st
         .real("diameter_um", rows.iter().map(|r| r.diameter_um))
         .opt_real("spo2", rows.iter().map(|r| c[r.capture_index].spo2));
     t.write(&out.join("fits"), "so2")
+}
+
+/// This stage's part of the report's methods text: one sentence per method.
+pub fn describe(study: &Study) -> String {
+    let band = |i: &usize| study.instrument.bands[*i].name.clone();
+    let mut parts = vec![format!("Segments with at least {MIN_POSITIONS} usable positions were analysed by each method.")];
+    for m in &study.methods {
+        parts.push(match &m.kind {
+            MethodKind::TwoBand { sensitive, isosbestic, calibration, diameter_correction } => {
+                let cal = match calibration {
+                    Calibration::Fixed { intercept, slope } => format!("with fixed constants (SO2 = {intercept} + {slope}·ODR)"),
+                    Calibration::TwoPoint { epoch, venule_so2 } => format!("calibrated from two points in epoch `{}`: arterioles at the reference SpO2 and venules at {venule_so2} %", study.protocol.epochs[*epoch].name),
+                    Calibration::Regression => "calibrated by regression on the reference SpO2, leaving each subject out of its own calibration".to_string(),
+                };
+                format!(
+                    "`{}`: the optical density ratio ODR = log10(1/T_{})/log10(1/T_{}) of the segment's mean optical densities, SO2 linear in ODR, {cal}{}.",
+                    m.label,
+                    band(sensitive),
+                    band(isosbestic),
+                    if *diameter_correction { ", with a correction for vessel diameter" } else { "" }
+                )
+            }
+            MethodKind::Multiband { bands, loss, pointwise } => {
+                let l = match loss {
+                    Loss::Squared => "least squares".to_string(),
+                    Loss::Huber { scale } => format!("a Huber loss (threshold {scale} noise SD)"),
+                };
+                let names: Vec<String> = bands.iter().map(band).collect();
+                if *pointwise {
+                    format!("`{}`: the same model fitted independently at each position, then averaged along the segment ({}; bands {}).", m.label, l, names.join(", "))
+                } else {
+                    format!(
+                        "`{}`: a band-integrated vessel transmission model (hemoglobin extinction from Prahl's compilation integrated over each band's response on a 1 nm grid; single- and double-pass Beer–Lambert paths, backscatter, and an additive veil T_obs = (1 − k)·T + k) fitted jointly to all positions of a segment, with SO2, hemoglobin concentration and k shared along the segment and path fractions per position, by bounded Levenberg–Marquardt ({l}; bands {}); standard errors from the Jacobian at the optimum scaled by the residual variance.",
+                        m.label,
+                        names.join(", ")
+                    )
+                }
+            }
+        });
+    }
+    parts.join(" ")
 }

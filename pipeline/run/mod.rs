@@ -267,7 +267,7 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
     )?;
 
     // Statistics.
-    let (stats, _stats_key) = runner.stage(
+    let (stats, stats_key) = runner.stage(
         "statistics",
         statistics::VERSION,
         Parts { settings: statistics::settings_key(study), inputs: combine("none", []), upstream: vec![("epochs", epochs_key), ("fits", fits_key)] },
@@ -281,6 +281,30 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
     for (m, k, t, h) in &stats.contrasts {
         printer.info(format!("  {m} {k}: {} = {:+.2} points ({:.0} % CI {:+.2} to {:+.2}, df {:.1}, adjusted p {:.2e})", t.label, t.estimate, study.statistics.confidence * 100.0, t.lower, t.upper, t.df, h));
     }
+
+    // The report.
+    let rel = |p: &Path| p.strip_prefix(&study.root).unwrap_or(p).to_string_lossy().replace('\\', "/");
+    let report_inputs = crate::report::Inputs {
+        study,
+        epochs: &tables,
+        images: &images,
+        fits: &fits,
+        stats: &stats,
+        files: hashed.iter().map(|(p, h)| (rel(p), h.map(|x| x.0.hex()).unwrap_or_else(|| "unreadable".into()))).collect(),
+    };
+    let mut report_settings = KeyBuilder::new("report-settings", crate::report::VERSION);
+    report_settings.value("study", study);
+    runner.stage(
+        "report",
+        crate::report::VERSION,
+        Parts {
+            settings: report_settings.finish(),
+            inputs: combine("inputs", hashed.iter().map(|(p, _)| hash(p))),
+            upstream: vec![("epochs", epochs_key), ("images", images_key), ("fits", fits_key), ("statistics", stats_key)],
+        },
+        |_| Ok(((), format!("`{}`", out.join("report").join("report.html").display()))),
+        |_| crate::report::write(&report_inputs, out),
+    )?;
 
     let exit = if failed.is_empty() { Exit::Ok } else { Exit::Problem };
     let manifest = manifest::Manifest {

@@ -6,7 +6,6 @@
 use std::path::Path;
 
 use anyhow::{Context, Result};
-use plotters::prelude::*;
 
 use crate::cli::printer::Printer;
 use crate::cli::Exit;
@@ -17,18 +16,6 @@ use crate::oximetry::bands::SampledBand;
 use crate::oximetry::model::VesselModel;
 use crate::oximetry::sensitivity::{so2_errors, OperatingPoint};
 use crate::tables::Table;
-
-/// Colour-blind-safe palette (Okabe & Ito, 2008), in a fixed order.
-pub const PALETTE: [RGBColor; 8] = [
-    RGBColor(0, 114, 178),
-    RGBColor(230, 159, 0),
-    RGBColor(0, 158, 115),
-    RGBColor(204, 121, 167),
-    RGBColor(86, 180, 233),
-    RGBColor(213, 94, 0),
-    RGBColor(240, 228, 66),
-    RGBColor(120, 120, 120),
-];
 
 /// Reads the instrument from a study file (only its `instrument:` is
 /// needed, so this works before any data exist) or from an instrument file
@@ -92,7 +79,8 @@ pub fn sensitivity(file: &Path, op: &OperatingPoint, out: &Path, printer: &Print
     let mut t = Table::new();
     t.real("veil", tk).text("band", &tb).opt_real("centre_nm", tc).real("so2_error_points", te);
     t.write(out, "sensitivity")?;
-    draw(&out.join("sensitivity.svg"), &out.join("sensitivity.png"), &names, &rows, op)?;
+    let curves = crate::report::data::SensitivityCurves { names: names.clone(), rows: rows.clone(), so2: op.so2, diameter_um: op.diameter_um };
+    crate::report::figures::sensitivity(out, &curves)?;
 
     let mut s = format!(
         "SO2 error (points) for a 1 % transmission error, at SO2 {:.0} %, diameter {:.0} µm, hemoglobin {:.0} g/L, double-pass fraction {:.2}\n",
@@ -116,38 +104,4 @@ pub fn sensitivity(file: &Path, op: &OperatingPoint, out: &Path, printer: &Print
     printer.data(s);
     printer.info(format!("wrote `sensitivity.csv`, `.parquet`, `.svg` and `.png` under `{}`", out.display()));
     Ok(Exit::Ok)
-}
-
-fn draw(svg: &Path, png: &Path, names: &[String], rows: &[(f64, Vec<f64>, f64)], op: &OperatingPoint) -> Result<()> {
-    let ymax = rows.iter().flat_map(|r| r.1.iter().copied().chain([r.2])).fold(0.0, f64::max) * 1.08;
-    let caption = format!("SO2 error per 1 % transmission error (SO2 {:.0} %, {:.0} µm)", op.so2 * 100.0, op.diameter_um);
-    macro_rules! plot {
-        ($backend:expr) => {{
-            let root = $backend.into_drawing_area();
-            root.fill(&WHITE)?;
-            let mut chart = ChartBuilder::on(&root)
-                .caption(&caption, ("sans-serif", 20))
-                .margin(12)
-                .x_label_area_size(40)
-                .y_label_area_size(56)
-                .build_cartesian_2d(0.0..0.9, (0.05f64..ymax.max(1.0)).log_scale())?;
-            chart.configure_mesh().x_desc("veil k (fraction of background intensity)").y_desc("SO2 error (points)").light_line_style(RGBColor(235, 235, 235)).draw()?;
-            for (b, name) in names.iter().enumerate() {
-                let c = PALETTE[b % PALETTE.len()];
-                chart
-                    .draw_series(LineSeries::new(rows.iter().map(|r| (r.0, r.1[b].max(0.05))), c.stroke_width(2)))?
-                    .label(name.as_str())
-                    .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], c.stroke_width(2)));
-            }
-            chart
-                .draw_series(LineSeries::new(rows.iter().map(|r| (r.0, r.2.max(0.05))), BLACK.stroke_width(3)))?
-                .label("all bands")
-                .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], BLACK.stroke_width(3)));
-            chart.configure_series_labels().position(SeriesLabelPosition::UpperLeft).background_style(WHITE.mix(0.85)).border_style(BLACK).draw()?;
-            root.present()?;
-        }};
-    }
-    plot!(SVGBackend::new(svg, (900, 560)));
-    plot!(BitMapBackend::new(png, (900, 560)));
-    Ok(())
 }

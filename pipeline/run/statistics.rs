@@ -33,6 +33,10 @@ pub struct Statistics {
     pub paired: Vec<(String, String, String, i64, f64, f64, f64, f64, f64)>,
     /// Method comparison rows: (method, kind, quantity, value).
     pub comparison: Vec<(String, String, String, f64)>,
+    /// The pairs behind the agreement: (method, subject, capture-mean arteriolar SO2, reference SpO2).
+    pub agreement_pairs: Vec<(String, String, f64, f64)>,
+    /// (method, intercept) of the fitted line of SO2 on SpO2.
+    pub agreement_intercepts: Vec<(String, f64)>,
 }
 
 fn term(name: &str, keys: &[String]) -> RandomTerm {
@@ -44,7 +48,7 @@ fn term(name: &str, keys: &[String]) -> RandomTerm {
 }
 
 /// Version of this stage's computation; bump when its results change.
-pub const VERSION: u32 = 1;
+pub const VERSION: u32 = 2;
 
 /// The stage's settings: its own section of the study, the protocol's
 /// epochs and contrasts, and the method labels it groups by.
@@ -58,7 +62,7 @@ pub fn settings_key(study: &Study) -> crate::stages::key::Key {
 pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics {
     let c = &epochs.captures;
     let p = &study.protocol;
-    let mut st = Statistics { summaries: vec![], contrasts: vec![], agreement: vec![], paired: vec![], comparison: vec![] };
+    let mut st = Statistics { summaries: vec![], contrasts: vec![], agreement: vec![], paired: vec![], comparison: vec![], agreement_pairs: vec![], agreement_intercepts: vec![] };
     for m in &study.methods {
         for kind in ["arteriole", "venule"] {
             let rows: Vec<&FitRow> = fits
@@ -217,8 +221,13 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
                         terms: vec![term("subject", &pairs.iter().map(|q| q.0.clone()).collect::<Vec<_>>())],
                     };
                     let sm = Model::new(data, Criterion::Reml);
-                    let slope = sm.fit().map(|f| contrast_at(&sm, &f, "slope on SpO2", &[0.0, 1.0], study.statistics.confidence));
+                    let fit = sm.fit();
+                    let slope = fit.as_ref().map(|f| contrast_at(&sm, f, "slope on SpO2", &[0.0, 1.0], study.statistics.confidence));
+                    if let Some(f) = &fit {
+                        st.agreement_intercepts.push((m.label.clone(), f.beta[0]));
+                    }
                     st.agreement.push((m.label.clone(), a, slope));
+                    st.agreement_pairs.extend(pairs.iter().map(|(s, so2, spo2)| (m.label.clone(), s.clone(), *so2, *spo2)));
                 }
             }
         }
@@ -334,4 +343,15 @@ impl Statistics {
         written.extend(t.write(&dir, "methods")?);
         Ok(written)
     }
+}
+
+/// This stage's part of the report's methods text.
+pub fn describe(study: &Study) -> String {
+    let p = &study.protocol;
+    format!(
+        "Per method and vessel kind, segment SO2 of steady captures was modelled by a linear mixed model with the epoch as fixed effect (baseline `{}`) and random intercepts for subject, eye within subject and segment within eye, fitted by REML in the formulation of lme4; contrasts between epochs were tested with Satterthwaite degrees of freedom and {:.0} % confidence intervals{}. Paired t tests compared each subject's epoch means with the baseline. Agreement of capture-mean arteriolar SO2 with the reference SpO2 was summarised by bias, precision and Arms, with 95 % limits of agreement for repeated measurements per subject (Bland & Altman 2007), and by the slope of SO2 on SpO2 in a mixed model with subject random intercepts. Methods were compared on the same cohort by their within-subject repeatability, segment standard errors, spread along segments, values outside 0–100 % and agreement with one another.",
+        p.epochs[p.baseline].name,
+        study.statistics.confidence * 100.0,
+        if study.statistics.holm { ", p values Holm-adjusted within each method and vessel kind" } else { ", p values not adjusted for multiplicity" }
+    )
 }

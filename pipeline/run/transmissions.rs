@@ -259,3 +259,12 @@ impl ImageTables {
         Ok(written)
     }
 }
+
+/// This stage's part of the report's methods text.
+pub fn describe(study: &Study) -> String {
+    let s = profile_settings(study);
+    format!(
+        "Captures were read as multi-page TIFF files (one page per band) and registered to the eye's earliest capture by a rigid transform (translation and rotation; phase correlation followed by normalised cross-correlation with sub-pixel interpolation in the band nearest 570 nm); captures with a match score below {MIN_REGISTRATION_SCORE} were flagged as not registered and not analysed. Along each vessel segment, intensity profiles were sampled across the vessel every {:.0} px by bilinear interpolation; a quadratic background was fitted to the outer parts of each profile and an absorbing-cylinder profile to the vessel, giving its centre, width (diameter at {:.1} µm per pixel) and fit residual. Transmission in each band was the intensity on the vessel's centre line divided by the background beneath it. Positions were flagged (off the image, contrast below {:.2}, residual too large, within {:.0} px of another segment) and flagged positions were not used.",
+        s.spacing_px, study.instrument.pixel_size_um, s.min_contrast, s.neighbour_margin_px
+    )
+}

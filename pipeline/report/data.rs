@@ -1,0 +1,274 @@
+//! The series behind the report's figures, prepared from the stages'
+//! results: per-subject time courses, per-epoch changes with the
+//! mixed-model estimates, agreement pairs, one segment's profile of SO2
+//! along its length for the methods side by side, and sensitivity curves.
+
+use std::collections::BTreeMap;
+
+use crate::config::diag::Findings;
+use crate::config::study::{MethodKind, Study};
+use crate::oximetry::bands::SampledBand;
+use crate::oximetry::odr::segment_odr;
+use crate::oximetry::pointwise::fit_position;
+use crate::oximetry::sensitivity::{so2_errors, OperatingPoint};
+use crate::run::epochs::EpochTables;
+use crate::run::fits::{multiband_model, FitRow};
+use crate::run::statistics::Statistics;
+use crate::run::transmissions::ImageTables;
+use crate::timeline::reference::read_log;
+
+pub struct SpanShade {
+    pub start_min: f64,
+    pub settle_min: f64,
+    pub end_min: f64,
+    pub o2_fraction: f64,
+}
+
+pub struct Course {
+    pub subject: String,
+    pub spans: Vec<SpanShade>,
+    /// (minutes, SO2 %, steady) per capture.
+    pub arterioles: Vec<(f64, f64, bool)>,
+    pub venules: Vec<(f64, f64, bool)>,
+    /// (minutes, SpO2 %) from the log.
+    pub spo2: Vec<(f64, f64)>,
+}
+
+pub struct ChangePoint {
+    pub kind: &'static str,
+    pub epoch: usize,
+    pub value: f64,
+    pub jitter: f64,
+}
+
+pub struct Estimate {
+    pub kind: String,
+    pub epoch: usize,
+    pub estimate: f64,
+    pub lower: f64,
+    pub upper: f64,
+}
+
+pub struct AgreementSeries {
+    pub method: String,
+    /// (SpO2, SO2) per capture.
+    pub pairs: Vec<(f64, f64)>,
+    /// Intercept and slope of SO2 on SpO2.
+    pub line: Option<(f64, f64)>,
+    pub bias: f64,
+    pub lower: f64,
+    pub upper: f64,
+}
+
+pub struct Series {
+    pub label: String,
+    pub points: Vec<(f64, f64)>,
+}
+
+pub struct AlongSegment {
+    pub subject: String,
+    pub capture: String,
+    pub segment: String,
+    pub kind: String,
+    pub series: Vec<Series>,
+    /// (label, SO2, SE) of the joint segment fit.
+    pub joint: Option<(String, f64, f64)>,
+}
+
+pub struct SensitivityCurves {
+    pub names: Vec<String>,
+    pub rows: Vec<(f64, Vec<f64>, f64)>,
+    pub so2: f64,
+    pub diameter_um: f64,
+}
+
+pub struct ReportData {
+    /// The method the single-method figures show: the first joint multiband method, else the first.
+    pub primary: String,
+    pub baseline: String,
+    pub confidence: f64,
+    pub courses: Vec<Course>,
+    pub epochs_after: Vec<String>,
+    pub changes: Vec<ChangePoint>,
+    pub estimates: Vec<Estimate>,
+    pub agreement: Vec<AgreementSeries>,
+    pub along: Option<AlongSegment>,
+    pub sensitivity: Option<SensitivityCurves>,
+}
+
+pub fn primary_method(study: &Study) -> String {
+    study
+        .methods
+        .iter()
+        .find(|m| matches!(m.kind, MethodKind::Multiband { pointwise: false, .. }))
+        .or(study.methods.first())
+        .map(|m| m.label.clone())
+        .unwrap_or_default()
+}
+
+pub fn prepare(study: &Study, epochs: &EpochTables, images: &ImageTables, fits: &[FitRow], stats: &Statistics) -> ReportData {
+    let primary = primary_method(study);
+    let p = &study.protocol;
+    let baseline = p.epochs[p.baseline].name.clone();
+    let epochs_after: Vec<String> = p.epochs.iter().map(|e| e.name.clone()).filter(|e| *e != baseline).collect();
+    ReportData {
+        courses: courses(study, epochs, fits, &primary),
+        changes: changes(stats, &primary, &baseline, &epochs_after),
+        estimates: stats
+            .contrasts
+            .iter()
+            .filter(|c| c.0 == primary)
+            .filter_map(|(_, k, t, _)| {
+                let (a, b) = t.label.split_once(" - ")?;
+                let epoch = epochs_after.iter().position(|e| e == a.trim()).filter(|_| b.trim() == baseline)?;
+                Some(Estimate { kind: k.clone(), epoch, estimate: t.estimate, lower: t.lower, upper: t.upper })
+            })
+            .collect(),
+        agreement: stats
+            .agreement
+            .iter()
+            .map(|(m, a, slope)| AgreementSeries {
+                method: m.clone(),
+                pairs: stats.agreement_pairs.iter().filter(|q| q.0 == *m).map(|q| (q.3, q.2)).collect(),
+                line: stats.agreement_intercepts.iter().find(|q| q.0 == *m).and_then(|q| slope.as_ref().map(|s| (q.1, s.estimate))),
+                bias: a.bias,
+                lower: a.lower,
+                upper: a.upper,
+            })
+            .collect(),
+        along: along_segment(study, epochs, images, fits, &primary, &baseline),
+        sensitivity: sensitivity(study),
+        primary,
+        baseline,
+        confidence: study.statistics.confidence,
+        epochs_after,
+    }
+}
+
+fn courses(study: &Study, epochs: &EpochTables, fits: &[FitRow], method: &str) -> Vec<Course> {
+    let c = &epochs.captures;
+    let mut per: BTreeMap<(usize, &str), Vec<f64>> = BTreeMap::new();
+    for r in fits.iter().filter(|r| r.method == method) {
+        if let Some(v) = r.so2.filter(|v| v.is_finite()) {
+            per.entry((r.capture_index, if r.kind == "arteriole" { "a" } else { "v" })).or_default().push(v);
+        }
+    }
+    let mut out = Vec::new();
+    for subj in &study.subjects {
+        for sess in &subj.sessions {
+            let name = if subj.sessions.len() > 1 { format!("{} {}", subj.id, sess.id) } else { subj.id.clone() };
+            let spans = epochs
+                .spans
+                .iter()
+                .filter(|s| s.subject == subj.id && s.session == sess.id)
+                .map(|s| SpanShade { start_min: s.start_s / 60.0, settle_min: s.settle_end_s / 60.0, end_min: s.end_s / 60.0, o2_fraction: s.o2_fraction })
+                .collect();
+            let mut course = Course { subject: name, spans, arterioles: vec![], venules: vec![], spo2: vec![] };
+            for (i, row) in c.iter().enumerate().filter(|(_, r)| r.subject == subj.id && r.session == sess.id) {
+                for (k, dst) in [("a", &mut course.arterioles), ("v", &mut course.venules)] {
+                    if let Some(v) = per.get(&(i, k)) {
+                        dst.push((row.t_s / 60.0, v.iter().sum::<f64>() / v.len() as f64, row.status == "steady"));
+                    }
+                }
+            }
+            if let Some(log) = sess.reference.as_ref().and_then(|r| read_log(r, &sess.start, &mut Findings::new())) {
+                // Every 5th sample of a 1 Hz log is plenty at figure scale.
+                course.spo2 = log.samples.iter().step_by(5).map(|(t, v)| (t / 60.0, *v)).collect();
+            }
+            out.push(course);
+        }
+    }
+    out
+}
+
+fn changes(stats: &Statistics, method: &str, baseline: &str, after: &[String]) -> Vec<ChangePoint> {
+    let mut out = Vec::new();
+    for kind in ["arteriole", "venule"] {
+        let rows: Vec<_> = stats.summaries.iter().filter(|s| s.0 == method && s.1 == kind).collect();
+        let mut subjects: Vec<&String> = rows.iter().map(|s| &s.2).collect();
+        subjects.sort();
+        subjects.dedup();
+        for (si, s) in subjects.iter().enumerate() {
+            let Some(base) = rows.iter().find(|r| &r.2 == *s && r.3 == baseline).map(|r| r.6) else { continue };
+            for (ei, e) in after.iter().enumerate() {
+                if let Some(v) = rows.iter().find(|r| &r.2 == *s && r.3 == *e).map(|r| r.6) {
+                    out.push(ChangePoint { kind, epoch: ei, value: v - base, jitter: 0.16 * (si as f64 / subjects.len().max(1) as f64 - 0.5) });
+                }
+            }
+        }
+    }
+    out
+}
+
+/// One arteriole of the first steady baseline capture, profiled by every
+/// two-band and multiband method, position by position.
+fn along_segment(study: &Study, epochs: &EpochTables, images: &ImageTables, fits: &[FitRow], primary: &str, baseline: &str) -> Option<AlongSegment> {
+    let c = &epochs.captures;
+    let joint = fits
+        .iter()
+        .filter(|r| r.method == primary && r.kind == "arteriole" && r.so2.is_some() && c[r.capture_index].status == "steady" && c[r.capture_index].epoch.as_deref() == Some(baseline))
+        .min_by_key(|r| (r.capture_index, -r.positions))?;
+    let ci = joint.capture_index;
+    let pos: Vec<_> = images.positions.iter().filter(|p| p.capture_index == ci && p.segment == joint.segment && p.flags.is_empty() && p.transmission.iter().all(|t| *t > 0.0 && t.is_finite())).collect();
+    let bands: Vec<SampledBand> = study.instrument.bands.iter().map(|b| SampledBand::from_response(&b.response)).collect();
+    let um = study.instrument.pixel_size_um;
+    let mut series = Vec::new();
+    for m in &study.methods {
+        match &m.kind {
+            MethodKind::TwoBand { sensitive, isosbestic, .. } => {
+                // The method's calibration line for this subject, from its own segment rows.
+                let subject = &c[ci].subject;
+                let (x, y): (Vec<f64>, Vec<f64>) = fits.iter().filter(|r| r.method == m.label && &c[r.capture_index].subject == subject).filter_map(|r| Some((r.odr?, r.so2?))).unzip();
+                let Some(line) = crate::oximetry::odr::ols(&x, &y) else { continue };
+                let points = pos.iter().filter_map(|p| Some((p.along_px * um, line.apply(segment_odr(&[p.transmission[*sensitive]], &[p.transmission[*isosbestic]])?)))).collect();
+                series.push(Series { label: format!("{} (per position)", m.label), points });
+            }
+            MethodKind::Multiband { bands: sel, loss, .. } => {
+                if series.iter().any(|s: &Series| s.label.starts_with("multiband model")) {
+                    continue;
+                }
+                let (model, settings) = multiband_model(&bands, sel, *loss);
+                let points = pos
+                    .iter()
+                    .filter_map(|p| {
+                        let t: Vec<f64> = sel.iter().map(|b| p.transmission[*b]).collect();
+                        let f = fit_position(&model, &t, p.diameter_um, &settings);
+                        f.converged.then_some((p.along_px * um, f.so2 * 100.0))
+                    })
+                    .collect();
+                series.push(Series { label: "multiband model (per position)".into(), points });
+            }
+        }
+    }
+    Some(AlongSegment {
+        subject: c[ci].subject.clone(),
+        capture: c[ci].capture.clone(),
+        segment: joint.segment.clone(),
+        kind: joint.kind.clone(),
+        series,
+        joint: joint.so2.map(|v| (format!("{} (joint fit)", primary), v, joint.so2_se.unwrap_or(0.0))),
+    })
+}
+
+/// The default operating point of `satstep sensitivity`.
+pub const OPERATING_POINT: OperatingPoint = OperatingPoint { so2: 0.95, diameter_um: 120.0, hb_g_per_l: 150.0, double_pass: 0.3 };
+
+pub fn sensitivity_curves(bands: &[SampledBand], names: &[String], op: &OperatingPoint) -> Option<SensitivityCurves> {
+    let model = crate::oximetry::model::VesselModel::new(bands, |_| 1.0, 0.04);
+    let rows = (0..=9)
+        .map(|i| {
+            let k = i as f64 / 10.0;
+            so2_errors(&model, op, k, 0.01).map(|(per, all)| (k, per, all))
+        })
+        .collect::<Option<Vec<_>>>()?;
+    Some(SensitivityCurves { names: names.to_vec(), rows, so2: op.so2, diameter_um: op.diameter_um })
+}
+
+fn sensitivity(study: &Study) -> Option<SensitivityCurves> {
+    if study.instrument.bands.len() < 4 {
+        return None;
+    }
+    let bands: Vec<SampledBand> = study.instrument.bands.iter().map(|b| SampledBand::from_response(&b.response)).collect();
+    let names: Vec<String> = study.instrument.bands.iter().map(|b| b.name.clone()).collect();
+    sensitivity_curves(&bands, &names, &OPERATING_POINT)
+}

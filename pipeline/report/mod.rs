@@ -1,0 +1,263 @@
+//! The report stage: the paper's tables (CSV, Markdown, LaTeX), its figures
+//! (SVG, PNG) and two documents that gather them with the cohort, the
+//! protocol, a methods text assembled from each stage's own description,
+//! data quality, the cautions and the provenance: `report.html` (one
+//! self-contained file: figures inlined as SVG, styles inline, no links
+//! out) and `report.md` (figures as links to the PNG files beside it).
+//!
+//! Layout under `<output>/report/`: `report.html`, `report.md`,
+//! `tables/<name>.{csv,md,tex}`, `figures/<name>.{svg,png}`.
+
+pub mod data;
+pub mod figures;
+pub mod style;
+pub mod tables;
+
+use std::path::{Path, PathBuf};
+
+use anyhow::Result;
+
+use crate::config::study::Study;
+use crate::run::epochs::EpochTables;
+use crate::run::fits::FitRow;
+use crate::run::statistics::Statistics;
+use crate::run::transmissions::ImageTables;
+use crate::tables::write_bytes_atomic;
+use tables::{html_escape, ReportTable};
+
+/// Version of the report's layout; bump when its output changes.
+pub const VERSION: u32 = 1;
+
+/// The cautions every report carries.
+pub const CAUTIONS: &[&str] = &[
+    "Research use only: satstep is for research on oximetry methods, not a medical device; its results must not be used for diagnosis or treatment.",
+    "Breathing challenges can hurt people. Low-oxygen and oxygen breathing need medical supervision, ethics approval, continuous monitoring and stopping rules set by the study's physician.",
+    "Local regulations and the approving ethics committee decide what may be done, not this tool.",
+];
+
+/// Published sources of the methods, cited in the methods text.
+pub const REFERENCES: &[&str] = &[
+    "Prahl SA (1999). Optical absorption of hemoglobin. Oregon Medical Laser Center, compiled from Gratzer WB and Kollias N. (Molar extinction coefficients of oxy- and deoxyhemoglobin.)",
+    "Bates D, Mächler M, Bolker B, Walker S (2015). Fitting linear mixed-effects models using lme4. Journal of Statistical Software 67(1):1–48.",
+    "Kuznetsova A, Brockhoff PB, Christensen RHB (2017). lmerTest package: tests in linear mixed effects models. Journal of Statistical Software 82(13):1–26.",
+    "Satterthwaite FE (1946). An approximate distribution of estimates of variance components. Biometrics Bulletin 2(6):110–114.",
+    "Holm S (1979). A simple sequentially rejective multiple test procedure. Scandinavian Journal of Statistics 6(2):65–70.",
+    "Bland JM, Altman DG (2007). Agreement between methods of measurement with multiple observations per individual. Journal of Biopharmaceutical Statistics 17(4):571–582.",
+    "Huber PJ (1964). Robust estimation of a location parameter. Annals of Mathematical Statistics 35(1):73–101.",
+    "Moré JJ (1978). The Levenberg–Marquardt algorithm: implementation and theory. In: Numerical Analysis, Lecture Notes in Mathematics 630, Springer, 105–116.",
+    "Severinghaus JW (1979). Simple, accurate equations for human blood O2 dissociation computations. Journal of Applied Physiology 46(3):599–602.",
+    "ISO 2533:1975. Standard Atmosphere. International Organization for Standardization.",
+];
+
+pub struct Inputs<'a> {
+    pub study: &'a Study,
+    pub epochs: &'a EpochTables,
+    pub images: &'a ImageTables,
+    pub fits: &'a [FitRow],
+    pub stats: &'a Statistics,
+    /// (path relative to the study folder, SHA-256) of every input file.
+    pub files: Vec<(String, String)>,
+}
+
+/// The methods text: each stage's description, in order.
+pub fn methods_text(study: &Study) -> Vec<String> {
+    vec![
+        crate::run::epochs::describe(study),
+        crate::run::transmissions::describe(study),
+        crate::run::fits::describe(study),
+        crate::run::statistics::describe(study),
+        format!(
+            "All analyses were run with satstep {} (cache format {}); the same inputs give the same tables and figures byte for byte, whatever the number of worker threads.",
+            env!("CARGO_PKG_VERSION"),
+            crate::stages::key::CACHE_FORMAT
+        ),
+    ]
+}
+
+/// Writes the report; returns every file written.
+pub fn write(inp: &Inputs, out: &Path) -> Result<Vec<PathBuf>> {
+    let dir = out.join("report");
+    let tdir = dir.join("tables");
+    std::fs::create_dir_all(&tdir)?;
+    let usage = tables::usage(inp.epochs, inp.images, inp.fits);
+    let s = inp.study;
+    let results = vec![tables::so2_by_epoch(s, inp.stats), tables::contrasts(s, inp.stats), tables::agreement(s, inp.stats), tables::method_comparison(inp.stats)];
+    let quality = vec![tables::accounting(s, inp.epochs, &usage), tables::data_quality(s, inp.images, inp.fits)];
+    let mut written = Vec::new();
+    for t in results.iter().chain(&quality) {
+        written.extend(t.write(&tdir)?);
+    }
+    let data = data::prepare(s, inp.epochs, inp.images, inp.fits, inp.stats);
+    let figs = figures::all(&dir.join("figures"), &data)?;
+    written.extend(figs.iter().flat_map(|f| f.files.clone()));
+    let doc = Document { inp, results: &results, quality: &quality, figures: &figs, usage: &usage, primary: &data.primary };
+    let html = dir.join("report.html");
+    write_bytes_atomic(&html, doc.html().as_bytes())?;
+    let md = dir.join("report.md");
+    write_bytes_atomic(&md, doc.markdown().as_bytes())?;
+    written.push(html);
+    written.push(md);
+    Ok(written)
+}
+
+struct Document<'a> {
+    inp: &'a Inputs<'a>,
+    results: &'a [ReportTable],
+    quality: &'a [ReportTable],
+    figures: &'a [figures::Figure],
+    usage: &'a [Option<String>],
+    primary: &'a str,
+}
+
+impl Document<'_> {
+    fn cohort(&self) -> Vec<String> {
+        let s = self.inp.study;
+        let ages: Vec<f64> = s.subjects.iter().filter_map(|x| x.age).collect();
+        let female = s.subjects.iter().filter(|x| x.sex.as_deref() == Some("F")).count();
+        let male = s.subjects.iter().filter(|x| x.sex.as_deref() == Some("M")).count();
+        let sessions: usize = s.subjects.iter().map(|x| x.sessions.len()).sum();
+        let used = self.usage.iter().filter(|u| u.is_none()).count();
+        let mut v = vec![format!(
+            "{} subjects ({} female, {} male{}), {} sessions, {} captures listed, {} used in the statistics.",
+            s.subjects.len(),
+            female,
+            male,
+            if ages.is_empty() { String::new() } else { format!("; age {:.0}–{:.0} years", ages.iter().cloned().fold(f64::INFINITY, f64::min), ages.iter().cloned().fold(0.0, f64::max)) },
+            sessions,
+            self.usage.len(),
+            used
+        )];
+        let bands: Vec<String> = s.instrument.bands.iter().map(|b| b.name.clone()).collect();
+        v.push(format!("Instrument: {} ({} bands: {}; {} µm per pixel).", s.instrument.name, bands.len(), bands.join(", "), s.instrument.pixel_size_um));
+        v
+    }
+
+    fn failures(&self) -> Vec<String> {
+        let c = &self.inp.epochs.captures;
+        let mut v: Vec<String> = (0..c.len())
+            .filter(|i| matches!(self.inp.images.status[*i].status.as_str(), "error" | "not-registered"))
+            .map(|i| format!("{} {} `{}`: {} ({})", c[i].subject, c[i].session, c[i].capture, self.inp.images.status[i].status, self.inp.images.status[i].message.clone().unwrap_or_default()))
+            .collect();
+        for (f, r) in &self.inp.study.exclusions.captures {
+            v.push(format!("`{f}` excluded by the study: {r}"));
+        }
+        for subj in &self.inp.study.exclusions.subjects {
+            v.push(format!("subject {subj} excluded by the study"));
+        }
+        v
+    }
+
+    fn html(&self) -> String {
+        let s = self.inp.study;
+        let mut h = String::new();
+        h.push_str("<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n");
+        h.push_str(&format!("<title>{}</title>\n", html_escape(&s.title)));
+        h.push_str("<style>\nbody{font-family:'DejaVu Sans',Verdana,sans-serif;max-width:1100px;margin:2em auto;padding:0 1em;color:#222;line-height:1.45}\nh1{font-size:1.6em;border-bottom:3px solid #0072b2;padding-bottom:.2em}\nh2{font-size:1.25em;margin-top:2em;color:#0072b2}\n.caution{border-left:5px solid #d55e00;background:#fff6ef;padding:.6em 1em;margin:1em 0}\ntable{border-collapse:collapse;margin:1em 0;font-size:.88em}\ncaption{text-align:left;font-style:italic;padding:.3em 0}\nth,td{padding:.25em .6em;border-bottom:1px solid #ddd}\nthead th{border-bottom:2px solid #444;text-align:left}\n.num{text-align:right;font-variant-numeric:tabular-nums}\nfigure{margin:1.5em 0}\nfigure svg{max-width:100%;height:auto}\nfigcaption{font-size:.9em;color:#444}\npre{background:#f6f6f6;padding:.8em;overflow-x:auto;font-size:.85em}\ncode{font-size:.9em}\n</style>\n</head>\n<body>\n");
+        h.push_str(&format!("<h1>{}</h1>\n<p>Study <code>{}</code>. Report written by satstep {}.</p>\n", html_escape(&s.title), html_escape(&s.id), env!("CARGO_PKG_VERSION")));
+        h.push_str("<div class=\"caution\"><strong>Cautions.</strong><ul>");
+        for c in CAUTIONS {
+            h.push_str(&format!("<li>{}</li>", html_escape(c)));
+        }
+        h.push_str("</ul></div>\n");
+        h.push_str("<h2 id=\"cohort\">Cohort and protocol</h2>\n");
+        for p in self.cohort() {
+            h.push_str(&format!("<p>{}</p>\n", html_escape(&p)));
+        }
+        h.push_str(&format!("<pre>{}</pre>\n", html_escape(&crate::run::render_timeline(&s.protocol))));
+        h.push_str("<h2 id=\"results\">Results</h2>\n");
+        h.push_str(&format!("<p>Figures of a single method show <code>{}</code>.</p>\n", html_escape(self.primary)));
+        for t in self.results {
+            h.push_str(&t.html());
+        }
+        for f in self.figures {
+            h.push_str(&format!("<figure id=\"fig-{}\">\n{}\n<figcaption>{}</figcaption>\n</figure>\n", f.name, strip_xml_header(&f.svg), html_escape(&f.caption)));
+        }
+        h.push_str("<h2 id=\"methods\">Methods</h2>\n");
+        for p in methods_text(s) {
+            h.push_str(&format!("<p>{}</p>\n", html_escape(&p)));
+        }
+        h.push_str("<h3>References</h3>\n<ol>\n");
+        for r in REFERENCES {
+            h.push_str(&format!("<li>{}</li>\n", html_escape(r)));
+        }
+        h.push_str("</ol>\n<h2 id=\"quality\">Data quality</h2>\n");
+        for t in self.quality {
+            h.push_str(&t.html());
+        }
+        let fails = self.failures();
+        if fails.is_empty() {
+            h.push_str("<p>Every listed capture was read and registered.</p>\n");
+        } else {
+            h.push_str("<ul>\n");
+            for f in &fails {
+                h.push_str(&format!("<li>{}</li>\n", html_escape(f)));
+            }
+            h.push_str("</ul>\n");
+        }
+        h.push_str("<h2 id=\"provenance\">Provenance</h2>\n");
+        h.push_str(&format!("<p>satstep {} · cache format {} · study file <code>{}</code></p>\n", env!("CARGO_PKG_VERSION"), crate::stages::key::CACHE_FORMAT, html_escape(&self.rel(&s.file))));
+        h.push_str("<p>Per-stage keys, timings and counts are in <code>manifest.json</code> beside this folder.</p>\n<details><summary>Input files and their SHA-256</summary>\n<table><tbody>\n");
+        for (p, k) in &self.inp.files {
+            h.push_str(&format!("<tr><td><code>{}</code></td><td><code>{}</code></td></tr>\n", html_escape(p), k));
+        }
+        h.push_str("</tbody></table>\n</details>\n</body>\n</html>\n");
+        h
+    }
+
+    fn rel(&self, p: &Path) -> String {
+        p.strip_prefix(&self.inp.study.root).unwrap_or(p).to_string_lossy().replace('\\', "/")
+    }
+
+    fn markdown(&self) -> String {
+        let s = self.inp.study;
+        let mut m = format!("# {}\n\nStudy `{}`. Report written by satstep {}.\n\n", s.title, s.id, env!("CARGO_PKG_VERSION"));
+        m.push_str("> **Cautions.**\n");
+        for c in CAUTIONS {
+            m.push_str(&format!("> - {c}\n"));
+        }
+        m.push_str("\n## Cohort and protocol\n\n");
+        for p in self.cohort() {
+            m.push_str(&format!("{p}\n\n"));
+        }
+        m.push_str(&format!("```\n{}```\n\n## Results\n\nFigures of a single method show `{}`.\n\n", crate::run::render_timeline(&s.protocol), self.primary));
+        for t in self.results {
+            m.push_str(&format!("**{}**\n\n{}\n", t.caption, t.markdown()));
+        }
+        for f in self.figures {
+            m.push_str(&format!("![{}](figures/{}.png)\n\n*{}*\n\n", f.name, f.name, f.caption));
+        }
+        m.push_str("## Methods\n\n");
+        for p in methods_text(s) {
+            m.push_str(&format!("{p}\n\n"));
+        }
+        m.push_str("### References\n\n");
+        for (i, r) in REFERENCES.iter().enumerate() {
+            m.push_str(&format!("{}. {r}\n", i + 1));
+        }
+        m.push_str("\n## Data quality\n\n");
+        for t in self.quality {
+            m.push_str(&format!("**{}**\n\n{}\n", t.caption, t.markdown()));
+        }
+        let fails = self.failures();
+        if fails.is_empty() {
+            m.push_str("Every listed capture was read and registered.\n\n");
+        }
+        for f in &fails {
+            m.push_str(&format!("- {f}\n"));
+        }
+        m.push_str(&format!("\n## Provenance\n\nsatstep {} · cache format {} · study file `{}`\n\nPer-stage keys, timings and counts are in `manifest.json` beside this folder.\n", env!("CARGO_PKG_VERSION"), crate::stages::key::CACHE_FORMAT, self.rel(&s.file)));
+        m.push_str("\n| input file | SHA-256 |\n|---|---|\n");
+        for (p, k) in &self.inp.files {
+            m.push_str(&format!("| `{p}` | `{k}` |\n"));
+        }
+        m
+    }
+}
+
+/// SVG text without its XML declaration, for inlining in HTML.
+fn strip_xml_header(svg: &str) -> &str {
+    match svg.find("<svg") {
+        Some(i) => &svg[i..],
+        None => svg,
+    }
+}

@@ -1,0 +1,324 @@
+//! The report's tables: built from the stages' results as text cells (the
+//! numbers rounded as a paper prints them) and written as CSV, Markdown and
+//! LaTeX (booktabs). The unrounded values stay in the stages' own tables.
+
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+
+use anyhow::Result;
+
+use crate::config::study::Study;
+use crate::run::epochs::EpochTables;
+use crate::run::fits::FitRow;
+use crate::run::statistics::Statistics;
+use crate::run::transmissions::ImageTables;
+use crate::tables::write_bytes_atomic;
+
+/// A table of text cells with a caption; numeric columns align right.
+#[derive(Debug, Clone)]
+pub struct ReportTable {
+    pub name: &'static str,
+    pub caption: String,
+    pub columns: Vec<String>,
+    pub numeric: Vec<bool>,
+    pub rows: Vec<Vec<String>>,
+}
+
+impl ReportTable {
+    fn new(name: &'static str, caption: impl Into<String>, columns: &[(&str, bool)]) -> Self {
+        ReportTable { name, caption: caption.into(), columns: columns.iter().map(|c| c.0.to_string()).collect(), numeric: columns.iter().map(|c| c.1).collect(), rows: vec![] }
+    }
+
+    pub fn csv(&self) -> Result<Vec<u8>> {
+        let mut w = csv::Writer::from_writer(Vec::new());
+        w.write_record(&self.columns)?;
+        for r in &self.rows {
+            w.write_record(r)?;
+        }
+        Ok(w.into_inner()?)
+    }
+
+    pub fn markdown(&self) -> String {
+        let esc = |s: &str| s.replace('|', "\\|");
+        let mut out = format!("| {} |\n|", self.columns.iter().map(|c| esc(c)).collect::<Vec<_>>().join(" | "));
+        for n in &self.numeric {
+            out.push_str(if *n { "---:|" } else { "---|" });
+        }
+        out.push('\n');
+        for r in &self.rows {
+            out.push_str(&format!("| {} |\n", r.iter().map(|c| esc(c)).collect::<Vec<_>>().join(" | ")));
+        }
+        out
+    }
+
+    /// A booktabs `table` environment; needs `\usepackage{booktabs}`.
+    pub fn latex(&self) -> String {
+        let align: String = self.numeric.iter().map(|n| if *n { 'r' } else { 'l' }).collect();
+        let row = |cells: &[String]| cells.iter().map(|c| latex_escape(c)).collect::<Vec<_>>().join(" & ") + " \\\\\n";
+        let mut out = String::from("\\begin{table}[htbp]\n\\centering\n");
+        out.push_str(&format!("\\caption{{{}}}\n\\label{{tab:{}}}\n", latex_escape(&self.caption), self.name));
+        out.push_str(&format!("\\begin{{tabular}}{{{align}}}\n\\toprule\n"));
+        out.push_str(&row(&self.columns));
+        out.push_str("\\midrule\n");
+        for r in &self.rows {
+            out.push_str(&row(r));
+        }
+        out.push_str("\\bottomrule\n\\end{tabular}\n\\end{table}\n");
+        out
+    }
+
+    pub fn html(&self) -> String {
+        let mut out = format!("<table id=\"tab-{}\">\n<caption>{}</caption>\n<thead><tr>", self.name, html_escape(&self.caption));
+        for (c, n) in self.columns.iter().zip(&self.numeric) {
+            out.push_str(&format!("<th{}>{}</th>", if *n { " class=\"num\"" } else { "" }, html_escape(c)));
+        }
+        out.push_str("</tr></thead>\n<tbody>\n");
+        for r in &self.rows {
+            out.push_str("<tr>");
+            for (c, n) in r.iter().zip(&self.numeric) {
+                out.push_str(&format!("<td{}>{}</td>", if *n { " class=\"num\"" } else { "" }, html_escape(c)));
+            }
+            out.push_str("</tr>\n");
+        }
+        out.push_str("</tbody>\n</table>\n");
+        out
+    }
+
+    /// Writes `<name>.csv`, `.md` and `.tex` under `dir`.
+    pub fn write(&self, dir: &Path) -> Result<Vec<PathBuf>> {
+        let mut paths = Vec::new();
+        for (ext, bytes) in [("csv", self.csv()?), ("md", format!("{}\n\n{}", self.caption, self.markdown()).into_bytes()), ("tex", self.latex().into_bytes())] {
+            let p = dir.join(format!("{}.{ext}", self.name));
+            write_bytes_atomic(&p, &bytes)?;
+            paths.push(p);
+        }
+        Ok(paths)
+    }
+}
+
+pub fn latex_escape(s: &str) -> String {
+    let mut out = String::with_capacity(s.len());
+    for ch in s.chars() {
+        match ch {
+            '&' | '%' | '$' | '#' | '_' | '{' | '}' => {
+                out.push('\\');
+                out.push(ch);
+            }
+            '~' => out.push_str("\\textasciitilde{}"),
+            '^' => out.push_str("\\textasciicircum{}"),
+            '\\' => out.push_str("\\textbackslash{}"),
+            '±' => out.push_str("$\\pm$"),
+            '−' => out.push_str("$-$"),
+            '×' => out.push_str("$\\times$"),
+            'µ' => out.push_str("\\textmu{}"),
+            '–' => out.push_str("--"),
+            _ => out.push(ch),
+        }
+    }
+    out
+}
+
+pub fn html_escape(s: &str) -> String {
+    s.replace('&', "&amp;").replace('<', "&lt;").replace('>', "&gt;").replace('"', "&quot;")
+}
+
+fn f(v: f64, digits: usize) -> String {
+    if v.is_finite() { format!("{v:.digits$}") } else { "–".into() }
+}
+
+fn p_value(p: f64) -> String {
+    if !p.is_finite() {
+        "–".into()
+    } else if p < 0.001 {
+        "< 0.001".into()
+    } else {
+        format!("{p:.3}")
+    }
+}
+
+/// Why a capture did not enter the statistics, or `None` when it did.
+pub fn usage(epochs: &EpochTables, images: &ImageTables, fits: &[FitRow]) -> Vec<Option<String>> {
+    let mut with_so2 = vec![false; epochs.captures.len()];
+    for f in fits {
+        if f.so2.is_some_and(f64::is_finite) {
+            with_so2[f.capture_index] = true;
+        }
+    }
+    epochs
+        .captures
+        .iter()
+        .enumerate()
+        .map(|(i, c)| {
+            if c.status != "steady" {
+                Some(c.status.clone())
+            } else if images.status[i].status != "ok" {
+                Some(images.status[i].status.clone())
+            } else if !with_so2[i] {
+                Some("no segment fitted".into())
+            } else {
+                None
+            }
+        })
+        .collect()
+}
+
+/// Captures acquired, used and not used by reason, per subject and epoch.
+pub fn accounting(study: &Study, epochs: &EpochTables, usage: &[Option<String>]) -> ReportTable {
+    let mut reasons: Vec<String> = usage.iter().flatten().cloned().collect();
+    reasons.sort();
+    reasons.dedup();
+    let mut cols: Vec<(&str, bool)> = vec![("subject", false), ("epoch", false), ("acquired", true), ("used", true)];
+    cols.extend(reasons.iter().map(|r| (r.as_str(), true)));
+    let mut t = ReportTable::new("capture_accounting", "Captures acquired, used in the statistics, and not used by reason, per subject and epoch", &cols);
+    let order: Vec<String> = study.protocol.epochs.iter().map(|e| e.name.clone()).chain(["(none)".to_string()]).collect();
+    let mut by: BTreeMap<(String, usize), Vec<&Option<String>>> = BTreeMap::new();
+    for (c, u) in epochs.captures.iter().zip(usage) {
+        let e = c.epoch.clone().unwrap_or_else(|| "(none)".into());
+        let ei = order.iter().position(|x| *x == e).unwrap_or(order.len());
+        by.entry((c.subject.clone(), ei)).or_default().push(u);
+    }
+    let mut total = vec![0usize; 2 + reasons.len()];
+    for ((s, ei), us) in &by {
+        let mut row = vec![s.clone(), order[*ei].clone(), us.len().to_string(), us.iter().filter(|u| u.is_none()).count().to_string()];
+        total[0] += us.len();
+        total[1] += us.iter().filter(|u| u.is_none()).count();
+        for (k, r) in reasons.iter().enumerate() {
+            let n = us.iter().filter(|u| u.as_deref() == Some(r.as_str())).count();
+            total[2 + k] += n;
+            row.push(n.to_string());
+        }
+        t.rows.push(row);
+    }
+    let mut row = vec!["all".to_string(), "all".to_string()];
+    row.extend(total.iter().map(|n| n.to_string()));
+    t.rows.push(row);
+    t
+}
+
+/// Mean ± SD over subjects of the subjects' epoch means, per method and epoch.
+pub fn so2_by_epoch(study: &Study, stats: &Statistics) -> ReportTable {
+    let mut t = ReportTable::new(
+        "so2_by_epoch",
+        "SO2 (%) by epoch: mean ± SD over subjects of each subject's mean of steady captures; arteriovenous = arteriolar − venular per capture",
+        &[("method", false), ("epoch", false), ("subjects", true), ("arterioles", true), ("venules", true), ("arteriovenous", true)],
+    );
+    for m in &study.methods {
+        for e in &study.protocol.epochs {
+            let mut n = 0;
+            let cells: Vec<String> = ["arteriole", "venule", "arteriovenous"]
+                .iter()
+                .map(|k| {
+                    let v: Vec<f64> = stats.summaries.iter().filter(|s| s.0 == m.label && s.1 == *k && s.3 == e.name && s.6.is_finite()).map(|s| s.6).collect();
+                    n = n.max(v.len());
+                    if v.is_empty() {
+                        return "–".into();
+                    }
+                    let mean = v.iter().sum::<f64>() / v.len() as f64;
+                    let sd = if v.len() > 1 { (v.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / (v.len() - 1) as f64).sqrt() } else { f64::NAN };
+                    format!("{} ± {}", f(mean, 1), f(sd, 1))
+                })
+                .collect();
+            let mut row = vec![m.label.clone(), e.name.clone(), n.to_string()];
+            row.extend(cells);
+            t.rows.push(row);
+        }
+    }
+    t
+}
+
+pub fn contrasts(study: &Study, stats: &Statistics) -> ReportTable {
+    let level = format!("{:.0} % CI", study.statistics.confidence * 100.0);
+    let adj = if study.statistics.holm { "p (Holm)" } else { "p (unadjusted)" };
+    let mut t = ReportTable::new(
+        "contrasts",
+        format!("Mixed-model contrasts of SO2 between epochs (points): REML, Satterthwaite df, {level}; {adj} within method and vessel kind"),
+        &[("method", false), ("kind", false), ("contrast", false), ("estimate", true), (level.as_str(), true), ("df", true), ("t", true), ("p", true), (adj, true)],
+    );
+    for (m, k, test, h) in &stats.contrasts {
+        t.rows.push(vec![m.clone(), k.clone(), test.label.clone(), f(test.estimate, 2), format!("{} to {}", f(test.lower, 2), f(test.upper, 2)), f(test.df, 1), f(test.t, 2), p_value(test.p), p_value(*h)]);
+    }
+    t
+}
+
+pub fn agreement(study: &Study, stats: &Statistics) -> ReportTable {
+    let level = format!("slope {:.0} % CI", study.statistics.confidence * 100.0);
+    let mut t = ReportTable::new(
+        "agreement",
+        "Agreement of capture-mean arteriolar SO2 with the reference SpO2 (points): bias, precision, Arms, repeated-measures 95 % limits of agreement (Bland & Altman 2007), slope of SO2 on SpO2 (subject random intercepts)",
+        &[("method", false), ("captures", true), ("subjects", true), ("bias", true), ("precision", true), ("Arms", true), ("limits of agreement", true), ("slope", true), (level.as_str(), true)],
+    );
+    for (m, a, s) in &stats.agreement {
+        t.rows.push(vec![
+            m.clone(),
+            a.n.to_string(),
+            a.subjects.to_string(),
+            f(a.bias, 2),
+            f(a.precision, 2),
+            f(a.arms, 2),
+            format!("{} to {}", f(a.lower, 2), f(a.upper, 2)),
+            s.as_ref().map(|s| f(s.estimate, 3)).unwrap_or_else(|| "–".into()),
+            s.as_ref().map(|s| format!("{} to {}", f(s.lower, 3), f(s.upper, 3))).unwrap_or_else(|| "–".into()),
+        ]);
+    }
+    t
+}
+
+pub fn method_comparison(stats: &Statistics) -> ReportTable {
+    let mut t = ReportTable::new(
+        "method_comparison",
+        "Method comparison on the same cohort: repeatability, uncertainty, spread along segments, values outside 0–100 %, response to the SpO2 change, and agreement between methods",
+        &[("method", false), ("kind", false), ("quantity", false), ("value", true)],
+    );
+    for (m, k, q, v) in &stats.comparison {
+        let digits = if q.contains("share") || q.contains("slope") { 3 } else if q == "n" || q.starts_with("values") { 0 } else { 2 };
+        t.rows.push(vec![m.clone(), k.clone(), q.replace('_', " "), f(*v, digits)]);
+    }
+    t
+}
+
+/// Data quality: flagged profile positions by flag, values outside 0–100 % per method.
+pub fn data_quality(study: &Study, images: &ImageTables, fits: &[FitRow]) -> ReportTable {
+    let mut t = ReportTable::new("data_quality", "Data quality: profile positions by flag, and segment SO2 values outside 0–100 % (kept in the analysis)", &[("item", false), ("count", true), ("of", true)]);
+    let mut flags: BTreeMap<String, usize> = BTreeMap::new();
+    for p in &images.positions {
+        if p.flags.is_empty() {
+            *flags.entry("unflagged".into()).or_default() += 1;
+        }
+        for fl in p.flags.split(';').filter(|s| !s.is_empty()) {
+            *flags.entry(format!("flag {fl}")).or_default() += 1;
+        }
+    }
+    for (k, n) in &flags {
+        t.rows.push(vec![format!("profile positions: {k}"), n.to_string(), images.positions.len().to_string()]);
+    }
+    for m in &study.methods {
+        let vals: Vec<f64> = fits.iter().filter(|r| r.method == m.label).filter_map(|r| r.so2).filter(|v| v.is_finite()).collect();
+        let out = vals.iter().filter(|v| !(0.0..=100.0).contains(*v)).count();
+        t.rows.push(vec![format!("{}: SO2 outside 0–100 %", m.label), out.to_string(), vals.len().to_string()]);
+        let unfitted = fits.iter().filter(|r| r.method == m.label && r.so2.is_none()).count();
+        t.rows.push(vec![format!("{}: segments without an SO2", m.label), unfitted.to_string(), fits.iter().filter(|r| r.method == m.label).count().to_string()]);
+    }
+    t
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn latex_escapes_and_balances() {
+        let mut t = ReportTable::new("x", "50 % of a_b & c", &[("a", false), ("b", true)]);
+        t.rows.push(vec!["V_01 {x}".into(), "−1.0 ± 2.0".into()]);
+        let s = t.latex();
+        assert!(s.contains("50 \\% of a\\_b \\& c"));
+        assert!(s.contains("V\\_01 \\{x\\} & $-$1.0 $\\pm$ 2.0 \\\\"));
+        assert_eq!(s.matches('{').count() - s.matches("\\{").count(), s.matches('}').count() - s.matches("\\}").count());
+    }
+
+    #[test]
+    fn markdown_has_one_separator_per_column() {
+        let mut t = ReportTable::new("x", "c", &[("a", false), ("b", true)]);
+        t.rows.push(vec!["p|q".into(), "1".into()]);
+        assert_eq!(t.markdown(), "| a | b |\n|---|---:|\n| p\\|q | 1 |\n");
+    }
+}
