@@ -162,7 +162,7 @@ fn run_places_captures_at_the_boundaries_as_documented() {
     // the run reports (exit 1) after writing every table.
     assert_eq!(out.code, 1, "{}", out.stderr);
     assert!(out.stderr.contains("3 steady, 2 settling, 2 outside the protocol"), "{}", out.stderr);
-    assert!(out.stderr.contains("5 did not register"), "{}", out.stderr);
+    assert!(out.stderr.contains("5 captures could not be analysed"), "{}", out.stderr);
     assert!(dir.path().join("results/statistics/contrasts.csv").is_file());
     let csv = std::fs::read_to_string(dir.path().join("results/epochs/captures.csv")).unwrap();
     let rows: Vec<Vec<&str>> = csv.lines().skip(1).map(|l| l.split(',').collect()).collect();

@@ -44,7 +44,7 @@ fn only_what_changed_reruns() {
     let dir = tempfile::tempdir().unwrap();
     let s = simulated(dir.path(), "s");
     let first = run(dir.path(), &s, &[]);
-    for st in ["epochs", "images", "fits", "statistics"] {
+    for st in ["epochs", "images", "fits", "statistics", "report"] {
         assert!(line(&first, st).contains("ran (no earlier result)"), "{}", first.stderr);
     }
     let before = hashes_except(&s.join("results"), VOLATILE);
@@ -52,7 +52,7 @@ fn only_what_changed_reruns() {
     // Nothing changed: every stage is up to date and nothing is rewritten.
     let t0 = Instant::now();
     let second = run(dir.path(), &s, &[]);
-    for st in ["epochs", "images", "fits", "statistics"] {
+    for st in ["epochs", "images", "fits", "statistics", "report"] {
         assert!(line(&second, st).contains("up to date"), "{}", second.stderr);
     }
     assert!(t0.elapsed() < Duration::from_secs(60), "a no-change run recomputed something");
@@ -67,6 +67,9 @@ fn only_what_changed_reruns() {
     }
     assert!(line(&third, "statistics").contains("ran (settings changed)"), "{}", third.stderr);
     assert!(third.stderr.contains("(90 % CI"), "{}", third.stderr);
+    assert!(line(&third, "report").contains("`statistics` changed"), "{}", third.stderr);
+    let contrasts = std::fs::read_to_string(s.join("results/report/tables/contrasts.csv")).unwrap();
+    assert!(contrasts.lines().next().unwrap().contains("90 % CI"), "{contrasts}");
 
     // A method setting: fits and statistics run, images do not.
     edit(&study, "huber_scale: 1.5", "huber_scale: 2.0");
@@ -123,7 +126,9 @@ fn a_killed_run_resumes_to_the_same_results() {
         .unwrap();
     let items = killed.join("results/cache/items/images");
     let t0 = Instant::now();
-    while std::fs::read_dir(&items).map(|d| d.count()).unwrap_or(0) < 4 {
+    // Finished entries only (`.bin`; a write in flight is a hidden temporary file).
+    let finished = || std::fs::read_dir(&items).map(|d| d.filter(|e| e.as_ref().unwrap().path().extension().is_some_and(|x| x == "bin")).count()).unwrap_or(0);
+    while finished() < 4 {
         assert!(t0.elapsed() < Duration::from_secs(120), "no capture was cached");
         std::thread::sleep(Duration::from_millis(5));
     }
@@ -178,7 +183,7 @@ fn the_manifest_says_what_was_run_on_what() {
     assert_eq!(inputs.len(), 2 + 3 * 3 + 33, "{inputs:?}");
     assert!(inputs.iter().all(|f| f["sha256"].as_str().unwrap().len() == 64));
     let stages: Vec<&str> = m["stages"].as_array().unwrap().iter().map(|s| s["stage"].as_str().unwrap()).collect();
-    assert_eq!(stages, ["epochs", "images", "fits", "statistics"]);
+    assert_eq!(stages, ["epochs", "images", "fits", "statistics", "report"]);
     assert_eq!(m["captures"]["listed"], 33);
     assert_eq!(m["captures"]["not_used"]["settling"], 9);
     assert_eq!(m["exit_status"], 0);

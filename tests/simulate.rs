@@ -104,6 +104,11 @@ fn simulated_reference_and_truth_are_physiological() {
     let drop = mean("air", "arteriole") - mean("low-15", "arteriole");
     assert!((5.0..=10.0).contains(&drop), "FiO2 0.15 lowers arterioles by about 6–9 points, got {drop}");
 
+    // The demo run writes the whole report.
+    for f in ["report.html", "report.md", "tables/contrasts.tex", "figures/time_course.png", "figures/sensitivity.svg"] {
+        assert!(out.join("results/report").join(f).is_file(), "the demo report lacks {f}");
+    }
+
     // End to end: the mixed-model contrasts from the images land near the
     // true contrasts of the simulation, for every method.
     let truth = std::fs::read_to_string(out.join("truth/contrasts.csv")).unwrap();

@@ -14,7 +14,7 @@ use crate::oximetry::sensitivity::{so2_errors, OperatingPoint};
 use crate::run::epochs::EpochTables;
 use crate::run::fits::{multiband_model, FitRow};
 use crate::run::statistics::Statistics;
-use crate::run::transmissions::ImageTables;
+use crate::run::transmissions::PositionRow;
 use crate::timeline::reference::read_log;
 
 pub struct SpanShade {
@@ -106,7 +106,7 @@ pub fn primary_method(study: &Study) -> String {
         .unwrap_or_default()
 }
 
-pub fn prepare(study: &Study, epochs: &EpochTables, images: &ImageTables, fits: &[FitRow], stats: &Statistics) -> ReportData {
+pub fn prepare(study: &Study, epochs: &EpochTables, positions: &dyn Fn(usize) -> Vec<PositionRow>, fits: &[FitRow], stats: &Statistics) -> ReportData {
     let primary = primary_method(study);
     let p = &study.protocol;
     let baseline = p.epochs[p.baseline].name.clone();
@@ -136,7 +136,7 @@ pub fn prepare(study: &Study, epochs: &EpochTables, images: &ImageTables, fits: 
                 upper: a.upper,
             })
             .collect(),
-        along: along_segment(study, epochs, images, fits, &primary, &baseline),
+        along: along_segment(study, epochs, positions, fits, &primary, &baseline),
         sensitivity: sensitivity(study),
         primary,
         baseline,
@@ -202,14 +202,15 @@ fn changes(stats: &Statistics, method: &str, baseline: &str, after: &[String]) -
 
 /// One arteriole of the first steady baseline capture, profiled by every
 /// two-band and multiband method, position by position.
-fn along_segment(study: &Study, epochs: &EpochTables, images: &ImageTables, fits: &[FitRow], primary: &str, baseline: &str) -> Option<AlongSegment> {
+fn along_segment(study: &Study, epochs: &EpochTables, positions: &dyn Fn(usize) -> Vec<PositionRow>, fits: &[FitRow], primary: &str, baseline: &str) -> Option<AlongSegment> {
     let c = &epochs.captures;
     let joint = fits
         .iter()
         .filter(|r| r.method == primary && r.kind == "arteriole" && r.so2.is_some() && c[r.capture_index].status == "steady" && c[r.capture_index].epoch.as_deref() == Some(baseline))
         .min_by_key(|r| (r.capture_index, -r.positions))?;
     let ci = joint.capture_index;
-    let pos: Vec<_> = images.positions.iter().filter(|p| p.capture_index == ci && p.segment == joint.segment && p.flags.is_empty() && p.transmission.iter().all(|t| *t > 0.0 && t.is_finite())).collect();
+    let all = positions(ci);
+    let pos: Vec<_> = all.iter().filter(|p| p.capture_index == ci && p.segment == joint.segment && p.flags.is_empty() && p.transmission.iter().all(|t| *t > 0.0 && t.is_finite())).collect();
     let bands: Vec<SampledBand> = study.instrument.bands.iter().map(|b| SampledBand::from_response(&b.response)).collect();
     let um = study.instrument.pixel_size_um;
     let mut series = Vec::new();

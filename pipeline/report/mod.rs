@@ -75,7 +75,8 @@ pub fn methods_text(study: &Study) -> Vec<String> {
 }
 
 /// Writes the report; returns every file written.
-pub fn write(inp: &Inputs, out: &Path) -> Result<Vec<PathBuf>> {
+/// `positions` reads one capture's profile positions (from the image stage's cache).
+pub fn write(inp: &Inputs, positions: &dyn Fn(usize) -> Vec<crate::run::transmissions::PositionRow>, out: &Path) -> Result<Vec<PathBuf>> {
     let dir = out.join("report");
     let tdir = dir.join("tables");
     std::fs::create_dir_all(&tdir)?;
@@ -87,7 +88,7 @@ pub fn write(inp: &Inputs, out: &Path) -> Result<Vec<PathBuf>> {
     for t in results.iter().chain(&quality) {
         written.extend(t.write(&tdir)?);
     }
-    let data = data::prepare(s, inp.epochs, inp.images, inp.fits, inp.stats);
+    let data = data::prepare(s, inp.epochs, positions, inp.fits, inp.stats);
     let figs = figures::all(&dir.join("figures"), &data)?;
     written.extend(figs.iter().flat_map(|f| f.files.clone()));
     let doc = Document { inp, results: &results, quality: &quality, figures: &figs, usage: &usage, primary: &data.primary };

@@ -149,10 +149,11 @@ pub fn usage(epochs: &EpochTables, images: &ImageTables, fits: &[FitRow]) -> Vec
         .iter()
         .enumerate()
         .map(|(i, c)| {
-            if c.status != "steady" {
-                Some(c.status.clone())
-            } else if images.status[i].status != "ok" {
+            // A capture that could not be read or registered says so first.
+            if matches!(images.status[i].status.as_str(), "error" | "not-registered") {
                 Some(images.status[i].status.clone())
+            } else if c.status != "steady" {
+                Some(c.status.clone())
             } else if !with_so2[i] {
                 Some("no segment fitted".into())
             } else {
@@ -279,17 +280,9 @@ pub fn method_comparison(stats: &Statistics) -> ReportTable {
 /// Data quality: flagged profile positions by flag, values outside 0–100 % per method.
 pub fn data_quality(study: &Study, images: &ImageTables, fits: &[FitRow]) -> ReportTable {
     let mut t = ReportTable::new("data_quality", "Data quality: profile positions by flag, and segment SO2 values outside 0–100 % (kept in the analysis)", &[("item", false), ("count", true), ("of", true)]);
-    let mut flags: BTreeMap<String, usize> = BTreeMap::new();
-    for p in &images.positions {
-        if p.flags.is_empty() {
-            *flags.entry("unflagged".into()).or_default() += 1;
-        }
-        for fl in p.flags.split(';').filter(|s| !s.is_empty()) {
-            *flags.entry(format!("flag {fl}")).or_default() += 1;
-        }
-    }
-    for (k, n) in &flags {
-        t.rows.push(vec![format!("profile positions: {k}"), n.to_string(), images.positions.len().to_string()]);
+    for (k, n) in &images.flag_counts {
+        let what = if k == "unflagged" { k.clone() } else { format!("flag {k}") };
+        t.rows.push(vec![format!("profile positions: {what}"), n.to_string(), images.total_positions().to_string()]);
     }
     for m in &study.methods {
         let vals: Vec<f64> = fits.iter().filter(|r| r.method == m.label).filter_map(|r| r.so2).filter(|v| v.is_finite()).collect();

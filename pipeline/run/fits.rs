@@ -9,7 +9,7 @@ use std::path::Path;
 use anyhow::Result;
 use rayon::prelude::*;
 
-use crate::config::study::{Calibration, Loss, MethodKind, Study};
+use crate::config::study::{Calibration, Loss, Method, MethodKind, Study};
 use crate::oximetry::bands::SampledBand;
 use crate::oximetry::model::VesselModel;
 use crate::oximetry::odr::{leave_one_subject_out, segment_odr, two_point, Linear};
@@ -18,7 +18,7 @@ use crate::oximetry::segment::{fit_segment, FitSettings, RobustLoss, SegmentSpec
 use crate::run::epochs::EpochTables;
 use crate::run::transmissions::{ImageTables, PositionRow};
 use crate::stages::key::{Key, KeyBuilder};
-use crate::stages::Items;
+use crate::stages::{Items, Runner};
 use crate::tables::Table;
 
 /// Fewest unflagged positions a segment needs to be fitted.
@@ -44,7 +44,7 @@ pub struct FitRow {
 }
 
 /// Version of this stage's computation; bump when its results change.
-pub const VERSION: u32 = 1;
+pub const VERSION: u32 = 2;
 
 /// The stage's settings: the methods and the bands they read.
 pub fn settings_key(study: &Study) -> Key {
@@ -53,21 +53,67 @@ pub fn settings_key(study: &Study) -> Key {
     k.finish()
 }
 
-pub fn build(study: &Study, epochs: &EpochTables, images: &ImageTables, items: &Items) -> Vec<FitRow> {
+/// Fits every capture's segments by every method. Captures are taken in
+/// parallel, each reading its positions from the image stage's cache and
+/// dropping them when done; multiband results are cached per capture.
+pub fn build(study: &Study, epochs: &EpochTables, images: &ImageTables, runner: &Runner, items: &Items) -> Result<Vec<FitRow>> {
     let bands: Vec<SampledBand> = study.instrument.bands.iter().map(|b| SampledBand::from_response(&b.response)).collect();
-    let mut groups: BTreeMap<(usize, String), Vec<&PositionRow>> = BTreeMap::new();
-    for r in &images.positions {
+    let captures: Vec<usize> = (0..epochs.captures.len()).filter(|i| images.position_counts[*i] > 0).collect();
+    let per_capture: Vec<Vec<Vec<FitRow>>> = captures
+        .par_iter()
+        .map(|&ci| -> Result<Vec<Vec<FitRow>>> {
+            let mut loaded: Option<Vec<PositionRow>> = None;
+            let mut load = || -> Result<Vec<PositionRow>> {
+                if loaded.is_none() {
+                    loaded = Some(images.positions(runner, ci)?);
+                }
+                Ok(loaded.clone().expect("loaded above"))
+            };
+            let mut out = Vec::with_capacity(study.methods.len());
+            for m in &study.methods {
+                let rows = match &m.kind {
+                    // Multiband fits are the slow part: kept per capture, so that an
+                    // interrupted run or a changed capture refits only what it must.
+                    MethodKind::Multiband { .. } => {
+                        let mut k = KeyBuilder::new("fits-capture", VERSION);
+                        k.value("method", m).value("bands", &study.instrument.bands).value("min-positions", &MIN_POSITIONS).key("images", &images.keys[ci]);
+                        items.try_get_or_compute(&k.finish(), || Ok(fit_capture(m, &bands, ci, &load()?)))?
+                    }
+                    MethodKind::TwoBand { .. } => fit_capture(m, &bands, ci, &load()?),
+                };
+                out.push(rows.into_iter().map(|mut r| {
+                    r.capture_index = ci;
+                    r
+                }).collect());
+            }
+            Ok(out)
+        })
+        .collect::<Result<_>>()?;
+    let mut out = Vec::new();
+    for (mi, m) in study.methods.iter().enumerate() {
+        let mut rows: Vec<FitRow> = per_capture.iter().flat_map(|c| c[mi].iter().cloned()).collect();
+        if let MethodKind::TwoBand { calibration, .. } = &m.kind {
+            calibrate(&mut rows, calibration, study, epochs);
+        }
+        out.extend(rows);
+    }
+    Ok(out)
+}
+
+/// One capture's segments by one method (before any cohort calibration).
+fn fit_capture(m: &Method, bands: &[SampledBand], ci: usize, positions: &[PositionRow]) -> Vec<FitRow> {
+    let mut groups: BTreeMap<String, Vec<&PositionRow>> = BTreeMap::new();
+    for r in positions {
         if r.flags.is_empty() && r.transmission.iter().all(|t| t.is_finite() && *t > 0.0) {
-            groups.entry((r.capture_index, r.segment.clone())).or_default().push(r);
+            groups.entry(r.segment.clone()).or_default().push(r);
         }
     }
-    // Every (capture, segment) that the image stage profiled, even with too few positions.
-    let mut keys: Vec<(usize, String, String)> = images.positions.iter().map(|r| (r.capture_index, r.segment.clone(), r.kind.clone())).collect();
-    keys.dedup();
+    // Every segment the image stage profiled, even with too few positions.
+    let mut keys: Vec<(usize, String, String)> = positions.iter().map(|r| (ci, r.segment.clone(), r.kind.clone())).collect();
     keys.sort();
     keys.dedup();
-    let mut out = Vec::new();
-    for m in &study.methods {
+    let groups: BTreeMap<(usize, String), Vec<&PositionRow>> = groups.into_iter().map(|(k, v)| ((ci, k), v)).collect();
+    {
         let fit_one = |(ci, seg, kind): &(usize, String, String)| -> FitRow {
                 let pos = groups.get(&(*ci, seg.clone())).cloned().unwrap_or_default();
                 let diameter = if pos.is_empty() { f64::NAN } else { pos.iter().map(|p| p.diameter_um).sum::<f64>() / pos.len() as f64 };
@@ -128,37 +174,8 @@ pub fn build(study: &Study, epochs: &EpochTables, images: &ImageTables, items: &
                 }
                 row
         };
-        let mut rows: Vec<FitRow> = match &m.kind {
-            // Multiband fits are the slow part: kept per capture, so that an
-            // interrupted run or a changed capture refits only what it must.
-            MethodKind::Multiband { .. } => {
-                let mut by_capture: BTreeMap<usize, Vec<(usize, String, String)>> = BTreeMap::new();
-                for k in &keys {
-                    by_capture.entry(k.0).or_default().push(k.clone());
-                }
-                let groups: Vec<(usize, Vec<(usize, String, String)>)> = by_capture.into_iter().collect();
-                let per: Vec<Vec<FitRow>> = groups
-                    .par_iter()
-                    .map(|(ci, segs)| {
-                        let mut k = KeyBuilder::new("fits-capture", VERSION);
-                        k.value("method", m).value("bands", &study.instrument.bands).value("min-positions", &MIN_POSITIONS).key("images", &images.keys[*ci]);
-                        let rows: Vec<FitRow> = items.get_or_compute(&k.finish(), || segs.iter().map(fit_one).collect());
-                        rows.into_iter().map(|mut r| {
-                            r.capture_index = *ci;
-                            r
-                        }).collect()
-                    })
-                    .collect();
-                per.into_iter().flatten().collect()
-            }
-            MethodKind::TwoBand { .. } => keys.par_iter().map(fit_one).collect(),
-        };
-        if let MethodKind::TwoBand { calibration, .. } = &m.kind {
-            calibrate(&mut rows, calibration, study, epochs);
-        }
-        out.extend(rows);
+        keys.iter().map(fit_one).collect()
     }
-    out
 }
 
 /// The vessel model over the method's bands and the fit settings for its loss.

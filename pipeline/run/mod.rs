@@ -201,7 +201,7 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
     printer.info(format!("study `{}`: {} subjects, {} captures; results under `{}`", study.id, study.subjects.len(), study.capture_count(), study.output.display()));
     let out = &study.output;
     std::fs::create_dir_all(out).with_context(|| format!("creating the output folder `{}`", out.display()))?;
-    let mut runner = Runner::new(out, printer, force);
+    let runner = Runner::new(out, printer, force);
 
     // Content hashes of everything the run reads, once, in parallel.
     let t0 = std::time::Instant::now();
@@ -226,7 +226,7 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
             let d = format!("{} captures: {} steady, {} settling, {} outside the protocol, {} excluded", t.captures.len(), n("steady"), n("settling"), n("outside"), n("excluded"));
             Ok((t, d))
         },
-        |t| t.write(out),
+        |t, _| t.write(out),
     )?;
 
     // Images → transmissions, capture by capture.
@@ -240,10 +240,10 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
             let items = r.items("images", analysed, "images");
             let t = transmissions::build(study, &tables, keys.clone(), &items);
             let detail = items.finish("captures")?;
-            let d = format!("{detail}; {} profile positions", t.positions.len());
+            let d = format!("{detail}; {} profile positions", t.total_positions());
             Ok((t, d))
         },
-        |t| t.write(out, study, &tables),
+        |t, r| t.write(out, study, &tables, r),
     )?;
     let failed: Vec<usize> = (0..tables.captures.len()).filter(|i| matches!(images.status[*i].status.as_str(), "error" | "not-registered")).collect();
     for &i in &failed {
@@ -258,12 +258,12 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
         |r| {
             let n = images.keys.len() * study.methods.iter().filter(|m| matches!(m.kind, crate::config::study::MethodKind::Multiband { .. })).count();
             let items = r.items("fits", n, "fits");
-            let rows = fits::build(study, &tables, &images, &items);
+            let rows = fits::build(study, &tables, &images, r, &items)?;
             let detail = items.finish("multiband capture fits")?;
             let d = format!("{} segment fits over {} methods, {} with an SO2 ({detail})", rows.len(), study.methods.len(), rows.iter().filter(|f| f.so2.is_some()).count());
             Ok((rows, d))
         },
-        |rows| fits::write(rows, &tables, out),
+        |rows, _| fits::write(rows, &tables, out),
     )?;
 
     // Statistics.
@@ -276,7 +276,7 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
             let d = format!("{} subject × epoch summaries, {} contrasts, {} agreement rows", s.summaries.len(), s.contrasts.len(), s.agreement.len());
             Ok((s, d))
         },
-        |s| s.write(out),
+        |s, _| s.write(out),
     )?;
     for (m, k, t, h) in &stats.contrasts {
         printer.info(format!("  {m} {k}: {} = {:+.2} points ({:.0} % CI {:+.2} to {:+.2}, df {:.1}, adjusted p {:.2e})", t.label, t.estimate, study.statistics.confidence * 100.0, t.lower, t.upper, t.df, h));
@@ -303,7 +303,7 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
             upstream: vec![("epochs", epochs_key), ("images", images_key), ("fits", fits_key), ("statistics", stats_key)],
         },
         |_| Ok(((), format!("`{}`", out.join("report").join("report.html").display()))),
-        |_| crate::report::write(&report_inputs, out),
+        |_, r| crate::report::write(&report_inputs, &|i| images.positions(r, i).unwrap_or_default(), out),
     )?;
 
     let exit = if failed.is_empty() { Exit::Ok } else { Exit::Problem };
@@ -317,7 +317,7 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
         study: serde_json::to_value(study)?,
         inputs: hashed.iter().map(|(p, h)| manifest::InputFile { path: p.display().to_string(), sha256: h.map(|x| x.0.hex()).unwrap_or_else(|| "unreadable".into()), bytes: h.map(|x| x.1).unwrap_or(0) }).collect(),
         seeds: seeds(study),
-        stages: runner.log.clone(),
+        stages: runner.log(),
         captures: capture_counts(&tables, &images, &fits),
         warnings: runner.warnings.lock().expect("not poisoned").clone(),
         exit_status: exit as i32,
@@ -344,25 +344,12 @@ fn seeds(study: &Study) -> BTreeMap<String, String> {
 }
 
 fn capture_counts(tables: &epochs::EpochTables, images: &transmissions::ImageTables, fits: &[fits::FitRow]) -> manifest::CaptureCounts {
-    let mut with_so2 = vec![false; tables.captures.len()];
-    for f in fits {
-        if f.so2.is_some_and(f64::is_finite) {
-            with_so2[f.capture_index] = true;
-        }
-    }
     let mut counts = manifest::CaptureCounts { listed: tables.captures.len(), ..Default::default() };
-    for (i, c) in tables.captures.iter().enumerate() {
-        let reason = if c.status != "steady" {
-            c.status.clone()
-        } else if images.status[i].status != "ok" {
-            images.status[i].status.clone()
-        } else if !with_so2[i] {
-            "no segment fitted".to_string()
-        } else {
-            counts.used += 1;
-            continue;
-        };
-        *counts.not_used.entry(reason).or_default() += 1;
+    for u in crate::report::tables::usage(tables, images, fits) {
+        match u {
+            None => counts.used += 1,
+            Some(reason) => *counts.not_used.entry(reason).or_default() += 1,
+        }
     }
     counts
 }

@@ -18,7 +18,8 @@ use crate::images::register::{register, Registration};
 use crate::run::epochs::EpochTables;
 use crate::stages::key::{hash_file_or_missing, Key, KeyBuilder};
 use crate::stages::Items;
-use crate::tables::Table;
+use crate::stages::Runner;
+use crate::tables::{Table, TableStream};
 
 /// Lowest match score at which a capture counts as registered.
 pub const MIN_REGISTRATION_SCORE: f64 = 0.8;
@@ -43,16 +44,26 @@ pub struct ImageStatus {
 }
 
 #[derive(serde::Serialize, serde::Deserialize)]
+/// The image stage's result. The profile positions themselves stay in the
+/// stage's item cache, one entry per capture, and are streamed from there
+/// into the positions table and into the fits, so memory does not grow
+/// with the number of captures.
 pub struct ImageTables {
-    pub positions: Vec<PositionRow>,
     /// One per capture row of the epoch table.
     pub status: Vec<ImageStatus>,
+    /// Profile positions per capture.
+    pub position_counts: Vec<usize>,
+    /// Positions by flag (`unflagged` for none), over all captures.
+    pub flag_counts: BTreeMap<String, usize>,
     /// Each capture's cache key in this stage (downstream item keys build on it).
     pub keys: Vec<Key>,
 }
 
 /// Version of this stage's computation; bump when its results change.
-pub const VERSION: u32 = 1;
+pub const VERSION: u32 = 2;
+
+/// One capture's item in the stage's cache.
+pub type CaptureItem = (ImageStatus, Vec<PositionRow>);
 
 /// The profile settings for a study's instrument.
 pub fn profile_settings(study: &Study) -> ProfileSettings {
@@ -148,7 +159,8 @@ pub fn build(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: &Items)
         groups.entry((row.subject.clone(), row.session.clone(), row.eye.clone())).or_default().push(i);
     }
     let mut status: Vec<ImageStatus> = (0..epochs.captures.len()).map(|_| ImageStatus { status: "not-analysed".into(), message: None, registration: None }).collect();
-    let mut positions = Vec::new();
+    let mut position_counts = vec![0; epochs.captures.len()];
+    let mut flag_counts: BTreeMap<String, usize> = BTreeMap::new();
     for (key, idx) in &groups {
         let segs = segments.get(key).cloned().unwrap_or_default();
         let analysed: Vec<usize> = idx.iter().copied().filter(|i| matches!(epochs.captures[*i].status.as_str(), "steady" | "settling")).collect();
@@ -161,29 +173,37 @@ pub fn build(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: &Items)
         // read only if some capture of the eye is not in the cache.
         let Some(&ref_i) = idx.first() else { continue };
         let reference: std::sync::OnceLock<Result<Multiband, String>> = std::sync::OnceLock::new();
-        let results: Vec<(usize, ImageStatus, Vec<PositionRow>)> = analysed
+        // Each capture's positions go to the cache; only counts stay here.
+        let results: Vec<(usize, ImageStatus, usize, BTreeMap<String, usize>)> = analysed
             .par_iter()
             .map(|&i| {
-                let (st, rows) = items.get_or_compute(&keys[i], || {
+                let (st, rows): CaptureItem = items.get_or_compute(&keys[i], || {
                     match reference.get_or_init(|| read_capture(&files[ref_i], nb, None).map_err(|e| e.to_string())) {
                         Ok(r) => analyse_capture(i, i == ref_i, &files[i], r, &segs, nb, wb, &settings, study.instrument.pixel_size_um),
                         Err(e) => (ImageStatus { status: "error".into(), message: Some(format!("reference capture: {e}")), registration: None }, vec![]),
                     }
                 });
-                // Item results carry no capture index of their own meaning.
-                let rows = rows.into_iter().map(|mut r| {
-                    r.capture_index = i;
-                    r
-                }).collect();
-                (i, st, rows)
+                let mut flags: BTreeMap<String, usize> = BTreeMap::new();
+                for r in &rows {
+                    if r.flags.is_empty() {
+                        *flags.entry("unflagged".into()).or_default() += 1;
+                    }
+                    for f in r.flags.split(';').filter(|f| !f.is_empty()) {
+                        *flags.entry(f.to_string()).or_default() += 1;
+                    }
+                }
+                (i, st, rows.len(), flags)
             })
             .collect();
-        for (i, st, rows) in results {
+        for (i, st, n, flags) in results {
             status[i] = st;
-            positions.extend(rows);
+            position_counts[i] = n;
+            for (f, c) in flags {
+                *flag_counts.entry(f).or_default() += c;
+            }
         }
     }
-    ImageTables { positions, status, keys }
+    ImageTables { status, position_counts, flag_counts, keys }
 }
 
 #[allow(clippy::too_many_arguments)]
@@ -224,12 +244,43 @@ fn analyse_capture(i: usize, is_reference: bool, file: &Path, reference: &Multib
 }
 
 impl ImageTables {
-    pub fn write(&self, out: &Path, study: &Study, epochs: &EpochTables) -> Result<Vec<PathBuf>> {
+    pub fn total_positions(&self) -> usize {
+        self.position_counts.iter().sum()
+    }
+
+    /// One capture's profile positions, read back from the stage's cache.
+    pub fn positions(&self, runner: &Runner, i: usize) -> Result<Vec<PositionRow>> {
+        if self.status[i].status == "not-analysed" {
+            return Ok(vec![]);
+        }
+        let (_, rows): CaptureItem = runner.item("images", &self.keys[i])?;
+        Ok(rows.into_iter().map(|mut r| {
+            // The stored index is the one of the run that computed the item.
+            r.capture_index = i;
+            r
+        }).collect())
+    }
+
+    pub fn write(&self, out: &Path, study: &Study, epochs: &EpochTables, runner: &Runner) -> Result<Vec<PathBuf>> {
         let dir = out.join("transmissions");
-        let c = &epochs.captures;
-        let p = &self.positions;
-        let mut t = Table::new();
-        t.text("subject", p.iter().map(|r| &c[r.capture_index].subject))
+        let mut stream = TableStream::new(&dir, "positions");
+        for i in 0..epochs.captures.len() {
+            let rows = self.positions(runner, i)?;
+            if !rows.is_empty() {
+                stream.push(position_table(&rows, study, epochs))?;
+            }
+        }
+        let mut written = stream.finish(position_table(&[], study, epochs))?;
+        self.write_status(&dir, epochs, &mut written)?;
+        Ok(written)
+    }
+}
+
+/// The positions table's rows for some positions.
+fn position_table(p: &[PositionRow], study: &Study, epochs: &EpochTables) -> Table {
+    let c = &epochs.captures;
+    let mut t = Table::new();
+    t.text("subject", p.iter().map(|r| &c[r.capture_index].subject))
             .text("session", p.iter().map(|r| &c[r.capture_index].session))
             .text("eye", p.iter().map(|r| &c[r.capture_index].eye))
             .text("capture", p.iter().map(|r| &c[r.capture_index].capture))
@@ -242,7 +293,12 @@ impl ImageTables {
         for (b, band) in study.instrument.bands.iter().enumerate() {
             t.real(&format!("t_{}", band.name), p.iter().map(|r| r.transmission[b]));
         }
-        let mut written = t.write(&dir, "positions")?;
+        t
+}
+
+impl ImageTables {
+    fn write_status(&self, dir: &Path, epochs: &EpochTables, written: &mut Vec<PathBuf>) -> Result<()> {
+        let c = &epochs.captures;
         let s = &self.status;
         let mut t = Table::new();
         t.text("subject", c.iter().map(|r| &r.subject))
@@ -255,8 +311,8 @@ impl ImageTables {
             .opt_real("dy_px", s.iter().map(|r| r.registration.map(|g| g.dy)))
             .opt_real("angle_deg", s.iter().map(|r| r.registration.map(|g| g.angle_deg)))
             .opt_real("match_score", s.iter().map(|r| r.registration.map(|g| g.score)));
-        written.extend(t.write(&dir, "captures")?);
-        Ok(written)
+        written.extend(t.write(dir, "captures")?);
+        Ok(())
     }
 }
 

@@ -73,13 +73,13 @@ pub struct Runner<'a> {
     pub printer: &'a Printer,
     output: PathBuf,
     force: BTreeSet<String>,
-    pub log: Vec<StageLog>,
+    log: Mutex<Vec<StageLog>>,
     pub warnings: Mutex<Vec<String>>,
 }
 
 impl<'a> Runner<'a> {
     pub fn new(output: &Path, printer: &'a Printer, force: &[String]) -> Self {
-        Runner { store: Store::new(output), printer, output: output.to_path_buf(), force: force.iter().cloned().collect(), log: vec![], warnings: Mutex::new(vec![]) }
+        Runner { store: Store::new(output), printer, output: output.to_path_buf(), force: force.iter().cloned().collect(), log: Mutex::new(vec![]), warnings: Mutex::new(vec![]) }
     }
 
     fn forced(&self, stage: &str) -> bool {
@@ -94,11 +94,16 @@ impl<'a> Runner<'a> {
     /// Runs `stage` unless its last result has the same key and its output
     /// files are intact. `compute` returns the result and a line of detail;
     /// `write` writes the result's tables and returns their paths.
-    pub fn stage<T, C, W>(&mut self, stage: &str, version: u32, parts: Parts, compute: C, write: W) -> Result<(T, Key)>
+    /// What each stage did so far, in order.
+    pub fn log(&self) -> Vec<StageLog> {
+        self.log.lock().expect("not poisoned").clone()
+    }
+
+    pub fn stage<T, C, W>(&self, stage: &str, version: u32, parts: Parts, compute: C, write: W) -> Result<(T, Key)>
     where
         T: Serialize + DeserializeOwned,
         C: FnOnce(&Self) -> Result<(T, String)>,
-        W: Fn(&T) -> Result<Vec<PathBuf>>,
+        W: Fn(&T, &Self) -> Result<Vec<PathBuf>>,
     {
         let t0 = Instant::now();
         let key = parts.key(stage, version);
@@ -114,7 +119,7 @@ impl<'a> Runner<'a> {
                     let detail = if changed.is_empty() {
                         String::new()
                     } else {
-                        let paths = write(&value)?;
+                        let paths = write(&value, self)?;
                         self.record(stage, &key, &parts, &paths)?;
                         format!("rewrote {} missing or altered output files from the cache", changed.len())
                     };
@@ -131,7 +136,7 @@ impl<'a> Runner<'a> {
         let reason = reason.unwrap_or_else(|| explain(previous.as_ref(), &parts));
         let (value, detail) = compute(self)?;
         self.store.put(&area, &key, &value)?;
-        let paths = write(&value)?;
+        let paths = write(&value, self)?;
         self.record(stage, &key, &parts, &paths)?;
         self.finish(stage, "ran", reason, detail, t0, &key);
         Ok((value, key))
@@ -147,7 +152,7 @@ impl<'a> Runner<'a> {
         self.store.put_record(stage, &rec)
     }
 
-    fn finish(&mut self, stage: &str, status: &str, reason: String, detail: String, t0: Instant, key: &Key) {
+    fn finish(&self, stage: &str, status: &str, reason: String, detail: String, t0: Instant, key: &Key) {
         let seconds = t0.elapsed().as_secs_f64();
         let mut line = format!("{stage:<10} {status}");
         if !reason.is_empty() {
@@ -158,7 +163,17 @@ impl<'a> Runner<'a> {
         }
         line.push_str(&format!(" [{seconds:.1} s]"));
         self.printer.info(line);
-        self.log.push(StageLog { stage: stage.into(), status: status.into(), reason, detail, seconds, key: key.hex() });
+        self.log.lock().expect("not poisoned").push(StageLog { stage: stage.into(), status: status.into(), reason, detail, seconds, key: key.hex() });
+    }
+
+    /// A finished item of stage `area`, read back from the cache (stages
+    /// stream their items from disk rather than hold them all in memory).
+    pub fn item<T: DeserializeOwned>(&self, area: &str, key: &Key) -> Result<T> {
+        match self.store.get::<T>(&format!("items/{area}"), key) {
+            Lookup::Hit(v) => Ok(v),
+            Lookup::Miss => anyhow::bail!("an item of `{area}` is missing from the cache under `{}`; run again with `--force {area}`", self.store.root().display()),
+            Lookup::Corrupt { path, reason } => anyhow::bail!("cache entry `{}` is unusable ({reason}); run again with `--force {area}`", path.display()),
+        }
     }
 
     /// A per-item cache for one stage's items; `area` is the stage's name.
@@ -215,6 +230,26 @@ impl Items<'_> {
         self.computed.fetch_add(1, Ordering::Relaxed);
         self.bar.inc();
         v
+    }
+
+    /// As [`Items::get_or_compute`] for a computation that can fail; a
+    /// failure is returned and nothing is stored.
+    pub fn try_get_or_compute<T: Serialize + DeserializeOwned>(&self, key: &Key, compute: impl FnOnce() -> Result<T>) -> Result<T> {
+        let store = &self.runner.store;
+        match if self.bypass { Lookup::Miss } else { store.get::<T>(&self.area, key) } {
+            Lookup::Hit(v) => {
+                self.hits.fetch_add(1, Ordering::Relaxed);
+                self.bar.inc();
+                return Ok(v);
+            }
+            Lookup::Corrupt { path, reason } => self.runner.warn(format!("cache entry `{}` is unusable ({reason}); recomputing it", path.display())),
+            Lookup::Miss => {}
+        }
+        let v = compute()?;
+        store.put(&self.area, key, &v)?;
+        self.computed.fetch_add(1, Ordering::Relaxed);
+        self.bar.inc();
+        Ok(v)
     }
 
     /// Ends the stage's items: an error if the cache could not be written,

@@ -10,6 +10,9 @@ use std::path::{Path, PathBuf};
 use anyhow::{Context, Result};
 use polars::prelude::{Column, CsvWriter, DataFrame, ParquetWriter, SerWriter};
 
+/// Rows buffered by a [`TableStream`] before they go to disk as one batch.
+const STREAM_BATCH_ROWS: usize = 50_000;
+
 /// A column-oriented table under construction.
 #[derive(Default)]
 pub struct Table {
@@ -83,12 +86,118 @@ impl Table {
     }
 }
 
+/// A table written in pieces, for tables too large to hold in memory:
+/// rows arrive as small [`Table`]s with the same columns, are buffered up
+/// to a fixed number of rows and written as one Parquet row group and one
+/// CSV chunk. Both files appear (by rename) only when [`finish`] succeeds.
+///
+/// [`finish`]: TableStream::finish
+pub struct TableStream {
+    dir: PathBuf,
+    stem: String,
+    buffer: Vec<Table>,
+    buffered: usize,
+    writers: Option<StreamWriters>,
+}
+
+struct StreamWriters {
+    parquet: polars::io::parquet::write::BatchedWriter<fs::File>,
+    csv: polars::io::csv::write::BatchedWriter<std::io::BufWriter<fs::File>>,
+    files: [(PathBuf, fs::File); 2],
+}
+
+impl TableStream {
+    pub fn new(dir: &Path, stem: &str) -> Self {
+        TableStream { dir: dir.to_path_buf(), stem: stem.to_string(), buffer: vec![], buffered: 0, writers: None }
+    }
+
+    fn tmp(&self, ext: &str) -> PathBuf {
+        self.dir.join(format!(".{}.{ext}.{}.tmp", self.stem, std::process::id()))
+    }
+
+    pub fn push(&mut self, t: Table) -> Result<()> {
+        self.buffered += t.height();
+        self.buffer.push(t);
+        if self.buffered >= STREAM_BATCH_ROWS {
+            self.flush()?;
+        }
+        Ok(())
+    }
+
+    fn flush(&mut self) -> Result<()> {
+        if self.buffer.is_empty() {
+            return Ok(());
+        }
+        let mut df = self.buffer[0].frame()?;
+        for t in &self.buffer[1..] {
+            df.vstack_mut(&t.frame()?)?;
+        }
+        df.rechunk_mut();
+        self.buffer.clear();
+        self.buffered = 0;
+        if self.writers.is_none() {
+            fs::create_dir_all(&self.dir).with_context(|| format!("cannot create the output folder `{}`", self.dir.display()))?;
+            let (pq, csv) = (self.tmp("parquet"), self.tmp("csv"));
+            let fp = fs::File::create(&pq).with_context(|| format!("cannot create `{}`", pq.display()))?;
+            let fc = fs::File::create(&csv).with_context(|| format!("cannot create `{}`", csv.display()))?;
+            let schema = df.schema().as_ref().clone();
+            self.writers = Some(StreamWriters {
+                parquet: ParquetWriter::new(fp.try_clone()?).batched(&schema)?,
+                csv: CsvWriter::new(std::io::BufWriter::new(fc.try_clone()?)).include_header(true).batched(&schema)?,
+                files: [(pq, fp), (csv, fc)],
+            });
+        }
+        let w = self.writers.as_mut().expect("created above");
+        w.parquet.write_batch(&df)?;
+        w.csv.write_batch(&df)?;
+        Ok(())
+    }
+
+    /// Writes what is buffered, closes both files and moves them into place.
+    /// An empty stream writes the `empty` table instead (so the columns exist).
+    pub fn finish(mut self, empty: Table) -> Result<Vec<PathBuf>> {
+        if self.writers.is_none() && self.buffer.is_empty() {
+            return empty.write(&self.dir, &self.stem);
+        }
+        self.flush()?;
+        let w = self.writers.take().expect("flushed at least once");
+        w.parquet.finish()?;
+        let mut csv = w.csv;
+        csv.finish()?;
+        drop(csv);
+        drop(w.parquet);
+        let mut out = Vec::new();
+        for ((tmp, f), ext) in w.files.into_iter().zip(["parquet", "csv"]) {
+            f.sync_all()?;
+            let path = self.dir.join(format!("{}.{ext}", self.stem));
+            fs::rename(&tmp, &path).with_context(|| format!("cannot move `{}` into place", path.display()))?;
+            out.push(path);
+        }
+        Ok(out)
+    }
+}
+
+impl Drop for TableStream {
+    fn drop(&mut self) {
+        // An unfinished stream leaves no temporary files behind.
+        if let Some(w) = self.writers.take() {
+            for (tmp, _) in &w.files {
+                let _ = fs::remove_file(tmp);
+            }
+        }
+    }
+}
+
 /// Writes through a temporary file in the same folder, then renames it into place.
 pub fn write_atomic(path: &Path, fill: impl FnOnce(&mut fs::File) -> Result<()>) -> Result<()> {
     let dir = path.parent().unwrap_or(Path::new("."));
     fs::create_dir_all(dir).with_context(|| format!("cannot create `{}`", dir.display()))?;
     let name = path.file_name().map(|n| n.to_string_lossy().to_string()).unwrap_or_default();
-    let tmp = dir.join(format!(".{name}.{}.tmp", std::process::id()));
+    // Unique per write: two threads may write the same path at once (equal
+    // cache entries from identical inputs); each renames its own complete file.
+    static SERIAL: std::sync::atomic::AtomicU64 = std::sync::atomic::AtomicU64::new(0);
+    let serial = SERIAL.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+    let tmp = dir.join(format!(".{name}.{}-{serial}.tmp", std::process::id()));
     let result = (|| -> Result<()> {
         let mut f = fs::File::create(&tmp).with_context(|| format!("cannot create `{}`", tmp.display()))?;
         fill(&mut f)?;
@@ -129,6 +238,32 @@ mod tests {
         use polars::prelude::SerReader;
         let df = polars::prelude::ParquetReader::new(f).finish().unwrap();
         assert_eq!(df.shape(), (2, 3));
+        assert!(!dir.path().read_dir().unwrap().any(|e| e.unwrap().file_name().to_string_lossy().ends_with(".tmp")));
+    }
+
+    #[test]
+    fn a_streamed_table_equals_the_table_written_at_once() {
+        let dir = tempfile::tempdir().unwrap();
+        let piece = |k: i64| {
+            let mut t = Table::new();
+            t.text("capture", [format!("c{k}"), format!("c{k}")]).opt_real("t", [Some(k as f64 / 3.0), None]).int("n", [k, -k]);
+            t
+        };
+        let mut s = TableStream::new(dir.path(), "streamed");
+        for k in 0..5 {
+            s.push(piece(k)).unwrap();
+        }
+        s.finish(Table::new()).unwrap();
+        let mut whole = Table::new();
+        whole
+            .text("capture", (0..5).flat_map(|k| [format!("c{k}"), format!("c{k}")]))
+            .opt_real("t", (0..5).flat_map(|k| [Some(k as f64 / 3.0), None]))
+            .int("n", (0..5).flat_map(|k| [k, -k]));
+        whole.write(dir.path(), "whole").unwrap();
+        assert_eq!(fs::read(dir.path().join("streamed.csv")).unwrap(), fs::read(dir.path().join("whole.csv")).unwrap());
+        use polars::prelude::SerReader;
+        let read = |n: &str| polars::prelude::ParquetReader::new(fs::File::open(dir.path().join(n)).unwrap()).finish().unwrap();
+        assert!(read("streamed.parquet").equals_missing(&read("whole.parquet")));
         assert!(!dir.path().read_dir().unwrap().any(|e| e.unwrap().file_name().to_string_lossy().ends_with(".tmp")));
     }
 }
