@@ -148,6 +148,20 @@ impl CostFunction for Ncc<'_> {
     }
 }
 
+/// Block average by an integer factor (the remainder rows and columns are dropped).
+fn downsample(img: &[f32], w: usize, h: usize, f: usize) -> Vec<f32> {
+    let (ws, hs) = (w / f, h / f);
+    let mut out = vec![0.0f32; ws * hs];
+    for y in 0..hs * f {
+        for x in 0..ws * f {
+            out[(y / f) * ws + x / f] += img[y * w + x];
+        }
+    }
+    let n = (f * f) as f32;
+    out.iter_mut().for_each(|v| *v /= n);
+    out
+}
+
 /// Separable Gaussian blur (σ in pixels, edges clamped).
 pub fn blur(img: &[f32], w: usize, h: usize, sigma: f64) -> Vec<f32> {
     let r = (3.0 * sigma).ceil() as isize;
@@ -181,35 +195,43 @@ pub fn blur(img: &[f32], w: usize, h: usize, sigma: f64) -> Vec<f32> {
 /// would otherwise favour whole-pixel shifts, where it averages no noise away.
 pub fn register(reference: &[f32], moving: &[f32], w: usize, h: usize, max_angle_deg: f64) -> Registration {
     let (reference, moving) = (&blur(reference, w, h, 1.0)[..], &blur(moving, w, h, 1.0)[..]);
-    let (cx, cy) = (w as f64 / 2.0, h as f64 / 2.0);
-    let refd: Vec<f64> = reference.iter().map(|v| *v as f64).collect();
-    // Coarse: phase correlation of the moving image rotated back by each angle.
+    // Coarse: phase correlation of the moving image rotated back by each
+    // angle. Large images are block-averaged to about 256 px first: the
+    // coarse estimate only has to land within the fine search's reach.
+    let f = w.max(h).div_ceil(256).max(1);
+    let (rs, ms, ws, hs) = if f > 1 { (downsample(reference, w, h, f), downsample(moving, w, h, f), w / f, h / f) } else { (reference.to_vec(), moving.to_vec(), w, h) };
+    let (cxs, cys) = (ws as f64 / 2.0, hs as f64 / 2.0);
+    let refd: Vec<f64> = rs.iter().map(|v| *v as f64).collect();
     let steps = (max_angle_deg / 0.5).ceil() as i32;
     let mut coarse = (0.0, 0.0, 0.0, f64::MIN);
     for k in -steps..=steps {
         let ang = k as f64 * 0.5;
         let (s, c) = ang.to_radians().sin_cos();
-        let unrot: Vec<f64> = (0..w * h)
+        let unrot: Vec<f64> = (0..ws * hs)
             .map(|i| {
-                let (u, v) = ((i % w) as f64 - cx, (i / w) as f64 - cy);
-                bilinear(moving, w, h, cx + c * u - s * v, cy + s * u + c * v).unwrap_or(0.0)
+                let (u, v) = ((i % ws) as f64 - cxs, (i / ws) as f64 - cys);
+                bilinear(&ms, ws, hs, cxs + c * u - s * v, cys + s * u + c * v).unwrap_or(0.0)
             })
             .collect();
-        let (dx, dy, peak) = phase_correlation(&refd, &unrot, w, h);
+        let (dx, dy, peak) = phase_correlation(&refd, &unrot, ws, hs);
         if peak > coarse.3 {
-            coarse = (dx, dy, ang, peak);
+            coarse = (dx * f as f64, dy * f as f64, ang, peak);
         }
     }
-    // Fine: maximise the correlation over the central 70 % of the image.
+    // Fine: maximise the correlation over the central 70 % of the image, on
+    // a grid of pixels thinned so that it holds at most about 64 000 (far
+    // more than the three parameters need; small images use every pixel).
     let margin = (0.15 * w.min(h) as f64) as usize;
-    let points: Vec<(usize, usize)> = (margin..h - margin).step_by(2).flat_map(|y| (margin..w - margin).step_by(2).map(move |x| (x, y))).collect();
-    let coarse_points = points;
-    let full: Vec<(usize, usize)> = (margin..h - margin).flat_map(|y| (margin..w - margin).map(move |x| (x, y))).collect();
+    let inner = ((w - 2 * margin) * (h - 2 * margin)) as f64;
+    let stride = ((inner / 65_536.0).sqrt().ceil() as usize).max(1);
+    let grid = |s: usize| -> Vec<(usize, usize)> { (margin..h - margin).step_by(s).flat_map(|y| (margin..w - margin).step_by(s).map(move |x| (x, y))).collect() };
+    let coarse_points = grid(2 * stride);
+    let full = grid(stride);
     // The translation found on the un-rotated image is that of the rotated frame.
     let mut best = vec![coarse.0, coarse.1, coarse.2];
-    // Two passes: every other pixel from the coarse estimate, then every
-    // pixel from a small simplex around the first optimum.
-    for (pts, step) in [(coarse_points, (0.7, 0.4)), (full.clone(), (0.1, 0.05))] {
+    // Two passes: a sparse grid from the coarse estimate, then the finer
+    // grid from a small simplex around the first optimum.
+    for (pts, step) in [(coarse_points, (0.7 * f as f64, 0.4)), (full.clone(), (0.1, 0.05))] {
         let ncc = Ncc { reference, moving, w, h, points: pts };
         let s0 = best.clone();
         let simplex = vec![s0.clone(), vec![s0[0] + step.0, s0[1], s0[2]], vec![s0[0], s0[1] + step.0, s0[2]], vec![s0[0], s0[1], s0[2] + step.1]];

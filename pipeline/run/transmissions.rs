@@ -207,7 +207,9 @@ pub fn build(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: &Items)
 }
 
 #[allow(clippy::too_many_arguments)]
-fn analyse_capture(i: usize, is_reference: bool, file: &Path, reference: &Multiband, segs: &[Segment], nb: usize, wb: usize, st: &ProfileSettings, px_um: f64) -> (ImageStatus, Vec<PositionRow>) {
+/// One capture through the stage: read, register to the eye's reference
+/// (identity for the reference itself), map the segments, profile them.
+pub fn analyse_capture(i: usize, is_reference: bool, file: &Path, reference: &Multiband, segs: &[Segment], nb: usize, wb: usize, st: &ProfileSettings, px_um: f64) -> (ImageStatus, Vec<PositionRow>) {
     let img = match read_capture(file, nb, Some((reference.width, reference.height))) {
         Ok(m) => m,
         Err(e) => return (ImageStatus { status: "error".into(), message: Some(e.to_string()), registration: None }, vec![]),
