@@ -8,5 +8,6 @@ pub mod duration;
 pub mod protocol;
 pub mod read;
 pub mod segments;
+pub mod spectra;
 pub mod study;
 pub mod yaml;

@@ -168,6 +168,11 @@ pub struct Study {
     pub methods: Vec<Method>,
     pub exclusions: Exclusions,
     pub statistics: StatisticsSettings,
+    /// A spectra table that replaces the images (see `config::spectra`).
+    pub spectra_file: Option<PathBuf>,
+    /// Its contents, read and checked with the study.
+    #[serde(skip)]
+    pub spectra: Option<super::spectra::SpectraTable>,
     pub output: PathBuf,
 }
 
@@ -182,7 +187,7 @@ pub fn resolve_study_path(arg: &Path) -> PathBuf {
     if arg.is_dir() { arg.join("study.yaml") } else { arg.to_path_buf() }
 }
 
-const STUDY_KEYS: &[&str] = &["study", "title", "protocol", "instrument", "subjects", "methods", "exclusions", "statistics", "output"];
+const STUDY_KEYS: &[&str] = &["study", "title", "protocol", "instrument", "subjects", "methods", "exclusions", "statistics", "spectra", "output"];
 const STATISTICS_KEYS: &[&str] = &["confidence", "adjust"];
 const INSTRUMENT_KEYS: &[&str] = &["name", "pixel_size_um", "bands"];
 const BAND_KEYS: &[&str] = &["name", "centre_nm", "fwhm_nm", "response"];
@@ -212,8 +217,9 @@ pub fn load_study(path: &Path) -> (Option<Study>, Findings) {
         read_study(&mut r, &root_node, path, &root_dir)
     };
     // File-level checks that need the whole study.
-    let study = study.map(|s| {
+    let study = study.map(|mut s| {
         check_files(&s, &mut findings);
+        s.spectra = check_spectra(&s, &mut findings);
         s
     });
     if findings.has_errors() { (None, findings) } else { (study, findings) }
@@ -284,6 +290,8 @@ fn read_study(r: &mut Reader, node: &Node, file: &Path, root: &Path) -> Option<S
         Some(n) => read_statistics(r, n),
     };
 
+    let spectra_file = m.get("spectra").and_then(|n| r.text(n, "`spectra`")).map(|t| root.join(t));
+
     let output = match m.get("output") {
         None => root.join("results"),
         Some(n) => root.join(r.text(n, "`output`").unwrap_or_else(|| "results".into())),
@@ -301,6 +309,8 @@ fn read_study(r: &mut Reader, node: &Node, file: &Path, root: &Path) -> Option<S
         methods,
         exclusions: exclusions?,
         statistics: statistics?,
+        spectra_file,
+        spectra: None,
         output,
     })
 }
@@ -812,6 +822,29 @@ fn read_exclusions(r: &mut Reader, node: &Node, subjects: &HashMap<String, Mark>
 
 /// Checks across the study: capture files exist, none is listed twice, all
 /// fall within the protocol's span.
+/// Reads the spectra table, if the study names one, and checks that every
+/// capture in it is listed (unambiguously) in the study.
+fn check_spectra(study: &Study, findings: &mut Findings) -> Option<super::spectra::SpectraTable> {
+    let path = study.spectra_file.as_ref()?;
+    let bands: Vec<String> = study.instrument.bands.iter().map(|b| b.name.clone()).collect();
+    let table = super::spectra::read_spectra(path, &bands, findings)?;
+    let mut listed: HashMap<&str, Vec<&str>> = HashMap::new();
+    for subj in &study.subjects {
+        for c in subj.sessions.iter().flat_map(|s| &s.captures) {
+            listed.entry(c.listed.as_str()).or_default().push(subj.id.as_str());
+        }
+    }
+    for (subject, capture) in table.captures.keys() {
+        let who = listed.get(capture.as_str()).cloned().unwrap_or_default();
+        if subject.is_empty() && who.len() > 1 {
+            findings.error(path, None, format!("capture `{capture}` is listed for subjects {}; the spectra table needs a `subject` column", who.join(", ")));
+        } else if who.is_empty() || (!subject.is_empty() && !who.contains(&subject.as_str())) {
+            findings.error(path, None, format!("capture `{capture}`{} is not in any capture list of the study", if subject.is_empty() { String::new() } else { format!(" of subject `{subject}`") })).hint("`capture` must be written as in the capture list");
+        }
+    }
+    Some(table)
+}
+
 fn check_files(study: &Study, findings: &mut Findings) {
     let mut seen: HashMap<PathBuf, (PathBuf, Mark)> = HashMap::new();
     for subj in &study.subjects {
@@ -828,7 +861,8 @@ fn check_files(study: &Study, findings: &mut Findings) {
             let first = spans.first().map(|s| s.start_s).unwrap_or(0.0);
             let last = spans.last().map(|s| s.end_s).unwrap_or(0.0);
             for c in &sess.captures {
-                if !c.path.is_file() {
+                // With a spectra table the capture files are not needed.
+                if study.spectra_file.is_none() && !c.path.is_file() {
                     findings
                         .error(&c.source, Some(c.mark), format!("capture `{}` does not exist", c.listed))
                         .hint(format!("looked for `{}`", c.path.display()));

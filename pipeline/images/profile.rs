@@ -266,7 +266,10 @@ pub fn analyse_segment(img: &Multiband, line: &[(f64, f64)], others: &[Vec<(f64,
             let pts: Vec<f64> = s.iter().zip(&wv).filter(|(x, _)| (**x - c).abs() > r + 2.0).map(|(x, v)| v / eval_bg(&bg.expect("fitted"), *x) - 1.0).collect();
             (pts.iter().map(|e| e * e).sum::<f64>() / pts.len().max(1) as f64).sqrt()
         };
-        if !(rms <= st.max_rms + 3.0 * noise) {
+        // A background extrapolated to zero or below under the vessel makes
+        // the ratio meaningless, however well the shape fitted.
+        let bad_ratio = trans.iter().any(|t| !t.is_finite() || *t <= 0.0);
+        if !(rms <= st.max_rms + 3.0 * noise) || bad_ratio {
             flags.push(Flag::PoorFit);
         }
         let here = (centre.0 + c * normal.0, centre.1 + c * normal.1);

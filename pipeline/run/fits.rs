@@ -144,6 +144,9 @@ fn fit_capture(m: &Method, bands: &[SampledBand], ci: usize, positions: &[Positi
                         row.odr = segment_odr(&ts, &ti);
                         row.termination = if row.odr.is_some() { "odr".into() } else { "no optical density".into() };
                     }
+                    MethodKind::Multiband { .. } if pos.iter().any(|p| !p.diameter_um.is_finite()) => {
+                        row.termination = "no diameter: the multiband model needs `diameter_um`".into();
+                    }
                     MethodKind::Multiband { bands: sel, loss, pointwise } => {
                         let (model, settings) = multiband_model(&bands, sel, *loss);
                         let spectra = SegmentSpectra {

@@ -178,13 +178,16 @@ pub fn run(arg: &Path, force: &[String], printer: &Printer) -> Result<Exit> {
 fn input_files(study: &Study) -> Vec<PathBuf> {
     let mut v = vec![study.file.clone()];
     v.extend(study.protocol_file.clone());
+    v.extend(study.spectra_file.clone());
     for sess in study.subjects.iter().flat_map(|s| &s.sessions) {
         let mut lists: Vec<PathBuf> = sess.captures.iter().map(|c| c.source.clone()).filter(|p| *p != study.file).collect();
         lists.dedup();
         v.extend(lists);
         v.extend(sess.reference.as_ref().map(|r| r.path.clone()));
         v.extend(sess.segments.values().cloned());
-        v.extend(sess.captures.iter().map(|c| c.path.clone()));
+        if study.spectra_file.is_none() {
+            v.extend(sess.captures.iter().map(|c| c.path.clone()));
+        }
     }
     let mut seen = std::collections::BTreeSet::new();
     v.retain(|p| seen.insert(p.clone()));
@@ -230,7 +233,7 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
     )?;
 
     // Images → transmissions, capture by capture.
-    let keys = transmissions::item_keys(study, &tables, &hashes);
+    let keys = if study.spectra.is_some() { transmissions::spectra_item_keys(study, &tables) } else { transmissions::item_keys(study, &tables, &hashes) };
     let (images, images_key) = runner.stage(
         "images",
         transmissions::VERSION,
@@ -238,7 +241,7 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
         |r| {
             let analysed = tables.captures.iter().filter(|c| matches!(c.status.as_str(), "steady" | "settling")).count();
             let items = r.items("images", analysed, "images");
-            let t = transmissions::build(study, &tables, keys.clone(), &items);
+            let t = if study.spectra.is_some() { transmissions::from_spectra(study, &tables, keys.clone(), &items) } else { transmissions::build(study, &tables, keys.clone(), &items) };
             let detail = items.finish("captures")?;
             let d = format!("{detail}; {} profile positions", t.total_positions());
             Ok((t, d))

@@ -60,7 +60,7 @@ pub struct ImageTables {
 }
 
 /// Version of this stage's computation; bump when its results change.
-pub const VERSION: u32 = 2;
+pub const VERSION: u32 = 3;
 
 /// One capture's item in the stage's cache.
 pub type CaptureItem = (ImageStatus, Vec<PositionRow>);
@@ -89,6 +89,79 @@ pub fn width_band(study: &Study) -> usize {
         BandResponse::Table { points, .. } => points.iter().map(|p| p.0 * p.1).sum::<f64>() / points.iter().map(|p| p.1).sum::<f64>(),
     };
     (0..study.instrument.bands.len()).min_by(|a, b| (centre(&study.instrument.bands[*a].response) - 570.0).abs().total_cmp(&(centre(&study.instrument.bands[*b].response) - 570.0).abs())).unwrap_or(0)
+}
+
+fn tally_flags(rows: &[PositionRow]) -> BTreeMap<String, usize> {
+    let mut flags: BTreeMap<String, usize> = BTreeMap::new();
+    for r in rows {
+        if r.flags.is_empty() {
+            *flags.entry("unflagged".into()).or_default() += 1;
+        }
+        for f in r.flags.split(';').filter(|f| !f.is_empty()) {
+            *flags.entry(f.to_string()).or_default() += 1;
+        }
+    }
+    flags
+}
+
+type Tally = (usize, ImageStatus, usize, BTreeMap<String, usize>);
+
+fn merge(results: Vec<Tally>, status: &mut [ImageStatus], counts: &mut [usize], flags: &mut BTreeMap<String, usize>) {
+    for (i, st, n, f) in results {
+        status[i] = st;
+        counts[i] = n;
+        for (k, c) in f {
+            *flags.entry(k).or_default() += c;
+        }
+    }
+}
+
+/// Cache keys of the captures when a spectra table replaces the images.
+pub fn spectra_item_keys(study: &Study, epochs: &EpochTables) -> Vec<Key> {
+    let file = study.spectra_file.as_deref().map(hash_file_or_missing).unwrap_or_else(|| hash_file_or_missing(Path::new("")));
+    let bands: Vec<&str> = study.instrument.bands.iter().map(|b| b.name.as_str()).collect();
+    epochs
+        .captures
+        .iter()
+        .map(|row| {
+            let mut k = KeyBuilder::new("spectra-capture", VERSION);
+            k.key("table", &file).value("capture", &(&row.subject, &row.capture)).value("bands", &bands).value("status", &row.status);
+            k.finish()
+        })
+        .collect()
+}
+
+/// The image stage for a study with a spectra table: each analysed
+/// capture's positions come from the table instead of its images (no
+/// registration, no profile flags; `along_px` is the position index).
+pub fn from_spectra(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: &Items) -> ImageTables {
+    let n = epochs.captures.len();
+    let table = study.spectra.as_ref();
+    let file = study.spectra_file.as_deref().unwrap_or(Path::new("")).display().to_string();
+    let mut status: Vec<ImageStatus> = (0..n).map(|i| ImageStatus { status: "not-analysed".into(), message: Some(format!("status `{}`", epochs.captures[i].status)), registration: None }).collect();
+    let (mut counts, mut flags) = (vec![0; n], BTreeMap::new());
+    let analysed: Vec<usize> = (0..n).filter(|i| matches!(epochs.captures[*i].status.as_str(), "steady" | "settling")).collect();
+    let results: Vec<Tally> = analysed
+        .par_iter()
+        .map(|&i| {
+            let row = &epochs.captures[i];
+            let (st, rows): CaptureItem = items.get_or_compute(&keys[i], || {
+                let found = table.and_then(|t| t.captures.get(&(row.subject.clone(), row.capture.clone())).or_else(|| t.captures.get(&(String::new(), row.capture.clone()))));
+                match found {
+                    None => (ImageStatus { status: "error".into(), message: Some(format!("not in the spectra table `{file}`")), registration: None }, vec![]),
+                    Some(ps) => (
+                        ImageStatus { status: "ok".into(), message: Some("from the spectra table".into()), registration: None },
+                        ps.iter()
+                            .map(|p| PositionRow { capture_index: i, segment: p.vessel.clone(), kind: p.kind.clone(), position: p.position, along_px: p.position as f64, diameter_um: p.diameter_um, flags: String::new(), transmission: p.transmission.clone() })
+                            .collect(),
+                    ),
+                }
+            });
+            (i, st, rows.len(), tally_flags(&rows))
+        })
+        .collect();
+    merge(results, &mut status, &mut counts, &mut flags);
+    ImageTables { status, position_counts: counts, flag_counts: flags, keys }
 }
 
 /// The capture file behind each row of the epoch table.
@@ -183,25 +256,10 @@ pub fn build(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: &Items)
                         Err(e) => (ImageStatus { status: "error".into(), message: Some(format!("reference capture: {e}")), registration: None }, vec![]),
                     }
                 });
-                let mut flags: BTreeMap<String, usize> = BTreeMap::new();
-                for r in &rows {
-                    if r.flags.is_empty() {
-                        *flags.entry("unflagged".into()).or_default() += 1;
-                    }
-                    for f in r.flags.split(';').filter(|f| !f.is_empty()) {
-                        *flags.entry(f.to_string()).or_default() += 1;
-                    }
-                }
-                (i, st, rows.len(), flags)
+                (i, st, rows.len(), tally_flags(&rows))
             })
             .collect();
-        for (i, st, n, flags) in results {
-            status[i] = st;
-            position_counts[i] = n;
-            for (f, c) in flags {
-                *flag_counts.entry(f).or_default() += c;
-            }
-        }
+        merge(results, &mut status, &mut position_counts, &mut flag_counts);
     }
     ImageTables { status, position_counts, flag_counts, keys }
 }

@@ -1,0 +1,98 @@
+//! The spectra-level input: a study whose transmissions come from a tidy
+//! table instead of images runs through the same fits and statistics, and
+//! gives the same SO2 as the images it was extracted from.
+
+mod common;
+
+use std::collections::BTreeMap;
+use std::path::Path;
+
+use common::*;
+
+fn records(path: &Path) -> (Vec<String>, Vec<Vec<String>>) {
+    let mut r = csv::Reader::from_path(path).unwrap();
+    let head = r.headers().unwrap().iter().map(String::from).collect();
+    (head, r.records().map(|x| x.unwrap().iter().map(String::from).collect()).collect())
+}
+
+#[test]
+fn a_spectra_table_replaces_the_images() {
+    let dir = tempfile::tempdir().unwrap();
+    let sc = repo().join("tests/fixtures/runner-scenario.yaml");
+    let img = dir.path().join("img");
+    assert_eq!(satstep(dir.path(), &["simulate", sc.to_str().unwrap(), "--out", img.to_str().unwrap()]).code, 0);
+    let o = satstep(dir.path(), &["run", img.to_str().unwrap()]);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+
+    // The image run's unflagged positions, written as a tidy table.
+    let (head, rows) = records(&img.join("results/transmissions/positions.csv"));
+    let col = |n: &str| head.iter().position(|h| h == n).unwrap();
+    let bands: Vec<(usize, String)> = head.iter().enumerate().filter(|(_, h)| h.starts_with("t_")).map(|(i, h)| (i, h[2..].to_string())).collect();
+    let mut tidy = String::from("subject,capture,vessel,kind,position,band,transmission,diameter_um\n");
+    for r in rows.iter().filter(|r| r[col("flags")].is_empty()) {
+        for (i, b) in &bands {
+            tidy.push_str(&format!("{},{},{},{},{},{b},{},{}\n", r[col("subject")], r[col("capture")], r[col("segment")], r[col("kind")], r[col("position")], r[*i], r[col("diameter_um")]));
+        }
+    }
+    // The same study without images: capture lists, logs and segments stay.
+    let sp = dir.path().join("sp");
+    for entry in ["study.yaml", "protocol.yaml"] {
+        std::fs::create_dir_all(&sp).unwrap();
+        std::fs::copy(img.join(entry), sp.join(entry)).unwrap();
+    }
+    for s in ["V01", "V02", "V03"] {
+        for f in ["captures.csv", "spo2.csv", "segments-OD.yaml"] {
+            std::fs::create_dir_all(sp.join("subjects").join(s)).unwrap();
+            std::fs::copy(img.join("subjects").join(s).join(f), sp.join("subjects").join(s).join(f)).unwrap();
+        }
+    }
+    std::fs::write(sp.join("spectra.csv"), tidy).unwrap();
+    let study = std::fs::read_to_string(sp.join("study.yaml")).unwrap().replace("output: results", "spectra: spectra.csv\noutput: results");
+    std::fs::write(sp.join("study.yaml"), study).unwrap();
+    let o = satstep(dir.path(), &["run", sp.to_str().unwrap()]);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    assert!(!sp.join("subjects/V01/captures").exists());
+
+    // Same SO2, segment by segment, for every method.
+    let so2 = |root: &Path| -> BTreeMap<(String, String, String, String), String> {
+        let (h, rows) = records(&root.join("results/fits/so2.csv"));
+        let c = |n: &str| h.iter().position(|x| x == n).unwrap();
+        rows.iter().map(|r| ((r[c("subject")].clone(), r[c("capture")].clone(), r[c("segment")].clone(), r[c("method")].clone()), r[c("so2")].clone())).collect()
+    };
+    let (a, b) = (so2(&img), so2(&sp));
+    let fitted: Vec<_> = a.iter().filter(|(_, v)| !v.is_empty()).collect();
+    assert!(fitted.len() > 300, "{}", fitted.len());
+    for (k, v) in fitted {
+        let w = b.get(k).unwrap_or_else(|| panic!("{k:?} missing from the spectra run"));
+        let (x, y): (f64, f64) = (v.parse().unwrap(), w.parse().unwrap());
+        assert!((x - y).abs() < 1e-6, "{k:?}: images {x}, spectra {y}");
+    }
+    assert!(sp.join("results/report/report.html").is_file());
+}
+
+#[test]
+fn spectra_table_mistakes_are_reported_with_positions() {
+    let dir = tempfile::tempdir().unwrap();
+    let sc = repo().join("tests/fixtures/runner-scenario.yaml");
+    let s = dir.path().join("s");
+    assert_eq!(satstep(dir.path(), &["simulate", sc.to_str().unwrap(), "--out", s.to_str().unwrap()]).code, 0);
+    write(
+        &s,
+        "spectra.csv",
+        "capture,vessel,kind,position,band,transmission\n\
+         captures/c001.tif,A1,arteriole,0,b548,0.8\n\
+         captures/c001.tif,A1,arteriole,0,b555,0.8\n\
+         captures/c001.tif,A1,vein,1,b548,0.8\n\
+         captures/c001.tif,A1,arteriole,2,b548,high\n",
+    );
+    let study = std::fs::read_to_string(s.join("study.yaml")).unwrap().replace("output: results", "spectra: spectra.csv\noutput: results");
+    std::fs::write(s.join("study.yaml"), study).unwrap();
+    let o = satstep(dir.path(), &["check", s.to_str().unwrap()]);
+    assert_eq!(o.code, 1, "{}", o.stderr);
+    let e = &o.stderr;
+    assert!(e.contains("spectra.csv:3:34: the spectra table: band `b555` is not an instrument band"), "{e}");
+    assert!(e.contains("did you mean `b548`"), "{e}");
+    assert!(e.contains("spectra.csv:4:22: the spectra table: kind `vein` is not `arteriole` or `venule`"), "{e}");
+    assert!(e.contains("spectra.csv:5:39: the spectra table: transmission `high` is not a positive number"), "{e}");
+    assert!(e.contains("is listed for subjects V01, V02, V03; the spectra table needs a `subject` column") || e.contains("has no row for band(s)"), "{e}");
+}
