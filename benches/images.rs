@@ -82,7 +82,7 @@ fn main() {
     for threads in [1, cores] {
         let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build().unwrap();
         let t0 = Instant::now();
-        let results: Vec<_> = pool.install(|| files.par_iter().enumerate().map(|(i, f)| analyse_capture(i, false, f, &reference, &segs, 8, 4, &settings, 12.0)).collect());
+        let results: Vec<_> = pool.install(|| files.par_iter().enumerate().map(|(i, f)| analyse_capture(i, false, f, &reference, &segs, 8, 4, &settings, 12.0, &satstep::images::correct::Corrections::none(8))).collect());
         let dt = t0.elapsed().as_secs_f64();
         let positions: usize = results.iter().map(|r| r.1.len()).sum();
         assert!(results.iter().all(|r| r.0.status == "ok"), "{:?}", results[0].0);

@@ -51,6 +51,9 @@ pub enum BandResponse {
 pub struct Band {
     pub name: String,
     pub response: BandResponse,
+    /// Where this band's image sits relative to the registration band, px
+    /// (content at (x, y) there is at (x + dx, y + dy) here).
+    pub offset_px: Option<(f64, f64)>,
 }
 
 #[derive(Debug, Clone, PartialEq, serde::Serialize)]
@@ -58,6 +61,12 @@ pub struct Instrument {
     pub name: String,
     pub pixel_size_um: f64,
     pub bands: Vec<Band>,
+    /// Dark frame and flat field: multi-page TIFFs, one page per band.
+    pub dark: Option<PathBuf>,
+    pub flat: Option<PathBuf>,
+    /// Estimate each capture's band-to-band offsets by phase correlation
+    /// against the registration band (bands with `offset_px` keep theirs).
+    pub estimate_band_offsets: bool,
 }
 
 #[derive(Debug, Clone, PartialEq, serde::Serialize)]
@@ -189,8 +198,8 @@ pub fn resolve_study_path(arg: &Path) -> PathBuf {
 
 const STUDY_KEYS: &[&str] = &["study", "title", "protocol", "instrument", "subjects", "methods", "exclusions", "statistics", "spectra", "output"];
 const STATISTICS_KEYS: &[&str] = &["confidence", "adjust"];
-const INSTRUMENT_KEYS: &[&str] = &["name", "pixel_size_um", "bands"];
-const BAND_KEYS: &[&str] = &["name", "centre_nm", "fwhm_nm", "response"];
+const INSTRUMENT_KEYS: &[&str] = &["name", "pixel_size_um", "bands", "dark", "flat", "band_offsets"];
+const BAND_KEYS: &[&str] = &["name", "centre_nm", "fwhm_nm", "response", "offset_px"];
 const SUBJECT_KEYS: &[&str] = &["id", "age", "sex", "pigmentation", "sessions"];
 const SESSION_KEYS: &[&str] = &["id", "start", "eyes", "switches", "captures", "reference", "segments"];
 const CAPTURE_KEYS: &[&str] = &["file", "time", "eye"];
@@ -353,10 +362,30 @@ pub(crate) fn read_instrument(r: &mut Reader, node: &Node, root: &Path) -> Optio
             None => ok = false,
         }
     }
+    let file = |r: &mut Reader, key: &str| -> Option<PathBuf> {
+        let n = m.get(key)?;
+        let p = root.join(r.text(n, &format!("`{key}`"))?);
+        if !p.is_file() {
+            r.error(n.mark, format!("the {key} frame `{}` does not exist", p.display())).hint("a multi-page TIFF with one page per band, the size of the captures");
+        }
+        Some(p)
+    };
+    let (dark, flat) = (file(r, "dark"), file(r, "flat"));
+    let estimate_band_offsets = match m.get("band_offsets") {
+        None => false,
+        Some(n) => match r.text(n, "`band_offsets`")?.as_str() {
+            "estimate" => true,
+            "given" => false,
+            other => {
+                r.error(n.mark, format!("`band_offsets` is `given` (each band's `offset_px`, default 0) or `estimate` (phase correlation per capture), found `{other}`"));
+                return None;
+            }
+        },
+    };
     if !ok {
         return None;
     }
-    Some(Instrument { name, pixel_size_um: pixel?, bands })
+    Some(Instrument { name, pixel_size_um: pixel?, bands, dark, flat, estimate_band_offsets })
 }
 
 fn read_band(r: &mut Reader, node: &Node, root: &Path) -> Option<Band> {
@@ -385,7 +414,18 @@ fn read_band(r: &mut Reader, node: &Node, root: &Path) -> Option<Band> {
             None
         }
     };
-    Some(Band { name: name?, response: response? })
+    let offset_px = match m.get("offset_px") {
+        None => None,
+        Some(n) => {
+            let v = r.list(n, "`offset_px`")?;
+            if v.len() != 2 {
+                r.error(n.mark, "`offset_px` is `[dx, dy]` in pixels");
+                return None;
+            }
+            Some((r.number(&v[0], "`offset_px` dx")?, r.number(&v[1], "`offset_px` dy")?))
+        }
+    };
+    Some(Band { name: name?, response: response?, offset_px })
 }
 
 fn read_response_table(r: &mut Reader, p: &Path, mark: Mark) -> Option<BandResponse> {

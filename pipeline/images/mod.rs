@@ -3,6 +3,7 @@
 //! registering a capture to its eye's reference capture ([`register`]).
 //! Profile analysis along vessel segments follows in this folder.
 
+pub mod correct;
 pub mod ingest;
 pub mod profile;
 pub mod register;

@@ -12,6 +12,7 @@ use rayon::prelude::*;
 use crate::config::diag::Findings;
 use crate::config::segments::{load_segments, Segment};
 use crate::config::study::{BandResponse, Study};
+use crate::images::correct::Corrections;
 use crate::images::ingest::{read_capture, Multiband};
 use crate::images::profile::{analyse_segment, ProfileSettings};
 use crate::images::register::{register, Registration};
@@ -77,7 +78,14 @@ pub fn settings_key(study: &Study) -> Key {
         .value("width-band", &width_band(study))
         .value("pixel-size", &study.instrument.pixel_size_um)
         .value("profile", &profile_settings(study))
-        .value("min-score", &MIN_REGISTRATION_SCORE);
+        .value("min-score", &MIN_REGISTRATION_SCORE)
+        .value("band-offsets", &study.instrument.bands.iter().map(|b| b.offset_px).collect::<Vec<_>>())
+        .value("estimate-band-offsets", &study.instrument.estimate_band_offsets);
+    for (name, f) in [("dark", &study.instrument.dark), ("flat", &study.instrument.flat)] {
+        if let Some(p) = f {
+            k.key(name, &hash_file_or_missing(p));
+        }
+    }
     k.finish()
 }
 
@@ -218,6 +226,7 @@ pub fn build(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: &Items)
     let settings = profile_settings(study);
     // Capture files and segment lists per (subject, session, eye).
     let files = capture_files(study, epochs);
+    let corrections = Corrections::load(&study.instrument, wb);
     let mut groups: BTreeMap<(String, String, String), Vec<usize>> = BTreeMap::new();
     let mut segments: BTreeMap<(String, String, String), Vec<Segment>> = BTreeMap::new();
     for subj in &study.subjects {
@@ -251,9 +260,15 @@ pub fn build(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: &Items)
             .par_iter()
             .map(|&i| {
                 let (st, rows): CaptureItem = items.get_or_compute(&keys[i], || {
-                    match reference.get_or_init(|| read_capture(&files[ref_i], nb, None).map_err(|e| e.to_string())) {
-                        Ok(r) => analyse_capture(i, i == ref_i, &files[i], r, &segs, nb, wb, &settings, study.instrument.pixel_size_um),
-                        Err(e) => (ImageStatus { status: "error".into(), message: Some(format!("reference capture: {e}")), registration: None }, vec![]),
+                    let read_ref = || -> Result<Multiband, String> {
+                        let mut r = read_capture(&files[ref_i], nb, None).map_err(|e| e.to_string())?;
+                        corrections.as_ref().map_err(|e| format!("calibration frames: {e}"))?.apply(&mut r)?;
+                        Ok(r)
+                    };
+                    match (reference.get_or_init(read_ref), &corrections) {
+                        (Ok(r), Ok(corr)) => analyse_capture(i, i == ref_i, &files[i], r, &segs, nb, wb, &settings, study.instrument.pixel_size_um, corr),
+                        (_, Err(e)) => (ImageStatus { status: "error".into(), message: Some(format!("calibration frames: {e}")), registration: None }, vec![]),
+                        (Err(e), _) => (ImageStatus { status: "error".into(), message: Some(format!("reference capture: {e}")), registration: None }, vec![]),
                     }
                 });
                 (i, st, rows.len(), tally_flags(&rows))
@@ -267,11 +282,14 @@ pub fn build(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: &Items)
 #[allow(clippy::too_many_arguments)]
 /// One capture through the stage: read, register to the eye's reference
 /// (identity for the reference itself), map the segments, profile them.
-pub fn analyse_capture(i: usize, is_reference: bool, file: &Path, reference: &Multiband, segs: &[Segment], nb: usize, wb: usize, st: &ProfileSettings, px_um: f64) -> (ImageStatus, Vec<PositionRow>) {
-    let img = match read_capture(file, nb, Some((reference.width, reference.height))) {
+pub fn analyse_capture(i: usize, is_reference: bool, file: &Path, reference: &Multiband, segs: &[Segment], nb: usize, wb: usize, st: &ProfileSettings, px_um: f64, corr: &Corrections) -> (ImageStatus, Vec<PositionRow>) {
+    let mut img = match read_capture(file, nb, Some((reference.width, reference.height))) {
         Ok(m) => m,
         Err(e) => return (ImageStatus { status: "error".into(), message: Some(e.to_string()), registration: None }, vec![]),
     };
+    if let Err(e) = corr.apply(&mut img) {
+        return (ImageStatus { status: "error".into(), message: Some(e), registration: None }, vec![]);
+    }
     // The reference capture defines the eye's coordinates: identity.
     let reg = if is_reference {
         Registration { dx: 0.0, dy: 0.0, angle_deg: 0.0, score: 1.0 }
