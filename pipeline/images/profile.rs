@@ -74,6 +74,8 @@ pub struct ProfileResult {
     pub background: Vec<f64>,
     pub rms: f64,
     pub flags: Vec<Flag>,
+    /// A central light reflex was found (T read beside it).
+    pub reflex: bool,
 }
 
 /// Vessel shape and its derivatives in (A, c, r, κ): a cylinder of
@@ -99,7 +101,15 @@ fn shape(s: f64, p: &[f64]) -> (f64, [f64; 4]) {
 
 /// Fits the shape to `(s, p)`; `fixed` holds (c, r) when only A and β are free.
 fn fit_shape(s: &[f64], p: &[f64], start: [f64; 4], fixed: Option<(f64, f64)>, half: f64) -> ([f64; 4], f64) {
+    fit_shape_masked(s, p, start, fixed, half, None)
+}
+
+/// As [`fit_shape`], leaving out the samples inside `skip` (a central
+/// reflex); the rms is over the samples used.
+fn fit_shape_masked(s: &[f64], p: &[f64], start: [f64; 4], fixed: Option<(f64, f64)>, half: f64, skip: Option<(f64, f64)>) -> ([f64; 4], f64) {
     let n = s.len();
+    let used = |x: f64| skip.is_none_or(|(lo, hi)| x <= lo || x >= hi);
+    let n_used = s.iter().filter(|x| used(**x)).count().max(1);
     let full = |x: &[f64]| -> [f64; 4] {
         match fixed {
             Some((c, r)) => [x[0], c, r, x[1]],
@@ -112,7 +122,9 @@ fn fit_shape(s: &[f64], p: &[f64], start: [f64; 4], fixed: Option<(f64, f64)>, h
         let mut j = j;
         for i in 0..n {
             let (m, d) = shape(s[i], &q);
-            r[i] = m - p[i];
+            let w = if used(s[i]) { 1.0 } else { 0.0 };
+            let d = d.map(|v| v * w);
+            r[i] = (m - p[i]) * w;
             if let Some(j) = j.as_deref_mut() {
                 if fixed.is_some() {
                     j[(i, 0)] = d[0];
@@ -135,7 +147,32 @@ fn fit_shape(s: &[f64], p: &[f64], start: [f64; 4], fixed: Option<(f64, f64)>, h
     let x0: Vec<f64> = if fixed.is_some() { vec![start[0], start[3]] } else { start.to_vec() };
     let rep = minimize(&prob, &x0, &Options { max_iterations: 200, ftol: 1e-12, xtol: 1e-12, gtol: 1e-12, tau: 1e-3 });
     let q = full(&rep.x);
-    (q, (2.0 * rep.cost / n as f64).sqrt())
+    (q, (2.0 * rep.cost / n_used as f64).sqrt())
+}
+
+/// The darkest normalised value on each side of the axis within half a
+/// radius, as offsets from the centre: (x_left, x_right).
+fn flank_minima(s: &[f64], p: &[f64], c: f64, r: f64) -> Option<(f64, f64, f64, f64)> {
+    let side = |sign: f64| {
+        s.iter().zip(p).filter(|(x, _)| (0.05..=0.5).contains(&(sign * (**x - c) / r))).map(|(x, v)| (*x, *v)).min_by(|a, b| a.1.total_cmp(&b.1))
+    };
+    let (l, rr) = (side(-1.0)?, side(1.0)?);
+    Some((l.0, l.1, rr.0, rr.1))
+}
+
+/// A central light reflex: a bright bump on the axis between two darker
+/// flanks, the centre (|u| < 0.1 of the radius) brighter than the darkest
+/// point on each side by more than 0.02 of the background. Without a reflex
+/// the centre is the darkest part of a vessel's profile. Returns the span
+/// between the flank minima.
+fn find_reflex(s: &[f64], p: &[f64], c: f64, r: f64) -> Option<(f64, f64)> {
+    let (xl, l, xr, rr) = flank_minima(s, p, c, r)?;
+    let centre: Vec<f64> = s.iter().zip(p).filter(|(x, _)| (**x - c).abs() / r < 0.1).map(|(_, t)| *t).collect();
+    if centre.is_empty() {
+        return None;
+    }
+    let m = centre.iter().sum::<f64>() / centre.len() as f64;
+    (m - l > 0.02 && m - rr > 0.02).then_some((xl, xr))
 }
 
 /// Quadratic background through the outer parts of the profile
@@ -196,7 +233,7 @@ pub fn analyse_segment(img: &Multiband, line: &[(f64, f64)], others: &[Vec<(f64,
         };
         let Some(wv) = sample(width_band) else {
             flags.push(Flag::OffImage);
-            out.push(ProfileResult { position: k, along_px: along, x: centre.0, y: centre.1, diameter_px: f64::NAN, transmission: vec![f64::NAN; img.bands.len()], background: vec![f64::NAN; img.bands.len()], rms: f64::NAN, flags });
+            out.push(ProfileResult { position: k, along_px: along, x: centre.0, y: centre.1, diameter_px: f64::NAN, transmission: vec![f64::NAN; img.bands.len()], background: vec![f64::NAN; img.bands.len()], rms: f64::NAN, flags, reflex: false });
             k += 1;
             along += st.spacing_px;
             continue;
@@ -206,9 +243,27 @@ pub fn analyse_segment(img: &Multiband, line: &[(f64, f64)], others: &[Vec<(f64,
         let mut bg = background(&s, &wv, 0.0, 0.6 * half);
         let mut q = [0.3, 0.0, half / 3.0, 1.0];
         let mut rms = f64::NAN;
-        for _ in 0..2 {
+        // A central light reflex (a bright stripe on the vessel's axis)
+        // would pull the shape fit and raise the centre-line T: once a first
+        // fit has placed the vessel, a reflex is looked for in the width band;
+        // if found, the shape is refitted without it and T is read at the
+        // darkest points beside it.
+        let mut reflex: Option<(f64, f64)> = None;
+        let mut fits = 0;
+        while fits < 2 || (reflex.is_some() && fits < 3) {
+            fits += 1;
             let Some(bq) = bg else { break };
             let p: Vec<f64> = s.iter().zip(&wv).map(|(x, v)| v / eval_bg(&bq, *x)).collect();
+            if fits == 2 {
+                reflex = find_reflex(&s, &p, q[1], q[2]);
+            }
+            if reflex.is_some() {
+                let (fq, r) = fit_shape_masked(&s, &p, q, None, half, reflex);
+                q = fq;
+                rms = r;
+                bg = background(&s, &wv, q[1], q[2] + 2.0).or(bg);
+                continue;
+            }
             let imin = (0..p.len()).min_by(|i, j| p[*i].total_cmp(&p[*j])).unwrap_or(0);
             if q[0] == 0.3 {
                 let depth = (1.0 - p[imin]).max(0.01);
@@ -222,7 +277,7 @@ pub fn analyse_segment(img: &Multiband, line: &[(f64, f64)], others: &[Vec<(f64,
         }
         let Some(_) = bg else {
             flags.push(Flag::PoorFit);
-            out.push(ProfileResult { position: k, along_px: along, x: centre.0, y: centre.1, diameter_px: f64::NAN, transmission: vec![f64::NAN; img.bands.len()], background: vec![f64::NAN; img.bands.len()], rms, flags });
+            out.push(ProfileResult { position: k, along_px: along, x: centre.0, y: centre.1, diameter_px: f64::NAN, transmission: vec![f64::NAN; img.bands.len()], background: vec![f64::NAN; img.bands.len()], rms, flags, reflex: false });
             k += 1;
             along += st.spacing_px;
             continue;
@@ -247,7 +302,11 @@ pub fn analyse_segment(img: &Multiband, line: &[(f64, f64)], others: &[Vec<(f64,
             // over a small central window (the fitted shape finds the centre
             // and width; at strong absorption its depth overshoots the data).
             let win = (0.2 * r).max(0.5);
-            let central: Vec<f64> = s.iter().zip(&p).filter(|(x, _)| (**x - c).abs() <= win).map(|(_, v)| *v).collect();
+            let central: Vec<f64> = match reflex {
+                // Beside a reflex: the samples at the two flank minima.
+                Some((xl, xr)) => s.iter().zip(&p).filter(|(x, _)| (**x - xl).abs() < 0.26 || (**x - xr).abs() < 0.26).map(|(_, v)| *v).collect(),
+                None => s.iter().zip(&p).filter(|(x, _)| (**x - c).abs() <= win).map(|(_, v)| *v).collect(),
+            };
             let t = if central.is_empty() {
                 let (fq, _) = if band == width_band { (q, rms) } else { fit_shape(&s, &p, [q[0], c, r, q[3]], Some((c, r)), half) };
                 1.0 - fq[0]
@@ -276,7 +335,7 @@ pub fn analyse_segment(img: &Multiband, line: &[(f64, f64)], others: &[Vec<(f64,
         if others.iter().any(|o| distance_to(o, here) < r + st.neighbour_margin_px + 1.0) {
             flags.push(Flag::NearSegment);
         }
-        out.push(ProfileResult { position: k, along_px: along, x: here.0, y: here.1, diameter_px: 2.0 * r, transmission: trans, background: backs, rms, flags });
+        out.push(ProfileResult { position: k, along_px: along, x: here.0, y: here.1, diameter_px: 2.0 * r, transmission: trans, background: backs, rms, flags, reflex: reflex.is_some() });
         k += 1;
         along += st.spacing_px;
     }

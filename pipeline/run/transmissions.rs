@@ -34,6 +34,8 @@ pub struct PositionRow {
     pub along_px: f64,
     pub diameter_um: f64,
     pub flags: String,
+    /// A central light reflex was found (T read beside it).
+    pub reflex: bool,
     pub transmission: Vec<f64>,
 }
 
@@ -61,7 +63,7 @@ pub struct ImageTables {
 }
 
 /// Version of this stage's computation; bump when its results change.
-pub const VERSION: u32 = 3;
+pub const VERSION: u32 = 4;
 
 /// One capture's item in the stage's cache.
 pub type CaptureItem = (ImageStatus, Vec<PositionRow>);
@@ -160,7 +162,7 @@ pub fn from_spectra(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: 
                     Some(ps) => (
                         ImageStatus { status: "ok".into(), message: Some("from the spectra table".into()), registration: None },
                         ps.iter()
-                            .map(|p| PositionRow { capture_index: i, segment: p.vessel.clone(), kind: p.kind.clone(), position: p.position, along_px: p.position as f64, diameter_um: p.diameter_um, flags: String::new(), transmission: p.transmission.clone() })
+                            .map(|p| PositionRow { capture_index: i, segment: p.vessel.clone(), kind: p.kind.clone(), position: p.position, along_px: p.position as f64, diameter_um: p.diameter_um, flags: String::new(), reflex: false, transmission: p.transmission.clone() })
                             .collect(),
                     ),
                 }
@@ -314,6 +316,7 @@ pub fn analyse_capture(i: usize, is_reference: bool, file: &Path, reference: &Mu
                 along_px: r.along_px,
                 diameter_um: r.diameter_px * px_um,
                 flags: r.flags.iter().map(|f| f.as_str()).collect::<Vec<_>>().join(";"),
+                reflex: r.reflex,
                 transmission: r.transmission,
             });
         }
@@ -367,7 +370,8 @@ fn position_table(p: &[PositionRow], study: &Study, epochs: &EpochTables) -> Tab
             .int("position", p.iter().map(|r| r.position as i64))
             .real("along_px", p.iter().map(|r| r.along_px))
             .real("diameter_um", p.iter().map(|r| r.diameter_um))
-            .text("flags", p.iter().map(|r| &r.flags));
+            .text("flags", p.iter().map(|r| &r.flags))
+            .text("central_reflex", p.iter().map(|r| if r.reflex { "yes" } else { "no" }));
         for (b, band) in study.instrument.bands.iter().enumerate() {
             t.real(&format!("t_{}", band.name), p.iter().map(|r| r.transmission[b]));
         }
