@@ -65,7 +65,7 @@ pub enum Command {
         study: PathBuf,
         /// Run this stage even if it is up to date (repeatable; `all` for every stage).
         /// Stages: epochs, images, fits, statistics, report.
-        #[arg(long, value_name = "STAGE", value_parser = clap::builder::PossibleValuesParser::new(["epochs", "images", "fits", "statistics", "report", "all"]))]
+        #[arg(long, value_name = "STAGE", value_parser = clap::builder::PossibleValuesParser::new(crate::stages::STAGES.iter().copied().chain(["all"])))]
         force: Vec<String>,
     },
     /// SO2 error from a 1 % transmission error per band, for veils 0–0.9.

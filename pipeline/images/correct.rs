@@ -38,10 +38,6 @@ impl Corrections {
         Ok(Corrections { dark, flat, offsets: inst.bands.iter().map(|b| b.offset_px).collect(), estimate: inst.estimate_band_offsets, reference_band })
     }
 
-    pub fn is_identity(&self) -> bool {
-        self.dark.is_none() && self.flat.is_none() && !self.estimate && self.offsets.iter().all(|o| o.is_none_or(|(x, y)| x == 0.0 && y == 0.0))
-    }
-
     /// Corrects `img` in place; returns the band offsets used (px).
     pub fn apply(&self, img: &mut Multiband) -> Result<Vec<(f64, f64)>, String> {
         let (w, h) = (img.width, img.height);

@@ -44,7 +44,6 @@ pub const REFERENCES: &[&str] = &[
     "Holm S (1979). A simple sequentially rejective multiple test procedure. Scandinavian Journal of Statistics 6(2):65–70.",
     "Bland JM, Altman DG (2007). Agreement between methods of measurement with multiple observations per individual. Journal of Biopharmaceutical Statistics 17(4):571–582.",
     "Huber PJ (1964). Robust estimation of a location parameter. Annals of Mathematical Statistics 35(1):73–101.",
-    "Moré JJ (1978). The Levenberg–Marquardt algorithm: implementation and theory. In: Numerical Analysis, Lecture Notes in Mathematics 630, Springer, 105–116.",
     "Severinghaus JW (1979). Simple, accurate equations for human blood O2 dissociation computations. Journal of Applied Physiology 46(3):599–602.",
     "ISO 2533:1975. Standard Atmosphere. International Organization for Standardization.",
 ];

@@ -62,12 +62,14 @@ pub fn build(study: &Study, epochs: &EpochTables, images: &ImageTables, runner: 
     let per_capture: Vec<Vec<Vec<FitRow>>> = captures
         .par_iter()
         .map(|&ci| -> Result<Vec<Vec<FitRow>>> {
-            let mut loaded: Option<Vec<PositionRow>> = None;
-            let mut load = || -> Result<Vec<PositionRow>> {
-                if loaded.is_none() {
-                    loaded = Some(images.positions(runner, ci)?);
+            // Read from the cache once, and only if some method needs them.
+            let loaded: std::cell::OnceCell<Vec<PositionRow>> = std::cell::OnceCell::new();
+            let load = || -> Result<&[PositionRow]> {
+                if let Some(v) = loaded.get() {
+                    return Ok(v);
                 }
-                Ok(loaded.clone().expect("loaded above"))
+                let v = images.positions(runner, ci)?;
+                Ok(loaded.get_or_init(|| v))
             };
             let mut out = Vec::with_capacity(study.methods.len());
             for m in &study.methods {
@@ -77,9 +79,9 @@ pub fn build(study: &Study, epochs: &EpochTables, images: &ImageTables, runner: 
                     MethodKind::Multiband { .. } => {
                         let mut k = KeyBuilder::new("fits-capture", VERSION);
                         k.value("method", m).value("bands", &study.instrument.bands).value("min-positions", &MIN_POSITIONS).key("images", &images.keys[ci]);
-                        items.try_get_or_compute(&k.finish(), || Ok(fit_capture(m, &bands, ci, &load()?)))?
+                        items.try_get_or_compute(&k.finish(), || Ok(fit_capture(m, &bands, ci, load()?)))?
                     }
-                    MethodKind::TwoBand { .. } => fit_capture(m, &bands, ci, &load()?),
+                    MethodKind::TwoBand { .. } => fit_capture(m, &bands, ci, load()?),
                 };
                 out.push(rows.into_iter().map(|mut r| {
                     r.capture_index = ci;

@@ -22,6 +22,7 @@ use crate::config::protocol::{load_protocol, Protocol};
 use crate::config::study::{load_study, resolve_study_path, Study};
 use crate::stages::key::{combine, hash_file, hash_file_or_missing, Key, KeyBuilder};
 use crate::stages::{manifest, Parts, Runner};
+use crate::timeline::assign::CaptureStatus;
 
 /// Validates a study and everything it names. Writes nothing.
 pub fn check(arg: &Path, printer: &Printer) -> Result<Exit> {
@@ -225,8 +226,14 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
         Parts { settings: epochs_settings(study), inputs: logs, upstream: vec![] },
         |_| {
             let t = epochs::build(study);
-            let n = |s: &str| t.captures.iter().filter(|c| c.status == s).count();
-            let d = format!("{} captures: {} steady, {} settling, {} outside the protocol, {} excluded", t.captures.len(), n("steady"), n("settling"), n("outside"), n("excluded"));
+            let d = format!(
+                "{} captures: {} steady, {} settling, {} outside the protocol, {} excluded",
+                t.captures.len(),
+                t.count(CaptureStatus::Steady),
+                t.count(CaptureStatus::Settling),
+                t.count(CaptureStatus::Outside),
+                t.captures.iter().filter(|c| c.status == "excluded").count()
+            );
             Ok((t, d))
         },
         |t, _| t.write(out),

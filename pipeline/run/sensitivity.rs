@@ -13,8 +13,7 @@ use crate::config::diag::Findings;
 use crate::config::read::Reader;
 use crate::config::study::Instrument;
 use crate::oximetry::bands::SampledBand;
-use crate::oximetry::model::VesselModel;
-use crate::oximetry::sensitivity::{so2_errors, OperatingPoint};
+use crate::oximetry::sensitivity::OperatingPoint;
 use crate::tables::Table;
 
 /// Reads the instrument from a study file (only its `instrument:` is
@@ -51,19 +50,14 @@ pub fn sensitivity(file: &Path, op: &OperatingPoint, out: &Path, printer: &Print
         return Ok(Exit::Problem);
     }
     let bands: Vec<SampledBand> = inst.bands.iter().map(|b| SampledBand::from_response(&b.response)).collect();
-    let model = VesselModel::new(&bands, |_| 1.0, 0.04);
-    let ks: Vec<f64> = (0..=9).map(|i| i as f64 / 10.0).collect();
-    let mut rows = Vec::new();
-    for k in &ks {
-        let Some((per, all)) = so2_errors(&model, op, *k, 0.01) else {
-            printer.error(format!("the model cannot be linearised at veil {k}: the bands do not separate the unknowns"));
-            return Ok(Exit::Problem);
-        };
-        rows.push((*k, per, all));
-    }
     let names: Vec<String> = inst.bands.iter().map(|b| b.name.clone()).collect();
+    let Some(curves) = crate::report::data::sensitivity_curves(&bands, &names, op) else {
+        printer.error("the model cannot be linearised at some veil between 0 and 0.9: the bands do not separate the unknowns");
+        return Ok(Exit::Problem);
+    };
+    let rows = &curves.rows;
     let (mut tk, mut tb, mut tc, mut te) = (vec![], vec![], vec![], vec![]);
-    for (k, per, all) in &rows {
+    for (k, per, all) in rows {
         for (b, e) in per.iter().enumerate() {
             tk.push(*k);
             tb.push(names[b].clone());
@@ -79,7 +73,6 @@ pub fn sensitivity(file: &Path, op: &OperatingPoint, out: &Path, printer: &Print
     let mut t = Table::new();
     t.real("veil", tk).text("band", &tb).opt_real("centre_nm", tc).real("so2_error_points", te);
     t.write(out, "sensitivity")?;
-    let curves = crate::report::data::SensitivityCurves { names: names.clone(), rows: rows.clone(), so2: op.so2, diameter_um: op.diameter_um };
     crate::report::figures::sensitivity(out, &curves)?;
 
     let mut s = format!(
@@ -94,7 +87,7 @@ pub fn sensitivity(file: &Path, op: &OperatingPoint, out: &Path, printer: &Print
         s.push_str(&format!(" {n:>8}"));
     }
     s.push_str(&format!(" {:>9}\n", "all bands"));
-    for (k, per, all) in &rows {
+    for (k, per, all) in rows {
         s.push_str(&format!("{k:>5.1}"));
         for e in per {
             s.push_str(&format!(" {e:>8.2}"));

@@ -91,14 +91,14 @@ impl<'a> Runner<'a> {
         self.warnings.lock().expect("not poisoned").push(msg);
     }
 
-    /// Runs `stage` unless its last result has the same key and its output
-    /// files are intact. `compute` returns the result and a line of detail;
-    /// `write` writes the result's tables and returns their paths.
     /// What each stage did so far, in order.
     pub fn log(&self) -> Vec<StageLog> {
         self.log.lock().expect("not poisoned").clone()
     }
 
+    /// Runs `stage` unless its last result has the same key and its output
+    /// files are intact. `compute` returns the result and a line of detail;
+    /// `write` writes the result's tables and returns their paths.
     pub fn stage<T, C, W>(&self, stage: &str, version: u32, parts: Parts, compute: C, write: W) -> Result<(T, Key)>
     where
         T: Serialize + DeserializeOwned,
@@ -212,43 +212,51 @@ pub struct Items<'r> {
 }
 
 impl Items<'_> {
-    pub fn get_or_compute<T: Serialize + DeserializeOwned>(&self, key: &Key, compute: impl FnOnce() -> T) -> T {
-        let store = &self.runner.store;
-        match if self.bypass { Lookup::Miss } else { store.get::<T>(&self.area, key) } {
+    /// The cached item, if there is a usable one (a forced stage has none).
+    fn cached<T: DeserializeOwned>(&self, key: &Key) -> Option<T> {
+        if self.bypass {
+            return None;
+        }
+        match self.runner.store.get::<T>(&self.area, key) {
             Lookup::Hit(v) => {
                 self.hits.fetch_add(1, Ordering::Relaxed);
                 self.bar.inc();
-                return v;
+                Some(v)
             }
-            Lookup::Corrupt { path, reason } => self.runner.warn(format!("cache entry `{}` is unusable ({reason}); recomputing it", path.display())),
-            Lookup::Miss => {}
+            Lookup::Corrupt { path, reason } => {
+                self.runner.warn(format!("cache entry `{}` is unusable ({reason}); recomputing it", path.display()));
+                None
+            }
+            Lookup::Miss => None,
         }
-        let v = compute();
-        if let Err(e) = store.put(&self.area, key, &v) {
-            self.failed_write.lock().expect("not poisoned").get_or_insert(e);
-        }
+    }
+
+    fn computed_one(&self) {
         self.computed.fetch_add(1, Ordering::Relaxed);
         self.bar.inc();
+    }
+
+    pub fn get_or_compute<T: Serialize + DeserializeOwned>(&self, key: &Key, compute: impl FnOnce() -> T) -> T {
+        if let Some(v) = self.cached(key) {
+            return v;
+        }
+        let v = compute();
+        if let Err(e) = self.runner.store.put(&self.area, key, &v) {
+            self.failed_write.lock().expect("not poisoned").get_or_insert(e);
+        }
+        self.computed_one();
         v
     }
 
     /// As [`Items::get_or_compute`] for a computation that can fail; a
     /// failure is returned and nothing is stored.
     pub fn try_get_or_compute<T: Serialize + DeserializeOwned>(&self, key: &Key, compute: impl FnOnce() -> Result<T>) -> Result<T> {
-        let store = &self.runner.store;
-        match if self.bypass { Lookup::Miss } else { store.get::<T>(&self.area, key) } {
-            Lookup::Hit(v) => {
-                self.hits.fetch_add(1, Ordering::Relaxed);
-                self.bar.inc();
-                return Ok(v);
-            }
-            Lookup::Corrupt { path, reason } => self.runner.warn(format!("cache entry `{}` is unusable ({reason}); recomputing it", path.display())),
-            Lookup::Miss => {}
+        if let Some(v) = self.cached(key) {
+            return Ok(v);
         }
         let v = compute()?;
-        store.put(&self.area, key, &v)?;
-        self.computed.fetch_add(1, Ordering::Relaxed);
-        self.bar.inc();
+        self.runner.store.put(&self.area, key, &v)?;
+        self.computed_one();
         Ok(v)
     }
 

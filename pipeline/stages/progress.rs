@@ -21,10 +21,6 @@ impl Progress {
         Progress(Some(bar))
     }
 
-    pub fn hidden() -> Self {
-        Progress(None)
-    }
-
     pub fn inc(&self) {
         if let Some(b) = &self.0 {
             b.inc(1);
