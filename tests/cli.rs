@@ -245,19 +245,28 @@ fn sensitivity_writes_its_table_and_figure() {
     let study = repo().join("demo-study/study.yaml");
     let out = satstep(dir.path(), &["sensitivity", study.to_str().unwrap(), "--out", "sens"]);
     assert_eq!(out.code, 0, "{}", out.stderr);
-    assert!(out.stdout.lines().nth(1).unwrap().trim_start().starts_with("veil     b506"));
+    let header = |text: &str| text.lines().filter(|l| l.trim_start().starts_with("veil     b506")).count();
+    assert_eq!(header(&out.stdout), 2, "one table per weighting: {}", out.stdout);
+    assert!(out.stdout.contains("weights refitted at each veil") && out.stdout.contains("veil-free band combination held"));
     let csv = std::fs::read_to_string(dir.path().join("sens/sensitivity.csv")).unwrap();
     let lines: Vec<&str> = csv.lines().collect();
-    assert_eq!(lines[0], "veil,band,centre_nm,so2_error_points");
-    assert_eq!(lines.len(), 1 + 10 * 9, "ten veils × (eight bands + all bands)");
+    assert_eq!(lines[0], "method,weights,veil,band,centre_nm,so2_error_points");
+    assert_eq!(lines.len(), 1 + 2 * 10 * 9, "two weightings × ten veils × (eight bands + all bands)");
+    assert!(lines[1].starts_with("multiband,refitted,0.0,b506,") && lines.last().unwrap().starts_with("multiband,held,0.9,all bands,"), "{} … {}", lines[1], lines.last().unwrap());
     let svg = std::fs::read_to_string(dir.path().join("sens/sensitivity.svg")).unwrap();
-    assert!(svg.starts_with("<svg") && svg.contains("all bands"));
+    assert!(svg.starts_with("<svg") && svg.contains("all bands") && svg.contains("combination held"));
     assert!(std::fs::metadata(dir.path().join("sens/sensitivity.png")).unwrap().len() > 10_000);
+    // The pointwise method linearises the veil too.
+    let out = satstep(dir.path(), &["sensitivity", study.to_str().unwrap(), "--method", "multiband-pointwise", "--out", "pw"]);
+    assert_eq!(out.code, 0, "{}", out.stderr);
+    let csv = std::fs::read_to_string(dir.path().join("pw/sensitivity.csv")).unwrap();
+    assert!(csv.lines().nth(1).unwrap().starts_with("multiband-pointwise,refitted,0.0,b506,"));
+    assert_ne!(csv.lines().skip(1).map(|l| l.split(',').last().unwrap()).collect::<Vec<_>>(), lines[1..].iter().map(|l| l.split(',').last().unwrap()).collect::<Vec<_>>());
     // An instrument with too few bands is refused with a reason.
     write(dir.path(), "two.yaml", "name: two\npixel_size_um: 10\nbands:\n  - {name: a, centre_nm: 570, fwhm_nm: 10}\n  - {name: b, centre_nm: 600, fwhm_nm: 10}\n");
     let out = satstep(dir.path(), &["sensitivity", "two.yaml"]);
     assert_eq!(out.code, 1);
-    assert!(out.stderr.contains("the instrument has 2 bands; the multiband model needs at least 4"), "{}", out.stderr);
+    assert!(out.stderr.contains("the instrument has 2 bands; `multiband` needs at least 4"), "{}", out.stderr);
 }
 
 #[test]

@@ -84,6 +84,10 @@ pub enum Command {
         /// Operating point: fraction of light crossing the vessel twice.
         #[arg(long, default_value_t = 0.3)]
         double_pass: f64,
+        /// The method whose unknowns are linearised: `multiband` (veil shared
+        /// along the segment) or `multiband-pointwise` (veil at each position).
+        #[arg(long, default_value = "multiband", value_parser = ["multiband", "multiband-pointwise"])]
+        method: String,
         /// Folder for `sensitivity.csv` and the figure.
         #[arg(long, value_name = "DIR", default_value = "sensitivity")]
         out: PathBuf,
@@ -174,9 +178,11 @@ pub fn main_with_args(args: impl IntoIterator<Item = std::ffi::OsString>) -> Exi
             let args = crate::run::mixed::MixedArgs { data, response, fixed, random, reference, contrasts: contrast, ml, out };
             crate::run::mixed::mixed(&args, &printer)
         }
-        Command::Sensitivity { file, so2, diameter, hb, double_pass, out } => {
-            let op = crate::oximetry::sensitivity::OperatingPoint { so2: so2 / 100.0, diameter_um: diameter, hb_g_per_l: hb, double_pass };
-            crate::run::sensitivity::sensitivity(&file, &op, &out, &printer)
+        Command::Sensitivity { file, so2, diameter, hb, double_pass, method, out } => {
+            use crate::oximetry::sensitivity::{OperatingPoint, Unknowns};
+            let op = OperatingPoint { so2: so2 / 100.0, diameter_um: diameter, hb_g_per_l: hb, double_pass };
+            let unknowns = if method == "multiband-pointwise" { Unknowns::VeilPerPosition } else { Unknowns::VeilShared };
+            crate::run::sensitivity::sensitivity(&file, &op, unknowns, &out, &printer)
         }
     };
     match result {

@@ -1,14 +1,34 @@
 //! Error propagation from band transmissions to SO2, for choosing bands
 //! before a study.
 //!
-//! At an operating point (SO2, diameter, hemoglobin, double-pass fraction)
-//! and a veil k, the model is linearised in the unknowns of one position
-//! (SO2, hemoglobin and F_2; the veil is taken as known, as the joint
-//! segment fit estimates it from the whole segment). A relative error ε in
-//! band b's transmission shifts the least-squares estimate by
-//! `δθ = (JᵀJ)⁻¹Jᵀ·ε·e_b`; the SO2 error from that band alone is
-//! `|δθ_S|`, and with independent errors ε in every band it is
-//! `ε·√Σ_b G_Sb²`, `G = (JᵀJ)⁻¹Jᵀ`. J is the Jacobian of ln T_obs.
+//! Inputs: the band set (as a [`VesselModel`]), an operating point (SO2,
+//! diameter, hemoglobin, double-pass fraction), a veil k and a relative
+//! transmission error ε. Output: the SO2 error in points caused by ε in
+//! each band alone, and by independent errors ε in every band.
+//!
+//! The model is linearised in the unknowns of one position: for the
+//! `multiband` joint fit S, hb and F_2 (the veil is estimated along the
+//! whole segment and taken as known here), for `multiband-pointwise` S, hb,
+//! k and F_2. A weighted least-squares estimate with row weights v_b moves
+//! by `δθ = (JᵀJ)⁻¹Jᵀ·r` for a residual change `r_b = v_b·ε·T_obs,b`,
+//! J the Jacobian of `v_b·T_obs,b`. The band's own error is `|δθ_S|` for
+//! `r = r_b·e_b`, the all-band figure `√Σ_b δθ_S(b)²`.
+//!
+//! Two sets of weights are reported, because they answer two questions:
+//!
+//! - [`Weights::Refitted`]: `v_b = 1/T_obs,b` at this veil, the weights
+//!   the fits use (their residuals are `ln T_obs`). This is the error of
+//!   satstep's own estimate. As k grows the weights even out across bands
+//!   (all `T_obs` approach 1), so a single band's share can shrink at small
+//!   k even though the total grows.
+//! - [`Weights::Held`]: `v_b = 1/T_b`, the weights of the veil-free case,
+//!   held as the veil grows: the band combination is fixed and only the
+//!   data change. Every column of J that is not the veil's scales by
+//!   (1 − k), so the SO2 row of `(JᵀJ)⁻¹Jᵀ` scales by 1/(1 − k) and a
+//!   band's error is its veil-free error times `1 + k/((1 − k)·T_b)`: it
+//!   grows with k for every band, most steeply as k approaches 1. This is
+//!   the trade's statement that the veil inflates error propagation
+//!   (common practice; the closed form is derived here, not quoted).
 
 use nalgebra::DMatrix;
 
@@ -28,19 +48,70 @@ impl Default for OperatingPoint {
     }
 }
 
+/// Which unknowns one position contributes, as in the two multiband methods.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Unknowns {
+    /// `multiband`: S, hb, F_2; the veil comes from the whole segment.
+    VeilShared,
+    /// `multiband-pointwise`: S, hb, k, F_2 at each position.
+    VeilPerPosition,
+}
+
+impl Unknowns {
+    pub fn method(self) -> &'static str {
+        match self {
+            Unknowns::VeilShared => "multiband",
+            Unknowns::VeilPerPosition => "multiband-pointwise",
+        }
+    }
+
+    fn columns(self) -> &'static [usize] {
+        // Columns of the model's derivative: [dS, dhb, dk, dF2].
+        match self {
+            Unknowns::VeilShared => &[0, 1, 3],
+            Unknowns::VeilPerPosition => &[0, 1, 2, 3],
+        }
+    }
+}
+
+/// The least-squares weights of the band combination (see the module docs).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Weights {
+    Refitted,
+    Held,
+}
+
+impl Weights {
+    pub const ALL: [Weights; 2] = [Weights::Refitted, Weights::Held];
+
+    pub fn name(self) -> &'static str {
+        match self {
+            Weights::Refitted => "refitted",
+            Weights::Held => "held",
+        }
+    }
+}
+
 /// SO2 error (in points, %) per band for a relative transmission error
 /// `eps` in that band alone, and for independent errors in all bands.
-pub fn so2_errors(model: &VesselModel, op: &OperatingPoint, veil: f64, eps: f64) -> Option<(Vec<f64>, f64)> {
+/// `None` when the bands do not separate the unknowns.
+pub fn so2_errors(model: &VesselModel, op: &OperatingPoint, veil: f64, eps: f64, unknowns: Unknowns, weights: Weights) -> Option<(Vec<f64>, f64)> {
     let nb = model.n_bands();
-    let mut t = vec![0.0; nb];
+    let at = |k: f64, jac: Option<&mut [[f64; N_DERIV]]>| {
+        let mut t = vec![0.0; nb];
+        model.transmission(&Shared { so2: op.so2, hb_g_per_l: op.hb_g_per_l, veil: k }, op.double_pass, op.diameter_um, &mut t, jac);
+        t
+    };
     let mut j = vec![[0.0; N_DERIV]; nb];
-    model.transmission(&Shared { so2: op.so2, hb_g_per_l: op.hb_g_per_l, veil }, op.double_pass, op.diameter_um, &mut t, Some(&mut j));
-    // Unknowns: S (column 0), hb (1), F_2 (3).
-    let cols = [0usize, 1, 3];
-    let jm = DMatrix::from_fn(nb, cols.len(), |b, c| j[b][cols[c]] / t[b]);
-    let jtj = jm.transpose() * &jm;
-    let g = jtj.try_inverse()? * jm.transpose();
-    let per_band: Vec<f64> = (0..nb).map(|b| 100.0 * (g[(0, b)] * eps).abs()).collect();
-    let all = 100.0 * eps * (0..nb).map(|b| g[(0, b)].powi(2)).sum::<f64>().sqrt();
-    Some((per_band, all))
+    let t_obs = at(veil, Some(&mut j));
+    let v: Vec<f64> = match weights {
+        Weights::Refitted => t_obs.iter().map(|t| 1.0 / t).collect(),
+        Weights::Held => at(0.0, None).iter().map(|t| 1.0 / t).collect(),
+    };
+    let cols = unknowns.columns();
+    let jm = DMatrix::from_fn(nb, cols.len(), |b, c| v[b] * j[b][cols[c]]);
+    let g = (jm.transpose() * &jm).try_inverse()? * jm.transpose();
+    let shift: Vec<f64> = (0..nb).map(|b| 100.0 * g[(0, b)] * v[b] * eps * t_obs[b]).collect();
+    let all = shift.iter().map(|s| s * s).sum::<f64>().sqrt();
+    Some((shift.iter().map(|s| s.abs()).collect(), all))
 }

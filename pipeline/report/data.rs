@@ -10,7 +10,7 @@ use crate::config::study::{MethodKind, Study};
 use crate::oximetry::bands::SampledBand;
 use crate::oximetry::odr::segment_odr;
 use crate::oximetry::pointwise::fit_position;
-use crate::oximetry::sensitivity::{so2_errors, OperatingPoint};
+use crate::oximetry::sensitivity::{so2_errors, OperatingPoint, Unknowns, Weights};
 use crate::run::epochs::EpochTables;
 use crate::run::fits::{multiband_model, FitRow};
 use crate::run::statistics::Statistics;
@@ -75,9 +75,14 @@ pub struct AlongSegment {
     pub joint: Option<(String, f64, f64)>,
 }
 
+/// One veil: (k, SO2 error per band, SO2 error for all bands), in points.
+pub type SensitivityRow = (f64, Vec<f64>, f64);
+
 pub struct SensitivityCurves {
     pub names: Vec<String>,
-    pub rows: Vec<(f64, Vec<f64>, f64)>,
+    pub method: &'static str,
+    /// Per [`Weights::ALL`], the rows for k = 0, 0.1, …, 0.9.
+    pub rows: Vec<(Weights, Vec<SensitivityRow>)>,
     pub so2: f64,
     pub diameter_um: f64,
 }
@@ -254,22 +259,35 @@ fn along_segment(study: &Study, epochs: &EpochTables, positions: &dyn Fn(usize) 
 /// The default operating point of `satstep sensitivity`.
 pub const OPERATING_POINT: OperatingPoint = OperatingPoint { so2: 0.95, diameter_um: 120.0, hb_g_per_l: 150.0, double_pass: 0.3 };
 
-pub fn sensitivity_curves(bands: &[SampledBand], names: &[String], op: &OperatingPoint) -> Option<SensitivityCurves> {
+pub fn sensitivity_curves(bands: &[SampledBand], names: &[String], op: &OperatingPoint, unknowns: Unknowns) -> Option<SensitivityCurves> {
     let model = crate::oximetry::model::VesselModel::new(bands, |_| 1.0, 0.04);
-    let rows = (0..=9)
-        .map(|i| {
-            let k = i as f64 / 10.0;
-            so2_errors(&model, op, k, 0.01).map(|(per, all)| (k, per, all))
+    let rows = Weights::ALL
+        .iter()
+        .map(|w| {
+            (0..=9)
+                .map(|i| {
+                    let k = i as f64 / 10.0;
+                    so2_errors(&model, op, k, 0.01, unknowns, *w).map(|(per, all)| (k, per, all))
+                })
+                .collect::<Option<Vec<_>>>()
+                .map(|r| (*w, r))
         })
         .collect::<Option<Vec<_>>>()?;
-    Some(SensitivityCurves { names: names.to_vec(), rows, so2: op.so2, diameter_um: op.diameter_um })
+    Some(SensitivityCurves { names: names.to_vec(), method: unknowns.method(), rows, so2: op.so2, diameter_um: op.diameter_um })
 }
 
+/// The instrument's sensitivity for the bands and unknowns of the report's
+/// primary multiband method (all bands, segment-shared veil, without one).
 fn sensitivity(study: &Study) -> Option<SensitivityCurves> {
-    if study.instrument.bands.len() < 4 {
+    let primary = primary_method(study);
+    let (selected, unknowns) = match study.methods.iter().find(|m| m.label == primary).map(|m| &m.kind) {
+        Some(MethodKind::Multiband { bands, pointwise, .. }) => (bands.clone(), if *pointwise { Unknowns::VeilPerPosition } else { Unknowns::VeilShared }),
+        _ => ((0..study.instrument.bands.len()).collect(), Unknowns::VeilShared),
+    };
+    if selected.len() < 4 {
         return None;
     }
-    let bands: Vec<SampledBand> = study.instrument.bands.iter().map(|b| SampledBand::from_response(&b.response)).collect();
-    let names: Vec<String> = study.instrument.bands.iter().map(|b| b.name.clone()).collect();
-    sensitivity_curves(&bands, &names, &OPERATING_POINT)
+    let bands: Vec<SampledBand> = selected.iter().map(|b| SampledBand::from_response(&study.instrument.bands[*b].response)).collect();
+    let names: Vec<String> = selected.iter().map(|b| study.instrument.bands[*b].name.clone()).collect();
+    sensitivity_curves(&bands, &names, &OPERATING_POINT, unknowns)
 }

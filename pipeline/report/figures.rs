@@ -10,6 +10,7 @@ use plotters::prelude::*;
 
 use super::data::*;
 use super::style::*;
+use crate::oximetry::sensitivity::Weights;
 use crate::tables::write_bytes_atomic;
 
 type DrawResult = std::result::Result<(), Box<dyn std::error::Error>>;
@@ -61,7 +62,7 @@ pub fn all(dir: &Path, d: &ReportData) -> Result<Vec<Figure>> {
         out.push(render!(dir, "along_segment", format!("SO2 along segment {} ({}, subject {}, capture {}): per-position estimates of the two-band ODR and of the multiband model fitted position by position, and the joint segment fit (line, ± 1 SE band)", a.segment, a.kind, a.subject, a.capture), (900, 420), draw_along, a));
     }
     if let Some(s) = &d.sensitivity {
-        out.push(render!(dir, "sensitivity", format!("SO2 error for a 1 % transmission error in each band alone and in all bands independently, against the veil k (SO2 {:.0} %, {:.0} µm, linearised)", s.so2 * 100.0, s.diameter_um), (900, 540), draw_sensitivity, s));
+        out.push(render!(dir, "sensitivity", format!("SO2 error of `{}` for a 1 % transmission error in each band alone and in all bands independently, against the veil k (SO2 {:.0} %, {:.0} µm, linearised); left, the fits' own weights refitted at each veil; right, the veil-free band combination held, which shows the veil's effect alone", s.method, s.so2 * 100.0, s.diameter_um), (1200, 540), draw_sensitivity, s));
     }
     Ok(out)
 }
@@ -69,7 +70,7 @@ pub fn all(dir: &Path, d: &ReportData) -> Result<Vec<Figure>> {
 /// The sensitivity figure alone, for `satstep sensitivity`.
 pub fn sensitivity(dir: &Path, s: &SensitivityCurves) -> Result<Figure> {
     std::fs::create_dir_all(dir)?;
-    Ok(render!(dir, "sensitivity", String::new(), (900, 540), draw_sensitivity, s))
+    Ok(render!(dir, "sensitivity", String::new(), (1200, 540), draw_sensitivity, s))
 }
 
 fn range(values: impl Iterator<Item = f64>, pad: f64) -> (f64, f64) {
@@ -246,21 +247,41 @@ fn draw_sensitivity<DB: DrawingBackend>(root: &DrawingArea<DB, Shift>, s: &Sensi
 where
     DB::ErrorType: 'static,
 {
-    let ymax = s.rows.iter().flat_map(|r| r.1.iter().copied().chain([r.2])).fold(0.0, f64::max) * 1.15;
-    let mut ch = ChartBuilder::on(root)
-        .caption("SO2 error per 1 % transmission error", title(17))
-        .margin(12)
-        .x_label_area_size(40)
-        .y_label_area_size(56)
-        .build_cartesian_2d(0.0..0.9, (0.05f64..ymax.max(1.0)).log_scale())?;
-    ch.configure_mesh().light_line_style(TRANSPARENT).bold_line_style(GRID).x_label_formatter(&|v| format!("{v:.1}")).y_label_formatter(&|v| if *v < 1.0 { format!("{v:.2}") } else { format!("{v:.0}") }).x_desc("veil k (fraction of the background intensity)").y_desc("SO2 error (points)").label_style(label(12)).axis_desc_style(label(13)).draw()?;
-    for (b, name) in s.names.iter().enumerate() {
-        let c = PALETTE[b % 7];
-        ch.draw_series(LineSeries::new(s.rows.iter().map(|r| (r.0, r.1[b].max(0.05))), c.stroke_width(2)))?.label(name.as_str()).legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], c.stroke_width(2)));
+    // Errors below 0.01 points are drawn at the floor of the log axis.
+    const FLOOR: f64 = 0.01;
+    let (top, body) = root.split_vertically(36);
+    top.draw_text(&format!("SO2 error per 1 % transmission error ({})", s.method), &title(17), (12, 8))?;
+    let ymax = s.rows.iter().flat_map(|(_, rows)| rows.iter().flat_map(|r| r.1.iter().copied().chain([r.2]))).fold(0.0, f64::max) * 1.15;
+    let panels = body.split_evenly((1, s.rows.len().max(1)));
+    for (i, ((weights, rows), area)) in s.rows.iter().zip(panels).enumerate() {
+        let caption = match weights {
+            Weights::Refitted => "weights refitted at each veil (as the fits do)",
+            Weights::Held => "veil-free band combination held",
+        };
+        let mut ch = ChartBuilder::on(&area)
+            .caption(caption, label(14))
+            .margin(10)
+            .x_label_area_size(40)
+            .y_label_area_size(56)
+            .build_cartesian_2d(0.0..0.9, (FLOOR..ymax.max(1.0)).log_scale())?;
+        ch.configure_mesh().light_line_style(TRANSPARENT).bold_line_style(GRID).x_label_formatter(&|v| format!("{v:.1}")).y_label_formatter(&|v| if *v < 1.0 { format!("{v:.2}") } else { format!("{v:.0}") }).x_desc("veil k (fraction of the background intensity)").y_desc("SO2 error (points)").label_style(label(12)).axis_desc_style(label(13)).draw()?;
+        for (b, name) in s.names.iter().enumerate() {
+            let c = PALETTE[b % 7];
+            // Bands past the palette's seven colours are dashed so that no two lines look alike.
+            let style = c.stroke_width(2);
+            let points: Vec<(f64, f64)> = rows.iter().map(|r| (r.0, r.1[b].max(FLOOR))).collect();
+            if b < 7 {
+                ch.draw_series(LineSeries::new(points, style))?.label(name.as_str()).legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], style));
+            } else {
+                ch.draw_series(DashedLineSeries::new(points, 6, 4, style))?.label(name.as_str()).legend(move |(x, y)| plotters::element::DashedPathElement::new(vec![(x, y), (x + 18, y)], 5, 3, style));
+            }
+        }
+        ch.draw_series(LineSeries::new(rows.iter().map(|r| (r.0, r.2.max(FLOOR))), BLACK.stroke_width(3)))?
+            .label("all bands")
+            .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], BLACK.stroke_width(3)));
+        if i == 0 {
+            ch.configure_series_labels().position(SeriesLabelPosition::UpperLeft).background_style(WHITE.mix(0.9)).border_style(INK).label_font(label(12)).draw()?;
+        }
     }
-    ch.draw_series(LineSeries::new(s.rows.iter().map(|r| (r.0, r.2.max(0.05))), BLACK.stroke_width(3)))?
-        .label("all bands")
-        .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], BLACK.stroke_width(3)));
-    ch.configure_series_labels().position(SeriesLabelPosition::UpperLeft).background_style(WHITE.mix(0.9)).border_style(INK).label_font(label(12)).draw()?;
     Ok(())
 }

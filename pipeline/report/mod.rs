@@ -26,7 +26,7 @@ use crate::tables::write_bytes_atomic;
 use tables::{html_escape, ReportTable};
 
 /// Version of the report's layout; bump when its output changes.
-pub const VERSION: u32 = 1;
+pub const VERSION: u32 = 2;
 
 /// The cautions every report carries.
 pub const CAUTIONS: &[&str] = &[

@@ -1,7 +1,10 @@
 //! `satstep sensitivity`: how a 1 % transmission error in each band, and
 //! independent 1 % errors in all bands, move the multiband SO2 estimate,
-//! for veils from 0 to 0.9. Writes `sensitivity.csv` and a figure
-//! (`sensitivity.svg`, `sensitivity.png`); prints the table.
+//! for veils from 0 to 0.9, with the fits' own weights refitted at each
+//! veil and with the veil-free band combination held (see
+//! [`crate::oximetry::sensitivity`]). Writes `sensitivity.csv` (and
+//! `.parquet`) and a figure (`sensitivity.svg`, `sensitivity.png`); prints
+//! the tables.
 
 use std::path::Path;
 
@@ -13,7 +16,7 @@ use crate::config::diag::Findings;
 use crate::config::read::Reader;
 use crate::config::study::Instrument;
 use crate::oximetry::bands::SampledBand;
-use crate::oximetry::sensitivity::OperatingPoint;
+use crate::oximetry::sensitivity::{OperatingPoint, Unknowns, Weights};
 use crate::tables::Table;
 
 /// Reads the instrument from a study file (only its `instrument:` is
@@ -36,7 +39,7 @@ pub fn load_instrument(path: &Path) -> Result<Instrument, Findings> {
     }
 }
 
-pub fn sensitivity(file: &Path, op: &OperatingPoint, out: &Path, printer: &Printer) -> Result<Exit> {
+pub fn sensitivity(file: &Path, op: &OperatingPoint, unknowns: Unknowns, out: &Path, printer: &Printer) -> Result<Exit> {
     let inst = match load_instrument(file) {
         Ok(i) => i,
         Err(f) => {
@@ -46,55 +49,61 @@ pub fn sensitivity(file: &Path, op: &OperatingPoint, out: &Path, printer: &Print
         }
     };
     if inst.bands.len() < 4 {
-        printer.error(format!("the instrument has {} bands; the multiband model needs at least 4", inst.bands.len()));
+        printer.error(format!("the instrument has {} bands; `{}` needs at least 4", inst.bands.len(), unknowns.method()));
         return Ok(Exit::Problem);
     }
     let bands: Vec<SampledBand> = inst.bands.iter().map(|b| SampledBand::from_response(&b.response)).collect();
     let names: Vec<String> = inst.bands.iter().map(|b| b.name.clone()).collect();
-    let Some(curves) = crate::report::data::sensitivity_curves(&bands, &names, op) else {
+    let Some(curves) = crate::report::data::sensitivity_curves(&bands, &names, op, unknowns) else {
         printer.error("the model cannot be linearised at some veil between 0 and 0.9: the bands do not separate the unknowns");
         return Ok(Exit::Problem);
     };
-    let rows = &curves.rows;
-    let (mut tk, mut tb, mut tc, mut te) = (vec![], vec![], vec![], vec![]);
-    for (k, per, all) in rows {
-        for (b, e) in per.iter().enumerate() {
-            tk.push(*k);
-            tb.push(names[b].clone());
-            tc.push(Some((bands[b].centroid_nm() * 100.0).round() / 100.0));
-            te.push(*e);
+    let (mut tw, mut tk, mut tb, mut tc, mut te) = (vec![], vec![], vec![], vec![], vec![]);
+    for (w, rows) in &curves.rows {
+        for (k, per, all) in rows {
+            for (b, e) in per.iter().enumerate().map(|(b, e)| (Some(b), *e)).chain([(None, *all)]) {
+                tw.push(w.name().to_string());
+                tk.push(*k);
+                tb.push(b.map_or_else(|| "all bands".to_string(), |b| names[b].clone()));
+                tc.push(b.map(|b| (bands[b].centroid_nm() * 100.0).round() / 100.0));
+                te.push(e);
+            }
         }
-        tk.push(*k);
-        tb.push("all bands".to_string());
-        tc.push(None);
-        te.push(*all);
     }
     std::fs::create_dir_all(out).with_context(|| format!("cannot create `{}`", out.display()))?;
     let mut t = Table::new();
-    t.real("veil", tk).text("band", &tb).opt_real("centre_nm", tc).real("so2_error_points", te);
+    t.text("method", &vec![unknowns.method().to_string(); tk.len()]).text("weights", &tw).real("veil", tk).text("band", &tb).opt_real("centre_nm", tc).real("so2_error_points", te);
     t.write(out, "sensitivity")?;
     crate::report::figures::sensitivity(out, &curves)?;
 
     let mut s = format!(
-        "SO2 error (points) for a 1 % transmission error, at SO2 {:.0} %, diameter {:.0} µm, hemoglobin {:.0} g/L, double-pass fraction {:.2}\n",
+        "SO2 error (points) for a 1 % transmission error, `{}`, at SO2 {:.0} %, diameter {:.0} µm, hemoglobin {:.0} g/L, double-pass fraction {:.2}\n",
+        unknowns.method(),
         op.so2 * 100.0,
         op.diameter_um,
         op.hb_g_per_l,
         op.double_pass
     );
-    s.push_str(&format!("{:>5}", "veil"));
-    for n in &names {
-        s.push_str(&format!(" {n:>8}"));
-    }
-    s.push_str(&format!(" {:>9}\n", "all bands"));
-    for (k, per, all) in rows {
-        s.push_str(&format!("{k:>5.1}"));
-        for e in per {
-            s.push_str(&format!(" {e:>8.2}"));
+    for (w, rows) in &curves.rows {
+        s.push_str(match w {
+            Weights::Refitted => "\nweights refitted at each veil (as the fits weigh the bands)\n",
+            Weights::Held => "\nveil-free band combination held (the veil changes the data only)\n",
+        });
+        s.push_str(&format!("{:>5}", "veil"));
+        for n in &names {
+            s.push_str(&format!(" {n:>8}"));
         }
-        s.push_str(&format!(" {all:>9.2}\n"));
+        s.push_str(&format!(" {:>9}\n", "all bands"));
+        for (k, per, all) in rows {
+            s.push_str(&format!("{k:>5.1}"));
+            for e in per {
+                s.push_str(&format!(" {e:>8.2}"));
+            }
+            s.push_str(&format!(" {all:>9.2}\n"));
+        }
     }
     printer.data(s);
     printer.info(format!("wrote `sensitivity.csv`, `.parquet`, `.svg` and `.png` under `{}`", out.display()));
     Ok(Exit::Ok)
 }
+
