@@ -12,13 +12,7 @@ use common::*;
 /// Everything but the cache and the manifests (which hold times).
 const VOLATILE: &[&str] = &["cache", "manifest"];
 
-fn simulated(dir: &Path, name: &str) -> PathBuf {
-    let sc = repo().join("tests/fixtures/runner-scenario.yaml");
-    let out = dir.join(name);
-    let o = satstep(dir, &["simulate", sc.to_str().unwrap(), "--out", out.to_str().unwrap()]);
-    assert_eq!(o.code, 0, "{}", o.stderr);
-    out
-}
+const SCENARIO: &str = "tests/fixtures/runner-scenario.yaml";
 
 fn run(dir: &Path, study: &Path, extra: &[&str]) -> Output {
     let mut args: Vec<&str> = vec!["run", study.to_str().unwrap()];
@@ -42,7 +36,7 @@ fn edit(path: &Path, from: &str, to: &str) {
 #[test]
 fn only_what_changed_reruns() {
     let dir = tempfile::tempdir().unwrap();
-    let s = simulated(dir.path(), "s");
+    let s = simulated(dir.path(), SCENARIO, "s");
     let first = run(dir.path(), &s, &[]);
     for st in ["epochs", "images", "fits", "statistics", "report"] {
         assert!(line(&first, st).contains("ran (no earlier result)"), "{}", first.stderr);
@@ -104,7 +98,7 @@ fn only_what_changed_reruns() {
 #[test]
 fn results_are_identical_whatever_the_jobs() {
     let dir = tempfile::tempdir().unwrap();
-    let (a, b) = (simulated(dir.path(), "a"), simulated(dir.path(), "b"));
+    let (a, b) = (simulated(dir.path(), SCENARIO, "a"), simulated(dir.path(), SCENARIO, "b"));
     run(dir.path(), &a, &["--jobs", "1"]);
     run(dir.path(), &b, &["--jobs", "2"]);
     let (ha, hb) = (hashes_except(&a.join("results"), VOLATILE), hashes_except(&b.join("results"), VOLATILE));
@@ -115,7 +109,7 @@ fn results_are_identical_whatever_the_jobs() {
 #[test]
 fn a_killed_run_resumes_to_the_same_results() {
     let dir = tempfile::tempdir().unwrap();
-    let (whole, killed) = (simulated(dir.path(), "whole"), simulated(dir.path(), "killed"));
+    let (whole, killed) = (simulated(dir.path(), SCENARIO, "whole"), simulated(dir.path(), SCENARIO, "killed"));
     run(dir.path(), &whole, &[]);
 
     // Start on one thread, kill -9 once some captures are in the cache.
@@ -146,7 +140,7 @@ fn a_killed_run_resumes_to_the_same_results() {
 #[test]
 fn a_corrupt_cache_entry_is_a_warning_and_is_recomputed() {
     let dir = tempfile::tempdir().unwrap();
-    let s = simulated(dir.path(), "s");
+    let s = simulated(dir.path(), SCENARIO, "s");
     run(dir.path(), &s, &[]);
     let before = hashes_except(&s.join("results"), VOLATILE);
     let cache = s.join("results/cache");
@@ -171,7 +165,7 @@ fn a_corrupt_cache_entry_is_a_warning_and_is_recomputed() {
 #[test]
 fn the_manifest_says_what_was_run_on_what() {
     let dir = tempfile::tempdir().unwrap();
-    let s = simulated(dir.path(), "s");
+    let s = simulated(dir.path(), SCENARIO, "s");
     run(dir.path(), &s, &[]);
     let m: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(s.join("results/manifest.json")).unwrap()).unwrap();
     assert_eq!(m["tool"], "satstep");

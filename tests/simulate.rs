@@ -61,9 +61,7 @@ fn every_scenario_in_the_repository_simulates_into_a_valid_study() {
 #[test]
 fn simulated_reference_and_truth_are_physiological() {
     let dir = tempfile::tempdir().unwrap();
-    let sc = repo().join("demo-study/scenario.yaml");
-    let out = dir.path().join("demo");
-    assert_eq!(satstep(dir.path(), &["simulate", sc.to_str().unwrap(), "--out", out.to_str().unwrap()]).code, 0);
+    let out = simulated(dir.path(), "demo-study/scenario.yaml", "demo");
     let run = satstep(dir.path(), &["run", out.to_str().unwrap()]);
     assert_eq!(run.code, 0, "{}", run.stderr);
     // Reference SpO2 of steady captures per epoch (median over subjects).

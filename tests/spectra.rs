@@ -18,9 +18,7 @@ fn records(path: &Path) -> (Vec<String>, Vec<Vec<String>>) {
 #[test]
 fn a_spectra_table_replaces_the_images() {
     let dir = tempfile::tempdir().unwrap();
-    let sc = repo().join("tests/fixtures/runner-scenario.yaml");
-    let img = dir.path().join("img");
-    assert_eq!(satstep(dir.path(), &["simulate", sc.to_str().unwrap(), "--out", img.to_str().unwrap()]).code, 0);
+    let img = simulated(dir.path(), "tests/fixtures/runner-scenario.yaml", "img");
     let o = satstep(dir.path(), &["run", img.to_str().unwrap()]);
     assert_eq!(o.code, 0, "{}", o.stderr);
 
@@ -68,14 +66,57 @@ fn a_spectra_table_replaces_the_images() {
         assert!((x - y).abs() < 1e-6, "{k:?}: images {x}, spectra {y}");
     }
     assert!(sp.join("results/report/report.html").is_file());
+
+    // The same table as Parquet gives the same numbers.
+    let (th, trows) = records(&sp.join("spectra.csv"));
+    let tc = |n: &str| th.iter().position(|x| x == n).unwrap();
+    let text = |n: &str| trows.iter().map(|r| r[tc(n)].clone()).collect::<Vec<_>>();
+    let real = |n: &str| trows.iter().map(|r| r[tc(n)].parse::<f64>().unwrap()).collect::<Vec<_>>();
+    let mut pq = satstep::tables::Table::new();
+    pq.text("subject", text("subject")).text("capture", text("capture")).text("vessel", text("vessel")).text("kind", text("kind"));
+    pq.int("position", trows.iter().map(|r| r[tc("position")].parse::<i64>().unwrap())).text("band", text("band"));
+    pq.real("transmission", real("transmission")).real("diameter_um", real("diameter_um"));
+    pq.write(&dir.path().join("pq"), "spectra").unwrap();
+    std::fs::copy(dir.path().join("pq/spectra.parquet"), sp.join("spectra.parquet")).unwrap();
+    std::fs::remove_file(sp.join("spectra.csv")).unwrap();
+    let study = std::fs::read_to_string(sp.join("study.yaml")).unwrap().replace("spectra: spectra.csv", "spectra: spectra.parquet");
+    std::fs::write(sp.join("study.yaml"), study).unwrap();
+    let before = so2(&sp);
+    let o = satstep(dir.path(), &["run", sp.to_str().unwrap()]);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    assert!(o.stderr.lines().any(|l| l.starts_with("images") && l.contains("ran")), "the changed input reruns the images stage: {}", o.stderr);
+    assert_eq!(so2(&sp), before, "Parquet and CSV spectra tables give different SO2");
+}
+
+#[test]
+fn parquet_spectra_mistakes_are_reported_with_positions() {
+    let dir = tempfile::tempdir().unwrap();
+    let s = simulated(dir.path(), "tests/fixtures/runner-scenario.yaml", "s");
+    let mut t = satstep::tables::Table::new();
+    t.text("capture", ["captures/c001.tif"; 3]).text("vessel", ["A1"; 3]).text("kind", ["arteriole"; 3]).int("position", [0, 0, 1]);
+    t.text("band", ["b548", "b555", "b548"]).real("transmission", [0.8, 0.8, -0.1]);
+    t.write(&dir.path().join("pq"), "spectra").unwrap();
+    std::fs::copy(dir.path().join("pq/spectra.parquet"), s.join("spectra.parquet")).unwrap();
+    let study = std::fs::read_to_string(s.join("study.yaml")).unwrap().replace("output: results", "spectra: spectra.parquet\noutput: results");
+    std::fs::write(s.join("study.yaml"), study).unwrap();
+    let o = satstep(dir.path(), &["check", s.to_str().unwrap()]);
+    assert_eq!(o.code, 1, "{}", o.stderr);
+    // Positions as the same table would have as CSV: data row + 1, column number.
+    assert!(o.stderr.contains("spectra.parquet:3:5: the spectra table: band `b555` is not an instrument band"), "{}", o.stderr);
+    assert!(o.stderr.contains("spectra.parquet:4:6: the spectra table: transmission `-0.1` is not a positive number"), "{}", o.stderr);
+    // A file that is not Parquet is a finding naming it, for check and run alike.
+    write(&s, "spectra.parquet", "capture,vessel\nc,A1\n");
+    for verb in ["check", "run"] {
+        let o = satstep(dir.path(), &[verb, s.to_str().unwrap()]);
+        assert_eq!(o.code, 1, "{verb}: {}", o.stderr);
+        assert!(o.stderr.contains("spectra.parquet: cannot read the file as Parquet"), "{verb}: {}", o.stderr);
+    }
 }
 
 #[test]
 fn spectra_table_mistakes_are_reported_with_positions() {
     let dir = tempfile::tempdir().unwrap();
-    let sc = repo().join("tests/fixtures/runner-scenario.yaml");
-    let s = dir.path().join("s");
-    assert_eq!(satstep(dir.path(), &["simulate", sc.to_str().unwrap(), "--out", s.to_str().unwrap()]).code, 0);
+    let s = simulated(dir.path(), "tests/fixtures/runner-scenario.yaml", "s");
     write(
         &s,
         "spectra.csv",

@@ -1,6 +1,9 @@
 //! Small CSV inputs written or exported by people (capture lists, oximeter
 //! logs), read with positions so that every problem can be reported as
-//! `file:line:column`.
+//! `file:line:column`. A Parquet file can stand in where a table may be
+//! large (the spectra table): its cells get the positions the same table
+//! would have as CSV with a header line, line = row + 1 counting the first
+//! data row as row 1, column = the column's number.
 
 use std::path::Path;
 
@@ -90,6 +93,57 @@ pub fn read_csv(path: &Path, findings: &mut Findings) -> Option<CsvTable> {
             }
         }
     }
+    Some(CsvTable { header, rows })
+}
+
+/// Reads a table that is either CSV or, by the `.parquet` extension, Parquet.
+pub fn read_table(path: &Path, findings: &mut Findings) -> Option<CsvTable> {
+    if path.extension().is_some_and(|e| e.eq_ignore_ascii_case("parquet")) {
+        read_parquet(path, findings)
+    } else {
+        read_csv(path, findings)
+    }
+}
+
+/// Reads a Parquet file into the same cells a CSV export would have.
+/// Numbers are written in their shortest exact form, so that parsing a
+/// cell gives back the stored value; nulls are empty cells.
+fn read_parquet(path: &Path, findings: &mut Findings) -> Option<CsvTable> {
+    use polars::prelude::{DataType, ParquetReader, SerReader};
+    let file = match std::fs::File::open(path) {
+        Ok(f) => f,
+        Err(e) => {
+            findings.error(path, None, format!("cannot read the file: {e}")).hint("check the path in the study file");
+            return None;
+        }
+    };
+    let df = match ParquetReader::new(file).finish() {
+        Ok(df) => df,
+        Err(e) => {
+            findings.error(path, None, format!("cannot read the file as Parquet: {e}")).hint("write the table as Parquet, or as CSV with a `.csv` name");
+            return None;
+        }
+    };
+    let header: Vec<String> = df.get_column_names().iter().map(|n| n.trim().to_string()).collect();
+    let mut cells: Vec<Vec<String>> = Vec::with_capacity(header.len());
+    for (i, col) in df.columns().iter().enumerate() {
+        let s = col.as_materialized_series();
+        let text: Option<Vec<String>> = match s.dtype() {
+            DataType::String => s.str().ok().map(|c| c.iter().map(|v| v.unwrap_or("").trim().to_string()).collect()),
+            DataType::Boolean => s.bool().ok().map(|c| c.iter().map(|v| v.map(|b| b.to_string()).unwrap_or_default()).collect()),
+            DataType::Float32 | DataType::Float64 => s.cast(&DataType::Float64).ok().and_then(|f| f.f64().ok().map(|c| c.iter().map(|v| v.map(|x| x.to_string()).unwrap_or_default()).collect())),
+            d if d.is_integer() => s.cast(&DataType::Int64).ok().and_then(|f| f.i64().ok().map(|c| c.iter().map(|v| v.map(|x| x.to_string()).unwrap_or_default()).collect())),
+            _ => None,
+        };
+        match text {
+            Some(t) => cells.push(t),
+            None => {
+                findings.error(path, Some(Mark::new(1, i + 1)), format!("column `{}` holds {}, which this table cannot use", header[i], s.dtype())).hint("store text, whole numbers or floating-point numbers");
+                return None;
+            }
+        }
+    }
+    let rows = (0..df.height()).map(|r| CsvRow { line: r + 2, fields: cells.iter().enumerate().map(|(c, col)| (col[r].clone(), c + 1)).collect() }).collect();
     Some(CsvTable { header, rows })
 }
 

@@ -1,5 +1,6 @@
 //! The spectra-level input: for labs that extract vessel transmissions with
-//! their own tools, a tidy CSV table replaces the images. One row per
+//! their own tools, a tidy table (CSV, or Parquet by a `.parquet` name)
+//! replaces the images. One row per
 //! capture, vessel segment, profile position and band:
 //!
 //! `[subject,] capture, vessel, kind, position, band, transmission[, diameter_um]`
@@ -11,12 +12,13 @@
 //! stage keeps them); `diameter_um` is the vessel diameter at
 //! that position (needed by the multiband methods; the two-band method
 //! works without it). Every position needs a row for every band. Problems
-//! are findings with `file:line:column`.
+//! are findings with `file:line:column` (for Parquet, the positions the same
+//! table has as CSV: line = data row + 1, column = the column's number).
 
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
-use super::csvfile::read_csv;
+use super::csvfile::read_table;
 use super::diag::{Findings, Mark};
 
 /// One vessel position of one capture.
@@ -42,7 +44,7 @@ const COLUMNS: &[&str] = &["subject", "capture", "vessel", "kind", "position", "
 /// Reads and checks the table against the instrument's band names.
 pub fn read_spectra(path: &Path, bands: &[String], findings: &mut Findings) -> Option<SpectraTable> {
     let what = "the spectra table";
-    let t = read_csv(path, findings)?;
+    let t = read_table(path, findings)?;
     for (i, h) in t.header.iter().enumerate() {
         if !COLUMNS.contains(&h.as_str()) {
             let hint = super::diag::suggest(h, COLUMNS);

@@ -31,6 +31,16 @@ pub fn repo() -> PathBuf {
     PathBuf::from(env!("CARGO_MANIFEST_DIR"))
 }
 
+/// Simulates the scenario at `scenario` (relative to the repository) into
+/// `dir/out` and returns that folder.
+pub fn simulated(dir: &Path, scenario: &str, out: &str) -> PathBuf {
+    let sc = repo().join(scenario);
+    let folder = dir.join(out);
+    let o = satstep(dir, &["simulate", sc.to_str().unwrap(), "--out", folder.to_str().unwrap()]);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    folder
+}
+
 pub fn write(dir: &Path, rel: &str, text: &str) -> PathBuf {
     let p = dir.join(rel);
     std::fs::create_dir_all(p.parent().unwrap()).unwrap();
