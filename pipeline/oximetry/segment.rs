@@ -304,9 +304,17 @@ pub fn fit_segment(model: &VesselModel, data: &SegmentSpectra, settings: &FitSet
             if change < 1e-4 {
                 break;
             }
-            rep = minimize(&prob, &rep.x, &opts);
+            // A warm start sits near the optimum: begin with little damping
+            // so that Gauss–Newton steps are taken at once.
+            let before = [rep.x[0], rep.x[1], rep.x[2]];
+            rep = minimize(&prob, &rep.x, &Options { tau: 1e-9, ..opts });
             iterations += rep.iterations;
             evaluations += rep.evaluations;
+            // Stop once the shared estimates no longer move (1e-6 in S and k,
+            // 1e-6 relative in hb: far below any standard error).
+            if (rep.x[0] - before[0]).abs() < 1e-6 && (rep.x[1] - before[1]).abs() < 1e-6 * before[1].abs() && (rep.x[2] - before[2]).abs() < 1e-6 {
+                break;
+            }
         }
     }
     let lin = prob.linearize(&rep.x);

@@ -44,7 +44,7 @@ pub struct FitRow {
 }
 
 /// Version of this stage's computation; bump when its results change.
-pub const VERSION: u32 = 2;
+pub const VERSION: u32 = 3;
 
 /// The stage's settings: the methods and the bands they read.
 pub fn settings_key(study: &Study) -> Key {
