@@ -261,7 +261,22 @@ fn sensitivity_writes_its_table_and_figure() {
     assert_eq!(out.code, 0, "{}", out.stderr);
     let csv = std::fs::read_to_string(dir.path().join("pw/sensitivity.csv")).unwrap();
     assert!(csv.lines().nth(1).unwrap().starts_with("multiband-pointwise,refitted,0.0,b506,"));
-    assert_ne!(csv.lines().skip(1).map(|l| l.split(',').last().unwrap()).collect::<Vec<_>>(), lines[1..].iter().map(|l| l.split(',').last().unwrap()).collect::<Vec<_>>());
+    assert_ne!(csv.lines().skip(1).map(|l| l.split(',').next_back().unwrap()).collect::<Vec<_>>(), lines[1..].iter().map(|l| l.split(',').next_back().unwrap()).collect::<Vec<_>>());
+    // A candidate subset of the bands: its own figures (a single band's
+    // error grows when fewer bands share the load).
+    let out = satstep(dir.path(), &["sensitivity", study.to_str().unwrap(), "--bands", "b522,b548,b570,b586,b600", "--out", "five"]);
+    assert_eq!(out.code, 0, "{}", out.stderr);
+    let five = std::fs::read_to_string(dir.path().join("five/sensitivity.csv")).unwrap();
+    assert_eq!(five.lines().count(), 1 + 2 * 10 * 6, "two weightings × ten veils × (five bands + all bands)");
+    let at = |csv: &str, band: &str| -> f64 { csv.lines().find(|l| l.starts_with(&format!("multiband,refitted,0.0,{band},"))).unwrap().split(',').next_back().unwrap().parse().unwrap() };
+    let eight = std::fs::read_to_string(dir.path().join("sens/sensitivity.csv")).unwrap();
+    assert!(at(&five, "b600") > at(&eight, "b600"), "five bands: {}, eight: {}", at(&five, "b600"), at(&eight, "b600"));
+    let out = satstep(dir.path(), &["sensitivity", study.to_str().unwrap(), "--bands", "b548,b570,b6000"]);
+    assert_eq!(out.code, 1);
+    assert!(out.stderr.contains("`--bands`: `b6000` is not a band of the instrument") && out.stderr.contains("did you mean `b600`"), "{}", out.stderr);
+    let out = satstep(dir.path(), &["sensitivity", study.to_str().unwrap(), "--bands", "b548,b570,b600"]);
+    assert_eq!(out.code, 1);
+    assert!(out.stderr.contains("`--bands` selects 3 bands; `multiband` needs at least 4"), "{}", out.stderr);
     // An instrument with too few bands is refused with a reason.
     write(dir.path(), "two.yaml", "name: two\npixel_size_um: 10\nbands:\n  - {name: a, centre_nm: 570, fwhm_nm: 10}\n  - {name: b, centre_nm: 600, fwhm_nm: 10}\n");
     let out = satstep(dir.path(), &["sensitivity", "two.yaml"]);

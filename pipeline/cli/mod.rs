@@ -88,6 +88,9 @@ pub enum Command {
         /// along the segment) or `multiband-pointwise` (veil at each position).
         #[arg(long, default_value = "multiband", value_parser = ["multiband", "multiband-pointwise"])]
         method: String,
+        /// Only these instrument bands, by name (comma-separated); all when not given.
+        #[arg(long, value_name = "NAME,…", value_delimiter = ',')]
+        bands: Vec<String>,
         /// Folder for `sensitivity.csv` and the figure.
         #[arg(long, value_name = "DIR", default_value = "sensitivity")]
         out: PathBuf,
@@ -178,11 +181,11 @@ pub fn main_with_args(args: impl IntoIterator<Item = std::ffi::OsString>) -> Exi
             let args = crate::run::mixed::MixedArgs { data, response, fixed, random, reference, contrasts: contrast, ml, out };
             crate::run::mixed::mixed(&args, &printer)
         }
-        Command::Sensitivity { file, so2, diameter, hb, double_pass, method, out } => {
+        Command::Sensitivity { file, so2, diameter, hb, double_pass, method, bands, out } => {
             use crate::oximetry::sensitivity::{OperatingPoint, Unknowns};
             let op = OperatingPoint { so2: so2 / 100.0, diameter_um: diameter, hb_g_per_l: hb, double_pass };
             let unknowns = if method == "multiband-pointwise" { Unknowns::VeilPerPosition } else { Unknowns::VeilShared };
-            crate::run::sensitivity::sensitivity(&file, &op, unknowns, &out, &printer)
+            crate::run::sensitivity::sensitivity(&file, &op, unknowns, &bands, &out, &printer)
         }
     };
     match result {

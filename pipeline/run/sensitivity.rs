@@ -39,7 +39,9 @@ pub fn load_instrument(path: &Path) -> Result<Instrument, Findings> {
     }
 }
 
-pub fn sensitivity(file: &Path, op: &OperatingPoint, unknowns: Unknowns, out: &Path, printer: &Printer) -> Result<Exit> {
+/// `only`: band names to keep (all the instrument's bands when empty), so
+/// that candidate band sets can be compared before a study.
+pub fn sensitivity(file: &Path, op: &OperatingPoint, unknowns: Unknowns, only: &[String], out: &Path, printer: &Printer) -> Result<Exit> {
     let inst = match load_instrument(file) {
         Ok(i) => i,
         Err(f) => {
@@ -48,12 +50,29 @@ pub fn sensitivity(file: &Path, op: &OperatingPoint, unknowns: Unknowns, out: &P
             return Ok(Exit::Problem);
         }
     };
-    if inst.bands.len() < 4 {
-        printer.error(format!("the instrument has {} bands; `{}` needs at least 4", inst.bands.len(), unknowns.method()));
+    let all: Vec<&str> = inst.bands.iter().map(|b| b.name.as_str()).collect();
+    let mut chosen: Vec<usize> = Vec::new();
+    for name in only {
+        match all.iter().position(|n| n == name) {
+            Some(i) if !chosen.contains(&i) => chosen.push(i),
+            Some(_) => {}
+            None => {
+                printer.error(format!("`--bands`: `{name}` is not a band of the instrument in `{}`; {}", file.display(), crate::config::diag::suggest(name, &all)));
+                return Ok(Exit::Problem);
+            }
+        }
+    }
+    if chosen.is_empty() {
+        chosen = (0..all.len()).collect();
+    }
+    chosen.sort_unstable();
+    if chosen.len() < 4 {
+        let what = if only.is_empty() { "the instrument has" } else { "`--bands` selects" };
+        printer.error(format!("{what} {} bands; `{}` needs at least 4", chosen.len(), unknowns.method()));
         return Ok(Exit::Problem);
     }
-    let bands: Vec<SampledBand> = inst.bands.iter().map(|b| SampledBand::from_response(&b.response)).collect();
-    let names: Vec<String> = inst.bands.iter().map(|b| b.name.clone()).collect();
+    let bands: Vec<SampledBand> = chosen.iter().map(|b| SampledBand::from_response(&inst.bands[*b].response)).collect();
+    let names: Vec<String> = chosen.iter().map(|b| inst.bands[*b].name.clone()).collect();
     let Some(curves) = crate::report::data::sensitivity_curves(&bands, &names, op, unknowns) else {
         printer.error("the model cannot be linearised at some veil between 0 and 0.9: the bands do not separate the unknowns");
         return Ok(Exit::Problem);
