@@ -106,44 +106,25 @@ pub fn read_table(path: &Path, findings: &mut Findings) -> Option<CsvTable> {
 }
 
 /// Reads a Parquet file into the same cells a CSV export would have.
-/// Numbers are written in their shortest exact form, so that parsing a
-/// cell gives back the stored value; nulls are empty cells.
 fn read_parquet(path: &Path, findings: &mut Findings) -> Option<CsvTable> {
-    use polars::prelude::{DataType, ParquetReader, SerReader};
-    let file = match std::fs::File::open(path) {
-        Ok(f) => f,
-        Err(e) => {
-            findings.error(path, None, format!("cannot read the file: {e}")).hint("check the path in the study file");
-            return None;
-        }
-    };
-    let df = match ParquetReader::new(file).finish() {
-        Ok(df) => df,
-        Err(e) => {
+    if let Err(e) = std::fs::metadata(path) {
+        findings.error(path, None, format!("cannot read the file: {e}")).hint("check the path in the study file");
+        return None;
+    }
+    let (header, cells) = match crate::tables::read_parquet_cells(path) {
+        Ok(t) => t,
+        Err(crate::tables::CellsError::Unreadable(e)) => {
             findings.error(path, None, format!("cannot read the file as Parquet: {e}")).hint("write the table as Parquet, or as CSV with a `.csv` name");
             return None;
         }
-    };
-    let header: Vec<String> = df.get_column_names().iter().map(|n| n.trim().to_string()).collect();
-    let mut cells: Vec<Vec<String>> = Vec::with_capacity(header.len());
-    for (i, col) in df.columns().iter().enumerate() {
-        let s = col.as_materialized_series();
-        let text: Option<Vec<String>> = match s.dtype() {
-            DataType::String => s.str().ok().map(|c| c.iter().map(|v| v.unwrap_or("").trim().to_string()).collect()),
-            DataType::Boolean => s.bool().ok().map(|c| c.iter().map(|v| v.map(|b| b.to_string()).unwrap_or_default()).collect()),
-            DataType::Float32 | DataType::Float64 => s.cast(&DataType::Float64).ok().and_then(|f| f.f64().ok().map(|c| c.iter().map(|v| v.map(|x| x.to_string()).unwrap_or_default()).collect())),
-            d if d.is_integer() => s.cast(&DataType::Int64).ok().and_then(|f| f.i64().ok().map(|c| c.iter().map(|v| v.map(|x| x.to_string()).unwrap_or_default()).collect())),
-            _ => None,
-        };
-        match text {
-            Some(t) => cells.push(t),
-            None => {
-                findings.error(path, Some(Mark::new(1, i + 1)), format!("column `{}` holds {}, which this table cannot use", header[i], s.dtype())).hint("store text, whole numbers or floating-point numbers");
-                return None;
-            }
+        Err(crate::tables::CellsError::Column { index, name, dtype }) => {
+            findings.error(path, Some(Mark::new(1, index + 1)), format!("column `{name}` holds {dtype}, which this table cannot use")).hint("store text, whole numbers or floating-point numbers");
+            return None;
         }
-    }
-    let rows = (0..df.height()).map(|r| CsvRow { line: r + 2, fields: cells.iter().enumerate().map(|(c, col)| (col[r].clone(), c + 1)).collect() }).collect();
+    };
+    let header: Vec<String> = header.iter().map(|n| n.trim().to_string()).collect();
+    let height = cells.first().map_or(0, Vec::len);
+    let rows = (0..height).map(|r| CsvRow { line: r + 2, fields: cells.iter().enumerate().map(|(c, col)| (col[r].trim().to_string(), c + 1)).collect() }).collect();
     Some(CsvTable { header, rows })
 }
 

@@ -86,6 +86,39 @@ impl Table {
     }
 }
 
+/// Why a Parquet file could not be read as cells.
+#[derive(Debug)]
+pub enum CellsError {
+    /// Not Parquet, or damaged.
+    Unreadable(String),
+    /// A column of a type that has no plain text form (lists, structs, …).
+    Column { index: usize, name: String, dtype: String },
+}
+
+/// Reads a Parquet file as text cells, column by column, as a CSV export
+/// would show them: numbers in their shortest exact form (parsing a cell
+/// gives back the stored value), booleans as `true`/`false`, nulls empty.
+/// Returns the column names and the columns.
+pub fn read_parquet_cells(path: &Path) -> std::result::Result<(Vec<String>, Vec<Vec<String>>), CellsError> {
+    use polars::prelude::{DataType, ParquetReader, SerReader};
+    let file = fs::File::open(path).map_err(|e| CellsError::Unreadable(e.to_string()))?;
+    let df = ParquetReader::new(file).finish().map_err(|e| CellsError::Unreadable(e.to_string()))?;
+    let names: Vec<String> = df.get_column_names().iter().map(|n| n.to_string()).collect();
+    let mut cells = Vec::with_capacity(names.len());
+    for (index, col) in df.columns().iter().enumerate() {
+        let s = col.as_materialized_series();
+        let text: Option<Vec<String>> = match s.dtype() {
+            DataType::String => s.str().ok().map(|c| c.iter().map(|v| v.unwrap_or("").to_string()).collect()),
+            DataType::Boolean => s.bool().ok().map(|c| c.iter().map(|v| v.map(|b| b.to_string()).unwrap_or_default()).collect()),
+            DataType::Float32 | DataType::Float64 => s.cast(&DataType::Float64).ok().and_then(|f| f.f64().ok().map(|c| c.iter().map(|v| v.map(|x| x.to_string()).unwrap_or_default()).collect())),
+            d if d.is_integer() => s.cast(&DataType::Int64).ok().and_then(|f| f.i64().ok().map(|c| c.iter().map(|v| v.map(|x| x.to_string()).unwrap_or_default()).collect())),
+            _ => None,
+        };
+        cells.push(text.ok_or_else(|| CellsError::Column { index, name: names[index].clone(), dtype: s.dtype().to_string() })?);
+    }
+    Ok((names, cells))
+}
+
 /// A table written in pieces, for tables too large to hold in memory:
 /// rows arrive as small [`Table`]s with the same columns, are buffered up
 /// to a fixed number of rows and written as one Parquet row group and one
@@ -224,6 +257,22 @@ pub fn write_bytes_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn parquet_cells_give_back_the_stored_values() {
+        let dir = tempfile::tempdir().unwrap();
+        let mut t = Table::new();
+        t.text("name", ["a", "b"]).int("n", [3, -1]).real("x", [0.1 + 0.2, 1e-300]).opt_real("y", [Some(2.5), None]);
+        t.write(dir.path(), "t").unwrap();
+        let (names, cells) = read_parquet_cells(&dir.path().join("t.parquet")).unwrap();
+        assert_eq!(names, ["name", "n", "x", "y"]);
+        assert_eq!(cells[0], ["a", "b"]);
+        assert_eq!(cells[1], ["3", "-1"]);
+        assert_eq!(cells[2][0].parse::<f64>().unwrap(), 0.1 + 0.2);
+        assert_eq!(cells[2][1].parse::<f64>().unwrap(), 1e-300);
+        assert_eq!(cells[3], ["2.5", ""]);
+        assert!(matches!(read_parquet_cells(&dir.path().join("t.csv")), Err(CellsError::Unreadable(_))));
+    }
 
     #[test]
     fn writes_csv_and_parquet_that_read_back() {
