@@ -7,8 +7,10 @@
 //! |u| = 1 (centre c, half-width r, depth A, absorption strength κ).
 //! The band chosen for widths gives c and r; every band's transmission is
 //! then the normalised intensity on the centre line, `T = I_vessel /
-//! I_background`, averaged over a window of ±0.2 r (at least ±0.5 px). A
-//! central light reflex is not yet modelled: it would raise T there.
+//! I_background`, averaged over a window of ±0.2 r (at least ±0.5 px).
+//! Where a central light reflex brightens the axis, the shape is fitted
+//! without it and T is read at the darkest points beside it (a little high,
+//! as the chord is shorter there: about +5 % at strong absorption).
 //!
 //! Flags (kept with the row, never dropped): `off-image` (the profile
 //! leaves the image), `low-contrast` (depth below the limit in the width
