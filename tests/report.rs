@@ -23,6 +23,7 @@ const TABLES: &[(&str, &[&str])] = &[
     ("capture_accounting", &["subject", "epoch", "acquired", "used", "settling"]),
     ("so2_by_epoch", &["method", "epoch", "subjects", "arterioles", "venules", "arteriovenous"]),
     ("contrasts", &["method", "kind", "contrast", "estimate", "95 % CI", "df", "t", "p", "p (Holm)"]),
+    ("variance_components", &["method", "kind", "group", "levels", "SD"]),
     ("agreement", &["method", "captures", "subjects", "bias", "precision", "Arms", "limits of agreement", "slope", "slope 95 % CI"]),
     ("method_comparison", &["method", "kind", "quantity", "value"]),
     ("data_quality", &["item", "count", "of"]),

@@ -148,6 +148,31 @@ fn simulated_reference_and_truth_are_physiological() {
         let slope: f64 = l.split(',').nth(col).unwrap().parse().unwrap();
         assert!((0.5..1.5).contains(&slope), "{l}");
     }
+
+    // The stage's variance components are those of the same model fitted
+    // by `satstep mixed` to the exported segment table (steady captures).
+    let mut rd = csv::Reader::from_path(out.join("results/fits/so2.csv")).unwrap();
+    let h: Vec<String> = rd.headers().unwrap().iter().map(String::from).collect();
+    let c = |n: &str| h.iter().position(|x| x == n).unwrap();
+    let mut table = String::from("so2,epoch,subject,eye,segment\n");
+    for r in rd.records().map(Result::unwrap) {
+        if &r[c("method")] == "multiband" && &r[c("kind")] == "venule" && &r[c("status")] == "steady" && !r[c("so2")].is_empty() {
+            table.push_str(&format!("{},{},{},{},{}\n", &r[c("so2")], &r[c("epoch")], &r[c("subject")], &r[c("eye")], &r[c("segment")]));
+        }
+    }
+    write(dir.path(), "venules.csv", &table);
+    let o = satstep(dir.path(), &["mixed", "--data", "venules.csv", "--response", "so2", "--fixed", "epoch", "--reference", "epoch=air", "--random", "subject", "--random", "subject:eye:segment", "--out", "vc"]);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let read = |p: &std::path::Path, filter: &dyn Fn(&csv::StringRecord) -> bool, gcol: usize, vcol: usize| -> BTreeMap<String, f64> {
+        csv::Reader::from_path(p).unwrap().records().map(Result::unwrap).filter(|r| filter(r)).map(|r| (r[gcol].to_string(), r[vcol].parse().unwrap())).collect()
+    };
+    let stage = read(&out.join("results/statistics/variance_components.csv"), &|r| &r[0] == "multiband" && &r[1] == "venule", 2, 4);
+    let alone = read(&dir.path().join("vc/variance_components.csv"), &|_| true, 0, 1);
+    assert_eq!(stage.keys().collect::<Vec<_>>(), ["Residual", "subject", "subject:eye:segment"], "{stage:?}");
+    for (g, v) in &stage {
+        let w = alone[g];
+        assert!((v - w).abs() <= 1e-6 * w.abs().max(1e-3), "{g}: stage {v}, mixed {w}");
+    }
 }
 
 #[test]

@@ -26,7 +26,7 @@ use crate::tables::write_bytes_atomic;
 use tables::{html_escape, ReportTable};
 
 /// Version of the report's layout; bump when its output changes.
-pub const VERSION: u32 = 2;
+pub const VERSION: u32 = 3;
 
 /// The cautions every report carries.
 pub const CAUTIONS: &[&str] = &[
@@ -81,7 +81,7 @@ pub fn write(inp: &Inputs, positions: &dyn Fn(usize) -> Vec<crate::run::transmis
     std::fs::create_dir_all(&tdir)?;
     let usage = tables::usage(inp.epochs, inp.images, inp.fits);
     let s = inp.study;
-    let results = vec![tables::so2_by_epoch(s, inp.stats), tables::contrasts(s, inp.stats), tables::agreement(s, inp.stats), tables::method_comparison(inp.stats)];
+    let results = vec![tables::so2_by_epoch(s, inp.stats), tables::contrasts(s, inp.stats), tables::variance_components(inp.stats), tables::agreement(s, inp.stats), tables::method_comparison(inp.stats)];
     let quality = vec![tables::accounting(s, inp.epochs, &usage), tables::data_quality(s, inp.images, inp.fits)];
     let mut written = Vec::new();
     for t in results.iter().chain(&quality) {

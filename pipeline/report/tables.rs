@@ -241,6 +241,18 @@ pub fn contrasts(study: &Study, stats: &Statistics) -> ReportTable {
     t
 }
 
+pub fn variance_components(stats: &Statistics) -> ReportTable {
+    let mut t = ReportTable::new(
+        "variance_components",
+        "Variance components of the epoch models (SO2 points): the SD of each random intercept and of the residual, with the number of levels (observations for the residual)",
+        &[("method", false), ("kind", false), ("group", false), ("levels", true), ("SD", true)],
+    );
+    for (m, k, g, n, v) in &stats.variance {
+        t.rows.push(vec![m.clone(), k.clone(), g.clone(), n.to_string(), f(v.max(0.0).sqrt(), 2)]);
+    }
+    t
+}
+
 pub fn agreement(study: &Study, stats: &Statistics) -> ReportTable {
     let level = format!("slope {:.0} % CI", study.statistics.confidence * 100.0);
     let mut t = ReportTable::new(

@@ -1,7 +1,8 @@
 //! The statistics stage, per method and vessel kind over steady captures:
 //! per subject × epoch summaries, a linear mixed model (REML) of SO2 on the
-//! epoch with random intercepts for subject, eye within subject and segment
-//! within eye, the protocol's contrasts with Satterthwaite df and Holm
+//! epoch with random intercepts for subject, session within subject (when
+//! a subject was seen in more than one session), eye within subject and
+//! segment within eye, its variance components, the protocol's contrasts with Satterthwaite df and Holm
 //! adjustment, paired differences against the baseline (paired t tests),
 //! the agreement of arteriolar SO2 with the reference SpO2 (with the slope
 //! of SO2 on SpO2, subject random intercepts), and quantities for comparing
@@ -27,6 +28,8 @@ pub struct Statistics {
     pub summaries: Vec<(String, String, String, String, i64, i64, f64, f64)>,
     /// (method, kind, test, holm p).
     pub contrasts: Vec<(String, String, Test, f64)>,
+    /// The epoch models' variance components: (method, kind, group, levels, variance); the residual as group `Residual` with the observations as levels.
+    pub variance: Vec<(String, String, String, i64, f64)>,
     /// (method, agreement, slope of SO2 on SpO2 with subject random intercepts: estimate, SE, df, lower, upper).
     pub agreement: Vec<(String, crate::stats::agreement::Agreement, Option<Test>)>,
     /// (method, kind, epoch, subjects, mean difference from baseline, SE, df, t, p).
@@ -47,8 +50,26 @@ fn term(name: &str, keys: &[String]) -> RandomTerm {
     RandomTerm { name: name.into(), levels, group, column_names: vec!["(Intercept)".into()], columns: vec![vec![1.0; keys.len()]] }
 }
 
+/// Random intercepts of the epoch model from per-observation keys (each key
+/// names its level within its parents, e.g. `V01:OD:A1`). Session and eye
+/// levels enter only when some subject has two; otherwise they duplicate
+/// the subject. Sessions are crossed with eyes and segments: the same
+/// vessels are seen on each visit.
+fn epoch_model_terms(subject: &[String], session: &[String], eye: &[String], segment: &[String]) -> Vec<RandomTerm> {
+    let mut terms = vec![term("subject", subject)];
+    let subjects = terms[0].levels.len();
+    if term("session", session).levels.len() > subjects {
+        terms.push(term("subject:session", session));
+    }
+    if term("eye", eye).levels.len() > subjects {
+        terms.push(term("subject:eye", eye));
+    }
+    terms.push(term("subject:eye:segment", segment));
+    terms
+}
+
 /// Version of this stage's computation; bump when its results change.
-pub const VERSION: u32 = 2;
+pub const VERSION: u32 = 3;
 
 /// The stage's settings: its own section of the study, the protocol's
 /// epochs and contrasts, and the method labels it groups by.
@@ -62,7 +83,7 @@ pub fn settings_key(study: &Study) -> crate::stages::key::Key {
 pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics {
     let c = &epochs.captures;
     let p = &study.protocol;
-    let mut st = Statistics { summaries: vec![], contrasts: vec![], agreement: vec![], paired: vec![], comparison: vec![], agreement_pairs: vec![], agreement_intercepts: vec![] };
+    let mut st = Statistics { summaries: vec![], contrasts: vec![], variance: vec![], agreement: vec![], paired: vec![], comparison: vec![], agreement_pairs: vec![], agreement_intercepts: vec![] };
     for m in &study.methods {
         for kind in ["arteriole", "venule"] {
             let rows: Vec<&FitRow> = fits
@@ -165,16 +186,13 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
                 match depth {
                     0 => cr.subject.clone(),
                     1 => format!("{}:{}", cr.subject, cr.eye),
-                    _ => format!("{}:{}:{}", cr.subject, cr.eye, rows[i].segment),
+                    2 => format!("{}:{}:{}", cr.subject, cr.eye, rows[i].segment),
+                    _ => format!("{}:{}", cr.subject, cr.session),
                 }
             };
-            let keys: Vec<Vec<String>> = (0..3).map(|d| (0..n).map(|i| key(i, d)).collect()).collect();
-            let mut terms = vec![term("subject", &keys[0])];
-            // An eye level only when some subject has two eyes; otherwise it duplicates the subject.
-            if term("eye", &keys[1]).levels.len() > terms[0].levels.len() {
-                terms.push(term("subject:eye", &keys[1]));
-            }
-            terms.push(term("subject:eye:segment", &keys[2]));
+            let keys: Vec<Vec<String>> = (0..4).map(|d| (0..n).map(|i| key(i, d)).collect()).collect();
+            let terms = epoch_model_terms(&keys[0], &keys[3], &keys[1], &keys[2]);
+            let levels: Vec<i64> = terms.iter().map(|t| t.levels.len() as i64).collect();
             let data = LmmData {
                 y: rows.iter().map(|r| r.so2.unwrap()).collect(),
                 x,
@@ -183,6 +201,11 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
             };
             let model = Model::new(data, Criterion::Reml);
             let Some(fit) = model.fit() else { continue };
+            let comps = model.components(&fit);
+            for ((name, _, cov), lv) in comps.terms.iter().zip(&levels) {
+                st.variance.push((m.label.clone(), kind.into(), name.clone(), *lv, cov[(0, 0)]));
+            }
+            st.variance.push((m.label.clone(), kind.into(), "Residual".into(), n as i64, comps.residual));
             let tests: Vec<Test> = p
                 .contrasts
                 .iter()
@@ -309,6 +332,15 @@ impl Statistics {
             .real("upper_95", c.iter().map(|r| r.2.upper))
             .real("p_holm", c.iter().map(|r| r.3));
         written.extend(t.write(&dir, "contrasts")?);
+        let v = &self.variance;
+        let mut t = Table::new();
+        t.text("method", v.iter().map(|r| &r.0))
+            .text("kind", v.iter().map(|r| &r.1))
+            .text("group", v.iter().map(|r| &r.2))
+            .int("levels", v.iter().map(|r| r.3))
+            .real("variance", v.iter().map(|r| r.4))
+            .real("sd", v.iter().map(|r| r.4.sqrt()));
+        written.extend(t.write(&dir, "variance_components")?);
         let a = &self.agreement;
         let mut t = Table::new();
         t.text("method", a.iter().map(|r| &r.0))
@@ -349,9 +381,34 @@ impl Statistics {
 pub fn describe(study: &Study) -> String {
     let p = &study.protocol;
     format!(
-        "Per method and vessel kind, segment SO2 of steady captures was modelled by a linear mixed model with the epoch as fixed effect (baseline `{}`) and random intercepts for subject, eye within subject and segment within eye, fitted by REML in the formulation of lme4; contrasts between epochs were tested with Satterthwaite degrees of freedom and {:.0} % confidence intervals{}. Paired t tests compared each subject's epoch means with the baseline. Agreement of capture-mean arteriolar SO2 with the reference SpO2 was summarised by bias, precision and Arms, with 95 % limits of agreement for repeated measurements per subject (Bland & Altman 2007), and by the slope of SO2 on SpO2 in a mixed model with subject random intercepts. Methods were compared on the same cohort by their within-subject repeatability, segment standard errors, spread along segments, values outside 0–100 % and agreement with one another.",
+        "Per method and vessel kind, segment SO2 of steady captures was modelled by a linear mixed model with the epoch as fixed effect (baseline `{}`) and random intercepts for subject, session within subject where a subject was seen in more than one session, eye within subject and segment within eye, fitted by REML in the formulation of lme4; contrasts between epochs were tested with Satterthwaite degrees of freedom and {:.0} % confidence intervals{}. Paired t tests compared each subject's epoch means with the baseline. Agreement of capture-mean arteriolar SO2 with the reference SpO2 was summarised by bias, precision and Arms, with 95 % limits of agreement for repeated measurements per subject (Bland & Altman 2007), and by the slope of SO2 on SpO2 in a mixed model with subject random intercepts. Methods were compared on the same cohort by their within-subject repeatability, segment standard errors, spread along segments, values outside 0–100 % and agreement with one another.",
         p.epochs[p.baseline].name,
         study.statistics.confidence * 100.0,
         if study.statistics.holm { ", p values Holm-adjusted within each method and vessel kind" } else { ", p values not adjusted for multiplicity" }
     )
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn keys(v: &[&str]) -> Vec<String> {
+        v.iter().map(|s| s.to_string()).collect()
+    }
+
+    #[test]
+    fn session_and_eye_terms_only_when_some_subject_has_two() {
+        let subject = keys(&["V01", "V01", "V02", "V02"]);
+        let one_session = keys(&["V01:s1", "V01:s1", "V02:s1", "V02:s1"]);
+        let one_eye = keys(&["V01:OD", "V01:OD", "V02:OD", "V02:OD"]);
+        let segment = keys(&["V01:OD:A1", "V01:OD:A2", "V02:OD:A1", "V02:OD:A1"]);
+        let names = |t: Vec<RandomTerm>| t.into_iter().map(|t| (t.name, t.levels.len())).collect::<Vec<_>>();
+        assert_eq!(names(epoch_model_terms(&subject, &one_session, &one_eye, &segment)), [("subject".to_string(), 2), ("subject:eye:segment".to_string(), 3)]);
+        let two_sessions = keys(&["V01:s1", "V01:s2", "V02:s1", "V02:s1"]);
+        let two_eyes = keys(&["V01:OD", "V01:OD", "V02:OD", "V02:OS"]);
+        assert_eq!(
+            names(epoch_model_terms(&subject, &two_sessions, &two_eyes, &segment)),
+            [("subject".to_string(), 2), ("subject:session".to_string(), 3), ("subject:eye".to_string(), 3), ("subject:eye:segment".to_string(), 3)]
+        );
+    }
 }
