@@ -1,6 +1,7 @@
 //! Live cross-check against R's lme4 and lmerTest on random designs
 //! (balanced, unbalanced, and one whose eye-level variance is on the
-//! boundary). `.ci/run` installs the Debian packages `r-base-core
+//! boundary), and on the statistics stage's epoch model with sessions
+//! crossed with segments. `.ci/run` installs the Debian packages `r-base-core
 //! r-cran-lme4 r-cran-lmertest`; without R the test fails in CI and is
 //! skipped, with a message, elsewhere.
 
@@ -20,7 +21,7 @@ suppressMessages({library(lme4); library(lmerTest)})
 args <- commandArgs(trailingOnly = TRUE)
 d <- read.csv(args[1])
 d$epoch <- factor(d$epoch)
-m <- lmer(so2 ~ epoch + (1 | subject) + (1 | subject:eye), data = d, REML = TRUE,
+m <- lmer(as.formula(args[2]), data = d, REML = TRUE,
           control = lmerControl(optimizer = "bobyqa", optCtrl = list(rhobeg = 0.2, rhoend = 1e-10)))
 co <- summary(m)$coefficients
 for (i in seq_len(nrow(co))) cat(sprintf("fixed %d %.12g %.12g %.12g\n", i, co[i, 1], co[i, 2], co[i, 3]))
@@ -50,68 +51,116 @@ fn simulate(seed: u64, sd_eye: f64, drop: f64) -> String {
     out
 }
 
-#[test]
-fn lme4_and_lmertest_agree_on_random_designs() {
+/// Without R: skipped with a message outside CI, a failure in CI.
+fn r_available() -> bool {
     if Command::new("Rscript").arg("--version").output().is_err() {
         assert!(std::env::var_os("CI").is_none(), "R is needed for this test in CI; .ci/run installs it");
         eprintln!("Rscript not found: live lme4 cross-check skipped (install r-base-core r-cran-lme4 r-cran-lmertest)");
+        return false;
+    }
+    true
+}
+
+/// Fits `formula` in R and the same model (`random` terms) here, and
+/// compares criterion, fixed effects (estimate, SE, Satterthwaite df) and
+/// variance components.
+fn compare(dir: &std::path::Path, name: &str, data: &str, formula: &str, random: &[&str]) {
+    let script = dir.join("fit.R");
+    std::fs::write(&script, SCRIPT).unwrap();
+    let csv = dir.join(format!("{name}.csv"));
+    std::fs::write(&csv, data).unwrap();
+    let out = Command::new("Rscript").arg(&script).arg(&csv).arg(formula).output().unwrap();
+    assert!(out.status.success(), "R failed: {}", String::from_utf8_lossy(&out.stderr));
+    let text = String::from_utf8_lossy(&out.stdout).into_owned();
+    let mut fixed = Vec::new();
+    let mut vc = HashMap::new();
+    let mut crit = f64::NAN;
+    for l in text.lines() {
+        let f: Vec<&str> = l.split_whitespace().collect();
+        match f[0] {
+            "fixed" => fixed.push((f[2].parse::<f64>().unwrap(), f[3].parse::<f64>().unwrap(), f[4].parse::<f64>().unwrap())),
+            "vc" => {
+                vc.insert(f[1].to_string(), f[2].parse::<f64>().unwrap());
+            }
+            "criterion" => crit = f[1].parse().unwrap(),
+            _ => {}
+        }
+    }
+    let mut fnd = Findings::new();
+    let t = read_csv(&csv, &mut fnd).unwrap();
+    let spec = Spec {
+        response: "so2".into(),
+        fixed: vec!["epoch".into()],
+        random: random.iter().map(|r| RandomSpec::parse(r).unwrap()).collect(),
+        reference: vec![],
+    };
+    let d = build(&t, &csv, &spec, &mut fnd).unwrap();
+    let m = Model::new(d.data, Criterion::Reml);
+    let fit = m.fit().unwrap();
+    let rel = |a: f64, b: f64| ((a - b) / b).abs();
+    assert!(rel(fit.deviance, crit) < 1e-6, "{name}: criterion {} vs {crit}", fit.deviance);
+    for (k, (est, se, df)) in fixed.iter().enumerate() {
+        let mut l = vec![0.0; fixed.len()];
+        l[k] = 1.0;
+        let c = contrast(&m, &fit, "", &l);
+        assert!(rel(c.estimate, *est) < 1e-6, "{name}: estimate {k} {} vs {est}", c.estimate);
+        assert!(rel(c.std_error, *se) < 1e-4, "{name}: SE {k} {} vs {se}", c.std_error);
+        assert!(rel(c.df, *df) < 1e-3, "{name}: df {k} {} vs {df}", c.df);
+    }
+    let comps = m.components(&fit);
+    let ours: HashMap<String, f64> = comps.terms.iter().map(|(n, _, c)| (n.clone(), c[(0, 0)])).chain([("Residual".to_string(), comps.residual)]).collect();
+    for (g, v) in &vc {
+        let o = ours[g];
+        // A variance on the boundary: lme4 reports 0 (or nearly); so must we.
+        if *v < 1e-6 * comps.residual {
+            assert!(o < 1e-6 * comps.residual, "{name}: {g} variance {o} where lme4 has {v}");
+        } else {
+            assert!(rel(o, *v) < 1e-4, "{name}: {g} variance {o} vs {v}");
+        }
+    }
+    eprintln!("{name}: agrees with lme4/lmerTest (criterion {crit:.6}, variances {vc:?})");
+}
+
+#[test]
+fn lme4_and_lmertest_agree_on_random_designs() {
+    if !r_available() {
         return;
     }
     let dir = tempfile::tempdir().unwrap();
-    let script = dir.path().join("fit.R");
-    std::fs::write(&script, SCRIPT).unwrap();
     for (name, seed, sd_eye, drop) in [("balanced", 11, 2.0, 0.0), ("unbalanced", 12, 2.0, 0.15), ("boundary", 13, 0.0, 0.0)] {
-        let csv = dir.path().join(format!("{name}.csv"));
-        std::fs::write(&csv, simulate(seed, sd_eye, drop)).unwrap();
-        let out = Command::new("Rscript").arg(&script).arg(&csv).output().unwrap();
-        assert!(out.status.success(), "R failed: {}", String::from_utf8_lossy(&out.stderr));
-        let text = String::from_utf8_lossy(&out.stdout).into_owned();
-        let mut fixed = Vec::new();
-        let mut vc = HashMap::new();
-        let mut crit = f64::NAN;
-        for l in text.lines() {
-            let f: Vec<&str> = l.split_whitespace().collect();
-            match f[0] {
-                "fixed" => fixed.push((f[2].parse::<f64>().unwrap(), f[3].parse::<f64>().unwrap(), f[4].parse::<f64>().unwrap())),
-                "vc" => {
-                    vc.insert(f[1].to_string(), f[2].parse::<f64>().unwrap());
-                }
-                "criterion" => crit = f[1].parse().unwrap(),
-                _ => {}
-            }
-        }
-        let mut fnd = Findings::new();
-        let t = read_csv(&csv, &mut fnd).unwrap();
-        let spec = Spec {
-            response: "so2".into(),
-            fixed: vec!["epoch".into()],
-            random: vec![RandomSpec::parse("subject").unwrap(), RandomSpec::parse("subject:eye").unwrap()],
-            reference: vec![],
-        };
-        let d = build(&t, &csv, &spec, &mut fnd).unwrap();
-        let m = Model::new(d.data, Criterion::Reml);
-        let fit = m.fit().unwrap();
-        let rel = |a: f64, b: f64| ((a - b) / b).abs();
-        assert!(rel(fit.deviance, crit) < 1e-6, "{name}: criterion {} vs {crit}", fit.deviance);
-        for (k, (est, se, df)) in fixed.iter().enumerate() {
-            let mut l = vec![0.0; fixed.len()];
-            l[k] = 1.0;
-            let c = contrast(&m, &fit, "", &l);
-            assert!(rel(c.estimate, *est) < 1e-6, "{name}: estimate {k} {} vs {est}", c.estimate);
-            assert!(rel(c.std_error, *se) < 1e-4, "{name}: SE {k} {} vs {se}", c.std_error);
-            assert!(rel(c.df, *df) < 1e-3, "{name}: df {k} {} vs {df}", c.df);
-        }
-        let comps = m.components(&fit);
-        let ours: HashMap<String, f64> = comps.terms.iter().map(|(n, _, c)| (n.clone(), c[(0, 0)])).chain([("Residual".to_string(), comps.residual)]).collect();
-        for (g, v) in &vc {
-            let o = ours[g];
-            // A variance on the boundary: lme4 reports 0 (or nearly); so must we.
-            if *v < 1e-6 * comps.residual {
-                assert!(o < 1e-6 * comps.residual, "{name}: {g} variance {o} where lme4 has {v}");
-            } else {
-                assert!(rel(o, *v) < 1e-4, "{name}: {g} variance {o} vs {v}");
-            }
-        }
-        eprintln!("{name}: agrees with lme4/lmerTest (criterion {crit:.6}, variances {vc:?})");
+        compare(dir.path(), name, &simulate(seed, sd_eye, drop), "so2 ~ epoch + (1 | subject) + (1 | subject:eye)", &["subject", "subject:eye"]);
     }
+}
+
+/// Two sessions per subject, three segments seen in both: the random
+/// intercepts the statistics stage uses when subjects come back
+/// (`run::statistics`), session crossed with segment.
+#[test]
+fn lme4_agrees_on_the_epoch_model_with_sessions() {
+    if !r_available() {
+        return;
+    }
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(21);
+    let n = |s: f64| Normal::new(0.0, s).unwrap();
+    let mut data = String::from("subject,session,eye,segment,epoch,so2\n");
+    for s in 0..10 {
+        let us = n(3.0).sample(&mut rng);
+        let useg: Vec<f64> = (0..3).map(|_| n(2.0).sample(&mut rng)).collect();
+        for session in ["s1", "s2"] {
+            let uss = n(1.5).sample(&mut rng);
+            for (e, eff) in [("air", 0.0), ("low", -8.0), ("recovery", -0.5)] {
+                for (g, ug) in useg.iter().enumerate() {
+                    for _ in 0..2 {
+                        if rng.random::<f64>() < 0.1 {
+                            continue;
+                        }
+                        let y = 95.0 + eff + us + uss + ug + n(2.0).sample(&mut rng);
+                        data.push_str(&format!("S{s:02},{session},OD,A{g},{e},{y:.4}\n"));
+                    }
+                }
+            }
+        }
+    }
+    let dir = tempfile::tempdir().unwrap();
+    compare(dir.path(), "sessions", &data, "so2 ~ epoch + (1 | subject) + (1 | subject:session) + (1 | subject:eye:segment)", &["subject", "subject:session", "subject:eye:segment"]);
 }
