@@ -277,6 +277,14 @@ fn sensitivity_writes_its_table_and_figure() {
     let out = satstep(dir.path(), &["sensitivity", study.to_str().unwrap(), "--bands", "b548,b570,b600"]);
     assert_eq!(out.code, 1);
     assert!(out.stderr.contains("`--bands` selects 3 bands; `multiband` needs at least 4"), "{}", out.stderr);
+    // An operating point the model cannot describe is refused, naming the option.
+    for (args, says) in [(&["--so2", "150"][..], "`--so2` is 150; give a value from 0 to 100 percent"), (&["--double-pass", "1.2"][..], "`--double-pass` is 1.2"), (&["--hb", "nan"][..], "`--hb` is NaN"), (&["--diameter=-5"][..], "`--diameter` is -5")] {
+        let mut a = vec!["sensitivity", study.to_str().unwrap()];
+        a.extend(args);
+        let out = satstep(dir.path(), &a);
+        assert_eq!(out.code, 1, "{args:?}: {}", out.stderr);
+        assert!(out.stderr.contains(says), "{args:?}: {}", out.stderr);
+    }
     // An instrument with too few bands is refused with a reason.
     write(dir.path(), "two.yaml", "name: two\npixel_size_um: 10\nbands:\n  - {name: a, centre_nm: 570, fwhm_nm: 10}\n  - {name: b, centre_nm: 600, fwhm_nm: 10}\n");
     let out = satstep(dir.path(), &["sensitivity", "two.yaml"]);

@@ -42,6 +42,19 @@ pub fn load_instrument(path: &Path) -> Result<Instrument, Findings> {
 /// `only`: band names to keep (all the instrument's bands when empty), so
 /// that candidate band sets can be compared before a study.
 pub fn sensitivity(file: &Path, op: &OperatingPoint, unknowns: Unknowns, only: &[String], out: &Path, printer: &Printer) -> Result<Exit> {
+    // The operating point must be one the model can describe.
+    let checks = [
+        ("--so2", op.so2 * 100.0, 0.0, 100.0, "percent"),
+        ("--diameter", op.diameter_um, 5.0, 500.0, "µm"),
+        ("--hb", op.hb_g_per_l, 20.0, 400.0, "g/L"),
+        ("--double-pass", op.double_pass, 0.0, 0.96, "(with the 4 % blood backscatter, the paths sum to one)"),
+    ];
+    for (name, v, lo, hi, unit) in checks {
+        if !(lo..=hi).contains(&v) {
+            printer.error(format!("`{name}` is {v}; give a value from {lo} to {hi} {unit}"));
+            return Ok(Exit::Problem);
+        }
+    }
     let inst = match load_instrument(file) {
         Ok(i) => i,
         Err(f) => {
