@@ -203,3 +203,41 @@ fn one_broken_capture_does_not_stop_the_study() {
     let manifest = std::fs::read_to_string(a.join("results/manifest.json")).unwrap();
     assert!(manifest.contains("\"error\": 1"), "{manifest}");
 }
+
+/// A subject who comes back for a second visit: the visit is analysed as a
+/// second session (same eye and vessels, a day later) and the epoch models
+/// gain a session-within-subject intercept; subjects seen once add none.
+#[test]
+fn a_second_visit_is_a_session_level_in_the_epoch_model() {
+    let dir = tempfile::tempdir().unwrap();
+    let s = simulated(dir.path(), "tests/fixtures/runner-scenario.yaml", "s");
+    // The second visit: the first one's captures and log, a week later.
+    let (day1, day2) = ("2026-05-04", "2026-05-11");
+    let (v1, v2) = (s.join("subjects/V01"), s.join("subjects/V01-visit2"));
+    std::fs::create_dir_all(v2.join("captures")).unwrap();
+    for f in std::fs::read_dir(v1.join("captures")).unwrap().map(Result::unwrap) {
+        std::fs::copy(f.path(), v2.join("captures").join(f.file_name())).unwrap();
+    }
+    for f in ["captures.csv", "spo2.csv"] {
+        let text = std::fs::read_to_string(v1.join(f)).unwrap();
+        assert!(text.contains(day1));
+        std::fs::write(v2.join(f), text.replace(day1, day2)).unwrap();
+    }
+    let study = std::fs::read_to_string(s.join("study.yaml")).unwrap();
+    let start = study.find("  - id: V01\n").unwrap();
+    let first = start + study[start..].find("      - id: s1\n").unwrap();
+    let end = first + study[first..].find("segments-OD.yaml}\n").unwrap() + "segments-OD.yaml}\n".len();
+    let visit = study[first..end].replace("id: s1", "id: s2").replace(day1, day2).replace("subjects/V01/captures.csv", "subjects/V01-visit2/captures.csv").replace("subjects/V01/spo2.csv", "subjects/V01-visit2/spo2.csv");
+    std::fs::write(s.join("study.yaml"), format!("{}{visit}{}", &study[..end], &study[end..])).unwrap();
+    let o = satstep(dir.path(), &["run", s.to_str().unwrap()]);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let fits = std::fs::read_to_string(s.join("results/fits/so2.csv")).unwrap();
+    assert!(fits.lines().any(|l| l.starts_with("V01,s2,OD,")), "the second visit is analysed");
+    let vc = std::fs::read_to_string(s.join("results/statistics/variance_components.csv")).unwrap();
+    let rows: Vec<Vec<&str>> = vc.lines().skip(1).map(|l| l.split(',').collect()).collect();
+    let sessions: Vec<&Vec<&str>> = rows.iter().filter(|r| r[2] == "subject:session").collect();
+    let models = rows.iter().filter(|r| r[2] == "subject").count();
+    assert!(models > 0 && sessions.len() == models, "one session term per epoch model: {vc}");
+    // Three subjects, one of them seen twice: four sessions.
+    assert!(sessions.iter().all(|r| r[3] == "4" && r[4].parse::<f64>().unwrap() >= 0.0), "{vc}");
+}
