@@ -13,6 +13,7 @@ use std::path::Path;
 
 use anyhow::Result;
 use nalgebra::DMatrix;
+use rayon::prelude::*;
 
 use crate::config::study::Study;
 use crate::run::epochs::EpochTables;
@@ -22,7 +23,7 @@ use crate::stats::infer::{contrast_at, holm, Test};
 use crate::stats::lmm::{Criterion, LmmData, Model, RandomTerm};
 use crate::tables::Table;
 
-#[derive(serde::Serialize, serde::Deserialize)]
+#[derive(Default, serde::Serialize, serde::Deserialize)]
 pub struct Statistics {
     /// (method, kind, subject, epoch, captures, segments, mean, sd).
     pub summaries: Vec<(String, String, String, String, i64, i64, f64, f64)>,
@@ -40,6 +41,20 @@ pub struct Statistics {
     pub agreement_pairs: Vec<(String, String, f64, f64)>,
     /// (method, intercept) of the fitted line of SO2 on SpO2.
     pub agreement_intercepts: Vec<(String, f64)>,
+}
+
+impl Statistics {
+    /// Adds another part's rows after this one's.
+    fn append(&mut self, other: Statistics) {
+        self.summaries.extend(other.summaries);
+        self.contrasts.extend(other.contrasts);
+        self.variance.extend(other.variance);
+        self.agreement.extend(other.agreement);
+        self.paired.extend(other.paired);
+        self.comparison.extend(other.comparison);
+        self.agreement_pairs.extend(other.agreement_pairs);
+        self.agreement_intercepts.extend(other.agreement_intercepts);
+    }
 }
 
 fn term(name: &str, keys: &[String]) -> RandomTerm {
@@ -83,9 +98,15 @@ pub fn settings_key(study: &Study) -> crate::stages::key::Key {
 pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics {
     let c = &epochs.captures;
     let p = &study.protocol;
-    let mut st = Statistics { summaries: vec![], contrasts: vec![], variance: vec![], agreement: vec![], paired: vec![], comparison: vec![], agreement_pairs: vec![], agreement_intercepts: vec![] };
-    for m in &study.methods {
-        for kind in ["arteriole", "venule"] {
+    let mut st = Statistics::default();
+    // Each method and vessel kind is modelled on its own, in parallel; the
+    // parts are joined in the study's order, so the result does not depend
+    // on the number of threads.
+    let pairs: Vec<(&crate::config::study::Method, &str)> = study.methods.iter().flat_map(|m| [(m, "arteriole"), (m, "venule")]).collect();
+    let parts: Vec<Statistics> = pairs
+        .par_iter()
+        .map(|&(m, kind)| {
+            let mut st = Statistics::default();
             let rows: Vec<&FitRow> = fits
                 .iter()
                 .filter(|r| r.method == m.label && r.kind == kind && c[r.capture_index].status == "steady" && r.so2.is_some_and(f64::is_finite))
@@ -170,7 +191,7 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
             // Mixed model with the epochs present; the baseline is the reference.
             let present: Vec<usize> = (0..p.epochs.len()).filter(|e| rows.iter().any(|r| c[r.capture_index].epoch.as_deref() == Some(p.epochs[*e].name.as_str()))).collect();
             if rows.len() < 10 || !present.contains(&p.baseline) || present.len() < 2 {
-                continue;
+                return st;
             }
             let others: Vec<usize> = present.iter().copied().filter(|e| *e != p.baseline).collect();
             let n = rows.len();
@@ -200,7 +221,7 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
                 terms,
             };
             let model = Model::new(data, Criterion::Reml);
-            let Some(fit) = model.fit() else { continue };
+            let Some(fit) = model.fit() else { return st };
             let comps = model.components(&fit);
             for ((name, _, cov), lv) in comps.terms.iter().zip(&levels) {
                 st.variance.push((m.label.clone(), kind.into(), name.clone(), *lv, cov[(0, 0)]));
@@ -253,7 +274,11 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
                     st.agreement_pairs.extend(pairs.iter().map(|(s, so2, spo2)| (m.label.clone(), s.clone(), *so2, *spo2)));
                 }
             }
-        }
+            st
+        })
+        .collect();
+    for part in parts {
+        st.append(part);
     }
     // Arteriovenous difference per method, subject and epoch: per capture
     // the mean arteriolar minus the mean venular SO2, then over captures.
