@@ -124,8 +124,17 @@ fn read_parquet(path: &Path, findings: &mut Findings) -> Option<CsvTable> {
     };
     let header: Vec<String> = header.iter().map(|n| n.trim().to_string()).collect();
     let height = cells.first().map_or(0, Vec::len);
-    let rows = (0..height).map(|r| CsvRow { line: r + 2, fields: cells.iter().enumerate().map(|(c, col)| (col[r].trim().to_string(), c + 1)).collect() }).collect();
+    // Column-major cells are moved, not copied, into rows: the table may be large.
+    let mut columns: Vec<std::vec::IntoIter<String>> = cells.into_iter().map(Vec::into_iter).collect();
+    let rows = (0..height)
+        .map(|r| CsvRow { line: r + 2, fields: columns.iter_mut().enumerate().map(|(c, col)| (trimmed(col.next().unwrap_or_default()), c + 1)).collect() })
+        .collect();
     Some(CsvTable { header, rows })
+}
+
+/// The text without surrounding blanks, reusing its buffer when it has none.
+fn trimmed(s: String) -> String {
+    if s.trim().len() == s.len() { s } else { s.trim().to_string() }
 }
 
 /// 1-based character columns at which the fields of the line starting at

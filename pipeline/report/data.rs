@@ -6,7 +6,7 @@
 use std::collections::BTreeMap;
 
 use crate::config::diag::Findings;
-use crate::config::study::{MethodKind, Study};
+use crate::config::study::{Instrument, MethodKind, Study};
 use crate::oximetry::bands::SampledBand;
 use crate::oximetry::odr::segment_odr;
 use crate::oximetry::pointwise::fit_position;
@@ -80,6 +80,8 @@ pub type SensitivityRow = (f64, Vec<f64>, f64);
 
 pub struct SensitivityCurves {
     pub names: Vec<String>,
+    /// Each band's response-weighted centre, nm.
+    pub centres_nm: Vec<f64>,
     pub method: &'static str,
     /// Per [`Weights::ALL`], the rows for k = 0, 0.1, …, 0.9.
     pub rows: Vec<(Weights, Vec<SensitivityRow>)>,
@@ -259,8 +261,13 @@ fn along_segment(study: &Study, epochs: &EpochTables, positions: &dyn Fn(usize) 
 /// The default operating point of `satstep sensitivity`.
 pub const OPERATING_POINT: OperatingPoint = OperatingPoint { so2: 0.95, diameter_um: 120.0, hb_g_per_l: 150.0, double_pass: 0.3 };
 
-pub fn sensitivity_curves(bands: &[SampledBand], names: &[String], op: &OperatingPoint, unknowns: Unknowns) -> Option<SensitivityCurves> {
-    let model = crate::oximetry::model::VesselModel::new(bands, |_| 1.0, 0.04);
+/// Sensitivity curves for the instrument's bands `selected` (indices in
+/// the instrument's order).
+pub fn sensitivity_curves(instrument: &Instrument, selected: &[usize], op: &OperatingPoint, unknowns: Unknowns) -> Option<SensitivityCurves> {
+    let bands: Vec<SampledBand> = selected.iter().map(|b| SampledBand::from_response(&instrument.bands[*b].response)).collect();
+    let names = selected.iter().map(|b| instrument.bands[*b].name.clone()).collect();
+    let centres_nm = bands.iter().map(SampledBand::centroid_nm).collect();
+    let model = crate::oximetry::model::VesselModel::new(&bands, |_| 1.0, 0.04);
     let rows = Weights::ALL
         .iter()
         .map(|w| {
@@ -273,7 +280,7 @@ pub fn sensitivity_curves(bands: &[SampledBand], names: &[String], op: &Operatin
                 .map(|r| (*w, r))
         })
         .collect::<Option<Vec<_>>>()?;
-    Some(SensitivityCurves { names: names.to_vec(), method: unknowns.method(), rows, so2: op.so2, diameter_um: op.diameter_um })
+    Some(SensitivityCurves { names, centres_nm, method: unknowns.method(), rows, so2: op.so2, diameter_um: op.diameter_um })
 }
 
 /// The instrument's sensitivity for the bands and unknowns of the report's
@@ -287,7 +294,5 @@ fn sensitivity(study: &Study) -> Option<SensitivityCurves> {
     if selected.len() < 4 {
         return None;
     }
-    let bands: Vec<SampledBand> = selected.iter().map(|b| SampledBand::from_response(&study.instrument.bands[*b].response)).collect();
-    let names: Vec<String> = selected.iter().map(|b| study.instrument.bands[*b].name.clone()).collect();
-    sensitivity_curves(&bands, &names, &OPERATING_POINT, unknowns)
+    sensitivity_curves(&study.instrument, &selected, &OPERATING_POINT, unknowns)
 }

@@ -15,7 +15,6 @@ use crate::cli::Exit;
 use crate::config::diag::Findings;
 use crate::config::read::Reader;
 use crate::config::study::Instrument;
-use crate::oximetry::bands::SampledBand;
 use crate::oximetry::sensitivity::{OperatingPoint, Unknowns, Weights};
 use crate::tables::Table;
 
@@ -84,9 +83,7 @@ pub fn sensitivity(file: &Path, op: &OperatingPoint, unknowns: Unknowns, only: &
         printer.error(format!("{what} {} bands; `{}` needs at least 4", chosen.len(), unknowns.method()));
         return Ok(Exit::Problem);
     }
-    let bands: Vec<SampledBand> = chosen.iter().map(|b| SampledBand::from_response(&inst.bands[*b].response)).collect();
-    let names: Vec<String> = chosen.iter().map(|b| inst.bands[*b].name.clone()).collect();
-    let Some(curves) = crate::report::data::sensitivity_curves(&bands, &names, op, unknowns) else {
+    let Some(curves) = crate::report::data::sensitivity_curves(&inst, &chosen, op, unknowns) else {
         printer.error("the model cannot be linearised at some veil between 0 and 0.9: the bands do not separate the unknowns");
         return Ok(Exit::Problem);
     };
@@ -96,8 +93,8 @@ pub fn sensitivity(file: &Path, op: &OperatingPoint, unknowns: Unknowns, only: &
             for (b, e) in per.iter().enumerate().map(|(b, e)| (Some(b), *e)).chain([(None, *all)]) {
                 tw.push(w.name().to_string());
                 tk.push(*k);
-                tb.push(b.map_or_else(|| "all bands".to_string(), |b| names[b].clone()));
-                tc.push(b.map(|b| (bands[b].centroid_nm() * 100.0).round() / 100.0));
+                tb.push(b.map_or_else(|| "all bands".to_string(), |b| curves.names[b].clone()));
+                tc.push(b.map(|b| (curves.centres_nm[b] * 100.0).round() / 100.0));
                 te.push(e);
             }
         }
@@ -122,7 +119,7 @@ pub fn sensitivity(file: &Path, op: &OperatingPoint, unknowns: Unknowns, only: &
             Weights::Held => "\nveil-free band combination held (the veil changes the data only)\n",
         });
         s.push_str(&format!("{:>5}", "veil"));
-        for n in &names {
+        for n in &curves.names {
             s.push_str(&format!(" {n:>8}"));
         }
         s.push_str(&format!(" {:>9}\n", "all bands"));
@@ -138,4 +135,3 @@ pub fn sensitivity(file: &Path, op: &OperatingPoint, unknowns: Unknowns, only: &
     printer.info(format!("wrote `sensitivity.csv`, `.parquet`, `.svg` and `.png` under `{}`", out.display()));
     Ok(Exit::Ok)
 }
-

@@ -2,11 +2,12 @@
 //! per subject × epoch summaries, a linear mixed model (REML) of SO2 on the
 //! epoch with random intercepts for subject, session within subject (when
 //! a subject was seen in more than one session), eye within subject and
-//! segment within eye, its variance components, the protocol's contrasts with Satterthwaite df and Holm
-//! adjustment, paired differences against the baseline (paired t tests),
-//! the agreement of arteriolar SO2 with the reference SpO2 (with the slope
-//! of SO2 on SpO2, subject random intercepts), and quantities for comparing
-//! the methods on the same cohort.
+//! segment within eye, its variance components, the protocol's contrasts
+//! with Satterthwaite df and Holm adjustment, paired differences against
+//! the baseline (paired t tests), the agreement of arteriolar SO2 with the
+//! reference SpO2 (with the slope of SO2 on SpO2, subject random
+//! intercepts), and quantities for comparing the methods on the same
+//! cohort.
 
 use std::collections::BTreeMap;
 use std::path::Path;
