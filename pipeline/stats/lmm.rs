@@ -68,18 +68,37 @@ pub enum Criterion {
     Ml,
 }
 
-/// Cross-products computed once per data set.
-struct Cross {
+/// Cross-products of one independent block of random effects: the levels
+/// that share observations, directly or through a chain of them. Random
+/// effects of different blocks never meet in an observation, so `Z'Z` and
+/// with it `Λ'Z'ZΛ + I` are block diagonal and factorised block by block.
+/// In the nested designs of a study (everything within a subject) a block
+/// is one subject's effects, and the cost is linear in the subjects rather
+/// than cubic in all levels.
+struct Block {
     ztz: DMatrix<f64>,
     ztx: DMatrix<f64>,
     zty: DVector<f64>,
+    /// For each local Z column: (term, start of its coefficient block, size), local positions.
+    block_of: Vec<(usize, usize, usize)>,
+}
+
+/// Cross-products computed once per data set.
+struct Cross {
+    blocks: Vec<Block>,
     xtx: DMatrix<f64>,
     xty: DVector<f64>,
     yty: f64,
     n: usize,
     p: usize,
-    /// For each Z column: (term, position of its block start, size of the block).
-    block_of: Vec<(usize, usize, usize)>,
+}
+
+fn find(parent: &mut [usize], mut i: usize) -> usize {
+    while parent[i] != i {
+        parent[i] = parent[parent[i]];
+        i = parent[i];
+    }
+    i
 }
 
 /// Everything computed at one θ.
@@ -141,11 +160,7 @@ impl Model {
             }
             off += t.q();
         }
-        let mut ztz = DMatrix::zeros(q, q);
-        let mut ztx = DMatrix::zeros(q, p);
-        let mut zty = DVector::zeros(q);
-        let mut nz: Vec<(usize, f64)> = Vec::new();
-        for i in 0..n {
+        let nonzeros = |i: usize, nz: &mut Vec<(usize, f64)>| {
             nz.clear();
             for (ti, t) in data.terms.iter().enumerate() {
                 let base = offsets[ti] + t.group[i] * t.p();
@@ -153,28 +168,68 @@ impl Model {
                     nz.push((base + c, t.columns[c][i]));
                 }
             }
+        };
+        // Independent blocks: union of the effects each observation touches
+        // (and of each level's own coefficients).
+        let mut parent: Vec<usize> = (0..q).collect();
+        let mut nz: Vec<(usize, f64)> = Vec::new();
+        let union = |parent: &mut Vec<usize>, a: usize, b: usize| {
+            let (ra, rb) = (find(parent, a), find(parent, b));
+            if ra != rb {
+                parent[ra.max(rb)] = ra.min(rb);
+            }
+        };
+        for (j, &(_, start, _)) in block_of.iter().enumerate() {
+            union(&mut parent, j, start);
+        }
+        for i in 0..n {
+            nonzeros(i, &mut nz);
+            for w in nz.windows(2) {
+                union(&mut parent, w[0].0, w[1].0);
+            }
+        }
+        let mut root_block = vec![usize::MAX; q];
+        let mut local = vec![0usize; q];
+        let mut which = vec![0usize; q];
+        let mut members: Vec<Vec<usize>> = Vec::new();
+        for j in 0..q {
+            let r = find(&mut parent, j);
+            if root_block[r] == usize::MAX {
+                root_block[r] = members.len();
+                members.push(Vec::new());
+            }
+            let b = root_block[r];
+            which[j] = b;
+            local[j] = members[b].len();
+            members[b].push(j);
+        }
+        let mut blocks: Vec<Block> = members
+            .iter()
+            .map(|m| Block {
+                ztz: DMatrix::zeros(m.len(), m.len()),
+                ztx: DMatrix::zeros(m.len(), p),
+                zty: DVector::zeros(m.len()),
+                // A level's coefficients are contiguous globally and all in this block, so they stay contiguous locally.
+                block_of: m.iter().map(|&j| (block_of[j].0, local[block_of[j].1], block_of[j].2)).collect(),
+            })
+            .collect();
+        for i in 0..n {
+            nonzeros(i, &mut nz);
+            let Some(&(first, _)) = nz.first() else { continue };
+            let blk = &mut blocks[which[first]];
             for &(a, va) in &nz {
+                let la = local[a];
                 for &(b, vb) in &nz {
-                    ztz[(a, b)] += va * vb;
+                    blk.ztz[(la, local[b])] += va * vb;
                 }
                 for k in 0..p {
-                    ztx[(a, k)] += va * data.x[(i, k)];
+                    blk.ztx[(la, k)] += va * data.x[(i, k)];
                 }
-                zty[a] += va * data.y[i];
+                blk.zty[la] += va * data.y[i];
             }
         }
         let y = DVector::from_column_slice(&data.y);
-        let cross = Cross {
-            xtx: data.x.transpose() * &data.x,
-            xty: data.x.transpose() * &y,
-            yty: y.norm_squared(),
-            ztz,
-            ztx,
-            zty,
-            n,
-            p,
-            block_of,
-        };
+        let cross = Cross { xtx: data.x.transpose() * &data.x, xty: data.x.transpose() * &y, yty: y.norm_squared(), blocks, n, p };
         Model { data, cross, criterion }
     }
 
@@ -221,68 +276,68 @@ impl Model {
 
     fn at(&self, theta: &[f64]) -> Option<AtTheta> {
         let cr = &self.cross;
-        let q = cr.ztz.nrows();
         let lam = self.factors(theta);
-        // Λ entry (row k, column j): nonzero only within a block.
-        let lam_entry = |k: usize, j: usize| -> f64 {
-            let (t, start, size) = cr.block_of[j];
-            if k < start || k >= start + size {
-                return 0.0;
-            }
-            lam[t][(k - start, j - start)]
-        };
-        // B = Z'Z Λ, then M = Λ' B + I, in O(q²·p).
-        let mut b: DMatrix<f64> = DMatrix::zeros(q, q);
-        for j in 0..q {
-            let (_, start, size) = cr.block_of[j];
-            for k in start..start + size {
-                let l = lam_entry(k, j);
-                if l != 0.0 {
-                    for i in 0..q {
-                        b[(i, j)] += cr.ztz[(i, k)] * l;
+        let mut logdet_l = 0.0;
+        let mut rzx_t_rzx: DMatrix<f64> = DMatrix::zeros(cr.p, cr.p);
+        let mut rzx_t_cu: DVector<f64> = DVector::zeros(cr.p);
+        let mut cu2 = 0.0;
+        for blk in &cr.blocks {
+            let q = blk.ztz.nrows();
+            // Λ entry (row k, column j): nonzero only within a level's coefficients.
+            let lam_entry = |k: usize, j: usize| -> f64 {
+                let (t, start, size) = blk.block_of[j];
+                if k < start || k >= start + size {
+                    return 0.0;
+                }
+                lam[t][(k - start, j - start)]
+            };
+            // B = Z'Z Λ, then M = Λ' B + I, in O(q²·p).
+            let mut b: DMatrix<f64> = DMatrix::zeros(q, q);
+            for j in 0..q {
+                let (_, start, size) = blk.block_of[j];
+                for k in start..start + size {
+                    let l = lam_entry(k, j);
+                    if l != 0.0 {
+                        for i in 0..q {
+                            b[(i, j)] += blk.ztz[(i, k)] * l;
+                        }
                     }
                 }
             }
-        }
-        let mut m: DMatrix<f64> = DMatrix::identity(q, q);
-        for i in 0..q {
-            let (_, start, size) = cr.block_of[i];
-            for k in start..start + size {
-                let l = lam_entry(k, i);
-                if l != 0.0 {
-                    for j in 0..q {
-                        m[(i, j)] += l * b[(k, j)];
+            let mut m: DMatrix<f64> = DMatrix::identity(q, q);
+            let mut lztx: DMatrix<f64> = DMatrix::zeros(q, cr.p);
+            let mut lzty: DVector<f64> = DVector::zeros(q);
+            for i in 0..q {
+                let (_, start, size) = blk.block_of[i];
+                for k in start..start + size {
+                    let l = lam_entry(k, i);
+                    if l != 0.0 {
+                        for j in 0..q {
+                            m[(i, j)] += l * b[(k, j)];
+                        }
+                        for c in 0..cr.p {
+                            lztx[(i, c)] += l * blk.ztx[(k, c)];
+                        }
+                        lzty[i] += l * blk.zty[k];
                     }
                 }
             }
+            let chol = m.cholesky()?;
+            let l = chol.l();
+            logdet_l += 2.0 * l.diagonal().iter().map(|d: &f64| d.ln()).sum::<f64>();
+            let rzx = l.solve_lower_triangular(&lztx)?;
+            let cu = l.solve_lower_triangular(&lzty)?;
+            rzx_t_rzx += rzx.transpose() * &rzx;
+            rzx_t_cu += rzx.transpose() * &cu;
+            cu2 += cu.norm_squared();
         }
-        // Λ'Z'X and Λ'Z'y.
-        let mut lztx: DMatrix<f64> = DMatrix::zeros(q, cr.p);
-        let mut lzty: DVector<f64> = DVector::zeros(q);
-        for i in 0..q {
-            let (_, start, size) = cr.block_of[i];
-            for k in start..start + size {
-                let l = lam_entry(k, i);
-                if l != 0.0 {
-                    for c in 0..cr.p {
-                        lztx[(i, c)] += l * cr.ztx[(k, c)];
-                    }
-                    lzty[i] += l * cr.zty[k];
-                }
-            }
-        }
-        let chol = m.cholesky()?;
-        let l = chol.l();
-        let logdet_l = 2.0 * l.diagonal().iter().map(|d: &f64| d.ln()).sum::<f64>();
-        let rzx = l.solve_lower_triangular(&lztx)?;
-        let cu = l.solve_lower_triangular(&lzty)?;
-        let xtx_adj = &cr.xtx - rzx.transpose() * &rzx;
+        let xtx_adj = &cr.xtx - rzx_t_rzx;
         let rx = xtx_adj.clone().cholesky()?;
         let logdet_rx = 2.0 * rx.l().diagonal().iter().map(|d: &f64| d.ln()).sum::<f64>();
-        let rhs = &cr.xty - rzx.transpose() * &cu;
+        let rhs = &cr.xty - rzx_t_cu;
         let beta = rx.solve(&rhs);
         let cbeta = rx.l().solve_lower_triangular(&rhs)?;
-        let pwrss = cr.yty - cu.norm_squared() - cbeta.norm_squared();
+        let pwrss = cr.yty - cu2 - cbeta.norm_squared();
         let rx_inv = rx.inverse();
         Some(AtTheta { logdet_l, logdet_rx, pwrss: pwrss.max(0.0), beta, rx_inv })
     }
@@ -331,13 +386,23 @@ impl Model {
         let mut converged = false;
         // Nelder–Mead restarted from its own optimum until it stops moving,
         // which guards against a premature collapse of the simplex.
-        for round in 0..4 {
-            let solver = NelderMead::new(simplex.clone()).with_sd_tolerance(1e-12).ok()?;
+        let mut best_cost = cost.model.profiled_deviance(&best);
+        for round in 0..6 {
+            // The deviance is a sum over all observations, so its rounding noise
+            // grows with its size: an absolute tolerance of 1e-12 is below that
+            // noise on large data and would never be met.
+            let tol = (1e-13 * best_cost.abs()).max(1e-12);
+            let solver = NelderMead::new(simplex.clone()).with_sd_tolerance(tol).ok()?;
             let res = Executor::new(cost.clone(), solver).configure(|s| s.max_iters(4000)).run().ok()?;
             let x = res.state().get_best_param()?.clone();
             let moved = x.iter().zip(&best).map(|(a, b)| (a - b).abs()).fold(0.0, f64::max);
+            let new_cost = res.state().get_best_cost();
+            let gained = best_cost - new_cost;
             best = x;
-            if round > 0 && moved < 1e-9 {
+            best_cost = new_cost;
+            // Converged when a restart neither moves θ nor lowers the
+            // deviance by more than its rounding noise.
+            if round > 0 && (moved < 1e-9 || gained.abs() <= 1e-12 * new_cost.abs().max(1.0)) {
                 converged = true;
                 break;
             }
@@ -347,6 +412,36 @@ impl Model {
                 v[k] += 0.05 * best[k].abs().max(0.1);
                 simplex.push(v);
             }
+        }
+        // Nelder–Mead stops within the deviance's rounding noise, where a
+        // flat direction can leave θ loose in the sixth digit. Newton steps
+        // on the free coordinates (numerical gradient and Hessian, as for
+        // Satterthwaite's df; variances on the boundary held at zero) pin it.
+        let free: Vec<usize> = (0..nt).filter(|k| !diag.contains(k) || best[*k].abs() >= 1e-4).collect();
+        for _ in 0..3 {
+            if free.is_empty() {
+                break;
+            }
+            let sub = |v: &[f64]| {
+                let mut x = best.clone();
+                for (i, k) in free.iter().enumerate() {
+                    x[*k] = v[i];
+                }
+                cost.cost(&x).unwrap_or(f64::INFINITY)
+            };
+            let x0: Vec<f64> = free.iter().map(|k| best[*k]).collect();
+            let g = DVector::from_vec(gradient(&sub, &x0));
+            let Some(chol) = hessian(&sub, &x0).cholesky() else { break };
+            let step = chol.solve(&g);
+            let x1: Vec<f64> = x0.iter().zip(step.iter()).map(|(a, d)| a - d).collect();
+            let f1 = sub(&x1);
+            if !(f1 < best_cost) {
+                break;
+            }
+            for (i, k) in free.iter().enumerate() {
+                best[*k] = x1[i];
+            }
+            best_cost = f1;
         }
         let theta: Vec<f64> = best.iter().enumerate().map(|(k, v)| if diag.contains(&k) { v.abs() } else { *v }).collect();
         let a = self.at(&theta)?;
@@ -440,14 +535,35 @@ fn gradient(f: &dyn Fn(&[f64]) -> f64, x: &[f64]) -> Vec<f64> {
     (0..x.len()).map(|k| derivative(f, x, k)).collect()
 }
 
+/// Hessian by central second differences, each Richardson-extrapolated
+/// from steps h and h/2 (error O(h⁴), as [`derivative`]); 4 evaluations per
+/// diagonal and 8 per off-diagonal element, the upper triangle mirrored.
 fn hessian(f: &dyn Fn(&[f64]) -> f64, x: &[f64]) -> DMatrix<f64> {
     let n = x.len();
+    let h0: Vec<f64> = x.iter().map(|v| 1e-3 * v.abs().max(1e-2)).collect();
+    let f0 = f(x);
+    let at = |moves: &[(usize, f64)]| {
+        let mut v = x.to_vec();
+        for (k, d) in moves {
+            v[*k] += d;
+        }
+        f(&v)
+    };
     let mut h = DMatrix::zeros(n, n);
-    for j in 0..n {
-        let gj = |v: &[f64]| derivative(f, v, j);
-        for i in 0..n {
-            h[(i, j)] = derivative(&gj, x, i);
+    for i in 0..n {
+        let d = |s: f64| {
+            let hi = h0[i] * s;
+            (at(&[(i, hi)]) - 2.0 * f0 + at(&[(i, -hi)])) / (hi * hi)
+        };
+        h[(i, i)] = (4.0 * d(0.5) - d(1.0)) / 3.0;
+        for j in 0..i {
+            let d = |s: f64| {
+                let (hi, hj) = (h0[i] * s, h0[j] * s);
+                (at(&[(i, hi), (j, hj)]) - at(&[(i, hi), (j, -hj)]) - at(&[(i, -hi), (j, hj)]) + at(&[(i, -hi), (j, -hj)])) / (4.0 * hi * hj)
+            };
+            h[(i, j)] = (4.0 * d(0.5) - d(1.0)) / 3.0;
+            h[(j, i)] = h[(i, j)];
         }
     }
-    (&h + h.transpose()) * 0.5
+    h
 }
