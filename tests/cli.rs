@@ -305,10 +305,10 @@ fn mixed_writes_the_four_tables_and_matches_the_reference() {
     assert!(out.stdout.contains("F test for `epoch`: F = 175.047"), "{}", out.stdout);
     let read = |f: &str| std::fs::read_to_string(dir.path().join("fit").join(f)).unwrap();
     let fe = read("fixed_effects.csv");
-    assert!(fe.starts_with("term,estimate,std_error,df,t,p,lower_95,upper_95\n"));
+    assert!(fe.starts_with("term,estimate,std_error,df,t,p,lower,upper,confidence\n"));
     assert!(fe.lines().nth(2).unwrap().starts_with("epoch=hypoxia,-7.9983"), "{fe}");
     let c = read("contrasts.csv");
-    assert!(c.lines().next().unwrap().ends_with(",p_holm"));
+    assert!(c.lines().next().unwrap().ends_with(",confidence,p_adjusted,adjustment"));
     assert!(c.lines().nth(1).unwrap().starts_with("hypoxia - recovery,-6.978265"), "{c}");
     let vc = read("variance_components.csv");
     assert_eq!(vc.lines().next().unwrap(), "group,variance,sd");

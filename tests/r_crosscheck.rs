@@ -164,3 +164,108 @@ fn lme4_agrees_on_the_epoch_model_with_sessions() {
     let dir = tempfile::tempdir().unwrap();
     compare(dir.path(), "sessions", &data, "so2 ~ epoch + (1 | subject) + (1 | subject:session) + (1 | subject:eye:segment)", &["subject", "subject:session", "subject:eye:segment"]);
 }
+
+/// The statistics stage's epoch model exactly as the stage fits it
+/// (`stats::epoch_model::analyse`, which the stage calls), with two eyes
+/// for some subjects and a second session for others, on data of the
+/// study-level simulator: lme4/lmerTest fit the formula the stage reports
+/// to the same table. Criterion 1e-6, estimates 1e-6 (relative to the
+/// larger of the estimate and its SE), SE 1e-4, df 1e-3, variance
+/// components 1e-4 (relative).
+#[test]
+fn lme4_agrees_on_the_stage_epoch_model() {
+    use satstep::simulate::cohort::CohortDesign;
+    use satstep::stats::epoch_model::{analyse, Adjustment, Basis, ContrastSpec, Design};
+    if !r_available() {
+        return;
+    }
+    let mut d = CohortDesign { subjects: 9, two_eye_share: 0.4, two_session_share: 0.4, segments_per_eye: 3, captures_per_epoch: (3, 5), missing_capture: 0.1, missing_value: 0.05, ..CohortDesign::step_down(9) };
+    d.spread.session = 2.0;
+    d.spread.eye = 2.0;
+    let names = d.epoch_names();
+    let specs: Vec<ContrastSpec> = (1..4).map(|e| ContrastSpec { label: format!("{} - air", names[e]), weights: vec![(e, 1.0), (0, -1.0)] }).collect();
+    let design = Design { epochs: &names, baseline: 0, contrasts: &specs, confidence: 0.95, adjustment: Adjustment::Holm };
+    let obs = d.simulate(31, "r-crosscheck");
+    let a = analyse(&obs, &design);
+    assert!(a.formula.contains("subject:session") && a.formula.contains("subject:eye)"), "{}", a.formula);
+    assert!(a.contrasts.iter().all(|c| c.basis == Basis::MixedModel), "this design has no variance on the boundary");
+
+    let dir = tempfile::tempdir().unwrap();
+    let csv = dir.path().join("stage.csv");
+    let mut table = String::from("subject,session,eye,segment,epoch,so2\n");
+    for o in &obs {
+        table.push_str(&format!("{},{},{},{},{},{:.17e}\n", o.subject, o.session, o.eye, o.segment, names[o.epoch], o.so2));
+    }
+    std::fs::write(&csv, table).unwrap();
+    let script = dir.path().join("stage.R");
+    std::fs::write(
+        &script,
+        r#"
+suppressMessages({library(lme4); library(lmerTest)})
+args <- commandArgs(trailingOnly = TRUE)
+d <- read.csv(args[1], colClasses = c(so2 = "numeric"))
+d$epoch <- factor(d$epoch, levels = c("air", "low-15", "low-12", "recovery"))
+m <- lmer(as.formula(args[2]), data = d, REML = TRUE,
+          control = lmerControl(optimizer = "bobyqa", optCtrl = list(rhobeg = 0.2, rhoend = 1e-10)))
+co <- summary(m)$coefficients
+for (i in seq_len(nrow(co))) cat(sprintf("fixed %s %.12g %.12g %.12g\n", gsub(" ", "", rownames(co)[i]), co[i, 1], co[i, 2], co[i, 3]))
+vc <- as.data.frame(VarCorr(m))
+for (i in seq_len(nrow(vc))) cat(sprintf("vc %s|%s %.12g\n", vc$grp[i], gsub(" ", "", vc$var1[i]), vc$vcov[i]))
+cat(sprintf("criterion %.12g\n", REMLcrit(m)))
+"#,
+    )
+    .unwrap();
+    let out = Command::new("Rscript").arg(&script).arg(&csv).arg(&a.formula).output().unwrap();
+    assert!(out.status.success(), "R failed: {}", String::from_utf8_lossy(&out.stderr));
+    let text = String::from_utf8_lossy(&out.stdout).into_owned();
+    let rel = |x: f64, y: f64| ((x - y) / y).abs();
+    let mut fixed = 0;
+    let mut variances = 0;
+    // The criterion first, so that a failure below can be read against it.
+    for l in text.lines().filter(|l| l.starts_with("criterion")).chain(text.lines().filter(|l| !l.starts_with("criterion"))) {
+        let f: Vec<&str> = l.split_whitespace().collect();
+        match f[0] {
+            "criterion" => {
+                let c: f64 = f[1].parse().unwrap();
+                let ours = a.reml_criterion.unwrap();
+                assert!(rel(ours, c) < 1e-6, "criterion {ours} vs lme4 {c}");
+
+            }
+            "fixed" if f[1].starts_with("epoch") => {
+                let label = format!("{} - air", &f[1]["epoch".len()..]);
+                let ours = &a.contrasts.iter().find(|c| c.test.label == label).unwrap().test;
+                let (est, se, df): (f64, f64, f64) = (f[2].parse().unwrap(), f[3].parse().unwrap(), f[4].parse().unwrap());
+                // Relative to the larger of the estimate and its SE: a null
+                // contrast near zero has no relative scale of its own.
+                assert!((ours.estimate - est).abs() < 1e-6 * est.abs().max(se), "{label}: estimate {} vs {est}", ours.estimate);
+                assert!(rel(ours.std_error, se) < 1e-4, "{label}: SE {} vs {se}", ours.std_error);
+                assert!(rel(ours.df, df) < 1e-3, "{label}: df {} vs {df}", ours.df);
+                fixed += 1;
+            }
+            "vc" => {
+                let v: f64 = f[2].parse().unwrap();
+                let (grp, var1) = f[1].split_once('|').unwrap();
+                // lme4 names repeated groups `subject.1`, …; the column tells the epoch.
+                let ours = if let Some(rest) = var1.strip_prefix("dummy(epoch,\"") {
+                    format!("subject:epoch={}", rest.trim_end_matches("\")"))
+                } else {
+                    // … and may spell nested groups with dots.
+                    let base = grp.rsplit_once('.').filter(|(_, n)| n.chars().all(|c| c.is_ascii_digit())).map_or(grp, |(b, _)| b);
+                    base.replace('.', ":")
+                };
+                let c = a.components.iter().find(|c| c.group == ours).unwrap_or_else(|| panic!("no component {ours}"));
+                // A variance on the boundary: lme4 reports 0 (or nearly); so must we.
+                let residual = a.components.last().unwrap().variance;
+                if v < 1e-6 * residual {
+                    assert!(c.variance < 1e-6 * residual && c.boundary, "{ours}: variance {} where lme4 has {v}", c.variance);
+                } else {
+                    assert!(rel(c.variance, v) < 1e-4, "{ours}: variance {} vs lme4 {v}", c.variance);
+                }
+                variances += 1;
+            }
+            _ => {}
+        }
+    }
+    assert_eq!((fixed, variances), (3, a.components.len()), "{text}");
+    eprintln!("stage epoch model agrees with lme4/lmerTest: {}", a.formula);
+}

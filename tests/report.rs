@@ -127,7 +127,7 @@ fn the_report_is_complete_and_self_contained() {
     }
     assert_eq!(html.matches("<figure").count(), FIGURES.len());
     assert_eq!(html.matches("<svg").count(), FIGURES.len());
-    for needle in ["Research use only", "medical supervision", "ethics committee", "Methods", "Satterthwaite", "Bland JM, Altman DG (2007)", "Data quality", "Provenance", "subjects/V01/captures/c001.tif"] {
+    for needle in ["Research use only", "medical supervision", "ethics committee", "Methods", "Satterthwaite", "Bland JM, Altman DG (2007)", "Data quality", "Provenance", "subjects/V01/captures/c001.tif", "Fundus pigmentation as recorded in the study file: grade", "subject-specific deviation in every epoch"] {
         assert!(html.contains(needle), "report.html lacks `{needle}`");
     }
 

@@ -149,30 +149,26 @@ fn simulated_reference_and_truth_are_physiological() {
         assert!((0.5..1.5).contains(&slope), "{l}");
     }
 
-    // The stage's variance components are those of the same model fitted
-    // by `satstep mixed` to the exported segment table (steady captures).
-    let mut rd = csv::Reader::from_path(out.join("results/fits/so2.csv")).unwrap();
-    let h: Vec<String> = rd.headers().unwrap().iter().map(String::from).collect();
-    let c = |n: &str| h.iter().position(|x| x == n).unwrap();
-    let mut table = String::from("so2,epoch,subject,eye,segment\n");
-    for r in rd.records().map(Result::unwrap) {
-        if &r[c("method")] == "multiband" && &r[c("kind")] == "venule" && &r[c("status")] == "steady" && !r[c("so2")].is_empty() {
-            table.push_str(&format!("{},{},{},{},{}\n", &r[c("so2")], &r[c("epoch")], &r[c("subject")], &r[c("eye")], &r[c("segment")]));
-        }
+    // The subject is the unit of replication of every epoch contrast: its
+    // SE is not below 0.6 × the SE of the same run's paired subject-level
+    // analysis, and its df not above 3 × the subjects (before the subject ×
+    // epoch terms: SE 0.26 against 1.66, df 466).
+    let rows = |p: &str| -> Vec<csv::StringRecord> { csv::Reader::from_path(out.join("results/statistics").join(p)).unwrap().records().map(Result::unwrap).collect() };
+    let (contrasts, paired) = (rows("contrasts.csv"), rows("paired.csv"));
+    let mut compared = 0;
+    for c in &contrasts {
+        let (se, df) = (c[4].parse::<f64>().unwrap(), c[5].parse::<f64>().unwrap());
+        assert!(df <= 3.0 * 8.0, "{c:?}");
+        let epoch = c[2].strip_suffix(" - air").unwrap();
+        let p = paired.iter().find(|p| p[0] == c[0] && p[1] == c[1] && &p[2] == epoch).unwrap();
+        let paired_se: f64 = p[5].parse().unwrap();
+        assert!(se >= 0.6 * paired_se, "{c:?}: SE {se} against the paired {paired_se}");
+        compared += 1;
     }
-    write(dir.path(), "venules.csv", &table);
-    let o = satstep(dir.path(), &["mixed", "--data", "venules.csv", "--response", "so2", "--fixed", "epoch", "--reference", "epoch=air", "--random", "subject", "--random", "subject:eye:segment", "--out", "vc"]);
-    assert_eq!(o.code, 0, "{}", o.stderr);
-    let read = |p: &std::path::Path, filter: &dyn Fn(&csv::StringRecord) -> bool, gcol: usize, vcol: usize| -> BTreeMap<String, f64> {
-        csv::Reader::from_path(p).unwrap().records().map(Result::unwrap).filter(|r| filter(r)).map(|r| (r[gcol].to_string(), r[vcol].parse().unwrap())).collect()
-    };
-    let stage = read(&out.join("results/statistics/variance_components.csv"), &|r| &r[0] == "multiband" && &r[1] == "venule", 2, 4);
-    let alone = read(&dir.path().join("vc/variance_components.csv"), &|_| true, 0, 1);
-    assert_eq!(stage.keys().collect::<Vec<_>>(), ["Residual", "subject", "subject:eye:segment"], "{stage:?}");
-    for (g, v) in &stage {
-        let w = alone[g];
-        assert!((v - w).abs() <= 1e-6 * w.abs().max(1e-3), "{g}: stage {v}, mixed {w}");
-    }
+    assert_eq!(compared, 18);
+    let models = rows("models.csv");
+    assert_eq!(models.len(), 6);
+    assert!(models.iter().all(|m| m[2].contains("(0 + dummy(epoch, \"low-12\") | subject)") && &m[4] == "yes"), "{models:?}");
 }
 
 #[test]
@@ -240,4 +236,98 @@ fn a_second_visit_is_a_session_level_in_the_epoch_model() {
     assert!(models > 0 && sessions.len() == models, "one session term per epoch model: {vc}");
     // Three subjects, one of them seen twice: four sessions.
     assert!(sessions.iter().all(|r| r[3] == "4" && r[4].parse::<f64>().unwrap() >= 0.0), "{vc}");
+}
+
+/// Settings of the statistics that change what they say: a 90 % interval
+/// without adjustment leaves no column named for 95 % or Holm; a minimum
+/// diameter takes narrow segment values out of the statistics and counts
+/// them; the two-band diameter correction removes ODR's within-capture
+/// dependence on diameter and changes the two-band SO2.
+#[test]
+fn statistics_settings_do_what_they_say() {
+    let dir = tempfile::tempdir().unwrap();
+    let s = simulated(dir.path(), "tests/fixtures/runner-scenario.yaml", "s");
+    let study = s.join("study.yaml");
+    let text = std::fs::read_to_string(&study).unwrap();
+    let edit = |from: &str, to: &str| {
+        let t = std::fs::read_to_string(&study).unwrap();
+        assert!(t.contains(from), "{from}");
+        std::fs::write(&study, t.replacen(from, to, 1)).unwrap();
+    };
+    let run = || {
+        let o = satstep(dir.path(), &["run", s.to_str().unwrap()]);
+        assert_eq!(o.code, 0, "{}", o.stderr);
+        o
+    };
+    let read = |rel: &str| -> (Vec<String>, Vec<csv::StringRecord>) {
+        let mut r = csv::Reader::from_path(s.join("results").join(rel)).unwrap();
+        (r.headers().unwrap().iter().map(String::from).collect(), r.records().map(Result::unwrap).collect())
+    };
+    let segments = |rows: &[csv::StringRecord]| rows.iter().filter(|r| &r[1] != "arteriovenous").map(|r| r[5].parse::<i64>().unwrap()).sum::<i64>();
+
+    // Interval coverage and adjustment.
+    edit("output: results", "statistics: {confidence: 0.90, adjust: none}\noutput: results");
+    let first = run();
+    for t in ["contrasts.csv", "agreement.csv", "paired.csv", "summaries.csv", "variance_components.csv", "methods.csv", "models.csv"] {
+        let (h, _) = read(&format!("statistics/{t}"));
+        assert!(h.iter().all(|c| !c.contains("95") && !c.to_lowercase().contains("holm")), "{t}: {h:?}");
+    }
+    let (h, rows) = read("statistics/contrasts.csv");
+    let col = |n: &str| h.iter().position(|c| c == n).unwrap();
+    assert!(rows.iter().all(|r| &r[col("confidence")] == "0.9" && &r[col("adjustment")] == "none" && r[col("p")] == r[col("p_adjusted")]), "{rows:?}");
+    let report = std::fs::read_to_string(s.join("results/report/tables/contrasts.csv")).unwrap();
+    let head = report.lines().next().unwrap();
+    assert!(head.contains("90 % CI") && head.contains("p (unadjusted)") && !head.contains("95") && !head.contains("Holm"), "{head}");
+    assert!(first.stderr.contains("(90 % CI") && first.stderr.contains("(none)"), "{}", first.stderr);
+    let (_, before) = read("statistics/summaries.csv");
+
+    // A minimum diameter: the median of the measured diameters.
+    let (fh, fits) = read("fits/so2.csv");
+    let dcol = fh.iter().position(|c| c == "diameter_um").unwrap();
+    let mut d: Vec<f64> = fits.iter().map(|r| r[dcol].parse::<f64>().unwrap()).filter(|v| v.is_finite()).collect();
+    d.sort_by(f64::total_cmp);
+    let median = d[d.len() / 2].round();
+    edit("output: results", &format!("exclusions: {{min_diameter_um: {median}}}\noutput: results"));
+    let second = run();
+    assert!(second.stderr.lines().any(|l| l.starts_with("statistics") && l.contains("ran")), "{}", second.stderr);
+    assert!(second.stderr.lines().any(|l| l.starts_with("fits") && l.contains("up to date")), "{}", second.stderr);
+    let (sh, after) = read("statistics/summaries.csv");
+    let narrow_col = sh.iter().position(|c| c == "below_min_diameter").unwrap();
+    let narrow: i64 = after.iter().map(|r| r[narrow_col].parse::<i64>().unwrap()).sum();
+    assert!(segments(&after) < segments(&before) && narrow > 0, "segments {} → {}, {narrow} below {median} µm", segments(&before), segments(&after));
+    assert_eq!(segments(&before) - segments(&after), narrow, "every value taken out is counted");
+    let accounting = std::fs::read_to_string(s.join("results/report/tables/capture_accounting.csv")).unwrap();
+    assert!(accounting.lines().next().unwrap().contains(&format!("segment values < {median} µm")), "{accounting}");
+
+    // The two-band diameter correction.
+    let two_band_so2 = |rows: &[csv::StringRecord], h: &[String]| -> Vec<String> {
+        let c = |n: &str| h.iter().position(|x| x == n).unwrap();
+        rows.iter().filter(|r| &r[c("method")] == "two-band").map(|r| r[c("so2")].to_string()).collect()
+    };
+    let plain = two_band_so2(&fits, &fh);
+    assert!(text.contains("    isosbestic: b570\n"));
+    edit("    isosbestic: b570\n", "    isosbestic: b570\n    diameter_correction: true\n");
+    run();
+    let (fh, fits) = read("fits/so2.csv");
+    assert_ne!(plain, two_band_so2(&fits, &fh), "the correction changes the two-band SO2");
+    let c = |n: &str| fh.iter().position(|x| x == n).unwrap();
+    // Pooled within-capture, within-kind slope of ODR on diameter.
+    let slope = |col: usize| {
+        let mut groups: BTreeMap<(String, String, String), Vec<(f64, f64)>> = BTreeMap::new();
+        for r in fits.iter().filter(|r| &r[c("method")] == "two-band" && !r[col].is_empty() && !r[c("so2")].is_empty()) {
+            groups.entry((r[c("subject")].to_string(), r[c("capture")].to_string(), r[c("kind")].to_string())).or_default().push((r[c("diameter_um")].parse().unwrap(), r[col].parse().unwrap()));
+        }
+        let (mut sxx, mut sxy) = (0.0, 0.0);
+        for g in groups.values().filter(|g| g.len() > 1) {
+            let n = g.len() as f64;
+            let (mx, my) = (g.iter().map(|p| p.0).sum::<f64>() / n, g.iter().map(|p| p.1).sum::<f64>() / n);
+            sxx += g.iter().map(|p| (p.0 - mx).powi(2)).sum::<f64>();
+            sxy += g.iter().map(|p| (p.0 - mx) * (p.1 - my)).sum::<f64>();
+        }
+        sxy / sxx
+    };
+    let (raw, corrected) = (slope(c("odr_uncorrected")), slope(c("odr")));
+    assert!(raw.abs() > 1e-4 && corrected.abs() < 1e-3 * raw.abs(), "ODR per µm: {raw} before, {corrected} after the correction");
+    let methods = std::fs::read_to_string(s.join("results/report/report.md")).unwrap();
+    assert!(methods.contains("linear correction of ODR for vessel diameter"), "the methods text says what ran");
 }

@@ -1,71 +1,121 @@
-//! Calibration of the mixed-model tests by simulation: over studies with no
-//! epoch effect the contrast test rejects at α = 0.05 about 5 % of the time,
-//! and over studies with an effect the 95 % interval covers the true
-//! contrast about 95 % of the time. 2 000 studies each (the binomial SE of a
-//! 5 % rate is then 0.5 points, so the 3.5–6.5 % band is ±3 SE).
+//! Calibration of the statistics stage's epoch contrasts on whole simulated
+//! studies (`simulate::cohort`): values drawn from a study with
+//! subject-specific responses that grow with the challenge, capture-level
+//! shifts shared by segments, missing captures and values, one or two eyes
+//! and sessions, analysed by the code the stage runs
+//! (`stats::epoch_model::analyse`). Over the studies of a scenario, each
+//! contrast's interval must cover the true population contrast 93–97 % of
+//! the time and the null contrast (`recovery - air`, no true change) be
+//! rejected at α = 0.05 in 3.5–6.5 % of studies.
+//!
+//! The full count (1 000 studies per scenario; binomial SE of a 95 %
+//! coverage 0.7 points, of a 5 % rate 0.7 points) is `#[ignore]`d and run
+//! by `.ci/run`; the default suite runs 60 studies per scenario against
+//! bands wide enough for that count (coverage ≥ 85 %, null rejections
+//! ≤ 14 %), which still fail at once if captures pose as replicates (the
+//! pseudo-replicated model covered about half the time). Both also bound
+//! the share of tests whose Satterthwaite df exceeds 3 × the subjects
+//! (2 % quick, 1 % full): with captures as replicates nearly all would.
 
-use rand::SeedableRng;
-use rand_distr::{Distribution, Normal};
 use rayon::prelude::*;
-use satstep::stats::infer::contrast;
-use satstep::stats::lmm::{Criterion, LmmData, Model, RandomTerm};
+use satstep::simulate::cohort::CohortDesign;
+use satstep::stats::epoch_model::{analyse, Adjustment, Basis, ContrastSpec, Design};
 
-/// 8 subjects × 2 eyes × 3 epochs × 2 captures; SDs 3 (subject), 1.5 (eye), 2.5 (residual).
-fn study(seed: u64, effect: f64) -> LmmData {
-    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
-    let (ns, ne, np, nr) = (8, 2, 3, 2);
-    let (mut y, mut xrows, mut gs, mut ge) = (vec![], vec![], vec![], vec![]);
-    let (ds, de, dr) = (Normal::new(0.0, 3.0).unwrap(), Normal::new(0.0, 1.5).unwrap(), Normal::new(0.0, 2.5).unwrap());
-    for s in 0..ns {
-        let us = ds.sample(&mut rng);
-        for e in 0..ne {
-            let ue = de.sample(&mut rng);
-            for p in 0..np {
-                for _ in 0..nr {
-                    let eff = if p == 1 { effect } else { 0.0 };
-                    y.push(95.0 + eff + us + ue + dr.sample(&mut rng));
-                    xrows.push([1.0, (p == 1) as u8 as f64, (p == 2) as u8 as f64]);
-                    gs.push(s);
-                    ge.push(s * ne + e);
-                }
-            }
-        }
-    }
-    let n = y.len();
-    let x = nalgebra::DMatrix::from_fn(n, 3, |i, j| xrows[i][j]);
-    let term = |name: &str, levels: usize, group: Vec<usize>| RandomTerm {
-        name: name.into(),
-        levels: (0..levels).map(|l| l.to_string()).collect(),
-        group,
-        column_names: vec!["(Intercept)".into()],
-        columns: vec![vec![1.0; n]],
-    };
-    LmmData { y, x, x_names: vec!["(Intercept)".into(), "low".into(), "recovery".into()], terms: vec![term("subject", ns, gs), term("subject:eye", ns * ne, ge)] }
+fn step_down(subjects: usize) -> CohortDesign {
+    CohortDesign::step_down(subjects)
+}
+
+/// The scenarios: name and design.
+fn scenarios() -> Vec<(&'static str, CohortDesign)> {
+    let pilot = step_down(8);
+    let unbalanced = CohortDesign { two_eye_share: 0.5, captures_per_epoch: (2, 6), missing_capture: 0.15, missing_value: 0.1, ..step_down(6) };
+    let sessions = CohortDesign { two_eye_share: 0.3, two_session_share: 0.4, captures_per_epoch: (3, 5), missing_capture: 0.1, ..step_down(10) };
+    let cohort = CohortDesign { two_eye_share: 1.0, segments_per_eye: 3, captures_per_epoch: (4, 6), missing_capture: 0.05, missing_value: 0.05, ..step_down(12) };
+    // Like the demo: no day-to-day wander on air, a faint one in recovery, so
+    // the baseline's subject-specific variance sits on the boundary.
+    let mut steady_air = step_down(8);
+    steady_air.epochs[0].response_sd = 0.0;
+    steady_air.epochs[3].response_sd = 0.5;
+    vec![("pilot-8", pilot), ("unbalanced-6", unbalanced), ("sessions-10", sessions), ("two-eyes-12", cohort), ("steady-air-8", steady_air)]
+}
+
+fn contrasts() -> Vec<ContrastSpec> {
+    [("low-15 - air", 1), ("low-12 - air", 2), ("recovery - air", 3)].into_iter().map(|(l, e)| ContrastSpec { label: l.into(), weights: vec![(e, 1.0), (0, -1.0)] }).collect()
+}
+
+struct Figures {
+    /// Per contrast: share of intervals covering the truth.
+    coverage: Vec<f64>,
+    /// Share of studies rejecting the null contrast at 0.05.
+    null_rejection: f64,
+    /// Share of contrast tests that fell back to the subject level.
+    fallback: f64,
+    /// Largest df reported.
+    max_df: f64,
+    /// Share of tests with df above 3 × the subjects (pseudo-replication
+    /// would put nearly all of them there).
+    wide_df: f64,
+}
+
+fn calibrate(name: &str, d: &CohortDesign, studies: u64) -> Figures {
+    let specs = contrasts();
+    let epochs = d.epoch_names();
+    let design = Design { epochs: &epochs, baseline: 0, contrasts: &specs, confidence: 0.95, adjustment: Adjustment::None };
+    let runs: Vec<Vec<(bool, f64, bool, f64)>> = (0..studies)
+        .into_par_iter()
+        .map(|i| {
+            let obs = d.simulate(20261202, &format!("{name}/{i}"));
+            let a = analyse(&obs, &design);
+            assert_eq!(a.contrasts.len(), specs.len(), "{name}/{i}: every contrast tested");
+            a.contrasts
+                .iter()
+                .zip(&specs)
+                .map(|(c, s)| {
+                    let truth = d.true_contrast(&s.weights);
+                    (c.test.lower <= truth && truth <= c.test.upper, c.test.p, c.basis != Basis::MixedModel, c.test.df)
+                })
+                .collect()
+        })
+        .collect();
+    let n = studies as f64;
+    let coverage = (0..specs.len()).map(|k| runs.iter().filter(|r| r[k].0).count() as f64 / n).collect();
+    let null_rejection = runs.iter().filter(|r| r[2].1 < 0.05).count() as f64 / n;
+    let fallback = runs.iter().flatten().filter(|r| r.2).count() as f64 / (n * specs.len() as f64);
+    let max_df = runs.iter().flatten().map(|r| r.3).fold(0.0, f64::max);
+    let wide_df = runs.iter().flatten().filter(|r| r.3 > 3.0 * d.subjects as f64).count() as f64 / (n * specs.len() as f64);
+    let f = Figures { coverage, null_rejection, fallback, max_df, wide_df };
+    eprintln!(
+        "{name:>14} ({studies} studies): coverage {} · null rejected {:.1} % · subject-level fallback {:.1} % of tests · largest df {:.1} · df > 3 × subjects in {:.2} % of tests",
+        specs.iter().zip(&f.coverage).map(|(s, c)| format!("{} {:.1} %", s.label, 100.0 * c)).collect::<Vec<_>>().join(", "),
+        100.0 * f.null_rejection,
+        100.0 * f.fallback,
+        f.max_df,
+        100.0 * f.wide_df
+    );
+    f
 }
 
 #[test]
-fn null_rejection_rate_and_interval_coverage() {
-    let runs = 2000u64;
-    let l = [0.0, 1.0, 0.0];
-    let null_rejects = (0..runs)
-        .into_par_iter()
-        .filter(|s| {
-            let m = Model::new(study(*s, 0.0), Criterion::Reml);
-            let f = m.fit().unwrap();
-            contrast(&m, &f, "low - air", &l).p < 0.05
-        })
-        .count();
-    let covered = (0..runs)
-        .into_par_iter()
-        .filter(|s| {
-            let m = Model::new(study(100_000 + *s, -7.0), Criterion::Reml);
-            let f = m.fit().unwrap();
-            let c = contrast(&m, &f, "low - air", &l);
-            c.lower <= -7.0 && -7.0 <= c.upper
-        })
-        .count();
-    let (rate, cov) = (null_rejects as f64 / runs as f64, covered as f64 / runs as f64);
-    eprintln!("rejection under the null {:.2} %, coverage {:.2} %", rate * 100.0, cov * 100.0);
-    assert!((0.035..=0.065).contains(&rate), "{rate}");
-    assert!((0.93..=0.97).contains(&cov), "{cov}");
+fn epoch_contrasts_are_calibrated_on_whole_studies_quick() {
+    for (name, d) in scenarios() {
+        let f = calibrate(name, &d, 200);
+        for c in &f.coverage {
+            assert!(*c >= 0.85, "{name}: coverage {c}");
+        }
+        assert!(f.null_rejection <= 0.14, "{name}: null rejected in {}", f.null_rejection);
+        assert!(f.wide_df <= 0.02, "{name}: df above 3 × subjects in {} of tests", f.wide_df);
+    }
+}
+
+#[test]
+#[ignore = "about two minutes on two cores; .ci/run runs it"]
+fn epoch_contrasts_are_calibrated_on_whole_studies() {
+    for (name, d) in scenarios() {
+        let f = calibrate(name, &d, 2000);
+        for c in &f.coverage {
+            assert!((0.93..=0.97).contains(c), "{name}: coverage {c}");
+        }
+        assert!((0.035..=0.065).contains(&f.null_rejection), "{name}: null rejected in {}", f.null_rejection);
+        assert!(f.wide_df <= 0.01, "{name}: df above 3 × subjects in {} of tests", f.wide_df);
+    }
 }

@@ -149,18 +149,27 @@ pub struct Exclusions {
     pub captures: Vec<(String, String)>,
 }
 
+/// Adjustment of p values across a model's contrasts.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Adjustment {
+    /// Holm's step-down adjustment (Holm 1979).
+    Holm,
+    None,
+}
+
 /// Settings of the statistics stage.
 #[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
 pub struct StatisticsSettings {
     /// Coverage of the confidence intervals of contrasts and slopes.
     pub confidence: f64,
-    /// Holm adjustment of the contrasts' p values within a method and kind.
-    pub holm: bool,
+    /// Adjustment of the contrasts' p values within a method and kind.
+    pub adjustment: Adjustment,
 }
 
 impl Default for StatisticsSettings {
     fn default() -> Self {
-        StatisticsSettings { confidence: 0.95, holm: true }
+        StatisticsSettings { confidence: 0.95, adjustment: Adjustment::Holm }
     }
 }
 
@@ -818,8 +827,8 @@ fn read_statistics(r: &mut Reader, node: &Node) -> Option<StatisticsSettings> {
     }
     if let Some(n) = m.get("adjust") {
         match r.text(n, "`adjust`")?.as_str() {
-            "holm" => s.holm = true,
-            "none" => s.holm = false,
+            "holm" => s.adjustment = Adjustment::Holm,
+            "none" => s.adjustment = Adjustment::None,
             other => {
                 let hint = super::diag::suggest(other, &["holm", "none"]);
                 r.error(n.mark, format!("`adjust` is `holm` or `none`, found `{other}`")).hint(hint);

@@ -124,23 +124,24 @@ pub fn prepare(study: &Study, epochs: &EpochTables, positions: &dyn Fn(usize) ->
         estimates: stats
             .contrasts
             .iter()
-            .filter(|c| c.0 == primary)
-            .filter_map(|(_, k, t, _)| {
+            .filter(|c| c.method == primary)
+            .filter_map(|c| {
+                let t = &c.result.test;
                 let (a, b) = t.label.split_once(" - ")?;
                 let epoch = epochs_after.iter().position(|e| e == a.trim()).filter(|_| b.trim() == baseline)?;
-                Some(Estimate { kind: k.clone(), epoch, estimate: t.estimate, lower: t.lower, upper: t.upper })
+                Some(Estimate { kind: c.kind.clone(), epoch, estimate: t.estimate, lower: t.lower, upper: t.upper })
             })
             .collect(),
         agreement: stats
             .agreement
             .iter()
-            .map(|(m, a, slope)| AgreementSeries {
-                method: m.clone(),
-                pairs: stats.agreement_pairs.iter().filter(|q| q.0 == *m).map(|q| (q.3, q.2)).collect(),
-                line: stats.agreement_intercepts.iter().find(|q| q.0 == *m).and_then(|q| slope.as_ref().map(|s| (q.1, s.estimate))),
-                bias: a.bias,
-                lower: a.lower,
-                upper: a.upper,
+            .map(|r| AgreementSeries {
+                method: r.method.clone(),
+                pairs: stats.agreement_pairs.iter().filter(|q| q.method == r.method).map(|q| (q.spo2, q.so2)).collect(),
+                line: r.slope.as_ref().map(|s| (s.intercept, s.test.estimate)),
+                bias: r.agreement.bias,
+                lower: r.agreement.lower,
+                upper: r.agreement.upper,
             })
             .collect(),
         along: along_segment(study, epochs, positions, fits, &primary, &baseline),
@@ -191,14 +192,14 @@ fn courses(study: &Study, epochs: &EpochTables, fits: &[FitRow], method: &str) -
 fn changes(stats: &Statistics, method: &str, baseline: &str, after: &[String]) -> Vec<ChangePoint> {
     let mut out = Vec::new();
     for kind in ["arteriole", "venule"] {
-        let rows: Vec<_> = stats.summaries.iter().filter(|s| s.0 == method && s.1 == kind).collect();
-        let mut subjects: Vec<&String> = rows.iter().map(|s| &s.2).collect();
+        let rows: Vec<_> = stats.summaries.iter().filter(|s| s.method == method && s.kind == kind && s.mean.is_finite()).collect();
+        let mut subjects: Vec<&String> = rows.iter().map(|s| &s.subject).collect();
         subjects.sort();
         subjects.dedup();
         for (si, s) in subjects.iter().enumerate() {
-            let Some(base) = rows.iter().find(|r| &r.2 == *s && r.3 == baseline).map(|r| r.6) else { continue };
+            let Some(base) = rows.iter().find(|r| &r.subject == *s && r.epoch == baseline).map(|r| r.mean) else { continue };
             for (ei, e) in after.iter().enumerate() {
-                if let Some(v) = rows.iter().find(|r| &r.2 == *s && r.3 == *e).map(|r| r.6) {
+                if let Some(v) = rows.iter().find(|r| &r.subject == *s && r.epoch == *e).map(|r| r.mean) {
                     out.push(ChangePoint { kind, epoch: ei, value: v - base, jitter: 0.16 * (si as f64 / subjects.len().max(1) as f64 - 0.5) });
                 }
             }

@@ -13,6 +13,7 @@ pub mod figures;
 pub mod style;
 pub mod tables;
 
+use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
 use anyhow::Result;
@@ -43,6 +44,8 @@ pub const REFERENCES: &[&str] = &[
     "Satterthwaite FE (1946). An approximate distribution of estimates of variance components. Biometrics Bulletin 2(6):110–114.",
     "Holm S (1979). A simple sequentially rejective multiple test procedure. Scandinavian Journal of Statistics 6(2):65–70.",
     "Bland JM, Altman DG (2007). Agreement between methods of measurement with multiple observations per individual. Journal of Biopharmaceutical Statistics 17(4):571–582.",
+    "Boik RJ (1981). A priori tests in repeated measures designs: effects of nonsphericity. Psychometrika 46(3):241–255.",
+    "Matuschek H, Kliegl R, Vasishth S, Baayen H, Bates D (2017). Balancing Type I error and power in linear mixed models. Journal of Memory and Language 94:305–315.",
     "Huber PJ (1964). Robust estimation of a location parameter. Annals of Mathematical Statistics 35(1):73–101.",
     "Severinghaus JW (1979). Simple, accurate equations for human blood O2 dissociation computations. Journal of Applied Physiology 46(3):599–602.",
     "ISO 2533:1975. Standard Atmosphere. International Organization for Standardization.",
@@ -59,12 +62,12 @@ pub struct Inputs<'a> {
 }
 
 /// The methods text: each stage's description, in order.
-pub fn methods_text(study: &Study) -> Vec<String> {
+pub fn methods_text(study: &Study, stats: Option<&Statistics>) -> Vec<String> {
     vec![
         crate::run::epochs::describe(study),
         crate::run::transmissions::describe(study),
         crate::run::fits::describe(study),
-        crate::run::statistics::describe(study),
+        crate::run::statistics::describe(study, stats),
         format!(
             "All analyses were run with satstep {} (cache format {}); the same inputs give the same tables and figures byte for byte, whatever the number of worker threads.",
             env!("CARGO_PKG_VERSION"),
@@ -82,7 +85,7 @@ pub fn write(inp: &Inputs, positions: &dyn Fn(usize) -> Vec<crate::run::transmis
     let usage = tables::usage(inp.epochs, inp.images, inp.fits);
     let s = inp.study;
     let results = vec![tables::so2_by_epoch(s, inp.stats), tables::contrasts(s, inp.stats), tables::variance_components(inp.stats), tables::agreement(s, inp.stats), tables::method_comparison(inp.stats)];
-    let quality = vec![tables::accounting(s, inp.epochs, &usage), tables::data_quality(s, inp.images, inp.fits)];
+    let quality = vec![tables::accounting(s, inp.epochs, &usage, inp.fits), tables::data_quality(s, inp.images, inp.fits)];
     let mut written = Vec::new();
     for t in results.iter().chain(&quality) {
         written.extend(t.write(&tdir)?);
@@ -127,6 +130,15 @@ impl Document<'_> {
             self.usage.len(),
             used
         )];
+        let mut grades: BTreeMap<i64, usize> = BTreeMap::new();
+        for g in s.subjects.iter().filter_map(|x| x.pigmentation) {
+            *grades.entry(g).or_default() += 1;
+        }
+        if !grades.is_empty() {
+            let listed: Vec<String> = grades.iter().map(|(g, n)| format!("grade {g}: {n}")).collect();
+            let missing = s.subjects.iter().filter(|x| x.pigmentation.is_none()).count();
+            v.push(format!("Fundus pigmentation as recorded in the study file: {}{}.", listed.join(", "), if missing > 0 { format!(", not recorded: {missing}") } else { String::new() }));
+        }
         let bands: Vec<String> = s.instrument.bands.iter().map(|b| b.name.clone()).collect();
         v.push(format!("Instrument: {} ({} bands: {}; {} µm per pixel).", s.instrument.name, bands.len(), bands.join(", "), s.instrument.pixel_size_um));
         v
@@ -173,7 +185,7 @@ impl Document<'_> {
             h.push_str(&format!("<figure id=\"fig-{}\">\n{}\n<figcaption>{}</figcaption>\n</figure>\n", f.name, strip_xml_header(&f.svg), html_escape(&f.caption)));
         }
         h.push_str("<h2 id=\"methods\">Methods</h2>\n");
-        for p in methods_text(s) {
+        for p in methods_text(s, Some(self.inp.stats)) {
             h.push_str(&format!("<p>{}</p>\n", html_escape(&p)));
         }
         h.push_str("<h3>References</h3>\n<ol>\n");
@@ -227,7 +239,7 @@ impl Document<'_> {
             m.push_str(&format!("![{}](figures/{}.png)\n\n*{}*\n\n", f.name, f.name, f.caption));
         }
         m.push_str("## Methods\n\n");
-        for p in methods_text(s) {
+        for p in methods_text(s, Some(self.inp.stats)) {
             m.push_str(&format!("{p}\n\n"));
         }
         m.push_str("### References\n\n");

@@ -7,7 +7,7 @@ use std::path::{Path, PathBuf};
 
 use anyhow::Result;
 
-use crate::config::study::Study;
+use crate::config::study::{Adjustment, Study};
 use crate::run::epochs::EpochTables;
 use crate::run::fits::FitRow;
 use crate::run::statistics::Statistics;
@@ -127,13 +127,7 @@ fn f(v: f64, digits: usize) -> String {
 }
 
 fn p_value(p: f64) -> String {
-    if !p.is_finite() {
-        "–".into()
-    } else if p < 0.001 {
-        "< 0.001".into()
-    } else {
-        format!("{p:.3}")
-    }
+    crate::stats::infer::format_p(p)
 }
 
 /// Why a capture did not enter the statistics, or `None` when it did.
@@ -164,13 +158,30 @@ pub fn usage(epochs: &EpochTables, images: &ImageTables, fits: &[FitRow]) -> Vec
 }
 
 /// Captures acquired, used and not used by reason, per subject and epoch.
-pub fn accounting(study: &Study, epochs: &EpochTables, usage: &[Option<String>]) -> ReportTable {
+pub fn accounting(study: &Study, epochs: &EpochTables, usage: &[Option<String>], fits: &[FitRow]) -> ReportTable {
     let mut reasons: Vec<String> = usage.iter().flatten().cloned().collect();
     reasons.sort();
     reasons.dedup();
     let mut cols: Vec<(&str, bool)> = vec![("subject", false), ("epoch", false), ("acquired", true), ("used", true)];
     cols.extend(reasons.iter().map(|r| (r.as_str(), true)));
-    let mut t = ReportTable::new("capture_accounting", "Captures acquired, used in the statistics, and not used by reason, per subject and epoch", &cols);
+    // Segment values of used captures left out for their diameter (one per
+    // capture and segment, whatever the number of methods).
+    let narrow_label = study.exclusions.min_diameter_um.map(|d| format!("segment values < {d} µm"));
+    let mut narrow: BTreeMap<(String, String), std::collections::BTreeSet<(usize, &str)>> = BTreeMap::new();
+    if let Some(d) = study.exclusions.min_diameter_um {
+        for r in fits.iter().filter(|r| usage[r.capture_index].is_none() && !(r.diameter_um >= d)) {
+            let c = &epochs.captures[r.capture_index];
+            narrow.entry((c.subject.clone(), c.epoch.clone().unwrap_or_else(|| "(none)".into()))).or_default().insert((r.capture_index, r.segment.as_str()));
+        }
+    }
+    if let Some(l) = &narrow_label {
+        cols.push((l.as_str(), true));
+    }
+    let caption = match study.exclusions.min_diameter_um {
+        Some(d) => format!("Captures acquired, used in the statistics, and not used by reason, per subject and epoch; segment values of used captures left out for a diameter below {d} µm"),
+        None => "Captures acquired, used in the statistics, and not used by reason, per subject and epoch".to_string(),
+    };
+    let mut t = ReportTable::new("capture_accounting", caption, &cols);
     let order: Vec<String> = study.protocol.epochs.iter().map(|e| e.name.clone()).chain(["(none)".to_string()]).collect();
     let mut by: BTreeMap<(String, usize), Vec<&Option<String>>> = BTreeMap::new();
     for (c, u) in epochs.captures.iter().zip(usage) {
@@ -178,7 +189,7 @@ pub fn accounting(study: &Study, epochs: &EpochTables, usage: &[Option<String>])
         let ei = order.iter().position(|x| *x == e).unwrap_or(order.len());
         by.entry((c.subject.clone(), ei)).or_default().push(u);
     }
-    let mut total = vec![0usize; 2 + reasons.len()];
+    let mut total = vec![0usize; 2 + reasons.len() + narrow_label.is_some() as usize];
     for ((s, ei), us) in &by {
         let mut row = vec![s.clone(), order[*ei].clone(), us.len().to_string(), us.iter().filter(|u| u.is_none()).count().to_string()];
         total[0] += us.len();
@@ -186,6 +197,11 @@ pub fn accounting(study: &Study, epochs: &EpochTables, usage: &[Option<String>])
         for (k, r) in reasons.iter().enumerate() {
             let n = us.iter().filter(|u| u.as_deref() == Some(r.as_str())).count();
             total[2 + k] += n;
+            row.push(n.to_string());
+        }
+        if narrow_label.is_some() {
+            let n = narrow.get(&(s.clone(), order[*ei].clone())).map_or(0, |v| v.len());
+            total[2 + reasons.len()] += n;
             row.push(n.to_string());
         }
         t.rows.push(row);
@@ -209,7 +225,7 @@ pub fn so2_by_epoch(study: &Study, stats: &Statistics) -> ReportTable {
             let cells: Vec<String> = ["arteriole", "venule", "arteriovenous"]
                 .iter()
                 .map(|k| {
-                    let v: Vec<f64> = stats.summaries.iter().filter(|s| s.0 == m.label && s.1 == *k && s.3 == e.name && s.6.is_finite()).map(|s| s.6).collect();
+                    let v: Vec<f64> = stats.summaries.iter().filter(|s| s.method == m.label && s.kind == *k && s.epoch == e.name && s.mean.is_finite()).map(|s| s.mean).collect();
                     n = n.max(v.len());
                     if v.is_empty() {
                         return "–".into();
@@ -229,14 +245,29 @@ pub fn so2_by_epoch(study: &Study, stats: &Statistics) -> ReportTable {
 
 pub fn contrasts(study: &Study, stats: &Statistics) -> ReportTable {
     let level = format!("{:.0} % CI", study.statistics.confidence * 100.0);
-    let adj = if study.statistics.holm { "p (Holm)" } else { "p (unadjusted)" };
+    let adj = match study.statistics.adjustment {
+        Adjustment::Holm => "p (Holm)",
+        Adjustment::None => "p (unadjusted)",
+    };
     let mut t = ReportTable::new(
         "contrasts",
-        format!("Mixed-model contrasts of SO2 between epochs (points): REML, Satterthwaite df, {level}; {adj} within method and vessel kind"),
-        &[("method", false), ("kind", false), ("contrast", false), ("estimate", true), (level.as_str(), true), ("df", true), ("t", true), ("p", true), (adj, true)],
+        format!("Contrasts of SO2 between epochs (points): mixed model with subject-specific epoch deviations (REML, Satterthwaite df), or the subject-level t test where the model could not carry the contrast (column `test`); {level}; {adj} within method and vessel kind"),
+        &[("method", false), ("kind", false), ("contrast", false), ("estimate", true), (level.as_str(), true), ("df", true), ("t", true), ("p", true), (adj, true), ("test", false)],
     );
-    for (m, k, test, h) in &stats.contrasts {
-        t.rows.push(vec![m.clone(), k.clone(), test.label.clone(), f(test.estimate, 2), format!("{} to {}", f(test.lower, 2), f(test.upper, 2)), f(test.df, 1), f(test.t, 2), p_value(test.p), p_value(*h)]);
+    for r in &stats.contrasts {
+        let test = &r.result.test;
+        t.rows.push(vec![
+            r.method.clone(),
+            r.kind.clone(),
+            test.label.clone(),
+            f(test.estimate, 2),
+            format!("{} to {}", f(test.lower, 2), f(test.upper, 2)),
+            f(test.df, 1),
+            f(test.t, 2),
+            p_value(test.p),
+            p_value(r.result.p_adjusted),
+            r.result.basis.name().to_string(),
+        ]);
     }
     t
 }
@@ -244,11 +275,12 @@ pub fn contrasts(study: &Study, stats: &Statistics) -> ReportTable {
 pub fn variance_components(stats: &Statistics) -> ReportTable {
     let mut t = ReportTable::new(
         "variance_components",
-        "Variance components of the epoch models (SO2 points): the SD of each random intercept and of the residual, with the number of levels (observations for the residual)",
-        &[("method", false), ("kind", false), ("group", false), ("levels", true), ("SD", true)],
+        "Variance components of the epoch models (SO2 points): the SD of each random effect and of the residual, with the number of levels (observations for the residual); `subject:epoch=E` is the subject-specific deviation in epoch E; a component on the boundary is estimated as zero",
+        &[("method", false), ("kind", false), ("group", false), ("levels", true), ("SD", true), ("boundary", false)],
     );
-    for (m, k, g, n, v) in &stats.variance {
-        t.rows.push(vec![m.clone(), k.clone(), g.clone(), n.to_string(), f(v.max(0.0).sqrt(), 2)]);
+    for r in &stats.variance {
+        let c = &r.component;
+        t.rows.push(vec![r.method.clone(), r.kind.clone(), c.group.clone(), c.levels.to_string(), f(c.variance.max(0.0).sqrt(), 2), if c.boundary { "yes" } else { "" }.to_string()]);
     }
     t
 }
@@ -257,20 +289,23 @@ pub fn agreement(study: &Study, stats: &Statistics) -> ReportTable {
     let level = format!("slope {:.0} % CI", study.statistics.confidence * 100.0);
     let mut t = ReportTable::new(
         "agreement",
-        "Agreement of capture-mean arteriolar SO2 with the reference SpO2 (points): bias, precision, Arms, repeated-measures 95 % limits of agreement (Bland & Altman 2007), slope of SO2 on SpO2 (subject random intercepts)",
-        &[("method", false), ("captures", true), ("subjects", true), ("bias", true), ("precision", true), ("Arms", true), ("limits of agreement", true), ("slope", true), (level.as_str(), true)],
+        "Agreement of capture-mean arteriolar SO2 with the reference SpO2 (points): bias, precision, Arms over captures, repeated-measures 95 % limits of agreement (Bland & Altman 2007); slope of SO2 on SpO2 over subject × epoch means with a random intercept and slope by subject (subjects are the unit; `model` says when the random slope was dropped)",
+        &[("method", false), ("captures", true), ("subjects", true), ("bias", true), ("precision", true), ("Arms", true), ("limits of agreement", true), ("slope", true), (level.as_str(), true), ("slope df", true), ("model", false)],
     );
-    for (m, a, s) in &stats.agreement {
+    for r in &stats.agreement {
+        let (a, s) = (&r.agreement, &r.slope);
         t.rows.push(vec![
-            m.clone(),
+            r.method.clone(),
             a.n.to_string(),
             a.subjects.to_string(),
             f(a.bias, 2),
             f(a.precision, 2),
             f(a.arms, 2),
             format!("{} to {}", f(a.lower, 2), f(a.upper, 2)),
-            s.as_ref().map(|s| f(s.estimate, 3)).unwrap_or_else(|| "–".into()),
-            s.as_ref().map(|s| format!("{} to {}", f(s.lower, 3), f(s.upper, 3))).unwrap_or_else(|| "–".into()),
+            s.as_ref().map(|s| f(s.test.estimate, 3)).unwrap_or_else(|| "–".into()),
+            s.as_ref().map(|s| format!("{} to {}", f(s.test.lower, 3), f(s.test.upper, 3))).unwrap_or_else(|| "–".into()),
+            s.as_ref().map(|s| f(s.test.df, 1)).unwrap_or_else(|| "–".into()),
+            s.as_ref().map(|s| if s.formula.contains("0 + spo2") { "random slope".to_string() } else { "random intercept only (slope variance on the boundary)".to_string() }).unwrap_or_else(|| "–".into()),
         ]);
     }
     t
@@ -279,12 +314,13 @@ pub fn agreement(study: &Study, stats: &Statistics) -> ReportTable {
 pub fn method_comparison(stats: &Statistics) -> ReportTable {
     let mut t = ReportTable::new(
         "method_comparison",
-        "Method comparison on the same cohort: repeatability, uncertainty, spread along segments, values outside 0–100 %, response to the SpO2 change, and agreement between methods",
-        &[("method", false), ("kind", false), ("quantity", false), ("value", true)],
+        "Method comparison on the same cohort: repeatability, uncertainty, spread along segments, values outside 0–100 %, response to the SpO2 change, and agreement between methods, each with the unit it is computed over",
+        &[("method", false), ("kind", false), ("quantity", false), ("value", true), ("unit", false)],
     );
-    for (m, k, q, v) in &stats.comparison {
-        let digits = if q.contains("share") || q.contains("slope") { 3 } else if q == "n" || q.starts_with("values") { 0 } else { 2 };
-        t.rows.push(vec![m.clone(), k.clone(), q.replace('_', " "), f(*v, digits)]);
+    for r in &stats.comparison {
+        let q = &r.quantity;
+        let digits = if q.contains("share") || q.contains("slope") { 3 } else if q == "n" || q == "pairs" || q.starts_with("values") { 0 } else { 2 };
+        t.rows.push(vec![r.method.clone(), r.kind.clone(), q.replace('_', " "), f(r.value, digits), r.unit.clone()]);
     }
     t
 }

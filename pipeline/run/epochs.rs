@@ -162,7 +162,7 @@ pub fn describe(study: &Study) -> String {
     let p = &study.protocol;
     let r = &p.reference;
     format!(
-        "Each capture was assigned to the gas epoch in which it was taken (intervals closed at the start and open at the end; recorded switch times replaced the planned ones where given). Captures inside an epoch's settle window were kept but not analysed as steady state. The reference SpO2 of a capture was the median of the pulse-oximeter samples in a window of {} ending {} before the capture (the probe's response lag), marked unstable when the samples in the window spanned more than {} points.",
+        "Each capture was assigned to the gas epoch in which it was taken (intervals closed at the start and open at the end; recorded switch times replaced the planned ones where given). Captures inside an epoch's settle window were kept but not analysed as steady state. The reference SpO2 of a capture was the median of the pulse-oximeter samples in a window of {} centred {} after the capture (the probe shows a change that long after the blood has it; samples at both ends of the window included), marked unstable when the samples in the window spanned more than {} points.",
         crate::config::duration::format_seconds(r.window_s),
         crate::config::duration::format_seconds(r.lag_s),
         r.stability_limit

@@ -12,7 +12,7 @@ use rayon::prelude::*;
 use crate::config::study::{Calibration, Loss, Method, MethodKind, Study};
 use crate::oximetry::bands::SampledBand;
 use crate::oximetry::model::VesselModel;
-use crate::oximetry::odr::{leave_one_subject_out, segment_odr, two_point, Linear};
+use crate::oximetry::odr::{diameter_corrected, leave_one_subject_out, segment_odr, two_point, within_group_slope, Linear};
 use crate::oximetry::pointwise::fit_pointwise;
 use crate::oximetry::segment::{fit_segment, FitSettings, RobustLoss, SegmentSpectra};
 use crate::run::epochs::EpochTables;
@@ -34,6 +34,8 @@ pub struct FitRow {
     pub so2_se: Option<f64>,
     pub reduced_chi2: Option<f64>,
     pub odr: Option<f64>,
+    /// The ODR before the diameter correction, when the method applies one.
+    pub odr_uncorrected: Option<f64>,
     pub iterations: i64,
     pub evaluations: i64,
     pub termination: String,
@@ -44,7 +46,7 @@ pub struct FitRow {
 }
 
 /// Version of this stage's computation; bump when its results change.
-pub const VERSION: u32 = 3;
+pub const VERSION: u32 = 4;
 
 /// The stage's settings: the methods and the bands they read.
 pub fn settings_key(study: &Study) -> Key {
@@ -94,7 +96,10 @@ pub fn build(study: &Study, epochs: &EpochTables, images: &ImageTables, runner: 
     let mut out = Vec::new();
     for (mi, m) in study.methods.iter().enumerate() {
         let mut rows: Vec<FitRow> = per_capture.iter().flat_map(|c| c[mi].iter().cloned()).collect();
-        if let MethodKind::TwoBand { calibration, .. } = &m.kind {
+        if let MethodKind::TwoBand { calibration, diameter_correction, .. } = &m.kind {
+            if *diameter_correction {
+                correct_for_diameter(&mut rows);
+            }
             calibrate(&mut rows, calibration, study, epochs);
         }
         out.extend(rows);
@@ -128,6 +133,7 @@ fn fit_capture(m: &Method, bands: &[SampledBand], ci: usize, positions: &[Positi
                     so2_se: None,
                     reduced_chi2: None,
                     odr: None,
+                    odr_uncorrected: None,
                     iterations: 0,
                     evaluations: 0,
                     termination: String::new(),
@@ -196,6 +202,31 @@ pub fn multiband_model(bands: &[SampledBand], selected: &[usize], loss: Loss) ->
     (model, settings)
 }
 
+/// The two-band diameter correction: ODR depends on vessel diameter as
+/// well as on SO2, so the linear dependence is removed before calibration,
+/// `ODR' = ODR − b·(d − d_ref)`, with `b` the pooled within-group slope of
+/// ODR on diameter over groups of one capture and vessel kind (centred per
+/// group, so that differences in saturation between captures and kinds do
+/// not enter the slope) and `d_ref` the median diameter of the rows with an
+/// ODR. The uncorrected ODR stays in `odr_uncorrected`. Returns (b, d_ref).
+pub fn correct_for_diameter(rows: &mut [FitRow]) -> Option<(f64, f64)> {
+    let mut groups: BTreeMap<(usize, &str), Vec<(f64, f64)>> = BTreeMap::new();
+    for r in rows.iter() {
+        if let Some(o) = r.odr.filter(|o| o.is_finite()).filter(|_| r.diameter_um.is_finite()) {
+            groups.entry((r.capture_index, r.kind.as_str())).or_default().push((r.diameter_um, o));
+        }
+    }
+    let slope = within_group_slope(&groups.into_values().collect::<Vec<_>>())?;
+    let mut d: Vec<f64> = rows.iter().filter(|r| r.odr.is_some() && r.diameter_um.is_finite()).map(|r| r.diameter_um).collect();
+    d.sort_by(f64::total_cmp);
+    let reference = d[d.len() / 2];
+    for r in rows.iter_mut() {
+        r.odr_uncorrected = r.odr;
+        r.odr = r.odr.and_then(|o| r.diameter_um.is_finite().then(|| diameter_corrected(o, r.diameter_um, slope, reference)));
+    }
+    Some((slope, reference))
+}
+
 /// Applies the two-band calibration to rows holding ODRs.
 fn calibrate(rows: &mut [FitRow], cal: &Calibration, study: &Study, epochs: &EpochTables) {
     let c = &epochs.captures;
@@ -254,6 +285,7 @@ pub fn write(rows: &[FitRow], epochs: &EpochTables, out: &Path) -> Result<Vec<st
         .opt_real("so2", rows.iter().map(|r| r.so2))
         .opt_real("so2_se", rows.iter().map(|r| r.so2_se))
         .opt_real("odr", rows.iter().map(|r| r.odr))
+        .opt_real("odr_uncorrected", rows.iter().map(|r| r.odr_uncorrected))
         .opt_real("reduced_chi2", rows.iter().map(|r| r.reduced_chi2))
         .int("iterations", rows.iter().map(|r| r.iterations))
         .int("evaluations", rows.iter().map(|r| r.evaluations))
@@ -281,7 +313,11 @@ pub fn describe(study: &Study) -> String {
                     m.label,
                     band(sensitive),
                     band(isosbestic),
-                    if *diameter_correction { ", with a correction for vessel diameter" } else { "" }
+                    if *diameter_correction {
+                        ", after a linear correction of ODR for vessel diameter to the median diameter, the slope estimated within captures and vessel kinds from the study's own segments (as in Hardarson et al. 2006, cited from memory)"
+                    } else {
+                        ""
+                    }
                 )
             }
             MethodKind::Multiband { bands, loss, pointwise } => {

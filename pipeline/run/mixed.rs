@@ -34,10 +34,11 @@ fn tests_table(rows: &[Test], holm_p: Option<&[f64]>) -> Table {
         .real("df", rows.iter().map(|r| r.df))
         .real("t", rows.iter().map(|r| r.t))
         .real("p", rows.iter().map(|r| r.p))
-        .real("lower_95", rows.iter().map(|r| r.lower))
-        .real("upper_95", rows.iter().map(|r| r.upper));
+        .real("lower", rows.iter().map(|r| r.lower))
+        .real("upper", rows.iter().map(|r| r.upper))
+        .real("confidence", rows.iter().map(|_| 0.95));
     if let Some(h) = holm_p {
-        t.real("p_holm", h.iter().copied());
+        t.real("p_adjusted", h.iter().copied()).text("adjustment", h.iter().map(|_| "holm"));
     }
     t
 }

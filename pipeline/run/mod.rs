@@ -197,7 +197,12 @@ fn input_files(study: &Study) -> Vec<PathBuf> {
 
 fn epochs_settings(study: &Study) -> Key {
     let mut k = KeyBuilder::new("epochs-settings", epochs::VERSION);
-    k.value("protocol", &study.protocol).value("subjects", &study.subjects).value("exclusions", &study.exclusions);
+    // Only the exclusions of whole captures and subjects: the minimum
+    // diameter acts on segment values in the statistics stage.
+    k.value("protocol", &study.protocol)
+        .value("subjects", &study.subjects)
+        .value("excluded-subjects", &study.exclusions.subjects)
+        .value("excluded-captures", &study.exclusions.captures);
     k.finish()
 }
 
@@ -288,8 +293,22 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
         },
         |s, _| s.write(out),
     )?;
-    for (m, k, t, h) in &stats.contrasts {
-        printer.info(format!("  {m} {k}: {} = {:+.2} points ({:.0} % CI {:+.2} to {:+.2}, df {:.1}, adjusted p {:.2e})", t.label, t.estimate, study.statistics.confidence * 100.0, t.lower, t.upper, t.df, h));
+    for c in &stats.contrasts {
+        let t = &c.result.test;
+        printer.info(format!(
+            "  {} {}: {} = {:+.2} points ({:.0} % CI {:+.2} to {:+.2}, df {:.1}, p {} ({}), {})",
+            c.method,
+            c.kind,
+            t.label,
+            t.estimate,
+            study.statistics.confidence * 100.0,
+            t.lower,
+            t.upper,
+            t.df,
+            crate::stats::infer::format_p(c.result.p_adjusted),
+            stats.adjustment,
+            c.result.basis.name()
+        ));
     }
 
     // The report.

@@ -1,47 +1,128 @@
 //! The statistics stage, per method and vessel kind over steady captures:
-//! per subject × epoch summaries, a linear mixed model (REML) of SO2 on the
-//! epoch with random intercepts for subject, session within subject (when
-//! a subject was seen in more than one session), eye within subject and
-//! segment within eye, its variance components, the protocol's contrasts
-//! with Satterthwaite df and Holm adjustment, paired differences against
-//! the baseline (paired t tests), the agreement of arteriolar SO2 with the
-//! reference SpO2 (with the slope of SO2 on SpO2, subject random
-//! intercepts), and quantities for comparing the methods on the same
-//! cohort.
+//! per subject × epoch summaries; the epoch model (`stats::epoch_model`:
+//! random intercepts for the nesting and a subject-specific deviation in
+//! each epoch, so that the subject is the unit of replication), its
+//! variance components and the protocol's contrasts with Satterthwaite df
+//! (or the subject-level test where the model cannot carry a contrast) and
+//! the chosen adjustment; paired differences against the baseline (paired
+//! t tests over subjects); the agreement of arteriolar SO2 with the
+//! reference SpO2 (bias and limits over captures, the slope of SO2 on
+//! SpO2 over subject × epoch means with random slopes by subject); and
+//! quantities for comparing the methods on the same cohort, each with its
+//! unit of replication. Segment values narrower than
+//! `exclusions.min_diameter_um` are left out of all of it and counted.
 
 use std::collections::BTreeMap;
 use std::path::Path;
 
 use anyhow::Result;
-use nalgebra::DMatrix;
 use rayon::prelude::*;
 
-use crate::config::study::Study;
+use crate::config::study::{Adjustment as Adjust, Study};
 use crate::run::epochs::EpochTables;
 use crate::run::fits::FitRow;
-use crate::stats::agreement::agreement;
-use crate::stats::infer::{contrast_at, holm, Test};
-use crate::stats::lmm::{Criterion, LmmData, Model, RandomTerm};
+use crate::stats::agreement::{agreement, Agreement};
+use crate::stats::epoch_model::{self, analyse, slope_on_reference, Adjustment, Component, ContrastResult, ContrastSpec, Design, Observation, SlopeResult};
 use crate::tables::Table;
 
-#[derive(Default, serde::Serialize, serde::Deserialize)]
+/// One subject × epoch summary of one method and vessel kind.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct SummaryRow {
+    pub method: String,
+    pub kind: String,
+    pub subject: String,
+    pub epoch: String,
+    /// Captures with at least one value.
+    pub captures: i64,
+    /// Segment values used.
+    pub segments: i64,
+    /// Mean over captures of the capture means.
+    pub mean: f64,
+    /// SD over captures of the capture means.
+    pub sd: f64,
+    /// Segment values left out for a diameter below `exclusions.min_diameter_um`.
+    pub below_min_diameter: i64,
+}
+
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct ContrastRow {
+    pub method: String,
+    pub kind: String,
+    pub result: ContrastResult,
+}
+
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct VarianceRow {
+    pub method: String,
+    pub kind: String,
+    pub component: Component,
+}
+
+/// The epoch model that ran for one method and kind.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct ModelRow {
+    pub method: String,
+    pub kind: String,
+    pub formula: String,
+    pub observations: i64,
+    /// Whether the model was fitted (else every contrast is subject-level).
+    pub fitted: bool,
+    /// Random terms whose variance is on the boundary.
+    pub boundary: Vec<String>,
+}
+
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct AgreementRow {
+    pub method: String,
+    pub agreement: Agreement,
+    pub slope: Option<SlopeResult>,
+}
+
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct PairedRow {
+    pub method: String,
+    pub kind: String,
+    pub epoch: String,
+    pub subjects: i64,
+    pub mean_difference: f64,
+    pub std_error: f64,
+    pub df: f64,
+    pub t: f64,
+    pub p: f64,
+}
+
+/// One quantity of the method comparison, with the unit it is computed over.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct ComparisonRow {
+    pub method: String,
+    pub kind: String,
+    pub quantity: String,
+    pub value: f64,
+    pub unit: String,
+}
+
+/// A capture-mean arteriolar SO2 and its reference SpO2.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct AgreementPair {
+    pub method: String,
+    pub subject: String,
+    pub so2: f64,
+    pub spo2: f64,
+}
+
+#[derive(Default, Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Statistics {
-    /// (method, kind, subject, epoch, captures, segments, mean, sd).
-    pub summaries: Vec<(String, String, String, String, i64, i64, f64, f64)>,
-    /// (method, kind, test, holm p).
-    pub contrasts: Vec<(String, String, Test, f64)>,
-    /// The epoch models' variance components: (method, kind, group, levels, variance); the residual as group `Residual` with the observations as levels.
-    pub variance: Vec<(String, String, String, i64, f64)>,
-    /// (method, agreement, slope of SO2 on SpO2 with subject random intercepts: estimate, SE, df, lower, upper).
-    pub agreement: Vec<(String, crate::stats::agreement::Agreement, Option<Test>)>,
-    /// (method, kind, epoch, subjects, mean difference from baseline, SE, df, t, p).
-    pub paired: Vec<(String, String, String, i64, f64, f64, f64, f64, f64)>,
-    /// Method comparison rows: (method, kind, quantity, value).
-    pub comparison: Vec<(String, String, String, f64)>,
-    /// The pairs behind the agreement: (method, subject, capture-mean arteriolar SO2, reference SpO2).
-    pub agreement_pairs: Vec<(String, String, f64, f64)>,
-    /// (method, intercept) of the fitted line of SO2 on SpO2.
-    pub agreement_intercepts: Vec<(String, f64)>,
+    pub summaries: Vec<SummaryRow>,
+    pub contrasts: Vec<ContrastRow>,
+    pub variance: Vec<VarianceRow>,
+    pub models: Vec<ModelRow>,
+    pub agreement: Vec<AgreementRow>,
+    pub paired: Vec<PairedRow>,
+    pub comparison: Vec<ComparisonRow>,
+    pub agreement_pairs: Vec<AgreementPair>,
+    /// Coverage of the intervals and the p-value adjustment the rows carry.
+    pub confidence: f64,
+    pub adjustment: String,
 }
 
 impl Statistics {
@@ -50,57 +131,69 @@ impl Statistics {
         self.summaries.extend(other.summaries);
         self.contrasts.extend(other.contrasts);
         self.variance.extend(other.variance);
+        self.models.extend(other.models);
         self.agreement.extend(other.agreement);
         self.paired.extend(other.paired);
         self.comparison.extend(other.comparison);
         self.agreement_pairs.extend(other.agreement_pairs);
-        self.agreement_intercepts.extend(other.agreement_intercepts);
     }
 }
 
-fn term(name: &str, keys: &[String]) -> RandomTerm {
-    let mut levels: Vec<String> = keys.to_vec();
-    levels.sort();
-    levels.dedup();
-    let group = keys.iter().map(|k| levels.binary_search(k).expect("present")).collect();
-    RandomTerm { name: name.into(), levels, group, column_names: vec!["(Intercept)".into()], columns: vec![vec![1.0; keys.len()]] }
+fn mean(v: &[f64]) -> f64 {
+    v.iter().sum::<f64>() / v.len() as f64
 }
 
-/// Random intercepts of the epoch model from per-observation keys (each key
-/// names its level within its parents, e.g. `V01:OD:A1`). Session and eye
-/// levels enter only when some subject has two; otherwise they duplicate
-/// the subject. Sessions are crossed with eyes and segments: the same
-/// vessels are seen on each visit.
-fn epoch_model_terms(subject: &[String], session: &[String], eye: &[String], segment: &[String]) -> Vec<RandomTerm> {
-    let mut terms = vec![term("subject", subject)];
-    let subjects = terms[0].levels.len();
-    if term("session", session).levels.len() > subjects {
-        terms.push(term("subject:session", session));
+fn sd(v: &[f64]) -> f64 {
+    if v.len() < 2 {
+        return f64::NAN;
     }
-    if term("eye", eye).levels.len() > subjects {
-        terms.push(term("subject:eye", eye));
+    let m = mean(v);
+    (v.iter().map(|x| (x - m).powi(2)).sum::<f64>() / (v.len() - 1) as f64).sqrt()
+}
+
+fn adjustment(study: &Study) -> Adjustment {
+    match study.statistics.adjustment {
+        Adjust::Holm => Adjustment::Holm,
+        Adjust::None => Adjustment::None,
     }
-    terms.push(term("subject:eye:segment", segment));
-    terms
 }
 
 /// Version of this stage's computation; bump when its results change.
-pub const VERSION: u32 = 3;
+pub const VERSION: u32 = 4;
 
-/// The stage's settings: its own section of the study, the protocol's
-/// epochs and contrasts, and the method labels it groups by.
+/// The stage's settings: its own section of the study, the minimum
+/// diameter, the protocol's epochs and contrasts, and the method labels it
+/// groups by.
 pub fn settings_key(study: &Study) -> crate::stages::key::Key {
     let labels: Vec<&str> = study.methods.iter().map(|m| m.label.as_str()).collect();
     let mut k = crate::stages::key::KeyBuilder::new("statistics-settings", VERSION);
-    k.value("statistics", &study.statistics).value("protocol", &study.protocol).value("methods", &labels);
+    k.value("statistics", &study.statistics)
+        .value("min-diameter-um", &study.exclusions.min_diameter_um)
+        .value("protocol", &study.protocol)
+        .value("methods", &labels);
     k.finish()
 }
+
+/// Unit of replication of each method-comparison quantity.
+const UNIT_CAPTURES: &str = "capture means within subject × epoch";
+const UNIT_FITS: &str = "segment fits";
+const UNIT_CHANGES: &str = "subject × epoch changes from baseline (descriptive, pooled)";
+const UNIT_PAIRS: &str = "segment × capture pairs; limits for repeated measures per subject";
 
 pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics {
     let c = &epochs.captures;
     let p = &study.protocol;
-    let mut st = Statistics::default();
-    // Each method and vessel kind is modelled on its own, in parallel; the
+    let min_d = study.exclusions.min_diameter_um;
+    let narrow = |r: &FitRow| min_d.is_some_and(|d| !(r.diameter_um >= d));
+    let steady = |r: &FitRow| c[r.capture_index].status == "steady";
+    // The values the statistics use: steady captures, a finite SO2, wide enough.
+    let usable = |r: &FitRow| steady(r) && r.so2.is_some_and(f64::is_finite) && !narrow(r);
+    let epoch_names: Vec<String> = p.epochs.iter().map(|e| e.name.clone()).collect();
+    let specs: Vec<ContrastSpec> = p.contrasts.iter().map(|ct| ContrastSpec { label: ct.label.clone(), weights: ct.weights.clone() }).collect();
+    let design = Design { epochs: &epoch_names, baseline: p.baseline, contrasts: &specs, confidence: study.statistics.confidence, adjustment: adjustment(study) };
+    let base = &p.epochs[p.baseline].name;
+    let mut st = Statistics { confidence: study.statistics.confidence, adjustment: design.adjustment.name().to_string(), ..Statistics::default() };
+    // Each method and vessel kind is analysed on its own, in parallel; the
     // parts are joined in the study's order, so the result does not depend
     // on the number of threads.
     let pairs: Vec<(&crate::config::study::Method, &str)> = study.methods.iter().flat_map(|m| [(m, "arteriole"), (m, "venule")]).collect();
@@ -108,42 +201,57 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
         .par_iter()
         .map(|&(m, kind)| {
             let mut st = Statistics::default();
-            let rows: Vec<&FitRow> = fits
-                .iter()
-                .filter(|r| r.method == m.label && r.kind == kind && c[r.capture_index].status == "steady" && r.so2.is_some_and(f64::is_finite))
-                .collect();
+            let mine = |r: &&FitRow| r.method == m.label && r.kind == kind;
+            let rows: Vec<&FitRow> = fits.iter().filter(mine).filter(|r| usable(r)).collect();
             // Summaries: capture means first, then over captures.
             let mut by: BTreeMap<(String, String), BTreeMap<usize, Vec<f64>>> = BTreeMap::new();
             for r in &rows {
                 let cr = &c[r.capture_index];
-                by.entry((cr.subject.clone(), cr.epoch.clone().unwrap_or_default())).or_default().entry(r.capture_index).or_default().push(r.so2.unwrap());
+                by.entry((cr.subject.clone(), cr.epoch.clone().unwrap_or_default())).or_default().entry(r.capture_index).or_default().push(r.so2.unwrap_or(f64::NAN));
             }
-            for ((s, e), caps) in &by {
-                let means: Vec<f64> = caps.values().map(|v| v.iter().sum::<f64>() / v.len() as f64).collect();
-                let n = means.len() as f64;
-                let mean = means.iter().sum::<f64>() / n;
-                let sd = if n > 1.0 { (means.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / (n - 1.0)).sqrt() } else { f64::NAN };
-                let segs = caps.values().map(|v| v.len() as i64).sum();
-                st.summaries.push((m.label.clone(), kind.into(), s.clone(), e.clone(), means.len() as i64, segs, mean, sd));
+            let mut narrow_by: BTreeMap<(String, String), i64> = BTreeMap::new();
+            for r in fits.iter().filter(mine).filter(|r| steady(r) && r.so2.is_some_and(f64::is_finite) && narrow(r)) {
+                let cr = &c[r.capture_index];
+                *narrow_by.entry((cr.subject.clone(), cr.epoch.clone().unwrap_or_default())).or_default() += 1;
             }
-            // Paired differences against the baseline, over subjects with both.
-            let base = &p.epochs[p.baseline].name;
-            let subj_mean = |subject: &str, epoch: &str| -> Option<f64> {
-                by.get(&(subject.to_string(), epoch.to_string())).map(|caps| {
-                    let m: Vec<f64> = caps.values().map(|v| v.iter().sum::<f64>() / v.len() as f64).collect();
-                    m.iter().sum::<f64>() / m.len() as f64
+            let cells: std::collections::BTreeSet<&(String, String)> = by.keys().chain(narrow_by.keys()).collect();
+            for key in cells {
+                let means: Vec<f64> = by.get(key).map(|caps| caps.values().map(|v| mean(v)).collect()).unwrap_or_default();
+                st.summaries.push(SummaryRow {
+                    method: m.label.clone(),
+                    kind: kind.into(),
+                    subject: key.0.clone(),
+                    epoch: key.1.clone(),
+                    captures: means.len() as i64,
+                    segments: by.get(key).map(|caps| caps.values().map(|v| v.len() as i64).sum()).unwrap_or(0),
+                    mean: if means.is_empty() { f64::NAN } else { mean(&means) },
+                    sd: sd(&means),
+                    below_min_diameter: narrow_by.get(key).copied().unwrap_or(0),
+                });
+            }
+            // The segment values as the epoch model and the paired tests take them.
+            let obs: Vec<Observation> = rows
+                .iter()
+                .filter_map(|r| {
+                    let cr = &c[r.capture_index];
+                    let epoch = epoch_names.iter().position(|e| Some(e.as_str()) == cr.epoch.as_deref())?;
+                    Some(Observation { subject: cr.subject.clone(), session: cr.session.clone(), eye: cr.eye.clone(), segment: r.segment.clone(), epoch, so2: r.so2? })
                 })
+                .collect();
+            let subj_mean = |subject: &str, epoch: &str| -> Option<f64> {
+                by.get(&(subject.to_string(), epoch.to_string())).map(|caps| mean(&caps.values().map(|v| mean(v)).collect::<Vec<_>>()))
             };
             let subjects: Vec<String> = {
                 let mut v: Vec<String> = by.keys().map(|k| k.0.clone()).collect();
                 v.dedup();
                 v
             };
-            for e in p.epochs.iter().filter(|e| &e.name != base) {
-                let pairs: Vec<(f64, f64)> = subjects.iter().filter_map(|s| Some((subj_mean(s, &e.name)?, subj_mean(s, base)?))).collect();
-                let (a, b): (Vec<f64>, Vec<f64>) = pairs.iter().copied().unzip();
-                if let Some((md, se, df, t, pv)) = crate::stats::agreement::paired_t(&a, &b) {
-                    st.paired.push((m.label.clone(), kind.into(), e.name.clone(), pairs.len() as i64, md, se, df, t, pv));
+            // Paired differences against the baseline, each subject's
+            // segments compared with themselves.
+            for (ei, e) in p.epochs.iter().enumerate().filter(|(ei, _)| *ei != p.baseline) {
+                let spec = ContrastSpec { label: format!("{} - {base}", e.name), weights: vec![(ei, 1.0), (p.baseline, -1.0)] };
+                if let Some((t, n)) = epoch_model::subject_level_test(&obs, &spec, study.statistics.confidence) {
+                    st.paired.push(PairedRow { method: m.label.clone(), kind: kind.into(), epoch: e.name.clone(), subjects: n as i64, mean_difference: t.estimate, std_error: t.std_error, df: t.df, t: t.t, p: t.p });
                 }
             }
             // Method comparison: repeatability (pooled within subject × epoch
@@ -151,128 +259,77 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
             // segment estimates), share of values outside 0–100 %.
             let (mut ss, mut dfw) = (0.0, 0.0);
             for caps in by.values() {
-                let means: Vec<f64> = caps.values().map(|v| v.iter().sum::<f64>() / v.len() as f64).collect();
+                let means: Vec<f64> = caps.values().map(|v| mean(v)).collect();
                 if means.len() > 1 {
-                    let mu = means.iter().sum::<f64>() / means.len() as f64;
+                    let mu = mean(&means);
                     ss += means.iter().map(|x| (x - mu).powi(2)).sum::<f64>();
                     dfw += means.len() as f64 - 1.0;
                 }
             }
-            let all: Vec<&FitRow> = fits.iter().filter(|r| r.method == m.label && r.kind == kind && r.so2.is_some_and(f64::is_finite)).collect();
-            let outside = all.iter().filter(|r| !(0.0..=100.0).contains(&r.so2.unwrap())).count();
+            let all: Vec<&FitRow> = fits.iter().filter(mine).filter(|r| r.so2.is_some_and(f64::is_finite) && !narrow(r)).collect();
+            let outside = all.iter().filter(|r| !(0.0..=100.0).contains(&r.so2.unwrap_or(f64::NAN))).count();
             let ses: Vec<f64> = rows.iter().filter_map(|r| r.so2_se).filter(|v| v.is_finite()).collect();
-            let mut comp = |q: &str, v: f64| st.comparison.push((m.label.clone(), kind.into(), q.into(), v));
-            comp("repeatability_sd", if dfw > 0.0 { (ss / dfw).sqrt() } else { f64::NAN });
-            comp("mean_segment_se", if ses.is_empty() { f64::NAN } else { ses.iter().sum::<f64>() / ses.len() as f64 });
+            let mut comp = |q: &str, v: f64, unit: &str| st.comparison.push(ComparisonRow { method: m.label.clone(), kind: kind.into(), quantity: q.into(), value: v, unit: unit.into() });
+            comp("repeatability_sd", if dfw > 0.0 { (ss / dfw).sqrt() } else { f64::NAN }, UNIT_CAPTURES);
+            comp("mean_segment_se", if ses.is_empty() { f64::NAN } else { mean(&ses) }, UNIT_FITS);
             let along: Vec<f64> = rows.iter().filter_map(|r| r.along_sd).collect();
             if !along.is_empty() {
-                comp("along_segment_sd", along.iter().sum::<f64>() / along.len() as f64);
+                comp("along_segment_sd", mean(&along), UNIT_FITS);
             }
-            comp("values", all.len() as f64);
-            comp("share_outside_0_100", if all.is_empty() { f64::NAN } else { outside as f64 / all.len() as f64 });
+            comp("values", all.len() as f64, UNIT_FITS);
+            comp("share_outside_0_100", if all.is_empty() { f64::NAN } else { outside as f64 / all.len() as f64 }, UNIT_FITS);
             // Slope of the retinal change on the SpO2 change (per subject and
-            // epoch against the baseline, pooled).
+            // epoch against the baseline, pooled): a description, not a test.
+            let spo2_mean = |s: &str, epoch: &str| -> Option<f64> {
+                let v: Vec<f64> = c.iter().filter(|r| r.subject == s && r.status == "steady" && r.epoch.as_deref() == Some(epoch)).filter_map(|r| r.spo2).collect();
+                (!v.is_empty()).then(|| mean(&v))
+            };
             let (mut dx, mut dy) = (Vec::new(), Vec::new());
             for s in &subjects {
-                let spo2_mean = |epoch: &str| -> Option<f64> {
-                    let v: Vec<f64> = c.iter().filter(|r| &r.subject == s && r.status == "steady" && r.epoch.as_deref() == Some(epoch)).filter_map(|r| r.spo2).collect();
-                    (!v.is_empty()).then(|| v.iter().sum::<f64>() / v.len() as f64)
-                };
                 for e in p.epochs.iter().filter(|e| &e.name != base) {
-                    if let (Some(r1), Some(r0), Some(s1), Some(s0)) = (subj_mean(s, &e.name), subj_mean(s, base), spo2_mean(&e.name), spo2_mean(base)) {
+                    if let (Some(r1), Some(r0), Some(s1), Some(s0)) = (subj_mean(s, &e.name), subj_mean(s, base), spo2_mean(s, &e.name), spo2_mean(s, base)) {
                         dx.push(s1 - s0);
                         dy.push(r1 - r0);
                     }
                 }
             }
             if let Some(l) = crate::oximetry::odr::ols(&dx, &dy) {
-                comp("slope_change_on_spo2_change", l.slope);
+                comp("slope_change_on_spo2_change", l.slope, UNIT_CHANGES);
             }
 
-            // Mixed model with the epochs present; the baseline is the reference.
-            let present: Vec<usize> = (0..p.epochs.len()).filter(|e| rows.iter().any(|r| c[r.capture_index].epoch.as_deref() == Some(p.epochs[*e].name.as_str()))).collect();
-            if rows.len() < 10 || !present.contains(&p.baseline) || present.len() < 2 {
-                return st;
-            }
-            let others: Vec<usize> = present.iter().copied().filter(|e| *e != p.baseline).collect();
-            let n = rows.len();
-            let x = DMatrix::from_fn(n, 1 + others.len(), |i, j| {
-                if j == 0 {
-                    1.0
-                } else {
-                    (c[rows[i].capture_index].epoch.as_deref() == Some(p.epochs[others[j - 1]].name.as_str())) as u8 as f64
-                }
-            });
-            let key = |i: usize, depth: usize| {
-                let cr = &c[rows[i].capture_index];
-                match depth {
-                    0 => cr.subject.clone(),
-                    1 => format!("{}:{}", cr.subject, cr.eye),
-                    2 => format!("{}:{}:{}", cr.subject, cr.eye, rows[i].segment),
-                    _ => format!("{}:{}", cr.subject, cr.session),
-                }
-            };
-            let keys: Vec<Vec<String>> = (0..4).map(|d| (0..n).map(|i| key(i, d)).collect()).collect();
-            let terms = epoch_model_terms(&keys[0], &keys[3], &keys[1], &keys[2]);
-            let levels: Vec<i64> = terms.iter().map(|t| t.levels.len() as i64).collect();
-            let data = LmmData {
-                y: rows.iter().map(|r| r.so2.unwrap()).collect(),
-                x,
-                x_names: std::iter::once("(Intercept)".to_string()).chain(others.iter().map(|e| p.epochs[*e].name.clone())).collect(),
-                terms,
-            };
-            let model = Model::new(data, Criterion::Reml);
-            let Some(fit) = model.fit() else { return st };
-            let comps = model.components(&fit);
-            for ((name, _, cov), lv) in comps.terms.iter().zip(&levels) {
-                st.variance.push((m.label.clone(), kind.into(), name.clone(), *lv, cov[(0, 0)]));
-            }
-            st.variance.push((m.label.clone(), kind.into(), "Residual".into(), n as i64, comps.residual));
-            let tests: Vec<Test> = p
-                .contrasts
-                .iter()
-                .filter(|ct| ct.weights.iter().all(|(e, _)| present.contains(e)))
-                .map(|ct| {
-                    let mut l = vec![0.0; 1 + others.len()];
-                    for (e, w) in &ct.weights {
-                        if let Some(j) = others.iter().position(|o| o == e) {
-                            l[1 + j] += w;
-                        }
-                    }
-                    contrast_at(&model, &fit, &ct.label, &l, study.statistics.confidence)
-                })
-                .collect();
-            let raw: Vec<f64> = tests.iter().map(|t| t.p).collect();
-            let adj = if study.statistics.holm { holm(&raw) } else { raw };
-            for (t, h) in tests.into_iter().zip(adj) {
-                st.contrasts.push((m.label.clone(), kind.into(), t, h));
+            // The epoch model.
+            if !obs.is_empty() {
+                let a = analyse(&obs, &design);
+                st.models.push(ModelRow {
+                    method: m.label.clone(),
+                    kind: kind.into(),
+                    formula: a.formula.clone(),
+                    observations: a.observations as i64,
+                    fitted: !a.components.is_empty(),
+                    boundary: a.components.iter().filter(|c| c.boundary).map(|c| c.group.clone()).collect(),
+                });
+                st.variance.extend(a.components.into_iter().map(|component| VarianceRow { method: m.label.clone(), kind: kind.into(), component }));
+                st.contrasts.extend(a.contrasts.into_iter().map(|result| ContrastRow { method: m.label.clone(), kind: kind.into(), result }));
             }
             if kind == "arteriole" {
                 let mut per_capture: BTreeMap<usize, Vec<f64>> = BTreeMap::new();
                 for r in &rows {
-                    per_capture.entry(r.capture_index).or_default().push(r.so2.unwrap());
+                    per_capture.entry(r.capture_index).or_default().push(r.so2.unwrap_or(f64::NAN));
                 }
-                let pairs: Vec<(String, f64, f64)> = per_capture
-                    .iter()
-                    .filter_map(|(ci, v)| c[*ci].spo2.map(|s| (c[*ci].subject.clone(), v.iter().sum::<f64>() / v.len() as f64, s)))
-                    .collect();
+                let captures: Vec<(usize, f64, f64)> = per_capture.iter().filter_map(|(ci, v)| c[*ci].spo2.map(|s| (*ci, mean(v), s))).collect();
+                let pairs: Vec<(String, f64, f64)> = captures.iter().map(|(ci, so2, spo2)| (c[*ci].subject.clone(), *so2, *spo2)).collect();
                 if let Some(a) = agreement(&pairs) {
-                    // Slope of retinal SO2 on SpO2 with subject random intercepts.
-                    let n = pairs.len();
-                    let data = LmmData {
-                        y: pairs.iter().map(|q| q.1).collect(),
-                        x: DMatrix::from_fn(n, 2, |i, j| if j == 0 { 1.0 } else { pairs[i].2 }),
-                        x_names: vec!["(Intercept)".into(), "spo2".into()],
-                        terms: vec![term("subject", &pairs.iter().map(|q| q.0.clone()).collect::<Vec<_>>())],
-                    };
-                    let sm = Model::new(data, Criterion::Reml);
-                    let fit = sm.fit();
-                    let slope = fit.as_ref().map(|f| contrast_at(&sm, f, "slope on SpO2", &[0.0, 1.0], study.statistics.confidence));
-                    if let Some(f) = &fit {
-                        st.agreement_intercepts.push((m.label.clone(), f.beta[0]));
+                    // The slope over subject × epoch means, subjects as the unit.
+                    let mut cells: BTreeMap<(String, String), (Vec<f64>, Vec<f64>)> = BTreeMap::new();
+                    for (ci, so2, spo2) in &captures {
+                        let e = cells.entry((c[*ci].subject.clone(), c[*ci].epoch.clone().unwrap_or_default())).or_default();
+                        e.0.push(*so2);
+                        e.1.push(*spo2);
                     }
-                    st.agreement.push((m.label.clone(), a, slope));
-                    st.agreement_pairs.extend(pairs.iter().map(|(s, so2, spo2)| (m.label.clone(), s.clone(), *so2, *spo2)));
+                    let cells: Vec<(String, f64, f64)> = cells.into_iter().map(|((s, _), (a, b))| (s, mean(&a), mean(&b))).collect();
+                    let slope = slope_on_reference(&cells, study.statistics.confidence);
+                    st.agreement.push(AgreementRow { method: m.label.clone(), agreement: a, slope });
+                    st.agreement_pairs.extend(pairs.iter().map(|(s, so2, spo2)| AgreementPair { method: m.label.clone(), subject: s.clone(), so2: *so2, spo2: *spo2 }));
                 }
             }
             st
@@ -285,8 +342,8 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
     // the mean arteriolar minus the mean venular SO2, then over captures.
     for m in &study.methods {
         let mut per: BTreeMap<usize, (Vec<f64>, Vec<f64>)> = BTreeMap::new();
-        for r in fits.iter().filter(|r| r.method == m.label && c[r.capture_index].status == "steady") {
-            if let Some(v) = r.so2.filter(|v| v.is_finite()) {
+        for r in fits.iter().filter(|r| r.method == m.label && usable(r)) {
+            if let Some(v) = r.so2 {
                 let e = per.entry(r.capture_index).or_default();
                 if r.kind == "arteriole" { e.0.push(v) } else { e.1.push(v) }
             }
@@ -294,15 +351,22 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
         let mut by: BTreeMap<(String, String), Vec<(f64, i64)>> = BTreeMap::new();
         for (ci, (a, v)) in &per {
             if !a.is_empty() && !v.is_empty() {
-                let d = a.iter().sum::<f64>() / a.len() as f64 - v.iter().sum::<f64>() / v.len() as f64;
-                by.entry((c[*ci].subject.clone(), c[*ci].epoch.clone().unwrap_or_default())).or_default().push((d, (a.len() + v.len()) as i64));
+                by.entry((c[*ci].subject.clone(), c[*ci].epoch.clone().unwrap_or_default())).or_default().push((mean(a) - mean(v), (a.len() + v.len()) as i64));
             }
         }
         for ((s, e), d) in by {
-            let n = d.len() as f64;
-            let mean = d.iter().map(|x| x.0).sum::<f64>() / n;
-            let sd = if n > 1.0 { (d.iter().map(|x| (x.0 - mean).powi(2)).sum::<f64>() / (n - 1.0)).sqrt() } else { f64::NAN };
-            st.summaries.push((m.label.clone(), "arteriovenous".into(), s, e, d.len() as i64, d.iter().map(|x| x.1).sum(), mean, sd));
+            let diffs: Vec<f64> = d.iter().map(|x| x.0).collect();
+            st.summaries.push(SummaryRow {
+                method: m.label.clone(),
+                kind: "arteriovenous".into(),
+                subject: s,
+                epoch: e,
+                captures: d.len() as i64,
+                segments: d.iter().map(|x| x.1).sum(),
+                mean: mean(&diffs),
+                sd: sd(&diffs),
+                below_min_diameter: 0,
+            });
         }
     }
     // Agreement between methods on the same segments and captures.
@@ -310,17 +374,14 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
         for mb in &study.methods[i + 1..] {
             for kind in ["arteriole", "venule"] {
                 let get = |label: &str| -> BTreeMap<(usize, String), f64> {
-                    fits.iter()
-                        .filter(|r| r.method == label && r.kind == kind && c[r.capture_index].status == "steady")
-                        .filter_map(|r| Some(((r.capture_index, r.segment.clone()), r.so2.filter(|v| v.is_finite())?)))
-                        .collect()
+                    fits.iter().filter(|r| r.method == label && r.kind == kind && usable(r)).filter_map(|r| Some(((r.capture_index, r.segment.clone()), r.so2?))).collect()
                 };
                 let (a, b) = (get(&ma.label), get(&mb.label));
                 let pairs: Vec<(String, f64, f64)> = a.iter().filter_map(|(k, va)| b.get(k).map(|vb| (c[k.0].subject.clone(), *va, *vb))).collect();
                 if let Some(ag) = agreement(&pairs) {
                     let label = format!("{} vs {}", ma.label, mb.label);
                     for (q, v) in [("bias", ag.bias), ("loa_lower", ag.lower), ("loa_upper", ag.upper), ("pairs", ag.n as f64)] {
-                        st.comparison.push((label.clone(), kind.into(), q.into(), v));
+                        st.comparison.push(ComparisonRow { method: label.clone(), kind: kind.into(), quantity: q.into(), value: v, unit: UNIT_PAIRS.into() });
                     }
                 }
             }
@@ -335,106 +396,118 @@ impl Statistics {
         let dir = out.join("statistics");
         let s = &self.summaries;
         let mut t = Table::new();
-        t.text("method", s.iter().map(|r| &r.0))
-            .text("kind", s.iter().map(|r| &r.1))
-            .text("subject", s.iter().map(|r| &r.2))
-            .text("epoch", s.iter().map(|r| &r.3))
-            .int("captures", s.iter().map(|r| r.4))
-            .int("segments", s.iter().map(|r| r.5))
-            .real("mean_so2", s.iter().map(|r| r.6))
-            .real("sd_so2", s.iter().map(|r| r.7));
+        t.text("method", s.iter().map(|r| &r.method))
+            .text("kind", s.iter().map(|r| &r.kind))
+            .text("subject", s.iter().map(|r| &r.subject))
+            .text("epoch", s.iter().map(|r| &r.epoch))
+            .int("captures", s.iter().map(|r| r.captures))
+            .int("segments", s.iter().map(|r| r.segments))
+            .real("mean_so2", s.iter().map(|r| r.mean))
+            .real("sd_so2", s.iter().map(|r| r.sd))
+            .int("below_min_diameter", s.iter().map(|r| r.below_min_diameter));
         written.extend(t.write(&dir, "summaries")?);
         let c = &self.contrasts;
         let mut t = Table::new();
-        t.text("method", c.iter().map(|r| &r.0))
-            .text("kind", c.iter().map(|r| &r.1))
-            .text("contrast", c.iter().map(|r| &r.2.label))
-            .real("estimate", c.iter().map(|r| r.2.estimate))
-            .real("std_error", c.iter().map(|r| r.2.std_error))
-            .real("df", c.iter().map(|r| r.2.df))
-            .real("t", c.iter().map(|r| r.2.t))
-            .real("p", c.iter().map(|r| r.2.p))
-            .real("lower_95", c.iter().map(|r| r.2.lower))
-            .real("upper_95", c.iter().map(|r| r.2.upper))
-            .real("p_holm", c.iter().map(|r| r.3));
+        t.text("method", c.iter().map(|r| &r.method))
+            .text("kind", c.iter().map(|r| &r.kind))
+            .text("contrast", c.iter().map(|r| &r.result.test.label))
+            .real("estimate", c.iter().map(|r| r.result.test.estimate))
+            .real("std_error", c.iter().map(|r| r.result.test.std_error))
+            .real("df", c.iter().map(|r| r.result.test.df))
+            .real("t", c.iter().map(|r| r.result.test.t))
+            .real("p", c.iter().map(|r| r.result.test.p))
+            .real("lower", c.iter().map(|r| r.result.test.lower))
+            .real("upper", c.iter().map(|r| r.result.test.upper))
+            .real("confidence", c.iter().map(|_| self.confidence))
+            .real("p_adjusted", c.iter().map(|r| r.result.p_adjusted))
+            .text("adjustment", c.iter().map(|_| &self.adjustment))
+            .text("test", c.iter().map(|r| r.result.basis.name()))
+            .int("subjects", c.iter().map(|r| r.result.subjects as i64));
         written.extend(t.write(&dir, "contrasts")?);
         let v = &self.variance;
         let mut t = Table::new();
-        t.text("method", v.iter().map(|r| &r.0))
-            .text("kind", v.iter().map(|r| &r.1))
-            .text("group", v.iter().map(|r| &r.2))
-            .int("levels", v.iter().map(|r| r.3))
-            .real("variance", v.iter().map(|r| r.4))
-            .real("sd", v.iter().map(|r| r.4.sqrt()));
+        t.text("method", v.iter().map(|r| &r.method))
+            .text("kind", v.iter().map(|r| &r.kind))
+            .text("group", v.iter().map(|r| &r.component.group))
+            .int("levels", v.iter().map(|r| r.component.levels as i64))
+            .real("variance", v.iter().map(|r| r.component.variance))
+            .real("sd", v.iter().map(|r| r.component.variance.sqrt()))
+            .text("boundary", v.iter().map(|r| if r.component.boundary { "yes" } else { "no" }));
         written.extend(t.write(&dir, "variance_components")?);
-        let a = &self.agreement;
+        let md = &self.models;
         let mut t = Table::new();
-        t.text("method", a.iter().map(|r| &r.0))
-            .int("captures", a.iter().map(|r| r.1.n as i64))
-            .int("subjects", a.iter().map(|r| r.1.subjects as i64))
-            .real("bias", a.iter().map(|r| r.1.bias))
-            .real("precision", a.iter().map(|r| r.1.precision))
-            .real("arms", a.iter().map(|r| r.1.arms))
-            .real("loa_lower", a.iter().map(|r| r.1.lower))
-            .real("loa_upper", a.iter().map(|r| r.1.upper))
-            .opt_real("slope_on_spo2", a.iter().map(|r| r.2.as_ref().map(|t| t.estimate)))
-            .opt_real("slope_se", a.iter().map(|r| r.2.as_ref().map(|t| t.std_error)))
-            .opt_real("slope_df", a.iter().map(|r| r.2.as_ref().map(|t| t.df)))
-            .opt_real("slope_lower_95", a.iter().map(|r| r.2.as_ref().map(|t| t.lower)))
-            .opt_real("slope_upper_95", a.iter().map(|r| r.2.as_ref().map(|t| t.upper)));
+        t.text("method", md.iter().map(|r| &r.method))
+            .text("kind", md.iter().map(|r| &r.kind))
+            .text("formula", md.iter().map(|r| &r.formula))
+            .int("observations", md.iter().map(|r| r.observations))
+            .text("fitted", md.iter().map(|r| if r.fitted { "yes" } else { "no" }))
+            .text("boundary", md.iter().map(|r| r.boundary.join("; ")));
+        written.extend(t.write(&dir, "models")?);
+        let a = &self.agreement;
+        let sl = |f: fn(&SlopeResult) -> f64| a.iter().map(move |r| r.slope.as_ref().map(f)).collect::<Vec<_>>();
+        let mut t = Table::new();
+        t.text("method", a.iter().map(|r| &r.method))
+            .int("captures", a.iter().map(|r| r.agreement.n as i64))
+            .int("subjects", a.iter().map(|r| r.agreement.subjects as i64))
+            .real("bias", a.iter().map(|r| r.agreement.bias))
+            .real("precision", a.iter().map(|r| r.agreement.precision))
+            .real("arms", a.iter().map(|r| r.agreement.arms))
+            .real("loa_lower", a.iter().map(|r| r.agreement.lower))
+            .real("loa_upper", a.iter().map(|r| r.agreement.upper))
+            .opt_real("slope_on_spo2", sl(|s| s.test.estimate))
+            .opt_real("slope_se", sl(|s| s.test.std_error))
+            .opt_real("slope_df", sl(|s| s.test.df))
+            .opt_real("slope_lower", sl(|s| s.test.lower))
+            .opt_real("slope_upper", sl(|s| s.test.upper))
+            .real("confidence", a.iter().map(|_| self.confidence))
+            .opt_text("slope_model", a.iter().map(|r| r.slope.as_ref().map(|s| s.formula.clone())))
+            .opt_int("slope_points", a.iter().map(|r| r.slope.as_ref().map(|s| s.points as i64)));
         written.extend(t.write(&dir, "agreement")?);
         let q = &self.paired;
         let mut t = Table::new();
-        t.text("method", q.iter().map(|r| &r.0))
-            .text("kind", q.iter().map(|r| &r.1))
-            .text("epoch", q.iter().map(|r| &r.2))
-            .int("subjects", q.iter().map(|r| r.3))
-            .real("mean_difference", q.iter().map(|r| r.4))
-            .real("std_error", q.iter().map(|r| r.5))
-            .real("df", q.iter().map(|r| r.6))
-            .real("t", q.iter().map(|r| r.7))
-            .real("p", q.iter().map(|r| r.8));
+        t.text("method", q.iter().map(|r| &r.method))
+            .text("kind", q.iter().map(|r| &r.kind))
+            .text("epoch", q.iter().map(|r| &r.epoch))
+            .int("subjects", q.iter().map(|r| r.subjects))
+            .real("mean_difference", q.iter().map(|r| r.mean_difference))
+            .real("std_error", q.iter().map(|r| r.std_error))
+            .real("df", q.iter().map(|r| r.df))
+            .real("t", q.iter().map(|r| r.t))
+            .real("p", q.iter().map(|r| r.p));
         written.extend(t.write(&dir, "paired")?);
         let m = &self.comparison;
         let mut t = Table::new();
-        t.text("method", m.iter().map(|r| &r.0)).text("kind", m.iter().map(|r| &r.1)).text("quantity", m.iter().map(|r| &r.2)).real("value", m.iter().map(|r| r.3));
+        t.text("method", m.iter().map(|r| &r.method))
+            .text("kind", m.iter().map(|r| &r.kind))
+            .text("quantity", m.iter().map(|r| &r.quantity))
+            .real("value", m.iter().map(|r| r.value))
+            .text("unit", m.iter().map(|r| &r.unit));
         written.extend(t.write(&dir, "methods")?);
         Ok(written)
     }
 }
 
 /// This stage's part of the report's methods text.
-pub fn describe(study: &Study) -> String {
+pub fn describe(study: &Study, stats: Option<&Statistics>) -> String {
     let p = &study.protocol;
-    format!(
-        "Per method and vessel kind, segment SO2 of steady captures was modelled by a linear mixed model with the epoch as fixed effect (baseline `{}`) and random intercepts for subject, session within subject where a subject was seen in more than one session, eye within subject and segment within eye, fitted by REML in the formulation of lme4; contrasts between epochs were tested with Satterthwaite degrees of freedom and {:.0} % confidence intervals{}. Paired t tests compared each subject's epoch means with the baseline. Agreement of capture-mean arteriolar SO2 with the reference SpO2 was summarised by bias, precision and Arms, with 95 % limits of agreement for repeated measurements per subject (Bland & Altman 2007), and by the slope of SO2 on SpO2 in a mixed model with subject random intercepts. Methods were compared on the same cohort by their within-subject repeatability, segment standard errors, spread along segments, values outside 0–100 % and agreement with one another.",
+    let level = study.statistics.confidence * 100.0;
+    let adjust = match study.statistics.adjustment {
+        Adjust::Holm => "p values Holm-adjusted across the protocol's contrasts within each method and vessel kind",
+        Adjust::None => "p values not adjusted for multiplicity",
+    };
+    let mut text = format!(
+        "Per method and vessel kind, segment SO2 of steady captures was modelled by a linear mixed model with the epoch as fixed effect (baseline `{}`), random intercepts for subject, session within subject where a subject was seen in more than one session, eye within subject where a subject had two eyes imaged, and segment within eye, and a subject-specific deviation in every epoch with its own variance, fitted by REML in the formulation of lme4. The deviation by subject and epoch makes the subject the unit of replication of an epoch effect: volunteers respond differently to the same gas, and without it the captures would pose as independent replicates of the effect. One variance per epoch was chosen over a single subject × epoch variance because the spread of responses grows with the depth of the challenge (a pooled term misstates individual contrasts; Boik 1981), and over a full covariance of epoch effects by subject because its parameters cannot be estimated from a handful of volunteers (Matuschek et al. 2017). Contrasts between epochs were tested with Satterthwaite degrees of freedom and {level:.0} % confidence intervals, {adjust}. Where the subject-specific variances of all the epochs a contrast involves were estimated on the boundary (relative factor below 1e-4, lme4's singularity tolerance), so that the model held no estimate of how much subjects differ in that response, or where the model could not be fitted, the contrast was tested at the subject level instead: each subject's contrast computed on its own segments (as the paired tests below), one-sample t test with n − 1 degrees of freedom; the table names the test used for every contrast.",
         p.epochs[p.baseline].name,
-        study.statistics.confidence * 100.0,
-        if study.statistics.holm { ", p values Holm-adjusted within each method and vessel kind" } else { ", p values not adjusted for multiplicity" }
-    )
-}
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    fn keys(v: &[&str]) -> Vec<String> {
-        v.iter().map(|s| s.to_string()).collect()
+    );
+    if let Some(st) = stats {
+        let fallbacks = st.contrasts.iter().filter(|c| c.result.basis != epoch_model::Basis::MixedModel).count();
+        text.push_str(&format!(" In this study {} of {} contrasts were tested in the mixed model and {fallbacks} at the subject level.", st.contrasts.len() - fallbacks, st.contrasts.len()));
     }
-
-    #[test]
-    fn session_and_eye_terms_only_when_some_subject_has_two() {
-        let subject = keys(&["V01", "V01", "V02", "V02"]);
-        let one_session = keys(&["V01:s1", "V01:s1", "V02:s1", "V02:s1"]);
-        let one_eye = keys(&["V01:OD", "V01:OD", "V02:OD", "V02:OD"]);
-        let segment = keys(&["V01:OD:A1", "V01:OD:A2", "V02:OD:A1", "V02:OD:A1"]);
-        let names = |t: Vec<RandomTerm>| t.into_iter().map(|t| (t.name, t.levels.len())).collect::<Vec<_>>();
-        assert_eq!(names(epoch_model_terms(&subject, &one_session, &one_eye, &segment)), [("subject".to_string(), 2), ("subject:eye:segment".to_string(), 3)]);
-        let two_sessions = keys(&["V01:s1", "V01:s2", "V02:s1", "V02:s1"]);
-        let two_eyes = keys(&["V01:OD", "V01:OD", "V02:OD", "V02:OS"]);
-        assert_eq!(
-            names(epoch_model_terms(&subject, &two_sessions, &two_eyes, &segment)),
-            [("subject".to_string(), 2), ("subject:session".to_string(), 3), ("subject:eye".to_string(), 3), ("subject:eye:segment".to_string(), 3)]
-        );
+    if let Some(d) = study.exclusions.min_diameter_um {
+        text.push_str(&format!(" Segment values with a measured diameter below {d} µm were left out of all statistics and counted per subject and epoch."));
     }
+    text.push_str(&format!(
+        " Paired t tests compared each subject's change from the baseline, computed on its own segments (per segment seen in both epochs the difference of its epoch means, then the mean over segments, so that a changing mix of segments with a value does not pose as a change). Agreement of capture-mean arteriolar SO2 with the reference SpO2 was summarised by bias, precision and Arms over captures, with 95 % limits of agreement for repeated measurements per subject (Bland & Altman 2007); the slope of SO2 on SpO2 was estimated on each subject's epoch means in a mixed model with a random intercept and a random slope by subject, so that the subject is its unit of replication (the random slope is dropped, and the table says so, when its variance is on the boundary), with a {level:.0} % interval. Methods were compared on the same cohort by their within-subject repeatability (capture means within subject and epoch), segment standard errors, spread along segments and values outside 0–100 % (segment fits), the pooled slope of the subjects' changes on the SpO2 changes (descriptive), and agreement with one another (segment × capture pairs, limits for repeated measures per subject); the table states the unit of each quantity."
+    ));
+    text
 }

@@ -7,6 +7,7 @@
 //! the item's name (subject, capture), so the same scenario gives the same
 //! bytes whatever the thread count.
 
+pub mod cohort;
 pub mod course;
 pub mod render;
 pub mod seed;

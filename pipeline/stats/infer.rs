@@ -65,6 +65,18 @@ pub fn f_test(model: &Model, fit: &Fit, l: &DMatrix<f64>) -> (f64, f64, f64, f64
     (f, q as f64, ddf, p)
 }
 
+/// A p value for people: three decimals, and `< 0.001` below that, so
+/// that a value that underflowed is never printed as 0.
+pub fn format_p(p: f64) -> String {
+    if !p.is_finite() {
+        "–".into()
+    } else if p < 0.001 {
+        "< 0.001".into()
+    } else {
+        format!("{p:.3}")
+    }
+}
+
 /// Holm's step-down adjusted p-values, in the input order.
 pub fn holm(p: &[f64]) -> Vec<f64> {
     let m = p.len();

@@ -4,5 +4,6 @@
 
 pub mod agreement;
 pub mod design;
+pub mod epoch_model;
 pub mod infer;
 pub mod lmm;

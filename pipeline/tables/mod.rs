@@ -60,6 +60,11 @@ impl Table {
         self.push(Column::new(name.into(), v))
     }
 
+    pub fn opt_int(&mut self, name: &str, values: impl IntoIterator<Item = Option<i64>>) -> &mut Self {
+        let v: Vec<Option<i64>> = values.into_iter().collect();
+        self.push(Column::new(name.into(), v))
+    }
+
     pub fn height(&self) -> usize {
         self.height.unwrap_or(0)
     }
