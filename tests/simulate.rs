@@ -330,4 +330,9 @@ fn statistics_settings_do_what_they_say() {
     assert!(raw.abs() > 1e-4 && corrected.abs() < 1e-3 * raw.abs(), "ODR per µm: {raw} before, {corrected} after the correction");
     let methods = std::fs::read_to_string(s.join("results/report/report.md")).unwrap();
     assert!(methods.contains("linear correction of ODR for vessel diameter"), "the methods text says what ran");
+
+    // A minimum above every vessel empties the statistics: a warning, not silence.
+    edit(&format!("min_diameter_um: {median}"), "min_diameter_um: 100000");
+    let o = run();
+    assert!(o.stderr.contains("warning: `exclusions.min_diameter_um: 100000` leaves no arteriole value of `multiband`"), "{}", o.stderr);
 }

@@ -293,6 +293,21 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
         },
         |s, _| s.write(out),
     )?;
+    // A minimum diameter that empties a method and vessel kind leaves it
+    // out of every statistic: say so rather than let the rows vanish.
+    if let Some(d) = study.exclusions.min_diameter_um {
+        let mut by: std::collections::BTreeMap<(&str, &str), (i64, i64)> = std::collections::BTreeMap::new();
+        for r in stats.summaries.iter().filter(|r| r.kind != "arteriovenous") {
+            let e = by.entry((r.method.as_str(), r.kind.as_str())).or_default();
+            e.0 += r.segments;
+            e.1 += r.below_min_diameter;
+        }
+        for ((m, k), (used, narrow)) in by {
+            if used == 0 && narrow > 0 {
+                printer.warn(format!("`exclusions.min_diameter_um: {d}` leaves no {k} value of `{m}` ({narrow} values are narrower): no {k} statistics for it"));
+            }
+        }
+    }
     for c in &stats.contrasts {
         let t = &c.result.test;
         printer.info(format!(
