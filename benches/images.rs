@@ -14,7 +14,7 @@ use satstep::images::ingest::read_capture;
 use satstep::images::profile::ProfileSettings;
 use satstep::oximetry::bands::SampledBand;
 use satstep::run::transmissions::analyse_capture;
-use satstep::simulate::render::{render, write_tiff, Motion, Scene, VesselState};
+use satstep::simulate::render::{Motion, Scene, VesselState, render, write_tiff};
 
 const SIZE: usize = 1024;
 
@@ -24,7 +24,11 @@ fn segments() -> Vec<Segment> {
             let a = -1.2 + 0.26 * k as f64;
             Segment {
                 id: format!("S{k}"),
-                kind: if k % 2 == 0 { VesselKind::Arteriole } else { VesselKind::Venule },
+                kind: if k % 2 == 0 {
+                    VesselKind::Arteriole
+                } else {
+                    VesselKind::Venule
+                },
                 points: (0..=16)
                     .map(|j| {
                         let s = 120.0 + 330.0 * j as f64 / 16.0;
@@ -40,23 +44,62 @@ fn segments() -> Vec<Segment> {
 
 fn main() {
     let dir = tempfile::tempdir().unwrap();
-    let bands: Vec<SampledBand> = [506.0, 522.0, 548.0, 560.0, 570.0, 586.0, 600.0, 616.0].iter().map(|c| SampledBand::gaussian(*c, 8.0)).collect();
+    let bands: Vec<SampledBand> = [506.0, 522.0, 548.0, 560.0, 570.0, 586.0, 600.0, 616.0]
+        .iter()
+        .map(|c| SampledBand::gaussian(*c, 8.0))
+        .collect();
     let segs = segments();
     let vs: Vec<VesselState> = segs
         .iter()
         .map(|s| VesselState {
             segment: s,
-            so2: if s.kind == VesselKind::Arteriole { 0.96 } else { 0.6 },
+            so2: if s.kind == VesselKind::Arteriole {
+                0.96
+            } else {
+                0.6
+            },
             diameter_um: Box::new(|f| 140.0 - 30.0 * f),
             double_pass: Box::new(|_| 0.3),
         })
         .collect();
     let offsets = [(0.0, 0.0); 8];
-    let scene = Scene { width: SIZE, height: SIZE, pixel_um: 12.0, bands: &bands, band_offsets: &offsets, pigmentation: 2.0, veil: 0.2, hb_g_per_l: 150.0, backscatter: 0.04, well_electrons: 20_000.0, read_noise_electrons: 6.0 };
+    let scene = Scene {
+        width: SIZE,
+        height: SIZE,
+        pixel_um: 12.0,
+        bands: &bands,
+        band_offsets: &offsets,
+        pigmentation: 2.0,
+        veil: 0.2,
+        hb_g_per_l: 150.0,
+        backscatter: 0.04,
+        well_electrons: 20_000.0,
+        read_noise_electrons: 6.0,
+    };
     let t0 = Instant::now();
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(3);
-    let reference = render(&scene, &vs, Motion { dx: 0.0, dy: 0.0, angle_deg: 0.0 }, 1.0, &mut rng);
-    let moved = render(&scene, &vs, Motion { dx: 6.3, dy: -4.1, angle_deg: 0.7 }, 1.0, &mut rng);
+    let reference = render(
+        &scene,
+        &vs,
+        Motion {
+            dx: 0.0,
+            dy: 0.0,
+            angle_deg: 0.0,
+        },
+        1.0,
+        &mut rng,
+    );
+    let moved = render(
+        &scene,
+        &vs,
+        Motion {
+            dx: 6.3,
+            dy: -4.1,
+            angle_deg: 0.7,
+        },
+        1.0,
+        &mut rng,
+    );
     let ref_path = dir.path().join("reference.tif");
     write_tiff(&ref_path, SIZE, SIZE, &reference).unwrap();
     let n = 8;
@@ -67,25 +110,67 @@ fn main() {
             p
         })
         .collect();
-    println!("image stage benchmark: {SIZE} × {SIZE} px × 8 bands, 10 segments; captures rendered in {:.1} s", t0.elapsed().as_secs_f64());
+    println!(
+        "image stage benchmark: {SIZE} × {SIZE} px × 8 bands, 10 segments; captures rendered in {:.1} s",
+        t0.elapsed().as_secs_f64()
+    );
     let reference = read_capture(&ref_path, 8, None).unwrap();
-    let settings = ProfileSettings { half_length_px: 220.0 / 12.0 + 4.0, ..ProfileSettings::default() };
+    let settings = ProfileSettings {
+        half_length_px: 220.0 / 12.0 + 4.0,
+        ..ProfileSettings::default()
+    };
     // Where the time goes, for one capture.
     let t = Instant::now();
     let img = read_capture(&files[0], 8, Some((SIZE, SIZE))).unwrap();
     let t_read = t.elapsed().as_secs_f64();
     let t = Instant::now();
-    let reg = satstep::images::register::register(&reference.bands[4], &img.bands[4], SIZE, SIZE, 2.0);
+    let reg =
+        satstep::images::register::register(&reference.bands[4], &img.bands[4], SIZE, SIZE, 2.0);
     let t_reg = t.elapsed().as_secs_f64();
-    println!("  one capture: read {t_read:.2} s, register {t_reg:.2} s (score {:.3}, dx {:.2}, dy {:.2}, angle {:.2}°)", reg.score, reg.dx, reg.dy, reg.angle_deg);
-    let cores = std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1);
+    println!(
+        "  one capture: read {t_read:.2} s, register {t_reg:.2} s (score {:.3}, dx {:.2}, dy {:.2}, angle {:.2}°)",
+        reg.score, reg.dx, reg.dy, reg.angle_deg
+    );
+    let cores = std::thread::available_parallelism()
+        .map(|n| n.get())
+        .unwrap_or(1);
     for threads in [1, cores] {
-        let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build().unwrap();
+        let pool = rayon::ThreadPoolBuilder::new()
+            .num_threads(threads)
+            .build()
+            .unwrap();
         let t0 = Instant::now();
-        let results: Vec<_> = pool.install(|| files.par_iter().enumerate().map(|(i, f)| analyse_capture(i, false, f, &reference, &segs, 8, 4, &settings, 12.0, &satstep::images::correct::Corrections::none(8))).collect());
+        let results: Vec<_> = pool.install(|| {
+            files
+                .par_iter()
+                .enumerate()
+                .map(|(i, f)| {
+                    analyse_capture(
+                        i,
+                        false,
+                        f,
+                        &reference,
+                        &segs,
+                        8,
+                        4,
+                        &settings,
+                        12.0,
+                        &satstep::images::correct::Corrections::none(8),
+                    )
+                })
+                .collect()
+        });
         let dt = t0.elapsed().as_secs_f64();
         let positions: usize = results.iter().map(|r| r.1.len()).sum();
-        assert!(results.iter().all(|r| r.0.status == "ok"), "{:?}", results[0].0);
-        println!("  {threads} thread(s): {n} captures in {dt:.2} s = {:.2} captures/s ({} profile positions per capture)", n as f64 / dt, positions / n);
+        assert!(
+            results.iter().all(|r| r.0.status == "ok"),
+            "{:?}",
+            results[0].0
+        );
+        println!(
+            "  {threads} thread(s): {n} captures in {dt:.2} s = {:.2} captures/s ({} profile positions per capture)",
+            n as f64 / dt,
+            positions / n
+        );
     }
 }

@@ -8,7 +8,9 @@ fn main() -> ExitCode {
     match outcome {
         Ok(exit) => ExitCode::from(exit as u8),
         Err(_) => {
-            eprintln!("error: internal error (a bug in satstep); please report it with the command you ran");
+            eprintln!(
+                "error: internal error (a bug in satstep); please report it with the command you ran"
+            );
             ExitCode::from(2)
         }
     }

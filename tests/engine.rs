@@ -7,12 +7,13 @@ use satstep::oximetry::bands::SampledBand;
 use satstep::oximetry::hemoglobin::{extinction, isosbestic_points};
 use satstep::oximetry::model::{Shared, VesselModel};
 use satstep::oximetry::pointwise::fit_pointwise;
-use satstep::oximetry::segment::{fit_segment, FitSettings, RobustLoss, SegmentSpectra};
-use satstep::oximetry::sensitivity::{so2_errors, OperatingPoint, Unknowns, Weights};
+use satstep::oximetry::segment::{FitSettings, RobustLoss, SegmentSpectra, fit_segment};
+use satstep::oximetry::sensitivity::{OperatingPoint, Unknowns, Weights, so2_errors};
 
 /// Prahl's table (tests/fixtures/hb_extinction_prahl.tsv, source line in the file).
 fn source_table() -> Vec<(f64, f64, f64)> {
-    let p = std::path::PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/hb_extinction_prahl.tsv");
+    let p = std::path::PathBuf::from(env!("CARGO_MANIFEST_DIR"))
+        .join("tests/fixtures/hb_extinction_prahl.tsv");
     std::fs::read_to_string(p)
         .unwrap()
         .lines()
@@ -39,19 +40,34 @@ fn isosbestic_points_where_the_literature_puts_them() {
     // Crossings of this table by linear interpolation (../shared/reference README).
     let found = isosbestic_points(480.0, 820.0);
     for want in [500.1, 529.2, 545.3, 570.2, 584.1, 796.8] {
-        let near = found.iter().map(|f| (f - want).abs()).fold(f64::INFINITY, f64::min);
-        assert!(near <= 0.5, "no crossing within 0.5 nm of {want}: {found:?}");
+        let near = found
+            .iter()
+            .map(|f| (f - want).abs())
+            .fold(f64::INFINITY, f64::min);
+        assert!(
+            near <= 0.5,
+            "no crossing within 0.5 nm of {want}: {found:?}"
+        );
     }
 }
 
 fn eight_bands() -> Vec<SampledBand> {
     // Eight bands between 500 and 620 nm.
-    [506.0, 522.0, 548.0, 560.0, 570.0, 586.0, 600.0, 616.0].iter().map(|c| SampledBand::gaussian(*c, 8.0)).collect()
+    [506.0, 522.0, 548.0, 560.0, 570.0, 586.0, 600.0, 616.0]
+        .iter()
+        .map(|c| SampledBand::gaussian(*c, 8.0))
+        .collect()
 }
 
 /// Spectra of one segment from the model at known SO2 and veil, with 1 %
 /// multiplicative noise. Diameters and double-pass fractions vary along it.
-fn spectra(model: &VesselModel, so2: f64, veil: f64, n: usize, rng: &mut impl rand::Rng) -> SegmentSpectra {
+fn spectra(
+    model: &VesselModel,
+    so2: f64,
+    veil: f64,
+    n: usize,
+    rng: &mut impl rand::Rng,
+) -> SegmentSpectra {
     let noise = Normal::new(0.0, 0.01).unwrap();
     let mut d = Vec::new();
     let mut t = Vec::new();
@@ -60,36 +76,71 @@ fn spectra(model: &VesselModel, so2: f64, veil: f64, n: usize, rng: &mut impl ra
         let diam = 130.0 - 30.0 * f;
         let f2 = 0.3 + 0.1 * (7.0 * f).sin();
         let mut out = vec![0.0; model.n_bands()];
-        model.transmission(&Shared { so2, hb_g_per_l: 150.0, veil }, f2, diam, &mut out, None);
+        model.transmission(
+            &Shared {
+                so2,
+                hb_g_per_l: 150.0,
+                veil,
+            },
+            f2,
+            diam,
+            &mut out,
+            None,
+        );
         d.push(diam);
         t.push(out.iter().map(|v| v * (1.0 + noise.sample(rng))).collect());
     }
-    SegmentSpectra { diameters_um: d, transmissions: t }
+    SegmentSpectra {
+        diameters_um: d,
+        transmissions: t,
+    }
 }
 
 #[test]
 fn joint_fit_recovers_so2_with_honest_standard_errors() {
     let model = VesselModel::new(&eight_bands(), |_| 1.0, 0.04);
-    let settings = FitSettings { loss: RobustLoss::Squared, ..FitSettings::default() };
-    let cases: Vec<(f64, f64)> = [0.3, 0.5, 0.7, 0.85, 1.0].iter().flat_map(|s| [0.0, 0.2, 0.4, 0.6].map(|k| (*s, k))).collect();
+    let settings = FitSettings {
+        loss: RobustLoss::Squared,
+        ..FitSettings::default()
+    };
+    let cases: Vec<(f64, f64)> = [0.3, 0.5, 0.7, 0.85, 1.0]
+        .iter()
+        .flat_map(|s| [0.0, 0.2, 0.4, 0.6].map(|k| (*s, k)))
+        .collect();
     let results: Vec<(f64, f64, f64, f64, f64)> = cases
         .par_iter()
         .map(|&(so2, veil)| {
-            let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64((so2 * 1000.0 + veil * 10.0) as u64);
-            let fits: Vec<_> = (0..200).map(|_| fit_segment(&model, &spectra(&model, so2, veil, 30, &mut rng), &settings).unwrap()).collect();
-            assert!(fits.iter().all(|f| f.converged), "SO2 {so2} k {veil}: {:?}", fits.iter().map(|f| f.termination).collect::<Vec<_>>());
+            let mut rng =
+                rand_chacha::ChaCha8Rng::seed_from_u64((so2 * 1000.0 + veil * 10.0) as u64);
+            let fits: Vec<_> = (0..200)
+                .map(|_| {
+                    fit_segment(&model, &spectra(&model, so2, veil, 30, &mut rng), &settings)
+                        .unwrap()
+                })
+                .collect();
+            assert!(
+                fits.iter().all(|f| f.converged),
+                "SO2 {so2} k {veil}: {:?}",
+                fits.iter().map(|f| f.termination).collect::<Vec<_>>()
+            );
             let est: Vec<f64> = fits.iter().map(|f| f.so2 * 100.0).collect();
             let mean = est.iter().sum::<f64>() / est.len() as f64;
-            let sd = (est.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / (est.len() - 1) as f64).sqrt();
+            let sd = (est.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / (est.len() - 1) as f64)
+                .sqrt();
             let se = fits.iter().map(|f| f.so2_se * 100.0).sum::<f64>() / fits.len() as f64;
             let chi2 = fits.iter().map(|f| f.reduced_chi2).sum::<f64>() / fits.len() as f64;
             (mean - so2 * 100.0, sd, se, chi2, veil)
         })
         .collect();
     for ((so2, veil), (bias, sd, se, chi2, _)) in cases.iter().zip(&results) {
-        eprintln!("SO2 {so2:.2} k {veil:.1}: bias {bias:+.3} points, SD {sd:.3}, mean SE {se:.3}, reduced chi2 {chi2:.3}");
+        eprintln!(
+            "SO2 {so2:.2} k {veil:.1}: bias {bias:+.3} points, SD {sd:.3}, mean SE {se:.3}, reduced chi2 {chi2:.3}"
+        );
         assert!(bias.abs() < 1.0, "SO2 {so2} k {veil}: bias {bias}");
-        assert!(se / sd < 1.5 && sd / se < 1.5, "SO2 {so2} k {veil}: SE {se} vs SD {sd}");
+        assert!(
+            se / sd < 1.5 && sd / se < 1.5,
+            "SO2 {so2} k {veil}: SE {se} vs SD {sd}"
+        );
         assert!((0.8..1.2).contains(chi2), "reduced chi-square {chi2}");
     }
 }
@@ -97,14 +148,20 @@ fn joint_fit_recovers_so2_with_honest_standard_errors() {
 #[test]
 fn pointwise_fits_spread_more_than_the_joint_fit() {
     let model = VesselModel::new(&eight_bands(), |_| 1.0, 0.04);
-    let settings = FitSettings { loss: RobustLoss::Squared, ..FitSettings::default() };
+    let settings = FitSettings {
+        loss: RobustLoss::Squared,
+        ..FitSettings::default()
+    };
     for (so2, veil) in [(0.95, 0.2), (0.6, 0.4)] {
         let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(99);
         let (joint, point): (Vec<f64>, Vec<(f64, f64)>) = (0..40)
             .map(|_| {
                 let s = spectra(&model, so2, veil, 30, &mut rng);
                 let p = fit_pointwise(&model, &s, &settings);
-                (fit_segment(&model, &s, &settings).unwrap().so2, (p.so2, p.so2_sd))
+                (
+                    fit_segment(&model, &s, &settings).unwrap().so2,
+                    (p.so2, p.so2_sd),
+                )
             })
             .unzip();
         let sd = |v: &[f64]| {
@@ -115,7 +172,9 @@ fn pointwise_fits_spread_more_than_the_joint_fit() {
         let means: Vec<f64> = point.iter().map(|p| p.0).collect();
         let sp_mean = sd(&means) * 100.0;
         let along = point.iter().map(|p| p.1).sum::<f64>() / point.len() as f64 * 100.0;
-        eprintln!("SO2 {so2} k {veil}: joint SD {sj:.3} points; pointwise: SD along the segment {along:.3}, SD of the segment mean {sp_mean:.3}");
+        eprintln!(
+            "SO2 {so2} k {veil}: joint SD {sj:.3} points; pointwise: SD along the segment {along:.3}, SD of the segment mean {sp_mean:.3}"
+        );
         // Single positions scatter far more than the joint estimate, and
         // averaging them along the segment does not beat the joint fit.
         assert!(along > 3.0 * sj, "along-segment SD {along} vs joint {sj}");
@@ -137,18 +196,44 @@ fn huber_loss_resists_a_crossing() {
         }
     }
     let robust = fit_segment(&model, &s, &FitSettings::default()).unwrap();
-    let plain = fit_segment(&model, &s, &FitSettings { loss: RobustLoss::Squared, ..FitSettings::default() }).unwrap();
-    eprintln!("robust {:.4} (down-weighted positions {}), squared {:.4}", robust.so2, robust.downweighted_positions, plain.so2);
+    let plain = fit_segment(
+        &model,
+        &s,
+        &FitSettings {
+            loss: RobustLoss::Squared,
+            ..FitSettings::default()
+        },
+    )
+    .unwrap();
+    eprintln!(
+        "robust {:.4} (down-weighted positions {}), squared {:.4}",
+        robust.so2, robust.downweighted_positions, plain.so2
+    );
     // Huber bounds the influence of the crossing but does not remove it.
     assert!((robust.so2 - 0.9).abs() < 0.03, "{}", robust.so2);
     assert!((robust.so2 - 0.9).abs() < 0.5 * (plain.so2 - 0.9).abs());
     assert!(robust.downweighted_positions >= 6);
 }
 
-const KS: [f64; 19] = [0.0, 0.05, 0.1, 0.15, 0.2, 0.25, 0.3, 0.35, 0.4, 0.45, 0.5, 0.55, 0.6, 0.65, 0.7, 0.75, 0.8, 0.85, 0.9];
+const KS: [f64; 19] = [
+    0.0, 0.05, 0.1, 0.15, 0.2, 0.25, 0.3, 0.35, 0.4, 0.45, 0.5, 0.55, 0.6, 0.65, 0.7, 0.75, 0.8,
+    0.85, 0.9,
+];
 
 fn curves(model: &VesselModel, unknowns: Unknowns, weights: Weights) -> Vec<(Vec<f64>, f64)> {
-    KS.iter().map(|k| so2_errors(model, &OperatingPoint::default(), *k, 0.01, unknowns, weights).unwrap()).collect()
+    KS.iter()
+        .map(|k| {
+            so2_errors(
+                model,
+                &OperatingPoint::default(),
+                *k,
+                0.01,
+                unknowns,
+                weights,
+            )
+            .unwrap()
+        })
+        .collect()
 }
 
 /// The veil inflates error propagation, most steeply as k approaches 1 (a
@@ -162,7 +247,17 @@ fn the_veil_inflates_error_propagation_in_every_band() {
     let model = VesselModel::new(&eight_bands(), |_| 1.0, 0.04);
     let op = OperatingPoint::default();
     let mut clear = vec![0.0; model.n_bands()];
-    model.transmission(&Shared { so2: op.so2, hb_g_per_l: op.hb_g_per_l, veil: 0.0 }, op.double_pass, op.diameter_um, &mut clear, None);
+    model.transmission(
+        &Shared {
+            so2: op.so2,
+            hb_g_per_l: op.hb_g_per_l,
+            veil: 0.0,
+        },
+        op.double_pass,
+        op.diameter_um,
+        &mut clear,
+        None,
+    );
     for unknowns in [Unknowns::VeilShared, Unknowns::VeilPerPosition] {
         let rows = curves(&model, unknowns, Weights::Held);
         // At k = 0 both weightings are the same estimator.
@@ -170,14 +265,24 @@ fn the_veil_inflates_error_propagation_in_every_band() {
         for (i, k) in KS.iter().enumerate() {
             for b in 0..model.n_bands() {
                 let want = rows[0].0[b] * (1.0 + k / ((1.0 - k) * clear[b]));
-                assert!((rows[i].0[b] - want).abs() <= 1e-9 * want.max(1e-3), "{unknowns:?} band {b} k {k}: {} vs closed form {want}", rows[i].0[b]);
+                assert!(
+                    (rows[i].0[b] - want).abs() <= 1e-9 * want.max(1e-3),
+                    "{unknowns:?} band {b} k {k}: {} vs closed form {want}",
+                    rows[i].0[b]
+                );
             }
         }
         for b in 0..model.n_bands() {
             let band: Vec<f64> = rows.iter().map(|r| r.0[b]).collect();
-            assert!(band.windows(2).all(|w| w[1] > w[0]), "{unknowns:?} band {b}: {band:?}");
+            assert!(
+                band.windows(2).all(|w| w[1] > w[0]),
+                "{unknowns:?} band {b}: {band:?}"
+            );
             let steps: Vec<f64> = band.windows(2).map(|w| w[1] - w[0]).collect();
-            assert!(steps.windows(2).all(|w| w[1] > w[0]), "{unknowns:?} band {b} does not steepen: {steps:?}");
+            assert!(
+                steps.windows(2).all(|w| w[1] > w[0]),
+                "{unknowns:?} band {b} does not steepen: {steps:?}"
+            );
         }
         let all: Vec<f64> = rows.iter().map(|r| r.1).collect();
         assert!(all.windows(2).all(|w| w[1] > w[0]), "{unknowns:?}: {all:?}");
@@ -197,7 +302,13 @@ fn refitted_weights_grow_with_the_veil_past_small_veils() {
     for b in 0..model.n_bands() {
         for (i, w) in rows.windows(2).enumerate() {
             if KS[i] >= 0.2 {
-                assert!(w[1].0[b] > w[0].0[b], "band {b} at k {}: {} then {}", KS[i], w[0].0[b], w[1].0[b]);
+                assert!(
+                    w[1].0[b] > w[0].0[b],
+                    "band {b} at k {}: {} then {}",
+                    KS[i],
+                    w[0].0[b],
+                    w[1].0[b]
+                );
             }
         }
         assert!(rows[18].0[b] > 3.0 * rows[0].0[b], "band {b}");
@@ -206,8 +317,14 @@ fn refitted_weights_grow_with_the_veil_past_small_veils() {
         assert!(w[1].1 > w[0].1);
     }
     assert!(rows[18].1 - rows[17].1 > rows[1].1 - rows[0].1);
-    let dips: Vec<usize> = (0..model.n_bands()).filter(|b| rows[..5].windows(2).any(|w| w[1].0[*b] < w[0].0[*b])).collect();
-    assert_eq!(dips, vec![3, 4, 5], "bands whose refitted error falls somewhere below k = 0.2");
+    let dips: Vec<usize> = (0..model.n_bands())
+        .filter(|b| rows[..5].windows(2).any(|w| w[1].0[*b] < w[0].0[*b]))
+        .collect();
+    assert_eq!(
+        dips,
+        vec![3, 4, 5],
+        "bands whose refitted error falls somewhere below k = 0.2"
+    );
 }
 
 /// The linearised figures describe satstep's own joint fit: on a noise-free
@@ -217,7 +334,10 @@ fn refitted_weights_grow_with_the_veil_past_small_veils() {
 #[test]
 fn linearised_errors_predict_the_joint_fit_shift() {
     let model = VesselModel::new(&eight_bands(), |_| 1.0, 0.04);
-    let settings = FitSettings { loss: RobustLoss::Squared, ..FitSettings::default() };
+    let settings = FitSettings {
+        loss: RobustLoss::Squared,
+        ..FitSettings::default()
+    };
     let op = OperatingPoint::default();
     for (veil, tol) in [(0.0, 0.03), (0.2, 0.15)] {
         let segment = |bump: Option<usize>| {
@@ -226,21 +346,53 @@ fn linearised_errors_predict_the_joint_fit_shift() {
                 let f = p as f64 / 30.0 - 0.5;
                 let diam = op.diameter_um * (1.0 + 0.3 * f);
                 let mut out = vec![0.0; model.n_bands()];
-                model.transmission(&Shared { so2: op.so2, hb_g_per_l: op.hb_g_per_l, veil }, op.double_pass * (1.0 + 0.3 * (7.0 * f).sin()), diam, &mut out, None);
+                model.transmission(
+                    &Shared {
+                        so2: op.so2,
+                        hb_g_per_l: op.hb_g_per_l,
+                        veil,
+                    },
+                    op.double_pass * (1.0 + 0.3 * (7.0 * f).sin()),
+                    diam,
+                    &mut out,
+                    None,
+                );
                 if let Some(b) = bump {
                     out[b] *= 1.001;
                 }
                 d.push(diam);
                 t.push(out);
             }
-            SegmentSpectra { diameters_um: d, transmissions: t }
+            SegmentSpectra {
+                diameters_um: d,
+                transmissions: t,
+            }
         };
         let base = fit_segment(&model, &segment(None), &settings).unwrap();
         assert!((base.so2 - op.so2).abs() < 1e-9);
-        let predicted = so2_errors(&model, &op, veil, 0.01, Unknowns::VeilShared, Weights::Refitted).unwrap().0;
+        let predicted = so2_errors(
+            &model,
+            &op,
+            veil,
+            0.01,
+            Unknowns::VeilShared,
+            Weights::Refitted,
+        )
+        .unwrap()
+        .0;
         for b in 0..model.n_bands() {
-            let shift = 10.0 * 100.0 * (fit_segment(&model, &segment(Some(b)), &settings).unwrap().so2 - base.so2).abs();
-            assert!((shift - predicted[b]).abs() < tol, "k {veil} band {b}: fit moved {shift:.3} points, linearised {:.3}", predicted[b]);
+            let shift = 10.0
+                * 100.0
+                * (fit_segment(&model, &segment(Some(b)), &settings)
+                    .unwrap()
+                    .so2
+                    - base.so2)
+                    .abs();
+            assert!(
+                (shift - predicted[b]).abs() < tol,
+                "k {veil} band {b}: fit moved {shift:.3} points, linearised {:.3}",
+                predicted[b]
+            );
         }
     }
 }
@@ -253,12 +405,36 @@ fn linearised_errors_predict_the_joint_fit_shift() {
 fn single_band_errors_beside_the_rule_of_thumb() {
     let op = OperatingPoint::default();
     let eight = VesselModel::new(&eight_bands(), |_| 1.0, 0.04);
-    let (per, all) = so2_errors(&eight, &op, 0.0, 0.01, Unknowns::VeilShared, Weights::Refitted).unwrap();
+    let (per, all) = so2_errors(
+        &eight,
+        &op,
+        0.0,
+        0.01,
+        Unknowns::VeilShared,
+        Weights::Refitted,
+    )
+    .unwrap();
     let worst = per.iter().copied().fold(0.0, f64::max);
     assert!(worst < 1.0 && all < 1.5, "eight bands: {per:?}, all {all}");
-    let five: Vec<SampledBand> = [522.0, 548.0, 570.0, 586.0, 600.0].iter().map(|c| SampledBand::gaussian(*c, 8.0)).collect();
-    let (per5, _) = so2_errors(&VesselModel::new(&five, |_| 1.0, 0.04), &op, 0.0, 0.01, Unknowns::VeilPerPosition, Weights::Refitted).unwrap();
+    let five: Vec<SampledBand> = [522.0, 548.0, 570.0, 586.0, 600.0]
+        .iter()
+        .map(|c| SampledBand::gaussian(*c, 8.0))
+        .collect();
+    let (per5, _) = so2_errors(
+        &VesselModel::new(&five, |_| 1.0, 0.04),
+        &op,
+        0.0,
+        0.01,
+        Unknowns::VeilPerPosition,
+        Weights::Refitted,
+    )
+    .unwrap();
     let worst5 = per5.iter().copied().fold(0.0, f64::max);
-    assert!((2.0..=3.0).contains(&worst5), "five bands, veil per position: {per5:?}");
-    eprintln!("k = 0: eight bands, veil shared {per:.2?} (all {all:.2}); five bands, veil per position {per5:.2?}");
+    assert!(
+        (2.0..=3.0).contains(&worst5),
+        "five bands, veil per position: {per5:?}"
+    );
+    eprintln!(
+        "k = 0: eight bands, veil shared {per:.2?} (all {all:.2}); five bands, veil per position {per5:.2?}"
+    );
 }

@@ -3,10 +3,10 @@
 
 use rand::SeedableRng;
 use satstep::config::segments::{Segment, VesselKind};
-use satstep::images::ingest::{read_capture, CaptureError};
+use satstep::images::ingest::{CaptureError, read_capture};
 use satstep::images::register::register;
 use satstep::oximetry::bands::SampledBand;
-use satstep::simulate::render::{render, write_tiff, Motion, Scene, VesselState};
+use satstep::simulate::render::{Motion, Scene, VesselState, render, write_tiff};
 
 fn vessels() -> Vec<Segment> {
     let arc = |id: &str, kind, a: f64, bend: f64| Segment {
@@ -30,13 +30,20 @@ fn vessels() -> Vec<Segment> {
 }
 
 fn capture(motion: Motion, noise_seed: Option<u64>) -> Vec<Vec<u16>> {
-    let bands = vec![SampledBand::gaussian(570.0, 10.0), SampledBand::gaussian(600.0, 10.0)];
+    let bands = vec![
+        SampledBand::gaussian(570.0, 10.0),
+        SampledBand::gaussian(600.0, 10.0),
+    ];
     let segs = vessels();
     let vs: Vec<VesselState> = segs
         .iter()
         .map(|s| VesselState {
             segment: s,
-            so2: if s.kind == VesselKind::Arteriole { 0.96 } else { 0.6 },
+            so2: if s.kind == VesselKind::Arteriole {
+                0.96
+            } else {
+                0.6
+            },
             diameter_um: Box::new(|_| 130.0),
             double_pass: Box::new(|_| 0.3),
         })
@@ -67,15 +74,39 @@ fn as_f32(p: &[u16]) -> Vec<f32> {
 #[test]
 fn registration_recovers_known_motion() {
     for (noise, m) in [
-        (None, Motion { dx: 3.37, dy: -2.81, angle_deg: 0.6 }),
-        (Some(3), Motion { dx: -5.2, dy: 4.45, angle_deg: -0.85 }),
-        (Some(4), Motion { dx: 0.4, dy: 1.1, angle_deg: 0.0 }),
+        (
+            None,
+            Motion {
+                dx: 3.37,
+                dy: -2.81,
+                angle_deg: 0.6,
+            },
+        ),
+        (
+            Some(3),
+            Motion {
+                dx: -5.2,
+                dy: 4.45,
+                angle_deg: -0.85,
+            },
+        ),
+        (
+            Some(4),
+            Motion {
+                dx: 0.4,
+                dy: 1.1,
+                angle_deg: 0.0,
+            },
+        ),
     ] {
         let reference = capture(Motion::default(), noise.map(|s| s + 100));
         let moved = capture(m, noise);
         let r = register(&as_f32(&reference[0]), &as_f32(&moved[0]), 160, 160, 2.0);
         eprintln!("true {m:?} found {r:?}");
-        assert!((r.dx - m.dx).abs() < 0.1 && (r.dy - m.dy).abs() < 0.1, "{r:?} vs {m:?}");
+        assert!(
+            (r.dx - m.dx).abs() < 0.1 && (r.dy - m.dy).abs() < 0.1,
+            "{r:?} vs {m:?}"
+        );
         assert!((r.angle_deg - m.angle_deg).abs() < 0.1, "{r:?} vs {m:?}");
         assert!(r.score > 0.9, "{r:?}");
     }
@@ -88,7 +119,10 @@ fn ingest_reads_every_supported_depth_and_refuses_the_rest() {
     let good = dir.path().join("good.tif");
     write_tiff(&good, 160, 160, &pages).unwrap();
     let c = read_capture(&good, 2, Some((160, 160))).unwrap();
-    assert_eq!((c.width, c.height, c.bands.len(), c.bit_depth), (160, 160, 2, 16));
+    assert_eq!(
+        (c.width, c.height, c.bands.len(), c.bit_depth),
+        (160, 160, 2, 16)
+    );
     assert_eq!(c.at(1, 10, 20), pages[1][20 * 160 + 10] as f32);
 
     // 8-bit and 32-bit float pages.
@@ -98,9 +132,11 @@ fn ingest_reads_every_supported_depth_and_refuses_the_rest() {
         let mut enc = tiff::encoder::TiffEncoder::new(std::io::BufWriter::new(f)).unwrap();
         for _ in 0..2 {
             if depth == 8 {
-                enc.write_image::<tiff::encoder::colortype::Gray8>(4, 3, &[7u8; 12]).unwrap();
+                enc.write_image::<tiff::encoder::colortype::Gray8>(4, 3, &[7u8; 12])
+                    .unwrap();
             } else {
-                enc.write_image::<tiff::encoder::colortype::Gray32Float>(4, 3, &[0.25f32; 12]).unwrap();
+                enc.write_image::<tiff::encoder::colortype::Gray32Float>(4, 3, &[0.25f32; 12])
+                    .unwrap();
             }
         }
         drop(enc);
@@ -110,76 +146,169 @@ fn ingest_reads_every_supported_depth_and_refuses_the_rest() {
     }
 
     // Wrong band count, wrong size.
-    assert!(matches!(read_capture(&good, 3, None), Err(CaptureError::BandCount { found: 2, expected: 3, .. })));
+    assert!(matches!(
+        read_capture(&good, 3, None),
+        Err(CaptureError::BandCount {
+            found: 2,
+            expected: 3,
+            ..
+        })
+    ));
     let e = read_capture(&good, 2, Some((256, 256))).unwrap_err();
-    assert_eq!(e.to_string(), format!("`{}` is 160×160 pixels; this eye's captures are 256×256", good.display()));
+    assert_eq!(
+        e.to_string(),
+        format!(
+            "`{}` is 160×160 pixels; this eye's captures are 256×256",
+            good.display()
+        )
+    );
 
     // Truncated, not a TIFF, empty, missing, RGB.
     let bytes = std::fs::read(&good).unwrap();
     let trunc = dir.path().join("trunc.tif");
     std::fs::write(&trunc, &bytes[..bytes.len() / 3]).unwrap();
-    assert!(matches!(read_capture(&trunc, 2, None), Err(CaptureError::Decode { .. })), "{:?}", read_capture(&trunc, 2, None));
+    assert!(
+        matches!(
+            read_capture(&trunc, 2, None),
+            Err(CaptureError::Decode { .. })
+        ),
+        "{:?}",
+        read_capture(&trunc, 2, None)
+    );
     let png = dir.path().join("fake.tif");
     std::fs::write(&png, b"\x89PNG\r\n\x1a\nnot a tiff at all").unwrap();
-    assert!(matches!(read_capture(&png, 2, None), Err(CaptureError::Decode { page: 1, .. })));
+    assert!(matches!(
+        read_capture(&png, 2, None),
+        Err(CaptureError::Decode { page: 1, .. })
+    ));
     let empty = dir.path().join("empty.tif");
     std::fs::write(&empty, b"").unwrap();
-    assert!(matches!(read_capture(&empty, 2, None), Err(CaptureError::Decode { .. })));
-    assert!(matches!(read_capture(&dir.path().join("none.tif"), 2, None), Err(CaptureError::Open { .. })));
+    assert!(matches!(
+        read_capture(&empty, 2, None),
+        Err(CaptureError::Decode { .. })
+    ));
+    assert!(matches!(
+        read_capture(&dir.path().join("none.tif"), 2, None),
+        Err(CaptureError::Open { .. })
+    ));
     let rgb = dir.path().join("rgb.tif");
     {
         let f = std::fs::File::create(&rgb).unwrap();
         let mut enc = tiff::encoder::TiffEncoder::new(std::io::BufWriter::new(f)).unwrap();
-        enc.write_image::<tiff::encoder::colortype::RGB8>(2, 2, &[1u8; 12]).unwrap();
+        enc.write_image::<tiff::encoder::colortype::RGB8>(2, 2, &[1u8; 12])
+            .unwrap();
     }
     let e = read_capture(&rgb, 1, None).unwrap_err();
     assert!(matches!(e, CaptureError::PixelType { .. }), "{e:?}");
-    assert!(e.to_string().contains("expected single-channel 8-bit, 16-bit or 32-bit float grey"));
+    assert!(
+        e.to_string()
+            .contains("expected single-channel 8-bit, 16-bit or 32-bit float grey")
+    );
     // Pages of different sizes.
     let mixed = dir.path().join("mixed.tif");
     {
         let f = std::fs::File::create(&mixed).unwrap();
         let mut enc = tiff::encoder::TiffEncoder::new(std::io::BufWriter::new(f)).unwrap();
-        enc.write_image::<tiff::encoder::colortype::Gray16>(4, 4, &[1u16; 16]).unwrap();
-        enc.write_image::<tiff::encoder::colortype::Gray16>(4, 2, &[1u16; 8]).unwrap();
+        enc.write_image::<tiff::encoder::colortype::Gray16>(4, 4, &[1u16; 16])
+            .unwrap();
+        enc.write_image::<tiff::encoder::colortype::Gray16>(4, 2, &[1u16; 8])
+            .unwrap();
     }
-    assert!(matches!(read_capture(&mixed, 2, None), Err(CaptureError::PageSize { page: 2, .. })));
+    assert!(matches!(
+        read_capture(&mixed, 2, None),
+        Err(CaptureError::PageSize { page: 2, .. })
+    ));
 }
 
 #[test]
 fn profiles_recover_known_transmission_and_diameter() {
     use satstep::images::ingest::Multiband;
-    use satstep::images::profile::{analyse_segment, ProfileSettings};
+    use satstep::images::profile::{ProfileSettings, analyse_segment};
     use satstep::oximetry::model::{Shared, VesselModel};
     use satstep::simulate::render::background_reflectance;
     // One straight vessel, 130 µm at 12 µm/px, no noise: T and diameter are known.
-    let bands = vec![SampledBand::gaussian(570.0, 10.0), SampledBand::gaussian(600.0, 10.0)];
-    let seg = Segment { id: "A1".into(), kind: VesselKind::Arteriole, points: vec![(20.0, 40.0), (140.0, 120.0)], notes: String::new() };
-    for (d_um, so2, veil, noisy) in [(130.0, 0.96, 0.1, false), (90.0, 0.6, 0.3, false), (150.0, 0.6, 0.0, true)] {
-        let vs = vec![VesselState { segment: &seg, so2, diameter_um: Box::new(move |_| d_um), double_pass: Box::new(|_| 0.3) }];
+    let bands = vec![
+        SampledBand::gaussian(570.0, 10.0),
+        SampledBand::gaussian(600.0, 10.0),
+    ];
+    let seg = Segment {
+        id: "A1".into(),
+        kind: VesselKind::Arteriole,
+        points: vec![(20.0, 40.0), (140.0, 120.0)],
+        notes: String::new(),
+    };
+    for (d_um, so2, veil, noisy) in [
+        (130.0, 0.96, 0.1, false),
+        (90.0, 0.6, 0.3, false),
+        (150.0, 0.6, 0.0, true),
+    ] {
+        let vs = vec![VesselState {
+            segment: &seg,
+            so2,
+            diameter_um: Box::new(move |_| d_um),
+            double_pass: Box::new(|_| 0.3),
+        }];
         let offsets = [(0.0, 0.0), (0.0, 0.0)];
         let scene = Scene {
-            width: 160, height: 160, pixel_um: 12.0, bands: &bands, band_offsets: &offsets, pigmentation: 2.0, veil, hb_g_per_l: 150.0, backscatter: 0.04,
-            well_electrons: if noisy { 20_000.0 } else { 1e15 }, read_noise_electrons: if noisy { 6.0 } else { 0.0 },
+            width: 160,
+            height: 160,
+            pixel_um: 12.0,
+            bands: &bands,
+            band_offsets: &offsets,
+            pigmentation: 2.0,
+            veil,
+            hb_g_per_l: 150.0,
+            backscatter: 0.04,
+            well_electrons: if noisy { 20_000.0 } else { 1e15 },
+            read_noise_electrons: if noisy { 6.0 } else { 0.0 },
         };
         let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(9);
         let pages = render(&scene, &vs, Motion::default(), 1.0, &mut rng);
-        let img = Multiband { width: 160, height: 160, bands: pages.iter().map(|p| as_f32(p)).collect(), bit_depth: 16 };
+        let img = Multiband {
+            width: 160,
+            height: 160,
+            bands: pages.iter().map(|p| as_f32(p)).collect(),
+            bit_depth: 16,
+        };
         let model = VesselModel::new(&bands, |l| background_reflectance(l, 2.0), 0.04);
         let mut truth = vec![0.0; 2];
-        model.transmission(&Shared { so2, hb_g_per_l: 150.0, veil }, 0.3, d_um, &mut truth, None);
+        model.transmission(
+            &Shared {
+                so2,
+                hb_g_per_l: 150.0,
+                veil,
+            },
+            0.3,
+            d_um,
+            &mut truth,
+            None,
+        );
         let res = analyse_segment(&img, &seg.points, &[], 0, &ProfileSettings::default());
         assert!(res.len() > 40);
         let ok: Vec<_> = res.iter().filter(|r| r.flags.is_empty()).collect();
-        assert!(ok.len() > res.len() * 9 / 10, "{:?}", res.iter().map(|r| &r.flags).collect::<Vec<_>>());
-        let mean = |f: &dyn Fn(&satstep::images::profile::ProfileResult) -> f64| ok.iter().map(|r| f(r)).sum::<f64>() / ok.len() as f64;
+        assert!(
+            ok.len() > res.len() * 9 / 10,
+            "{:?}",
+            res.iter().map(|r| &r.flags).collect::<Vec<_>>()
+        );
+        let mean = |f: &dyn Fn(&satstep::images::profile::ProfileResult) -> f64| {
+            ok.iter().map(|r| f(r)).sum::<f64>() / ok.len() as f64
+        };
         let d = mean(&|r| r.diameter_px) * 12.0;
-        eprintln!("d {d_um} µm: found {d:.1}; T truth {truth:?}, found {:.4} {:.4}", mean(&|r| r.transmission[0]), mean(&|r| r.transmission[1]));
+        eprintln!(
+            "d {d_um} µm: found {d:.1}; T truth {truth:?}, found {:.4} {:.4}",
+            mean(&|r| r.transmission[0]),
+            mean(&|r| r.transmission[1])
+        );
         assert!((d - d_um).abs() / d_um < 0.05, "diameter {d} vs {d_um}");
         for b in 0..2 {
             let t = mean(&|r| r.transmission[b]);
             let tol = if noisy { 0.02 } else { 0.01 };
-            assert!((t - truth[b]).abs() / truth[b] < tol, "band {b}: T {t} vs {}", truth[b]);
+            assert!(
+                (t - truth[b]).abs() / truth[b] < tol,
+                "band {b}: T {t} vs {}",
+                truth[b]
+            );
         }
     }
 }
@@ -189,21 +318,55 @@ fn dark_flat_and_band_offsets_are_corrected() {
     use satstep::config::study::{Band, BandResponse, Instrument};
     use satstep::images::correct::Corrections;
     use satstep::images::ingest::Multiband;
-    use satstep::images::profile::{analyse_segment, ProfileSettings};
+    use satstep::images::profile::{ProfileSettings, analyse_segment};
     // Four vessels in different directions (a single straight one would
     // leave the shift along it undetermined), noise-free; band 2 is
     // misregistered by a known offset, every page has a dark offset and
     // vignetting.
-    let bands = vec![SampledBand::gaussian(570.0, 10.0), SampledBand::gaussian(600.0, 10.0)];
+    let bands = vec![
+        SampledBand::gaussian(570.0, 10.0),
+        SampledBand::gaussian(600.0, 10.0),
+    ];
     let mut segs = vessels();
     for (k, x) in [(0, 60.0), (1, 120.0)] {
-        segs.push(Segment { id: format!("V{}", k + 3), kind: VesselKind::Venule, points: vec![(x, 10.0), (x + 12.0, 80.0), (x - 6.0, 150.0)], notes: String::new() });
+        segs.push(Segment {
+            id: format!("V{}", k + 3),
+            kind: VesselKind::Venule,
+            points: vec![(x, 10.0), (x + 12.0, 80.0), (x - 6.0, 150.0)],
+            notes: String::new(),
+        });
     }
     let seg = segs[0].clone();
-    let vs: Vec<VesselState> = segs.iter().map(|s| VesselState { segment: s, so2: 0.96, diameter_um: Box::new(|_| 130.0), double_pass: Box::new(|_| 0.3) }).collect();
+    let vs: Vec<VesselState> = segs
+        .iter()
+        .map(|s| VesselState {
+            segment: s,
+            so2: 0.96,
+            diameter_um: Box::new(|_| 130.0),
+            double_pass: Box::new(|_| 0.3),
+        })
+        .collect();
     let draw = |offsets: &[(f64, f64)]| {
-        let scene = Scene { width: 160, height: 160, pixel_um: 12.0, bands: &bands, band_offsets: offsets, pigmentation: 2.0, veil: 0.1, hb_g_per_l: 150.0, backscatter: 0.04, well_electrons: 1e15, read_noise_electrons: 0.0 };
-        render(&scene, &vs, Motion::default(), 1.0, &mut rand_chacha::ChaCha8Rng::seed_from_u64(1))
+        let scene = Scene {
+            width: 160,
+            height: 160,
+            pixel_um: 12.0,
+            bands: &bands,
+            band_offsets: offsets,
+            pigmentation: 2.0,
+            veil: 0.1,
+            hb_g_per_l: 150.0,
+            backscatter: 0.04,
+            well_electrons: 1e15,
+            read_noise_electrons: 0.0,
+        };
+        render(
+            &scene,
+            &vs,
+            Motion::default(),
+            1.0,
+            &mut rand_chacha::ChaCha8Rng::seed_from_u64(1),
+        )
     };
     let clean = draw(&[(0.0, 0.0), (0.0, 0.0)]);
     let shift = (1.4, -0.7);
@@ -214,82 +377,220 @@ fn dark_flat_and_band_offsets_are_corrected() {
         1.0 - 0.35 * (x * x + y * y) / (2.0 * 80.0 * 80.0)
     };
     let dark_level = 900.0;
-    let raw: Vec<Vec<u16>> = moved.iter().map(|p| p.iter().enumerate().map(|(i, v)| (*v as f64 * gain(i) + dark_level).round() as u16).collect()).collect();
+    let raw: Vec<Vec<u16>> = moved
+        .iter()
+        .map(|p| {
+            p.iter()
+                .enumerate()
+                .map(|(i, v)| (*v as f64 * gain(i) + dark_level).round() as u16)
+                .collect()
+        })
+        .collect();
     let dir = tempfile::tempdir().unwrap();
     let dark: Vec<Vec<u16>> = (0..2).map(|_| vec![dark_level as u16; w * h]).collect();
-    let flat: Vec<Vec<u16>> = (0..2).map(|_| (0..w * h).map(|i| (dark_level + 40_000.0 * gain(i)).round() as u16).collect()).collect();
+    let flat: Vec<Vec<u16>> = (0..2)
+        .map(|_| {
+            (0..w * h)
+                .map(|i| (dark_level + 40_000.0 * gain(i)).round() as u16)
+                .collect()
+        })
+        .collect();
     write_tiff(&dir.path().join("dark.tif"), w, h, &dark).unwrap();
     write_tiff(&dir.path().join("flat.tif"), w, h, &flat).unwrap();
-    let band = |name: &str, c: f64| Band { name: name.into(), response: BandResponse::Gaussian { centre_nm: c, fwhm_nm: 10.0 }, offset_px: None };
-    let mut inst = Instrument { name: "test".into(), pixel_size_um: 12.0, bands: vec![band("b570", 570.0), band("b600", 600.0)], dark: Some(dir.path().join("dark.tif")), flat: Some(dir.path().join("flat.tif")), estimate_band_offsets: true };
-    let as_img = |pages: &[Vec<u16>]| Multiband { width: w, height: h, bands: pages.iter().map(|p| as_f32(p)).collect(), bit_depth: 16 };
+    let band = |name: &str, c: f64| Band {
+        name: name.into(),
+        response: BandResponse::Gaussian {
+            centre_nm: c,
+            fwhm_nm: 10.0,
+        },
+        offset_px: None,
+    };
+    let mut inst = Instrument {
+        name: "test".into(),
+        pixel_size_um: 12.0,
+        bands: vec![band("b570", 570.0), band("b600", 600.0)],
+        dark: Some(dir.path().join("dark.tif")),
+        flat: Some(dir.path().join("flat.tif")),
+        estimate_band_offsets: true,
+    };
+    let as_img = |pages: &[Vec<u16>]| Multiband {
+        width: w,
+        height: h,
+        bands: pages.iter().map(|p| as_f32(p)).collect(),
+        bit_depth: 16,
+    };
     let st = ProfileSettings::default();
     let centre_t = |img: &Multiband| -> Vec<f64> {
         let others: Vec<Vec<(f64, f64)>> = segs[1..].iter().map(|s| s.points.clone()).collect();
-        let ok: Vec<_> = analyse_segment(img, &seg.points, &others, 0, &st).into_iter().filter(|r| r.flags.is_empty()).collect();
+        let ok: Vec<_> = analyse_segment(img, &seg.points, &others, 0, &st)
+            .into_iter()
+            .filter(|r| r.flags.is_empty())
+            .collect();
         assert!(ok.len() > 10);
-        (0..2).map(|b| ok.iter().map(|r| r.transmission[b]).sum::<f64>() / ok.len() as f64).collect()
+        (0..2)
+            .map(|b| ok.iter().map(|r| r.transmission[b]).sum::<f64>() / ok.len() as f64)
+            .collect()
     };
     let truth = centre_t(&as_img(&clean));
 
     // Estimated offsets: the known misregistration, to 0.1 px.
     let mut img = as_img(&raw);
-    let used = Corrections::load(&inst, 0).unwrap().apply(&mut img).unwrap();
-    assert!((used[1].0 - shift.0).abs() < 0.1 && (used[1].1 - shift.1).abs() < 0.1, "estimated {:?}, rendered {shift:?}", used[1]);
+    let used = Corrections::load(&inst, 0)
+        .unwrap()
+        .apply(&mut img)
+        .unwrap();
+    assert!(
+        (used[1].0 - shift.0).abs() < 0.1 && (used[1].1 - shift.1).abs() < 0.1,
+        "estimated {:?}, rendered {shift:?}",
+        used[1]
+    );
     let corrected = centre_t(&img);
     for b in 0..2 {
-        assert!((corrected[b] - truth[b]).abs() / truth[b] < 0.01, "band {b}: corrected T {} vs {}", corrected[b], truth[b]);
+        assert!(
+            (corrected[b] - truth[b]).abs() / truth[b] < 0.01,
+            "band {b}: corrected T {} vs {}",
+            corrected[b],
+            truth[b]
+        );
     }
     // Offsets given in the instrument file do the same.
     inst.estimate_band_offsets = false;
     inst.bands[1].offset_px = Some(shift);
     let mut img = as_img(&raw);
-    assert_eq!(Corrections::load(&inst, 0).unwrap().apply(&mut img).unwrap()[1], shift);
+    assert_eq!(
+        Corrections::load(&inst, 0)
+            .unwrap()
+            .apply(&mut img)
+            .unwrap()[1],
+        shift
+    );
     let given = centre_t(&img);
-    assert!((given[1] - truth[1]).abs() / truth[1] < 0.01, "{given:?} vs {truth:?}");
+    assert!(
+        (given[1] - truth[1]).abs() / truth[1] < 0.01,
+        "{given:?} vs {truth:?}"
+    );
     // Without the dark frame the transmission is biased.
     let uncorrected = centre_t(&as_img(&raw));
-    assert!((uncorrected[0] - truth[0]).abs() / truth[0] > 0.03, "the dark offset should bias T: {uncorrected:?} vs {truth:?}");
+    assert!(
+        (uncorrected[0] - truth[0]).abs() / truth[0] > 0.03,
+        "the dark offset should bias T: {uncorrected:?} vs {truth:?}"
+    );
 }
 
 #[test]
 fn a_central_reflex_does_not_bias_the_transmission() {
     use satstep::images::ingest::Multiband;
-    use satstep::images::profile::{analyse_segment, ProfileSettings};
+    use satstep::images::profile::{ProfileSettings, analyse_segment};
     use satstep::oximetry::model::{Shared, VesselModel};
     use satstep::simulate::render::background_reflectance;
     // A straight arteriole, noise-free; then a bright stripe of 25 % on its
     // axis (Gaussian, σ = 0.12 × radius), as a central reflex. Unhandled,
     // such a reflex raises the centre-line T by 10–25 %.
-    let bands = vec![SampledBand::gaussian(570.0, 10.0), SampledBand::gaussian(600.0, 10.0)];
+    let bands = vec![
+        SampledBand::gaussian(570.0, 10.0),
+        SampledBand::gaussian(600.0, 10.0),
+    ];
     let (a, b) = ((20.0, 40.0), (140.0, 120.0));
-    let seg = Segment { id: "A1".into(), kind: VesselKind::Arteriole, points: vec![a, b], notes: String::new() };
+    let seg = Segment {
+        id: "A1".into(),
+        kind: VesselKind::Arteriole,
+        points: vec![a, b],
+        notes: String::new(),
+    };
     let (d_um, so2, veil) = (130.0, 0.96, 0.1);
-    let vs = vec![VesselState { segment: &seg, so2, diameter_um: Box::new(move |_| d_um), double_pass: Box::new(|_| 0.3) }];
+    let vs = vec![VesselState {
+        segment: &seg,
+        so2,
+        diameter_um: Box::new(move |_| d_um),
+        double_pass: Box::new(|_| 0.3),
+    }];
     let offsets = [(0.0, 0.0), (0.0, 0.0)];
-    let scene = Scene { width: 160, height: 160, pixel_um: 12.0, bands: &bands, band_offsets: &offsets, pigmentation: 2.0, veil, hb_g_per_l: 150.0, backscatter: 0.04, well_electrons: 1e15, read_noise_electrons: 0.0 };
-    let pages = render(&scene, &vs, Motion::default(), 1.0, &mut rand_chacha::ChaCha8Rng::seed_from_u64(2));
+    let scene = Scene {
+        width: 160,
+        height: 160,
+        pixel_um: 12.0,
+        bands: &bands,
+        band_offsets: &offsets,
+        pigmentation: 2.0,
+        veil,
+        hb_g_per_l: 150.0,
+        backscatter: 0.04,
+        well_electrons: 1e15,
+        read_noise_electrons: 0.0,
+    };
+    let pages = render(
+        &scene,
+        &vs,
+        Motion::default(),
+        1.0,
+        &mut rand_chacha::ChaCha8Rng::seed_from_u64(2),
+    );
     let sigma = 0.12 * d_um / 2.0 / 12.0;
     let len = ((b.0 - a.0) as f64).hypot(b.1 - a.1);
     let dist = |i: usize| {
         let (x, y) = ((i % 160) as f64 - a.0, (i / 160) as f64 - a.1);
         (x * (b.1 - a.1) - y * (b.0 - a.0)).abs() / len
     };
-    let with_reflex: Vec<Vec<f32>> = pages.iter().map(|p| p.iter().enumerate().map(|(i, v)| (*v as f64 * (1.0 + 0.25 * (-dist(i).powi(2) / (2.0 * sigma * sigma)).exp())) as f32).collect()).collect();
+    let with_reflex: Vec<Vec<f32>> = pages
+        .iter()
+        .map(|p| {
+            p.iter()
+                .enumerate()
+                .map(|(i, v)| {
+                    (*v as f64 * (1.0 + 0.25 * (-dist(i).powi(2) / (2.0 * sigma * sigma)).exp()))
+                        as f32
+                })
+                .collect()
+        })
+        .collect();
     let model = VesselModel::new(&bands, |l| background_reflectance(l, 2.0), 0.04);
     let mut truth = vec![0.0; 2];
-    model.transmission(&Shared { so2, hb_g_per_l: 150.0, veil }, 0.3, d_um, &mut truth, None);
-    for (bands_px, reflex) in [(pages.iter().map(|p| as_f32(p)).collect::<Vec<_>>(), false), (with_reflex, true)] {
-        let img = Multiband { width: 160, height: 160, bands: bands_px, bit_depth: 16 };
+    model.transmission(
+        &Shared {
+            so2,
+            hb_g_per_l: 150.0,
+            veil,
+        },
+        0.3,
+        d_um,
+        &mut truth,
+        None,
+    );
+    for (bands_px, reflex) in [
+        (pages.iter().map(|p| as_f32(p)).collect::<Vec<_>>(), false),
+        (with_reflex, true),
+    ] {
+        let img = Multiband {
+            width: 160,
+            height: 160,
+            bands: bands_px,
+            bit_depth: 16,
+        };
         let res = analyse_segment(&img, &seg.points, &[], 0, &ProfileSettings::default());
         let ok: Vec<_> = res.iter().filter(|r| r.flags.is_empty()).collect();
         let found = ok.iter().filter(|r| r.reflex).count();
-        eprintln!("reflex {reflex}: {} of {} positions usable, reflex at {found}", ok.len(), res.len());
-        assert!(ok.len() * 10 > res.len() * 8, "reflex {reflex}: {:?}", res.iter().map(|r| &r.flags).collect::<Vec<_>>());
+        eprintln!(
+            "reflex {reflex}: {} of {} positions usable, reflex at {found}",
+            ok.len(),
+            res.len()
+        );
+        assert!(
+            ok.len() * 10 > res.len() * 8,
+            "reflex {reflex}: {:?}",
+            res.iter().map(|r| &r.flags).collect::<Vec<_>>()
+        );
         if reflex {
-            assert!(found * 10 >= ok.len() * 8, "the reflex was found at {found} of {} positions", ok.len());
+            assert!(
+                found * 10 >= ok.len() * 8,
+                "the reflex was found at {found} of {} positions",
+                ok.len()
+            );
         } else {
-            assert!(found * 10 <= ok.len(), "false reflexes at {found} of {} positions", ok.len());
+            assert!(
+                found * 10 <= ok.len(),
+                "false reflexes at {found} of {} positions",
+                ok.len()
+            );
         }
         for band in 0..2 {
             let t = ok.iter().map(|r| r.transmission[band]).sum::<f64>() / ok.len() as f64;
@@ -297,7 +598,11 @@ fn a_central_reflex_does_not_bias_the_transmission() {
             // Read beside the reflex, where the chord is a little shorter: a
             // residual bias of about 5 % at strong absorption, against 25 %.
             let tol = if reflex { 0.06 } else { 0.01 };
-            assert!((t - truth[band]).abs() / truth[band] < tol, "reflex {reflex}, band {band}: T {t} vs {}", truth[band]);
+            assert!(
+                (t - truth[band]).abs() / truth[band] < tol,
+                "reflex {reflex}, band {band}: T {t} vs {}",
+                truth[band]
+            );
         }
     }
 }

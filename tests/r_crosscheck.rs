@@ -12,7 +12,7 @@ use rand::{Rng, SeedableRng};
 use rand_distr::{Distribution, Normal};
 use satstep::config::csvfile::read_csv;
 use satstep::config::diag::Findings;
-use satstep::stats::design::{build, RandomSpec, Spec};
+use satstep::stats::design::{RandomSpec, Spec, build};
 use satstep::stats::infer::contrast;
 use satstep::stats::lmm::{Criterion, Model};
 
@@ -37,7 +37,11 @@ fn simulate(seed: u64, sd_eye: f64, drop: f64) -> String {
     for s in 0..12 {
         let us = n(3.0).sample(&mut rng);
         for eye in ["OD", "OS"] {
-            let ue = if sd_eye > 0.0 { n(sd_eye).sample(&mut rng) } else { 0.0 };
+            let ue = if sd_eye > 0.0 {
+                n(sd_eye).sample(&mut rng)
+            } else {
+                0.0
+            };
             for (e, eff) in [("air", 0.0), ("hypoxia", -7.0), ("recovery", -1.0)] {
                 for rep in 0..3 {
                     let y = 95.0 + eff + us + ue + n(2.5).sample(&mut rng);
@@ -54,8 +58,13 @@ fn simulate(seed: u64, sd_eye: f64, drop: f64) -> String {
 /// Without R: skipped with a message outside CI, a failure in CI.
 fn r_available() -> bool {
     if Command::new("Rscript").arg("--version").output().is_err() {
-        assert!(std::env::var_os("CI").is_none(), "R is needed for this test in CI; .ci/run installs it");
-        eprintln!("Rscript not found: live lme4 cross-check skipped (install r-base-core r-cran-lme4 r-cran-lmertest)");
+        assert!(
+            std::env::var_os("CI").is_none(),
+            "R is needed for this test in CI; .ci/run installs it"
+        );
+        eprintln!(
+            "Rscript not found: live lme4 cross-check skipped (install r-base-core r-cran-lme4 r-cran-lmertest)"
+        );
         return false;
     }
     true
@@ -69,8 +78,17 @@ fn compare(dir: &std::path::Path, name: &str, data: &str, formula: &str, random:
     std::fs::write(&script, SCRIPT).unwrap();
     let csv = dir.join(format!("{name}.csv"));
     std::fs::write(&csv, data).unwrap();
-    let out = Command::new("Rscript").arg(&script).arg(&csv).arg(formula).output().unwrap();
-    assert!(out.status.success(), "R failed: {}", String::from_utf8_lossy(&out.stderr));
+    let out = Command::new("Rscript")
+        .arg(&script)
+        .arg(&csv)
+        .arg(formula)
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "R failed: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     let text = String::from_utf8_lossy(&out.stdout).into_owned();
     let mut fixed = Vec::new();
     let mut vc = HashMap::new();
@@ -78,7 +96,11 @@ fn compare(dir: &std::path::Path, name: &str, data: &str, formula: &str, random:
     for l in text.lines() {
         let f: Vec<&str> = l.split_whitespace().collect();
         match f[0] {
-            "fixed" => fixed.push((f[2].parse::<f64>().unwrap(), f[3].parse::<f64>().unwrap(), f[4].parse::<f64>().unwrap())),
+            "fixed" => fixed.push((
+                f[2].parse::<f64>().unwrap(),
+                f[3].parse::<f64>().unwrap(),
+                f[4].parse::<f64>().unwrap(),
+            )),
             "vc" => {
                 vc.insert(f[1].to_string(), f[2].parse::<f64>().unwrap());
             }
@@ -91,29 +113,52 @@ fn compare(dir: &std::path::Path, name: &str, data: &str, formula: &str, random:
     let spec = Spec {
         response: "so2".into(),
         fixed: vec!["epoch".into()],
-        random: random.iter().map(|r| RandomSpec::parse(r).unwrap()).collect(),
+        random: random
+            .iter()
+            .map(|r| RandomSpec::parse(r).unwrap())
+            .collect(),
         reference: vec![],
     };
     let d = build(&t, &csv, &spec, &mut fnd).unwrap();
     let m = Model::new(d.data, Criterion::Reml);
     let fit = m.fit().unwrap();
     let rel = |a: f64, b: f64| ((a - b) / b).abs();
-    assert!(rel(fit.deviance, crit) < 1e-6, "{name}: criterion {} vs {crit}", fit.deviance);
+    assert!(
+        rel(fit.deviance, crit) < 1e-6,
+        "{name}: criterion {} vs {crit}",
+        fit.deviance
+    );
     for (k, (est, se, df)) in fixed.iter().enumerate() {
         let mut l = vec![0.0; fixed.len()];
         l[k] = 1.0;
         let c = contrast(&m, &fit, "", &l);
-        assert!(rel(c.estimate, *est) < 1e-6, "{name}: estimate {k} {} vs {est}", c.estimate);
-        assert!(rel(c.std_error, *se) < 1e-4, "{name}: SE {k} {} vs {se}", c.std_error);
+        assert!(
+            rel(c.estimate, *est) < 1e-6,
+            "{name}: estimate {k} {} vs {est}",
+            c.estimate
+        );
+        assert!(
+            rel(c.std_error, *se) < 1e-4,
+            "{name}: SE {k} {} vs {se}",
+            c.std_error
+        );
         assert!(rel(c.df, *df) < 1e-3, "{name}: df {k} {} vs {df}", c.df);
     }
     let comps = m.components(&fit);
-    let ours: HashMap<String, f64> = comps.terms.iter().map(|(n, _, c)| (n.clone(), c[(0, 0)])).chain([("Residual".to_string(), comps.residual)]).collect();
+    let ours: HashMap<String, f64> = comps
+        .terms
+        .iter()
+        .map(|(n, _, c)| (n.clone(), c[(0, 0)]))
+        .chain([("Residual".to_string(), comps.residual)])
+        .collect();
     for (g, v) in &vc {
         let o = ours[g];
         // A variance on the boundary: lme4 reports 0 (or nearly); so must we.
         if *v < 1e-6 * comps.residual {
-            assert!(o < 1e-6 * comps.residual, "{name}: {g} variance {o} where lme4 has {v}");
+            assert!(
+                o < 1e-6 * comps.residual,
+                "{name}: {g} variance {o} where lme4 has {v}"
+            );
         } else {
             assert!(rel(o, *v) < 1e-4, "{name}: {g} variance {o} vs {v}");
         }
@@ -127,8 +172,18 @@ fn lme4_and_lmertest_agree_on_random_designs() {
         return;
     }
     let dir = tempfile::tempdir().unwrap();
-    for (name, seed, sd_eye, drop) in [("balanced", 11, 2.0, 0.0), ("unbalanced", 12, 2.0, 0.15), ("boundary", 13, 0.0, 0.0)] {
-        compare(dir.path(), name, &simulate(seed, sd_eye, drop), "so2 ~ epoch + (1 | subject) + (1 | subject:eye)", &["subject", "subject:eye"]);
+    for (name, seed, sd_eye, drop) in [
+        ("balanced", 11, 2.0, 0.0),
+        ("unbalanced", 12, 2.0, 0.15),
+        ("boundary", 13, 0.0, 0.0),
+    ] {
+        compare(
+            dir.path(),
+            name,
+            &simulate(seed, sd_eye, drop),
+            "so2 ~ epoch + (1 | subject) + (1 | subject:eye)",
+            &["subject", "subject:eye"],
+        );
     }
 }
 
@@ -162,7 +217,13 @@ fn lme4_agrees_on_the_epoch_model_with_sessions() {
         }
     }
     let dir = tempfile::tempdir().unwrap();
-    compare(dir.path(), "sessions", &data, "so2 ~ epoch + (1 | subject) + (1 | subject:session) + (1 | subject:eye:segment)", &["subject", "subject:session", "subject:eye:segment"]);
+    compare(
+        dir.path(),
+        "sessions",
+        &data,
+        "so2 ~ epoch + (1 | subject) + (1 | subject:session) + (1 | subject:eye:segment)",
+        &["subject", "subject:session", "subject:eye:segment"],
+    );
 }
 
 /// The statistics stage's epoch model exactly as the stage fits it
@@ -175,26 +236,56 @@ fn lme4_agrees_on_the_epoch_model_with_sessions() {
 #[test]
 fn lme4_agrees_on_the_stage_epoch_model() {
     use satstep::simulate::cohort::CohortDesign;
-    use satstep::stats::epoch_model::{analyse, Adjustment, Basis, ContrastSpec, Design};
+    use satstep::stats::epoch_model::{Adjustment, Basis, ContrastSpec, Design, analyse};
     if !r_available() {
         return;
     }
-    let mut d = CohortDesign { subjects: 9, two_eye_share: 0.4, two_session_share: 0.4, segments_per_eye: 3, captures_per_epoch: (3, 5), missing_capture: 0.1, missing_value: 0.05, ..CohortDesign::step_down(9) };
+    let mut d = CohortDesign {
+        subjects: 9,
+        two_eye_share: 0.4,
+        two_session_share: 0.4,
+        segments_per_eye: 3,
+        captures_per_epoch: (3, 5),
+        missing_capture: 0.1,
+        missing_value: 0.05,
+        ..CohortDesign::step_down(9)
+    };
     d.spread.session = 2.0;
     d.spread.eye = 2.0;
     let names = d.epoch_names();
-    let specs: Vec<ContrastSpec> = (1..4).map(|e| ContrastSpec { label: format!("{} - air", names[e]), weights: vec![(e, 1.0), (0, -1.0)] }).collect();
-    let design = Design { epochs: &names, baseline: 0, contrasts: &specs, confidence: 0.95, adjustment: Adjustment::Holm };
+    let specs: Vec<ContrastSpec> = (1..4)
+        .map(|e| ContrastSpec {
+            label: format!("{} - air", names[e]),
+            weights: vec![(e, 1.0), (0, -1.0)],
+        })
+        .collect();
+    let design = Design {
+        epochs: &names,
+        baseline: 0,
+        contrasts: &specs,
+        confidence: 0.95,
+        adjustment: Adjustment::Holm,
+    };
     let obs = d.simulate(31, "r-crosscheck");
     let a = analyse(&obs, &design);
-    assert!(a.formula.contains("subject:session") && a.formula.contains("subject:eye)"), "{}", a.formula);
-    assert!(a.contrasts.iter().all(|c| c.basis == Basis::MixedModel), "this design has no variance on the boundary");
+    assert!(
+        a.formula.contains("subject:session") && a.formula.contains("subject:eye)"),
+        "{}",
+        a.formula
+    );
+    assert!(
+        a.contrasts.iter().all(|c| c.basis == Basis::MixedModel),
+        "this design has no variance on the boundary"
+    );
 
     let dir = tempfile::tempdir().unwrap();
     let csv = dir.path().join("stage.csv");
     let mut table = String::from("subject,session,eye,segment,epoch,so2\n");
     for o in &obs {
-        table.push_str(&format!("{},{},{},{},{},{:.17e}\n", o.subject, o.session, o.eye, o.segment, names[o.epoch], o.so2));
+        table.push_str(&format!(
+            "{},{},{},{},{},{:.17e}\n",
+            o.subject, o.session, o.eye, o.segment, names[o.epoch], o.so2
+        ));
     }
     std::fs::write(&csv, table).unwrap();
     let script = dir.path().join("stage.R");
@@ -215,30 +306,59 @@ cat(sprintf("criterion %.12g\n", REMLcrit(m)))
 "#,
     )
     .unwrap();
-    let out = Command::new("Rscript").arg(&script).arg(&csv).arg(&a.formula).output().unwrap();
-    assert!(out.status.success(), "R failed: {}", String::from_utf8_lossy(&out.stderr));
+    let out = Command::new("Rscript")
+        .arg(&script)
+        .arg(&csv)
+        .arg(&a.formula)
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "R failed: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     let text = String::from_utf8_lossy(&out.stdout).into_owned();
     let rel = |x: f64, y: f64| ((x - y) / y).abs();
     let mut fixed = 0;
     let mut variances = 0;
     // The criterion first, so that a failure below can be read against it.
-    for l in text.lines().filter(|l| l.starts_with("criterion")).chain(text.lines().filter(|l| !l.starts_with("criterion"))) {
+    for l in text
+        .lines()
+        .filter(|l| l.starts_with("criterion"))
+        .chain(text.lines().filter(|l| !l.starts_with("criterion")))
+    {
         let f: Vec<&str> = l.split_whitespace().collect();
         match f[0] {
             "criterion" => {
                 let c: f64 = f[1].parse().unwrap();
                 let ours = a.reml_criterion.unwrap();
                 assert!(rel(ours, c) < 1e-6, "criterion {ours} vs lme4 {c}");
-
             }
             "fixed" if f[1].starts_with("epoch") => {
                 let label = format!("{} - air", &f[1]["epoch".len()..]);
-                let ours = &a.contrasts.iter().find(|c| c.test.label == label).unwrap().test;
-                let (est, se, df): (f64, f64, f64) = (f[2].parse().unwrap(), f[3].parse().unwrap(), f[4].parse().unwrap());
+                let ours = &a
+                    .contrasts
+                    .iter()
+                    .find(|c| c.test.label == label)
+                    .unwrap()
+                    .test;
+                let (est, se, df): (f64, f64, f64) = (
+                    f[2].parse().unwrap(),
+                    f[3].parse().unwrap(),
+                    f[4].parse().unwrap(),
+                );
                 // Relative to the larger of the estimate and its SE: a null
                 // contrast near zero has no relative scale of its own.
-                assert!((ours.estimate - est).abs() < 1e-6 * est.abs().max(se), "{label}: estimate {} vs {est}", ours.estimate);
-                assert!(rel(ours.std_error, se) < 1e-4, "{label}: SE {} vs {se}", ours.std_error);
+                assert!(
+                    (ours.estimate - est).abs() < 1e-6 * est.abs().max(se),
+                    "{label}: estimate {} vs {est}",
+                    ours.estimate
+                );
+                assert!(
+                    rel(ours.std_error, se) < 1e-4,
+                    "{label}: SE {} vs {se}",
+                    ours.std_error
+                );
                 assert!(rel(ours.df, df) < 1e-3, "{label}: df {} vs {df}", ours.df);
                 fixed += 1;
             }
@@ -250,16 +370,31 @@ cat(sprintf("criterion %.12g\n", REMLcrit(m)))
                     format!("subject:epoch={}", rest.trim_end_matches("\")"))
                 } else {
                     // … and may spell nested groups with dots.
-                    let base = grp.rsplit_once('.').filter(|(_, n)| n.chars().all(|c| c.is_ascii_digit())).map_or(grp, |(b, _)| b);
+                    let base = grp
+                        .rsplit_once('.')
+                        .filter(|(_, n)| n.chars().all(|c| c.is_ascii_digit()))
+                        .map_or(grp, |(b, _)| b);
                     base.replace('.', ":")
                 };
-                let c = a.components.iter().find(|c| c.group == ours).unwrap_or_else(|| panic!("no component {ours}"));
+                let c = a
+                    .components
+                    .iter()
+                    .find(|c| c.group == ours)
+                    .unwrap_or_else(|| panic!("no component {ours}"));
                 // A variance on the boundary: lme4 reports 0 (or nearly); so must we.
                 let residual = a.components.last().unwrap().variance;
                 if v < 1e-6 * residual {
-                    assert!(c.variance < 1e-6 * residual && c.boundary, "{ours}: variance {} where lme4 has {v}", c.variance);
+                    assert!(
+                        c.variance < 1e-6 * residual && c.boundary,
+                        "{ours}: variance {} where lme4 has {v}",
+                        c.variance
+                    );
                 } else {
-                    assert!(rel(c.variance, v) < 1e-4, "{ours}: variance {} vs lme4 {v}", c.variance);
+                    assert!(
+                        rel(c.variance, v) < 1e-4,
+                        "{ours}: variance {} vs lme4 {v}",
+                        c.variance
+                    );
                 }
                 variances += 1;
             }

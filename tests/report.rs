@@ -12,7 +12,19 @@ use common::*;
 fn run_study(dir: &Path) -> PathBuf {
     let sc = repo().join("tests/fixtures/runner-scenario.yaml");
     let s = dir.join("s");
-    assert_eq!(satstep(dir, &["simulate", sc.to_str().unwrap(), "--out", s.to_str().unwrap()]).code, 0);
+    assert_eq!(
+        satstep(
+            dir,
+            &[
+                "simulate",
+                sc.to_str().unwrap(),
+                "--out",
+                s.to_str().unwrap()
+            ]
+        )
+        .code,
+        0
+    );
     let o = satstep(dir, &["run", s.to_str().unwrap()]);
     assert_eq!(o.code, 0, "{}", o.stderr);
     assert!(o.stderr.contains("report     ran"), "{}", o.stderr);
@@ -20,16 +32,60 @@ fn run_study(dir: &Path) -> PathBuf {
 }
 
 const TABLES: &[(&str, &[&str])] = &[
-    ("capture_accounting", &["subject", "epoch", "acquired", "used", "settling"]),
-    ("so2_by_epoch", &["method", "epoch", "subjects", "arterioles", "venules", "arteriovenous"]),
-    ("contrasts", &["method", "kind", "contrast", "estimate", "95 % CI", "df", "t", "p", "p (Holm)"]),
-    ("variance_components", &["method", "kind", "group", "levels", "SD"]),
-    ("agreement", &["method", "captures", "subjects", "bias", "precision", "Arms", "limits of agreement", "slope", "slope 95 % CI"]),
-    ("method_comparison", &["method", "kind", "quantity", "value"]),
+    (
+        "capture_accounting",
+        &["subject", "epoch", "acquired", "used", "settling"],
+    ),
+    (
+        "so2_by_epoch",
+        &[
+            "method",
+            "epoch",
+            "subjects",
+            "arterioles",
+            "venules",
+            "arteriovenous",
+        ],
+    ),
+    (
+        "contrasts",
+        &[
+            "method", "kind", "contrast", "estimate", "95 % CI", "df", "t", "p", "p (Holm)",
+        ],
+    ),
+    (
+        "variance_components",
+        &["method", "kind", "group", "levels", "SD"],
+    ),
+    (
+        "agreement",
+        &[
+            "method",
+            "captures",
+            "subjects",
+            "bias",
+            "precision",
+            "Arms",
+            "limits of agreement",
+            "slope",
+            "slope 95 % CI",
+        ],
+    ),
+    (
+        "method_comparison",
+        &["method", "kind", "quantity", "value"],
+    ),
     ("data_quality", &["item", "count", "of"]),
 ];
 
-const FIGURES: &[&str] = &["time_course", "epoch_change", "retinal_vs_reference", "bland_altman", "along_segment", "sensitivity"];
+const FIGURES: &[&str] = &[
+    "time_course",
+    "epoch_change",
+    "retinal_vs_reference",
+    "bland_altman",
+    "along_segment",
+    "sensitivity",
+];
 
 /// Checks that braces and environments nest.
 fn latex_balanced(tex: &str) -> Result<(), String> {
@@ -55,7 +111,11 @@ fn latex_balanced(tex: &str) -> Result<(), String> {
     for part in tex.split("\\begin{").skip(1) {
         envs.push(part.split('}').next().unwrap().to_string());
     }
-    let ends: Vec<String> = tex.split("\\end{").skip(1).map(|p| p.split('}').next().unwrap().to_string()).collect();
+    let ends: Vec<String> = tex
+        .split("\\end{")
+        .skip(1)
+        .map(|p| p.split('}').next().unwrap().to_string())
+        .collect();
     let mut sorted_b = envs.clone();
     let mut sorted_e = ends.clone();
     sorted_b.sort();
@@ -73,22 +133,31 @@ fn the_report_is_complete_and_self_contained() {
 
     for (name, cols) in TABLES {
         let csv = rep.join(format!("tables/{name}.csv"));
-        let mut r = csv::Reader::from_path(&csv).unwrap_or_else(|e| panic!("{}: {e}", csv.display()));
+        let mut r =
+            csv::Reader::from_path(&csv).unwrap_or_else(|e| panic!("{}: {e}", csv.display()));
         let head: Vec<String> = r.headers().unwrap().iter().map(String::from).collect();
         for c in *cols {
-            assert!(head.iter().any(|h| h == c), "{name}: no column `{c}` in {head:?}");
+            assert!(
+                head.iter().any(|h| h == c),
+                "{name}: no column `{c}` in {head:?}"
+            );
         }
         let rows: Vec<csv::StringRecord> = r.records().map(|x| x.unwrap()).collect();
         assert!(!rows.is_empty(), "{name} is empty");
         assert!(rows.iter().all(|x| x.len() == head.len()));
         let tex = std::fs::read_to_string(rep.join(format!("tables/{name}.tex"))).unwrap();
         latex_balanced(&tex).unwrap_or_else(|e| panic!("{name}.tex: {e}\n{tex}"));
-        assert!(tex.contains("\\toprule") && tex.contains("\\midrule") && tex.contains("\\bottomrule"));
+        assert!(
+            tex.contains("\\toprule") && tex.contains("\\midrule") && tex.contains("\\bottomrule")
+        );
         let md = std::fs::read_to_string(rep.join(format!("tables/{name}.md"))).unwrap();
         let lines: Vec<&str> = md.lines().filter(|l| l.starts_with('|')).collect();
         assert_eq!(lines.len(), rows.len() + 2, "{name}.md");
         let bars = |l: &str| l.replace("\\|", "").matches('|').count();
-        assert!(lines.iter().all(|l| bars(l) == head.len() + 1), "{name}.md has ragged rows");
+        assert!(
+            lines.iter().all(|l| bars(l) == head.len() + 1),
+            "{name}.md has ragged rows"
+        );
     }
     // The contrasts of the step-down protocol are all there, per method and kind.
     let contrasts = std::fs::read_to_string(rep.join("tables/contrasts.csv")).unwrap();
@@ -96,59 +165,126 @@ fn the_report_is_complete_and_self_contained() {
 
     for name in FIGURES {
         let png = rep.join(format!("figures/{name}.png"));
-        let dec = png::Decoder::new(std::fs::File::open(&png).unwrap_or_else(|e| panic!("{}: {e}", png.display())));
+        let dec = png::Decoder::new(
+            std::fs::File::open(&png).unwrap_or_else(|e| panic!("{}: {e}", png.display())),
+        );
         let mut reader = dec.read_info().unwrap();
         let mut buf = vec![0; reader.output_buffer_size()];
         let info = reader.next_frame(&mut buf).unwrap();
         let px = &buf[..info.buffer_size()];
         let ch = info.color_type.samples();
-        let non_white = px.chunks(ch).filter(|p| p.iter().take(3).any(|v| *v < 200)).count();
+        let non_white = px
+            .chunks(ch)
+            .filter(|p| p.iter().take(3).any(|v| *v < 200))
+            .count();
         let total = px.len() / ch;
-        assert!(info.width >= 600 && info.height >= 300, "{name}: {}×{}", info.width, info.height);
-        assert!(non_white * 100 > total, "{name}.png is nearly blank ({non_white} of {total} pixels drawn)");
+        assert!(
+            info.width >= 600 && info.height >= 300,
+            "{name}: {}×{}",
+            info.width,
+            info.height
+        );
+        assert!(
+            non_white * 100 > total,
+            "{name}.png is nearly blank ({non_white} of {total} pixels drawn)"
+        );
         let mut colours: Vec<&[u8]> = px.chunks(ch).collect();
         colours.sort();
         colours.dedup();
-        assert!(colours.len() > 20, "{name}.png has only {} colours", colours.len());
+        assert!(
+            colours.len() > 20,
+            "{name}.png has only {} colours",
+            colours.len()
+        );
         let svg = std::fs::read_to_string(rep.join(format!("figures/{name}.svg"))).unwrap();
-        assert!(svg.contains("<svg") && svg.contains("<text"), "{name}.svg has no text");
+        assert!(
+            svg.contains("<svg") && svg.contains("<text"),
+            "{name}.svg has no text"
+        );
     }
     let svg = std::fs::read_to_string(rep.join("figures/time_course.svg")).unwrap();
-    assert!(svg.contains("SO2 (%)") && svg.contains("time (min)"), "axis labels with units");
+    assert!(
+        svg.contains("SO2 (%)") && svg.contains("time (min)"),
+        "axis labels with units"
+    );
 
     let html = std::fs::read_to_string(rep.join("report.html")).unwrap();
     // Namespace names of inline SVG are identifiers, not resources.
-    let html = html.replace("xmlns=\"http://www.w3.org/2000/svg\"", "").replace("xmlns:xlink=\"http://www.w3.org/1999/xlink\"", "");
-    for bad in ["src=", "<link", "<script", "@import", "url(", "http://", "https://"] {
-        assert!(!html.contains(bad), "report.html refers outside itself: `{bad}`");
+    let html = html
+        .replace("xmlns=\"http://www.w3.org/2000/svg\"", "")
+        .replace("xmlns:xlink=\"http://www.w3.org/1999/xlink\"", "");
+    for bad in [
+        "src=", "<link", "<script", "@import", "url(", "http://", "https://",
+    ] {
+        assert!(
+            !html.contains(bad),
+            "report.html refers outside itself: `{bad}`"
+        );
     }
     for href in html.split("href=\"").skip(1) {
-        assert!(href.starts_with('#'), "report.html links out: {}", &href[..40.min(href.len())]);
+        assert!(
+            href.starts_with('#'),
+            "report.html links out: {}",
+            &href[..40.min(href.len())]
+        );
     }
     assert_eq!(html.matches("<figure").count(), FIGURES.len());
     assert_eq!(html.matches("<svg").count(), FIGURES.len());
-    for needle in ["Research use only", "medical supervision", "ethics committee", "Methods", "Satterthwaite", "Bland JM, Altman DG (2007)", "Data quality", "Provenance", "subjects/V01/captures/c001.tif", "Fundus pigmentation as recorded in the study file: grade", "subject-specific deviation in every epoch"] {
+    for needle in [
+        "Research use only",
+        "medical supervision",
+        "ethics committee",
+        "Methods",
+        "Satterthwaite",
+        "Bland JM, Altman DG (2007)",
+        "Data quality",
+        "Provenance",
+        "subjects/V01/captures/c001.tif",
+        "Fundus pigmentation as recorded in the study file: grade",
+        "subject-specific deviation in every epoch",
+    ] {
         assert!(html.contains(needle), "report.html lacks `{needle}`");
     }
 
     let md = std::fs::read_to_string(rep.join("report.md")).unwrap();
     for link in md.split("](").skip(1) {
         let target = link.split(')').next().unwrap();
-        assert!(rep.join(target).is_file(), "report.md links to missing `{target}`");
+        assert!(
+            rep.join(target).is_file(),
+            "report.md links to missing `{target}`"
+        );
     }
     assert!(md.contains("Research use only"));
 
     // With a TeX engine installed, every table compiles.
-    if std::process::Command::new("pdflatex").arg("--version").output().is_ok() {
-        let mut doc = String::from("\\documentclass{article}\n\\usepackage[utf8]{inputenc}\n\\usepackage{booktabs}\n\\usepackage{textcomp}\n\\begin{document}\n");
+    if std::process::Command::new("pdflatex")
+        .arg("--version")
+        .output()
+        .is_ok()
+    {
+        let mut doc = String::from(
+            "\\documentclass{article}\n\\usepackage[utf8]{inputenc}\n\\usepackage{booktabs}\n\\usepackage{textcomp}\n\\begin{document}\n",
+        );
         for (name, _) in TABLES {
-            doc.push_str(&format!("\\input{{{}}}\n", rep.join(format!("tables/{name}.tex")).display()));
+            doc.push_str(&format!(
+                "\\input{{{}}}\n",
+                rep.join(format!("tables/{name}.tex")).display()
+            ));
         }
         doc.push_str("\\end{document}\n");
         let tex = dir.path().join("tables.tex");
         std::fs::write(&tex, doc).unwrap();
-        let st = std::process::Command::new("pdflatex").args(["-interaction=nonstopmode", "-halt-on-error"]).arg(&tex).current_dir(dir.path()).output().unwrap();
-        assert!(st.status.success(), "{}", String::from_utf8_lossy(&st.stdout));
+        let st = std::process::Command::new("pdflatex")
+            .args(["-interaction=nonstopmode", "-halt-on-error"])
+            .arg(&tex)
+            .current_dir(dir.path())
+            .output()
+            .unwrap();
+        assert!(
+            st.status.success(),
+            "{}",
+            String::from_utf8_lossy(&st.stdout)
+        );
     }
 }
 

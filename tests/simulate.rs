@@ -13,9 +13,29 @@ fn same_seed_same_bytes_whatever_the_jobs() {
     let sc = repo().join("tests/fixtures/small-scenario.yaml");
     let a = dir.path().join("a");
     let b = dir.path().join("b");
-    let o1 = satstep(dir.path(), &["--jobs", "1", "simulate", sc.to_str().unwrap(), "--out", a.to_str().unwrap()]);
+    let o1 = satstep(
+        dir.path(),
+        &[
+            "--jobs",
+            "1",
+            "simulate",
+            sc.to_str().unwrap(),
+            "--out",
+            a.to_str().unwrap(),
+        ],
+    );
     assert_eq!(o1.code, 0, "{}", o1.stderr);
-    let o2 = satstep(dir.path(), &["--jobs", "2", "simulate", sc.to_str().unwrap(), "--out", b.to_str().unwrap()]);
+    let o2 = satstep(
+        dir.path(),
+        &[
+            "--jobs",
+            "2",
+            "simulate",
+            sc.to_str().unwrap(),
+            "--out",
+            b.to_str().unwrap(),
+        ],
+    );
     assert_eq!(o2.code, 0, "{}", o2.stderr);
     let (ha, hb) = (hashes(&a), hashes(&b));
     assert!(ha.len() > 20, "{ha:?}");
@@ -42,9 +62,20 @@ fn same_seed_same_bytes_whatever_the_jobs() {
 fn every_scenario_in_the_repository_simulates_into_a_valid_study() {
     // The demo's scenario and the test scenarios.
     let dir = tempfile::tempdir().unwrap();
-    for sc in [repo().join("demo-study/scenario.yaml"), repo().join("tests/fixtures/small-scenario.yaml")] {
+    for sc in [
+        repo().join("demo-study/scenario.yaml"),
+        repo().join("tests/fixtures/small-scenario.yaml"),
+    ] {
         let out = dir.path().join(sc.parent().unwrap().file_name().unwrap());
-        let o = satstep(dir.path(), &["simulate", sc.to_str().unwrap(), "--out", out.to_str().unwrap()]);
+        let o = satstep(
+            dir.path(),
+            &[
+                "simulate",
+                sc.to_str().unwrap(),
+                "--out",
+                out.to_str().unwrap(),
+            ],
+        );
         assert_eq!(o.code, 0, "{}", o.stderr);
         let chk = satstep(dir.path(), &["check", out.to_str().unwrap()]);
         assert_eq!(chk.code, 0, "{}: {}", sc.display(), chk.stderr);
@@ -53,7 +84,10 @@ fn every_scenario_in_the_repository_simulates_into_a_valid_study() {
             // The committed study file is exactly what the simulator writes.
             let committed = std::fs::read_to_string(repo().join("demo-study/study.yaml")).unwrap();
             let written = std::fs::read_to_string(out.join("study.yaml")).unwrap();
-            assert_eq!(committed, written, "regenerate demo-study/study.yaml with `satstep simulate`");
+            assert_eq!(
+                committed, written,
+                "regenerate demo-study/study.yaml with `satstep simulate`"
+            );
         }
     }
 }
@@ -70,7 +104,10 @@ fn simulated_reference_and_truth_are_physiological() {
     for l in csv.lines().skip(1) {
         let f: Vec<&str> = l.split(',').collect();
         if f[9] == "steady" && !f[11].is_empty() {
-            by_epoch.entry(f[6].to_string()).or_default().push(f[11].parse().unwrap());
+            by_epoch
+                .entry(f[6].to_string())
+                .or_default()
+                .push(f[11].parse().unwrap());
         }
     }
     let median = |v: &mut Vec<f64>| {
@@ -97,14 +134,34 @@ fn simulated_reference_and_truth_are_physiological() {
             .collect();
         v.iter().sum::<f64>() / v.len() as f64
     };
-    assert!((92.0..=98.0).contains(&mean("air", "arteriole")), "{}", mean("air", "arteriole"));
-    assert!((52.0..=68.0).contains(&mean("air", "venule")), "{}", mean("air", "venule"));
+    assert!(
+        (92.0..=98.0).contains(&mean("air", "arteriole")),
+        "{}",
+        mean("air", "arteriole")
+    );
+    assert!(
+        (52.0..=68.0).contains(&mean("air", "venule")),
+        "{}",
+        mean("air", "venule")
+    );
     let drop = mean("air", "arteriole") - mean("low-15", "arteriole");
-    assert!((5.0..=10.0).contains(&drop), "FiO2 0.15 lowers arterioles by about 6–9 points, got {drop}");
+    assert!(
+        (5.0..=10.0).contains(&drop),
+        "FiO2 0.15 lowers arterioles by about 6–9 points, got {drop}"
+    );
 
     // The demo run writes the whole report.
-    for f in ["report.html", "report.md", "tables/contrasts.tex", "figures/time_course.png", "figures/sensitivity.svg"] {
-        assert!(out.join("results/report").join(f).is_file(), "the demo report lacks {f}");
+    for f in [
+        "report.html",
+        "report.md",
+        "tables/contrasts.tex",
+        "figures/time_course.png",
+        "figures/sensitivity.svg",
+    ] {
+        assert!(
+            out.join("results/report").join(f).is_file(),
+            "the demo report lacks {f}"
+        );
     }
 
     // End to end: the mixed-model contrasts from the images land near the
@@ -115,31 +172,69 @@ fn simulated_reference_and_truth_are_physiological() {
     for l in est.lines().skip(1) {
         let f: Vec<&str> = l.split(',').collect();
         let (method, kind, label, e) = (f[0], f[1], f[2], f[3].parse::<f64>().unwrap());
-        let t: f64 = truth.lines().skip(1).map(|x| x.split(',').collect::<Vec<_>>()).find(|x| x[0] == label && x[1] == kind).unwrap()[2].parse().unwrap();
+        let t: f64 = truth
+            .lines()
+            .skip(1)
+            .map(|x| x.split(',').collect::<Vec<_>>())
+            .find(|x| x[0] == label && x[1] == kind)
+            .unwrap()[2]
+            .parse()
+            .unwrap();
         // Two-band calibration and the model mismatch of the image stage
         // allow a few points; the induced changes are 9 and 28 points.
-        let tol = if label.starts_with("recovery") { 1.5 } else { 0.15 * t.abs() + 1.0 };
-        assert!((e - t).abs() <= tol, "{method} {kind} {label}: estimated {e:.2}, true {t:.2}");
+        let tol = if label.starts_with("recovery") {
+            1.5
+        } else {
+            0.15 * t.abs() + 1.0
+        };
+        assert!(
+            (e - t).abs() <= tol,
+            "{method} {kind} {label}: estimated {e:.2}, true {t:.2}"
+        );
         checked += 1;
     }
     assert_eq!(checked, 18, "3 methods × 2 kinds × 3 contrasts");
-    for f in ["transmissions/positions.parquet", "transmissions/captures.csv", "fits/so2.parquet", "statistics/summaries.csv", "statistics/agreement.csv", "statistics/paired.csv", "statistics/methods.csv"] {
+    for f in [
+        "transmissions/positions.parquet",
+        "transmissions/captures.csv",
+        "fits/so2.parquet",
+        "statistics/summaries.csv",
+        "statistics/agreement.csv",
+        "statistics/paired.csv",
+        "statistics/methods.csv",
+    ] {
         assert!(out.join("results").join(f).is_file(), "{f}");
     }
     // Paired t tests against the baseline see the hypoxic drop in every subject.
     let paired = std::fs::read_to_string(out.join("results/statistics/paired.csv")).unwrap();
-    let row = paired.lines().find(|l| l.starts_with("multiband,arteriole,low-15,")).unwrap();
+    let row = paired
+        .lines()
+        .find(|l| l.starts_with("multiband,arteriole,low-15,"))
+        .unwrap();
     let f: Vec<&str> = row.split(',').collect();
     assert_eq!(f[3], "8");
-    assert!(f[4].parse::<f64>().unwrap() < -5.0 && f[8].parse::<f64>().unwrap() < 1e-3, "{row}");
+    assert!(
+        f[4].parse::<f64>().unwrap() < -5.0 && f[8].parse::<f64>().unwrap() < 1e-3,
+        "{row}"
+    );
     // Arteriovenous differences on air are positive (arterioles above venules).
     let sums = std::fs::read_to_string(out.join("results/statistics/summaries.csv")).unwrap();
-    let av: Vec<f64> = sums.lines().filter(|l| l.starts_with("multiband,arteriovenous,") && l.split(',').nth(3) == Some("air")).map(|l| l.split(',').nth(6).unwrap().parse().unwrap()).collect();
+    let av: Vec<f64> = sums
+        .lines()
+        .filter(|l| l.starts_with("multiband,arteriovenous,") && l.split(',').nth(3) == Some("air"))
+        .map(|l| l.split(',').nth(6).unwrap().parse().unwrap())
+        .collect();
     assert_eq!(av.len(), 8);
     assert!(av.iter().all(|d| (15.0..50.0).contains(d)), "{av:?}");
     let methods = std::fs::read_to_string(out.join("results/statistics/methods.csv")).unwrap();
-    assert!(methods.contains("multiband-pointwise,arteriole,along_segment_sd,"), "{methods}");
-    assert!(methods.contains("two-band vs multiband,arteriole,bias,"), "{methods}");
+    assert!(
+        methods.contains("multiband-pointwise,arteriole,along_segment_sd,"),
+        "{methods}"
+    );
+    assert!(
+        methods.contains("two-band vs multiband,arteriole,bias,"),
+        "{methods}"
+    );
     // Arteriolar SO2 rises with the reference SpO2.
     let ag = std::fs::read_to_string(out.join("results/statistics/agreement.csv")).unwrap();
     let head: Vec<&str> = ag.lines().next().unwrap().split(',').collect();
@@ -153,22 +248,39 @@ fn simulated_reference_and_truth_are_physiological() {
     // SE is not below 0.6 × the SE of the same run's paired subject-level
     // analysis, and its df not above 3 × the subjects (before the subject ×
     // epoch terms: SE 0.26 against 1.66, df 466).
-    let rows = |p: &str| -> Vec<csv::StringRecord> { csv::Reader::from_path(out.join("results/statistics").join(p)).unwrap().records().map(Result::unwrap).collect() };
+    let rows = |p: &str| -> Vec<csv::StringRecord> {
+        csv::Reader::from_path(out.join("results/statistics").join(p))
+            .unwrap()
+            .records()
+            .map(Result::unwrap)
+            .collect()
+    };
     let (contrasts, paired) = (rows("contrasts.csv"), rows("paired.csv"));
     let mut compared = 0;
     for c in &contrasts {
         let (se, df) = (c[4].parse::<f64>().unwrap(), c[5].parse::<f64>().unwrap());
         assert!(df <= 3.0 * 8.0, "{c:?}");
         let epoch = c[2].strip_suffix(" - air").unwrap();
-        let p = paired.iter().find(|p| p[0] == c[0] && p[1] == c[1] && &p[2] == epoch).unwrap();
+        let p = paired
+            .iter()
+            .find(|p| p[0] == c[0] && p[1] == c[1] && &p[2] == epoch)
+            .unwrap();
         let paired_se: f64 = p[5].parse().unwrap();
-        assert!(se >= 0.6 * paired_se, "{c:?}: SE {se} against the paired {paired_se}");
+        assert!(
+            se >= 0.6 * paired_se,
+            "{c:?}: SE {se} against the paired {paired_se}"
+        );
         compared += 1;
     }
     assert_eq!(compared, 18);
     let models = rows("models.csv");
     assert_eq!(models.len(), 6);
-    assert!(models.iter().all(|m| m[2].contains("(0 + dummy(epoch, \"low-12\") | subject)") && &m[4] == "yes"), "{models:?}");
+    assert!(
+        models
+            .iter()
+            .all(|m| m[2].contains("(0 + dummy(epoch, \"low-12\") | subject)") && &m[4] == "yes"),
+        "{models:?}"
+    );
 }
 
 #[test]
@@ -176,26 +288,64 @@ fn one_broken_capture_does_not_stop_the_study() {
     let dir = tempfile::tempdir().unwrap();
     let sc = repo().join("tests/fixtures/small-scenario.yaml");
     let a = dir.path().join("s");
-    assert_eq!(satstep(dir.path(), &["simulate", sc.to_str().unwrap(), "--out", a.to_str().unwrap()]).code, 0);
+    assert_eq!(
+        satstep(
+            dir.path(),
+            &[
+                "simulate",
+                sc.to_str().unwrap(),
+                "--out",
+                a.to_str().unwrap()
+            ]
+        )
+        .code,
+        0
+    );
     // Truncate one capture of the second subject.
     let bad = a.join("subjects/V02/captures/c003.tif");
     let bytes = std::fs::read(&bad).unwrap();
     std::fs::write(&bad, &bytes[..bytes.len() / 4]).unwrap();
     let run = satstep(dir.path(), &["run", a.to_str().unwrap()]);
     assert_eq!(run.code, 1, "{}", run.stderr);
-    assert!(run.stderr.contains("1 captures could not be analysed"), "{}", run.stderr);
-    assert!(run.stderr.contains("warning: capture `captures/c003.tif` (error): `"), "{}", run.stderr);
+    assert!(
+        run.stderr.contains("1 captures could not be analysed"),
+        "{}",
+        run.stderr
+    );
+    assert!(
+        run.stderr
+            .contains("warning: capture `captures/c003.tif` (error): `"),
+        "{}",
+        run.stderr
+    );
     let caps = std::fs::read_to_string(a.join("results/transmissions/captures.csv")).unwrap();
-    let line = caps.lines().find(|l| l.starts_with("V02,") && l.contains("captures/c003.tif")).unwrap();
+    let line = caps
+        .lines()
+        .find(|l| l.starts_with("V02,") && l.contains("captures/c003.tif"))
+        .unwrap();
     assert!(line.contains(",error,"), "{line}");
     // Two subjects × 8 captures, one broken.
-    assert_eq!(caps.lines().filter(|l| l.contains(",ok,")).count(), 15, "{caps}");
+    assert_eq!(
+        caps.lines().filter(|l| l.contains(",ok,")).count(),
+        15,
+        "{caps}"
+    );
     assert!(a.join("results/statistics/contrasts.csv").is_file());
     // Run again: nothing to recompute, and the failure is still reported.
     let again = satstep(dir.path(), &["run", a.to_str().unwrap()]);
     assert_eq!(again.code, 1, "{}", again.stderr);
-    assert!(again.stderr.contains("images     up to date"), "{}", again.stderr);
-    assert!(again.stderr.contains("warning: capture `captures/c003.tif` (error)"), "{}", again.stderr);
+    assert!(
+        again.stderr.contains("images     up to date"),
+        "{}",
+        again.stderr
+    );
+    assert!(
+        again
+            .stderr
+            .contains("warning: capture `captures/c003.tif` (error)"),
+        "{}",
+        again.stderr
+    );
     let manifest = std::fs::read_to_string(a.join("results/manifest.json")).unwrap();
     assert!(manifest.contains("\"error\": 1"), "{manifest}");
 }
@@ -211,7 +361,10 @@ fn a_second_visit_is_a_session_level_in_the_epoch_model() {
     let (day1, day2) = ("2026-05-04", "2026-05-11");
     let (v1, v2) = (s.join("subjects/V01"), s.join("subjects/V01-visit2"));
     std::fs::create_dir_all(v2.join("captures")).unwrap();
-    for f in std::fs::read_dir(v1.join("captures")).unwrap().map(Result::unwrap) {
+    for f in std::fs::read_dir(v1.join("captures"))
+        .unwrap()
+        .map(Result::unwrap)
+    {
         std::fs::copy(f.path(), v2.join("captures").join(f.file_name())).unwrap();
     }
     for f in ["captures.csv", "spo2.csv"] {
@@ -222,20 +375,43 @@ fn a_second_visit_is_a_session_level_in_the_epoch_model() {
     let study = std::fs::read_to_string(s.join("study.yaml")).unwrap();
     let start = study.find("  - id: V01\n").unwrap();
     let first = start + study[start..].find("      - id: s1\n").unwrap();
-    let end = first + study[first..].find("segments-OD.yaml}\n").unwrap() + "segments-OD.yaml}\n".len();
-    let visit = study[first..end].replace("id: s1", "id: s2").replace(day1, day2).replace("subjects/V01/captures.csv", "subjects/V01-visit2/captures.csv").replace("subjects/V01/spo2.csv", "subjects/V01-visit2/spo2.csv");
-    std::fs::write(s.join("study.yaml"), format!("{}{visit}{}", &study[..end], &study[end..])).unwrap();
+    let end =
+        first + study[first..].find("segments-OD.yaml}\n").unwrap() + "segments-OD.yaml}\n".len();
+    let visit = study[first..end]
+        .replace("id: s1", "id: s2")
+        .replace(day1, day2)
+        .replace(
+            "subjects/V01/captures.csv",
+            "subjects/V01-visit2/captures.csv",
+        )
+        .replace("subjects/V01/spo2.csv", "subjects/V01-visit2/spo2.csv");
+    std::fs::write(
+        s.join("study.yaml"),
+        format!("{}{visit}{}", &study[..end], &study[end..]),
+    )
+    .unwrap();
     let o = satstep(dir.path(), &["run", s.to_str().unwrap()]);
     assert_eq!(o.code, 0, "{}", o.stderr);
     let fits = std::fs::read_to_string(s.join("results/fits/so2.csv")).unwrap();
-    assert!(fits.lines().any(|l| l.starts_with("V01,s2,OD,")), "the second visit is analysed");
+    assert!(
+        fits.lines().any(|l| l.starts_with("V01,s2,OD,")),
+        "the second visit is analysed"
+    );
     let vc = std::fs::read_to_string(s.join("results/statistics/variance_components.csv")).unwrap();
     let rows: Vec<Vec<&str>> = vc.lines().skip(1).map(|l| l.split(',').collect()).collect();
     let sessions: Vec<&Vec<&str>> = rows.iter().filter(|r| r[2] == "subject:session").collect();
     let models = rows.iter().filter(|r| r[2] == "subject").count();
-    assert!(models > 0 && sessions.len() == models, "one session term per epoch model: {vc}");
+    assert!(
+        models > 0 && sessions.len() == models,
+        "one session term per epoch model: {vc}"
+    );
     // Three subjects, one of them seen twice: four sessions.
-    assert!(sessions.iter().all(|r| r[3] == "4" && r[4].parse::<f64>().unwrap() >= 0.0), "{vc}");
+    assert!(
+        sessions
+            .iter()
+            .all(|r| r[3] == "4" && r[4].parse::<f64>().unwrap() >= 0.0),
+        "{vc}"
+    );
 }
 
 /// Settings of the statistics that change what they say: a 90 % interval
@@ -261,78 +437,197 @@ fn statistics_settings_do_what_they_say() {
     };
     let read = |rel: &str| -> (Vec<String>, Vec<csv::StringRecord>) {
         let mut r = csv::Reader::from_path(s.join("results").join(rel)).unwrap();
-        (r.headers().unwrap().iter().map(String::from).collect(), r.records().map(Result::unwrap).collect())
+        (
+            r.headers().unwrap().iter().map(String::from).collect(),
+            r.records().map(Result::unwrap).collect(),
+        )
     };
-    let segments = |rows: &[csv::StringRecord]| rows.iter().filter(|r| &r[1] != "arteriovenous").map(|r| r[5].parse::<i64>().unwrap()).sum::<i64>();
+    let segments = |rows: &[csv::StringRecord]| {
+        rows.iter()
+            .filter(|r| &r[1] != "arteriovenous")
+            .map(|r| r[5].parse::<i64>().unwrap())
+            .sum::<i64>()
+    };
 
     // Interval coverage and adjustment.
-    edit("output: results", "statistics: {confidence: 0.90, adjust: none}\noutput: results");
+    edit(
+        "output: results",
+        "statistics: {confidence: 0.90, adjust: none}\noutput: results",
+    );
     let first = run();
-    for t in ["contrasts.csv", "agreement.csv", "paired.csv", "summaries.csv", "variance_components.csv", "methods.csv", "models.csv"] {
+    for t in [
+        "contrasts.csv",
+        "agreement.csv",
+        "paired.csv",
+        "summaries.csv",
+        "variance_components.csv",
+        "methods.csv",
+        "models.csv",
+    ] {
         let (h, _) = read(&format!("statistics/{t}"));
-        assert!(h.iter().all(|c| !c.contains("95") && !c.to_lowercase().contains("holm")), "{t}: {h:?}");
+        assert!(
+            h.iter()
+                .all(|c| !c.contains("95") && !c.to_lowercase().contains("holm")),
+            "{t}: {h:?}"
+        );
     }
     let (h, rows) = read("statistics/contrasts.csv");
     let col = |n: &str| h.iter().position(|c| c == n).unwrap();
-    assert!(rows.iter().all(|r| &r[col("confidence")] == "0.9" && &r[col("adjustment")] == "none" && r[col("p")] == r[col("p_adjusted")]), "{rows:?}");
+    assert!(
+        rows.iter().all(|r| &r[col("confidence")] == "0.9"
+            && &r[col("adjustment")] == "none"
+            && r[col("p")] == r[col("p_adjusted")]),
+        "{rows:?}"
+    );
     let report = std::fs::read_to_string(s.join("results/report/tables/contrasts.csv")).unwrap();
     let head = report.lines().next().unwrap();
-    assert!(head.contains("90 % CI") && head.contains("p (unadjusted)") && !head.contains("95") && !head.contains("Holm"), "{head}");
-    assert!(first.stderr.contains("(90 % CI") && first.stderr.contains("(none)"), "{}", first.stderr);
+    assert!(
+        head.contains("90 % CI")
+            && head.contains("p (unadjusted)")
+            && !head.contains("95")
+            && !head.contains("Holm"),
+        "{head}"
+    );
+    assert!(
+        first.stderr.contains("(90 % CI") && first.stderr.contains("(none)"),
+        "{}",
+        first.stderr
+    );
     let (_, before) = read("statistics/summaries.csv");
 
     // A minimum diameter: the median of the measured diameters.
     let (fh, fits) = read("fits/so2.csv");
     let dcol = fh.iter().position(|c| c == "diameter_um").unwrap();
-    let mut d: Vec<f64> = fits.iter().map(|r| r[dcol].parse::<f64>().unwrap()).filter(|v| v.is_finite()).collect();
+    let mut d: Vec<f64> = fits
+        .iter()
+        .map(|r| r[dcol].parse::<f64>().unwrap())
+        .filter(|v| v.is_finite())
+        .collect();
     d.sort_by(f64::total_cmp);
     let median = d[d.len() / 2].round();
-    edit("output: results", &format!("exclusions: {{min_diameter_um: {median}}}\noutput: results"));
+    edit(
+        "output: results",
+        &format!("exclusions: {{min_diameter_um: {median}}}\noutput: results"),
+    );
     let second = run();
-    assert!(second.stderr.lines().any(|l| l.starts_with("statistics") && l.contains("ran")), "{}", second.stderr);
-    assert!(second.stderr.lines().any(|l| l.starts_with("fits") && l.contains("up to date")), "{}", second.stderr);
+    assert!(
+        second
+            .stderr
+            .lines()
+            .any(|l| l.starts_with("statistics") && l.contains("ran")),
+        "{}",
+        second.stderr
+    );
+    assert!(
+        second
+            .stderr
+            .lines()
+            .any(|l| l.starts_with("fits") && l.contains("up to date")),
+        "{}",
+        second.stderr
+    );
     let (sh, after) = read("statistics/summaries.csv");
     let narrow_col = sh.iter().position(|c| c == "below_min_diameter").unwrap();
-    let narrow: i64 = after.iter().map(|r| r[narrow_col].parse::<i64>().unwrap()).sum();
-    assert!(segments(&after) < segments(&before) && narrow > 0, "segments {} → {}, {narrow} below {median} µm", segments(&before), segments(&after));
-    assert_eq!(segments(&before) - segments(&after), narrow, "every value taken out is counted");
-    let accounting = std::fs::read_to_string(s.join("results/report/tables/capture_accounting.csv")).unwrap();
-    assert!(accounting.lines().next().unwrap().contains(&format!("segment values < {median} µm")), "{accounting}");
+    let narrow: i64 = after
+        .iter()
+        .map(|r| r[narrow_col].parse::<i64>().unwrap())
+        .sum();
+    assert!(
+        segments(&after) < segments(&before) && narrow > 0,
+        "segments {} → {}, {narrow} below {median} µm",
+        segments(&before),
+        segments(&after)
+    );
+    assert_eq!(
+        segments(&before) - segments(&after),
+        narrow,
+        "every value taken out is counted"
+    );
+    let accounting =
+        std::fs::read_to_string(s.join("results/report/tables/capture_accounting.csv")).unwrap();
+    assert!(
+        accounting
+            .lines()
+            .next()
+            .unwrap()
+            .contains(&format!("segment values < {median} µm")),
+        "{accounting}"
+    );
 
     // The two-band diameter correction.
     let two_band_so2 = |rows: &[csv::StringRecord], h: &[String]| -> Vec<String> {
         let c = |n: &str| h.iter().position(|x| x == n).unwrap();
-        rows.iter().filter(|r| &r[c("method")] == "two-band").map(|r| r[c("so2")].to_string()).collect()
+        rows.iter()
+            .filter(|r| &r[c("method")] == "two-band")
+            .map(|r| r[c("so2")].to_string())
+            .collect()
     };
     let plain = two_band_so2(&fits, &fh);
     assert!(text.contains("    isosbestic: b570\n"));
-    edit("    isosbestic: b570\n", "    isosbestic: b570\n    diameter_correction: true\n");
+    edit(
+        "    isosbestic: b570\n",
+        "    isosbestic: b570\n    diameter_correction: true\n",
+    );
     run();
     let (fh, fits) = read("fits/so2.csv");
-    assert_ne!(plain, two_band_so2(&fits, &fh), "the correction changes the two-band SO2");
+    assert_ne!(
+        plain,
+        two_band_so2(&fits, &fh),
+        "the correction changes the two-band SO2"
+    );
     let c = |n: &str| fh.iter().position(|x| x == n).unwrap();
     // Pooled within-capture, within-kind slope of ODR on diameter.
     let slope = |col: usize| {
         let mut groups: BTreeMap<(String, String, String), Vec<(f64, f64)>> = BTreeMap::new();
-        for r in fits.iter().filter(|r| &r[c("method")] == "two-band" && !r[col].is_empty() && !r[c("so2")].is_empty()) {
-            groups.entry((r[c("subject")].to_string(), r[c("capture")].to_string(), r[c("kind")].to_string())).or_default().push((r[c("diameter_um")].parse().unwrap(), r[col].parse().unwrap()));
+        for r in fits.iter().filter(|r| {
+            &r[c("method")] == "two-band" && !r[col].is_empty() && !r[c("so2")].is_empty()
+        }) {
+            groups
+                .entry((
+                    r[c("subject")].to_string(),
+                    r[c("capture")].to_string(),
+                    r[c("kind")].to_string(),
+                ))
+                .or_default()
+                .push((
+                    r[c("diameter_um")].parse().unwrap(),
+                    r[col].parse().unwrap(),
+                ));
         }
         let (mut sxx, mut sxy) = (0.0, 0.0);
         for g in groups.values().filter(|g| g.len() > 1) {
             let n = g.len() as f64;
-            let (mx, my) = (g.iter().map(|p| p.0).sum::<f64>() / n, g.iter().map(|p| p.1).sum::<f64>() / n);
+            let (mx, my) = (
+                g.iter().map(|p| p.0).sum::<f64>() / n,
+                g.iter().map(|p| p.1).sum::<f64>() / n,
+            );
             sxx += g.iter().map(|p| (p.0 - mx).powi(2)).sum::<f64>();
             sxy += g.iter().map(|p| (p.0 - mx) * (p.1 - my)).sum::<f64>();
         }
         sxy / sxx
     };
     let (raw, corrected) = (slope(c("odr_uncorrected")), slope(c("odr")));
-    assert!(raw.abs() > 1e-4 && corrected.abs() < 1e-3 * raw.abs(), "ODR per µm: {raw} before, {corrected} after the correction");
+    assert!(
+        raw.abs() > 1e-4 && corrected.abs() < 1e-3 * raw.abs(),
+        "ODR per µm: {raw} before, {corrected} after the correction"
+    );
     let methods = std::fs::read_to_string(s.join("results/report/report.md")).unwrap();
-    assert!(methods.contains("linear correction of ODR for vessel diameter"), "the methods text says what ran");
+    assert!(
+        methods.contains("linear correction of ODR for vessel diameter"),
+        "the methods text says what ran"
+    );
 
     // A minimum above every vessel empties the statistics: a warning, not silence.
-    edit(&format!("min_diameter_um: {median}"), "min_diameter_um: 100000");
+    edit(
+        &format!("min_diameter_um: {median}"),
+        "min_diameter_um: 100000",
+    );
     let o = run();
-    assert!(o.stderr.contains("warning: `exclusions.min_diameter_um: 100000` leaves no arteriole value of `multiband`"), "{}", o.stderr);
+    assert!(
+        o.stderr.contains(
+            "warning: `exclusions.min_diameter_um: 100000` leaves no arteriole value of `multiband`"
+        ),
+        "{}",
+        o.stderr
+    );
 }

@@ -8,25 +8,33 @@ use std::path::PathBuf;
 
 use satstep::config::csvfile::read_csv;
 use satstep::config::diag::Findings;
-use satstep::stats::design::{build, Design, RandomSpec, Spec};
+use satstep::stats::design::{Design, RandomSpec, Spec, build};
 use satstep::stats::infer::{contrast, f_test};
 use satstep::stats::lmm::{Criterion, Fit, Model};
 
 fn design(file: &str, response: &str, fixed: &[&str], random: &[&str]) -> Design {
-    let p = PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/mixed-models").join(file);
+    let p = PathBuf::from(env!("CARGO_MANIFEST_DIR"))
+        .join("tests/fixtures/mixed-models")
+        .join(file);
     let mut f = Findings::new();
     let t = read_csv(&p, &mut f).unwrap();
     let spec = Spec {
         response: response.into(),
         fixed: fixed.iter().map(|s| s.to_string()).collect(),
-        random: random.iter().map(|r| RandomSpec::parse(r).unwrap()).collect(),
+        random: random
+            .iter()
+            .map(|r| RandomSpec::parse(r).unwrap())
+            .collect(),
         reference: vec![],
     };
     build(&t, &p, &spec, &mut f).unwrap()
 }
 
 fn close(what: &str, got: f64, want: f64, rel: f64) {
-    assert!(((got - want) / want).abs() <= rel, "{what}: got {got}, lme4/lmerTest {want} (relative tolerance {rel})");
+    assert!(
+        ((got - want) / want).abs() <= rel,
+        "{what}: got {got}, lme4/lmerTest {want} (relative tolerance {rel})"
+    );
 }
 
 struct Expected<'a> {
@@ -51,7 +59,11 @@ fn check(model: &Model, fit: &Fit, e: &Expected) {
         close(&format!("df {k}"), t.df, e.df[k], 1e-3);
     }
     let comps = model.components(fit);
-    let mut got: Vec<f64> = comps.terms.iter().flat_map(|(_, cols, cov)| (0..cols.len()).map(move |i| cov[(i, i)])).collect();
+    let mut got: Vec<f64> = comps
+        .terms
+        .iter()
+        .flat_map(|(_, cols, cov)| (0..cols.len()).map(move |i| cov[(i, i)]))
+        .collect();
     got.push(comps.residual);
     assert_eq!(got.len(), e.vc.len());
     for (i, (g, w)) in got.iter().zip(e.vc).enumerate() {
@@ -67,16 +79,25 @@ fn sleepstudy_random_slopes() {
     let d = design("sleepstudy.csv", "Reaction", &["Days"], &["Subject@Days"]);
     let m = Model::new(d.data, Criterion::Reml);
     let fit = m.fit().unwrap();
-    check(&m, &fit, &Expected {
-        est: &[251.405104848, 10.4672859596],
-        se: &[6.82459669495, 1.54578964391],
-        df: &[16.9997262885, 16.9999837256],
-        vc: &[612.100158025, 35.0717144509, 654.94000826],
-        criterion: 1743.62827196,
-    });
+    check(
+        &m,
+        &fit,
+        &Expected {
+            est: &[251.405104848, 10.4672859596],
+            se: &[6.82459669495, 1.54578964391],
+            df: &[16.9997262885, 16.9999837256],
+            vc: &[612.100158025, 35.0717144509, 654.94000826],
+            criterion: 1743.62827196,
+        },
+    );
     let c = m.components(&fit);
     let cov = &c.terms[0].2;
-    close("slope-intercept covariance", cov[(1, 0)], 9.60440895116, 1e-3);
+    close(
+        "slope-intercept covariance",
+        cov[(1, 0)],
+        9.60440895116,
+        1e-3,
+    );
     let t = contrast(&m, &fit, "Days", &[0.0, 1.0]);
     close("t", t.t, 6.771481489, 1e-4);
     close("p", t.p, 3.26382446993e-06, 1e-3);
@@ -87,38 +108,62 @@ fn sleepstudy_random_intercepts() {
     let d = design("sleepstudy.csv", "Reaction", &["Days"], &["Subject"]);
     let m = Model::new(d.data, Criterion::Reml);
     let fit = m.fit().unwrap();
-    check(&m, &fit, &Expected {
-        est: &[251.405104848, 10.4672859596],
-        se: &[9.74671626921, 0.804221428945],
-        df: &[22.8101989553, 161.000000055],
-        vc: &[1378.17851381, 960.45657856],
-        criterion: 1786.46508539,
-    });
+    check(
+        &m,
+        &fit,
+        &Expected {
+            est: &[251.405104848, 10.4672859596],
+            se: &[9.74671626921, 0.804221428945],
+            df: &[22.8101989553, 161.000000055],
+            vc: &[1378.17851381, 960.45657856],
+            criterion: 1786.46508539,
+        },
+    );
 }
 
 #[test]
 fn sleepstudy_ml_likelihood_ratio() {
-    let slope = Model::new(design("sleepstudy.csv", "Reaction", &["Days"], &["Subject@Days"]).data, Criterion::Ml);
-    let icpt = Model::new(design("sleepstudy.csv", "Reaction", &["Days"], &["Subject"]).data, Criterion::Ml);
+    let slope = Model::new(
+        design("sleepstudy.csv", "Reaction", &["Days"], &["Subject@Days"]).data,
+        Criterion::Ml,
+    );
+    let icpt = Model::new(
+        design("sleepstudy.csv", "Reaction", &["Days"], &["Subject"]).data,
+        Criterion::Ml,
+    );
     let (a, b) = (slope.fit().unwrap(), icpt.fit().unwrap());
     close("ML deviance, slope model", a.deviance, 1751.93934449, 1e-6);
-    close("ML deviance, intercept model", b.deviance, 1794.07864301, 1e-6);
+    close(
+        "ML deviance, intercept model",
+        b.deviance,
+        1794.07864301,
+        1e-6,
+    );
     close("LRT chi-square", b.deviance - a.deviance, 42.139, 1e-4);
 }
 
 #[test]
 fn simulated_nested_balanced() {
-    let d = design("sim_nested_balanced.csv", "so2", &["epoch"], &["subject", "subject:eye"]);
+    let d = design(
+        "sim_nested_balanced.csv",
+        "so2",
+        &["epoch"],
+        &["subject", "subject:eye"],
+    );
     let l = d.contrast("hypoxia - recovery").unwrap();
     let m = Model::new(d.data, Criterion::Reml);
     let fit = m.fit().unwrap();
-    check(&m, &fit, &Expected {
-        est: &[96.7220216667, -7.99831, -1.020045],
-        se: &[1.27288136929, 0.46532938308, 0.46532938308],
-        df: &[9.85762411448, 157.99996644, 157.999966444],
-        vc: &[13.7925340742, 2.65415710971, 6.49594304274],
-        criterion: 895.041897629,
-    });
+    check(
+        &m,
+        &fit,
+        &Expected {
+            est: &[96.7220216667, -7.99831, -1.020045],
+            se: &[1.27288136929, 0.46532938308, 0.46532938308],
+            df: &[9.85762411448, 157.99996644, 157.999966444],
+            vc: &[13.7925340742, 2.65415710971, 6.49594304274],
+            criterion: 895.041897629,
+        },
+    );
     let c = contrast(&m, &fit, "hypoxia - recovery", &l);
     close("contrast", c.estimate, -6.978265, 1e-6);
     close("contrast SE", c.std_error, 0.46532938308, 1e-4);
@@ -134,14 +179,23 @@ fn simulated_nested_balanced() {
 
 #[test]
 fn simulated_nested_unbalanced() {
-    let d = design("sim_nested_unbalanced.csv", "so2", &["epoch"], &["subject", "subject:eye"]);
+    let d = design(
+        "sim_nested_unbalanced.csv",
+        "so2",
+        &["epoch"],
+        &["subject", "subject:eye"],
+    );
     let m = Model::new(d.data, Criterion::Reml);
     let fit = m.fit().unwrap();
-    check(&m, &fit, &Expected {
-        est: &[96.993378753, -8.24780764862, -0.901404334086],
-        se: &[1.3039723114, 0.477181980519, 0.487085778071],
-        df: &[9.76541604955, 133.623739791, 134.372448915],
-        vc: &[14.5998932136, 2.64108219441, 5.99328706693],
-        criterion: 763.708654533,
-    });
+    check(
+        &m,
+        &fit,
+        &Expected {
+            est: &[96.993378753, -8.24780764862, -0.901404334086],
+            se: &[1.3039723114, 0.477181980519, 0.487085778071],
+            df: &[9.76541604955, 133.623739791, 134.372448915],
+            vc: &[14.5998932136, 2.64108219441, 5.99328706693],
+            criterion: 763.708654533,
+        },
+    );
 }

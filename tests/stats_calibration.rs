@@ -19,7 +19,7 @@
 
 use rayon::prelude::*;
 use satstep::simulate::cohort::CohortDesign;
-use satstep::stats::epoch_model::{analyse, Adjustment, Basis, ContrastSpec, Design};
+use satstep::stats::epoch_model::{Adjustment, Basis, ContrastSpec, Design, analyse};
 
 fn step_down(subjects: usize) -> CohortDesign {
     CohortDesign::step_down(subjects)
@@ -28,19 +28,54 @@ fn step_down(subjects: usize) -> CohortDesign {
 /// The scenarios: name and design.
 fn scenarios() -> Vec<(&'static str, CohortDesign)> {
     let pilot = step_down(8);
-    let unbalanced = CohortDesign { two_eye_share: 0.5, captures_per_epoch: (2, 6), missing_capture: 0.15, missing_value: 0.1, ..step_down(6) };
-    let sessions = CohortDesign { two_eye_share: 0.3, two_session_share: 0.4, captures_per_epoch: (3, 5), missing_capture: 0.1, ..step_down(10) };
-    let cohort = CohortDesign { two_eye_share: 1.0, segments_per_eye: 3, captures_per_epoch: (4, 6), missing_capture: 0.05, missing_value: 0.05, ..step_down(12) };
+    let unbalanced = CohortDesign {
+        two_eye_share: 0.5,
+        captures_per_epoch: (2, 6),
+        missing_capture: 0.15,
+        missing_value: 0.1,
+        ..step_down(6)
+    };
+    let sessions = CohortDesign {
+        two_eye_share: 0.3,
+        two_session_share: 0.4,
+        captures_per_epoch: (3, 5),
+        missing_capture: 0.1,
+        ..step_down(10)
+    };
+    let cohort = CohortDesign {
+        two_eye_share: 1.0,
+        segments_per_eye: 3,
+        captures_per_epoch: (4, 6),
+        missing_capture: 0.05,
+        missing_value: 0.05,
+        ..step_down(12)
+    };
     // Like the demo: no day-to-day wander on air, a faint one in recovery, so
     // the baseline's subject-specific variance sits on the boundary.
     let mut steady_air = step_down(8);
     steady_air.epochs[0].response_sd = 0.0;
     steady_air.epochs[3].response_sd = 0.5;
-    vec![("pilot-8", pilot), ("unbalanced-6", unbalanced), ("sessions-10", sessions), ("two-eyes-12", cohort), ("steady-air-8", steady_air)]
+    vec![
+        ("pilot-8", pilot),
+        ("unbalanced-6", unbalanced),
+        ("sessions-10", sessions),
+        ("two-eyes-12", cohort),
+        ("steady-air-8", steady_air),
+    ]
 }
 
 fn contrasts() -> Vec<ContrastSpec> {
-    [("low-15 - air", 1), ("low-12 - air", 2), ("recovery - air", 3)].into_iter().map(|(l, e)| ContrastSpec { label: l.into(), weights: vec![(e, 1.0), (0, -1.0)] }).collect()
+    [
+        ("low-15 - air", 1),
+        ("low-12 - air", 2),
+        ("recovery - air", 3),
+    ]
+    .into_iter()
+    .map(|(l, e)| ContrastSpec {
+        label: l.into(),
+        weights: vec![(e, 1.0), (0, -1.0)],
+    })
+    .collect()
 }
 
 struct Figures {
@@ -60,33 +95,66 @@ struct Figures {
 fn calibrate(name: &str, d: &CohortDesign, studies: u64) -> Figures {
     let specs = contrasts();
     let epochs = d.epoch_names();
-    let design = Design { epochs: &epochs, baseline: 0, contrasts: &specs, confidence: 0.95, adjustment: Adjustment::None };
+    let design = Design {
+        epochs: &epochs,
+        baseline: 0,
+        contrasts: &specs,
+        confidence: 0.95,
+        adjustment: Adjustment::None,
+    };
     let runs: Vec<Vec<(bool, f64, bool, f64)>> = (0..studies)
         .into_par_iter()
         .map(|i| {
             let obs = d.simulate(20261202, &format!("{name}/{i}"));
             let a = analyse(&obs, &design);
-            assert_eq!(a.contrasts.len(), specs.len(), "{name}/{i}: every contrast tested");
+            assert_eq!(
+                a.contrasts.len(),
+                specs.len(),
+                "{name}/{i}: every contrast tested"
+            );
             a.contrasts
                 .iter()
                 .zip(&specs)
                 .map(|(c, s)| {
                     let truth = d.true_contrast(&s.weights);
-                    (c.test.lower <= truth && truth <= c.test.upper, c.test.p, c.basis != Basis::MixedModel, c.test.df)
+                    (
+                        c.test.lower <= truth && truth <= c.test.upper,
+                        c.test.p,
+                        c.basis != Basis::MixedModel,
+                        c.test.df,
+                    )
                 })
                 .collect()
         })
         .collect();
     let n = studies as f64;
-    let coverage = (0..specs.len()).map(|k| runs.iter().filter(|r| r[k].0).count() as f64 / n).collect();
+    let coverage = (0..specs.len())
+        .map(|k| runs.iter().filter(|r| r[k].0).count() as f64 / n)
+        .collect();
     let null_rejection = runs.iter().filter(|r| r[2].1 < 0.05).count() as f64 / n;
     let fallback = runs.iter().flatten().filter(|r| r.2).count() as f64 / (n * specs.len() as f64);
     let max_df = runs.iter().flatten().map(|r| r.3).fold(0.0, f64::max);
-    let wide_df = runs.iter().flatten().filter(|r| r.3 > 3.0 * d.subjects as f64).count() as f64 / (n * specs.len() as f64);
-    let f = Figures { coverage, null_rejection, fallback, max_df, wide_df };
+    let wide_df = runs
+        .iter()
+        .flatten()
+        .filter(|r| r.3 > 3.0 * d.subjects as f64)
+        .count() as f64
+        / (n * specs.len() as f64);
+    let f = Figures {
+        coverage,
+        null_rejection,
+        fallback,
+        max_df,
+        wide_df,
+    };
     eprintln!(
         "{name:>14} ({studies} studies): coverage {} · null rejected {:.1} % · subject-level fallback {:.1} % of tests · largest df {:.1} · df > 3 × subjects in {:.2} % of tests",
-        specs.iter().zip(&f.coverage).map(|(s, c)| format!("{} {:.1} %", s.label, 100.0 * c)).collect::<Vec<_>>().join(", "),
+        specs
+            .iter()
+            .zip(&f.coverage)
+            .map(|(s, c)| format!("{} {:.1} %", s.label, 100.0 * c))
+            .collect::<Vec<_>>()
+            .join(", "),
         100.0 * f.null_rejection,
         100.0 * f.fallback,
         f.max_df,
@@ -102,8 +170,16 @@ fn epoch_contrasts_are_calibrated_on_whole_studies_quick() {
         for c in &f.coverage {
             assert!(*c >= 0.85, "{name}: coverage {c}");
         }
-        assert!(f.null_rejection <= 0.14, "{name}: null rejected in {}", f.null_rejection);
-        assert!(f.wide_df <= 0.02, "{name}: df above 3 × subjects in {} of tests", f.wide_df);
+        assert!(
+            f.null_rejection <= 0.14,
+            "{name}: null rejected in {}",
+            f.null_rejection
+        );
+        assert!(
+            f.wide_df <= 0.02,
+            "{name}: df above 3 × subjects in {} of tests",
+            f.wide_df
+        );
     }
 }
 
@@ -115,7 +191,15 @@ fn epoch_contrasts_are_calibrated_on_whole_studies() {
         for c in &f.coverage {
             assert!((0.93..=0.97).contains(c), "{name}: coverage {c}");
         }
-        assert!((0.035..=0.065).contains(&f.null_rejection), "{name}: null rejected in {}", f.null_rejection);
-        assert!(f.wide_df <= 0.01, "{name}: df above 3 × subjects in {} of tests", f.wide_df);
+        assert!(
+            (0.035..=0.065).contains(&f.null_rejection),
+            "{name}: null rejected in {}",
+            f.null_rejection
+        );
+        assert!(
+            f.wide_df <= 0.01,
+            "{name}: df above 3 × subjects in {} of tests",
+            f.wide_df
+        );
     }
 }

@@ -160,7 +160,11 @@ pub fn main_with_args(args: impl IntoIterator<Item = std::ffi::OsString>) -> Exi
         Ok(c) => c,
         Err(e) => {
             let _ = e.print();
-            return if e.use_stderr() { Exit::Problem } else { Exit::Ok };
+            return if e.use_stderr() {
+                Exit::Problem
+            } else {
+                Exit::Ok
+            };
         }
     };
     let printer = cli.global.printer();
@@ -170,21 +174,61 @@ pub fn main_with_args(args: impl IntoIterator<Item = std::ffi::OsString>) -> Exi
             return Exit::Problem;
         }
         // Only fails if a pool already exists, which cannot happen here.
-        let _ = rayon::ThreadPoolBuilder::new().num_threads(n).build_global();
+        let _ = rayon::ThreadPoolBuilder::new()
+            .num_threads(n)
+            .build_global();
     }
     let result = match cli.command {
         Command::Check { study } => crate::run::check(&study, &printer),
-        Command::Protocol { action: ProtocolAction::Show { file } } => crate::run::show_protocol(&file, &printer),
+        Command::Protocol {
+            action: ProtocolAction::Show { file },
+        } => crate::run::show_protocol(&file, &printer),
         Command::Run { study, force } => crate::run::run(&study, &force, &printer),
         Command::Simulate { scenario, out } => crate::run::simulate(&scenario, &out, &printer),
-        Command::Mixed { data, response, fixed, random, reference, contrast, ml, out } => {
-            let args = crate::run::mixed::MixedArgs { data, response, fixed, random, reference, contrasts: contrast, ml, out };
+        Command::Mixed {
+            data,
+            response,
+            fixed,
+            random,
+            reference,
+            contrast,
+            ml,
+            out,
+        } => {
+            let args = crate::run::mixed::MixedArgs {
+                data,
+                response,
+                fixed,
+                random,
+                reference,
+                contrasts: contrast,
+                ml,
+                out,
+            };
             crate::run::mixed::mixed(&args, &printer)
         }
-        Command::Sensitivity { file, so2, diameter, hb, double_pass, method, bands, out } => {
+        Command::Sensitivity {
+            file,
+            so2,
+            diameter,
+            hb,
+            double_pass,
+            method,
+            bands,
+            out,
+        } => {
             use crate::oximetry::sensitivity::{OperatingPoint, Unknowns};
-            let op = OperatingPoint { so2: so2 / 100.0, diameter_um: diameter, hb_g_per_l: hb, double_pass };
-            let unknowns = if method == "multiband-pointwise" { Unknowns::VeilPerPosition } else { Unknowns::VeilShared };
+            let op = OperatingPoint {
+                so2: so2 / 100.0,
+                diameter_um: diameter,
+                hb_g_per_l: hb,
+                double_pass,
+            };
+            let unknowns = if method == "multiband-pointwise" {
+                Unknowns::VeilPerPosition
+            } else {
+                Unknowns::VeilShared
+            };
             crate::run::sensitivity::sensitivity(&file, &op, unknowns, &bands, &out, &printer)
         }
     };

@@ -24,11 +24,19 @@ impl Printer {
     pub fn new(level: Level, no_progress: bool) -> Self {
         let no_color = std::env::var_os("NO_COLOR").is_some_and(|v| !v.is_empty());
         let tty = std::io::stderr().is_terminal();
-        Printer { level, color: tty && !no_color, progress: tty && !no_progress && level != Level::Quiet }
+        Printer {
+            level,
+            color: tty && !no_color,
+            progress: tty && !no_progress && level != Level::Quiet,
+        }
     }
 
     fn paint(&self, code: &str, text: &str) -> String {
-        if self.color { format!("\x1b[{code}m{text}\x1b[0m") } else { text.to_string() }
+        if self.color {
+            format!("\x1b[{code}m{text}\x1b[0m")
+        } else {
+            text.to_string()
+        }
     }
 
     /// Normal messages: what is being done, what was written.
@@ -63,7 +71,12 @@ impl Printer {
         if f.severity == Severity::Warning && self.level < Level::Normal {
             return;
         }
-        let mut s = format!("{}: {}: {}", self.paint(code, word), self.paint("1", &f.location()), f.message);
+        let mut s = format!(
+            "{}: {}: {}",
+            self.paint(code, word),
+            self.paint("1", &f.location()),
+            f.message
+        );
         if let Some(h) = &f.hint {
             s.push_str(&format!("\n  {}: {h}", self.paint("36", "hint")));
         }

@@ -70,16 +70,38 @@ impl Findings {
         Self::default()
     }
 
-    pub fn error(&mut self, file: &Path, mark: Option<Mark>, message: impl Into<String>) -> &mut Finding {
+    pub fn error(
+        &mut self,
+        file: &Path,
+        mark: Option<Mark>,
+        message: impl Into<String>,
+    ) -> &mut Finding {
         self.push(Severity::Error, file, mark, message)
     }
 
-    pub fn warning(&mut self, file: &Path, mark: Option<Mark>, message: impl Into<String>) -> &mut Finding {
+    pub fn warning(
+        &mut self,
+        file: &Path,
+        mark: Option<Mark>,
+        message: impl Into<String>,
+    ) -> &mut Finding {
         self.push(Severity::Warning, file, mark, message)
     }
 
-    fn push(&mut self, severity: Severity, file: &Path, mark: Option<Mark>, message: impl Into<String>) -> &mut Finding {
-        self.items.push(Finding { severity, file: file.to_path_buf(), mark, message: message.into(), hint: None });
+    fn push(
+        &mut self,
+        severity: Severity,
+        file: &Path,
+        mark: Option<Mark>,
+        message: impl Into<String>,
+    ) -> &mut Finding {
+        self.items.push(Finding {
+            severity,
+            file: file.to_path_buf(),
+            mark,
+            message: message.into(),
+            hint: None,
+        });
         self.items.last_mut().expect("just pushed")
     }
 
@@ -92,11 +114,17 @@ impl Findings {
     }
 
     pub fn error_count(&self) -> usize {
-        self.items.iter().filter(|f| f.severity == Severity::Error).count()
+        self.items
+            .iter()
+            .filter(|f| f.severity == Severity::Error)
+            .count()
     }
 
     pub fn warning_count(&self) -> usize {
-        self.items.iter().filter(|f| f.severity == Severity::Warning).count()
+        self.items
+            .iter()
+            .filter(|f| f.severity == Severity::Warning)
+            .count()
     }
 
     pub fn is_empty(&self) -> bool {
@@ -126,17 +154,38 @@ impl Finding {
 pub fn nearest<'a>(word: &str, valid: &[&'a str]) -> Vec<&'a str> {
     let mut scored: Vec<(f64, &'a str)> = valid
         .iter()
-        .map(|v| (strsim::normalized_damerau_levenshtein(&word.to_lowercase(), v), *v))
+        .map(|v| {
+            (
+                strsim::normalized_damerau_levenshtein(&word.to_lowercase(), v),
+                *v,
+            )
+        })
         .collect();
-    scored.sort_by(|a, b| b.0.partial_cmp(&a.0).unwrap_or(std::cmp::Ordering::Equal).then(a.1.cmp(b.1)));
-    let close: Vec<&str> = scored.iter().filter(|(s, _)| *s >= 0.5).map(|(_, v)| *v).collect();
-    if close.is_empty() { scored.into_iter().map(|(_, v)| v).collect() } else { close }
+    scored.sort_by(|a, b| {
+        b.0.partial_cmp(&a.0)
+            .unwrap_or(std::cmp::Ordering::Equal)
+            .then(a.1.cmp(b.1))
+    });
+    let close: Vec<&str> = scored
+        .iter()
+        .filter(|(s, _)| *s >= 0.5)
+        .map(|(_, v)| *v)
+        .collect();
+    if close.is_empty() {
+        scored.into_iter().map(|(_, v)| v).collect()
+    } else {
+        close
+    }
 }
 
 /// "did you mean `x`? expected one of `a`, `b`, `c`".
 pub fn suggest(word: &str, valid: &[&str]) -> String {
     let near = nearest(word, valid);
-    let all = valid.iter().map(|v| format!("`{v}`")).collect::<Vec<_>>().join(", ");
+    let all = valid
+        .iter()
+        .map(|v| format!("`{v}`"))
+        .collect::<Vec<_>>()
+        .join(", ");
     match near.first() {
         Some(best) if strsim::normalized_damerau_levenshtein(&word.to_lowercase(), best) >= 0.5 => {
             format!("did you mean `{best}`? expected one of {all}")
@@ -152,7 +201,10 @@ mod tests {
     #[test]
     fn suggestion_names_the_nearest_key_first() {
         let s = suggest("setle", &["name", "gas", "duration", "settle"]);
-        assert_eq!(s, "did you mean `settle`? expected one of `name`, `gas`, `duration`, `settle`");
+        assert_eq!(
+            s,
+            "did you mean `settle`? expected one of `name`, `gas`, `duration`, `settle`"
+        );
     }
 
     #[test]
@@ -164,7 +216,11 @@ mod tests {
     #[test]
     fn display_has_location_and_hint() {
         let mut f = Findings::new();
-        f.error(Path::new("p.yaml"), Some(Mark::new(3, 5)), "bad").hint("fix it");
-        assert_eq!(f.sorted()[0].to_string(), "error: p.yaml:3:5: bad\n  hint: fix it");
+        f.error(Path::new("p.yaml"), Some(Mark::new(3, 5)), "bad")
+            .hint("fix it");
+        assert_eq!(
+            f.sorted()[0].to_string(),
+            "error: p.yaml:3:5: bad\n  hint: fix it"
+        );
     }
 }

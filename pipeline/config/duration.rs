@@ -17,16 +17,23 @@ pub fn parse_seconds(text: &str) -> Result<f64, String> {
     let mut total = 0.0;
     let mut last_rank: Option<usize> = None;
     while !rest.is_empty() {
-        let num_len = rest.find(|c: char| !(c.is_ascii_digit() || c == '.')).unwrap_or(rest.len());
+        let num_len = rest
+            .find(|c: char| !(c.is_ascii_digit() || c == '.'))
+            .unwrap_or(rest.len());
         if num_len == 0 {
             return Err(format!("`{t}` is not a duration"));
         }
-        let value: f64 = rest[..num_len].parse().map_err(|_| format!("`{}` is not a number", &rest[..num_len]))?;
+        let value: f64 = rest[..num_len]
+            .parse()
+            .map_err(|_| format!("`{}` is not a number", &rest[..num_len]))?;
         rest = &rest[num_len..];
         let Some((rank, (unit, factor))) = UNITS.iter().enumerate().find(|(_, (u, _))| {
             rest.starts_with(u) && !rest[u.len()..].starts_with(|c: char| c.is_ascii_alphabetic())
         }) else {
-            let unit: String = rest.chars().take_while(|c| c.is_ascii_alphabetic()).collect();
+            let unit: String = rest
+                .chars()
+                .take_while(|c| c.is_ascii_alphabetic())
+                .collect();
             return Err(if unit.is_empty() {
                 format!("`{t}` has a number without a unit")
             } else {
@@ -34,7 +41,9 @@ pub fn parse_seconds(text: &str) -> Result<f64, String> {
             });
         };
         if last_rank.is_some_and(|r| rank <= r) {
-            return Err(format!("`{t}`: write the parts from hours down to seconds, each once"));
+            return Err(format!(
+                "`{t}`: write the parts from hours down to seconds, each once"
+            ));
         }
         last_rank = Some(rank);
         total += value * factor;
@@ -85,10 +94,22 @@ mod tests {
     #[test]
     fn refuses_ambiguous_or_malformed_forms() {
         assert_eq!(parse_seconds("5"), Err("`5` has no unit".to_string()));
-        assert_eq!(parse_seconds("5 minutes"), Err("`5 minutes` has a number without a unit".to_string()));
-        assert_eq!(parse_seconds("5m"), Err("unknown unit `m` in `5m`".to_string()));
-        assert_eq!(parse_seconds("30min1h"), Err("`30min1h`: write the parts from hours down to seconds, each once".to_string()));
-        assert_eq!(parse_seconds("min"), Err("`min` is not a duration".to_string()));
+        assert_eq!(
+            parse_seconds("5 minutes"),
+            Err("`5 minutes` has a number without a unit".to_string())
+        );
+        assert_eq!(
+            parse_seconds("5m"),
+            Err("unknown unit `m` in `5m`".to_string())
+        );
+        assert_eq!(
+            parse_seconds("30min1h"),
+            Err("`30min1h`: write the parts from hours down to seconds, each once".to_string())
+        );
+        assert_eq!(
+            parse_seconds("min"),
+            Err("`min` is not a duration".to_string())
+        );
         assert_eq!(parse_seconds(""), Err("the duration is empty".to_string()));
         assert!(parse_seconds("-5min").is_err());
         assert!(parse_seconds("1.2.3s").is_err());
@@ -97,7 +118,10 @@ mod tests {
     #[test]
     fn formats_round_trip() {
         for s in ["90s", "5min", "1h30min", "1h", "0s", "1h2min3s"] {
-            assert_eq!(format_seconds(parse_seconds(s).unwrap()), s.replace("90s", "1min30s"));
+            assert_eq!(
+                format_seconds(parse_seconds(s).unwrap()),
+                s.replace("90s", "1min30s")
+            );
         }
     }
 }

@@ -19,7 +19,7 @@ use std::path::Path;
 use super::diag::{Findings, Mark};
 use super::read::Reader;
 use super::yaml::Node;
-use crate::physiology::{equivalent_altitude_m, equivalent_o2_fraction, AIR_O2_FRACTION};
+use crate::physiology::{AIR_O2_FRACTION, equivalent_altitude_m, equivalent_o2_fraction};
 
 /// How the epoch's gas was written.
 #[derive(Debug, Clone, PartialEq, serde::Serialize)]
@@ -44,7 +44,9 @@ impl Gas {
         match self.written {
             GasSpec::Air => "air (O2 0.21)".to_string(),
             GasSpec::O2Fraction(f) => format!("O2 {f:.3}"),
-            GasSpec::AltitudeM(h) => format!("air at {h:.0} m (O2 {:.3} equivalent)", self.o2_fraction),
+            GasSpec::AltitudeM(h) => {
+                format!("air at {h:.0} m (O2 {:.3} equivalent)", self.o2_fraction)
+            }
         }
     }
 }
@@ -103,7 +105,12 @@ pub struct ReferenceSettings {
 
 impl Default for ReferenceSettings {
     fn default() -> Self {
-        ReferenceSettings { probe_site: ProbeSite::Finger, lag_s: 0.0, window_s: 10.0, stability_limit: 3.0 }
+        ReferenceSettings {
+            probe_site: ProbeSite::Finger,
+            lag_s: 0.0,
+            window_s: 10.0,
+            stability_limit: 3.0,
+        }
     }
 }
 
@@ -140,7 +147,14 @@ impl Protocol {
     }
 }
 
-const PROTOCOL_KEYS: &[&str] = &["name", "description", "epochs", "baseline", "contrasts", "reference"];
+const PROTOCOL_KEYS: &[&str] = &[
+    "name",
+    "description",
+    "epochs",
+    "baseline",
+    "contrasts",
+    "reference",
+];
 const EPOCH_KEYS: &[&str] = &["name", "gas", "duration", "settle", "note"];
 const GAS_KEYS: &[&str] = &["o2_fraction", "altitude_m"];
 const REFERENCE_KEYS: &[&str] = &["probe_site", "lag", "window", "stability_limit"];
@@ -148,7 +162,8 @@ const REFERENCE_KEYS: &[&str] = &["probe_site", "lag", "window", "stability_limi
 /// Reads and validates a protocol file. All findings are returned together.
 pub fn load_protocol(path: &Path) -> Result<Protocol, Findings> {
     let mut findings = Findings::new();
-    let Some(root) = super::read::load_tree(path, "protocol file", "check the path", &mut findings) else {
+    let Some(root) = super::read::load_tree(path, "protocol file", "check the path", &mut findings)
+    else {
         return Err(findings);
     };
     let p = {
@@ -169,20 +184,25 @@ pub fn read_protocol(r: &mut Reader, node: &Node) -> Option<Protocol> {
     if m.get("name").is_none() {
         r.required(&m, "name", "the protocol");
     }
-    let description = m.get("description").and_then(|n| r.text(n, "`description`")).unwrap_or_default();
+    let description = m
+        .get("description")
+        .and_then(|n| r.text(n, "`description`"))
+        .unwrap_or_default();
 
     let mut epochs: Vec<Epoch> = Vec::new();
     let mut names_seen: Vec<(String, Mark)> = Vec::new();
     let mut epochs_ok = true;
     match m.get("epochs") {
         None => {
-            r.error(m.mark(), "the protocol has no epochs").hint("add `epochs:` with at least one `- name: …` entry");
+            r.error(m.mark(), "the protocol has no epochs")
+                .hint("add `epochs:` with at least one `- name: …` entry");
             epochs_ok = false;
         }
         Some(list_node) => {
             if let Some(items) = r.list(list_node, "`epochs`") {
                 if items.is_empty() {
-                    r.error(list_node.mark, "the protocol has no epochs").hint("add at least one `- name: …` entry");
+                    r.error(list_node.mark, "the protocol has no epochs")
+                        .hint("add at least one `- name: …` entry");
                     epochs_ok = false;
                 }
                 for item in items {
@@ -192,7 +212,10 @@ pub fn read_protocol(r: &mut Reader, node: &Node) -> Option<Protocol> {
                     if let Some(nn) = name_node {
                         if let Some(name) = nn.as_scalar() {
                             if let Some((_, first)) = names_seen.iter().find(|(x, _)| x == name) {
-                                let msg = format!("epoch name `{name}` is used twice (first at line {})", first.line);
+                                let msg = format!(
+                                    "epoch name `{name}` is used twice (first at line {})",
+                                    first.line
+                                );
                                 r.error(nn.mark, msg).hint("give every epoch its own name, e.g. `air-2` for a second air epoch");
                             }
                             names_seen.push((name.to_string(), nn.mark));
@@ -218,7 +241,11 @@ pub fn read_protocol(r: &mut Reader, node: &Node) -> Option<Protocol> {
                 Some(i) => Some(i),
                 None => {
                     let hint = super::diag::suggest(&b, &names);
-                    r.error(n.mark, format!("baseline `{b}` is not an epoch of this protocol")).hint(hint);
+                    r.error(
+                        n.mark,
+                        format!("baseline `{b}` is not an epoch of this protocol"),
+                    )
+                    .hint(hint);
                     None
                 }
             })
@@ -229,12 +256,18 @@ pub fn read_protocol(r: &mut Reader, node: &Node) -> Option<Protocol> {
     if let Some(cn) = m.get("contrasts") {
         if let Some(items) = r.list(cn, "`contrasts`") {
             for item in items {
-                let Some(text) = r.text(item, "a contrast") else { continue };
+                let Some(text) = r.text(item, "a contrast") else {
+                    continue;
+                };
                 match parse_contrast(&text, &names) {
                     Ok(c) => contrasts.push(c),
                     Err(ContrastError::UnknownEpoch(e)) => {
                         let hint = super::diag::suggest(&e, &names);
-                        r.error(item.mark, format!("contrast `{text}` names `{e}`, which is not an epoch")).hint(hint);
+                        r.error(
+                            item.mark,
+                            format!("contrast `{text}` names `{e}`, which is not an epoch"),
+                        )
+                        .hint(hint);
                     }
                     Err(ContrastError::Syntax(msg)) => {
                         r.error(item.mark, format!("contrast `{text}`: {msg}"))
@@ -253,24 +286,39 @@ pub fn read_protocol(r: &mut Reader, node: &Node) -> Option<Protocol> {
     if !epochs_ok || epochs.is_empty() {
         return None;
     }
-    Some(Protocol { name: name?, description, epochs, baseline: baseline?, contrasts, reference: reference? })
+    Some(Protocol {
+        name: name?,
+        description,
+        epochs,
+        baseline: baseline?,
+        contrasts,
+        reference: reference?,
+    })
 }
 
 fn read_epoch(r: &mut Reader, node: &Node) -> Option<Epoch> {
     let m = r.map(node, "an epoch", EPOCH_KEYS)?;
-    let name = r.required(&m, "name", "an epoch").and_then(|n| r.text(n, "an epoch's `name`"));
+    let name = r
+        .required(&m, "name", "an epoch")
+        .and_then(|n| r.text(n, "an epoch's `name`"));
     if let Some(n) = &name {
         if n.trim().is_empty() || n.contains(char::is_whitespace) {
-            r.error(m.get("name").expect("present").mark, format!("epoch name `{n}` must be one word without spaces"))
-                .hint("use letters, digits, `-` and `_`, e.g. `low-15`");
+            r.error(
+                m.get("name").expect("present").mark,
+                format!("epoch name `{n}` must be one word without spaces"),
+            )
+            .hint("use letters, digits, `-` and `_`, e.g. `low-15`");
         }
     }
-    let gas = r.required(&m, "gas", "an epoch").and_then(|n| read_gas(r, n));
+    let gas = r
+        .required(&m, "gas", "an epoch")
+        .and_then(|n| read_gas(r, n));
     let dur_node = r.required(&m, "duration", "an epoch");
     let duration = dur_node.and_then(|n| r.duration(n, "`duration`"));
     if let (Some(d), Some(n)) = (duration, dur_node) {
         if d <= 0.0 {
-            r.error(n.mark, "`duration` must be longer than zero").hint("write the epoch's length, e.g. `10min`");
+            r.error(n.mark, "`duration` must be longer than zero")
+                .hint("write the epoch's length, e.g. `10min`");
         }
     }
     let settle_node = m.get("settle");
@@ -292,16 +340,31 @@ fn read_epoch(r: &mut Reader, node: &Node) -> Option<Epoch> {
         }
     }
     let duration = duration.filter(|d| *d > 0.0)?;
-    Some(Epoch { name: name?, gas: gas?, duration_s: duration, settle_s: settle?.min(duration) })
+    Some(Epoch {
+        name: name?,
+        gas: gas?,
+        duration_s: duration,
+        settle_s: settle?.min(duration),
+    })
 }
 
 fn read_gas(r: &mut Reader, node: &Node) -> Option<Gas> {
     if node.as_scalar() == Some("air") {
-        return Some(Gas { written: GasSpec::Air, o2_fraction: AIR_O2_FRACTION, equivalent_altitude_m: Some(0.0) });
+        return Some(Gas {
+            written: GasSpec::Air,
+            o2_fraction: AIR_O2_FRACTION,
+            equivalent_altitude_m: Some(0.0),
+        });
     }
     if node.as_scalar().is_some() {
-        r.error(node.mark, format!("gas `{}` is not understood", node.as_scalar().unwrap_or_default()))
-            .hint("write `gas: air`, `gas: {o2_fraction: 0.15}` or `gas: {altitude_m: 3000}`");
+        r.error(
+            node.mark,
+            format!(
+                "gas `{}` is not understood",
+                node.as_scalar().unwrap_or_default()
+            ),
+        )
+        .hint("write `gas: air`, `gas: {o2_fraction: 0.15}` or `gas: {altitude_m: 3000}`");
         return None;
     }
     let m = r.map(node, "`gas`", GAS_KEYS)?;
@@ -313,7 +376,11 @@ fn read_gas(r: &mut Reader, node: &Node) -> Option<Gas> {
                     .hint("write the inspired O2 as a fraction, e.g. `0.15` for 15 %");
                 return None;
             }
-            Some(Gas { written: GasSpec::O2Fraction(v), o2_fraction: v, equivalent_altitude_m: equivalent_altitude_m(v) })
+            Some(Gas {
+                written: GasSpec::O2Fraction(v),
+                o2_fraction: v,
+                equivalent_altitude_m: equivalent_altitude_m(v),
+            })
         }
         (None, Some(h)) => {
             let v = r.number(h, "`altitude_m`")?;
@@ -323,13 +390,23 @@ fn read_gas(r: &mut Reader, node: &Node) -> Option<Gas> {
             }
             let f = equivalent_o2_fraction(v);
             if f < 0.05 {
-                r.error(h.mark, format!("`altitude_m` {v} is equivalent to O2 {f:.3}, below 0.05"));
+                r.error(
+                    h.mark,
+                    format!("`altitude_m` {v} is equivalent to O2 {f:.3}, below 0.05"),
+                );
                 return None;
             }
-            Some(Gas { written: GasSpec::AltitudeM(v), o2_fraction: f, equivalent_altitude_m: Some(v) })
+            Some(Gas {
+                written: GasSpec::AltitudeM(v),
+                o2_fraction: f,
+                equivalent_altitude_m: Some(v),
+            })
         }
         (Some(_), Some(h)) => {
-            r.error(h.mark, "give either `o2_fraction` or `altitude_m`, not both");
+            r.error(
+                h.mark,
+                "give either `o2_fraction` or `altitude_m`, not both",
+            );
             None
         }
         (None, None) => {
@@ -344,7 +421,9 @@ fn read_reference(r: &mut Reader, node: &Node) -> Option<ReferenceSettings> {
     let d = ReferenceSettings::default();
     let site = match m.get("probe_site") {
         None => Some(d.probe_site),
-        Some(n) => r.choice(n, "`probe_site`", &ProbeSite::NAMES).and_then(|s| ProbeSite::from_name(&s)),
+        Some(n) => r
+            .choice(n, "`probe_site`", &ProbeSite::NAMES)
+            .and_then(|s| ProbeSite::from_name(&s)),
     };
     let lag = match m.get("lag") {
         None => Some(d.lag_s),
@@ -355,7 +434,8 @@ fn read_reference(r: &mut Reader, node: &Node) -> Option<ReferenceSettings> {
         Some(n) => {
             let w = r.duration(n, "`window`");
             if w == Some(0.0) {
-                r.error(n.mark, "`window` must be longer than zero").hint("the oximeter logs once a second; `10s` is common");
+                r.error(n.mark, "`window` must be longer than zero")
+                    .hint("the oximeter logs once a second; `10s` is common");
                 None
             } else {
                 w
@@ -374,7 +454,12 @@ fn read_reference(r: &mut Reader, node: &Node) -> Option<ReferenceSettings> {
             }
         }
     };
-    Some(ReferenceSettings { probe_site: site?, lag_s: lag?, window_s: window?, stability_limit: limit? })
+    Some(ReferenceSettings {
+        probe_site: site?,
+        lag_s: lag?,
+        window_s: window?,
+        stability_limit: limit?,
+    })
 }
 
 #[derive(Debug, PartialEq)]
@@ -397,12 +482,17 @@ pub fn parse_contrast(text: &str, epochs: &[&str]) -> Result<Contrast, ContrastE
         if expect_term {
             let (coef, name) = match tok.split_once('*') {
                 Some((c, n)) => {
-                    let c: f64 = c.parse().map_err(|_| ContrastError::Syntax(format!("`{c}` is not a number")))?;
+                    let c: f64 = c
+                        .parse()
+                        .map_err(|_| ContrastError::Syntax(format!("`{c}` is not a number")))?;
                     (c, n)
                 }
                 None => (1.0, tok),
             };
-            let idx = epochs.iter().position(|e| *e == name).ok_or_else(|| ContrastError::UnknownEpoch(name.to_string()))?;
+            let idx = epochs
+                .iter()
+                .position(|e| *e == name)
+                .ok_or_else(|| ContrastError::UnknownEpoch(name.to_string()))?;
             match weights.iter_mut().find(|(i, _)| *i == idx) {
                 Some((_, w)) => *w += sign * coef,
                 None => weights.push((idx, sign * coef)),
@@ -412,7 +502,11 @@ pub fn parse_contrast(text: &str, epochs: &[&str]) -> Result<Contrast, ContrastE
             sign = match tok {
                 "+" => 1.0,
                 "-" => -1.0,
-                _ => return Err(ContrastError::Syntax(format!("expected `+` or `-` before `{tok}`"))),
+                _ => {
+                    return Err(ContrastError::Syntax(format!(
+                        "expected `+` or `-` before `{tok}`"
+                    )));
+                }
             };
             expect_term = true;
         }
@@ -423,9 +517,14 @@ pub fn parse_contrast(text: &str, epochs: &[&str]) -> Result<Contrast, ContrastE
     weights.retain(|(_, w)| *w != 0.0);
     let sum: f64 = weights.iter().map(|(_, w)| w).sum();
     if weights.is_empty() || sum.abs() > 1e-9 {
-        return Err(ContrastError::Syntax(format!("its weights add up to {sum}, not 0")));
+        return Err(ContrastError::Syntax(format!(
+            "its weights add up to {sum}, not 0"
+        )));
     }
-    Ok(Contrast { label: text.split_whitespace().collect::<Vec<_>>().join(" "), weights })
+    Ok(Contrast {
+        label: text.split_whitespace().collect::<Vec<_>>().join(" "),
+        weights,
+    })
 }
 
 #[cfg(test)]
@@ -439,9 +538,21 @@ mod tests {
         assert_eq!(c.weights, vec![(1, 1.0), (0, -1.0)]);
         let c = parse_contrast("0.5*low-15 + 0.5*low-12 - air", &e).unwrap();
         assert_eq!(c.weights, vec![(1, 0.5), (2, 0.5), (0, -1.0)]);
-        assert_eq!(parse_contrast("low-15 - hyper", &e), Err(ContrastError::UnknownEpoch("hyper".into())));
-        assert!(matches!(parse_contrast("low-15", &e), Err(ContrastError::Syntax(_))));
-        assert!(matches!(parse_contrast("low-15 -", &e), Err(ContrastError::Syntax(_))));
-        assert!(matches!(parse_contrast("low-15 air", &e), Err(ContrastError::Syntax(_))));
+        assert_eq!(
+            parse_contrast("low-15 - hyper", &e),
+            Err(ContrastError::UnknownEpoch("hyper".into()))
+        );
+        assert!(matches!(
+            parse_contrast("low-15", &e),
+            Err(ContrastError::Syntax(_))
+        ));
+        assert!(matches!(
+            parse_contrast("low-15 -", &e),
+            Err(ContrastError::Syntax(_))
+        ));
+        assert!(matches!(
+            parse_contrast("low-15 air", &e),
+            Err(ContrastError::Syntax(_))
+        ));
     }
 }

@@ -6,7 +6,7 @@ use std::path::Path;
 
 use chrono::{DateTime, FixedOffset};
 
-use super::diag::{suggest, Finding, Findings, Mark};
+use super::diag::{Finding, Findings, Mark, suggest};
 use super::duration::parse_seconds;
 use super::yaml::{Node, Value};
 use crate::timeline::time::parse_time;
@@ -17,7 +17,9 @@ pub fn load_tree(path: &Path, what: &str, hint: &str, findings: &mut Findings) -
     let text = match std::fs::read_to_string(path) {
         Ok(t) => t,
         Err(e) => {
-            findings.error(path, None, format!("cannot read the {what}: {e}")).hint(hint);
+            findings
+                .error(path, None, format!("cannot read the {what}: {e}"))
+                .hint(hint);
             return None;
         }
     };
@@ -40,7 +42,11 @@ pub struct MapView<'n> {
 
 impl<'n> MapView<'n> {
     pub fn get(&self, key: &str) -> Option<&'n Node> {
-        self.entries.iter().find(|(k, _)| k.as_scalar() == Some(key)).map(|(_, v)| v).filter(|v| !v.is_null())
+        self.entries
+            .iter()
+            .find(|(k, _)| k.as_scalar() == Some(key))
+            .map(|(_, v)| v)
+            .filter(|v| !v.is_null())
     }
 
     pub fn mark(&self) -> Mark {
@@ -71,8 +77,21 @@ impl<'a> Reader<'a> {
     /// reported with the nearest allowed names.
     pub fn map<'n>(&mut self, node: &'n Node, what: &str, allowed: &[&str]) -> Option<MapView<'n>> {
         let Value::Map(entries) = &node.value else {
-            self.error(node.mark, format!("{what} must be a mapping of `key: value` lines, found {}", node.kind()))
-                .hint(format!("allowed keys: {}", allowed.iter().map(|k| format!("`{k}`")).collect::<Vec<_>>().join(", ")));
+            self.error(
+                node.mark,
+                format!(
+                    "{what} must be a mapping of `key: value` lines, found {}",
+                    node.kind()
+                ),
+            )
+            .hint(format!(
+                "allowed keys: {}",
+                allowed
+                    .iter()
+                    .map(|k| format!("`{k}`"))
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            ));
             return None;
         };
         for (k, _) in entries {
@@ -80,10 +99,14 @@ impl<'a> Reader<'a> {
                 Some(name) if allowed.contains(&name) => {}
                 Some(name) => {
                     let hint = suggest(name, allowed);
-                    self.error(k.mark, format!("unknown key `{name}` in {what}")).hint(hint);
+                    self.error(k.mark, format!("unknown key `{name}` in {what}"))
+                        .hint(hint);
                 }
                 None => {
-                    self.error(k.mark, format!("keys in {what} must be plain names, found {}", k.kind()));
+                    self.error(
+                        k.mark,
+                        format!("keys in {what} must be plain names, found {}", k.kind()),
+                    );
                 }
             }
         }
@@ -93,7 +116,8 @@ impl<'a> Reader<'a> {
     pub fn required<'n>(&mut self, m: &MapView<'n>, key: &str, what: &str) -> Option<&'n Node> {
         let v = m.get(key);
         if v.is_none() {
-            self.error(m.mark(), format!("{what} has no `{key}`")).hint(format!("add `{key}: …` here"));
+            self.error(m.mark(), format!("{what} has no `{key}`"))
+                .hint(format!("add `{key}: …` here"));
         }
         v
     }
@@ -102,7 +126,10 @@ impl<'a> Reader<'a> {
         match node.as_scalar() {
             Some(t) => Some(t.to_string()),
             None => {
-                self.error(node.mark, format!("{what} must be a single value, found {}", node.kind()));
+                self.error(
+                    node.mark,
+                    format!("{what} must be a single value, found {}", node.kind()),
+                );
                 None
             }
         }
@@ -124,7 +151,10 @@ impl<'a> Reader<'a> {
         match t.trim().parse::<i64>() {
             Ok(v) => Some(v),
             _ => {
-                self.error(node.mark, format!("{what} must be a whole number, found `{t}`"));
+                self.error(
+                    node.mark,
+                    format!("{what} must be a whole number, found `{t}`"),
+                );
                 None
             }
         }
@@ -136,7 +166,10 @@ impl<'a> Reader<'a> {
             "true" | "True" | "yes" => Some(true),
             "false" | "False" | "no" => Some(false),
             _ => {
-                self.error(node.mark, format!("{what} must be `true` or `false`, found `{t}`"));
+                self.error(
+                    node.mark,
+                    format!("{what} must be `true` or `false`, found `{t}`"),
+                );
                 None
             }
         }
@@ -148,7 +181,8 @@ impl<'a> Reader<'a> {
         match parse_seconds(&t) {
             Ok(s) => Some(s),
             Err(e) => {
-                self.error(node.mark, format!("{what}: {e}")).hint("write durations like `90s`, `5min` or `1h30min`");
+                self.error(node.mark, format!("{what}: {e}"))
+                    .hint("write durations like `90s`, `5min` or `1h30min`");
                 None
             }
         }
@@ -171,7 +205,13 @@ impl<'a> Reader<'a> {
         match &node.value {
             Value::Seq(items) => Some(items),
             _ => {
-                self.error(node.mark, format!("{what} must be a list (lines starting with `- `), found {}", node.kind()));
+                self.error(
+                    node.mark,
+                    format!(
+                        "{what} must be a list (lines starting with `- `), found {}",
+                        node.kind()
+                    ),
+                );
                 None
             }
         }
@@ -184,7 +224,8 @@ impl<'a> Reader<'a> {
             Some(t)
         } else {
             let hint = suggest(&t, allowed);
-            self.error(node.mark, format!("{what} `{t}` is not known")).hint(hint);
+            self.error(node.mark, format!("{what} `{t}` is not known"))
+                .hint(hint);
             None
         }
     }

@@ -51,7 +51,10 @@ pub struct Segment {
 
 impl Segment {
     pub fn length_px(&self) -> f64 {
-        self.points.windows(2).map(|w| ((w[1].0 - w[0].0).powi(2) + (w[1].1 - w[0].1).powi(2)).sqrt()).sum()
+        self.points
+            .windows(2)
+            .map(|w| ((w[1].0 - w[0].0).powi(2) + (w[1].1 - w[0].1).powi(2)).sqrt())
+            .sum()
     }
 }
 
@@ -60,27 +63,45 @@ const SEGMENT_KEYS: &[&str] = &["id", "kind", "points", "notes"];
 
 /// Reads a segment file for `eye`; findings go to `findings`.
 pub fn load_segments(path: &Path, eye: Eye, findings: &mut Findings) -> Option<Vec<Segment>> {
-    let root = super::read::load_tree(path, "segment file", "check the path in the study file", findings)?;
+    let root = super::read::load_tree(
+        path,
+        "segment file",
+        "check the path in the study file",
+        findings,
+    )?;
     let before = findings.error_count();
     let mut r = Reader::new(path, findings);
     let m = r.map(&root, "a segment file", FILE_KEYS)?;
     if let Some(n) = m.get("eye") {
         if let Some(e) = r.choice(n, "`eye`", &Eye::NAMES) {
             if e != eye.as_str() {
-                r.error(n.mark, format!("this file is for eye `{e}` but the study names it for `{}`", eye.as_str()));
+                r.error(
+                    n.mark,
+                    format!(
+                        "this file is for eye `{e}` but the study names it for `{}`",
+                        eye.as_str()
+                    ),
+                );
             }
         }
     }
     let mut out: Vec<Segment> = Vec::new();
     let list = r.required(&m, "segments", "a segment file")?;
     for item in r.list(list, "`segments`")? {
-        let Some(sm) = r.map(item, "a segment", SEGMENT_KEYS) else { continue };
-        let id = r.required(&sm, "id", "a segment").and_then(|n| r.text(n, "`id`"));
+        let Some(sm) = r.map(item, "a segment", SEGMENT_KEYS) else {
+            continue;
+        };
+        let id = r
+            .required(&sm, "id", "a segment")
+            .and_then(|n| r.text(n, "`id`"));
         let kind = r
             .required(&sm, "kind", "a segment")
             .and_then(|n| r.choice(n, "vessel `kind`", &VesselKind::NAMES))
             .and_then(|k| VesselKind::from_name(&k));
-        let notes = sm.get("notes").and_then(|n| r.text(n, "`notes`")).unwrap_or_default();
+        let notes = sm
+            .get("notes")
+            .and_then(|n| r.text(n, "`notes`"))
+            .unwrap_or_default();
         let mut points = Vec::new();
         if let Some(pn) = r.required(&sm, "points", "a segment") {
             for p in r.list(pn, "`points`").unwrap_or_default() {
@@ -99,9 +120,17 @@ pub fn load_segments(path: &Path, eye: Eye, findings: &mut Findings) -> Option<V
         }
         if let (Some(id), Some(kind)) = (id, kind) {
             if out.iter().any(|s| s.id == id) {
-                r.error(item.mark, format!("segment id `{id}` is used twice in this file"));
+                r.error(
+                    item.mark,
+                    format!("segment id `{id}` is used twice in this file"),
+                );
             }
-            out.push(Segment { id, kind, points, notes });
+            out.push(Segment {
+                id,
+                kind,
+                points,
+                notes,
+            });
         }
     }
     (findings.error_count() == before).then_some(out)

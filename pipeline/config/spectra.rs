@@ -39,21 +39,48 @@ pub struct SpectraTable {
     pub captures: BTreeMap<(String, String), Vec<SpectraPosition>>,
 }
 
-const COLUMNS: &[&str] = &["subject", "capture", "vessel", "kind", "position", "band", "transmission", "diameter_um"];
+const COLUMNS: &[&str] = &[
+    "subject",
+    "capture",
+    "vessel",
+    "kind",
+    "position",
+    "band",
+    "transmission",
+    "diameter_um",
+];
 
 /// Reads and checks the table against the instrument's band names.
-pub fn read_spectra(path: &Path, bands: &[String], findings: &mut Findings) -> Option<SpectraTable> {
+pub fn read_spectra(
+    path: &Path,
+    bands: &[String],
+    findings: &mut Findings,
+) -> Option<SpectraTable> {
     let what = "the spectra table";
     let t = read_table(path, findings)?;
     for (i, h) in t.header.iter().enumerate() {
         if !COLUMNS.contains(&h.as_str()) {
             let hint = super::diag::suggest(h, COLUMNS);
-            findings.error(path, Some(Mark::new(1, i + 1)), format!("{what}: unknown column `{h}`")).hint(hint);
+            findings
+                .error(
+                    path,
+                    Some(Mark::new(1, i + 1)),
+                    format!("{what}: unknown column `{h}`"),
+                )
+                .hint(hint);
         }
     }
     let col = |name: &str, findings: &mut Findings| t.column(path, name, what, findings);
-    let (c_cap, c_ves, c_kind, c_pos, c_band, c_t) = (col("capture", findings), col("vessel", findings), col("kind", findings), col("position", findings), col("band", findings), col("transmission", findings));
-    let (c_cap, c_ves, c_kind, c_pos, c_band, c_t) = (c_cap?, c_ves?, c_kind?, c_pos?, c_band?, c_t?);
+    let (c_cap, c_ves, c_kind, c_pos, c_band, c_t) = (
+        col("capture", findings),
+        col("vessel", findings),
+        col("kind", findings),
+        col("position", findings),
+        col("band", findings),
+        col("transmission", findings),
+    );
+    let (c_cap, c_ves, c_kind, c_pos, c_band, c_t) =
+        (c_cap?, c_ves?, c_kind?, c_pos?, c_band?, c_t?);
     let c_subj = t.header.iter().position(|h| h == "subject");
     let c_d = t.header.iter().position(|h| h == "diameter_um");
     let before = findings.error_count();
@@ -65,32 +92,69 @@ pub fn read_spectra(path: &Path, bands: &[String], findings: &mut Findings) -> O
         let need = |c: usize, name: &str, findings: &mut Findings| {
             let v = get(c);
             if v.is_none() {
-                findings.error(path, Some(Mark::new(row.line, 1)), format!("{what}: this line has no `{name}`"));
+                findings.error(
+                    path,
+                    Some(Mark::new(row.line, 1)),
+                    format!("{what}: this line has no `{name}`"),
+                );
             }
             v
         };
-        let (Some(cap), Some(ves), Some(kind), Some(pos), Some(band), Some(tr)) =
-            (need(c_cap, "capture", findings), need(c_ves, "vessel", findings), need(c_kind, "kind", findings), need(c_pos, "position", findings), need(c_band, "band", findings), need(c_t, "transmission", findings))
-        else {
+        let (Some(cap), Some(ves), Some(kind), Some(pos), Some(band), Some(tr)) = (
+            need(c_cap, "capture", findings),
+            need(c_ves, "vessel", findings),
+            need(c_kind, "kind", findings),
+            need(c_pos, "position", findings),
+            need(c_band, "band", findings),
+            need(c_t, "transmission", findings),
+        ) else {
             continue;
         };
         if !matches!(kind.0.trim(), "arteriole" | "venule") {
-            findings.error(path, Some(kind.1), format!("{what}: kind `{}` is not `arteriole` or `venule`", kind.0.trim()));
+            findings.error(
+                path,
+                Some(kind.1),
+                format!(
+                    "{what}: kind `{}` is not `arteriole` or `venule`",
+                    kind.0.trim()
+                ),
+            );
             continue;
         }
         let Ok(position) = pos.0.trim().parse::<usize>() else {
-            findings.error(path, Some(pos.1), format!("{what}: position `{}` is not a whole number", pos.0.trim())).hint("positions count 0, 1, 2, … along the segment");
+            findings
+                .error(
+                    path,
+                    Some(pos.1),
+                    format!("{what}: position `{}` is not a whole number", pos.0.trim()),
+                )
+                .hint("positions count 0, 1, 2, … along the segment");
             continue;
         };
         let Some(b) = bands.iter().position(|n| n == band.0.trim()) else {
             let names: Vec<&str> = bands.iter().map(|s| s.as_str()).collect();
-            findings.error(path, Some(band.1), format!("{what}: band `{}` is not an instrument band", band.0.trim())).hint(super::diag::suggest(band.0.trim(), &names));
+            findings
+                .error(
+                    path,
+                    Some(band.1),
+                    format!("{what}: band `{}` is not an instrument band", band.0.trim()),
+                )
+                .hint(super::diag::suggest(band.0.trim(), &names));
             continue;
         };
         let value = match tr.0.trim().parse::<f64>() {
             Ok(v) if v.is_finite() && v > 0.0 => v,
             _ => {
-                findings.error(path, Some(tr.1), format!("{what}: transmission `{}` is not a positive number", tr.0.trim())).hint("transmission is I_vessel / I_background");
+                findings
+                    .error(
+                        path,
+                        Some(tr.1),
+                        format!(
+                            "{what}: transmission `{}` is not a positive number",
+                            tr.0.trim()
+                        ),
+                    )
+                    .hint("transmission is I_vessel / I_background");
                 continue;
             }
         };
@@ -99,31 +163,92 @@ pub fn read_spectra(path: &Path, bands: &[String], findings: &mut Findings) -> O
             Some((s, m)) => match s.trim().parse::<f64>() {
                 Ok(v) if v > 0.0 => v,
                 _ => {
-                    findings.error(path, Some(m), format!("{what}: diameter_um `{}` is not a positive number", s.trim()));
+                    findings.error(
+                        path,
+                        Some(m),
+                        format!(
+                            "{what}: diameter_um `{}` is not a positive number",
+                            s.trim()
+                        ),
+                    );
                     continue;
                 }
             },
         };
-        let subject = c_subj.and_then(get).map(|(s, _)| s.trim().to_string()).unwrap_or_default();
-        let e = acc.entry((subject, cap.0.trim().to_string(), ves.0.trim().to_string(), position)).or_insert_with(|| (kind.0.trim().to_string(), vec![None; bands.len()], diameter, row.line));
+        let subject = c_subj
+            .and_then(get)
+            .map(|(s, _)| s.trim().to_string())
+            .unwrap_or_default();
+        let e = acc
+            .entry((
+                subject,
+                cap.0.trim().to_string(),
+                ves.0.trim().to_string(),
+                position,
+            ))
+            .or_insert_with(|| {
+                (
+                    kind.0.trim().to_string(),
+                    vec![None; bands.len()],
+                    diameter,
+                    row.line,
+                )
+            });
         if e.0 != kind.0.trim() {
-            findings.error(path, Some(kind.1), format!("{what}: vessel `{}` is `{}` here but `{}` at line {}", ves.0.trim(), kind.0.trim(), e.0, e.3));
+            findings.error(
+                path,
+                Some(kind.1),
+                format!(
+                    "{what}: vessel `{}` is `{}` here but `{}` at line {}",
+                    ves.0.trim(),
+                    kind.0.trim(),
+                    e.0,
+                    e.3
+                ),
+            );
         }
         if e.1[b].replace(value).is_some() {
-            findings.error(path, Some(band.1), format!("{what}: band `{}` is given twice for this position (first at line {})", band.0.trim(), e.3)).hint("one row per capture, vessel, position and band");
+            findings
+                .error(
+                    path,
+                    Some(band.1),
+                    format!(
+                        "{what}: band `{}` is given twice for this position (first at line {})",
+                        band.0.trim(),
+                        e.3
+                    ),
+                )
+                .hint("one row per capture, vessel, position and band");
         }
         if e.2.is_nan() {
             e.2 = diameter;
         }
     }
-    let mut out = SpectraTable { path: path.to_path_buf(), captures: BTreeMap::new() };
+    let mut out = SpectraTable {
+        path: path.to_path_buf(),
+        captures: BTreeMap::new(),
+    };
     for ((subject, capture, vessel, position), (kind, t, d, line)) in acc {
-        let missing: Vec<&str> = t.iter().zip(bands).filter(|(v, _)| v.is_none()).map(|(_, n)| n.as_str()).collect();
+        let missing: Vec<&str> = t
+            .iter()
+            .zip(bands)
+            .filter(|(v, _)| v.is_none())
+            .map(|(_, n)| n.as_str())
+            .collect();
         if !missing.is_empty() {
             findings.error(path, Some(Mark::new(line, 1)), format!("{what}: capture `{capture}` vessel `{vessel}` position {position} has no row for band(s) {}", missing.join(", "))).hint("every position needs a transmission in every instrument band");
             continue;
         }
-        out.captures.entry((subject, capture)).or_default().push(SpectraPosition { vessel, kind, position, transmission: t.into_iter().map(|v| v.expect("checked")).collect(), diameter_um: d });
+        out.captures
+            .entry((subject, capture))
+            .or_default()
+            .push(SpectraPosition {
+                vessel,
+                kind,
+                position,
+                transmission: t.into_iter().map(|v| v.expect("checked")).collect(),
+                diameter_um: d,
+            });
     }
     (findings.error_count() == before).then_some(out)
 }

@@ -10,7 +10,7 @@ use chrono::{DateTime, FixedOffset};
 
 use super::csvfile::read_csv;
 use super::diag::{Findings, Mark};
-use super::protocol::{load_protocol, read_protocol, Protocol};
+use super::protocol::{Protocol, load_protocol, read_protocol};
 use super::read::{MapView, Reader};
 use super::yaml::Node;
 use crate::timeline::time::parse_time;
@@ -42,9 +42,15 @@ impl Eye {
 
 #[derive(Debug, Clone, PartialEq, serde::Serialize)]
 pub enum BandResponse {
-    Gaussian { centre_nm: f64, fwhm_nm: f64 },
+    Gaussian {
+        centre_nm: f64,
+        fwhm_nm: f64,
+    },
     /// Tabulated relative response, (wavelength nm, response), ascending.
-    Table { file: PathBuf, points: Vec<(f64, f64)> },
+    Table {
+        file: PathBuf,
+        points: Vec<(f64, f64)>,
+    },
 }
 
 #[derive(Debug, Clone, PartialEq, serde::Serialize)]
@@ -124,8 +130,17 @@ pub enum Calibration {
 
 #[derive(Debug, Clone, PartialEq, serde::Serialize)]
 pub enum MethodKind {
-    TwoBand { sensitive: usize, isosbestic: usize, calibration: Calibration, diameter_correction: bool },
-    Multiband { bands: Vec<usize>, loss: Loss, pointwise: bool },
+    TwoBand {
+        sensitive: usize,
+        isosbestic: usize,
+        calibration: Calibration,
+        diameter_correction: bool,
+    },
+    Multiband {
+        bands: Vec<usize>,
+        loss: Loss,
+        pointwise: bool,
+    },
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
@@ -169,7 +184,10 @@ pub struct StatisticsSettings {
 
 impl Default for StatisticsSettings {
     fn default() -> Self {
-        StatisticsSettings { confidence: 0.95, adjustment: Adjustment::Holm }
+        StatisticsSettings {
+            confidence: 0.95,
+            adjustment: Adjustment::Holm,
+        }
     }
 }
 
@@ -196,25 +214,66 @@ pub struct Study {
 
 impl Study {
     pub fn capture_count(&self) -> usize {
-        self.subjects.iter().flat_map(|s| &s.sessions).map(|s| s.captures.len()).sum()
+        self.subjects
+            .iter()
+            .flat_map(|s| &s.sessions)
+            .map(|s| s.captures.len())
+            .sum()
     }
 }
 
 /// A study path may name the file or a folder holding `study.yaml`.
 pub fn resolve_study_path(arg: &Path) -> PathBuf {
-    if arg.is_dir() { arg.join("study.yaml") } else { arg.to_path_buf() }
+    if arg.is_dir() {
+        arg.join("study.yaml")
+    } else {
+        arg.to_path_buf()
+    }
 }
 
-const STUDY_KEYS: &[&str] = &["study", "title", "protocol", "instrument", "subjects", "methods", "exclusions", "statistics", "spectra", "output"];
+const STUDY_KEYS: &[&str] = &[
+    "study",
+    "title",
+    "protocol",
+    "instrument",
+    "subjects",
+    "methods",
+    "exclusions",
+    "statistics",
+    "spectra",
+    "output",
+];
 const STATISTICS_KEYS: &[&str] = &["confidence", "adjust"];
-const INSTRUMENT_KEYS: &[&str] = &["name", "pixel_size_um", "bands", "dark", "flat", "band_offsets"];
+const INSTRUMENT_KEYS: &[&str] = &[
+    "name",
+    "pixel_size_um",
+    "bands",
+    "dark",
+    "flat",
+    "band_offsets",
+];
 const BAND_KEYS: &[&str] = &["name", "centre_nm", "fwhm_nm", "response", "offset_px"];
 const SUBJECT_KEYS: &[&str] = &["id", "age", "sex", "pigmentation", "sessions"];
-const SESSION_KEYS: &[&str] = &["id", "start", "eyes", "switches", "captures", "reference", "segments"];
+const SESSION_KEYS: &[&str] = &[
+    "id",
+    "start",
+    "eyes",
+    "switches",
+    "captures",
+    "reference",
+    "segments",
+];
 const CAPTURE_KEYS: &[&str] = &["file", "time", "eye"];
 const LOG_KEYS: &[&str] = &["file", "columns"];
 const LOG_COLUMN_KEYS: &[&str] = &["time", "spo2"];
-const METHOD_KEYS_TWO_BAND: &[&str] = &["method", "label", "sensitive", "isosbestic", "calibration", "diameter_correction"];
+const METHOD_KEYS_TWO_BAND: &[&str] = &[
+    "method",
+    "label",
+    "sensitive",
+    "isosbestic",
+    "calibration",
+    "diameter_correction",
+];
 const METHOD_KEYS_MULTI: &[&str] = &["method", "label", "bands", "loss", "huber_scale"];
 const METHOD_NAMES: &[&str] = &["two-band", "multiband", "multiband-pointwise"];
 const CALIBRATION_KEYS: &[&str] = &["mode", "intercept", "slope", "epoch", "venule_so2"];
@@ -226,7 +285,12 @@ const EXCLUDED_CAPTURE_KEYS: &[&str] = &["file", "reason"];
 /// warnings, come back together; the study is `Some` only without errors.
 pub fn load_study(path: &Path) -> (Option<Study>, Findings) {
     let mut findings = Findings::new();
-    let Some(root_node) = super::read::load_tree(path, "study file", "give the study file, or a folder that holds `study.yaml`", &mut findings) else {
+    let Some(root_node) = super::read::load_tree(
+        path,
+        "study file",
+        "give the study file, or a folder that holds `study.yaml`",
+        &mut findings,
+    ) else {
         return (None, findings);
     };
     let root_dir = path.parent().map(Path::to_path_buf).unwrap_or_default();
@@ -240,13 +304,22 @@ pub fn load_study(path: &Path) -> (Option<Study>, Findings) {
         s.spectra = check_spectra(&s, &mut findings);
         s
     });
-    if findings.has_errors() { (None, findings) } else { (study, findings) }
+    if findings.has_errors() {
+        (None, findings)
+    } else {
+        (study, findings)
+    }
 }
 
 fn read_study(r: &mut Reader, node: &Node, file: &Path, root: &Path) -> Option<Study> {
     let m = r.map(node, "the study file", STUDY_KEYS)?;
-    let id = r.required(&m, "study", "the study file").and_then(|n| r.text(n, "`study`"));
-    let title = m.get("title").and_then(|n| r.text(n, "`title`")).unwrap_or_default();
+    let id = r
+        .required(&m, "study", "the study file")
+        .and_then(|n| r.text(n, "`study`"));
+    let title = m
+        .get("title")
+        .and_then(|n| r.text(n, "`title`"))
+        .unwrap_or_default();
 
     let (protocol, protocol_file) = match r.required(&m, "protocol", "the study file") {
         None => (None, None),
@@ -257,8 +330,11 @@ fn read_study(r: &mut Reader, node: &Node, file: &Path, root: &Path) -> Option<S
                     Ok(proto) => (Some(proto), Some(p)),
                     Err(f) => {
                         if f.iter().any(|x| x.mark.is_none() && x.file == p) {
-                            r.error(n.mark, format!("cannot read the protocol file `{}`", p.display()))
-                                .hint("the path is relative to the study file's folder");
+                            r.error(
+                                n.mark,
+                                format!("cannot read the protocol file `{}`", p.display()),
+                            )
+                            .hint("the path is relative to the study file's folder");
                         } else {
                             r.findings.extend(f);
                         }
@@ -270,21 +346,33 @@ fn read_study(r: &mut Reader, node: &Node, file: &Path, root: &Path) -> Option<S
         },
     };
 
-    let instrument = r.required(&m, "instrument", "the study file").and_then(|n| read_instrument(r, n, root));
-    let band_names: Vec<String> = instrument.as_ref().map(|i| i.bands.iter().map(|b| b.name.clone()).collect()).unwrap_or_default();
+    let instrument = r
+        .required(&m, "instrument", "the study file")
+        .and_then(|n| read_instrument(r, n, root));
+    let band_names: Vec<String> = instrument
+        .as_ref()
+        .map(|i| i.bands.iter().map(|b| b.name.clone()).collect())
+        .unwrap_or_default();
 
     let mut subjects = Vec::new();
     let mut seen_subjects: HashMap<String, Mark> = HashMap::new();
     if let Some(n) = r.required(&m, "subjects", "the study file") {
         if let Some(items) = r.list(n, "`subjects`") {
             if items.is_empty() {
-                r.error(n.mark, "the study has no subjects").hint("add at least one `- id: …` under `subjects:`");
+                r.error(n.mark, "the study has no subjects")
+                    .hint("add at least one `- id: …` under `subjects:`");
             }
             for item in items {
                 if let Some(s) = read_subject(r, item, root, protocol.as_ref()) {
                     let mark = item.get("id").map(|x| x.mark).unwrap_or(item.mark);
                     if let Some(first) = seen_subjects.get(&s.id) {
-                        r.error(mark, format!("subject `{}` is listed twice (first at line {})", s.id, first.line));
+                        r.error(
+                            mark,
+                            format!(
+                                "subject `{}` is listed twice (first at line {})",
+                                s.id, first.line
+                            ),
+                        );
                     }
                     seen_subjects.insert(s.id.clone(), mark);
                     subjects.push(s);
@@ -308,7 +396,10 @@ fn read_study(r: &mut Reader, node: &Node, file: &Path, root: &Path) -> Option<S
         Some(n) => read_statistics(r, n),
     };
 
-    let spectra_file = m.get("spectra").and_then(|n| r.text(n, "`spectra`")).map(|t| root.join(t));
+    let spectra_file = m
+        .get("spectra")
+        .and_then(|n| r.text(n, "`spectra`"))
+        .map(|t| root.join(t));
 
     let output = match m.get("output") {
         None => root.join("results"),
@@ -336,7 +427,10 @@ fn read_study(r: &mut Reader, node: &Node, file: &Path, root: &Path) -> Option<S
 fn positive(r: &mut Reader, n: &Node, what: &str) -> Option<f64> {
     let v = r.number(n, what)?;
     if v <= 0.0 {
-        r.error(n.mark, format!("{what} must be greater than zero, found {v}"));
+        r.error(
+            n.mark,
+            format!("{what} must be greater than zero, found {v}"),
+        );
         return None;
     }
     Some(v)
@@ -344,15 +438,21 @@ fn positive(r: &mut Reader, n: &Node, what: &str) -> Option<f64> {
 
 pub(crate) fn read_instrument(r: &mut Reader, node: &Node, root: &Path) -> Option<Instrument> {
     let m = r.map(node, "`instrument`", INSTRUMENT_KEYS)?;
-    let name = m.get("name").and_then(|n| r.text(n, "`name`")).unwrap_or_else(|| "unnamed".into());
-    let pixel = r.required(&m, "pixel_size_um", "`instrument`").and_then(|n| positive(r, n, "`pixel_size_um`"));
+    let name = m
+        .get("name")
+        .and_then(|n| r.text(n, "`name`"))
+        .unwrap_or_else(|| "unnamed".into());
+    let pixel = r
+        .required(&m, "pixel_size_um", "`instrument`")
+        .and_then(|n| positive(r, n, "`pixel_size_um`"));
     let mut bands: Vec<Band> = Vec::new();
     let mut ok = true;
     if let Some(n) = r.required(&m, "bands", "`instrument`") {
         match r.list(n, "`bands`") {
             Some(items) => {
                 if items.len() < 2 {
-                    r.error(n.mark, "the instrument needs at least two bands").hint("list every spectral band in the order of the capture's pages");
+                    r.error(n.mark, "the instrument needs at least two bands")
+                        .hint("list every spectral band in the order of the capture's pages");
                     ok = false;
                 }
                 for item in items {
@@ -375,7 +475,11 @@ pub(crate) fn read_instrument(r: &mut Reader, node: &Node, root: &Path) -> Optio
         let n = m.get(key)?;
         let p = root.join(r.text(n, &format!("`{key}`"))?);
         if !p.is_file() {
-            r.error(n.mark, format!("the {key} frame `{}` does not exist", p.display())).hint("a multi-page TIFF with one page per band, the size of the captures");
+            r.error(
+                n.mark,
+                format!("the {key} frame `{}` does not exist", p.display()),
+            )
+            .hint("a multi-page TIFF with one page per band, the size of the captures");
         }
         Some(p)
     };
@@ -394,12 +498,21 @@ pub(crate) fn read_instrument(r: &mut Reader, node: &Node, root: &Path) -> Optio
     if !ok {
         return None;
     }
-    Some(Instrument { name, pixel_size_um: pixel?, bands, dark, flat, estimate_band_offsets })
+    Some(Instrument {
+        name,
+        pixel_size_um: pixel?,
+        bands,
+        dark,
+        flat,
+        estimate_band_offsets,
+    })
 }
 
 fn read_band(r: &mut Reader, node: &Node, root: &Path) -> Option<Band> {
     let m = r.map(node, "a band", BAND_KEYS)?;
-    let name = r.required(&m, "name", "a band").and_then(|n| r.text(n, "a band's `name`"));
+    let name = r
+        .required(&m, "name", "a band")
+        .and_then(|n| r.text(n, "a band's `name`"));
     let response = match (m.get("centre_nm"), m.get("fwhm_nm"), m.get("response")) {
         (Some(c), Some(w), None) => {
             let c = positive(r, c, "`centre_nm`");
@@ -410,7 +523,10 @@ fn read_band(r: &mut Reader, node: &Node, root: &Path) -> Option<Band> {
                     return None;
                 }
             }
-            Some(BandResponse::Gaussian { centre_nm: c?, fwhm_nm: w? })
+            Some(BandResponse::Gaussian {
+                centre_nm: c?,
+                fwhm_nm: w?,
+            })
         }
         (None, None, Some(f)) => {
             let rel = r.text(f, "`response`")?;
@@ -431,15 +547,26 @@ fn read_band(r: &mut Reader, node: &Node, root: &Path) -> Option<Band> {
                 r.error(n.mark, "`offset_px` is `[dx, dy]` in pixels");
                 return None;
             }
-            Some((r.number(&v[0], "`offset_px` dx")?, r.number(&v[1], "`offset_px` dy")?))
+            Some((
+                r.number(&v[0], "`offset_px` dx")?,
+                r.number(&v[1], "`offset_px` dy")?,
+            ))
         }
     };
-    Some(Band { name: name?, response: response?, offset_px })
+    Some(Band {
+        name: name?,
+        response: response?,
+        offset_px,
+    })
 }
 
 fn read_response_table(r: &mut Reader, p: &Path, mark: Mark) -> Option<BandResponse> {
     if !p.is_file() {
-        r.error(mark, format!("response file `{}` does not exist", p.display())).hint("the path is relative to the study file's folder");
+        r.error(
+            mark,
+            format!("response file `{}` does not exist", p.display()),
+        )
+        .hint("the path is relative to the study file's folder");
         return None;
     }
     let t = read_csv(p, r.findings)?;
@@ -448,32 +575,60 @@ fn read_response_table(r: &mut Reader, p: &Path, mark: Mark) -> Option<BandRespo
     let mut pts = Vec::new();
     let mut ok = true;
     for row in &t.rows {
-        let parse = |i: usize| row.field(i).and_then(|(s, m)| s.parse::<f64>().ok().filter(|v| v.is_finite()).map(|v| (v, m)));
+        let parse = |i: usize| {
+            row.field(i).and_then(|(s, m)| {
+                s.parse::<f64>()
+                    .ok()
+                    .filter(|v| v.is_finite())
+                    .map(|v| (v, m))
+            })
+        };
         match (parse(wl), parse(rs)) {
             (Some((w, _)), Some((v, _))) if v >= 0.0 => pts.push((w, v)),
             _ => {
-                r.findings.error(p, Some(Mark::new(row.line, 1)), "expected a wavelength in nm and a response ≥ 0");
+                r.findings.error(
+                    p,
+                    Some(Mark::new(row.line, 1)),
+                    "expected a wavelength in nm and a response ≥ 0",
+                );
                 ok = false;
             }
         }
     }
     if ok && (pts.len() < 2 || pts.windows(2).any(|w| w[1].0 <= w[0].0)) {
-        r.findings.error(p, None, "a band response needs at least two rows with increasing wavelengths");
+        r.findings.error(
+            p,
+            None,
+            "a band response needs at least two rows with increasing wavelengths",
+        );
         ok = false;
     }
     if ok && pts.iter().all(|(_, v)| *v == 0.0) {
-        r.findings.error(p, None, "the band response is zero everywhere");
+        r.findings
+            .error(p, None, "the band response is zero everywhere");
         ok = false;
     }
-    ok.then(|| BandResponse::Table { file: p.to_path_buf(), points: pts })
+    ok.then(|| BandResponse::Table {
+        file: p.to_path_buf(),
+        points: pts,
+    })
 }
 
-fn read_subject(r: &mut Reader, node: &Node, root: &Path, protocol: Option<&Protocol>) -> Option<Subject> {
+fn read_subject(
+    r: &mut Reader,
+    node: &Node,
+    root: &Path,
+    protocol: Option<&Protocol>,
+) -> Option<Subject> {
     let m = r.map(node, "a subject", SUBJECT_KEYS)?;
-    let id = r.required(&m, "id", "a subject").and_then(|n| r.text(n, "a subject's `id`"));
+    let id = r
+        .required(&m, "id", "a subject")
+        .and_then(|n| r.text(n, "a subject's `id`"));
     let age = m.get("age").and_then(|n| positive(r, n, "`age`"));
     let sex = m.get("sex").and_then(|n| r.text(n, "`sex`"));
-    let pigmentation = m.get("pigmentation").and_then(|n| r.integer(n, "`pigmentation`"));
+    let pigmentation = m
+        .get("pigmentation")
+        .and_then(|n| r.integer(n, "`pigmentation`"));
     let mut sessions = Vec::new();
     if let Some(n) = r.required(&m, "sessions", "a subject") {
         if let Some(items) = r.list(n, "`sessions`") {
@@ -483,29 +638,52 @@ fn read_subject(r: &mut Reader, node: &Node, root: &Path, protocol: Option<&Prot
             for item in items {
                 if let Some(s) = read_session(r, item, root, protocol) {
                     if sessions.iter().any(|x: &Session| x.id == s.id) {
-                        r.error(item.mark, format!("session `{}` is listed twice for this subject", s.id));
+                        r.error(
+                            item.mark,
+                            format!("session `{}` is listed twice for this subject", s.id),
+                        );
                     }
                     sessions.push(s);
                 }
             }
         }
     }
-    Some(Subject { id: id?, age, sex, pigmentation, sessions })
+    Some(Subject {
+        id: id?,
+        age,
+        sex,
+        pigmentation,
+        sessions,
+    })
 }
 
 fn read_eye(r: &mut Reader, n: &Node) -> Option<Eye> {
-    r.choice(n, "eye", &Eye::NAMES).and_then(|s| Eye::from_name(&s))
+    r.choice(n, "eye", &Eye::NAMES)
+        .and_then(|s| Eye::from_name(&s))
 }
 
-fn read_session(r: &mut Reader, node: &Node, root: &Path, protocol: Option<&Protocol>) -> Option<Session> {
+fn read_session(
+    r: &mut Reader,
+    node: &Node,
+    root: &Path,
+    protocol: Option<&Protocol>,
+) -> Option<Session> {
     let m = r.map(node, "a session", SESSION_KEYS)?;
-    let id = m.get("id").and_then(|n| r.text(n, "a session's `id`")).unwrap_or_else(|| "1".into());
-    let start = r.required(&m, "start", "a session").and_then(|n| r.time(n, "`start`"));
+    let id = m
+        .get("id")
+        .and_then(|n| r.text(n, "a session's `id`"))
+        .unwrap_or_else(|| "1".into());
+    let start = r
+        .required(&m, "start", "a session")
+        .and_then(|n| r.time(n, "`start`"));
     let eyes: Vec<Eye> = match r.required(&m, "eyes", "a session") {
         None => Vec::new(),
         Some(n) => match n.as_scalar() {
             Some(_) => read_eye(r, n).into_iter().collect(),
-            None => r.list(n, "`eyes`").map(|items| items.iter().filter_map(|i| read_eye(r, i)).collect()).unwrap_or_default(),
+            None => r
+                .list(n, "`eyes`")
+                .map(|items| items.iter().filter_map(|i| read_eye(r, i)).collect())
+                .unwrap_or_default(),
         },
     };
     let switches = match (m.get("switches"), protocol, start) {
@@ -531,7 +709,8 @@ fn read_session(r: &mut Reader, node: &Node, root: &Path, protocol: Option<&Prot
                     if let Some(rel) = r.text(f, "a segment file") {
                         let p = root.join(&rel);
                         if !p.is_file() {
-                            r.error(f.mark, format!("segment file `{rel}` does not exist")).hint("the path is relative to the study file's folder");
+                            r.error(f.mark, format!("segment file `{rel}` does not exist"))
+                                .hint("the path is relative to the study file's folder");
                         }
                         segments.insert(*eye, p);
                     }
@@ -542,12 +721,27 @@ fn read_session(r: &mut Reader, node: &Node, root: &Path, protocol: Option<&Prot
     if eyes.is_empty() {
         return None;
     }
-    Some(Session { id, start: start?, eyes, switches, captures, reference, segments })
+    Some(Session {
+        id,
+        start: start?,
+        eyes,
+        switches,
+        captures,
+        reference,
+        segments,
+    })
 }
 
-fn read_switches(r: &mut Reader, node: &Node, p: &Protocol, start: DateTime<FixedOffset>) -> Vec<(usize, DateTime<FixedOffset>)> {
+fn read_switches(
+    r: &mut Reader,
+    node: &Node,
+    p: &Protocol,
+    start: DateTime<FixedOffset>,
+) -> Vec<(usize, DateTime<FixedOffset>)> {
     let names: Vec<&str> = p.epochs.iter().map(|e| e.name.as_str()).collect();
-    let Some(m) = r.map(node, "`switches` (epoch name: time it began)", &names) else { return Vec::new() };
+    let Some(m) = r.map(node, "`switches` (epoch name: time it began)", &names) else {
+        return Vec::new();
+    };
     let mut out: Vec<(usize, DateTime<FixedOffset>, Mark)> = Vec::new();
     for (i, name) in names.iter().enumerate() {
         if let Some(n) = m.get(name) {
@@ -559,15 +753,32 @@ fn read_switches(r: &mut Reader, node: &Node, p: &Protocol, start: DateTime<Fixe
     let mut prev = (start, "the session start".to_string());
     for (i, t, mark) in &out {
         if *i == 0 && *t != start {
-            r.error(*mark, format!("the first epoch `{}` begins at the session's `start`", names[0]))
-                .hint("remove this switch, or move `start` to this time");
+            r.error(
+                *mark,
+                format!(
+                    "the first epoch `{}` begins at the session's `start`",
+                    names[0]
+                ),
+            )
+            .hint("remove this switch, or move `start` to this time");
         } else if *i > 0 && *t <= prev.0 {
-            r.error(*mark, format!("switch to `{}` at {} is not after {}", names[*i], t.to_rfc3339(), prev.1))
-                .hint("recorded switch times must follow the protocol's epoch order");
+            r.error(
+                *mark,
+                format!(
+                    "switch to `{}` at {} is not after {}",
+                    names[*i],
+                    t.to_rfc3339(),
+                    prev.1
+                ),
+            )
+            .hint("recorded switch times must follow the protocol's epoch order");
         }
         prev = (*t, format!("the switch to `{}`", names[*i]));
     }
-    out.into_iter().filter(|(i, _, _)| *i > 0).map(|(i, t, _)| (i, t)).collect()
+    out.into_iter()
+        .filter(|(i, _, _)| *i > 0)
+        .map(|(i, t, _)| (i, t))
+        .collect()
 }
 
 fn read_captures(r: &mut Reader, node: &Node, root: &Path, eyes: &[Eye]) -> Vec<Capture> {
@@ -577,18 +788,24 @@ fn read_captures(r: &mut Reader, node: &Node, root: &Path, eyes: &[Eye]) -> Vec<
         // A CSV capture list: file,time[,eye]
         let p = root.join(rel);
         if !p.is_file() {
-            r.error(node.mark, format!("capture list `{rel}` does not exist")).hint("the path is relative to the study file's folder");
+            r.error(node.mark, format!("capture list `{rel}` does not exist"))
+                .hint("the path is relative to the study file's folder");
             return out;
         }
-        let Some(t) = read_csv(&p, r.findings) else { return out };
+        let Some(t) = read_csv(&p, r.findings) else {
+            return out;
+        };
         let fc = t.column(&p, "file", "a capture list", r.findings);
         let tc = t.column(&p, "time", "a capture list", r.findings);
         let ec = t.header.iter().position(|h| h == "eye");
-        let (Some(fc), Some(tc)) = (fc, tc) else { return out };
+        let (Some(fc), Some(tc)) = (fc, tc) else {
+            return out;
+        };
         let list_dir = p.parent().map(Path::to_path_buf).unwrap_or_default();
         for row in &t.rows {
             let Some((file, fmark)) = row.field(fc).filter(|(s, _)| !s.is_empty()) else {
-                r.findings.error(&p, Some(Mark::new(row.line, 1)), "this row has no `file`");
+                r.findings
+                    .error(&p, Some(Mark::new(row.line, 1)), "this row has no `file`");
                 continue;
             };
             let time = match row.field(tc) {
@@ -601,7 +818,8 @@ fn read_captures(r: &mut Reader, node: &Node, root: &Path, eyes: &[Eye]) -> Vec<
                     }
                 },
                 None => {
-                    r.findings.error(&p, Some(Mark::new(row.line, 1)), "this row has no `time`");
+                    r.findings
+                        .error(&p, Some(Mark::new(row.line, 1)), "this row has no `time`");
                     None
                 }
             };
@@ -609,40 +827,80 @@ fn read_captures(r: &mut Reader, node: &Node, root: &Path, eyes: &[Eye]) -> Vec<
                 Some((s, m)) => match Eye::from_name(s).filter(|e| eyes.contains(e)) {
                     Some(e) => Some(e),
                     None => {
-                        r.findings.error(&p, Some(m), format!("eye `{s}` is not one of this session's eyes"))
-                            .hint(format!("this session images {}", eyes.iter().map(|e| format!("`{}`", e.as_str())).collect::<Vec<_>>().join(", ")));
+                        r.findings
+                            .error(
+                                &p,
+                                Some(m),
+                                format!("eye `{s}` is not one of this session's eyes"),
+                            )
+                            .hint(format!(
+                                "this session images {}",
+                                eyes.iter()
+                                    .map(|e| format!("`{}`", e.as_str()))
+                                    .collect::<Vec<_>>()
+                                    .join(", ")
+                            ));
                         None
                     }
                 },
                 None => {
                     if default_eye.is_none() {
-                        r.findings.error(&p, Some(fmark), "the session images two eyes: say which one in an `eye` column");
+                        r.findings.error(
+                            &p,
+                            Some(fmark),
+                            "the session images two eyes: say which one in an `eye` column",
+                        );
                     }
                     default_eye
                 }
             };
             if let (Some(time), Some(eye)) = (time, eye) {
-                out.push(Capture { listed: file.to_string(), path: list_dir.join(file), time, eye, source: p.clone(), mark: fmark });
+                out.push(Capture {
+                    listed: file.to_string(),
+                    path: list_dir.join(file),
+                    time,
+                    eye,
+                    source: p.clone(),
+                    mark: fmark,
+                });
             }
         }
         return out;
     }
-    let Some(items) = r.list(node, "`captures` (a CSV file or a list)") else { return out };
+    let Some(items) = r.list(node, "`captures` (a CSV file or a list)") else {
+        return out;
+    };
     for item in items {
-        let Some(m) = r.map(item, "a capture", CAPTURE_KEYS) else { continue };
-        let file = r.required(&m, "file", "a capture").and_then(|n| r.text(n, "`file`"));
-        let time = r.required(&m, "time", "a capture").and_then(|n| r.time(n, "`time`"));
+        let Some(m) = r.map(item, "a capture", CAPTURE_KEYS) else {
+            continue;
+        };
+        let file = r
+            .required(&m, "file", "a capture")
+            .and_then(|n| r.text(n, "`file`"));
+        let time = r
+            .required(&m, "time", "a capture")
+            .and_then(|n| r.time(n, "`time`"));
         let eye = match m.get("eye") {
             Some(n) => read_eye(r, n),
             None => {
                 if default_eye.is_none() {
-                    r.error(m.mark(), "the session images two eyes: say which one with `eye:`");
+                    r.error(
+                        m.mark(),
+                        "the session images two eyes: say which one with `eye:`",
+                    );
                 }
                 default_eye
             }
         };
         if let (Some(f), Some(t), Some(e)) = (file, time, eye) {
-            out.push(Capture { path: root.join(&f), listed: f, time: t, eye: e, source: r.file.to_path_buf(), mark: item.mark });
+            out.push(Capture {
+                path: root.join(&f),
+                listed: f,
+                time: t,
+                eye: e,
+                source: r.file.to_path_buf(),
+                mark: item.mark,
+            });
         }
     }
     out
@@ -657,33 +915,67 @@ fn read_log(r: &mut Reader, node: &Node, root: &Path) -> Option<ReferenceLog> {
         None => ("time".to_string(), "spo2".to_string()),
         Some(n) => {
             let cm = r.map(n, "`columns`", LOG_COLUMN_KEYS)?;
-            let t = cm.get("time").and_then(|x| r.text(x, "`time`")).unwrap_or_else(|| "time".into());
-            let s = cm.get("spo2").and_then(|x| r.text(x, "`spo2`")).unwrap_or_else(|| "spo2".into());
+            let t = cm
+                .get("time")
+                .and_then(|x| r.text(x, "`time`"))
+                .unwrap_or_else(|| "time".into());
+            let s = cm
+                .get("spo2")
+                .and_then(|x| r.text(x, "`spo2`"))
+                .unwrap_or_else(|| "spo2".into());
             (t, s)
         }
     };
     if !p.is_file() {
-        r.error(file_node.mark, format!("reference log `{rel}` does not exist")).hint("the path is relative to the study file's folder");
+        r.error(
+            file_node.mark,
+            format!("reference log `{rel}` does not exist"),
+        )
+        .hint("the path is relative to the study file's folder");
         return None;
     }
-    Some(ReferenceLog { path: p, time_column: tc, spo2_column: sc })
+    Some(ReferenceLog {
+        path: p,
+        time_column: tc,
+        spo2_column: sc,
+    })
 }
 
-fn read_methods(r: &mut Reader, node: &Node, bands: &[String], protocol: Option<&Protocol>) -> Vec<Method> {
+fn read_methods(
+    r: &mut Reader,
+    node: &Node,
+    bands: &[String],
+    protocol: Option<&Protocol>,
+) -> Vec<Method> {
     let mut out: Vec<Method> = Vec::new();
-    let Some(items) = r.list(node, "`methods`") else { return out };
+    let Some(items) = r.list(node, "`methods`") else {
+        return out;
+    };
     let band_refs: Vec<&str> = bands.iter().map(|s| s.as_str()).collect();
     for item in items {
         let Some(kind_node) = item.get("method") else {
-            r.error(item.mark, "a method needs `method:`").hint(format!("one of {}", METHOD_NAMES.join(", ")));
+            r.error(item.mark, "a method needs `method:`")
+                .hint(format!("one of {}", METHOD_NAMES.join(", ")));
             continue;
         };
-        let Some(kind) = r.choice(kind_node, "method", METHOD_NAMES) else { continue };
-        let keys = if kind == "two-band" { METHOD_KEYS_TWO_BAND } else { METHOD_KEYS_MULTI };
-        let Some(m) = r.map(item, &format!("method `{kind}`"), keys) else { continue };
-        let label = m.get("label").and_then(|n| r.text(n, "`label`")).unwrap_or_else(|| kind.clone());
+        let Some(kind) = r.choice(kind_node, "method", METHOD_NAMES) else {
+            continue;
+        };
+        let keys = if kind == "two-band" {
+            METHOD_KEYS_TWO_BAND
+        } else {
+            METHOD_KEYS_MULTI
+        };
+        let Some(m) = r.map(item, &format!("method `{kind}`"), keys) else {
+            continue;
+        };
+        let label = m
+            .get("label")
+            .and_then(|n| r.text(n, "`label`"))
+            .unwrap_or_else(|| kind.clone());
         if out.iter().any(|x| x.label == label) {
-            r.error(item.mark, format!("two methods are labelled `{label}`")).hint("give each a distinct `label:`");
+            r.error(item.mark, format!("two methods are labelled `{label}`"))
+                .hint("give each a distinct `label:`");
         }
         let band = |r: &mut Reader, key: &str| -> Option<usize> {
             let n = r.required(&m, key, &format!("method `{kind}`"))?;
@@ -691,22 +983,39 @@ fn read_methods(r: &mut Reader, node: &Node, bands: &[String], protocol: Option<
             let idx = band_refs.iter().position(|x| *x == b);
             if idx.is_none() && !band_refs.is_empty() {
                 let hint = super::diag::suggest(&b, &band_refs);
-                r.error(n.mark, format!("band `{b}` is not one of the instrument's bands")).hint(hint);
+                r.error(
+                    n.mark,
+                    format!("band `{b}` is not one of the instrument's bands"),
+                )
+                .hint(hint);
             }
             idx
         };
         let method = if kind == "two-band" {
             let s = band(r, "sensitive");
             let i = band(r, "isosbestic");
-            let cal = r.required(&m, "calibration", "method `two-band`").and_then(|n| read_calibration(r, n, protocol));
-            let dc = m.get("diameter_correction").and_then(|n| r.boolean(n, "`diameter_correction`")).unwrap_or(false);
+            let cal = r
+                .required(&m, "calibration", "method `two-band`")
+                .and_then(|n| read_calibration(r, n, protocol));
+            let dc = m
+                .get("diameter_correction")
+                .and_then(|n| r.boolean(n, "`diameter_correction`"))
+                .unwrap_or(false);
             if let (Some(s), Some(i)) = (s, i) {
                 if s == i {
-                    r.error(m.mark(), "`sensitive` and `isosbestic` must be different bands");
+                    r.error(
+                        m.mark(),
+                        "`sensitive` and `isosbestic` must be different bands",
+                    );
                 }
             }
             match (s, i, cal) {
-                (Some(s), Some(i), Some(c)) => Some(MethodKind::TwoBand { sensitive: s, isosbestic: i, calibration: c, diameter_correction: dc }),
+                (Some(s), Some(i), Some(c)) => Some(MethodKind::TwoBand {
+                    sensitive: s,
+                    isosbestic: i,
+                    calibration: c,
+                    diameter_correction: dc,
+                }),
                 _ => None,
             }
         } else {
@@ -720,7 +1029,11 @@ fn read_methods(r: &mut Reader, node: &Node, bands: &[String], protocol: Option<
                             let idx = band_refs.iter().position(|x| *x == t);
                             if idx.is_none() {
                                 let hint = super::diag::suggest(&t, &band_refs);
-                                r.error(b.mark, format!("band `{t}` is not one of the instrument's bands")).hint(hint);
+                                r.error(
+                                    b.mark,
+                                    format!("band `{t}` is not one of the instrument's bands"),
+                                )
+                                .hint(hint);
                             }
                             idx
                         })
@@ -747,7 +1060,11 @@ fn read_methods(r: &mut Reader, node: &Node, bands: &[String], protocol: Option<
                 _ => None,
             };
             match (bands_sel, loss) {
-                (Some(b), Some(l)) => Some(MethodKind::Multiband { bands: b, loss: l, pointwise: kind == "multiband-pointwise" }),
+                (Some(b), Some(l)) => Some(MethodKind::Multiband {
+                    bands: b,
+                    loss: l,
+                    pointwise: kind == "multiband-pointwise",
+                }),
                 _ => None,
             }
         };
@@ -758,20 +1075,38 @@ fn read_methods(r: &mut Reader, node: &Node, bands: &[String], protocol: Option<
     out
 }
 
-fn read_calibration(r: &mut Reader, node: &Node, protocol: Option<&Protocol>) -> Option<Calibration> {
+fn read_calibration(
+    r: &mut Reader,
+    node: &Node,
+    protocol: Option<&Protocol>,
+) -> Option<Calibration> {
     let m = r.map(node, "`calibration`", CALIBRATION_KEYS)?;
-    let mode = r.required(&m, "mode", "`calibration`").and_then(|n| r.choice(n, "calibration `mode`", &["fixed", "two-point", "regression"]))?;
+    let mode = r.required(&m, "mode", "`calibration`").and_then(|n| {
+        r.choice(
+            n,
+            "calibration `mode`",
+            &["fixed", "two-point", "regression"],
+        )
+    })?;
     let only = |r: &mut Reader, m: &MapView, allowed: &[&str]| {
-        for k in CALIBRATION_KEYS.iter().filter(|k| **k != "mode" && !allowed.contains(k)) {
+        for k in CALIBRATION_KEYS
+            .iter()
+            .filter(|k| **k != "mode" && !allowed.contains(k))
+        {
             if let Some(n) = m.get(k) {
-                r.error(n.mark, format!("`{k}` does not apply to calibration mode `{mode}`"));
+                r.error(
+                    n.mark,
+                    format!("`{k}` does not apply to calibration mode `{mode}`"),
+                );
             }
         }
     };
     match mode.as_str() {
         "fixed" => {
             only(r, &m, &["intercept", "slope"]);
-            let a = r.required(&m, "intercept", "a fixed calibration").and_then(|n| r.number(n, "`intercept`"));
+            let a = r
+                .required(&m, "intercept", "a fixed calibration")
+                .and_then(|n| r.number(n, "`intercept`"));
             let b_node = r.required(&m, "slope", "a fixed calibration");
             let b = b_node.and_then(|n| r.number(n, "`slope`"));
             if let (Some(b), Some(n)) = (b, b_node) {
@@ -779,7 +1114,10 @@ fn read_calibration(r: &mut Reader, node: &Node, protocol: Option<&Protocol>) ->
                     r.warning(n.mark, format!("`slope` {b} is not negative: SO2 usually falls as the optical density ratio rises"));
                 }
             }
-            Some(Calibration::Fixed { intercept: a?, slope: b? })
+            Some(Calibration::Fixed {
+                intercept: a?,
+                slope: b?,
+            })
         }
         "two-point" => {
             only(r, &m, &["epoch", "venule_so2"]);
@@ -791,7 +1129,11 @@ fn read_calibration(r: &mut Reader, node: &Node, protocol: Option<&Protocol>) ->
                     if idx.is_none() {
                         let names: Vec<&str> = p.epochs.iter().map(|x| x.name.as_str()).collect();
                         let hint = super::diag::suggest(&e, &names);
-                        r.error(n.mark, format!("calibration epoch `{e}` is not an epoch of the protocol")).hint(hint);
+                        r.error(
+                            n.mark,
+                            format!("calibration epoch `{e}` is not an epoch of the protocol"),
+                        )
+                        .hint(hint);
                     }
                     idx
                 }
@@ -805,7 +1147,10 @@ fn read_calibration(r: &mut Reader, node: &Node, protocol: Option<&Protocol>) ->
                     return None;
                 }
             }
-            Some(Calibration::TwoPoint { epoch: idx?, venule_so2: v? })
+            Some(Calibration::TwoPoint {
+                epoch: idx?,
+                venule_so2: v?,
+            })
         }
         _ => {
             only(r, &m, &[]);
@@ -831,7 +1176,11 @@ fn read_statistics(r: &mut Reader, node: &Node) -> Option<StatisticsSettings> {
             "none" => s.adjustment = Adjustment::None,
             other => {
                 let hint = super::diag::suggest(other, &["holm", "none"]);
-                r.error(n.mark, format!("`adjust` is `holm` or `none`, found `{other}`")).hint(hint);
+                r.error(
+                    n.mark,
+                    format!("`adjust` is `holm` or `none`, found `{other}`"),
+                )
+                .hint(hint);
                 return None;
             }
         }
@@ -839,9 +1188,15 @@ fn read_statistics(r: &mut Reader, node: &Node) -> Option<StatisticsSettings> {
     Some(s)
 }
 
-fn read_exclusions(r: &mut Reader, node: &Node, subjects: &HashMap<String, Mark>) -> Option<Exclusions> {
+fn read_exclusions(
+    r: &mut Reader,
+    node: &Node,
+    subjects: &HashMap<String, Mark>,
+) -> Option<Exclusions> {
     let m = r.map(node, "`exclusions`", EXCLUSION_KEYS)?;
-    let min_d = m.get("min_diameter_um").and_then(|n| positive(r, n, "`min_diameter_um`"));
+    let min_d = m
+        .get("min_diameter_um")
+        .and_then(|n| positive(r, n, "`min_diameter_um`"));
     let mut subj = Vec::new();
     if let Some(n) = m.get("subjects") {
         for item in r.list(n, "`subjects`").unwrap_or_default() {
@@ -849,7 +1204,8 @@ fn read_exclusions(r: &mut Reader, node: &Node, subjects: &HashMap<String, Mark>
                 if !subjects.is_empty() && !subjects.contains_key(&s) {
                     let ids: Vec<&str> = subjects.keys().map(|k| k.as_str()).collect();
                     let hint = super::diag::suggest(&s, &ids);
-                    r.error(item.mark, format!("subject `{s}` is not in the study")).hint(hint);
+                    r.error(item.mark, format!("subject `{s}` is not in the study"))
+                        .hint(hint);
                 }
                 subj.push(s);
             }
@@ -858,15 +1214,25 @@ fn read_exclusions(r: &mut Reader, node: &Node, subjects: &HashMap<String, Mark>
     let mut caps = Vec::new();
     if let Some(n) = m.get("captures") {
         for item in r.list(n, "`captures`").unwrap_or_default() {
-            let Some(cm) = r.map(item, "an excluded capture", EXCLUDED_CAPTURE_KEYS) else { continue };
-            let f = r.required(&cm, "file", "an excluded capture").and_then(|x| r.text(x, "`file`"));
-            let reason = r.required(&cm, "reason", "an excluded capture").and_then(|x| r.text(x, "`reason`"));
+            let Some(cm) = r.map(item, "an excluded capture", EXCLUDED_CAPTURE_KEYS) else {
+                continue;
+            };
+            let f = r
+                .required(&cm, "file", "an excluded capture")
+                .and_then(|x| r.text(x, "`file`"));
+            let reason = r
+                .required(&cm, "reason", "an excluded capture")
+                .and_then(|x| r.text(x, "`reason`"));
             if let (Some(f), Some(reason)) = (f, reason) {
                 caps.push((f, reason));
             }
         }
     }
-    Some(Exclusions { min_diameter_um: min_d, subjects: subj, captures: caps })
+    Some(Exclusions {
+        min_diameter_um: min_d,
+        subjects: subj,
+        captures: caps,
+    })
 }
 
 /// Checks across the study: capture files exist, none is listed twice, all
@@ -875,12 +1241,20 @@ fn read_exclusions(r: &mut Reader, node: &Node, subjects: &HashMap<String, Mark>
 /// capture in it is listed (unambiguously) in the study.
 fn check_spectra(study: &Study, findings: &mut Findings) -> Option<super::spectra::SpectraTable> {
     let path = study.spectra_file.as_ref()?;
-    let bands: Vec<String> = study.instrument.bands.iter().map(|b| b.name.clone()).collect();
+    let bands: Vec<String> = study
+        .instrument
+        .bands
+        .iter()
+        .map(|b| b.name.clone())
+        .collect();
     let table = super::spectra::read_spectra(path, &bands, findings)?;
     let mut listed: HashMap<&str, Vec<&str>> = HashMap::new();
     for subj in &study.subjects {
         for c in subj.sessions.iter().flat_map(|s| &s.captures) {
-            listed.entry(c.listed.as_str()).or_default().push(subj.id.as_str());
+            listed
+                .entry(c.listed.as_str())
+                .or_default()
+                .push(subj.id.as_str());
         }
     }
     for (subject, capture) in table.captures.keys() {
@@ -888,7 +1262,20 @@ fn check_spectra(study: &Study, findings: &mut Findings) -> Option<super::spectr
         if subject.is_empty() && who.len() > 1 {
             findings.error(path, None, format!("capture `{capture}` is listed for subjects {}; the spectra table needs a `subject` column", who.join(", ")));
         } else if who.is_empty() || (!subject.is_empty() && !who.contains(&subject.as_str())) {
-            findings.error(path, None, format!("capture `{capture}`{} is not in any capture list of the study", if subject.is_empty() { String::new() } else { format!(" of subject `{subject}`") })).hint("`capture` must be written as in the capture list");
+            findings
+                .error(
+                    path,
+                    None,
+                    format!(
+                        "capture `{capture}`{} is not in any capture list of the study",
+                        if subject.is_empty() {
+                            String::new()
+                        } else {
+                            format!(" of subject `{subject}`")
+                        }
+                    ),
+                )
+                .hint("`capture` must be written as in the capture list");
         }
     }
     Some(table)
@@ -913,18 +1300,28 @@ fn check_files(study: &Study, findings: &mut Findings) {
                 // With a spectra table the capture files are not needed.
                 if study.spectra_file.is_none() && !c.path.is_file() {
                     findings
-                        .error(&c.source, Some(c.mark), format!("capture `{}` does not exist", c.listed))
+                        .error(
+                            &c.source,
+                            Some(c.mark),
+                            format!("capture `{}` does not exist", c.listed),
+                        )
                         .hint(format!("looked for `{}`", c.path.display()));
                 }
                 let key = c.path.canonicalize().unwrap_or_else(|_| c.path.clone());
                 if let Some((src, mark)) = seen.get(&key) {
-                    findings.error(&c.source, Some(c.mark), format!(
-                        "capture `{}` is listed twice (first at {}:{}:{})",
-                        c.listed,
-                        src.display(),
-                        mark.line,
-                        mark.col
-                    )).hint("remove one of the two lines");
+                    findings
+                        .error(
+                            &c.source,
+                            Some(c.mark),
+                            format!(
+                                "capture `{}` is listed twice (first at {}:{}:{})",
+                                c.listed,
+                                src.display(),
+                                mark.line,
+                                mark.col
+                            ),
+                        )
+                        .hint("remove one of the two lines");
                 } else {
                     seen.insert(key, (c.source.clone(), c.mark));
                 }

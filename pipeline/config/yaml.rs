@@ -24,7 +24,10 @@ pub enum Value {
     Null,
     /// A scalar's text; `plain` is false when it was quoted or a block
     /// scalar, so `"0.21"` stays text while `0.21` may read as a number.
-    Scalar { text: String, plain: bool },
+    Scalar {
+        text: String,
+        plain: bool,
+    },
     Seq(Vec<Node>),
     /// Entries in file order. Keys are nodes so their positions are kept.
     Map(Vec<(Node, Node)>),
@@ -55,7 +58,10 @@ impl Node {
     /// The value under `key` in a mapping.
     pub fn get(&self, key: &str) -> Option<&Node> {
         match &self.value {
-            Value::Map(entries) => entries.iter().find(|(k, _)| k.as_scalar() == Some(key)).map(|(_, v)| v),
+            Value::Map(entries) => entries
+                .iter()
+                .find(|(k, _)| k.as_scalar() == Some(key))
+                .map(|(_, v)| v),
             _ => None,
         }
     }
@@ -94,8 +100,11 @@ impl Builder {
                     None => *pending = Some(node),
                     Some(key) => {
                         if let Some(text) = key.as_scalar() {
-                            if let Some((first, _)) = entries.iter().find(|(k, _)| k.as_scalar() == Some(text)) {
-                                self.duplicate_keys.push((text.to_string(), first.mark, key.mark));
+                            if let Some((first, _)) =
+                                entries.iter().find(|(k, _)| k.as_scalar() == Some(text))
+                            {
+                                self.duplicate_keys
+                                    .push((text.to_string(), first.mark, key.mark));
                             }
                         }
                         entries.push((key, node));
@@ -115,7 +124,9 @@ impl MarkedEventReceiver for Builder {
             Event::Scalar(text, style, anchor, tag) => {
                 let plain = style == TScalarStyle::Plain;
                 let is_null_tag = tag.as_ref().is_some_and(|t| t.suffix == "null");
-                let value = if is_null_tag || (plain && matches!(text.as_str(), "" | "~" | "null" | "Null" | "NULL")) {
+                let value = if is_null_tag
+                    || (plain && matches!(text.as_str(), "" | "~" | "null" | "Null" | "NULL"))
+                {
                     Value::Null
                 } else {
                     Value::Scalar { text, plain }
@@ -123,10 +134,24 @@ impl MarkedEventReceiver for Builder {
                 self.attach(Node { value, mark }, anchor);
             }
             Event::SequenceStart(anchor, _) => {
-                self.stack.push((Node { value: Value::Seq(Vec::new()), mark }, None, anchor));
+                self.stack.push((
+                    Node {
+                        value: Value::Seq(Vec::new()),
+                        mark,
+                    },
+                    None,
+                    anchor,
+                ));
             }
             Event::MappingStart(anchor, _) => {
-                self.stack.push((Node { value: Value::Map(Vec::new()), mark }, None, anchor));
+                self.stack.push((
+                    Node {
+                        value: Value::Map(Vec::new()),
+                        mark,
+                    },
+                    None,
+                    anchor,
+                ));
             }
             Event::SequenceEnd | Event::MappingEnd => {
                 if let Some((node, _, anchor)) = self.stack.pop() {
@@ -139,8 +164,14 @@ impl MarkedEventReceiver for Builder {
                     .iter()
                     .rev()
                     .find(|(a, _)| *a == id)
-                    .map(|(_, n)| Node { value: n.value.clone(), mark })
-                    .unwrap_or(Node { value: Value::Null, mark });
+                    .map(|(_, n)| Node {
+                        value: n.value.clone(),
+                        mark,
+                    })
+                    .unwrap_or(Node {
+                        value: Value::Null,
+                        mark,
+                    });
                 self.attach(node, 0);
             }
             _ => {}
@@ -151,7 +182,13 @@ impl MarkedEventReceiver for Builder {
 /// Parses one YAML document. A syntax error, a second document in the same
 /// file and a repeated key are findings with their positions.
 pub fn parse(file: &Path, text: &str) -> Result<Node, Vec<Finding>> {
-    let mut b = Builder { stack: Vec::new(), anchors: Vec::new(), root: None, documents: 0, duplicate_keys: Vec::new() };
+    let mut b = Builder {
+        stack: Vec::new(),
+        anchors: Vec::new(),
+        root: None,
+        documents: 0,
+        duplicate_keys: Vec::new(),
+    };
     let mut parser = Parser::new_from_str(text);
     if let Err(e) = parser.load(&mut b, true) {
         let m = e.marker();
@@ -160,7 +197,9 @@ pub fn parse(file: &Path, text: &str) -> Result<Node, Vec<Finding>> {
             file: file.to_path_buf(),
             mark: Some(mark_of(m)),
             message: format!("this is not valid YAML: {}", e.info()),
-            hint: Some("check the indentation and the `key: value` layout around this position".into()),
+            hint: Some(
+                "check the indentation and the `key: value` layout around this position".into(),
+            ),
         }]);
     }
     let mut errors = Vec::new();
@@ -179,13 +218,18 @@ pub fn parse(file: &Path, text: &str) -> Result<Node, Vec<Finding>> {
             file: file.to_path_buf(),
             mark: None,
             message: "the file holds more than one YAML document".into(),
-            hint: Some("remove the extra `---` separators: one file is one protocol or study".into()),
+            hint: Some(
+                "remove the extra `---` separators: one file is one protocol or study".into(),
+            ),
         });
     }
     if !errors.is_empty() {
         return Err(errors);
     }
-    Ok(b.root.unwrap_or(Node { value: Value::Null, mark: Mark::new(1, 1) }))
+    Ok(b.root.unwrap_or(Node {
+        value: Value::Null,
+        mark: Mark::new(1, 1),
+    }))
 }
 
 /// Renders any serializable value as YAML text (used for the resolved
@@ -207,7 +251,9 @@ mod tests {
         let n = p("name: a\nepochs:\n  - name: air\n    duration: 5min\n");
         assert_eq!(n.get("name").unwrap().mark, Mark::new(1, 7));
         let epochs = n.get("epochs").unwrap();
-        let Value::Seq(items) = &epochs.value else { panic!("seq") };
+        let Value::Seq(items) = &epochs.value else {
+            panic!("seq")
+        };
         assert_eq!(items[0].get("duration").unwrap().mark, Mark::new(4, 15));
         assert_eq!(items[0].get("duration").unwrap().as_scalar(), Some("5min"));
     }
@@ -215,8 +261,20 @@ mod tests {
     #[test]
     fn quoted_scalars_are_not_plain_and_nulls_are_null() {
         let n = p("a: \"0.21\"\nb: 0.21\nc: ~\nd:\n");
-        assert_eq!(n.get("a").unwrap().value, Value::Scalar { text: "0.21".into(), plain: false });
-        assert_eq!(n.get("b").unwrap().value, Value::Scalar { text: "0.21".into(), plain: true });
+        assert_eq!(
+            n.get("a").unwrap().value,
+            Value::Scalar {
+                text: "0.21".into(),
+                plain: false
+            }
+        );
+        assert_eq!(
+            n.get("b").unwrap().value,
+            Value::Scalar {
+                text: "0.21".into(),
+                plain: true
+            }
+        );
         assert!(n.get("c").unwrap().is_null());
         assert!(n.get("d").unwrap().is_null());
     }
@@ -224,7 +282,10 @@ mod tests {
     #[test]
     fn duplicate_keys_are_reported_with_both_lines() {
         let e = parse(Path::new("t.yaml"), "a: 1\nb: 2\na: 3\n").unwrap_err();
-        assert_eq!(e[0].to_string(), "error: t.yaml:3:1: key `a` is given twice (first at line 1)\n  hint: keep one of the two");
+        assert_eq!(
+            e[0].to_string(),
+            "error: t.yaml:3:1: key `a` is given twice (first at line 1)\n  hint: keep one of the two"
+        );
     }
 
     #[test]
@@ -237,6 +298,9 @@ mod tests {
     #[test]
     fn aliases_copy_the_anchored_node() {
         let n = p("base: &b {x: 1}\nother: *b\n");
-        assert_eq!(n.get("other").unwrap().get("x").unwrap().as_scalar(), Some("1"));
+        assert_eq!(
+            n.get("other").unwrap().get("x").unwrap().as_scalar(),
+            Some("1")
+        );
     }
 }

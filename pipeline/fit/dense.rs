@@ -8,7 +8,8 @@ use nalgebra::{DMatrix, DVector};
 use super::lm::{Linearization, Problem};
 
 /// Residuals and, when asked, the Jacobian (rows: residuals, columns: parameters).
-pub type Model<'a> = dyn Fn(&[f64], &mut DVector<f64>, Option<&mut DMatrix<f64>>) -> bool + Sync + 'a;
+pub type Model<'a> =
+    dyn Fn(&[f64], &mut DVector<f64>, Option<&mut DMatrix<f64>>) -> bool + Sync + 'a;
 
 pub struct DenseProblem<'a> {
     pub n_params: usize,
@@ -20,7 +21,13 @@ pub struct DenseProblem<'a> {
 
 impl<'a> DenseProblem<'a> {
     pub fn new(n_params: usize, n_residuals: usize, model: &'a Model<'a>) -> Self {
-        DenseProblem { n_params, n_residuals, model, lower: vec![f64::NEG_INFINITY; n_params], upper: vec![f64::INFINITY; n_params] }
+        DenseProblem {
+            n_params,
+            n_residuals,
+            model,
+            lower: vec![f64::NEG_INFINITY; n_params],
+            upper: vec![f64::INFINITY; n_params],
+        }
     }
 
     pub fn with_bounds(mut self, lower: Vec<f64>, upper: Vec<f64>) -> Self {
@@ -33,7 +40,10 @@ impl<'a> DenseProblem<'a> {
     pub fn evaluate(&self, x: &[f64]) -> Option<(DVector<f64>, DMatrix<f64>)> {
         let mut r = DVector::zeros(self.n_residuals);
         let mut j = DMatrix::zeros(self.n_residuals, self.n_params);
-        ((self.model)(x, &mut r, Some(&mut j)) && r.iter().all(|v| v.is_finite()) && j.iter().all(|v| v.is_finite())).then_some((r, j))
+        ((self.model)(x, &mut r, Some(&mut j))
+            && r.iter().all(|v| v.is_finite())
+            && j.iter().all(|v| v.is_finite()))
+        .then_some((r, j))
     }
 }
 
@@ -63,7 +73,10 @@ impl Linearization for DenseLin {
         let qr = a.qr();
         let qtb = qr.q().transpose() * b;
         let delta = qr.r().solve_upper_triangular(&qtb)?;
-        delta.iter().all(|v| v.is_finite()).then(|| delta.iter().copied().collect())
+        delta
+            .iter()
+            .all(|v| v.is_finite())
+            .then(|| delta.iter().copied().collect())
     }
 
     fn predicted_reduction(&self, delta: &[f64]) -> f64 {
@@ -93,7 +106,10 @@ impl<'a> Problem for DenseProblem<'a> {
     fn linearize(&self, x: &[f64]) -> DenseLin {
         match self.evaluate(x) {
             Some((r, j)) => DenseLin { r, j },
-            None => DenseLin { r: DVector::zeros(self.n_residuals), j: DMatrix::zeros(self.n_residuals, self.n_params) },
+            None => DenseLin {
+                r: DVector::zeros(self.n_residuals),
+                j: DMatrix::zeros(self.n_residuals, self.n_params),
+            },
         }
     }
 

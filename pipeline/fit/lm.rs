@@ -41,7 +41,13 @@ impl Termination {
 
     /// Did the fit reach a minimum (as opposed to giving up)?
     pub fn converged(&self) -> bool {
-        matches!(self, Termination::SmallGradient | Termination::SmallStep | Termination::SmallCostChange | Termination::ZeroResidual)
+        matches!(
+            self,
+            Termination::SmallGradient
+                | Termination::SmallStep
+                | Termination::SmallCostChange
+                | Termination::ZeroResidual
+        )
     }
 }
 
@@ -57,7 +63,13 @@ pub struct Options {
 
 impl Default for Options {
     fn default() -> Self {
-        Options { max_iterations: 500, ftol: 1e-14, xtol: 1e-14, gtol: 1e-14, tau: 1e-3 }
+        Options {
+            max_iterations: 500,
+            ftol: 1e-14,
+            xtol: 1e-14,
+            gtol: 1e-14,
+            tau: 1e-3,
+        }
     }
 }
 
@@ -113,12 +125,22 @@ pub fn minimize<P: Problem>(p: &P, x0: &[f64], opt: &Options) -> FitReport {
     project(&mut x, &lo, &hi);
     let mut evaluations = 1;
     let Some(mut cost) = p.cost(&x) else {
-        return FitReport { x, cost: f64::NAN, iterations: 0, evaluations, termination: Termination::NonFinite };
+        return FitReport {
+            x,
+            cost: f64::NAN,
+            iterations: 0,
+            evaluations,
+            termination: Termination::NonFinite,
+        };
     };
     let n = x.len();
     let mut lin = p.linearize(&x);
     evaluations += 1;
-    let mut damping = lin.jtj_diagonal().iter().map(|d| d.max(f64::MIN_POSITIVE)).collect::<Vec<_>>();
+    let mut damping = lin
+        .jtj_diagonal()
+        .iter()
+        .map(|d| d.max(f64::MIN_POSITIVE))
+        .collect::<Vec<_>>();
     let mut lambda = opt.tau * damping.iter().cloned().fold(0.0, f64::max);
     let mut nu = 2.0;
     let mut iterations = 0;
@@ -133,13 +155,21 @@ pub fn minimize<P: Problem>(p: &P, x0: &[f64], opt: &Options) -> FitReport {
         // A parameter on a bound whose gradient pushes it outwards is held
         // there for this step (its damping made enormous), so the others are
         // solved properly instead of zig-zagging against the bound.
-        let held: Vec<bool> = (0..n).map(|j| (x[j] <= lo[j] && g[j] > 0.0) || (x[j] >= hi[j] && g[j] < 0.0)).collect();
+        let held: Vec<bool> = (0..n)
+            .map(|j| (x[j] <= lo[j] && g[j] > 0.0) || (x[j] >= hi[j] && g[j] < 0.0))
+            .collect();
         // Scaled projected gradient: the cosine between r and each free (scaled) column of J.
         let rnorm = (2.0 * cost).sqrt();
         let diag = lin.jtj_diagonal();
         let gmax = (0..n)
             .filter(|j| !held[*j])
-            .map(|j| if diag[j] > 0.0 { g[j].abs() / (diag[j].sqrt() * rnorm) } else { 0.0 })
+            .map(|j| {
+                if diag[j] > 0.0 {
+                    g[j].abs() / (diag[j].sqrt() * rnorm)
+                } else {
+                    0.0
+                }
+            })
             .fold(0.0, f64::max);
         if gmax <= opt.gtol {
             break Termination::SmallGradient;
@@ -150,7 +180,15 @@ pub fn minimize<P: Problem>(p: &P, x0: &[f64], opt: &Options) -> FitReport {
         iterations += 1;
         let mut accepted = false;
         let mut stop = None;
-        let held_damping: Vec<f64> = (0..n).map(|j| if held[j] { damping[j] * 1e24 } else { damping[j] }).collect();
+        let held_damping: Vec<f64> = (0..n)
+            .map(|j| {
+                if held[j] {
+                    damping[j] * 1e24
+                } else {
+                    damping[j]
+                }
+            })
+            .collect();
         while !accepted {
             let Some(step) = lin.step(lambda, &held_damping) else {
                 lambda *= nu;
@@ -200,5 +238,11 @@ pub fn minimize<P: Problem>(p: &P, x0: &[f64], opt: &Options) -> FitReport {
             break t;
         }
     };
-    FitReport { x, cost, iterations, evaluations, termination }
+    FitReport {
+        x,
+        cost,
+        iterations,
+        evaluations,
+        termination,
+    }
 }

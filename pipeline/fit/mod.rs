@@ -16,4 +16,4 @@
 pub mod dense;
 pub mod lm;
 
-pub use lm::{minimize, FitReport, Linearization, Options, Problem, Termination};
+pub use lm::{FitReport, Linearization, Options, Problem, Termination, minimize};

@@ -11,7 +11,7 @@
 //! of nearby intensities, so a flat field matters little for it, but a dark
 //! offset biases it directly.
 
-use super::ingest::{read_capture, CaptureError, Multiband};
+use super::ingest::{CaptureError, Multiband, read_capture};
 use super::register::{bilinear, register};
 use crate::config::study::Instrument;
 
@@ -26,16 +26,36 @@ pub struct Corrections {
 impl Corrections {
     /// No corrections at all.
     pub fn none(bands: usize) -> Self {
-        Corrections { dark: None, flat: None, offsets: vec![None; bands], estimate: false, reference_band: 0 }
+        Corrections {
+            dark: None,
+            flat: None,
+            offsets: vec![None; bands],
+            estimate: false,
+            reference_band: 0,
+        }
     }
 
     /// Reads the instrument's calibration frames; `reference_band` is the registration band.
     pub fn load(inst: &Instrument, reference_band: usize) -> Result<Self, CaptureError> {
         let nb = inst.bands.len();
-        let dark = inst.dark.as_deref().map(|p| read_capture(p, nb, None)).transpose()?;
+        let dark = inst
+            .dark
+            .as_deref()
+            .map(|p| read_capture(p, nb, None))
+            .transpose()?;
         let size = dark.as_ref().map(|d| (d.width, d.height));
-        let flat = inst.flat.as_deref().map(|p| read_capture(p, nb, size)).transpose()?;
-        Ok(Corrections { dark, flat, offsets: inst.bands.iter().map(|b| b.offset_px).collect(), estimate: inst.estimate_band_offsets, reference_band })
+        let flat = inst
+            .flat
+            .as_deref()
+            .map(|p| read_capture(p, nb, size))
+            .transpose()?;
+        Ok(Corrections {
+            dark,
+            flat,
+            offsets: inst.bands.iter().map(|b| b.offset_px).collect(),
+            estimate: inst.estimate_band_offsets,
+            reference_band,
+        })
     }
 
     /// Corrects `img` in place; returns the band offsets used (px).
@@ -43,27 +63,44 @@ impl Corrections {
         let (w, h) = (img.width, img.height);
         for frame in [&self.dark, &self.flat].into_iter().flatten() {
             if (frame.width, frame.height) != (w, h) {
-                return Err(format!("the calibration frames are {}×{} pixels, the capture {w}×{h}", frame.width, frame.height));
+                return Err(format!(
+                    "the calibration frames are {}×{} pixels, the capture {w}×{h}",
+                    frame.width, frame.height
+                ));
             }
         }
         for b in 0..img.bands.len() {
             let band = &mut img.bands[b];
             match (&self.dark, &self.flat) {
-                (Some(d), None) => band.iter_mut().zip(&d.bands[b]).for_each(|(v, dv)| *v -= dv),
+                (Some(d), None) => band
+                    .iter_mut()
+                    .zip(&d.bands[b])
+                    .for_each(|(v, dv)| *v -= dv),
                 (dark, Some(f)) => {
                     let zero = vec![0.0f32; w * h];
                     let d = dark.as_ref().map(|d| &d.bands[b]).unwrap_or(&zero);
-                    let gain = f.bands[b].iter().zip(d).map(|(f, d)| (f - d) as f64).sum::<f64>() / (w * h) as f64;
+                    let gain = f.bands[b]
+                        .iter()
+                        .zip(d)
+                        .map(|(f, d)| (f - d) as f64)
+                        .sum::<f64>()
+                        / (w * h) as f64;
                     for ((v, fv), dv) in band.iter_mut().zip(&f.bands[b]).zip(d) {
                         let s = fv - dv;
                         // A dead flat-field pixel gives no information: zero, which profiles flag.
-                        *v = if s > 0.0 { ((*v - dv) as f64 * gain / s as f64) as f32 } else { 0.0 };
+                        *v = if s > 0.0 {
+                            ((*v - dv) as f64 * gain / s as f64) as f32
+                        } else {
+                            0.0
+                        };
                     }
                 }
                 (None, None) => {}
             }
         }
-        let reference: Option<Vec<f32>> = self.estimate.then(|| img.bands[self.reference_band].clone());
+        let reference: Option<Vec<f32>> = self
+            .estimate
+            .then(|| img.bands[self.reference_band].clone());
         let mut used = Vec::with_capacity(img.bands.len());
         for b in 0..img.bands.len() {
             let offset = match (self.offsets[b], &reference) {

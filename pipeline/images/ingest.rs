@@ -5,8 +5,8 @@
 
 use std::path::{Path, PathBuf};
 
-use tiff::decoder::{Decoder, DecodingResult};
 use tiff::ColorType;
+use tiff::decoder::{Decoder, DecodingResult};
 
 /// A capture's bands as floating-point images, row-major.
 #[derive(Debug, Clone, PartialEq)]
@@ -29,21 +29,59 @@ pub enum CaptureError {
     #[error("cannot open `{path}`: {reason}")]
     Open { path: PathBuf, reason: String },
     #[error("`{path}` is not a readable TIFF (page {page}): {reason}")]
-    Decode { path: PathBuf, page: usize, reason: String },
-    #[error("`{path}` page {page} is {found}; expected single-channel 8-bit, 16-bit or 32-bit float grey")]
-    PixelType { path: PathBuf, page: usize, found: String },
+    Decode {
+        path: PathBuf,
+        page: usize,
+        reason: String,
+    },
+    #[error(
+        "`{path}` page {page} is {found}; expected single-channel 8-bit, 16-bit or 32-bit float grey"
+    )]
+    PixelType {
+        path: PathBuf,
+        page: usize,
+        found: String,
+    },
     #[error("`{path}` has {found} pages; the instrument has {expected} bands (one page per band)")]
-    BandCount { path: PathBuf, found: usize, expected: usize },
+    BandCount {
+        path: PathBuf,
+        found: usize,
+        expected: usize,
+    },
     #[error("`{path}` page {page} is {found_w}×{found_h} pixels, page 1 is {w}×{h}")]
-    PageSize { path: PathBuf, page: usize, found_w: u32, found_h: u32, w: u32, h: u32 },
+    PageSize {
+        path: PathBuf,
+        page: usize,
+        found_w: u32,
+        found_h: u32,
+        w: u32,
+        h: u32,
+    },
     #[error("`{path}` is {found_w}×{found_h} pixels; this eye's captures are {w}×{h}")]
-    CaptureSize { path: PathBuf, found_w: usize, found_h: usize, w: usize, h: usize },
+    CaptureSize {
+        path: PathBuf,
+        found_w: usize,
+        found_h: usize,
+        w: usize,
+        h: usize,
+    },
 }
 
 /// Reads a capture and checks its band count (and its size, when given).
-pub fn read_capture(path: &Path, bands: usize, size: Option<(usize, usize)>) -> Result<Multiband, CaptureError> {
-    let file = std::fs::File::open(path).map_err(|e| CaptureError::Open { path: path.into(), reason: e.to_string() })?;
-    let dec_err = |page: usize, e: tiff::TiffError| CaptureError::Decode { path: path.into(), page, reason: e.to_string() };
+pub fn read_capture(
+    path: &Path,
+    bands: usize,
+    size: Option<(usize, usize)>,
+) -> Result<Multiband, CaptureError> {
+    let file = std::fs::File::open(path).map_err(|e| CaptureError::Open {
+        path: path.into(),
+        reason: e.to_string(),
+    })?;
+    let dec_err = |page: usize, e: tiff::TiffError| CaptureError::Decode {
+        path: path.into(),
+        page,
+        reason: e.to_string(),
+    };
     let mut dec = Decoder::new(std::io::BufReader::new(file)).map_err(|e| dec_err(1, e))?;
     let mut pages: Vec<Vec<f32>> = Vec::new();
     let (mut w0, mut h0) = (0u32, 0u32);
@@ -54,22 +92,46 @@ pub fn read_capture(path: &Path, bands: usize, size: Option<(usize, usize)>) -> 
         if page == 1 {
             (w0, h0) = (w, h);
         } else if (w, h) != (w0, h0) {
-            return Err(CaptureError::PageSize { path: path.into(), page, found_w: w, found_h: h, w: w0, h: h0 });
+            return Err(CaptureError::PageSize {
+                path: path.into(),
+                page,
+                found_w: w,
+                found_h: h,
+                w: w0,
+                h: h0,
+            });
         }
         let ct = dec.colortype().map_err(|e| dec_err(page, e))?;
         let (data, bits) = match ct {
-            ColorType::Gray(8) | ColorType::Gray(16) | ColorType::Gray(32) => match dec.read_image().map_err(|e| dec_err(page, e))? {
+            ColorType::Gray(8) | ColorType::Gray(16) | ColorType::Gray(32) => match dec
+                .read_image()
+                .map_err(|e| dec_err(page, e))?
+            {
                 DecodingResult::U8(v) => (v.into_iter().map(f32::from).collect::<Vec<f32>>(), 8),
                 DecodingResult::U16(v) => (v.into_iter().map(f32::from).collect(), 16),
                 DecodingResult::F32(v) => (v, 32),
                 other => {
-                    return Err(CaptureError::PixelType { path: path.into(), page, found: format!("{:?}", std::mem::discriminant(&other)) });
+                    return Err(CaptureError::PixelType {
+                        path: path.into(),
+                        page,
+                        found: format!("{:?}", std::mem::discriminant(&other)),
+                    });
                 }
             },
-            other => return Err(CaptureError::PixelType { path: path.into(), page, found: format!("{other:?}") }),
+            other => {
+                return Err(CaptureError::PixelType {
+                    path: path.into(),
+                    page,
+                    found: format!("{other:?}"),
+                });
+            }
         };
         if data.len() != (w as usize) * (h as usize) {
-            return Err(CaptureError::Decode { path: path.into(), page, reason: "fewer pixels than the page's size".into() });
+            return Err(CaptureError::Decode {
+                path: path.into(),
+                page,
+                reason: "fewer pixels than the page's size".into(),
+            });
         }
         depth = bits;
         pages.push(data);
@@ -79,13 +141,28 @@ pub fn read_capture(path: &Path, bands: usize, size: Option<(usize, usize)>) -> 
         dec.next_image().map_err(|e| dec_err(page + 1, e))?;
     }
     if pages.len() != bands {
-        return Err(CaptureError::BandCount { path: path.into(), found: pages.len(), expected: bands });
+        return Err(CaptureError::BandCount {
+            path: path.into(),
+            found: pages.len(),
+            expected: bands,
+        });
     }
     let (w, h) = (w0 as usize, h0 as usize);
     if let Some((ew, eh)) = size {
         if (w, h) != (ew, eh) {
-            return Err(CaptureError::CaptureSize { path: path.into(), found_w: w, found_h: h, w: ew, h: eh });
+            return Err(CaptureError::CaptureSize {
+                path: path.into(),
+                found_w: w,
+                found_h: h,
+                w: ew,
+                h: eh,
+            });
         }
     }
-    Ok(Multiband { width: w, height: h, bands: pages, bit_depth: depth })
+    Ok(Multiband {
+        width: w,
+        height: h,
+        bands: pages,
+        bit_depth: depth,
+    })
 }

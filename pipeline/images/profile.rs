@@ -23,7 +23,7 @@ use nalgebra::{DMatrix, DVector};
 use super::ingest::Multiband;
 use super::register::bilinear;
 use crate::fit::dense::DenseProblem;
-use crate::fit::{minimize, Options};
+use crate::fit::{Options, minimize};
 
 #[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
 pub struct ProfileSettings {
@@ -40,7 +40,14 @@ pub struct ProfileSettings {
 
 impl Default for ProfileSettings {
     fn default() -> Self {
-        ProfileSettings { spacing_px: 2.0, half_length_px: 16.0, end_margin_px: 4.0, min_contrast: 0.03, max_rms: 0.035, neighbour_margin_px: 2.0 }
+        ProfileSettings {
+            spacing_px: 2.0,
+            half_length_px: 16.0,
+            end_margin_px: 4.0,
+            min_contrast: 0.03,
+            max_rms: 0.035,
+            neighbour_margin_px: 2.0,
+        }
     }
 }
 
@@ -97,18 +104,35 @@ fn shape(s: f64, p: &[f64]) -> (f64, [f64; 4]) {
     let d = 1.0 - ek;
     let h = (1.0 - e) / d;
     let dh_dk = (q * e * d - (1.0 - e) * ek) / (d * d);
-    let dq = if q > 1e-9 { a * k * e * u / (d * q * r) } else { 0.0 };
+    let dq = if q > 1e-9 {
+        a * k * e * u / (d * q * r)
+    } else {
+        0.0
+    };
     (1.0 - a * h, [-h, -dq, -dq * u, -a * dh_dk])
 }
 
 /// Fits the shape to `(s, p)`; `fixed` holds (c, r) when only A and β are free.
-fn fit_shape(s: &[f64], p: &[f64], start: [f64; 4], fixed: Option<(f64, f64)>, half: f64) -> ([f64; 4], f64) {
+fn fit_shape(
+    s: &[f64],
+    p: &[f64],
+    start: [f64; 4],
+    fixed: Option<(f64, f64)>,
+    half: f64,
+) -> ([f64; 4], f64) {
     fit_shape_masked(s, p, start, fixed, half, None)
 }
 
 /// As [`fit_shape`], leaving out the samples inside `skip` (a central
 /// reflex); the rms is over the samples used.
-fn fit_shape_masked(s: &[f64], p: &[f64], start: [f64; 4], fixed: Option<(f64, f64)>, half: f64, skip: Option<(f64, f64)>) -> ([f64; 4], f64) {
+fn fit_shape_masked(
+    s: &[f64],
+    p: &[f64],
+    start: [f64; 4],
+    fixed: Option<(f64, f64)>,
+    half: f64,
+    skip: Option<(f64, f64)>,
+) -> ([f64; 4], f64) {
     let n = s.len();
     let used = |x: f64| skip.is_none_or(|(lo, hi)| x <= lo || x >= hi);
     let n_used = s.iter().filter(|x| used(**x)).count().max(1);
@@ -143,11 +167,28 @@ fn fit_shape_masked(s: &[f64], p: &[f64], start: [f64; 4], fixed: Option<(f64, f
     let (lo, hi) = if fixed.is_some() {
         (vec![0.0, 0.01], vec![1.0, 30.0])
     } else {
-        (vec![0.0, -half / 2.0, 1.0, 0.01], vec![1.0, half / 2.0, half * 0.9, 30.0])
+        (
+            vec![0.0, -half / 2.0, 1.0, 0.01],
+            vec![1.0, half / 2.0, half * 0.9, 30.0],
+        )
     };
     let prob = DenseProblem::new(np, n, &model).with_bounds(lo, hi);
-    let x0: Vec<f64> = if fixed.is_some() { vec![start[0], start[3]] } else { start.to_vec() };
-    let rep = minimize(&prob, &x0, &Options { max_iterations: 200, ftol: 1e-12, xtol: 1e-12, gtol: 1e-12, tau: 1e-3 });
+    let x0: Vec<f64> = if fixed.is_some() {
+        vec![start[0], start[3]]
+    } else {
+        start.to_vec()
+    };
+    let rep = minimize(
+        &prob,
+        &x0,
+        &Options {
+            max_iterations: 200,
+            ftol: 1e-12,
+            xtol: 1e-12,
+            gtol: 1e-12,
+            tau: 1e-3,
+        },
+    );
     let q = full(&rep.x);
     (q, (2.0 * rep.cost / n_used as f64).sqrt())
 }
@@ -156,7 +197,11 @@ fn fit_shape_masked(s: &[f64], p: &[f64], start: [f64; 4], fixed: Option<(f64, f
 /// radius, as offsets from the centre: (x_left, x_right).
 fn flank_minima(s: &[f64], p: &[f64], c: f64, r: f64) -> Option<(f64, f64, f64, f64)> {
     let side = |sign: f64| {
-        s.iter().zip(p).filter(|(x, _)| (0.05..=0.5).contains(&(sign * (**x - c) / r))).map(|(x, v)| (*x, *v)).min_by(|a, b| a.1.total_cmp(&b.1))
+        s.iter()
+            .zip(p)
+            .filter(|(x, _)| (0.05..=0.5).contains(&(sign * (**x - c) / r)))
+            .map(|(x, v)| (*x, *v))
+            .min_by(|a, b| a.1.total_cmp(&b.1))
     };
     let (l, rr) = (side(-1.0)?, side(1.0)?);
     Some((l.0, l.1, rr.0, rr.1))
@@ -169,7 +214,12 @@ fn flank_minima(s: &[f64], p: &[f64], c: f64, r: f64) -> Option<(f64, f64, f64, 
 /// between the flank minima.
 fn find_reflex(s: &[f64], p: &[f64], c: f64, r: f64) -> Option<(f64, f64)> {
     let (xl, l, xr, rr) = flank_minima(s, p, c, r)?;
-    let centre: Vec<f64> = s.iter().zip(p).filter(|(x, _)| (**x - c).abs() / r < 0.1).map(|(_, t)| *t).collect();
+    let centre: Vec<f64> = s
+        .iter()
+        .zip(p)
+        .filter(|(x, _)| (**x - c).abs() / r < 0.1)
+        .map(|(_, t)| *t)
+        .collect();
     if centre.is_empty() {
         return None;
     }
@@ -181,7 +231,12 @@ fn find_reflex(s: &[f64], p: &[f64], c: f64, r: f64) -> Option<(f64, f64)> {
 /// (|s − c| > edge), as `[b0, b1, b2]`: vignetting curves the background
 /// measurably over a profile's length.
 fn background(s: &[f64], v: &[f64], c: f64, edge: f64) -> Option<[f64; 3]> {
-    let pts: Vec<(f64, f64)> = s.iter().zip(v).filter(|(x, _)| (*x - c).abs() > edge).map(|(x, y)| (*x, *y)).collect();
+    let pts: Vec<(f64, f64)> = s
+        .iter()
+        .zip(v)
+        .filter(|(x, _)| (*x - c).abs() > edge)
+        .map(|(x, y)| (*x, *y))
+        .collect();
     let left = pts.iter().filter(|p| p.0 < c).count();
     if pts.len() < 8 || left < 4 || pts.len() - left < 4 {
         return None;
@@ -203,39 +258,80 @@ fn distance_to(points: &[(f64, f64)], p: (f64, f64)) -> f64 {
             let (a, b) = (w[0], w[1]);
             let (vx, vy) = (b.0 - a.0, b.1 - a.1);
             let l2 = vx * vx + vy * vy;
-            let u = if l2 > 0.0 { (((p.0 - a.0) * vx + (p.1 - a.1) * vy) / l2).clamp(0.0, 1.0) } else { 0.0 };
+            let u = if l2 > 0.0 {
+                (((p.0 - a.0) * vx + (p.1 - a.1) * vy) / l2).clamp(0.0, 1.0)
+            } else {
+                0.0
+            };
             ((p.0 - a.0 - u * vx).powi(2) + (p.1 - a.1 - u * vy).powi(2)).sqrt()
         })
         .fold(f64::INFINITY, f64::min)
 }
 
 /// Analyses one segment (its polyline already in this capture's coordinates).
-pub fn analyse_segment(img: &Multiband, line: &[(f64, f64)], others: &[Vec<(f64, f64)>], width_band: usize, st: &ProfileSettings) -> Vec<ProfileResult> {
+pub fn analyse_segment(
+    img: &Multiband,
+    line: &[(f64, f64)],
+    others: &[Vec<(f64, f64)>],
+    width_band: usize,
+    st: &ProfileSettings,
+) -> Vec<ProfileResult> {
     let mut cum = vec![0.0];
     for w in line.windows(2) {
-        cum.push(cum.last().unwrap() + ((w[1].0 - w[0].0).powi(2) + (w[1].1 - w[0].1).powi(2)).sqrt());
+        cum.push(
+            cum.last().unwrap() + ((w[1].0 - w[0].0).powi(2) + (w[1].1 - w[0].1).powi(2)).sqrt(),
+        );
     }
     let total = *cum.last().unwrap_or(&0.0);
     let half = st.half_length_px;
-    let s: Vec<f64> = (0..=(4.0 * half) as usize).map(|i| -half + 0.5 * i as f64).collect();
+    let s: Vec<f64> = (0..=(4.0 * half) as usize)
+        .map(|i| -half + 0.5 * i as f64)
+        .collect();
     let mut out = Vec::new();
     let mut along = st.end_margin_px;
     let mut k = 0;
     while along <= total - st.end_margin_px {
-        let seg = cum.partition_point(|c| *c <= along).clamp(1, line.len() - 1);
+        let seg = cum
+            .partition_point(|c| *c <= along)
+            .clamp(1, line.len() - 1);
         let (a, b) = (line[seg - 1], line[seg]);
         let len = cum[seg] - cum[seg - 1];
-        let f = if len > 0.0 { (along - cum[seg - 1]) / len } else { 0.0 };
+        let f = if len > 0.0 {
+            (along - cum[seg - 1]) / len
+        } else {
+            0.0
+        };
         let centre = (a.0 + f * (b.0 - a.0), a.1 + f * (b.1 - a.1));
         let (tx, ty) = ((b.0 - a.0) / len.max(1e-12), (b.1 - a.1) / len.max(1e-12));
         let normal = (-ty, tx);
         let mut flags = Vec::new();
         let sample = |band: usize| -> Option<Vec<f64>> {
-            s.iter().map(|d| bilinear(&img.bands[band], img.width, img.height, centre.0 + d * normal.0, centre.1 + d * normal.1)).collect()
+            s.iter()
+                .map(|d| {
+                    bilinear(
+                        &img.bands[band],
+                        img.width,
+                        img.height,
+                        centre.0 + d * normal.0,
+                        centre.1 + d * normal.1,
+                    )
+                })
+                .collect()
         };
         let Some(wv) = sample(width_band) else {
             flags.push(Flag::OffImage);
-            out.push(ProfileResult { position: k, along_px: along, x: centre.0, y: centre.1, diameter_px: f64::NAN, transmission: vec![f64::NAN; img.bands.len()], background: vec![f64::NAN; img.bands.len()], rms: f64::NAN, flags, reflex: false });
+            out.push(ProfileResult {
+                position: k,
+                along_px: along,
+                x: centre.0,
+                y: centre.1,
+                diameter_px: f64::NAN,
+                transmission: vec![f64::NAN; img.bands.len()],
+                background: vec![f64::NAN; img.bands.len()],
+                rms: f64::NAN,
+                flags,
+                reflex: false,
+            });
             k += 1;
             along += st.spacing_px;
             continue;
@@ -255,7 +351,11 @@ pub fn analyse_segment(img: &Multiband, line: &[(f64, f64)], others: &[Vec<(f64,
         while fits < 2 || (reflex.is_some() && fits < 3) {
             fits += 1;
             let Some(bq) = bg else { break };
-            let p: Vec<f64> = s.iter().zip(&wv).map(|(x, v)| v / eval_bg(&bq, *x)).collect();
+            let p: Vec<f64> = s
+                .iter()
+                .zip(&wv)
+                .map(|(x, v)| v / eval_bg(&bq, *x))
+                .collect();
             if fits == 2 {
                 reflex = find_reflex(&s, &p, q[1], q[2]);
             }
@@ -266,11 +366,18 @@ pub fn analyse_segment(img: &Multiband, line: &[(f64, f64)], others: &[Vec<(f64,
                 bg = background(&s, &wv, q[1], q[2] + 2.0).or(bg);
                 continue;
             }
-            let imin = (0..p.len()).min_by(|i, j| p[*i].total_cmp(&p[*j])).unwrap_or(0);
+            let imin = (0..p.len())
+                .min_by(|i, j| p[*i].total_cmp(&p[*j]))
+                .unwrap_or(0);
             if q[0] == 0.3 {
                 let depth = (1.0 - p[imin]).max(0.01);
                 let inside = p.iter().filter(|v| **v < 1.0 - depth / 2.0).count() as f64 * 0.5;
-                q = [depth, s[imin].clamp(-half / 2.0, half / 2.0), (inside * 0.65).clamp(1.5, half * 0.8), 1.0];
+                q = [
+                    depth,
+                    s[imin].clamp(-half / 2.0, half / 2.0),
+                    (inside * 0.65).clamp(1.5, half * 0.8),
+                    1.0,
+                ];
             }
             let (fq, r) = fit_shape(&s, &p, q, None, half);
             q = fq;
@@ -279,7 +386,18 @@ pub fn analyse_segment(img: &Multiband, line: &[(f64, f64)], others: &[Vec<(f64,
         }
         let Some(_) = bg else {
             flags.push(Flag::PoorFit);
-            out.push(ProfileResult { position: k, along_px: along, x: centre.0, y: centre.1, diameter_px: f64::NAN, transmission: vec![f64::NAN; img.bands.len()], background: vec![f64::NAN; img.bands.len()], rms, flags, reflex: false });
+            out.push(ProfileResult {
+                position: k,
+                along_px: along,
+                x: centre.0,
+                y: centre.1,
+                diameter_px: f64::NAN,
+                transmission: vec![f64::NAN; img.bands.len()],
+                background: vec![f64::NAN; img.bands.len()],
+                rms,
+                flags,
+                reflex: false,
+            });
             k += 1;
             along += st.spacing_px;
             continue;
@@ -288,7 +406,11 @@ pub fn analyse_segment(img: &Multiband, line: &[(f64, f64)], others: &[Vec<(f64,
         let mut trans = Vec::with_capacity(img.bands.len());
         let mut backs = Vec::with_capacity(img.bands.len());
         for band in 0..img.bands.len() {
-            let v = if band == width_band { Some(wv.clone()) } else { sample(band) };
+            let v = if band == width_band {
+                Some(wv.clone())
+            } else {
+                sample(band)
+            };
             let Some(v) = v else {
                 trans.push(f64::NAN);
                 backs.push(f64::NAN);
@@ -299,18 +421,36 @@ pub fn analyse_segment(img: &Multiband, line: &[(f64, f64)], others: &[Vec<(f64,
                 backs.push(f64::NAN);
                 continue;
             };
-            let p: Vec<f64> = s.iter().zip(&v).map(|(x, y)| y / eval_bg(&bq, *x)).collect();
+            let p: Vec<f64> = s
+                .iter()
+                .zip(&v)
+                .map(|(x, y)| y / eval_bg(&bq, *x))
+                .collect();
             // T is the normalised intensity at the centre line: the mean
             // over a small central window (the fitted shape finds the centre
             // and width; at strong absorption its depth overshoots the data).
             let win = (0.2 * r).max(0.5);
             let central: Vec<f64> = match reflex {
                 // Beside a reflex: the samples at the two flank minima.
-                Some((xl, xr)) => s.iter().zip(&p).filter(|(x, _)| (**x - xl).abs() < 0.26 || (**x - xr).abs() < 0.26).map(|(_, v)| *v).collect(),
-                None => s.iter().zip(&p).filter(|(x, _)| (**x - c).abs() <= win).map(|(_, v)| *v).collect(),
+                Some((xl, xr)) => s
+                    .iter()
+                    .zip(&p)
+                    .filter(|(x, _)| (**x - xl).abs() < 0.26 || (**x - xr).abs() < 0.26)
+                    .map(|(_, v)| *v)
+                    .collect(),
+                None => s
+                    .iter()
+                    .zip(&p)
+                    .filter(|(x, _)| (**x - c).abs() <= win)
+                    .map(|(_, v)| *v)
+                    .collect(),
             };
             let t = if central.is_empty() {
-                let (fq, _) = if band == width_band { (q, rms) } else { fit_shape(&s, &p, [q[0], c, r, q[3]], Some((c, r)), half) };
+                let (fq, _) = if band == width_band {
+                    (q, rms)
+                } else {
+                    fit_shape(&s, &p, [q[0], c, r, q[3]], Some((c, r)), half)
+                };
                 1.0 - fq[0]
             } else {
                 central.iter().sum::<f64>() / central.len() as f64
@@ -324,7 +464,12 @@ pub fn analyse_segment(img: &Multiband, line: &[(f64, f64)], others: &[Vec<(f64,
         // Poor fit: residuals well above the noise seen in the background
         // parts of the same profile (beyond `max_rms` + 3 × that noise).
         let noise = {
-            let pts: Vec<f64> = s.iter().zip(&wv).filter(|(x, _)| (**x - c).abs() > r + 2.0).map(|(x, v)| v / eval_bg(&bg.expect("fitted"), *x) - 1.0).collect();
+            let pts: Vec<f64> = s
+                .iter()
+                .zip(&wv)
+                .filter(|(x, _)| (**x - c).abs() > r + 2.0)
+                .map(|(x, v)| v / eval_bg(&bg.expect("fitted"), *x) - 1.0)
+                .collect();
             (pts.iter().map(|e| e * e).sum::<f64>() / pts.len().max(1) as f64).sqrt()
         };
         // A background extrapolated to zero or below under the vessel makes
@@ -334,10 +479,24 @@ pub fn analyse_segment(img: &Multiband, line: &[(f64, f64)], others: &[Vec<(f64,
             flags.push(Flag::PoorFit);
         }
         let here = (centre.0 + c * normal.0, centre.1 + c * normal.1);
-        if others.iter().any(|o| distance_to(o, here) < r + st.neighbour_margin_px + 1.0) {
+        if others
+            .iter()
+            .any(|o| distance_to(o, here) < r + st.neighbour_margin_px + 1.0)
+        {
             flags.push(Flag::NearSegment);
         }
-        out.push(ProfileResult { position: k, along_px: along, x: here.0, y: here.1, diameter_px: 2.0 * r, transmission: trans, background: backs, rms, flags, reflex: reflex.is_some() });
+        out.push(ProfileResult {
+            position: k,
+            along_px: along,
+            x: here.0,
+            y: here.1,
+            diameter_px: 2.0 * r,
+            transmission: trans,
+            background: backs,
+            rms,
+            flags,
+            reflex: reflex.is_some(),
+        });
         k += 1;
         along += st.spacing_px;
     }

@@ -50,10 +50,19 @@ pub fn bilinear(img: &[f32], w: usize, h: usize, x: f64, y: f64) -> Option<f64> 
     let (x1, y1) = ((x0 + 1).min(w - 1), (y0 + 1).min(h - 1));
     let (fx, fy) = (x - x0 as f64, y - y0 as f64);
     let p = |xx: usize, yy: usize| img[yy * w + xx] as f64;
-    Some((p(x0, y0) * (1.0 - fx) + p(x1, y0) * fx) * (1.0 - fy) + (p(x0, y1) * (1.0 - fx) + p(x1, y1) * fx) * fy)
+    Some(
+        (p(x0, y0) * (1.0 - fx) + p(x1, y0) * fx) * (1.0 - fy)
+            + (p(x0, y1) * (1.0 - fx) + p(x1, y1) * fx) * fy,
+    )
 }
 
-fn fft2(data: &mut [Complex<f64>], w: usize, h: usize, row: &Arc<dyn Fft<f64>>, col: &Arc<dyn Fft<f64>>) {
+fn fft2(
+    data: &mut [Complex<f64>],
+    w: usize,
+    h: usize,
+    row: &Arc<dyn Fft<f64>>,
+    col: &Arc<dyn Fft<f64>>,
+) {
     for r in data.chunks_mut(w) {
         row.process(r);
     }
@@ -82,16 +91,26 @@ pub fn phase_correlation(reference: &[f64], moving: &[f64], w: usize, h: usize) 
     };
     let prep = |img: &[f64]| {
         let m = img.iter().sum::<f64>() / img.len() as f64;
-        (0..w * h).map(|i| Complex::new((img[i] - m) * window(i % w, i / w), 0.0)).collect::<Vec<_>>()
+        (0..w * h)
+            .map(|i| Complex::new((img[i] - m) * window(i % w, i / w), 0.0))
+            .collect::<Vec<_>>()
     };
     let (mut a, mut b) = (prep(reference), prep(moving));
     fft2(&mut a, w, h, &fr, &fc);
     fft2(&mut b, w, h, &fr, &fc);
-    let mut r: Vec<Complex<f64>> = a.iter().zip(&b).map(|(x, y)| {
-        let c = y * x.conj();
-        let n = c.norm();
-        if n > 0.0 { c / n } else { Complex::new(0.0, 0.0) }
-    }).collect();
+    let mut r: Vec<Complex<f64>> = a
+        .iter()
+        .zip(&b)
+        .map(|(x, y)| {
+            let c = y * x.conj();
+            let n = c.norm();
+            if n > 0.0 {
+                c / n
+            } else {
+                Complex::new(0.0, 0.0)
+            }
+        })
+        .collect();
     fft2(&mut r, w, h, &ir, &ic);
     let (mut best, mut bi) = (f64::MIN, 0);
     for (i, v) in r.iter().enumerate() {
@@ -101,8 +120,16 @@ pub fn phase_correlation(reference: &[f64], moving: &[f64], w: usize, h: usize) 
         }
     }
     let (px, py) = ((bi % w) as f64, (bi / w) as f64);
-    let dx = if px > w as f64 / 2.0 { px - w as f64 } else { px };
-    let dy = if py > h as f64 / 2.0 { py - h as f64 } else { py };
+    let dx = if px > w as f64 / 2.0 {
+        px - w as f64
+    } else {
+        px
+    };
+    let dy = if py > h as f64 / 2.0 {
+        py - h as f64
+    } else {
+        py
+    };
     (dx, dy, best / (w * h) as f64)
 }
 
@@ -116,12 +143,19 @@ struct Ncc<'a> {
 
 impl Ncc<'_> {
     fn score(&self, p: &[f64]) -> f64 {
-        let reg = Registration { dx: p[0], dy: p[1], angle_deg: p[2], score: 0.0 };
+        let reg = Registration {
+            dx: p[0],
+            dy: p[1],
+            angle_deg: p[2],
+            score: 0.0,
+        };
         let (cx, cy) = (self.w as f64 / 2.0, self.h as f64 / 2.0);
         let (mut n, mut sa, mut sb, mut saa, mut sbb, mut sab) = (0.0, 0.0, 0.0, 0.0, 0.0, 0.0);
         for &(x, y) in &self.points {
             let q = reg.apply((x as f64, y as f64), cx, cy);
-            let Some(b) = bilinear(self.moving, self.w, self.h, q.0, q.1) else { continue };
+            let Some(b) = bilinear(self.moving, self.w, self.h, q.0, q.1) else {
+                continue;
+            };
             let a = self.reference[y * self.w + x] as f64;
             n += 1.0;
             sa += a;
@@ -136,7 +170,11 @@ impl Ncc<'_> {
         let cov = sab - sa * sb / n;
         let va = saa - sa * sa / n;
         let vb = sbb - sb * sb / n;
-        if va <= 0.0 || vb <= 0.0 { -1.0 } else { cov / (va * vb).sqrt() }
+        if va <= 0.0 || vb <= 0.0 {
+            -1.0
+        } else {
+            cov / (va * vb).sqrt()
+        }
     }
 }
 
@@ -165,7 +203,9 @@ fn downsample(img: &[f32], w: usize, h: usize, f: usize) -> Vec<f32> {
 /// Separable Gaussian blur (σ in pixels, edges clamped).
 pub fn blur(img: &[f32], w: usize, h: usize, sigma: f64) -> Vec<f32> {
     let r = (3.0 * sigma).ceil() as isize;
-    let k: Vec<f64> = (-r..=r).map(|i| (-(i * i) as f64 / (2.0 * sigma * sigma)).exp()).collect();
+    let k: Vec<f64> = (-r..=r)
+        .map(|i| (-(i * i) as f64 / (2.0 * sigma * sigma)).exp())
+        .collect();
     let ks: f64 = k.iter().sum();
     let pass = |src: &[f32], horizontal: bool| -> Vec<f32> {
         let mut out = vec![0.0f32; w * h];
@@ -193,13 +233,31 @@ pub fn blur(img: &[f32], w: usize, h: usize, sigma: f64) -> Vec<f32> {
 /// Rotations up to `max_angle_deg` are searched. Both images are smoothed
 /// (Gaussian, σ = 1 px) first: with noisy images, bilinear interpolation
 /// would otherwise favour whole-pixel shifts, where it averages no noise away.
-pub fn register(reference: &[f32], moving: &[f32], w: usize, h: usize, max_angle_deg: f64) -> Registration {
-    let (reference, moving) = (&blur(reference, w, h, 1.0)[..], &blur(moving, w, h, 1.0)[..]);
+pub fn register(
+    reference: &[f32],
+    moving: &[f32],
+    w: usize,
+    h: usize,
+    max_angle_deg: f64,
+) -> Registration {
+    let (reference, moving) = (
+        &blur(reference, w, h, 1.0)[..],
+        &blur(moving, w, h, 1.0)[..],
+    );
     // Coarse: phase correlation of the moving image rotated back by each
     // angle. Large images are block-averaged to about 256 px first: the
     // coarse estimate only has to land within the fine search's reach.
     let f = w.max(h).div_ceil(256).max(1);
-    let (rs, ms, ws, hs) = if f > 1 { (downsample(reference, w, h, f), downsample(moving, w, h, f), w / f, h / f) } else { (reference.to_vec(), moving.to_vec(), w, h) };
+    let (rs, ms, ws, hs) = if f > 1 {
+        (
+            downsample(reference, w, h, f),
+            downsample(moving, w, h, f),
+            w / f,
+            h / f,
+        )
+    } else {
+        (reference.to_vec(), moving.to_vec(), w, h)
+    };
     let (cxs, cys) = (ws as f64 / 2.0, hs as f64 / 2.0);
     let refd: Vec<f64> = rs.iter().map(|v| *v as f64).collect();
     let steps = (max_angle_deg / 0.5).ceil() as i32;
@@ -224,26 +282,61 @@ pub fn register(reference: &[f32], moving: &[f32], w: usize, h: usize, max_angle
     let margin = (0.15 * w.min(h) as f64) as usize;
     let inner = ((w - 2 * margin) * (h - 2 * margin)) as f64;
     let stride = ((inner / 65_536.0).sqrt().ceil() as usize).max(1);
-    let grid = |s: usize| -> Vec<(usize, usize)> { (margin..h - margin).step_by(s).flat_map(|y| (margin..w - margin).step_by(s).map(move |x| (x, y))).collect() };
+    let grid = |s: usize| -> Vec<(usize, usize)> {
+        (margin..h - margin)
+            .step_by(s)
+            .flat_map(|y| (margin..w - margin).step_by(s).map(move |x| (x, y)))
+            .collect()
+    };
     let coarse_points = grid(2 * stride);
     let full = grid(stride);
     // The translation found on the un-rotated image is that of the rotated frame.
     let mut best = vec![coarse.0, coarse.1, coarse.2];
     // Two passes: a sparse grid from the coarse estimate, then the finer
     // grid from a small simplex around the first optimum.
-    for (pts, step) in [(coarse_points, (0.7 * f as f64, 0.4)), (full.clone(), (0.1, 0.05))] {
-        let ncc = Ncc { reference, moving, w, h, points: pts };
+    for (pts, step) in [
+        (coarse_points, (0.7 * f as f64, 0.4)),
+        (full.clone(), (0.1, 0.05)),
+    ] {
+        let ncc = Ncc {
+            reference,
+            moving,
+            w,
+            h,
+            points: pts,
+        };
         let s0 = best.clone();
-        let simplex = vec![s0.clone(), vec![s0[0] + step.0, s0[1], s0[2]], vec![s0[0], s0[1] + step.0, s0[2]], vec![s0[0], s0[1], s0[2] + step.1]];
+        let simplex = vec![
+            s0.clone(),
+            vec![s0[0] + step.0, s0[1], s0[2]],
+            vec![s0[0], s0[1] + step.0, s0[2]],
+            vec![s0[0], s0[1], s0[2] + step.1],
+        ];
         if let Some(b) = NelderMead::new(simplex)
             .with_sd_tolerance(1e-10)
             .ok()
-            .and_then(|s| Executor::new(ncc, s).configure(|st| st.max_iters(800)).run().ok())
+            .and_then(|s| {
+                Executor::new(ncc, s)
+                    .configure(|st| st.max_iters(800))
+                    .run()
+                    .ok()
+            })
             .and_then(|r| r.state().get_best_param().cloned())
         {
             best = b;
         }
     }
-    let ncc = Ncc { reference, moving, w, h, points: full };
-    Registration { dx: best[0], dy: best[1], angle_deg: best[2], score: ncc.score(&best) }
+    let ncc = Ncc {
+        reference,
+        moving,
+        w,
+        h,
+        points: full,
+    };
+    Registration {
+        dx: best[0],
+        dy: best[1],
+        angle_deg: best[2],
+        score: ncc.score(&best),
+    }
 }

@@ -19,7 +19,10 @@ impl SampledBand {
     /// 250–1000 nm range of the hemoglobin table. Grid points are whole nm.
     pub fn gaussian(centre_nm: f64, fwhm_nm: f64) -> Self {
         let sigma = fwhm_nm / (2.0 * (2.0 * std::f64::consts::LN_2).sqrt());
-        let (lo, hi) = ((centre_nm - 2.5 * fwhm_nm).floor().max(250.0), (centre_nm + 2.5 * fwhm_nm).ceil().min(1000.0));
+        let (lo, hi) = (
+            (centre_nm - 2.5 * fwhm_nm).floor().max(250.0),
+            (centre_nm + 2.5 * fwhm_nm).ceil().min(1000.0),
+        );
         let n = ((hi - lo) / GRID_NM).floor() as usize;
         let raw: Vec<(f64, f64)> = (0..=n)
             .map(|i| {
@@ -38,7 +41,9 @@ impl SampledBand {
         let raw = (0..=n)
             .map(|i| {
                 let l = lo + i as f64 * GRID_NM;
-                let j = points.partition_point(|p| p.0 <= l).clamp(1, points.len() - 1);
+                let j = points
+                    .partition_point(|p| p.0 <= l)
+                    .clamp(1, points.len() - 1);
                 let (a, b) = (points[j - 1], points[j]);
                 let w = ((l - a.0) / (b.0 - a.0)).clamp(0.0, 1.0);
                 (l, a.1 + w * (b.1 - a.1))
@@ -56,7 +61,13 @@ impl SampledBand {
 
     fn normalised(raw: Vec<(f64, f64)>) -> Self {
         let sum: f64 = raw.iter().map(|p| p.1).sum();
-        SampledBand { samples: raw.into_iter().filter(|p| p.1 > 0.0).map(|(l, w)| (l, w / sum)).collect() }
+        SampledBand {
+            samples: raw
+                .into_iter()
+                .filter(|p| p.1 > 0.0)
+                .map(|(l, w)| (l, w / sum))
+                .collect(),
+        }
     }
 
     /// Response-weighted mean of `f(λ)`.
@@ -93,7 +104,11 @@ mod tests {
         assert!((b.centroid_nm() - 570.0).abs() < 1e-9);
         // Second moment of a Gaussian: sigma² = (FWHM / 2.3548)².
         let var = b.average(|l| (l - 570.0).powi(2));
-        assert!((var.sqrt() - 10.0 / 2.354_820_045).abs() < 0.01, "{}", var.sqrt());
+        assert!(
+            (var.sqrt() - 10.0 / 2.354_820_045).abs() < 0.01,
+            "{}",
+            var.sqrt()
+        );
     }
 
     #[test]

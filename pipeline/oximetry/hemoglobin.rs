@@ -30,7 +30,10 @@ pub fn table() -> &'static [(f64, f64, f64)] {
             .filter(|l| !l.starts_with('#') && !l.starts_with("wavelength"))
             .filter(|l| !l.trim().is_empty())
             .map(|l| {
-                let f: Vec<f64> = l.split('\t').map(|x| x.trim().parse().expect("built-in table is numeric")).collect();
+                let f: Vec<f64> = l
+                    .split('\t')
+                    .map(|x| x.trim().parse().expect("built-in table is numeric"))
+                    .collect();
                 (f[0], f[1], f[2])
             })
             .collect()
@@ -92,6 +95,9 @@ mod tests {
         assert!((o - 0.5 * (20932.8 + 20596.4)).abs() < 1e-9);
         assert!((d - 0.5 * (20862.0 + 21832.8)).abs() < 1e-9);
         assert!(extinction(249.0).is_none() && extinction(1000.5).is_none());
-        assert_eq!(extinction(1000.0).unwrap(), (table().last().unwrap().1, table().last().unwrap().2));
+        assert_eq!(
+            extinction(1000.0).unwrap(),
+            (table().last().unwrap().1, table().last().unwrap().2)
+        );
     }
 }

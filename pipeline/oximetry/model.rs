@@ -25,7 +25,7 @@
 //! double-pass fraction, `F_bs` blood backscatter fraction (a setting).
 
 use super::bands::SampledBand;
-use super::hemoglobin::{extinction, HB_MOLAR_MASS_G_PER_MOL};
+use super::hemoglobin::{HB_MOLAR_MASS_G_PER_MOL, extinction};
 
 /// One band prepared for evaluation: (weight, eps_HbO2, eps_Hb) per grid point.
 #[derive(Debug, Clone)]
@@ -66,7 +66,9 @@ impl VesselModel {
                     .filter_map(|(l, w)| extinction(*l).map(|(o, d)| (w * background(*l), o, d)))
                     .collect();
                 let sum: f64 = raw.iter().map(|r| r.0).sum();
-                PreparedBand { samples: raw.into_iter().map(|(w, o, d)| (w / sum, o, d)).collect() }
+                PreparedBand {
+                    samples: raw.into_iter().map(|(w, o, d)| (w / sum, o, d)).collect(),
+                }
             })
             .collect();
         VesselModel { bands, backscatter }
@@ -78,7 +80,13 @@ impl VesselModel {
 
     /// Band-averaged ⟨t⟩ and ⟨t²⟩ for one band, with their derivatives with
     /// respect to S and hb: `((E1, dE1/dS, dE1/dhb), (E2, dE2/dS, dE2/dhb))`.
-    pub fn path_terms(&self, band: usize, so2: f64, hb_g_per_l: f64, d_um: f64) -> ((f64, f64, f64), (f64, f64, f64)) {
+    pub fn path_terms(
+        &self,
+        band: usize,
+        so2: f64,
+        hb_g_per_l: f64,
+        d_um: f64,
+    ) -> ((f64, f64, f64), (f64, f64, f64)) {
         let c = hb_g_per_l / HB_MOLAR_MASS_G_PER_MOL;
         let d_cm = d_um * 1e-4;
         let ln10 = std::f64::consts::LN_10;
@@ -102,7 +110,14 @@ impl VesselModel {
 
     /// Observed transmission in every band at one position, and when asked
     /// its derivatives `[dS, dhb, dk, dF2]` per band.
-    pub fn transmission(&self, p: &Shared, f2: f64, d_um: f64, out: &mut [f64], mut jac: Option<&mut [[f64; N_DERIV]]>) {
+    pub fn transmission(
+        &self,
+        p: &Shared,
+        f2: f64,
+        d_um: f64,
+        out: &mut [f64],
+        mut jac: Option<&mut [[f64; N_DERIV]]>,
+    ) {
         let fbs = self.backscatter;
         let f1 = 1.0 - fbs - f2;
         let k = p.veil;
@@ -111,7 +126,12 @@ impl VesselModel {
             let t = fbs + f1 * e1 + f2 * e2;
             out[b] = (1.0 - k) * t + k;
             if let Some(j) = jac.as_deref_mut() {
-                j[b] = [(1.0 - k) * (f1 * e1s + f2 * e2s), (1.0 - k) * (f1 * e1h + f2 * e2h), 1.0 - t, (1.0 - k) * (e2 - e1)];
+                j[b] = [
+                    (1.0 - k) * (f1 * e1s + f2 * e2s),
+                    (1.0 - k) * (f1 * e1h + f2 * e2h),
+                    1.0 - t,
+                    (1.0 - k) * (e2 - e1),
+                ];
             }
         }
     }
@@ -123,7 +143,10 @@ mod tests {
     use proptest::prelude::*;
 
     fn model() -> VesselModel {
-        let bands: Vec<SampledBand> = [506.0, 522.0, 548.0, 560.0, 570.0, 586.0, 600.0, 616.0].iter().map(|c| SampledBand::gaussian(*c, 8.0)).collect();
+        let bands: Vec<SampledBand> = [506.0, 522.0, 548.0, 560.0, 570.0, 586.0, 600.0, 616.0]
+            .iter()
+            .map(|c| SampledBand::gaussian(*c, 8.0))
+            .collect();
         VesselModel::new(&bands, |_| 1.0, 0.04)
     }
 
@@ -161,17 +184,57 @@ mod tests {
         let m = model();
         let mut t = vec![0.0; m.n_bands()];
         // No blood in the path: full transmission.
-        m.transmission(&Shared { so2: 0.5, hb_g_per_l: 150.0, veil: 0.0 }, 0.3, 0.0, &mut t, None);
+        m.transmission(
+            &Shared {
+                so2: 0.5,
+                hb_g_per_l: 150.0,
+                veil: 0.0,
+            },
+            0.3,
+            0.0,
+            &mut t,
+            None,
+        );
         assert!(t.iter().all(|v| (v - 1.0).abs() < 1e-12));
         // A complete veil hides the vessel.
-        m.transmission(&Shared { so2: 0.5, hb_g_per_l: 150.0, veil: 1.0 }, 0.3, 150.0, &mut t, None);
+        m.transmission(
+            &Shared {
+                so2: 0.5,
+                hb_g_per_l: 150.0,
+                veil: 1.0,
+            },
+            0.3,
+            150.0,
+            &mut t,
+            None,
+        );
         assert!(t.iter().all(|v| (v - 1.0).abs() < 1e-12));
         // Deoxygenated blood absorbs more than oxygenated blood at 600 nm
         // (Prahl's table: 14 677 vs 3 200 cm⁻¹/M), so venules look darker there.
         let mut ta = vec![0.0; m.n_bands()];
         let mut tv = vec![0.0; m.n_bands()];
-        m.transmission(&Shared { so2: 0.97, hb_g_per_l: 150.0, veil: 0.0 }, 0.3, 120.0, &mut ta, None);
-        m.transmission(&Shared { so2: 0.55, hb_g_per_l: 150.0, veil: 0.0 }, 0.3, 120.0, &mut tv, None);
+        m.transmission(
+            &Shared {
+                so2: 0.97,
+                hb_g_per_l: 150.0,
+                veil: 0.0,
+            },
+            0.3,
+            120.0,
+            &mut ta,
+            None,
+        );
+        m.transmission(
+            &Shared {
+                so2: 0.55,
+                hb_g_per_l: 150.0,
+                veil: 0.0,
+            },
+            0.3,
+            120.0,
+            &mut tv,
+            None,
+        );
         assert!(tv[6] < ta[6]);
     }
 }

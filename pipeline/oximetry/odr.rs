@@ -62,7 +62,10 @@ pub fn two_point(odr_a: f64, spo2_a: f64, odr_v: f64, so2_v: f64) -> Option<Line
         return None;
     }
     let slope = (spo2_a - so2_v) / d;
-    Some(Linear { intercept: spo2_a - slope * odr_a, slope })
+    Some(Linear {
+        intercept: spo2_a - slope * odr_a,
+        slope,
+    })
 }
 
 /// Ordinary least squares of `y` on `x`.
@@ -78,7 +81,10 @@ pub fn ols(x: &[f64], y: &[f64]) -> Option<Linear> {
     }
     let sxy: f64 = x.iter().zip(y).map(|(a, b)| (a - mx) * (b - my)).sum();
     let slope = sxy / sxx;
-    Some(Linear { intercept: my - slope * mx, slope })
+    Some(Linear {
+        intercept: my - slope * mx,
+        slope,
+    })
 }
 
 /// Leave-one-subject-out regression calibration: for each subject, the
@@ -90,7 +96,11 @@ pub fn leave_one_subject_out<'a>(pairs: &[(&'a str, f64, f64)]) -> Vec<(&'a str,
     subjects
         .into_iter()
         .map(|s| {
-            let (x, y): (Vec<f64>, Vec<f64>) = pairs.iter().filter(|p| p.0 != s).map(|p| (p.1, p.2)).unzip();
+            let (x, y): (Vec<f64>, Vec<f64>) = pairs
+                .iter()
+                .filter(|p| p.0 != s)
+                .map(|p| (p.1, p.2))
+                .unzip();
             (s, ols(&x, &y))
         })
         .collect()
@@ -106,7 +116,10 @@ pub fn within_group_slope(groups: &[Vec<(f64, f64)>]) -> Option<f64> {
             continue;
         }
         let n = g.len() as f64;
-        let (mx, my) = (g.iter().map(|p| p.0).sum::<f64>() / n, g.iter().map(|p| p.1).sum::<f64>() / n);
+        let (mx, my) = (
+            g.iter().map(|p| p.0).sum::<f64>() / n,
+            g.iter().map(|p| p.1).sum::<f64>() / n,
+        );
         for (d, o) in g {
             sxx += (d - mx).powi(2);
             sxy += (d - mx) * (o - my);
@@ -142,10 +155,19 @@ mod tests {
     #[test]
     fn leave_one_out_never_uses_the_subject_itself() {
         // Subject C is an outlier; its own calibration must not see it.
-        let pairs = [("A", 0.5, 98.0), ("A", 0.7, 80.0), ("B", 0.55, 93.5), ("B", 0.65, 84.5), ("C", 0.6, 10.0)];
+        let pairs = [
+            ("A", 0.5, 98.0),
+            ("A", 0.7, 80.0),
+            ("B", 0.55, 93.5),
+            ("B", 0.65, 84.5),
+            ("C", 0.6, 10.0),
+        ];
         let cal = leave_one_subject_out(&pairs);
         let c = cal.iter().find(|(s, _)| *s == "C").unwrap().1.unwrap();
-        assert!((c.slope + 90.0).abs() < 1e-9 && (c.intercept - 143.0).abs() < 1e-9, "{c:?}");
+        assert!(
+            (c.slope + 90.0).abs() < 1e-9 && (c.intercept - 143.0).abs() < 1e-9,
+            "{c:?}"
+        );
         let a = cal.iter().find(|(s, _)| *s == "A").unwrap().1.unwrap();
         assert!(a.slope != c.slope);
     }

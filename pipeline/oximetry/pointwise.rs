@@ -6,10 +6,10 @@
 
 use nalgebra::{DMatrix, DVector};
 
-use super::model::{Shared, VesselModel, N_DERIV};
+use super::model::{N_DERIV, Shared, VesselModel};
 use super::segment::{FitSettings, SegmentSpectra};
-use crate::fit::dense::{covariance, DenseProblem};
-use crate::fit::{minimize, Options};
+use crate::fit::dense::{DenseProblem, covariance};
+use crate::fit::{Options, minimize};
 
 #[derive(Debug, Clone, PartialEq, serde::Serialize)]
 pub struct PositionFit {
@@ -35,13 +35,28 @@ pub struct PointwiseFit {
 }
 
 /// Fits one position.
-pub fn fit_position(model: &VesselModel, t: &[f64], d_um: f64, settings: &FitSettings) -> PositionFit {
+pub fn fit_position(
+    model: &VesselModel,
+    t: &[f64],
+    d_um: f64,
+    settings: &FitSettings,
+) -> PositionFit {
     let nb = model.n_bands();
     let f = |x: &[f64], r: &mut DVector<f64>, j: Option<&mut DMatrix<f64>>| {
         let mut tm = vec![0.0; nb];
         let mut jm = vec![[0.0; N_DERIV]; nb];
         let want = j.is_some();
-        model.transmission(&Shared { so2: x[0], hb_g_per_l: x[1], veil: x[2] }, x[3], d_um, &mut tm, want.then_some(&mut jm[..]));
+        model.transmission(
+            &Shared {
+                so2: x[0],
+                hb_g_per_l: x[1],
+                veil: x[2],
+            },
+            x[3],
+            d_um,
+            &mut tm,
+            want.then_some(&mut jm[..]),
+        );
         if tm.iter().zip(t).any(|(a, b)| !(*a > 0.0) || !(*b > 0.0)) {
             return false;
         }
@@ -60,18 +75,37 @@ pub fn fit_position(model: &VesselModel, t: &[f64], d_um: f64, settings: &FitSet
     let s = settings;
     let p = DenseProblem::new(4, nb, &f).with_bounds(
         vec![s.so2_bounds.0, s.hb_bounds.0, 0.0, 0.0],
-        vec![s.so2_bounds.1, s.hb_bounds.1, s.veil_max, 1.0 - model.backscatter],
+        vec![
+            s.so2_bounds.1,
+            s.hb_bounds.1,
+            s.veil_max,
+            1.0 - model.backscatter,
+        ],
     );
-    let opts = Options { max_iterations: 300, ftol: 1e-10, xtol: 1e-10, gtol: 1e-8, tau: 1e-3 };
+    let opts = Options {
+        max_iterations: 300,
+        ftol: 1e-10,
+        xtol: 1e-10,
+        gtol: 1e-8,
+        tau: 1e-3,
+    };
     let mut best = None;
     for s0 in [0.95, 0.6] {
         let rep = minimize(&p, &[s0, 150.0, 0.2, 0.3], &opts);
-        if rep.cost.is_finite() && best.as_ref().is_none_or(|b: &crate::fit::FitReport| rep.cost < b.cost) {
+        if rep.cost.is_finite()
+            && best
+                .as_ref()
+                .is_none_or(|b: &crate::fit::FitReport| rep.cost < b.cost)
+        {
             best = Some(rep);
         }
     }
     let rep = best.expect("at least one start evaluates");
-    let se = p.evaluate(&rep.x).and_then(|(r, j)| covariance(&j, &r)).map(|c| c[(0, 0)].max(0.0).sqrt()).unwrap_or(f64::NAN);
+    let se = p
+        .evaluate(&rep.x)
+        .and_then(|(r, j)| covariance(&j, &r))
+        .map(|c| c[(0, 0)].max(0.0).sqrt())
+        .unwrap_or(f64::NAN);
     PositionFit {
         so2: rep.x[0],
         so2_se: se,
@@ -86,12 +120,38 @@ pub fn fit_position(model: &VesselModel, t: &[f64], d_um: f64, settings: &FitSet
 }
 
 /// Fits every position and summarises along the segment.
-pub fn fit_pointwise(model: &VesselModel, data: &SegmentSpectra, settings: &FitSettings) -> PointwiseFit {
-    let positions: Vec<PositionFit> =
-        data.transmissions.iter().zip(&data.diameters_um).map(|(t, d)| fit_position(model, t, *d, settings)).collect();
-    let ok: Vec<f64> = positions.iter().filter(|p| p.converged).map(|p| p.so2).collect();
+pub fn fit_pointwise(
+    model: &VesselModel,
+    data: &SegmentSpectra,
+    settings: &FitSettings,
+) -> PointwiseFit {
+    let positions: Vec<PositionFit> = data
+        .transmissions
+        .iter()
+        .zip(&data.diameters_um)
+        .map(|(t, d)| fit_position(model, t, *d, settings))
+        .collect();
+    let ok: Vec<f64> = positions
+        .iter()
+        .filter(|p| p.converged)
+        .map(|p| p.so2)
+        .collect();
     let n = ok.len();
-    let mean = if n > 0 { ok.iter().sum::<f64>() / n as f64 } else { f64::NAN };
-    let sd = if n > 1 { (ok.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / (n - 1) as f64).sqrt() } else { f64::NAN };
-    PointwiseFit { so2: mean, so2_sd: sd, so2_se: sd / (n as f64).sqrt(), n_converged: n, positions }
+    let mean = if n > 0 {
+        ok.iter().sum::<f64>() / n as f64
+    } else {
+        f64::NAN
+    };
+    let sd = if n > 1 {
+        (ok.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / (n - 1) as f64).sqrt()
+    } else {
+        f64::NAN
+    };
+    PointwiseFit {
+        so2: mean,
+        so2_sd: sd,
+        so2_se: sd / (n as f64).sqrt(),
+        n_converged: n,
+        positions,
+    }
 }

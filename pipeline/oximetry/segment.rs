@@ -22,8 +22,8 @@
 
 use nalgebra::{Matrix3, Vector3};
 
-use super::model::{Shared, VesselModel, N_DERIV};
-use crate::fit::{minimize, Linearization, Options, Problem, Termination};
+use super::model::{N_DERIV, Shared, VesselModel};
+use crate::fit::{Linearization, Options, Problem, Termination, minimize};
 
 /// Transmissions along one segment in one capture.
 #[derive(Debug, Clone, PartialEq)]
@@ -38,7 +38,9 @@ pub struct SegmentSpectra {
 pub enum RobustLoss {
     Squared,
     /// Residuals beyond `scale` times the robust residual SD are down-weighted.
-    Huber { scale: f64 },
+    Huber {
+        scale: f64,
+    },
 }
 
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -53,7 +55,13 @@ pub struct FitSettings {
 
 impl Default for FitSettings {
     fn default() -> Self {
-        FitSettings { loss: RobustLoss::Huber { scale: 1.5 }, noise: 0.01, so2_bounds: (-0.5, 1.5), hb_bounds: (20.0, 400.0), veil_max: 0.98 }
+        FitSettings {
+            loss: RobustLoss::Huber { scale: 1.5 },
+            noise: 0.01,
+            so2_bounds: (-0.5, 1.5),
+            hb_bounds: (20.0, 400.0),
+            veil_max: 0.98,
+        }
     }
 }
 
@@ -101,11 +109,25 @@ impl<'a> Joint<'a> {
 
     fn block(&self, x: &[f64], p: usize, with_jac: bool) -> Option<Block> {
         let nb = self.model.n_bands();
-        let sh = Shared { so2: x[0], hb_g_per_l: x[1], veil: x[2] };
+        let sh = Shared {
+            so2: x[0],
+            hb_g_per_l: x[1],
+            veil: x[2],
+        };
         let mut t = vec![0.0; nb];
         let mut j = vec![[0.0; N_DERIV]; nb];
-        self.model.transmission(&sh, x[3 + p], self.data.diameters_um[p], &mut t, with_jac.then_some(&mut j[..]));
-        let mut b = Block { r: Vec::with_capacity(nb), jg: Vec::with_capacity(nb), jl: Vec::with_capacity(nb) };
+        self.model.transmission(
+            &sh,
+            x[3 + p],
+            self.data.diameters_um[p],
+            &mut t,
+            with_jac.then_some(&mut j[..]),
+        );
+        let mut b = Block {
+            r: Vec::with_capacity(nb),
+            jg: Vec::with_capacity(nb),
+            jl: Vec::with_capacity(nb),
+        };
         for k in 0..nb {
             let meas = self.data.transmissions[p][k];
             if !(t[k] > 0.0) || !(meas > 0.0) {
@@ -133,7 +155,12 @@ impl<'a> Problem for Joint<'a> {
     fn cost(&self, x: &[f64]) -> Option<f64> {
         let mut c = 0.0;
         for p in 0..self.n_pos() {
-            c += self.block(x, p, false)?.r.iter().map(|v| v * v).sum::<f64>();
+            c += self
+                .block(x, p, false)?
+                .r
+                .iter()
+                .map(|v| v * v)
+                .sum::<f64>();
         }
         Some(0.5 * c)
     }
@@ -141,7 +168,13 @@ impl<'a> Problem for Joint<'a> {
     fn linearize(&self, x: &[f64]) -> JointLin {
         JointLin {
             blocks: (0..self.n_pos())
-                .map(|p| self.block(x, p, true).unwrap_or(Block { r: vec![0.0; 1], jg: vec![[0.0; 3]; 1], jl: vec![0.0; 1] }))
+                .map(|p| {
+                    self.block(x, p, true).unwrap_or(Block {
+                        r: vec![0.0; 1],
+                        jg: vec![[0.0; 3]; 1],
+                        jl: vec![0.0; 1],
+                    })
+                })
                 .collect(),
         }
     }
@@ -156,14 +189,25 @@ impl<'a> Problem for Joint<'a> {
     fn upper(&self) -> Vec<f64> {
         let s = self.settings;
         let mut v = vec![s.so2_bounds.1, s.hb_bounds.1, s.veil_max];
-        v.extend(std::iter::repeat_n(1.0 - self.model.backscatter, self.n_pos()));
+        v.extend(std::iter::repeat_n(
+            1.0 - self.model.backscatter,
+            self.n_pos(),
+        ));
         v
     }
 }
 
 impl JointLin {
     /// Normal-equation blocks: A (3×3), per position b_p (3), c_p, and gradients.
-    fn normal(&self) -> (Matrix3<f64>, Vec<Vector3<f64>>, Vec<f64>, Vector3<f64>, Vec<f64>) {
+    fn normal(
+        &self,
+    ) -> (
+        Matrix3<f64>,
+        Vec<Vector3<f64>>,
+        Vec<f64>,
+        Vector3<f64>,
+        Vec<f64>,
+    ) {
         let mut a = Matrix3::zeros();
         let mut gg = Vector3::zeros();
         let mut bs = Vec::with_capacity(self.blocks.len());
@@ -245,7 +289,10 @@ impl Linearization for JointLin {
         let mut jd2 = 0.0;
         for (p, blk) in self.blocks.iter().enumerate() {
             for k in 0..blk.r.len() {
-                let jd = blk.jg[k][0] * delta[0] + blk.jg[k][1] * delta[1] + blk.jg[k][2] * delta[2] + blk.jl[k] * delta[3 + p];
+                let jd = blk.jg[k][0] * delta[0]
+                    + blk.jg[k][1] * delta[1]
+                    + blk.jg[k][2] * delta[2]
+                    + blk.jl[k] * delta[3 + p];
                 rjd += blk.r[k] * jd;
                 jd2 += jd * jd;
             }
@@ -258,22 +305,51 @@ impl Linearization for JointLin {
 fn huber_weights(res: &[Vec<f64>], scale: f64, floor: f64) -> Vec<Vec<f64>> {
     let mut abs: Vec<f64> = res.iter().flatten().map(|r| r.abs()).collect();
     abs.sort_by(f64::total_cmp);
-    let mad = if abs.is_empty() { 0.0 } else { abs[abs.len() / 2] };
+    let mad = if abs.is_empty() {
+        0.0
+    } else {
+        abs[abs.len() / 2]
+    };
     let sigma = (1.4826 * mad).max(floor);
     let c = scale * sigma;
-    res.iter().map(|row| row.iter().map(|r| if r.abs() <= c { 1.0 } else { c / r.abs() }).collect()).collect()
+    res.iter()
+        .map(|row| {
+            row.iter()
+                .map(|r| if r.abs() <= c { 1.0 } else { c / r.abs() })
+                .collect()
+        })
+        .collect()
 }
 
 /// Fits one segment. Needs at least as many bands as 3 shared unknowns
 /// spread over the positions plus one per position (in practice ≥ 4 bands).
-pub fn fit_segment(model: &VesselModel, data: &SegmentSpectra, settings: &FitSettings) -> Option<SegmentFit> {
+pub fn fit_segment(
+    model: &VesselModel,
+    data: &SegmentSpectra,
+    settings: &FitSettings,
+) -> Option<SegmentFit> {
     let np = data.diameters_um.len();
     let nb = model.n_bands();
-    if np == 0 || nb < 2 || data.transmissions.len() != np || data.transmissions.iter().any(|t| t.len() != nb) {
+    if np == 0
+        || nb < 2
+        || data.transmissions.len() != np
+        || data.transmissions.iter().any(|t| t.len() != nb)
+    {
         return None;
     }
-    let opts = Options { max_iterations: 300, ftol: 1e-10, xtol: 1e-10, gtol: 1e-8, tau: 1e-3 };
-    let mut prob = Joint { model, data, sqrt_w: vec![vec![1.0; nb]; np], settings };
+    let opts = Options {
+        max_iterations: 300,
+        ftol: 1e-10,
+        xtol: 1e-10,
+        gtol: 1e-8,
+        tau: 1e-3,
+    };
+    let mut prob = Joint {
+        model,
+        data,
+        sqrt_w: vec![vec![1.0; nb]; np],
+        settings,
+    };
     // Start from the best of a coarse grid over SO2 (cheap cost
     // evaluations), so that arteriolar and venular segments alike begin on
     // the right side of the valley.
@@ -295,11 +371,31 @@ pub fn fit_segment(model: &VesselModel, data: &SegmentSpectra, settings: &FitSet
     let (mut iterations, mut evaluations) = (rep.iterations, rep.evaluations);
     if let RobustLoss::Huber { scale } = settings.loss {
         for _ in 0..10 {
-            let unweighted = Joint { model, data, sqrt_w: vec![vec![1.0; nb]; np], settings };
-            let res: Vec<Vec<f64>> = (0..np).map(|p| unweighted.block(&rep.x, p, false).map(|b| b.r).unwrap_or_else(|| vec![0.0; nb])).collect();
+            let unweighted = Joint {
+                model,
+                data,
+                sqrt_w: vec![vec![1.0; nb]; np],
+                settings,
+            };
+            let res: Vec<Vec<f64>> = (0..np)
+                .map(|p| {
+                    unweighted
+                        .block(&rep.x, p, false)
+                        .map(|b| b.r)
+                        .unwrap_or_else(|| vec![0.0; nb])
+                })
+                .collect();
             let w = huber_weights(&res, scale, settings.noise * 0.1);
-            let sw: Vec<Vec<f64>> = w.iter().map(|r| r.iter().map(|v| v.sqrt()).collect()).collect();
-            let change = sw.iter().flatten().zip(prob.sqrt_w.iter().flatten()).map(|(a, b)| (a - b).abs()).fold(0.0, f64::max);
+            let sw: Vec<Vec<f64>> = w
+                .iter()
+                .map(|r| r.iter().map(|v| v.sqrt()).collect())
+                .collect();
+            let change = sw
+                .iter()
+                .flatten()
+                .zip(prob.sqrt_w.iter().flatten())
+                .map(|(a, b)| (a - b).abs())
+                .fold(0.0, f64::max);
             prob.sqrt_w = sw;
             if change < 1e-4 {
                 break;
@@ -312,7 +408,10 @@ pub fn fit_segment(model: &VesselModel, data: &SegmentSpectra, settings: &FitSet
             evaluations += rep.evaluations;
             // Stop once the shared estimates no longer move (1e-6 in S and k,
             // 1e-6 relative in hb: far below any standard error).
-            if (rep.x[0] - before[0]).abs() < 1e-6 && (rep.x[1] - before[1]).abs() < 1e-6 * before[1].abs() && (rep.x[2] - before[2]).abs() < 1e-6 {
+            if (rep.x[0] - before[0]).abs() < 1e-6
+                && (rep.x[1] - before[1]).abs() < 1e-6 * before[1].abs()
+                && (rep.x[2] - before[2]).abs() < 1e-6
+            {
                 break;
             }
         }
@@ -324,7 +423,11 @@ pub fn fit_segment(model: &VesselModel, data: &SegmentSpectra, settings: &FitSet
     let s2 = if dof > 0.0 { ssr / dof } else { f64::NAN };
     let cov = lin.schur().try_inverse().map(|c| c * s2);
     let se = |i: usize| cov.map(|c| c[(i, i)].max(0.0).sqrt()).unwrap_or(f64::NAN);
-    let downweighted = prob.sqrt_w.iter().filter(|row| row.iter().any(|w| w * w < 0.5)).count();
+    let downweighted = prob
+        .sqrt_w
+        .iter()
+        .filter(|row| row.iter().any(|w| w * w < 0.5))
+        .count();
     let termination: Termination = rep.termination;
     Some(SegmentFit {
         so2: rep.x[0],
@@ -334,7 +437,11 @@ pub fn fit_segment(model: &VesselModel, data: &SegmentSpectra, settings: &FitSet
         veil: rep.x[2],
         veil_se: se(2),
         double_pass: rep.x[3..].to_vec(),
-        reduced_chi2: if dof > 0.0 { ssr / dof / (settings.noise * settings.noise) } else { f64::NAN },
+        reduced_chi2: if dof > 0.0 {
+            ssr / dof / (settings.noise * settings.noise)
+        } else {
+            f64::NAN
+        },
         iterations,
         evaluations,
         termination: termination.as_str(),

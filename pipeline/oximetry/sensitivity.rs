@@ -32,7 +32,7 @@
 
 use nalgebra::DMatrix;
 
-use super::model::{Shared, VesselModel, N_DERIV};
+use super::model::{N_DERIV, Shared, VesselModel};
 
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct OperatingPoint {
@@ -44,7 +44,12 @@ pub struct OperatingPoint {
 
 impl Default for OperatingPoint {
     fn default() -> Self {
-        OperatingPoint { so2: 0.95, diameter_um: 120.0, hb_g_per_l: 150.0, double_pass: 0.3 }
+        OperatingPoint {
+            so2: 0.95,
+            diameter_um: 120.0,
+            hb_g_per_l: 150.0,
+            double_pass: 0.3,
+        }
     }
 }
 
@@ -95,11 +100,28 @@ impl Weights {
 /// SO2 error (in points, %) per band for a relative transmission error
 /// `eps` in that band alone, and for independent errors in all bands.
 /// `None` when the bands do not separate the unknowns.
-pub fn so2_errors(model: &VesselModel, op: &OperatingPoint, veil: f64, eps: f64, unknowns: Unknowns, weights: Weights) -> Option<(Vec<f64>, f64)> {
+pub fn so2_errors(
+    model: &VesselModel,
+    op: &OperatingPoint,
+    veil: f64,
+    eps: f64,
+    unknowns: Unknowns,
+    weights: Weights,
+) -> Option<(Vec<f64>, f64)> {
     let nb = model.n_bands();
     let at = |k: f64, jac: Option<&mut [[f64; N_DERIV]]>| {
         let mut t = vec![0.0; nb];
-        model.transmission(&Shared { so2: op.so2, hb_g_per_l: op.hb_g_per_l, veil: k }, op.double_pass, op.diameter_um, &mut t, jac);
+        model.transmission(
+            &Shared {
+                so2: op.so2,
+                hb_g_per_l: op.hb_g_per_l,
+                veil: k,
+            },
+            op.double_pass,
+            op.diameter_um,
+            &mut t,
+            jac,
+        );
         t
     };
     let mut j = vec![[0.0; N_DERIV]; nb];
@@ -111,7 +133,9 @@ pub fn so2_errors(model: &VesselModel, op: &OperatingPoint, veil: f64, eps: f64,
     let cols = unknowns.columns();
     let jm = DMatrix::from_fn(nb, cols.len(), |b, c| v[b] * j[b][cols[c]]);
     let g = (jm.transpose() * &jm).try_inverse()? * jm.transpose();
-    let shift: Vec<f64> = (0..nb).map(|b| 100.0 * g[(0, b)] * v[b] * eps * t_obs[b]).collect();
+    let shift: Vec<f64> = (0..nb)
+        .map(|b| 100.0 * g[(0, b)] * v[b] * eps * t_obs[b])
+        .collect();
     let all = shift.iter().map(|s| s * s).sum::<f64>().sqrt();
     Some((shift.iter().map(|s| s.abs()).collect(), all))
 }

@@ -35,13 +35,19 @@ pub fn altitude_for_pressure_m(p_mmhg: f64) -> f64 {
 }
 
 /// Alveolar PO2 in mmHg.
-pub fn alveolar_po2_mmhg(fio2: f64, pb_mmhg: f64, paco2_mmhg: f64, respiratory_quotient: f64) -> f64 {
+pub fn alveolar_po2_mmhg(
+    fio2: f64,
+    pb_mmhg: f64,
+    paco2_mmhg: f64,
+    respiratory_quotient: f64,
+) -> f64 {
     fio2 * (pb_mmhg - WATER_VAPOUR_MMHG) - paco2_mmhg / respiratory_quotient
 }
 
 /// Sea-level O2 fraction with the same inspired PO2 as air at `h_m`.
 pub fn equivalent_o2_fraction(h_m: f64) -> f64 {
-    AIR_O2_FRACTION * (pressure_at_altitude_mmhg(h_m) - WATER_VAPOUR_MMHG) / (SEA_LEVEL_MMHG - WATER_VAPOUR_MMHG)
+    AIR_O2_FRACTION * (pressure_at_altitude_mmhg(h_m) - WATER_VAPOUR_MMHG)
+        / (SEA_LEVEL_MMHG - WATER_VAPOUR_MMHG)
 }
 
 /// Altitude at which air gives the inspired PO2 of `fio2` at sea level;
@@ -69,7 +75,11 @@ mod tests {
     // text): FiO2 0.21, PB 760 mmHg, PaCO2 40 mmHg, R 0.8 → 99.73 mmHg.
     #[test]
     fn alveolar_gas_equation_worked_example() {
-        assert_abs_diff_eq!(alveolar_po2_mmhg(0.21, 760.0, 40.0, 0.8), 99.73, epsilon = 0.005);
+        assert_abs_diff_eq!(
+            alveolar_po2_mmhg(0.21, 760.0, 40.0, 0.8),
+            99.73,
+            epsilon = 0.005
+        );
     }
 
     // Severinghaus (1979) curve: S(40) ≈ 0.749, S(100) ≈ 0.977, P50 ≈ 26.9 mmHg
@@ -82,7 +92,11 @@ mod tests {
         let (mut lo, mut hi) = (10.0, 50.0);
         for _ in 0..60 {
             let mid = 0.5 * (lo + hi);
-            if severinghaus_saturation(mid) < 0.5 { lo = mid } else { hi = mid }
+            if severinghaus_saturation(mid) < 0.5 {
+                lo = mid
+            } else {
+                hi = mid
+            }
         }
         assert_abs_diff_eq!(lo, 26.9, epsilon = 0.06);
     }
@@ -92,7 +106,11 @@ mod tests {
     fn iso_2533_at_3000_m() {
         assert_abs_diff_eq!(pressure_at_altitude_mmhg(3000.0), 525.9, epsilon = 0.1);
         assert_abs_diff_eq!(pressure_at_altitude_mmhg(0.0), 760.0, epsilon = 0.01);
-        assert_abs_diff_eq!(altitude_for_pressure_m(pressure_at_altitude_mmhg(2500.0)), 2500.0, epsilon = 1e-6);
+        assert_abs_diff_eq!(
+            altitude_for_pressure_m(pressure_at_altitude_mmhg(2500.0)),
+            2500.0,
+            epsilon = 1e-6
+        );
     }
 
     #[test]

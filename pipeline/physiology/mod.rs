@@ -6,6 +6,7 @@
 pub mod gas;
 
 pub use gas::{
-    alveolar_po2_mmhg, altitude_for_pressure_m, equivalent_altitude_m, equivalent_o2_fraction, pressure_at_altitude_mmhg,
-    severinghaus_saturation, AIR_O2_FRACTION, MMHG_PER_PA, SEA_LEVEL_MMHG, WATER_VAPOUR_MMHG,
+    AIR_O2_FRACTION, MMHG_PER_PA, SEA_LEVEL_MMHG, WATER_VAPOUR_MMHG, altitude_for_pressure_m,
+    alveolar_po2_mmhg, equivalent_altitude_m, equivalent_o2_fraction, pressure_at_altitude_mmhg,
+    severinghaus_saturation,
 };

@@ -10,9 +10,9 @@ use crate::config::study::{Instrument, MethodKind, Study};
 use crate::oximetry::bands::SampledBand;
 use crate::oximetry::odr::segment_odr;
 use crate::oximetry::pointwise::fit_position;
-use crate::oximetry::sensitivity::{so2_errors, OperatingPoint, Unknowns, Weights};
+use crate::oximetry::sensitivity::{OperatingPoint, Unknowns, Weights, so2_errors};
 use crate::run::epochs::EpochTables;
-use crate::run::fits::{multiband_model, FitRow};
+use crate::run::fits::{FitRow, multiband_model};
 use crate::run::statistics::Statistics;
 use crate::run::transmissions::PositionRow;
 use crate::timeline::reference::read_log;
@@ -107,17 +107,36 @@ pub fn primary_method(study: &Study) -> String {
     study
         .methods
         .iter()
-        .find(|m| matches!(m.kind, MethodKind::Multiband { pointwise: false, .. }))
+        .find(|m| {
+            matches!(
+                m.kind,
+                MethodKind::Multiband {
+                    pointwise: false,
+                    ..
+                }
+            )
+        })
         .or(study.methods.first())
         .map(|m| m.label.clone())
         .unwrap_or_default()
 }
 
-pub fn prepare(study: &Study, epochs: &EpochTables, positions: &dyn Fn(usize) -> Vec<PositionRow>, fits: &[FitRow], stats: &Statistics) -> ReportData {
+pub fn prepare(
+    study: &Study,
+    epochs: &EpochTables,
+    positions: &dyn Fn(usize) -> Vec<PositionRow>,
+    fits: &[FitRow],
+    stats: &Statistics,
+) -> ReportData {
     let primary = primary_method(study);
     let p = &study.protocol;
     let baseline = p.epochs[p.baseline].name.clone();
-    let epochs_after: Vec<String> = p.epochs.iter().map(|e| e.name.clone()).filter(|e| *e != baseline).collect();
+    let epochs_after: Vec<String> = p
+        .epochs
+        .iter()
+        .map(|e| e.name.clone())
+        .filter(|e| *e != baseline)
+        .collect();
     ReportData {
         courses: courses(study, epochs, fits, &primary),
         changes: changes(stats, &primary, &baseline, &epochs_after),
@@ -128,8 +147,17 @@ pub fn prepare(study: &Study, epochs: &EpochTables, positions: &dyn Fn(usize) ->
             .filter_map(|c| {
                 let t = &c.result.test;
                 let (a, b) = t.label.split_once(" - ")?;
-                let epoch = epochs_after.iter().position(|e| e == a.trim()).filter(|_| b.trim() == baseline)?;
-                Some(Estimate { kind: c.kind.clone(), epoch, estimate: t.estimate, lower: t.lower, upper: t.upper })
+                let epoch = epochs_after
+                    .iter()
+                    .position(|e| e == a.trim())
+                    .filter(|_| b.trim() == baseline)?;
+                Some(Estimate {
+                    kind: c.kind.clone(),
+                    epoch,
+                    estimate: t.estimate,
+                    lower: t.lower,
+                    upper: t.upper,
+                })
             })
             .collect(),
         agreement: stats
@@ -137,7 +165,12 @@ pub fn prepare(study: &Study, epochs: &EpochTables, positions: &dyn Fn(usize) ->
             .iter()
             .map(|r| AgreementSeries {
                 method: r.method.clone(),
-                pairs: stats.agreement_pairs.iter().filter(|q| q.method == r.method).map(|q| (q.spo2, q.so2)).collect(),
+                pairs: stats
+                    .agreement_pairs
+                    .iter()
+                    .filter(|q| q.method == r.method)
+                    .map(|q| (q.spo2, q.so2))
+                    .collect(),
                 line: r.slope.as_ref().map(|s| (s.intercept, s.test.estimate)),
                 bias: r.agreement.bias,
                 lower: r.agreement.lower,
@@ -158,30 +191,67 @@ fn courses(study: &Study, epochs: &EpochTables, fits: &[FitRow], method: &str) -
     let mut per: BTreeMap<(usize, &str), Vec<f64>> = BTreeMap::new();
     for r in fits.iter().filter(|r| r.method == method) {
         if let Some(v) = r.so2.filter(|v| v.is_finite()) {
-            per.entry((r.capture_index, if r.kind == "arteriole" { "a" } else { "v" })).or_default().push(v);
+            per.entry((
+                r.capture_index,
+                if r.kind == "arteriole" { "a" } else { "v" },
+            ))
+            .or_default()
+            .push(v);
         }
     }
     let mut out = Vec::new();
     for subj in &study.subjects {
         for sess in &subj.sessions {
-            let name = if subj.sessions.len() > 1 { format!("{} {}", subj.id, sess.id) } else { subj.id.clone() };
+            let name = if subj.sessions.len() > 1 {
+                format!("{} {}", subj.id, sess.id)
+            } else {
+                subj.id.clone()
+            };
             let spans = epochs
                 .spans
                 .iter()
                 .filter(|s| s.subject == subj.id && s.session == sess.id)
-                .map(|s| SpanShade { start_min: s.start_s / 60.0, settle_min: s.settle_end_s / 60.0, end_min: s.end_s / 60.0, o2_fraction: s.o2_fraction })
+                .map(|s| SpanShade {
+                    start_min: s.start_s / 60.0,
+                    settle_min: s.settle_end_s / 60.0,
+                    end_min: s.end_s / 60.0,
+                    o2_fraction: s.o2_fraction,
+                })
                 .collect();
-            let mut course = Course { subject: name, spans, arterioles: vec![], venules: vec![], spo2: vec![] };
-            for (i, row) in c.iter().enumerate().filter(|(_, r)| r.subject == subj.id && r.session == sess.id) {
+            let mut course = Course {
+                subject: name,
+                spans,
+                arterioles: vec![],
+                venules: vec![],
+                spo2: vec![],
+            };
+            for (i, row) in c
+                .iter()
+                .enumerate()
+                .filter(|(_, r)| r.subject == subj.id && r.session == sess.id)
+            {
                 for (k, dst) in [("a", &mut course.arterioles), ("v", &mut course.venules)] {
                     if let Some(v) = per.get(&(i, k)) {
-                        dst.push((row.t_s / 60.0, v.iter().sum::<f64>() / v.len() as f64, row.status == "steady"));
+                        dst.push((
+                            row.t_s / 60.0,
+                            v.iter().sum::<f64>() / v.len() as f64,
+                            row.status == "steady",
+                        ));
                     }
                 }
             }
-            if let Some(log) = sess.reference.as_ref().and_then(|r| read_log(r, &sess.start, &mut Findings::new())) {
+            if let Some(log) = sess
+                .reference
+                .as_ref()
+                .and_then(|r| read_log(r, &sess.start, &mut Findings::new()))
+            {
                 // Every 5th sample of a 1 Hz log is plenty at figure scale.
-                course.spo2 = log.samples.iter().step_by(5).map(|(t, v)| (t / 60.0, *v)).collect();
+                course.spo2 = log
+                    .samples
+                    .iter()
+                    .step_by(5)
+                    .map(|(t, v)| (t / 60.0, *v))
+                    .collect();
             }
             out.push(course);
         }
@@ -192,15 +262,34 @@ fn courses(study: &Study, epochs: &EpochTables, fits: &[FitRow], method: &str) -
 fn changes(stats: &Statistics, method: &str, baseline: &str, after: &[String]) -> Vec<ChangePoint> {
     let mut out = Vec::new();
     for kind in ["arteriole", "venule"] {
-        let rows: Vec<_> = stats.summaries.iter().filter(|s| s.method == method && s.kind == kind && s.mean.is_finite()).collect();
+        let rows: Vec<_> = stats
+            .summaries
+            .iter()
+            .filter(|s| s.method == method && s.kind == kind && s.mean.is_finite())
+            .collect();
         let mut subjects: Vec<&String> = rows.iter().map(|s| &s.subject).collect();
         subjects.sort();
         subjects.dedup();
         for (si, s) in subjects.iter().enumerate() {
-            let Some(base) = rows.iter().find(|r| &r.subject == *s && r.epoch == baseline).map(|r| r.mean) else { continue };
+            let Some(base) = rows
+                .iter()
+                .find(|r| &r.subject == *s && r.epoch == baseline)
+                .map(|r| r.mean)
+            else {
+                continue;
+            };
             for (ei, e) in after.iter().enumerate() {
-                if let Some(v) = rows.iter().find(|r| &r.subject == *s && r.epoch == *e).map(|r| r.mean) {
-                    out.push(ChangePoint { kind, epoch: ei, value: v - base, jitter: 0.16 * (si as f64 / subjects.len().max(1) as f64 - 0.5) });
+                if let Some(v) = rows
+                    .iter()
+                    .find(|r| &r.subject == *s && r.epoch == *e)
+                    .map(|r| r.mean)
+                {
+                    out.push(ChangePoint {
+                        kind,
+                        epoch: ei,
+                        value: v - base,
+                        jitter: 0.16 * (si as f64 / subjects.len().max(1) as f64 - 0.5),
+                    });
                 }
             }
         }
@@ -210,30 +299,85 @@ fn changes(stats: &Statistics, method: &str, baseline: &str, after: &[String]) -
 
 /// One arteriole of the first steady baseline capture, profiled by every
 /// two-band and multiband method, position by position.
-fn along_segment(study: &Study, epochs: &EpochTables, positions: &dyn Fn(usize) -> Vec<PositionRow>, fits: &[FitRow], primary: &str, baseline: &str) -> Option<AlongSegment> {
+fn along_segment(
+    study: &Study,
+    epochs: &EpochTables,
+    positions: &dyn Fn(usize) -> Vec<PositionRow>,
+    fits: &[FitRow],
+    primary: &str,
+    baseline: &str,
+) -> Option<AlongSegment> {
     let c = &epochs.captures;
     let joint = fits
         .iter()
-        .filter(|r| r.method == primary && r.kind == "arteriole" && r.so2.is_some() && c[r.capture_index].status == "steady" && c[r.capture_index].epoch.as_deref() == Some(baseline))
+        .filter(|r| {
+            r.method == primary
+                && r.kind == "arteriole"
+                && r.so2.is_some()
+                && c[r.capture_index].status == "steady"
+                && c[r.capture_index].epoch.as_deref() == Some(baseline)
+        })
         .min_by_key(|r| (r.capture_index, -r.positions))?;
     let ci = joint.capture_index;
     let all = positions(ci);
-    let pos: Vec<_> = all.iter().filter(|p| p.capture_index == ci && p.segment == joint.segment && p.flags.is_empty() && p.transmission.iter().all(|t| *t > 0.0 && t.is_finite())).collect();
-    let bands: Vec<SampledBand> = study.instrument.bands.iter().map(|b| SampledBand::from_response(&b.response)).collect();
+    let pos: Vec<_> = all
+        .iter()
+        .filter(|p| {
+            p.capture_index == ci
+                && p.segment == joint.segment
+                && p.flags.is_empty()
+                && p.transmission.iter().all(|t| *t > 0.0 && t.is_finite())
+        })
+        .collect();
+    let bands: Vec<SampledBand> = study
+        .instrument
+        .bands
+        .iter()
+        .map(|b| SampledBand::from_response(&b.response))
+        .collect();
     let um = study.instrument.pixel_size_um;
     let mut series = Vec::new();
     for m in &study.methods {
         match &m.kind {
-            MethodKind::TwoBand { sensitive, isosbestic, .. } => {
+            MethodKind::TwoBand {
+                sensitive,
+                isosbestic,
+                ..
+            } => {
                 // The method's calibration line for this subject, from its own segment rows.
                 let subject = &c[ci].subject;
-                let (x, y): (Vec<f64>, Vec<f64>) = fits.iter().filter(|r| r.method == m.label && &c[r.capture_index].subject == subject).filter_map(|r| Some((r.odr?, r.so2?))).unzip();
-                let Some(line) = crate::oximetry::odr::ols(&x, &y) else { continue };
-                let points = pos.iter().filter_map(|p| Some((p.along_px * um, line.apply(segment_odr(&[p.transmission[*sensitive]], &[p.transmission[*isosbestic]])?)))).collect();
-                series.push(Series { label: format!("{} (per position)", m.label), points });
+                let (x, y): (Vec<f64>, Vec<f64>) = fits
+                    .iter()
+                    .filter(|r| r.method == m.label && &c[r.capture_index].subject == subject)
+                    .filter_map(|r| Some((r.odr?, r.so2?)))
+                    .unzip();
+                let Some(line) = crate::oximetry::odr::ols(&x, &y) else {
+                    continue;
+                };
+                let points = pos
+                    .iter()
+                    .filter_map(|p| {
+                        Some((
+                            p.along_px * um,
+                            line.apply(segment_odr(
+                                &[p.transmission[*sensitive]],
+                                &[p.transmission[*isosbestic]],
+                            )?),
+                        ))
+                    })
+                    .collect();
+                series.push(Series {
+                    label: format!("{} (per position)", m.label),
+                    points,
+                });
             }
-            MethodKind::Multiband { bands: sel, loss, .. } => {
-                if series.iter().any(|s: &Series| s.label.starts_with("multiband model")) {
+            MethodKind::Multiband {
+                bands: sel, loss, ..
+            } => {
+                if series
+                    .iter()
+                    .any(|s: &Series| s.label.starts_with("multiband model"))
+                {
                     continue;
                 }
                 let (model, settings) = multiband_model(&bands, sel, *loss);
@@ -245,7 +389,10 @@ fn along_segment(study: &Study, epochs: &EpochTables, positions: &dyn Fn(usize) 
                         f.converged.then_some((p.along_px * um, f.so2 * 100.0))
                     })
                     .collect();
-                series.push(Series { label: "multiband model (per position)".into(), points });
+                series.push(Series {
+                    label: "multiband model (per position)".into(),
+                    points,
+                });
             }
         }
     }
@@ -255,18 +402,40 @@ fn along_segment(study: &Study, epochs: &EpochTables, positions: &dyn Fn(usize) 
         segment: joint.segment.clone(),
         kind: joint.kind.clone(),
         series,
-        joint: joint.so2.map(|v| (format!("{} (joint fit)", primary), v, joint.so2_se.unwrap_or(0.0))),
+        joint: joint.so2.map(|v| {
+            (
+                format!("{} (joint fit)", primary),
+                v,
+                joint.so2_se.unwrap_or(0.0),
+            )
+        }),
     })
 }
 
 /// The default operating point of `satstep sensitivity`.
-pub const OPERATING_POINT: OperatingPoint = OperatingPoint { so2: 0.95, diameter_um: 120.0, hb_g_per_l: 150.0, double_pass: 0.3 };
+pub const OPERATING_POINT: OperatingPoint = OperatingPoint {
+    so2: 0.95,
+    diameter_um: 120.0,
+    hb_g_per_l: 150.0,
+    double_pass: 0.3,
+};
 
 /// Sensitivity curves for the instrument's bands `selected` (indices in
 /// the instrument's order).
-pub fn sensitivity_curves(instrument: &Instrument, selected: &[usize], op: &OperatingPoint, unknowns: Unknowns) -> Option<SensitivityCurves> {
-    let bands: Vec<SampledBand> = selected.iter().map(|b| SampledBand::from_response(&instrument.bands[*b].response)).collect();
-    let names = selected.iter().map(|b| instrument.bands[*b].name.clone()).collect();
+pub fn sensitivity_curves(
+    instrument: &Instrument,
+    selected: &[usize],
+    op: &OperatingPoint,
+    unknowns: Unknowns,
+) -> Option<SensitivityCurves> {
+    let bands: Vec<SampledBand> = selected
+        .iter()
+        .map(|b| SampledBand::from_response(&instrument.bands[*b].response))
+        .collect();
+    let names = selected
+        .iter()
+        .map(|b| instrument.bands[*b].name.clone())
+        .collect();
     let centres_nm = bands.iter().map(SampledBand::centroid_nm).collect();
     let model = crate::oximetry::model::VesselModel::new(&bands, |_| 1.0, 0.04);
     let rows = Weights::ALL
@@ -281,16 +450,40 @@ pub fn sensitivity_curves(instrument: &Instrument, selected: &[usize], op: &Oper
                 .map(|r| (*w, r))
         })
         .collect::<Option<Vec<_>>>()?;
-    Some(SensitivityCurves { names, centres_nm, method: unknowns.method(), rows, so2: op.so2, diameter_um: op.diameter_um })
+    Some(SensitivityCurves {
+        names,
+        centres_nm,
+        method: unknowns.method(),
+        rows,
+        so2: op.so2,
+        diameter_um: op.diameter_um,
+    })
 }
 
 /// The instrument's sensitivity for the bands and unknowns of the report's
 /// primary multiband method (all bands, segment-shared veil, without one).
 fn sensitivity(study: &Study) -> Option<SensitivityCurves> {
     let primary = primary_method(study);
-    let (selected, unknowns) = match study.methods.iter().find(|m| m.label == primary).map(|m| &m.kind) {
-        Some(MethodKind::Multiband { bands, pointwise, .. }) => (bands.clone(), if *pointwise { Unknowns::VeilPerPosition } else { Unknowns::VeilShared }),
-        _ => ((0..study.instrument.bands.len()).collect(), Unknowns::VeilShared),
+    let (selected, unknowns) = match study
+        .methods
+        .iter()
+        .find(|m| m.label == primary)
+        .map(|m| &m.kind)
+    {
+        Some(MethodKind::Multiband {
+            bands, pointwise, ..
+        }) => (
+            bands.clone(),
+            if *pointwise {
+                Unknowns::VeilPerPosition
+            } else {
+                Unknowns::VeilShared
+            },
+        ),
+        _ => (
+            (0..study.instrument.bands.len()).collect(),
+            Unknowns::VeilShared,
+        ),
     };
     if selected.len() < 4 {
         return None;

@@ -4,7 +4,7 @@
 
 use std::path::{Path, PathBuf};
 
-use anyhow::{anyhow, Result};
+use anyhow::{Result, anyhow};
 use plotters::coord::Shift;
 use plotters::prelude::*;
 
@@ -70,7 +70,14 @@ pub fn all(dir: &Path, d: &ReportData) -> Result<Vec<Figure>> {
 /// The sensitivity figure alone, for `satstep sensitivity`.
 pub fn sensitivity(dir: &Path, s: &SensitivityCurves) -> Result<Figure> {
     std::fs::create_dir_all(dir)?;
-    Ok(render!(dir, "sensitivity", String::new(), (1200, 540), draw_sensitivity, s))
+    Ok(render!(
+        dir,
+        "sensitivity",
+        String::new(),
+        (1200, 540),
+        draw_sensitivity,
+        s
+    ))
 }
 
 fn range(values: impl Iterator<Item = f64>, pad: f64) -> (f64, f64) {
@@ -91,12 +98,33 @@ where
     DB::ErrorType: 'static,
 {
     let (top, body) = root.split_vertically(40);
-    top.draw_text(&format!("SO2 over the session ({})", d.primary), &title(18), (12, 10))?;
-    legend_row(&top, &[("arterioles", ARTERIOLE, false), ("venules", VENULE, false), ("reference SpO2", REFERENCE, true)], 420)?;
+    top.draw_text(
+        &format!("SO2 over the session ({})", d.primary),
+        &title(18),
+        (12, 10),
+    )?;
+    legend_row(
+        &top,
+        &[
+            ("arterioles", ARTERIOLE, false),
+            ("venules", VENULE, false),
+            ("reference SpO2", REFERENCE, true),
+        ],
+        420,
+    )?;
     let cols = d.courses.len().clamp(1, 4);
     let rows = d.courses.len().div_ceil(cols).max(1);
     let panels = body.split_evenly((rows, cols));
-    let (ylo, yhi) = range(d.courses.iter().flat_map(|c| c.arterioles.iter().chain(&c.venules).map(|p| p.1).chain(c.spo2.iter().map(|p| p.1))), 0.05);
+    let (ylo, yhi) = range(
+        d.courses.iter().flat_map(|c| {
+            c.arterioles
+                .iter()
+                .chain(&c.venules)
+                .map(|p| p.1)
+                .chain(c.spo2.iter().map(|p| p.1))
+        }),
+        0.05,
+    );
     for (c, area) in d.courses.iter().zip(panels) {
         let xmax = c.spans.iter().map(|s| s.end_min).fold(1.0, f64::max);
         let mut ch = ChartBuilder::on(&area)
@@ -105,30 +133,69 @@ where
             .x_label_area_size(30)
             .y_label_area_size(40)
             .build_cartesian_2d(0.0..xmax, ylo..yhi.min(105.0))?;
-        ch.configure_mesh().light_line_style(TRANSPARENT).bold_line_style(GRID).x_label_formatter(&|v| format!("{v:.0}")).y_label_formatter(&|v| format!("{v:.0}")).x_desc("time (min)").y_desc("SO2 (%)").label_style(label(11)).axis_desc_style(label(12)).draw()?;
+        ch.configure_mesh()
+            .light_line_style(TRANSPARENT)
+            .bold_line_style(GRID)
+            .x_label_formatter(&|v| format!("{v:.0}"))
+            .y_label_formatter(&|v| format!("{v:.0}"))
+            .x_desc("time (min)")
+            .y_desc("SO2 (%)")
+            .label_style(label(11))
+            .axis_desc_style(label(12))
+            .draw()?;
         for s in &c.spans {
             let depth = ((0.21 - s.o2_fraction) / 0.12).clamp(-0.5, 1.0);
-            let shade = if depth > 0.0 { RGBColor(120, 120, 140).mix(0.08 + 0.22 * depth) } else { RGBColor(0, 158, 115).mix(0.06 - 0.1 * depth) };
-            ch.draw_series([Rectangle::new([(s.settle_min, ylo), (s.end_min, yhi)], shade.filled())])?;
-            ch.draw_series([Rectangle::new([(s.start_min, ylo), (s.settle_min, yhi)], shade.mix(0.5).filled())])?;
+            let shade = if depth > 0.0 {
+                RGBColor(120, 120, 140).mix(0.08 + 0.22 * depth)
+            } else {
+                RGBColor(0, 158, 115).mix(0.06 - 0.1 * depth)
+            };
+            ch.draw_series([Rectangle::new(
+                [(s.settle_min, ylo), (s.end_min, yhi)],
+                shade.filled(),
+            )])?;
+            ch.draw_series([Rectangle::new(
+                [(s.start_min, ylo), (s.settle_min, yhi)],
+                shade.mix(0.5).filled(),
+            )])?;
         }
-        ch.draw_series(LineSeries::new(c.spo2.iter().copied(), REFERENCE.stroke_width(1)))?;
+        ch.draw_series(LineSeries::new(
+            c.spo2.iter().copied(),
+            REFERENCE.stroke_width(1),
+        ))?;
         for (pts, col) in [(&c.arterioles, ARTERIOLE), (&c.venules, VENULE)] {
-            ch.draw_series(pts.iter().map(|p| Circle::new((p.0, p.1), 3, if p.2 { col.filled() } else { col.stroke_width(1) })))?;
+            ch.draw_series(pts.iter().map(|p| {
+                Circle::new(
+                    (p.0, p.1),
+                    3,
+                    if p.2 {
+                        col.filled()
+                    } else {
+                        col.stroke_width(1)
+                    },
+                )
+            }))?;
         }
     }
     Ok(())
 }
 
 /// A row of legend entries drawn in a header strip.
-fn legend_row<DB: DrawingBackend>(area: &DrawingArea<DB, Shift>, items: &[(&str, RGBColor, bool)], x0: i32) -> DrawResult
+fn legend_row<DB: DrawingBackend>(
+    area: &DrawingArea<DB, Shift>,
+    items: &[(&str, RGBColor, bool)],
+    x0: i32,
+) -> DrawResult
 where
     DB::ErrorType: 'static,
 {
     let mut x = x0;
     for (text, col, line) in items {
         if *line {
-            area.draw(&PathElement::new(vec![(x, 20), (x + 18, 20)], col.stroke_width(2)))?;
+            area.draw(&PathElement::new(
+                vec![(x, 20), (x + 18, 20)],
+                col.stroke_width(2),
+            ))?;
         } else {
             area.draw(&Circle::new((x + 9, 20), 4, col.filled()))?;
         }
@@ -138,15 +205,33 @@ where
     Ok(())
 }
 
-fn draw_epoch_change<DB: DrawingBackend>(root: &DrawingArea<DB, Shift>, d: &ReportData) -> DrawResult
+fn draw_epoch_change<DB: DrawingBackend>(
+    root: &DrawingArea<DB, Shift>,
+    d: &ReportData,
+) -> DrawResult
 where
     DB::ErrorType: 'static,
 {
     let panels = root.split_evenly((1, 2));
     let n = d.epochs_after.len().max(1);
-    for ((kind, col), area) in [("arteriole", ARTERIOLE), ("venule", VENULE)].into_iter().zip(panels) {
+    for ((kind, col), area) in [("arteriole", ARTERIOLE), ("venule", VENULE)]
+        .into_iter()
+        .zip(panels)
+    {
         let points: Vec<&ChangePoint> = d.changes.iter().filter(|c| c.kind == kind).collect();
-        let (lo, hi) = range(points.iter().flat_map(|p| [p.value]).chain(d.estimates.iter().filter(|e| e.kind == kind).flat_map(|e| [e.lower, e.upper])).chain([0.0]), 0.08);
+        let (lo, hi) = range(
+            points
+                .iter()
+                .flat_map(|p| [p.value])
+                .chain(
+                    d.estimates
+                        .iter()
+                        .filter(|e| e.kind == kind)
+                        .flat_map(|e| [e.lower, e.upper]),
+                )
+                .chain([0.0]),
+            0.08,
+        );
         let mut ch = ChartBuilder::on(&area)
             .caption(format!("{kind}s: change from {}", d.baseline), title(15))
             .margin(10)
@@ -159,19 +244,52 @@ where
             .bold_line_style(GRID)
             .y_label_formatter(&|v| format!("{v:.0}"))
             .x_labels(n)
-            .x_label_formatter(&|x| names.get(x.round() as usize).filter(|_| (x - x.round()).abs() < 1e-6).cloned().unwrap_or_default())
+            .x_label_formatter(&|x| {
+                names
+                    .get(x.round() as usize)
+                    .filter(|_| (x - x.round()).abs() < 1e-6)
+                    .cloned()
+                    .unwrap_or_default()
+            })
             .x_desc("epoch")
             .y_desc("ΔSO2 (points)")
             .label_style(label(12))
             .axis_desc_style(label(13))
             .draw()?;
-        ch.draw_series(LineSeries::new([(-0.5, 0.0), (n as f64 - 0.5, 0.0)], INK.mix(0.6).stroke_width(1)))?;
-        ch.draw_series(points.iter().map(|p| Circle::new((p.epoch as f64 - 0.15 + p.jitter, p.value), 3, col.mix(0.55).filled())))?;
+        ch.draw_series(LineSeries::new(
+            [(-0.5, 0.0), (n as f64 - 0.5, 0.0)],
+            INK.mix(0.6).stroke_width(1),
+        ))?;
+        ch.draw_series(points.iter().map(|p| {
+            Circle::new(
+                (p.epoch as f64 - 0.15 + p.jitter, p.value),
+                3,
+                col.mix(0.55).filled(),
+            )
+        }))?;
         for e in d.estimates.iter().filter(|e| e.kind == kind) {
             let x = e.epoch as f64 + 0.18;
-            ch.draw_series([PathElement::new(vec![(x, e.lower), (x, e.upper)], BLACK.stroke_width(2))])?;
-            ch.draw_series([PathElement::new(vec![(x - 0.06, e.lower), (x + 0.06, e.lower)], BLACK.stroke_width(2)), PathElement::new(vec![(x - 0.06, e.upper), (x + 0.06, e.upper)], BLACK.stroke_width(2))])?;
-            ch.draw_series([Rectangle::new([(x - 0.05, e.estimate - (hi - lo) * 0.008), (x + 0.05, e.estimate + (hi - lo) * 0.008)], BLACK.filled())])?;
+            ch.draw_series([PathElement::new(
+                vec![(x, e.lower), (x, e.upper)],
+                BLACK.stroke_width(2),
+            )])?;
+            ch.draw_series([
+                PathElement::new(
+                    vec![(x - 0.06, e.lower), (x + 0.06, e.lower)],
+                    BLACK.stroke_width(2),
+                ),
+                PathElement::new(
+                    vec![(x - 0.06, e.upper), (x + 0.06, e.upper)],
+                    BLACK.stroke_width(2),
+                ),
+            ])?;
+            ch.draw_series([Rectangle::new(
+                [
+                    (x - 0.05, e.estimate - (hi - lo) * 0.008),
+                    (x + 0.05, e.estimate + (hi - lo) * 0.008),
+                ],
+                BLACK.filled(),
+            )])?;
         }
     }
     Ok(())
@@ -182,39 +300,118 @@ where
     DB::ErrorType: 'static,
 {
     let panels = root.split_evenly((1, d.agreement.len().max(1)));
-    let (lo, hi) = range(d.agreement.iter().flat_map(|a| a.pairs.iter().map(|p| p.0)), 0.05);
-    let (ylo, yhi) = range(d.agreement.iter().flat_map(|a| a.pairs.iter().map(|p| p.1)).chain([lo, hi]), 0.04);
+    let (lo, hi) = range(
+        d.agreement.iter().flat_map(|a| a.pairs.iter().map(|p| p.0)),
+        0.05,
+    );
+    let (ylo, yhi) = range(
+        d.agreement
+            .iter()
+            .flat_map(|a| a.pairs.iter().map(|p| p.1))
+            .chain([lo, hi]),
+        0.04,
+    );
     for (i, (a, area)) in d.agreement.iter().zip(panels).enumerate() {
         let head = match a.line {
             Some((_, b1)) => format!("{} (slope {b1:.2})", a.method),
             None => a.method.clone(),
         };
-        let mut ch = ChartBuilder::on(&area).caption(head, title(15)).margin(10).x_label_area_size(34).y_label_area_size(44).build_cartesian_2d(lo..hi, ylo..yhi)?;
-        ch.configure_mesh().light_line_style(TRANSPARENT).bold_line_style(GRID).x_label_formatter(&|v| format!("{v:.0}")).y_label_formatter(&|v| format!("{v:.0}")).x_desc("reference SpO2 (%)").y_desc("arteriolar SO2 (%)").label_style(label(11)).axis_desc_style(label(12)).draw()?;
-        ch.draw_series(DashedLineSeries::new([(lo, lo), (hi, hi)], 6, 4, INK.stroke_width(1)))?;
-        ch.draw_series(a.pairs.iter().map(|p| Circle::new((p.0, p.1), 2, method_colour(i).mix(0.6).filled())))?;
+        let mut ch = ChartBuilder::on(&area)
+            .caption(head, title(15))
+            .margin(10)
+            .x_label_area_size(34)
+            .y_label_area_size(44)
+            .build_cartesian_2d(lo..hi, ylo..yhi)?;
+        ch.configure_mesh()
+            .light_line_style(TRANSPARENT)
+            .bold_line_style(GRID)
+            .x_label_formatter(&|v| format!("{v:.0}"))
+            .y_label_formatter(&|v| format!("{v:.0}"))
+            .x_desc("reference SpO2 (%)")
+            .y_desc("arteriolar SO2 (%)")
+            .label_style(label(11))
+            .axis_desc_style(label(12))
+            .draw()?;
+        ch.draw_series(DashedLineSeries::new(
+            [(lo, lo), (hi, hi)],
+            6,
+            4,
+            INK.stroke_width(1),
+        ))?;
+        ch.draw_series(
+            a.pairs
+                .iter()
+                .map(|p| Circle::new((p.0, p.1), 2, method_colour(i).mix(0.6).filled())),
+        )?;
         if let Some((b0, b1)) = a.line {
-            ch.draw_series(LineSeries::new([(lo, b0 + b1 * lo), (hi, b0 + b1 * hi)], BLACK.stroke_width(2)))?;
+            ch.draw_series(LineSeries::new(
+                [(lo, b0 + b1 * lo), (hi, b0 + b1 * hi)],
+                BLACK.stroke_width(2),
+            ))?;
         }
     }
     Ok(())
 }
 
-fn draw_bland_altman<DB: DrawingBackend>(root: &DrawingArea<DB, Shift>, d: &ReportData) -> DrawResult
+fn draw_bland_altman<DB: DrawingBackend>(
+    root: &DrawingArea<DB, Shift>,
+    d: &ReportData,
+) -> DrawResult
 where
     DB::ErrorType: 'static,
 {
     let panels = root.split_evenly((1, d.agreement.len().max(1)));
-    let (xlo, xhi) = range(d.agreement.iter().flat_map(|a| a.pairs.iter().map(|p| (p.0 + p.1) / 2.0)), 0.04);
-    let (ylo, yhi) = range(d.agreement.iter().flat_map(|a| a.pairs.iter().map(|p| p.1 - p.0).chain([a.lower, a.upper])), 0.08);
+    let (xlo, xhi) = range(
+        d.agreement
+            .iter()
+            .flat_map(|a| a.pairs.iter().map(|p| (p.0 + p.1) / 2.0)),
+        0.04,
+    );
+    let (ylo, yhi) = range(
+        d.agreement
+            .iter()
+            .flat_map(|a| a.pairs.iter().map(|p| p.1 - p.0).chain([a.lower, a.upper])),
+        0.08,
+    );
     for (i, (a, area)) in d.agreement.iter().zip(panels).enumerate() {
-        let head = format!("{}: bias {:.1}, limits {:.1} to {:.1}", a.method, a.bias, a.lower, a.upper);
-        let mut ch = ChartBuilder::on(&area).caption(head, title(14)).margin(10).x_label_area_size(34).y_label_area_size(44).build_cartesian_2d(xlo..xhi, ylo..yhi)?;
-        ch.configure_mesh().light_line_style(TRANSPARENT).bold_line_style(GRID).x_label_formatter(&|v| format!("{v:.0}")).y_label_formatter(&|v| format!("{v:.0}")).x_desc("mean of SO2 and SpO2 (%)").y_desc("SO2 − SpO2 (points)").label_style(label(11)).axis_desc_style(label(12)).draw()?;
-        ch.draw_series(a.pairs.iter().map(|p| Circle::new(((p.0 + p.1) / 2.0, p.1 - p.0), 2, method_colour(i).mix(0.6).filled())))?;
-        ch.draw_series(LineSeries::new([(xlo, a.bias), (xhi, a.bias)], BLACK.stroke_width(2)))?;
+        let head = format!(
+            "{}: bias {:.1}, limits {:.1} to {:.1}",
+            a.method, a.bias, a.lower, a.upper
+        );
+        let mut ch = ChartBuilder::on(&area)
+            .caption(head, title(14))
+            .margin(10)
+            .x_label_area_size(34)
+            .y_label_area_size(44)
+            .build_cartesian_2d(xlo..xhi, ylo..yhi)?;
+        ch.configure_mesh()
+            .light_line_style(TRANSPARENT)
+            .bold_line_style(GRID)
+            .x_label_formatter(&|v| format!("{v:.0}"))
+            .y_label_formatter(&|v| format!("{v:.0}"))
+            .x_desc("mean of SO2 and SpO2 (%)")
+            .y_desc("SO2 − SpO2 (points)")
+            .label_style(label(11))
+            .axis_desc_style(label(12))
+            .draw()?;
+        ch.draw_series(a.pairs.iter().map(|p| {
+            Circle::new(
+                ((p.0 + p.1) / 2.0, p.1 - p.0),
+                2,
+                method_colour(i).mix(0.6).filled(),
+            )
+        }))?;
+        ch.draw_series(LineSeries::new(
+            [(xlo, a.bias), (xhi, a.bias)],
+            BLACK.stroke_width(2),
+        ))?;
         for v in [a.lower, a.upper] {
-            ch.draw_series(DashedLineSeries::new([(xlo, v), (xhi, v)], 6, 4, BLACK.stroke_width(1)))?;
+            ch.draw_series(DashedLineSeries::new(
+                [(xlo, v), (xhi, v)],
+                6,
+                4,
+                BLACK.stroke_width(1),
+            ))?;
         }
     }
     Ok(())
@@ -224,34 +421,88 @@ fn draw_along<DB: DrawingBackend>(root: &DrawingArea<DB, Shift>, a: &AlongSegmen
 where
     DB::ErrorType: 'static,
 {
-    let (xlo, xhi) = range(a.series.iter().flat_map(|s| s.points.iter().map(|p| p.0)), 0.02);
-    let (ylo, yhi) = range(a.series.iter().flat_map(|s| s.points.iter().map(|p| p.1)).chain(a.joint.iter().flat_map(|j| [j.1 - j.2, j.1 + j.2])), 0.1);
-    let mut ch = ChartBuilder::on(root).caption(format!("SO2 along segment {} ({})", a.segment, a.kind), title(16)).margin(12).x_label_area_size(36).y_label_area_size(48).build_cartesian_2d(xlo..xhi, ylo..yhi)?;
-    ch.configure_mesh().light_line_style(TRANSPARENT).bold_line_style(GRID).x_label_formatter(&|v| format!("{v:.0}")).y_label_formatter(&|v| format!("{v:.0}")).x_desc("distance along the segment (µm)").y_desc("SO2 (%)").label_style(label(12)).axis_desc_style(label(13)).draw()?;
+    let (xlo, xhi) = range(
+        a.series.iter().flat_map(|s| s.points.iter().map(|p| p.0)),
+        0.02,
+    );
+    let (ylo, yhi) = range(
+        a.series
+            .iter()
+            .flat_map(|s| s.points.iter().map(|p| p.1))
+            .chain(a.joint.iter().flat_map(|j| [j.1 - j.2, j.1 + j.2])),
+        0.1,
+    );
+    let mut ch = ChartBuilder::on(root)
+        .caption(
+            format!("SO2 along segment {} ({})", a.segment, a.kind),
+            title(16),
+        )
+        .margin(12)
+        .x_label_area_size(36)
+        .y_label_area_size(48)
+        .build_cartesian_2d(xlo..xhi, ylo..yhi)?;
+    ch.configure_mesh()
+        .light_line_style(TRANSPARENT)
+        .bold_line_style(GRID)
+        .x_label_formatter(&|v| format!("{v:.0}"))
+        .y_label_formatter(&|v| format!("{v:.0}"))
+        .x_desc("distance along the segment (µm)")
+        .y_desc("SO2 (%)")
+        .label_style(label(12))
+        .axis_desc_style(label(13))
+        .draw()?;
     if let Some((label_text, v, se)) = &a.joint {
-        ch.draw_series([Rectangle::new([(xlo, v - se), (xhi, v + se)], PALETTE[2].mix(0.15).filled())])?;
-        ch.draw_series(LineSeries::new([(xlo, *v), (xhi, *v)], PALETTE[2].stroke_width(2)))?
-            .label(label_text.as_str())
-            .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], PALETTE[2].stroke_width(2)));
+        ch.draw_series([Rectangle::new(
+            [(xlo, v - se), (xhi, v + se)],
+            PALETTE[2].mix(0.15).filled(),
+        )])?;
+        ch.draw_series(LineSeries::new(
+            [(xlo, *v), (xhi, *v)],
+            PALETTE[2].stroke_width(2),
+        ))?
+        .label(label_text.as_str())
+        .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], PALETTE[2].stroke_width(2)));
     }
     for (i, s) in a.series.iter().enumerate() {
         let c = method_colour(i);
-        ch.draw_series(LineSeries::new(s.points.iter().copied(), c.mix(0.5).stroke_width(1)))?;
-        ch.draw_series(s.points.iter().map(|p| Circle::new(*p, 3, c.filled())))?.label(s.label.as_str()).legend(move |(x, y)| Circle::new((x + 9, y), 4, c.filled()));
+        ch.draw_series(LineSeries::new(
+            s.points.iter().copied(),
+            c.mix(0.5).stroke_width(1),
+        ))?;
+        ch.draw_series(s.points.iter().map(|p| Circle::new(*p, 3, c.filled())))?
+            .label(s.label.as_str())
+            .legend(move |(x, y)| Circle::new((x + 9, y), 4, c.filled()));
     }
-    ch.configure_series_labels().position(SeriesLabelPosition::UpperRight).background_style(WHITE.mix(0.9)).border_style(INK).label_font(label(12)).draw()?;
+    ch.configure_series_labels()
+        .position(SeriesLabelPosition::UpperRight)
+        .background_style(WHITE.mix(0.9))
+        .border_style(INK)
+        .label_font(label(12))
+        .draw()?;
     Ok(())
 }
 
-fn draw_sensitivity<DB: DrawingBackend>(root: &DrawingArea<DB, Shift>, s: &SensitivityCurves) -> DrawResult
+fn draw_sensitivity<DB: DrawingBackend>(
+    root: &DrawingArea<DB, Shift>,
+    s: &SensitivityCurves,
+) -> DrawResult
 where
     DB::ErrorType: 'static,
 {
     // Errors below 0.01 points are drawn at the floor of the log axis.
     const FLOOR: f64 = 0.01;
     let (top, body) = root.split_vertically(36);
-    top.draw_text(&format!("SO2 error per 1 % transmission error ({})", s.method), &title(17), (12, 8))?;
-    let ymax = s.rows.iter().flat_map(|(_, rows)| rows.iter().flat_map(|r| r.1.iter().copied().chain([r.2]))).fold(0.0, f64::max) * 1.15;
+    top.draw_text(
+        &format!("SO2 error per 1 % transmission error ({})", s.method),
+        &title(17),
+        (12, 8),
+    )?;
+    let ymax = s
+        .rows
+        .iter()
+        .flat_map(|(_, rows)| rows.iter().flat_map(|r| r.1.iter().copied().chain([r.2])))
+        .fold(0.0, f64::max)
+        * 1.15;
     let panels = body.split_evenly((1, s.rows.len().max(1)));
     for (i, ((weights, rows), area)) in s.rows.iter().zip(panels).enumerate() {
         let caption = match weights {
@@ -264,23 +515,57 @@ where
             .x_label_area_size(40)
             .y_label_area_size(56)
             .build_cartesian_2d(0.0..0.9, (FLOOR..ymax.max(1.0)).log_scale())?;
-        ch.configure_mesh().light_line_style(TRANSPARENT).bold_line_style(GRID).x_label_formatter(&|v| format!("{v:.1}")).y_label_formatter(&|v| if *v < 1.0 { format!("{v:.2}") } else { format!("{v:.0}") }).x_desc("veil k (fraction of the background intensity)").y_desc("SO2 error (points)").label_style(label(12)).axis_desc_style(label(13)).draw()?;
+        ch.configure_mesh()
+            .light_line_style(TRANSPARENT)
+            .bold_line_style(GRID)
+            .x_label_formatter(&|v| format!("{v:.1}"))
+            .y_label_formatter(&|v| {
+                if *v < 1.0 {
+                    format!("{v:.2}")
+                } else {
+                    format!("{v:.0}")
+                }
+            })
+            .x_desc("veil k (fraction of the background intensity)")
+            .y_desc("SO2 error (points)")
+            .label_style(label(12))
+            .axis_desc_style(label(13))
+            .draw()?;
         for (b, name) in s.names.iter().enumerate() {
             let c = PALETTE[b % 7];
             // Bands past the palette's seven colours are dashed so that no two lines look alike.
             let style = c.stroke_width(2);
             let points: Vec<(f64, f64)> = rows.iter().map(|r| (r.0, r.1[b].max(FLOOR))).collect();
             if b < 7 {
-                ch.draw_series(LineSeries::new(points, style))?.label(name.as_str()).legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], style));
+                ch.draw_series(LineSeries::new(points, style))?
+                    .label(name.as_str())
+                    .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], style));
             } else {
-                ch.draw_series(DashedLineSeries::new(points, 6, 4, style))?.label(name.as_str()).legend(move |(x, y)| plotters::element::DashedPathElement::new(vec![(x, y), (x + 18, y)], 5, 3, style));
+                ch.draw_series(DashedLineSeries::new(points, 6, 4, style))?
+                    .label(name.as_str())
+                    .legend(move |(x, y)| {
+                        plotters::element::DashedPathElement::new(
+                            vec![(x, y), (x + 18, y)],
+                            5,
+                            3,
+                            style,
+                        )
+                    });
             }
         }
-        ch.draw_series(LineSeries::new(rows.iter().map(|r| (r.0, r.2.max(FLOOR))), BLACK.stroke_width(3)))?
-            .label("all bands")
-            .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], BLACK.stroke_width(3)));
+        ch.draw_series(LineSeries::new(
+            rows.iter().map(|r| (r.0, r.2.max(FLOOR))),
+            BLACK.stroke_width(3),
+        ))?
+        .label("all bands")
+        .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], BLACK.stroke_width(3)));
         if i == 0 {
-            ch.configure_series_labels().position(SeriesLabelPosition::UpperLeft).background_style(WHITE.mix(0.9)).border_style(INK).label_font(label(12)).draw()?;
+            ch.configure_series_labels()
+                .position(SeriesLabelPosition::UpperLeft)
+                .background_style(WHITE.mix(0.9))
+                .border_style(INK)
+                .label_font(label(12))
+                .draw()?;
         }
     }
     Ok(())

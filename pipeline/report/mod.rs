@@ -24,7 +24,7 @@ use crate::run::fits::FitRow;
 use crate::run::statistics::Statistics;
 use crate::run::transmissions::ImageTables;
 use crate::tables::write_bytes_atomic;
-use tables::{html_escape, ReportTable};
+use tables::{ReportTable, html_escape};
 
 /// Version of the report's layout; bump when its output changes.
 pub const VERSION: u32 = 3;
@@ -78,14 +78,27 @@ pub fn methods_text(study: &Study, stats: Option<&Statistics>) -> Vec<String> {
 
 /// Writes the report; returns every file written.
 /// `positions` reads one capture's profile positions (from the image stage's cache).
-pub fn write(inp: &Inputs, positions: &dyn Fn(usize) -> Vec<crate::run::transmissions::PositionRow>, out: &Path) -> Result<Vec<PathBuf>> {
+pub fn write(
+    inp: &Inputs,
+    positions: &dyn Fn(usize) -> Vec<crate::run::transmissions::PositionRow>,
+    out: &Path,
+) -> Result<Vec<PathBuf>> {
     let dir = out.join("report");
     let tdir = dir.join("tables");
     std::fs::create_dir_all(&tdir)?;
     let usage = tables::usage(inp.epochs, inp.images, inp.fits);
     let s = inp.study;
-    let results = vec![tables::so2_by_epoch(s, inp.stats), tables::contrasts(s, inp.stats), tables::variance_components(inp.stats), tables::agreement(s, inp.stats), tables::method_comparison(inp.stats)];
-    let quality = vec![tables::accounting(s, inp.epochs, &usage, inp.fits), tables::data_quality(s, inp.images, inp.fits)];
+    let results = vec![
+        tables::so2_by_epoch(s, inp.stats),
+        tables::contrasts(s, inp.stats),
+        tables::variance_components(inp.stats),
+        tables::agreement(s, inp.stats),
+        tables::method_comparison(inp.stats),
+    ];
+    let quality = vec![
+        tables::accounting(s, inp.epochs, &usage, inp.fits),
+        tables::data_quality(s, inp.images, inp.fits),
+    ];
     let mut written = Vec::new();
     for t in results.iter().chain(&quality) {
         written.extend(t.write(&tdir)?);
@@ -93,7 +106,14 @@ pub fn write(inp: &Inputs, positions: &dyn Fn(usize) -> Vec<crate::run::transmis
     let data = data::prepare(s, inp.epochs, positions, inp.fits, inp.stats);
     let figs = figures::all(&dir.join("figures"), &data)?;
     written.extend(figs.iter().flat_map(|f| f.files.clone()));
-    let doc = Document { inp, results: &results, quality: &quality, figures: &figs, usage: &usage, primary: &data.primary };
+    let doc = Document {
+        inp,
+        results: &results,
+        quality: &quality,
+        figures: &figs,
+        usage: &usage,
+        primary: &data.primary,
+    };
     let html = dir.join("report.html");
     write_bytes_atomic(&html, doc.html().as_bytes())?;
     let md = dir.join("report.md");
@@ -116,8 +136,16 @@ impl Document<'_> {
     fn cohort(&self) -> Vec<String> {
         let s = self.inp.study;
         let ages: Vec<f64> = s.subjects.iter().filter_map(|x| x.age).collect();
-        let female = s.subjects.iter().filter(|x| x.sex.as_deref() == Some("F")).count();
-        let male = s.subjects.iter().filter(|x| x.sex.as_deref() == Some("M")).count();
+        let female = s
+            .subjects
+            .iter()
+            .filter(|x| x.sex.as_deref() == Some("F"))
+            .count();
+        let male = s
+            .subjects
+            .iter()
+            .filter(|x| x.sex.as_deref() == Some("M"))
+            .count();
         let sessions: usize = s.subjects.iter().map(|x| x.sessions.len()).sum();
         let used = self.usage.iter().filter(|u| u.is_none()).count();
         let mut v = vec![format!(
@@ -125,7 +153,15 @@ impl Document<'_> {
             s.subjects.len(),
             female,
             male,
-            if ages.is_empty() { String::new() } else { format!("; age {:.0}–{:.0} years", ages.iter().cloned().fold(f64::INFINITY, f64::min), ages.iter().cloned().fold(0.0, f64::max)) },
+            if ages.is_empty() {
+                String::new()
+            } else {
+                format!(
+                    "; age {:.0}–{:.0} years",
+                    ages.iter().cloned().fold(f64::INFINITY, f64::min),
+                    ages.iter().cloned().fold(0.0, f64::max)
+                )
+            },
             sessions,
             self.usage.len(),
             used
@@ -135,20 +171,58 @@ impl Document<'_> {
             *grades.entry(g).or_default() += 1;
         }
         if !grades.is_empty() {
-            let listed: Vec<String> = grades.iter().map(|(g, n)| format!("grade {g}: {n}")).collect();
-            let missing = s.subjects.iter().filter(|x| x.pigmentation.is_none()).count();
-            v.push(format!("Fundus pigmentation as recorded in the study file: {}{}.", listed.join(", "), if missing > 0 { format!(", not recorded: {missing}") } else { String::new() }));
+            let listed: Vec<String> = grades
+                .iter()
+                .map(|(g, n)| format!("grade {g}: {n}"))
+                .collect();
+            let missing = s
+                .subjects
+                .iter()
+                .filter(|x| x.pigmentation.is_none())
+                .count();
+            v.push(format!(
+                "Fundus pigmentation as recorded in the study file: {}{}.",
+                listed.join(", "),
+                if missing > 0 {
+                    format!(", not recorded: {missing}")
+                } else {
+                    String::new()
+                }
+            ));
         }
         let bands: Vec<String> = s.instrument.bands.iter().map(|b| b.name.clone()).collect();
-        v.push(format!("Instrument: {} ({} bands: {}; {} µm per pixel).", s.instrument.name, bands.len(), bands.join(", "), s.instrument.pixel_size_um));
+        v.push(format!(
+            "Instrument: {} ({} bands: {}; {} µm per pixel).",
+            s.instrument.name,
+            bands.len(),
+            bands.join(", "),
+            s.instrument.pixel_size_um
+        ));
         v
     }
 
     fn failures(&self) -> Vec<String> {
         let c = &self.inp.epochs.captures;
         let mut v: Vec<String> = (0..c.len())
-            .filter(|i| matches!(self.inp.images.status[*i].status.as_str(), "error" | "not-registered"))
-            .map(|i| format!("{} {} `{}`: {} ({})", c[i].subject, c[i].session, c[i].capture, self.inp.images.status[i].status, self.inp.images.status[i].message.clone().unwrap_or_default()))
+            .filter(|i| {
+                matches!(
+                    self.inp.images.status[*i].status.as_str(),
+                    "error" | "not-registered"
+                )
+            })
+            .map(|i| {
+                format!(
+                    "{} {} `{}`: {} ({})",
+                    c[i].subject,
+                    c[i].session,
+                    c[i].capture,
+                    self.inp.images.status[i].status,
+                    self.inp.images.status[i]
+                        .message
+                        .clone()
+                        .unwrap_or_default()
+                )
+            })
             .collect();
         for (f, r) in &self.inp.study.exclusions.captures {
             v.push(format!("`{f}` excluded by the study: {r}"));
@@ -165,7 +239,12 @@ impl Document<'_> {
         h.push_str("<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n");
         h.push_str(&format!("<title>{}</title>\n", html_escape(&s.title)));
         h.push_str("<style>\nbody{font-family:'DejaVu Sans',Verdana,sans-serif;max-width:1100px;margin:2em auto;padding:0 1em;color:#222;line-height:1.45}\nh1{font-size:1.6em;border-bottom:3px solid #0072b2;padding-bottom:.2em}\nh2{font-size:1.25em;margin-top:2em;color:#0072b2}\n.caution{border-left:5px solid #d55e00;background:#fff6ef;padding:.6em 1em;margin:1em 0}\ntable{border-collapse:collapse;margin:1em 0;font-size:.88em}\ncaption{text-align:left;font-style:italic;padding:.3em 0}\nth,td{padding:.25em .6em;border-bottom:1px solid #ddd}\nthead th{border-bottom:2px solid #444;text-align:left}\n.num{text-align:right;font-variant-numeric:tabular-nums}\nfigure{margin:1.5em 0}\nfigure svg{max-width:100%;height:auto}\nfigcaption{font-size:.9em;color:#444}\npre{background:#f6f6f6;padding:.8em;overflow-x:auto;font-size:.85em}\ncode{font-size:.9em}\n</style>\n</head>\n<body>\n");
-        h.push_str(&format!("<h1>{}</h1>\n<p>Study <code>{}</code>. Report written by satstep {}.</p>\n", html_escape(&s.title), html_escape(&s.id), env!("CARGO_PKG_VERSION")));
+        h.push_str(&format!(
+            "<h1>{}</h1>\n<p>Study <code>{}</code>. Report written by satstep {}.</p>\n",
+            html_escape(&s.title),
+            html_escape(&s.id),
+            env!("CARGO_PKG_VERSION")
+        ));
         h.push_str("<div class=\"caution\"><strong>Cautions.</strong><ul>");
         for c in CAUTIONS {
             h.push_str(&format!("<li>{}</li>", html_escape(c)));
@@ -175,14 +254,25 @@ impl Document<'_> {
         for p in self.cohort() {
             h.push_str(&format!("<p>{}</p>\n", html_escape(&p)));
         }
-        h.push_str(&format!("<pre>{}</pre>\n", html_escape(&crate::run::render_timeline(&s.protocol))));
+        h.push_str(&format!(
+            "<pre>{}</pre>\n",
+            html_escape(&crate::run::render_timeline(&s.protocol))
+        ));
         h.push_str("<h2 id=\"results\">Results</h2>\n");
-        h.push_str(&format!("<p>Figures of a single method show <code>{}</code>.</p>\n", html_escape(self.primary)));
+        h.push_str(&format!(
+            "<p>Figures of a single method show <code>{}</code>.</p>\n",
+            html_escape(self.primary)
+        ));
         for t in self.results {
             h.push_str(&t.html());
         }
         for f in self.figures {
-            h.push_str(&format!("<figure id=\"fig-{}\">\n{}\n<figcaption>{}</figcaption>\n</figure>\n", f.name, strip_xml_header(&f.svg), html_escape(&f.caption)));
+            h.push_str(&format!(
+                "<figure id=\"fig-{}\">\n{}\n<figcaption>{}</figcaption>\n</figure>\n",
+                f.name,
+                strip_xml_header(&f.svg),
+                html_escape(&f.caption)
+            ));
         }
         h.push_str("<h2 id=\"methods\">Methods</h2>\n");
         for p in methods_text(s, Some(self.inp.stats)) {
@@ -207,22 +297,39 @@ impl Document<'_> {
             h.push_str("</ul>\n");
         }
         h.push_str("<h2 id=\"provenance\">Provenance</h2>\n");
-        h.push_str(&format!("<p>satstep {} · cache format {} · study file <code>{}</code></p>\n", env!("CARGO_PKG_VERSION"), crate::stages::key::CACHE_FORMAT, html_escape(&self.rel(&s.file))));
+        h.push_str(&format!(
+            "<p>satstep {} · cache format {} · study file <code>{}</code></p>\n",
+            env!("CARGO_PKG_VERSION"),
+            crate::stages::key::CACHE_FORMAT,
+            html_escape(&self.rel(&s.file))
+        ));
         h.push_str("<p>Per-stage keys, timings and counts are in <code>manifest.json</code> beside this folder.</p>\n<details><summary>Input files and their SHA-256</summary>\n<table><tbody>\n");
         for (p, k) in &self.inp.files {
-            h.push_str(&format!("<tr><td><code>{}</code></td><td><code>{}</code></td></tr>\n", html_escape(p), k));
+            h.push_str(&format!(
+                "<tr><td><code>{}</code></td><td><code>{}</code></td></tr>\n",
+                html_escape(p),
+                k
+            ));
         }
         h.push_str("</tbody></table>\n</details>\n</body>\n</html>\n");
         h
     }
 
     fn rel(&self, p: &Path) -> String {
-        p.strip_prefix(&self.inp.study.root).unwrap_or(p).to_string_lossy().replace('\\', "/")
+        p.strip_prefix(&self.inp.study.root)
+            .unwrap_or(p)
+            .to_string_lossy()
+            .replace('\\', "/")
     }
 
     fn markdown(&self) -> String {
         let s = self.inp.study;
-        let mut m = format!("# {}\n\nStudy `{}`. Report written by satstep {}.\n\n", s.title, s.id, env!("CARGO_PKG_VERSION"));
+        let mut m = format!(
+            "# {}\n\nStudy `{}`. Report written by satstep {}.\n\n",
+            s.title,
+            s.id,
+            env!("CARGO_PKG_VERSION")
+        );
         m.push_str("> **Cautions.**\n");
         for c in CAUTIONS {
             m.push_str(&format!("> - {c}\n"));
@@ -231,12 +338,19 @@ impl Document<'_> {
         for p in self.cohort() {
             m.push_str(&format!("{p}\n\n"));
         }
-        m.push_str(&format!("```\n{}```\n\n## Results\n\nFigures of a single method show `{}`.\n\n", crate::run::render_timeline(&s.protocol), self.primary));
+        m.push_str(&format!(
+            "```\n{}```\n\n## Results\n\nFigures of a single method show `{}`.\n\n",
+            crate::run::render_timeline(&s.protocol),
+            self.primary
+        ));
         for t in self.results {
             m.push_str(&format!("**{}**\n\n{}\n", t.caption, t.markdown()));
         }
         for f in self.figures {
-            m.push_str(&format!("![{}](figures/{}.png)\n\n*{}*\n\n", f.name, f.name, f.caption));
+            m.push_str(&format!(
+                "![{}](figures/{}.png)\n\n*{}*\n\n",
+                f.name, f.name, f.caption
+            ));
         }
         m.push_str("## Methods\n\n");
         for p in methods_text(s, Some(self.inp.stats)) {

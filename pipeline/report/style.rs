@@ -17,7 +17,8 @@ pub const FAMILY: &str = "sans-serif";
 /// Registers the embedded font; call before drawing.
 pub fn init() {
     REGISTER.call_once(|| {
-        plotters::style::register_font(FAMILY, FontStyle::Normal, FONT).unwrap_or_else(|_| panic!("the embedded font is a valid TrueType file"));
+        plotters::style::register_font(FAMILY, FontStyle::Normal, FONT)
+            .unwrap_or_else(|_| panic!("the embedded font is a valid TrueType file"));
     });
 }
 
@@ -41,7 +42,9 @@ pub const GRID: RGBColor = RGBColor(232, 232, 232);
 pub const INK: RGBColor = RGBColor(60, 60, 60);
 
 pub fn method_colour(i: usize) -> RGBColor {
-    [PALETTE[0], PALETTE[5], PALETTE[2], PALETTE[3], PALETTE[1], PALETTE[4]][i % 6]
+    [
+        PALETTE[0], PALETTE[5], PALETTE[2], PALETTE[3], PALETTE[1], PALETTE[4],
+    ][i % 6]
 }
 
 pub fn title(size: u32) -> TextStyle<'static> {

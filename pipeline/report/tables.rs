@@ -26,7 +26,13 @@ pub struct ReportTable {
 
 impl ReportTable {
     fn new(name: &'static str, caption: impl Into<String>, columns: &[(&str, bool)]) -> Self {
-        ReportTable { name, caption: caption.into(), columns: columns.iter().map(|c| c.0.to_string()).collect(), numeric: columns.iter().map(|c| c.1).collect(), rows: vec![] }
+        ReportTable {
+            name,
+            caption: caption.into(),
+            columns: columns.iter().map(|c| c.0.to_string()).collect(),
+            numeric: columns.iter().map(|c| c.1).collect(),
+            rows: vec![],
+        }
     }
 
     pub fn csv(&self) -> Result<Vec<u8>> {
@@ -40,23 +46,48 @@ impl ReportTable {
 
     pub fn markdown(&self) -> String {
         let esc = |s: &str| s.replace('|', "\\|");
-        let mut out = format!("| {} |\n|", self.columns.iter().map(|c| esc(c)).collect::<Vec<_>>().join(" | "));
+        let mut out = format!(
+            "| {} |\n|",
+            self.columns
+                .iter()
+                .map(|c| esc(c))
+                .collect::<Vec<_>>()
+                .join(" | ")
+        );
         for n in &self.numeric {
             out.push_str(if *n { "---:|" } else { "---|" });
         }
         out.push('\n');
         for r in &self.rows {
-            out.push_str(&format!("| {} |\n", r.iter().map(|c| esc(c)).collect::<Vec<_>>().join(" | ")));
+            out.push_str(&format!(
+                "| {} |\n",
+                r.iter().map(|c| esc(c)).collect::<Vec<_>>().join(" | ")
+            ));
         }
         out
     }
 
     /// A booktabs `table` environment; needs `\usepackage{booktabs}`.
     pub fn latex(&self) -> String {
-        let align: String = self.numeric.iter().map(|n| if *n { 'r' } else { 'l' }).collect();
-        let row = |cells: &[String]| cells.iter().map(|c| latex_escape(c)).collect::<Vec<_>>().join(" & ") + " \\\\\n";
+        let align: String = self
+            .numeric
+            .iter()
+            .map(|n| if *n { 'r' } else { 'l' })
+            .collect();
+        let row = |cells: &[String]| {
+            cells
+                .iter()
+                .map(|c| latex_escape(c))
+                .collect::<Vec<_>>()
+                .join(" & ")
+                + " \\\\\n"
+        };
         let mut out = String::from("\\begin{table}[htbp]\n\\centering\n");
-        out.push_str(&format!("\\caption{{{}}}\n\\label{{tab:{}}}\n", latex_escape(&self.caption), self.name));
+        out.push_str(&format!(
+            "\\caption{{{}}}\n\\label{{tab:{}}}\n",
+            latex_escape(&self.caption),
+            self.name
+        ));
         out.push_str(&format!("\\begin{{tabular}}{{{align}}}\n\\toprule\n"));
         out.push_str(&row(&self.columns));
         out.push_str("\\midrule\n");
@@ -68,15 +99,27 @@ impl ReportTable {
     }
 
     pub fn html(&self) -> String {
-        let mut out = format!("<table id=\"tab-{}\">\n<caption>{}</caption>\n<thead><tr>", self.name, html_escape(&self.caption));
+        let mut out = format!(
+            "<table id=\"tab-{}\">\n<caption>{}</caption>\n<thead><tr>",
+            self.name,
+            html_escape(&self.caption)
+        );
         for (c, n) in self.columns.iter().zip(&self.numeric) {
-            out.push_str(&format!("<th{}>{}</th>", if *n { " class=\"num\"" } else { "" }, html_escape(c)));
+            out.push_str(&format!(
+                "<th{}>{}</th>",
+                if *n { " class=\"num\"" } else { "" },
+                html_escape(c)
+            ));
         }
         out.push_str("</tr></thead>\n<tbody>\n");
         for r in &self.rows {
             out.push_str("<tr>");
             for (c, n) in r.iter().zip(&self.numeric) {
-                out.push_str(&format!("<td{}>{}</td>", if *n { " class=\"num\"" } else { "" }, html_escape(c)));
+                out.push_str(&format!(
+                    "<td{}>{}</td>",
+                    if *n { " class=\"num\"" } else { "" },
+                    html_escape(c)
+                ));
             }
             out.push_str("</tr>\n");
         }
@@ -87,7 +130,14 @@ impl ReportTable {
     /// Writes `<name>.csv`, `.md` and `.tex` under `dir`.
     pub fn write(&self, dir: &Path) -> Result<Vec<PathBuf>> {
         let mut paths = Vec::new();
-        for (ext, bytes) in [("csv", self.csv()?), ("md", format!("{}\n\n{}", self.caption, self.markdown()).into_bytes()), ("tex", self.latex().into_bytes())] {
+        for (ext, bytes) in [
+            ("csv", self.csv()?),
+            (
+                "md",
+                format!("{}\n\n{}", self.caption, self.markdown()).into_bytes(),
+            ),
+            ("tex", self.latex().into_bytes()),
+        ] {
             let p = dir.join(format!("{}.{ext}", self.name));
             write_bytes_atomic(&p, &bytes)?;
             paths.push(p);
@@ -119,11 +169,18 @@ pub fn latex_escape(s: &str) -> String {
 }
 
 pub fn html_escape(s: &str) -> String {
-    s.replace('&', "&amp;").replace('<', "&lt;").replace('>', "&gt;").replace('"', "&quot;")
+    s.replace('&', "&amp;")
+        .replace('<', "&lt;")
+        .replace('>', "&gt;")
+        .replace('"', "&quot;")
 }
 
 fn f(v: f64, digits: usize) -> String {
-    if v.is_finite() { format!("{v:.digits$}") } else { "–".into() }
+    if v.is_finite() {
+        format!("{v:.digits$}")
+    } else {
+        "–".into()
+    }
 }
 
 fn p_value(p: f64) -> String {
@@ -158,20 +215,43 @@ pub fn usage(epochs: &EpochTables, images: &ImageTables, fits: &[FitRow]) -> Vec
 }
 
 /// Captures acquired, used and not used by reason, per subject and epoch.
-pub fn accounting(study: &Study, epochs: &EpochTables, usage: &[Option<String>], fits: &[FitRow]) -> ReportTable {
+pub fn accounting(
+    study: &Study,
+    epochs: &EpochTables,
+    usage: &[Option<String>],
+    fits: &[FitRow],
+) -> ReportTable {
     let mut reasons: Vec<String> = usage.iter().flatten().cloned().collect();
     reasons.sort();
     reasons.dedup();
-    let mut cols: Vec<(&str, bool)> = vec![("subject", false), ("epoch", false), ("acquired", true), ("used", true)];
+    let mut cols: Vec<(&str, bool)> = vec![
+        ("subject", false),
+        ("epoch", false),
+        ("acquired", true),
+        ("used", true),
+    ];
     cols.extend(reasons.iter().map(|r| (r.as_str(), true)));
     // Segment values of used captures left out for their diameter (one per
     // capture and segment, whatever the number of methods).
-    let narrow_label = study.exclusions.min_diameter_um.map(|d| format!("segment values < {d} µm"));
-    let mut narrow: BTreeMap<(String, String), std::collections::BTreeSet<(usize, &str)>> = BTreeMap::new();
+    let narrow_label = study
+        .exclusions
+        .min_diameter_um
+        .map(|d| format!("segment values < {d} µm"));
+    let mut narrow: BTreeMap<(String, String), std::collections::BTreeSet<(usize, &str)>> =
+        BTreeMap::new();
     if let Some(d) = study.exclusions.min_diameter_um {
-        for r in fits.iter().filter(|r| usage[r.capture_index].is_none() && !(r.diameter_um >= d)) {
+        for r in fits
+            .iter()
+            .filter(|r| usage[r.capture_index].is_none() && !(r.diameter_um >= d))
+        {
             let c = &epochs.captures[r.capture_index];
-            narrow.entry((c.subject.clone(), c.epoch.clone().unwrap_or_else(|| "(none)".into()))).or_default().insert((r.capture_index, r.segment.as_str()));
+            narrow
+                .entry((
+                    c.subject.clone(),
+                    c.epoch.clone().unwrap_or_else(|| "(none)".into()),
+                ))
+                .or_default()
+                .insert((r.capture_index, r.segment.as_str()));
         }
     }
     if let Some(l) = &narrow_label {
@@ -182,7 +262,13 @@ pub fn accounting(study: &Study, epochs: &EpochTables, usage: &[Option<String>],
         None => "Captures acquired, used in the statistics, and not used by reason, per subject and epoch".to_string(),
     };
     let mut t = ReportTable::new("capture_accounting", caption, &cols);
-    let order: Vec<String> = study.protocol.epochs.iter().map(|e| e.name.clone()).chain(["(none)".to_string()]).collect();
+    let order: Vec<String> = study
+        .protocol
+        .epochs
+        .iter()
+        .map(|e| e.name.clone())
+        .chain(["(none)".to_string()])
+        .collect();
     let mut by: BTreeMap<(String, usize), Vec<&Option<String>>> = BTreeMap::new();
     for (c, u) in epochs.captures.iter().zip(usage) {
         let e = c.epoch.clone().unwrap_or_else(|| "(none)".into());
@@ -191,16 +277,26 @@ pub fn accounting(study: &Study, epochs: &EpochTables, usage: &[Option<String>],
     }
     let mut total = vec![0usize; 2 + reasons.len() + narrow_label.is_some() as usize];
     for ((s, ei), us) in &by {
-        let mut row = vec![s.clone(), order[*ei].clone(), us.len().to_string(), us.iter().filter(|u| u.is_none()).count().to_string()];
+        let mut row = vec![
+            s.clone(),
+            order[*ei].clone(),
+            us.len().to_string(),
+            us.iter().filter(|u| u.is_none()).count().to_string(),
+        ];
         total[0] += us.len();
         total[1] += us.iter().filter(|u| u.is_none()).count();
         for (k, r) in reasons.iter().enumerate() {
-            let n = us.iter().filter(|u| u.as_deref() == Some(r.as_str())).count();
+            let n = us
+                .iter()
+                .filter(|u| u.as_deref() == Some(r.as_str()))
+                .count();
             total[2 + k] += n;
             row.push(n.to_string());
         }
         if narrow_label.is_some() {
-            let n = narrow.get(&(s.clone(), order[*ei].clone())).map_or(0, |v| v.len());
+            let n = narrow
+                .get(&(s.clone(), order[*ei].clone()))
+                .map_or(0, |v| v.len());
             total[2 + reasons.len()] += n;
             row.push(n.to_string());
         }
@@ -217,7 +313,14 @@ pub fn so2_by_epoch(study: &Study, stats: &Statistics) -> ReportTable {
     let mut t = ReportTable::new(
         "so2_by_epoch",
         "SO2 (%) by epoch: mean ± SD over subjects of each subject's mean of steady captures; arteriovenous = arteriolar − venular per capture",
-        &[("method", false), ("epoch", false), ("subjects", true), ("arterioles", true), ("venules", true), ("arteriovenous", true)],
+        &[
+            ("method", false),
+            ("epoch", false),
+            ("subjects", true),
+            ("arterioles", true),
+            ("venules", true),
+            ("arteriovenous", true),
+        ],
     );
     for m in &study.methods {
         for e in &study.protocol.epochs {
@@ -225,13 +328,28 @@ pub fn so2_by_epoch(study: &Study, stats: &Statistics) -> ReportTable {
             let cells: Vec<String> = ["arteriole", "venule", "arteriovenous"]
                 .iter()
                 .map(|k| {
-                    let v: Vec<f64> = stats.summaries.iter().filter(|s| s.method == m.label && s.kind == *k && s.epoch == e.name && s.mean.is_finite()).map(|s| s.mean).collect();
+                    let v: Vec<f64> = stats
+                        .summaries
+                        .iter()
+                        .filter(|s| {
+                            s.method == m.label
+                                && s.kind == *k
+                                && s.epoch == e.name
+                                && s.mean.is_finite()
+                        })
+                        .map(|s| s.mean)
+                        .collect();
                     n = n.max(v.len());
                     if v.is_empty() {
                         return "–".into();
                     }
                     let mean = v.iter().sum::<f64>() / v.len() as f64;
-                    let sd = if v.len() > 1 { (v.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / (v.len() - 1) as f64).sqrt() } else { f64::NAN };
+                    let sd = if v.len() > 1 {
+                        (v.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / (v.len() - 1) as f64)
+                            .sqrt()
+                    } else {
+                        f64::NAN
+                    };
                     format!("{} ± {}", f(mean, 1), f(sd, 1))
                 })
                 .collect();
@@ -251,8 +369,21 @@ pub fn contrasts(study: &Study, stats: &Statistics) -> ReportTable {
     };
     let mut t = ReportTable::new(
         "contrasts",
-        format!("Contrasts of SO2 between epochs (points): mixed model with subject-specific epoch deviations (REML, Satterthwaite df), or the subject-level t test where the model could not carry the contrast (column `test`); {level}; {adj} within method and vessel kind"),
-        &[("method", false), ("kind", false), ("contrast", false), ("estimate", true), (level.as_str(), true), ("df", true), ("t", true), ("p", true), (adj, true), ("test", false)],
+        format!(
+            "Contrasts of SO2 between epochs (points): mixed model with subject-specific epoch deviations (REML, Satterthwaite df), or the subject-level t test where the model could not carry the contrast (column `test`); {level}; {adj} within method and vessel kind"
+        ),
+        &[
+            ("method", false),
+            ("kind", false),
+            ("contrast", false),
+            ("estimate", true),
+            (level.as_str(), true),
+            ("df", true),
+            ("t", true),
+            ("p", true),
+            (adj, true),
+            ("test", false),
+        ],
     );
     for r in &stats.contrasts {
         let test = &r.result.test;
@@ -276,11 +407,25 @@ pub fn variance_components(stats: &Statistics) -> ReportTable {
     let mut t = ReportTable::new(
         "variance_components",
         "Variance components of the epoch models (SO2 points): the SD of each random effect and of the residual, with the number of levels (observations for the residual); `subject:epoch=E` is the subject-specific deviation in epoch E; a component on the boundary is estimated as zero",
-        &[("method", false), ("kind", false), ("group", false), ("levels", true), ("SD", true), ("boundary", false)],
+        &[
+            ("method", false),
+            ("kind", false),
+            ("group", false),
+            ("levels", true),
+            ("SD", true),
+            ("boundary", false),
+        ],
     );
     for r in &stats.variance {
         let c = &r.component;
-        t.rows.push(vec![r.method.clone(), r.kind.clone(), c.group.clone(), c.levels.to_string(), f(c.variance.max(0.0).sqrt(), 2), if c.boundary { "yes" } else { "" }.to_string()]);
+        t.rows.push(vec![
+            r.method.clone(),
+            r.kind.clone(),
+            c.group.clone(),
+            c.levels.to_string(),
+            f(c.variance.max(0.0).sqrt(), 2),
+            if c.boundary { "yes" } else { "" }.to_string(),
+        ]);
     }
     t
 }
@@ -290,7 +435,19 @@ pub fn agreement(study: &Study, stats: &Statistics) -> ReportTable {
     let mut t = ReportTable::new(
         "agreement",
         "Agreement of capture-mean arteriolar SO2 with the reference SpO2 (points): bias, precision, Arms over captures, repeated-measures 95 % limits of agreement (Bland & Altman 2007); slope of SO2 on SpO2 over subject × epoch means with a random intercept and slope by subject (subjects are the unit; `model` says when the random slope was dropped)",
-        &[("method", false), ("captures", true), ("subjects", true), ("bias", true), ("precision", true), ("Arms", true), ("limits of agreement", true), ("slope", true), (level.as_str(), true), ("slope df", true), ("model", false)],
+        &[
+            ("method", false),
+            ("captures", true),
+            ("subjects", true),
+            ("bias", true),
+            ("precision", true),
+            ("Arms", true),
+            ("limits of agreement", true),
+            ("slope", true),
+            (level.as_str(), true),
+            ("slope df", true),
+            ("model", false),
+        ],
     );
     for r in &stats.agreement {
         let (a, s) = (&r.agreement, &r.slope);
@@ -302,10 +459,24 @@ pub fn agreement(study: &Study, stats: &Statistics) -> ReportTable {
             f(a.precision, 2),
             f(a.arms, 2),
             format!("{} to {}", f(a.lower, 2), f(a.upper, 2)),
-            s.as_ref().map(|s| f(s.test.estimate, 3)).unwrap_or_else(|| "–".into()),
-            s.as_ref().map(|s| format!("{} to {}", f(s.test.lower, 3), f(s.test.upper, 3))).unwrap_or_else(|| "–".into()),
-            s.as_ref().map(|s| f(s.test.df, 1)).unwrap_or_else(|| "–".into()),
-            s.as_ref().map(|s| if s.formula.contains("0 + spo2") { "random slope".to_string() } else { "random intercept only (slope variance on the boundary)".to_string() }).unwrap_or_else(|| "–".into()),
+            s.as_ref()
+                .map(|s| f(s.test.estimate, 3))
+                .unwrap_or_else(|| "–".into()),
+            s.as_ref()
+                .map(|s| format!("{} to {}", f(s.test.lower, 3), f(s.test.upper, 3)))
+                .unwrap_or_else(|| "–".into()),
+            s.as_ref()
+                .map(|s| f(s.test.df, 1))
+                .unwrap_or_else(|| "–".into()),
+            s.as_ref()
+                .map(|s| {
+                    if s.formula.contains("0 + spo2") {
+                        "random slope".to_string()
+                    } else {
+                        "random intercept only (slope variance on the boundary)".to_string()
+                    }
+                })
+                .unwrap_or_else(|| "–".into()),
         ]);
     }
     t
@@ -315,29 +486,78 @@ pub fn method_comparison(stats: &Statistics) -> ReportTable {
     let mut t = ReportTable::new(
         "method_comparison",
         "Method comparison on the same cohort: repeatability, uncertainty, spread along segments, values outside 0–100 %, response to the SpO2 change, and agreement between methods, each with the unit it is computed over",
-        &[("method", false), ("kind", false), ("quantity", false), ("value", true), ("unit", false)],
+        &[
+            ("method", false),
+            ("kind", false),
+            ("quantity", false),
+            ("value", true),
+            ("unit", false),
+        ],
     );
     for r in &stats.comparison {
         let q = &r.quantity;
-        let digits = if q.contains("share") || q.contains("slope") { 3 } else if q == "n" || q == "pairs" || q.starts_with("values") { 0 } else { 2 };
-        t.rows.push(vec![r.method.clone(), r.kind.clone(), q.replace('_', " "), f(r.value, digits), r.unit.clone()]);
+        let digits = if q.contains("share") || q.contains("slope") {
+            3
+        } else if q == "n" || q == "pairs" || q.starts_with("values") {
+            0
+        } else {
+            2
+        };
+        t.rows.push(vec![
+            r.method.clone(),
+            r.kind.clone(),
+            q.replace('_', " "),
+            f(r.value, digits),
+            r.unit.clone(),
+        ]);
     }
     t
 }
 
 /// Data quality: flagged profile positions by flag, values outside 0–100 % per method.
 pub fn data_quality(study: &Study, images: &ImageTables, fits: &[FitRow]) -> ReportTable {
-    let mut t = ReportTable::new("data_quality", "Data quality: profile positions by flag, and segment SO2 values outside 0–100 % (kept in the analysis)", &[("item", false), ("count", true), ("of", true)]);
+    let mut t = ReportTable::new(
+        "data_quality",
+        "Data quality: profile positions by flag, and segment SO2 values outside 0–100 % (kept in the analysis)",
+        &[("item", false), ("count", true), ("of", true)],
+    );
     for (k, n) in &images.flag_counts {
-        let what = if k == "unflagged" { k.clone() } else { format!("flag {k}") };
-        t.rows.push(vec![format!("profile positions: {what}"), n.to_string(), images.total_positions().to_string()]);
+        let what = if k == "unflagged" {
+            k.clone()
+        } else {
+            format!("flag {k}")
+        };
+        t.rows.push(vec![
+            format!("profile positions: {what}"),
+            n.to_string(),
+            images.total_positions().to_string(),
+        ]);
     }
     for m in &study.methods {
-        let vals: Vec<f64> = fits.iter().filter(|r| r.method == m.label).filter_map(|r| r.so2).filter(|v| v.is_finite()).collect();
+        let vals: Vec<f64> = fits
+            .iter()
+            .filter(|r| r.method == m.label)
+            .filter_map(|r| r.so2)
+            .filter(|v| v.is_finite())
+            .collect();
         let out = vals.iter().filter(|v| !(0.0..=100.0).contains(*v)).count();
-        t.rows.push(vec![format!("{}: SO2 outside 0–100 %", m.label), out.to_string(), vals.len().to_string()]);
-        let unfitted = fits.iter().filter(|r| r.method == m.label && r.so2.is_none()).count();
-        t.rows.push(vec![format!("{}: segments without an SO2", m.label), unfitted.to_string(), fits.iter().filter(|r| r.method == m.label).count().to_string()]);
+        t.rows.push(vec![
+            format!("{}: SO2 outside 0–100 %", m.label),
+            out.to_string(),
+            vals.len().to_string(),
+        ]);
+        let unfitted = fits
+            .iter()
+            .filter(|r| r.method == m.label && r.so2.is_none())
+            .count();
+        t.rows.push(vec![
+            format!("{}: segments without an SO2", m.label),
+            unfitted.to_string(),
+            fits.iter()
+                .filter(|r| r.method == m.label)
+                .count()
+                .to_string(),
+        ]);
     }
     t
 }
@@ -353,7 +573,10 @@ mod tests {
         let s = t.latex();
         assert!(s.contains("50 \\% of a\\_b \\& c"));
         assert!(s.contains("V\\_01 \\{x\\} & $-$1.0 $\\pm$ 2.0 \\\\"));
-        assert_eq!(s.matches('{').count() - s.matches("\\{").count(), s.matches('}').count() - s.matches("\\}").count());
+        assert_eq!(
+            s.matches('{').count() - s.matches("\\{").count(),
+            s.matches('}').count() - s.matches("\\}").count()
+        );
     }
 
     #[test]

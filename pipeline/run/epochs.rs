@@ -10,8 +10,8 @@ use anyhow::Result;
 use crate::config::diag::Findings;
 use crate::config::study::Study;
 use crate::tables::Table;
-use crate::timeline::assign::{assign, session_spans, CaptureStatus};
-use crate::timeline::reference::{read_log, reference_at, ReferenceStatus};
+use crate::timeline::assign::{CaptureStatus, assign, session_spans};
+use crate::timeline::reference::{ReferenceStatus, read_log, reference_at};
 use crate::timeline::time::seconds_between;
 
 /// One row of the capture table.
@@ -68,7 +68,8 @@ pub fn build(study: &Study) -> EpochTables {
         for sess in &subj.sessions {
             let spans = session_spans(p, sess);
             for s in &spans {
-                let start = sess.start + chrono::Duration::microseconds((s.start_s * 1e6).round() as i64);
+                let start =
+                    sess.start + chrono::Duration::microseconds((s.start_s * 1e6).round() as i64);
                 spans_out.push(SpanRow {
                     subject: subj.id.clone(),
                     session: sess.id.clone(),
@@ -81,7 +82,10 @@ pub fn build(study: &Study) -> EpochTables {
                     o2_fraction: p.epochs[s.epoch].gas.o2_fraction,
                 });
             }
-            let log = sess.reference.as_ref().and_then(|l| read_log(l, &sess.start, &mut Findings::new()));
+            let log = sess
+                .reference
+                .as_ref()
+                .and_then(|l| read_log(l, &sess.start, &mut Findings::new()));
             let mut caps: Vec<_> = sess.captures.iter().collect();
             caps.sort_by(|a, b| a.time.cmp(&b.time).then(a.listed.cmp(&b.listed)));
             for c in caps {
@@ -90,7 +94,12 @@ pub fn build(study: &Study) -> EpochTables {
                 let excluded = if subject_excluded {
                     Some("subject excluded in the study file".to_string())
                 } else {
-                    study.exclusions.captures.iter().find(|(f, _)| *f == c.listed).map(|(_, r)| r.clone())
+                    study
+                        .exclusions
+                        .captures
+                        .iter()
+                        .find(|(f, _)| *f == c.listed)
+                        .map(|(_, r)| r.clone())
                 };
                 let r = log.as_ref().map(|l| reference_at(l, t, &p.reference));
                 captures.push(CaptureRow {
@@ -103,22 +112,36 @@ pub fn build(study: &Study) -> EpochTables {
                     epoch: epoch.map(|e| p.epochs[e].name.clone()),
                     t_in_epoch_s: epoch.map(|e| t - spans[e].start_s),
                     o2_fraction: epoch.map(|e| p.epochs[e].gas.o2_fraction),
-                    status: if excluded.is_some() { "excluded".into() } else { status.as_str().into() },
+                    status: if excluded.is_some() {
+                        "excluded".into()
+                    } else {
+                        status.as_str().into()
+                    },
                     exclusion: excluded,
                     spo2: r.and_then(|r| r.spo2),
                     spo2_samples: r.map(|r| r.samples as i64).unwrap_or(0),
                     spo2_range: r.and_then(|r| r.range),
-                    spo2_status: r.map(|r| r.status).unwrap_or(ReferenceStatus::Missing).as_str().into(),
+                    spo2_status: r
+                        .map(|r| r.status)
+                        .unwrap_or(ReferenceStatus::Missing)
+                        .as_str()
+                        .into(),
                 });
             }
         }
     }
-    EpochTables { captures, spans: spans_out }
+    EpochTables {
+        captures,
+        spans: spans_out,
+    }
 }
 
 impl EpochTables {
     pub fn count(&self, status: CaptureStatus) -> usize {
-        self.captures.iter().filter(|c| c.status == status.as_str()).count()
+        self.captures
+            .iter()
+            .filter(|c| c.status == status.as_str())
+            .count()
     }
 
     pub fn write(&self, out: &Path) -> Result<Vec<PathBuf>> {

@@ -12,9 +12,11 @@ use rayon::prelude::*;
 use crate::config::study::{Calibration, Loss, Method, MethodKind, Study};
 use crate::oximetry::bands::SampledBand;
 use crate::oximetry::model::VesselModel;
-use crate::oximetry::odr::{diameter_corrected, leave_one_subject_out, segment_odr, two_point, within_group_slope, Linear};
+use crate::oximetry::odr::{
+    Linear, diameter_corrected, leave_one_subject_out, segment_odr, two_point, within_group_slope,
+};
 use crate::oximetry::pointwise::fit_pointwise;
-use crate::oximetry::segment::{fit_segment, FitSettings, RobustLoss, SegmentSpectra};
+use crate::oximetry::segment::{FitSettings, RobustLoss, SegmentSpectra, fit_segment};
 use crate::run::epochs::EpochTables;
 use crate::run::transmissions::{ImageTables, PositionRow};
 use crate::stages::key::{Key, KeyBuilder};
@@ -51,16 +53,31 @@ pub const VERSION: u32 = 4;
 /// The stage's settings: the methods and the bands they read.
 pub fn settings_key(study: &Study) -> Key {
     let mut k = KeyBuilder::new("fits-settings", VERSION);
-    k.value("methods", &study.methods).value("bands", &study.instrument.bands).value("min-positions", &MIN_POSITIONS);
+    k.value("methods", &study.methods)
+        .value("bands", &study.instrument.bands)
+        .value("min-positions", &MIN_POSITIONS);
     k.finish()
 }
 
 /// Fits every capture's segments by every method. Captures are taken in
 /// parallel, each reading its positions from the image stage's cache and
 /// dropping them when done; multiband results are cached per capture.
-pub fn build(study: &Study, epochs: &EpochTables, images: &ImageTables, runner: &Runner, items: &Items) -> Result<Vec<FitRow>> {
-    let bands: Vec<SampledBand> = study.instrument.bands.iter().map(|b| SampledBand::from_response(&b.response)).collect();
-    let captures: Vec<usize> = (0..epochs.captures.len()).filter(|i| images.position_counts[*i] > 0).collect();
+pub fn build(
+    study: &Study,
+    epochs: &EpochTables,
+    images: &ImageTables,
+    runner: &Runner,
+    items: &Items,
+) -> Result<Vec<FitRow>> {
+    let bands: Vec<SampledBand> = study
+        .instrument
+        .bands
+        .iter()
+        .map(|b| SampledBand::from_response(&b.response))
+        .collect();
+    let captures: Vec<usize> = (0..epochs.captures.len())
+        .filter(|i| images.position_counts[*i] > 0)
+        .collect();
     let per_capture: Vec<Vec<Vec<FitRow>>> = captures
         .par_iter()
         .map(|&ci| -> Result<Vec<Vec<FitRow>>> {
@@ -80,23 +97,40 @@ pub fn build(study: &Study, epochs: &EpochTables, images: &ImageTables, runner: 
                     // interrupted run or a changed capture refits only what it must.
                     MethodKind::Multiband { .. } => {
                         let mut k = KeyBuilder::new("fits-capture", VERSION);
-                        k.value("method", m).value("bands", &study.instrument.bands).value("min-positions", &MIN_POSITIONS).key("images", &images.keys[ci]);
-                        items.try_get_or_compute(&k.finish(), || Ok(fit_capture(m, &bands, ci, load()?)))?
+                        k.value("method", m)
+                            .value("bands", &study.instrument.bands)
+                            .value("min-positions", &MIN_POSITIONS)
+                            .key("images", &images.keys[ci]);
+                        items.try_get_or_compute(&k.finish(), || {
+                            Ok(fit_capture(m, &bands, ci, load()?))
+                        })?
                     }
                     MethodKind::TwoBand { .. } => fit_capture(m, &bands, ci, load()?),
                 };
-                out.push(rows.into_iter().map(|mut r| {
-                    r.capture_index = ci;
-                    r
-                }).collect());
+                out.push(
+                    rows.into_iter()
+                        .map(|mut r| {
+                            r.capture_index = ci;
+                            r
+                        })
+                        .collect(),
+                );
             }
             Ok(out)
         })
         .collect::<Result<_>>()?;
     let mut out = Vec::new();
     for (mi, m) in study.methods.iter().enumerate() {
-        let mut rows: Vec<FitRow> = per_capture.iter().flat_map(|c| c[mi].iter().cloned()).collect();
-        if let MethodKind::TwoBand { calibration, diameter_correction, .. } = &m.kind {
+        let mut rows: Vec<FitRow> = per_capture
+            .iter()
+            .flat_map(|c| c[mi].iter().cloned())
+            .collect();
+        if let MethodKind::TwoBand {
+            calibration,
+            diameter_correction,
+            ..
+        } = &m.kind
+        {
             if *diameter_correction {
                 correct_for_diameter(&mut rows);
             }
@@ -108,7 +142,12 @@ pub fn build(study: &Study, epochs: &EpochTables, images: &ImageTables, runner: 
 }
 
 /// One capture's segments by one method (before any cohort calibration).
-fn fit_capture(m: &Method, bands: &[SampledBand], ci: usize, positions: &[PositionRow]) -> Vec<FitRow> {
+fn fit_capture(
+    m: &Method,
+    bands: &[SampledBand],
+    ci: usize,
+    positions: &[PositionRow],
+) -> Vec<FitRow> {
     let mut groups: BTreeMap<String, Vec<&PositionRow>> = BTreeMap::new();
     for r in positions {
         if r.flags.is_empty() && r.transmission.iter().all(|t| t.is_finite() && *t > 0.0) {
@@ -116,82 +155,121 @@ fn fit_capture(m: &Method, bands: &[SampledBand], ci: usize, positions: &[Positi
         }
     }
     // Every segment the image stage profiled, even with too few positions.
-    let mut keys: Vec<(usize, String, String)> = positions.iter().map(|r| (ci, r.segment.clone(), r.kind.clone())).collect();
+    let mut keys: Vec<(usize, String, String)> = positions
+        .iter()
+        .map(|r| (ci, r.segment.clone(), r.kind.clone()))
+        .collect();
     keys.sort();
     keys.dedup();
-    let groups: BTreeMap<(usize, String), Vec<&PositionRow>> = groups.into_iter().map(|(k, v)| ((ci, k), v)).collect();
+    let groups: BTreeMap<(usize, String), Vec<&PositionRow>> =
+        groups.into_iter().map(|(k, v)| ((ci, k), v)).collect();
     {
         let fit_one = |(ci, seg, kind): &(usize, String, String)| -> FitRow {
-                let pos = groups.get(&(*ci, seg.clone())).cloned().unwrap_or_default();
-                let diameter = if pos.is_empty() { f64::NAN } else { pos.iter().map(|p| p.diameter_um).sum::<f64>() / pos.len() as f64 };
-                let mut row = FitRow {
-                    capture_index: *ci,
-                    segment: seg.clone(),
-                    kind: kind.clone(),
-                    method: m.label.clone(),
-                    so2: None,
-                    so2_se: None,
-                    reduced_chi2: None,
-                    odr: None,
-                    odr_uncorrected: None,
-                    iterations: 0,
-                    evaluations: 0,
-                    termination: String::new(),
-                    positions: pos.len() as i64,
-                    diameter_um: diameter,
-                    along_sd: None,
-                };
-                if pos.len() < MIN_POSITIONS {
-                    row.termination = format!("too few usable positions ({} < {MIN_POSITIONS})", pos.len());
-                    return row;
+            let pos = groups.get(&(*ci, seg.clone())).cloned().unwrap_or_default();
+            let diameter = if pos.is_empty() {
+                f64::NAN
+            } else {
+                pos.iter().map(|p| p.diameter_um).sum::<f64>() / pos.len() as f64
+            };
+            let mut row = FitRow {
+                capture_index: *ci,
+                segment: seg.clone(),
+                kind: kind.clone(),
+                method: m.label.clone(),
+                so2: None,
+                so2_se: None,
+                reduced_chi2: None,
+                odr: None,
+                odr_uncorrected: None,
+                iterations: 0,
+                evaluations: 0,
+                termination: String::new(),
+                positions: pos.len() as i64,
+                diameter_um: diameter,
+                along_sd: None,
+            };
+            if pos.len() < MIN_POSITIONS {
+                row.termination =
+                    format!("too few usable positions ({} < {MIN_POSITIONS})", pos.len());
+                return row;
+            }
+            match &m.kind {
+                MethodKind::TwoBand {
+                    sensitive,
+                    isosbestic,
+                    ..
+                } => {
+                    let ts: Vec<f64> = pos.iter().map(|p| p.transmission[*sensitive]).collect();
+                    let ti: Vec<f64> = pos.iter().map(|p| p.transmission[*isosbestic]).collect();
+                    row.odr = segment_odr(&ts, &ti);
+                    row.termination = if row.odr.is_some() {
+                        "odr".into()
+                    } else {
+                        "no optical density".into()
+                    };
                 }
-                match &m.kind {
-                    MethodKind::TwoBand { sensitive, isosbestic, .. } => {
-                        let ts: Vec<f64> = pos.iter().map(|p| p.transmission[*sensitive]).collect();
-                        let ti: Vec<f64> = pos.iter().map(|p| p.transmission[*isosbestic]).collect();
-                        row.odr = segment_odr(&ts, &ti);
-                        row.termination = if row.odr.is_some() { "odr".into() } else { "no optical density".into() };
-                    }
-                    MethodKind::Multiband { .. } if pos.iter().any(|p| !p.diameter_um.is_finite()) => {
-                        row.termination = "no diameter: the multiband model needs `diameter_um`".into();
-                    }
-                    MethodKind::Multiband { bands: sel, loss, pointwise } => {
-                        let (model, settings) = multiband_model(&bands, sel, *loss);
-                        let spectra = SegmentSpectra {
-                            diameters_um: pos.iter().map(|p| p.diameter_um).collect(),
-                            transmissions: pos.iter().map(|p| sel.iter().map(|b| p.transmission[*b]).collect()).collect(),
-                        };
-                        if *pointwise {
-                            let f = fit_pointwise(&model, &spectra, &settings);
-                            if f.so2.is_finite() {
-                                row.so2 = Some(f.so2 * 100.0);
-                                row.so2_se = Some(f.so2_se * 100.0);
-                                row.along_sd = Some(f.so2_sd * 100.0).filter(|v| v.is_finite());
-                            }
-                            row.iterations = f.positions.iter().map(|p| p.iterations as i64).sum();
-                            row.evaluations = f.positions.iter().map(|p| p.evaluations as i64).sum();
-                            row.termination = format!("{} of {} positions converged", f.n_converged, f.positions.len());
-                        } else if let Some(f) = fit_segment(&model, &spectra, &settings) {
+                MethodKind::Multiband { .. } if pos.iter().any(|p| !p.diameter_um.is_finite()) => {
+                    row.termination = "no diameter: the multiband model needs `diameter_um`".into();
+                }
+                MethodKind::Multiband {
+                    bands: sel,
+                    loss,
+                    pointwise,
+                } => {
+                    let (model, settings) = multiband_model(&bands, sel, *loss);
+                    let spectra = SegmentSpectra {
+                        diameters_um: pos.iter().map(|p| p.diameter_um).collect(),
+                        transmissions: pos
+                            .iter()
+                            .map(|p| sel.iter().map(|b| p.transmission[*b]).collect())
+                            .collect(),
+                    };
+                    if *pointwise {
+                        let f = fit_pointwise(&model, &spectra, &settings);
+                        if f.so2.is_finite() {
                             row.so2 = Some(f.so2 * 100.0);
                             row.so2_se = Some(f.so2_se * 100.0);
-                            row.reduced_chi2 = Some(f.reduced_chi2);
-                            row.iterations = f.iterations as i64;
-                            row.evaluations = f.evaluations as i64;
-                            row.termination = f.termination.to_string();
-                        } else {
-                            row.termination = "not fitted".into();
+                            row.along_sd = Some(f.so2_sd * 100.0).filter(|v| v.is_finite());
                         }
+                        row.iterations = f.positions.iter().map(|p| p.iterations as i64).sum();
+                        row.evaluations = f.positions.iter().map(|p| p.evaluations as i64).sum();
+                        row.termination = format!(
+                            "{} of {} positions converged",
+                            f.n_converged,
+                            f.positions.len()
+                        );
+                    } else if let Some(f) = fit_segment(&model, &spectra, &settings) {
+                        row.so2 = Some(f.so2 * 100.0);
+                        row.so2_se = Some(f.so2_se * 100.0);
+                        row.reduced_chi2 = Some(f.reduced_chi2);
+                        row.iterations = f.iterations as i64;
+                        row.evaluations = f.evaluations as i64;
+                        row.termination = f.termination.to_string();
+                    } else {
+                        row.termination = "not fitted".into();
                     }
                 }
-                row
+            }
+            row
         };
         keys.iter().map(fit_one).collect()
     }
 }
 
 /// The vessel model over the method's bands and the fit settings for its loss.
-pub fn multiband_model(bands: &[SampledBand], selected: &[usize], loss: Loss) -> (VesselModel, FitSettings) {
-    let model = VesselModel::new(&selected.iter().map(|b| bands[*b].clone()).collect::<Vec<_>>(), |_| 1.0, 0.04);
+pub fn multiband_model(
+    bands: &[SampledBand],
+    selected: &[usize],
+    loss: Loss,
+) -> (VesselModel, FitSettings) {
+    let model = VesselModel::new(
+        &selected
+            .iter()
+            .map(|b| bands[*b].clone())
+            .collect::<Vec<_>>(),
+        |_| 1.0,
+        0.04,
+    );
     let settings = FitSettings {
         loss: match loss {
             Loss::Squared => RobustLoss::Squared,
@@ -212,17 +290,32 @@ pub fn multiband_model(bands: &[SampledBand], selected: &[usize], loss: Loss) ->
 pub fn correct_for_diameter(rows: &mut [FitRow]) -> Option<(f64, f64)> {
     let mut groups: BTreeMap<(usize, &str), Vec<(f64, f64)>> = BTreeMap::new();
     for r in rows.iter() {
-        if let Some(o) = r.odr.filter(|o| o.is_finite()).filter(|_| r.diameter_um.is_finite()) {
-            groups.entry((r.capture_index, r.kind.as_str())).or_default().push((r.diameter_um, o));
+        if let Some(o) = r
+            .odr
+            .filter(|o| o.is_finite())
+            .filter(|_| r.diameter_um.is_finite())
+        {
+            groups
+                .entry((r.capture_index, r.kind.as_str()))
+                .or_default()
+                .push((r.diameter_um, o));
         }
     }
     let slope = within_group_slope(&groups.into_values().collect::<Vec<_>>())?;
-    let mut d: Vec<f64> = rows.iter().filter(|r| r.odr.is_some() && r.diameter_um.is_finite()).map(|r| r.diameter_um).collect();
+    let mut d: Vec<f64> = rows
+        .iter()
+        .filter(|r| r.odr.is_some() && r.diameter_um.is_finite())
+        .map(|r| r.diameter_um)
+        .collect();
     d.sort_by(f64::total_cmp);
     let reference = d[d.len() / 2];
     for r in rows.iter_mut() {
         r.odr_uncorrected = r.odr;
-        r.odr = r.odr.and_then(|o| r.diameter_um.is_finite().then(|| diameter_corrected(o, r.diameter_um, slope, reference)));
+        r.odr = r.odr.and_then(|o| {
+            r.diameter_um
+                .is_finite()
+                .then(|| diameter_corrected(o, r.diameter_um, slope, reference))
+        });
     }
     Some((slope, reference))
 }
@@ -232,26 +325,47 @@ fn calibrate(rows: &mut [FitRow], cal: &Calibration, study: &Study, epochs: &Epo
     let c = &epochs.captures;
     match cal {
         Calibration::Fixed { intercept, slope } => {
-            let l = Linear { intercept: *intercept, slope: *slope };
+            let l = Linear {
+                intercept: *intercept,
+                slope: *slope,
+            };
             for r in rows.iter_mut() {
                 r.so2 = r.odr.map(|o| l.apply(o));
             }
         }
         Calibration::TwoPoint { epoch, venule_so2 } => {
             let name = &study.protocol.epochs[*epoch].name;
-            let in_epoch = |r: &FitRow| c[r.capture_index].status == "steady" && c[r.capture_index].epoch.as_deref() == Some(name.as_str());
-            let a: Vec<(f64, f64)> = rows.iter().filter(|r| r.kind == "arteriole" && in_epoch(r)).filter_map(|r| Some((r.odr?, c[r.capture_index].spo2?))).collect();
-            let v: Vec<f64> = rows.iter().filter(|r| r.kind == "venule" && in_epoch(r)).filter_map(|r| r.odr).collect();
+            let in_epoch = |r: &FitRow| {
+                c[r.capture_index].status == "steady"
+                    && c[r.capture_index].epoch.as_deref() == Some(name.as_str())
+            };
+            let a: Vec<(f64, f64)> = rows
+                .iter()
+                .filter(|r| r.kind == "arteriole" && in_epoch(r))
+                .filter_map(|r| Some((r.odr?, c[r.capture_index].spo2?)))
+                .collect();
+            let v: Vec<f64> = rows
+                .iter()
+                .filter(|r| r.kind == "venule" && in_epoch(r))
+                .filter_map(|r| r.odr)
+                .collect();
             let mean = |x: &[f64]| x.iter().sum::<f64>() / x.len() as f64;
             let line = if a.is_empty() || v.is_empty() {
                 None
             } else {
-                two_point(mean(&a.iter().map(|p| p.0).collect::<Vec<_>>()), mean(&a.iter().map(|p| p.1).collect::<Vec<_>>()), mean(&v), *venule_so2)
+                two_point(
+                    mean(&a.iter().map(|p| p.0).collect::<Vec<_>>()),
+                    mean(&a.iter().map(|p| p.1).collect::<Vec<_>>()),
+                    mean(&v),
+                    *venule_so2,
+                )
             };
             for r in rows.iter_mut() {
                 r.so2 = line.and_then(|l| r.odr.map(|o| l.apply(o)));
                 if line.is_none() {
-                    r.termination = format!("no two-point calibration: no arteriole with reference SpO2 and no venule in `{name}`");
+                    r.termination = format!(
+                        "no two-point calibration: no arteriole with reference SpO2 and no venule in `{name}`"
+                    );
                 }
             }
         }
@@ -259,9 +373,18 @@ fn calibrate(rows: &mut [FitRow], cal: &Calibration, study: &Study, epochs: &Epo
             let pairs: Vec<(&str, f64, f64)> = rows
                 .iter()
                 .filter(|r| r.kind == "arteriole" && c[r.capture_index].status == "steady")
-                .filter_map(|r| Some((c[r.capture_index].subject.as_str(), r.odr?, c[r.capture_index].spo2?)))
+                .filter_map(|r| {
+                    Some((
+                        c[r.capture_index].subject.as_str(),
+                        r.odr?,
+                        c[r.capture_index].spo2?,
+                    ))
+                })
                 .collect();
-            let cal: BTreeMap<String, Option<Linear>> = leave_one_subject_out(&pairs).into_iter().map(|(s, l)| (s.to_string(), l)).collect();
+            let cal: BTreeMap<String, Option<Linear>> = leave_one_subject_out(&pairs)
+                .into_iter()
+                .map(|(s, l)| (s.to_string(), l))
+                .collect();
             for r in rows.iter_mut() {
                 let l = cal.get(&c[r.capture_index].subject).copied().flatten();
                 r.so2 = l.and_then(|l| r.odr.map(|o| l.apply(o)));
@@ -277,7 +400,10 @@ pub fn write(rows: &[FitRow], epochs: &EpochTables, out: &Path) -> Result<Vec<st
         .text("session", rows.iter().map(|r| &c[r.capture_index].session))
         .text("eye", rows.iter().map(|r| &c[r.capture_index].eye))
         .text("capture", rows.iter().map(|r| &c[r.capture_index].capture))
-        .opt_text("epoch", rows.iter().map(|r| c[r.capture_index].epoch.clone()))
+        .opt_text(
+            "epoch",
+            rows.iter().map(|r| c[r.capture_index].epoch.clone()),
+        )
         .text("status", rows.iter().map(|r| &c[r.capture_index].status))
         .text("segment", rows.iter().map(|r| &r.segment))
         .text("kind", rows.iter().map(|r| &r.kind))
@@ -299,7 +425,9 @@ pub fn write(rows: &[FitRow], epochs: &EpochTables, out: &Path) -> Result<Vec<st
 /// This stage's part of the report's methods text: one sentence per method.
 pub fn describe(study: &Study) -> String {
     let band = |i: &usize| study.instrument.bands[*i].name.clone();
-    let mut parts = vec![format!("Segments with at least {MIN_POSITIONS} usable positions were analysed by each method.")];
+    let mut parts = vec![format!(
+        "Segments with at least {MIN_POSITIONS} usable positions were analysed by each method."
+    )];
     for m in &study.methods {
         parts.push(match &m.kind {
             MethodKind::TwoBand { sensitive, isosbestic, calibration, diameter_correction } => {

@@ -6,12 +6,12 @@ use std::path::{Path, PathBuf};
 use anyhow::Result;
 use nalgebra::DMatrix;
 
-use crate::cli::printer::Printer;
 use crate::cli::Exit;
+use crate::cli::printer::Printer;
 use crate::config::csvfile::read_csv;
 use crate::config::diag::Findings;
-use crate::stats::design::{build, RandomSpec, Spec};
-use crate::stats::infer::{contrast, f_test, holm, Test};
+use crate::stats::design::{RandomSpec, Spec, build};
+use crate::stats::infer::{Test, contrast, f_test, holm};
 use crate::stats::lmm::{Criterion, Model};
 use crate::tables::Table;
 
@@ -38,7 +38,8 @@ fn tests_table(rows: &[Test], holm_p: Option<&[f64]>) -> Table {
         .real("upper", rows.iter().map(|r| r.upper))
         .real("confidence", rows.iter().map(|_| 0.95));
     if let Some(h) = holm_p {
-        t.real("p_adjusted", h.iter().copied()).text("adjustment", h.iter().map(|_| "holm"));
+        t.real("p_adjusted", h.iter().copied())
+            .text("adjustment", h.iter().map(|_| "holm"));
     }
     t
 }
@@ -64,19 +65,29 @@ pub fn mixed(a: &MixedArgs, printer: &Printer) -> Result<Exit> {
         match r.split_once('=') {
             Some((c, l)) => reference.push((c.to_string(), l.to_string())),
             None => {
-                printer.error(format!("`--reference {r}`: write `COLUMN=LEVEL`, e.g. `epoch=air`"));
+                printer.error(format!(
+                    "`--reference {r}`: write `COLUMN=LEVEL`, e.g. `epoch=air`"
+                ));
                 return Ok(Exit::Problem);
             }
         }
     }
-    let spec = Spec { response: a.response.clone(), fixed: a.fixed.clone(), random, reference };
+    let spec = Spec {
+        response: a.response.clone(),
+        fixed: a.fixed.clone(),
+        random,
+        reference,
+    };
     let Some(table) = read_csv(&a.data, &mut findings) else {
         printer.findings(&findings);
         return Ok(Exit::Problem);
     };
     let Some(design) = build(&table, &a.data, &spec, &mut findings) else {
         printer.findings(&findings);
-        printer.error(format!("cannot build the model from `{}`", a.data.display()));
+        printer.error(format!(
+            "cannot build the model from `{}`",
+            a.data.display()
+        ));
         return Ok(Exit::Problem);
     };
     let mut contrast_weights = Vec::new();
@@ -90,7 +101,10 @@ pub fn mixed(a: &MixedArgs, printer: &Printer) -> Result<Exit> {
         }
     }
     let factors = design.factors.clone();
-    let model = Model::new(design.data, if a.ml { Criterion::Ml } else { Criterion::Reml });
+    let model = Model::new(
+        design.data,
+        if a.ml { Criterion::Ml } else { Criterion::Reml },
+    );
     let Some(fit) = model.fit() else {
         printer.error("the model could not be fitted: the fixed effects are not estimable (check for empty or collinear columns)");
         return Ok(Exit::Problem);
@@ -103,7 +117,10 @@ pub fn mixed(a: &MixedArgs, printer: &Printer) -> Result<Exit> {
             contrast(&model, &fit, &model.fixed_names()[k], &l)
         })
         .collect();
-    let cons: Vec<Test> = contrast_weights.iter().map(|(label, l)| contrast(&model, &fit, label, l)).collect();
+    let cons: Vec<Test> = contrast_weights
+        .iter()
+        .map(|(label, l)| contrast(&model, &fit, label, l))
+        .collect();
     let holm_p = holm(&cons.iter().map(|c| c.p).collect::<Vec<_>>());
     let comps = model.components(&fit);
 
@@ -112,44 +129,83 @@ pub fn mixed(a: &MixedArgs, printer: &Printer) -> Result<Exit> {
         "linear mixed model fitted by {crit}: {} observations; {crit} criterion (−2 log-likelihood) {:.4}; {}\n",
         fit.n_obs,
         fit.deviance,
-        if fit.converged { "converged" } else { "NOT converged" }
+        if fit.converged {
+            "converged"
+        } else {
+            "NOT converged"
+        }
     );
     s.push_str("random effects:\n");
     let mut vc_group = Vec::new();
     let mut vc_var = Vec::new();
     for (name, cols, cov) in &comps.terms {
         for (i, c) in cols.iter().enumerate() {
-            let g = if cols.len() == 1 { name.clone() } else { format!("{name} {c}") };
-            s.push_str(&format!("  {g:<28} variance {:>12.6}  sd {:>10.6}\n", cov[(i, i)], cov[(i, i)].sqrt()));
+            let g = if cols.len() == 1 {
+                name.clone()
+            } else {
+                format!("{name} {c}")
+            };
+            s.push_str(&format!(
+                "  {g:<28} variance {:>12.6}  sd {:>10.6}\n",
+                cov[(i, i)],
+                cov[(i, i)].sqrt()
+            ));
             vc_group.push(g);
             vc_var.push(cov[(i, i)]);
         }
         for i in 0..cols.len() {
             for j in 0..i {
                 let r = cov[(i, j)] / (cov[(i, i)] * cov[(j, j)]).sqrt();
-                s.push_str(&format!("  {name}: correlation of {} and {}: {:.4}\n", cols[j], cols[i], r));
+                s.push_str(&format!(
+                    "  {name}: correlation of {} and {}: {:.4}\n",
+                    cols[j], cols[i], r
+                ));
             }
         }
     }
-    s.push_str(&format!("  {:<28} variance {:>12.6}  sd {:>10.6}\n", "Residual", comps.residual, comps.residual.sqrt()));
+    s.push_str(&format!(
+        "  {:<28} variance {:>12.6}  sd {:>10.6}\n",
+        "Residual",
+        comps.residual,
+        comps.residual.sqrt()
+    ));
     vc_group.push("Residual".into());
     vc_var.push(comps.residual);
-    let line = |t: &Test| format!("  {:<24} {:>12.6} {:>10.6} {:>10.3} {:>9.3} {:>10.3e}\n", t.label, t.estimate, t.std_error, t.df, t.t, t.p);
-    s.push_str(&format!("fixed effects (Satterthwaite df):\n  {:<24} {:>12} {:>10} {:>10} {:>9} {:>10}\n", "term", "estimate", "SE", "df", "t", "p"));
+    let line = |t: &Test| {
+        format!(
+            "  {:<24} {:>12.6} {:>10.6} {:>10.3} {:>9.3} {:>10.3e}\n",
+            t.label, t.estimate, t.std_error, t.df, t.t, t.p
+        )
+    };
+    s.push_str(&format!(
+        "fixed effects (Satterthwaite df):\n  {:<24} {:>12} {:>10} {:>10} {:>9} {:>10}\n",
+        "term", "estimate", "SE", "df", "t", "p"
+    ));
     for t in &fixed {
         s.push_str(&line(t));
     }
     for fa in &factors {
         if fa.x_columns.len() > 1 {
-            let l = DMatrix::from_fn(fa.x_columns.len(), p, |i, j| if j == fa.x_columns[i] { 1.0 } else { 0.0 });
+            let l = DMatrix::from_fn(fa.x_columns.len(), p, |i, j| {
+                if j == fa.x_columns[i] { 1.0 } else { 0.0 }
+            });
             let (f, ndf, ddf, pv) = f_test(&model, &fit, &l);
-            s.push_str(&format!("  F test for `{}`: F = {f:.4} on {ndf} and {ddf:.3} df, p = {pv:.3e}\n", fa.column));
+            s.push_str(&format!(
+                "  F test for `{}`: F = {f:.4} on {ndf} and {ddf:.3} df, p = {pv:.3e}\n",
+                fa.column
+            ));
         }
     }
     if !cons.is_empty() {
         s.push_str("contrasts (Holm-adjusted p across them):\n");
         for (t, h) in cons.iter().zip(&holm_p) {
-            s.push_str(&format!("{}    95 % CI {:.4} to {:.4}; Holm p {:.3e}\n", line(t).trim_end(), t.lower, t.upper, h));
+            s.push_str(&format!(
+                "{}    95 % CI {:.4} to {:.4}; Holm p {:.3e}\n",
+                line(t).trim_end(),
+                t.lower,
+                t.upper,
+                h
+            ));
         }
     }
     printer.data(s);
@@ -162,14 +218,28 @@ pub fn mixed(a: &MixedArgs, printer: &Printer) -> Result<Exit> {
 }
 
 #[allow(clippy::too_many_arguments)]
-fn write_outputs(out: &Path, fixed: &[Test], cons: &[Test], holm_p: &[f64], g: &[String], v: &[f64], fit: &crate::stats::lmm::Fit, crit: &str) -> Result<()> {
+fn write_outputs(
+    out: &Path,
+    fixed: &[Test],
+    cons: &[Test],
+    holm_p: &[f64],
+    g: &[String],
+    v: &[f64],
+    fit: &crate::stats::lmm::Fit,
+    crit: &str,
+) -> Result<()> {
     tests_table(fixed, None).write(out, "fixed_effects")?;
     tests_table(cons, Some(holm_p)).write(out, "contrasts")?;
     let mut t = Table::new();
-    t.text("group", g).real("variance", v.iter().copied()).real("sd", v.iter().map(|x| x.sqrt()));
+    t.text("group", g)
+        .real("variance", v.iter().copied())
+        .real("sd", v.iter().map(|x| x.sqrt()));
     t.write(out, "variance_components")?;
     let mut t = Table::new();
-    t.int("n_obs", [fit.n_obs as i64]).real("criterion", [fit.deviance]).text("method", [crit]).text("converged", [if fit.converged { "true" } else { "false" }]);
+    t.int("n_obs", [fit.n_obs as i64])
+        .real("criterion", [fit.deviance])
+        .text("method", [crit])
+        .text("converged", [if fit.converged { "true" } else { "false" }]);
     t.write(out, "fit")?;
     Ok(())
 }

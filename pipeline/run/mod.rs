@@ -2,10 +2,10 @@
 
 pub mod epochs;
 pub mod fits;
-pub mod statistics;
-pub mod transmissions;
 pub mod mixed;
 pub mod sensitivity;
+pub mod statistics;
+pub mod transmissions;
 
 use std::path::Path;
 
@@ -15,13 +15,13 @@ use std::path::PathBuf;
 use anyhow::{Context, Result};
 use rayon::prelude::*;
 
-use crate::cli::printer::Printer;
 use crate::cli::Exit;
+use crate::cli::printer::Printer;
 use crate::config::duration::format_seconds;
-use crate::config::protocol::{load_protocol, Protocol};
-use crate::config::study::{load_study, resolve_study_path, Study};
-use crate::stages::key::{combine, hash_file, hash_file_or_missing, Key, KeyBuilder};
-use crate::stages::{manifest, Parts, Runner};
+use crate::config::protocol::{Protocol, load_protocol};
+use crate::config::study::{Study, load_study, resolve_study_path};
+use crate::stages::key::{Key, KeyBuilder, combine, hash_file, hash_file_or_missing};
+use crate::stages::{Parts, Runner, manifest};
 use crate::timeline::assign::CaptureStatus;
 
 /// Validates a study and everything it names. Writes nothing.
@@ -63,7 +63,11 @@ pub fn show_protocol(file: &Path, printer: &Printer) -> Result<Exit> {
         }
         Err(findings) => {
             printer.findings(&findings);
-            printer.error(format!("`{}` has {} errors", file.display(), findings.error_count()));
+            printer.error(format!(
+                "`{}` has {} errors",
+                file.display(),
+                findings.error_count()
+            ));
             Ok(Exit::Problem)
         }
     }
@@ -76,7 +80,17 @@ pub fn render_timeline(p: &Protocol) -> String {
         out.push_str(&format!(": {}", p.description));
     }
     out.push('\n');
-    let header = ["#", "epoch", "from", "steady from", "to", "duration", "gas", "O2", "equivalent altitude"];
+    let header = [
+        "#",
+        "epoch",
+        "from",
+        "steady from",
+        "to",
+        "duration",
+        "gas",
+        "O2",
+        "equivalent altitude",
+    ];
     let mut rows: Vec<Vec<String>> = vec![header.iter().map(|s| s.to_string()).collect()];
     for (i, (e, start)) in p.epochs.iter().zip(p.planned_starts()).enumerate() {
         rows.push(vec![
@@ -98,14 +112,31 @@ pub fn render_timeline(p: &Protocol) -> String {
             },
         ]);
     }
-    let widths: Vec<usize> = (0..header.len()).map(|c| rows.iter().map(|r| r[c].chars().count()).max().unwrap_or(0)).collect();
+    let widths: Vec<usize> = (0..header.len())
+        .map(|c| rows.iter().map(|r| r[c].chars().count()).max().unwrap_or(0))
+        .collect();
     for r in &rows {
-        let line: Vec<String> = r.iter().zip(&widths).map(|(s, w)| format!("{s:<w$}")).collect();
+        let line: Vec<String> = r
+            .iter()
+            .zip(&widths)
+            .map(|(s, w)| format!("{s:<w$}"))
+            .collect();
         out.push_str(&format!("  {}\n", line.join("  ").trim_end()));
     }
-    out.push_str(&format!("total {}; baseline `{}`\n", format_seconds(p.total_s()), p.epochs[p.baseline].name));
+    out.push_str(&format!(
+        "total {}; baseline `{}`\n",
+        format_seconds(p.total_s()),
+        p.epochs[p.baseline].name
+    ));
     if !p.contrasts.is_empty() {
-        out.push_str(&format!("contrasts: {}\n", p.contrasts.iter().map(|c| c.label.as_str()).collect::<Vec<_>>().join("; ")));
+        out.push_str(&format!(
+            "contrasts: {}\n",
+            p.contrasts
+                .iter()
+                .map(|c| c.label.as_str())
+                .collect::<Vec<_>>()
+                .join("; ")
+        ));
     }
     let r = &p.reference;
     out.push_str(&format!(
@@ -134,7 +165,11 @@ pub fn simulate(scenario: &Path, out: &Path, printer: &Printer) -> Result<Exit> 
         Ok(s) => s,
         Err(findings) => {
             printer.findings(&findings);
-            printer.error(format!("`{}` has {} errors; nothing was simulated", scenario.display(), findings.error_count()));
+            printer.error(format!(
+                "`{}` has {} errors; nothing was simulated",
+                scenario.display(),
+                findings.error_count()
+            ));
             return Ok(Exit::Problem);
         }
     };
@@ -158,10 +193,18 @@ pub fn simulate(scenario: &Path, out: &Path, printer: &Printer) -> Result<Exit> 
 pub fn run(arg: &Path, force: &[String], printer: &Printer) -> Result<Exit> {
     let path = resolve_study_path(arg);
     // A demo or planning folder ships its scenario; its data are generated on first use.
-    let dir = if arg.is_dir() { arg.to_path_buf() } else { arg.parent().map(Path::to_path_buf).unwrap_or_default() };
+    let dir = if arg.is_dir() {
+        arg.to_path_buf()
+    } else {
+        arg.parent().map(Path::to_path_buf).unwrap_or_default()
+    };
     let scenario = dir.join("scenario.yaml");
     if scenario.is_file() && !dir.join("truth").join("captures.parquet").is_file() {
-        printer.info(format!("no simulated data in `{}` yet: simulating it from `{}`", dir.display(), scenario.display()));
+        printer.info(format!(
+            "no simulated data in `{}` yet: simulating it from `{}`",
+            dir.display(),
+            scenario.display()
+        ));
         if simulate(&scenario, &dir, printer)? != Exit::Ok {
             return Ok(Exit::Problem);
         }
@@ -169,7 +212,11 @@ pub fn run(arg: &Path, force: &[String], printer: &Printer) -> Result<Exit> {
     let (study, findings) = load_study(&path);
     printer.findings(&findings);
     let Some(study) = study else {
-        printer.error(format!("`{}` has {} errors; the run did not start", path.display(), findings.error_count()));
+        printer.error(format!(
+            "`{}` has {} errors; the run did not start",
+            path.display(),
+            findings.error_count()
+        ));
         return Ok(Exit::Problem);
     };
     run_stages(&study, force, printer)
@@ -181,7 +228,12 @@ fn input_files(study: &Study) -> Vec<PathBuf> {
     v.extend(study.protocol_file.clone());
     v.extend(study.spectra_file.clone());
     for sess in study.subjects.iter().flat_map(|s| &s.sessions) {
-        let mut lists: Vec<PathBuf> = sess.captures.iter().map(|c| c.source.clone()).filter(|p| *p != study.file).collect();
+        let mut lists: Vec<PathBuf> = sess
+            .captures
+            .iter()
+            .map(|c| c.source.clone())
+            .filter(|p| *p != study.file)
+            .collect();
         lists.dedup();
         v.extend(lists);
         v.extend(sess.reference.as_ref().map(|r| r.path.clone()));
@@ -207,9 +259,16 @@ fn epochs_settings(study: &Study) -> Key {
 }
 
 fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit> {
-    printer.info(format!("study `{}`: {} subjects, {} captures; results under `{}`", study.id, study.subjects.len(), study.capture_count(), study.output.display()));
+    printer.info(format!(
+        "study `{}`: {} subjects, {} captures; results under `{}`",
+        study.id,
+        study.subjects.len(),
+        study.capture_count(),
+        study.output.display()
+    ));
     let out = &study.output;
-    std::fs::create_dir_all(out).with_context(|| format!("creating the output folder `{}`", out.display()))?;
+    std::fs::create_dir_all(out)
+        .with_context(|| format!("creating the output folder `{}`", out.display()))?;
     let runner = Runner::new(out, printer, force);
 
     // Content hashes of everything the run reads, once, in parallel.
@@ -217,18 +276,49 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
     let inputs = input_files(study);
     let hashed: Vec<(PathBuf, Option<(Key, u64)>)> = inputs
         .par_iter()
-        .map(|p| (p.clone(), hash_file(p).ok().map(|k| (k, std::fs::metadata(p).map(|m| m.len()).unwrap_or(0)))))
+        .map(|p| {
+            (
+                p.clone(),
+                hash_file(p)
+                    .ok()
+                    .map(|k| (k, std::fs::metadata(p).map(|m| m.len()).unwrap_or(0))),
+            )
+        })
         .collect();
-    let hashes: BTreeMap<PathBuf, Key> = hashed.iter().filter_map(|(p, h)| h.map(|(k, _)| (p.clone(), k))).collect();
-    printer.verbose(format!("hashed {} input files in {:.1} s", hashed.len(), t0.elapsed().as_secs_f64()));
-    let hash = |p: &Path| hashes.get(p).copied().unwrap_or_else(|| hash_file_or_missing(p));
+    let hashes: BTreeMap<PathBuf, Key> = hashed
+        .iter()
+        .filter_map(|(p, h)| h.map(|(k, _)| (p.clone(), k)))
+        .collect();
+    printer.verbose(format!(
+        "hashed {} input files in {:.1} s",
+        hashed.len(),
+        t0.elapsed().as_secs_f64()
+    ));
+    let hash = |p: &Path| {
+        hashes
+            .get(p)
+            .copied()
+            .unwrap_or_else(|| hash_file_or_missing(p))
+    };
 
     // Epochs and reference SpO2.
-    let logs = combine("spo2-logs", study.subjects.iter().flat_map(|s| &s.sessions).filter_map(|s| s.reference.as_ref()).map(|r| hash(&r.path)));
+    let logs = combine(
+        "spo2-logs",
+        study
+            .subjects
+            .iter()
+            .flat_map(|s| &s.sessions)
+            .filter_map(|s| s.reference.as_ref())
+            .map(|r| hash(&r.path)),
+    );
     let (tables, epochs_key) = runner.stage(
         "epochs",
         epochs::VERSION,
-        Parts { settings: epochs_settings(study), inputs: logs, upstream: vec![] },
+        Parts {
+            settings: epochs_settings(study),
+            inputs: logs,
+            upstream: vec![],
+        },
         |_| {
             let t = epochs::build(study);
             let d = format!(
@@ -245,37 +335,81 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
     )?;
 
     // Images → transmissions, capture by capture.
-    let keys = if study.spectra.is_some() { transmissions::spectra_item_keys(study, &tables) } else { transmissions::item_keys(study, &tables, &hashes) };
+    let keys = if study.spectra.is_some() {
+        transmissions::spectra_item_keys(study, &tables)
+    } else {
+        transmissions::item_keys(study, &tables, &hashes)
+    };
     let (images, images_key) = runner.stage(
         "images",
         transmissions::VERSION,
-        Parts { settings: transmissions::settings_key(study), inputs: combine("captures", keys.iter().copied()), upstream: vec![("epochs", epochs_key)] },
+        Parts {
+            settings: transmissions::settings_key(study),
+            inputs: combine("captures", keys.iter().copied()),
+            upstream: vec![("epochs", epochs_key)],
+        },
         |r| {
-            let analysed = tables.captures.iter().filter(|c| matches!(c.status.as_str(), "steady" | "settling")).count();
+            let analysed = tables
+                .captures
+                .iter()
+                .filter(|c| matches!(c.status.as_str(), "steady" | "settling"))
+                .count();
             let items = r.items("images", analysed, "images");
-            let t = if study.spectra.is_some() { transmissions::from_spectra(study, &tables, keys.clone(), &items) } else { transmissions::build(study, &tables, keys.clone(), &items) };
+            let t = if study.spectra.is_some() {
+                transmissions::from_spectra(study, &tables, keys.clone(), &items)
+            } else {
+                transmissions::build(study, &tables, keys.clone(), &items)
+            };
             let detail = items.finish("captures")?;
             let d = format!("{detail}; {} profile positions", t.total_positions());
             Ok((t, d))
         },
         |t, r| t.write(out, study, &tables, r),
     )?;
-    let failed: Vec<usize> = (0..tables.captures.len()).filter(|i| matches!(images.status[*i].status.as_str(), "error" | "not-registered")).collect();
+    let failed: Vec<usize> = (0..tables.captures.len())
+        .filter(|i| {
+            matches!(
+                images.status[*i].status.as_str(),
+                "error" | "not-registered"
+            )
+        })
+        .collect();
     for &i in &failed {
-        runner.warn(format!("capture `{}` ({}): {}", tables.captures[i].capture, images.status[i].status, images.status[i].message.clone().unwrap_or_default()));
+        runner.warn(format!(
+            "capture `{}` ({}): {}",
+            tables.captures[i].capture,
+            images.status[i].status,
+            images.status[i].message.clone().unwrap_or_default()
+        ));
     }
 
     // Fits per method.
     let (fits, fits_key) = runner.stage(
         "fits",
         fits::VERSION,
-        Parts { settings: fits::settings_key(study), inputs: combine("none", []), upstream: vec![("epochs", epochs_key), ("images", images_key)] },
+        Parts {
+            settings: fits::settings_key(study),
+            inputs: combine("none", []),
+            upstream: vec![("epochs", epochs_key), ("images", images_key)],
+        },
         |r| {
-            let n = images.keys.len() * study.methods.iter().filter(|m| matches!(m.kind, crate::config::study::MethodKind::Multiband { .. })).count();
+            let n = images.keys.len()
+                * study
+                    .methods
+                    .iter()
+                    .filter(|m| {
+                        matches!(m.kind, crate::config::study::MethodKind::Multiband { .. })
+                    })
+                    .count();
             let items = r.items("fits", n, "fits");
             let rows = fits::build(study, &tables, &images, r, &items)?;
             let detail = items.finish("multiband capture fits")?;
-            let d = format!("{} segment fits over {} methods, {} with an SO2 ({detail})", rows.len(), study.methods.len(), rows.iter().filter(|f| f.so2.is_some()).count());
+            let d = format!(
+                "{} segment fits over {} methods, {} with an SO2 ({detail})",
+                rows.len(),
+                study.methods.len(),
+                rows.iter().filter(|f| f.so2.is_some()).count()
+            );
             Ok((rows, d))
         },
         |rows, _| fits::write(rows, &tables, out),
@@ -285,10 +419,19 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
     let (stats, stats_key) = runner.stage(
         "statistics",
         statistics::VERSION,
-        Parts { settings: statistics::settings_key(study), inputs: combine("none", []), upstream: vec![("epochs", epochs_key), ("fits", fits_key)] },
+        Parts {
+            settings: statistics::settings_key(study),
+            inputs: combine("none", []),
+            upstream: vec![("epochs", epochs_key), ("fits", fits_key)],
+        },
         |_| {
             let s = statistics::build(study, &tables, &fits);
-            let d = format!("{} subject × epoch summaries, {} contrasts, {} agreement rows", s.summaries.len(), s.contrasts.len(), s.agreement.len());
+            let d = format!(
+                "{} subject × epoch summaries, {} contrasts, {} agreement rows",
+                s.summaries.len(),
+                s.contrasts.len(),
+                s.agreement.len()
+            );
             Ok((s, d))
         },
         |s, _| s.write(out),
@@ -296,7 +439,8 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
     // A minimum diameter that empties a method and vessel kind leaves it
     // out of every statistic: say so rather than let the rows vanish.
     if let Some(d) = study.exclusions.min_diameter_um {
-        let mut by: std::collections::BTreeMap<(&str, &str), (i64, i64)> = std::collections::BTreeMap::new();
+        let mut by: std::collections::BTreeMap<(&str, &str), (i64, i64)> =
+            std::collections::BTreeMap::new();
         for r in stats.summaries.iter().filter(|r| r.kind != "arteriovenous") {
             let e = by.entry((r.method.as_str(), r.kind.as_str())).or_default();
             e.0 += r.segments;
@@ -327,14 +471,27 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
     }
 
     // The report.
-    let rel = |p: &Path| p.strip_prefix(&study.root).unwrap_or(p).to_string_lossy().replace('\\', "/");
+    let rel = |p: &Path| {
+        p.strip_prefix(&study.root)
+            .unwrap_or(p)
+            .to_string_lossy()
+            .replace('\\', "/")
+    };
     let report_inputs = crate::report::Inputs {
         study,
         epochs: &tables,
         images: &images,
         fits: &fits,
         stats: &stats,
-        files: hashed.iter().map(|(p, h)| (rel(p), h.map(|x| x.0.hex()).unwrap_or_else(|| "unreadable".into()))).collect(),
+        files: hashed
+            .iter()
+            .map(|(p, h)| {
+                (
+                    rel(p),
+                    h.map(|x| x.0.hex()).unwrap_or_else(|| "unreadable".into()),
+                )
+            })
+            .collect(),
     };
     let mut report_settings = KeyBuilder::new("report-settings", crate::report::VERSION);
     report_settings.value("study", study);
@@ -344,22 +501,51 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
         Parts {
             settings: report_settings.finish(),
             inputs: combine("inputs", hashed.iter().map(|(p, _)| hash(p))),
-            upstream: vec![("epochs", epochs_key), ("images", images_key), ("fits", fits_key), ("statistics", stats_key)],
+            upstream: vec![
+                ("epochs", epochs_key),
+                ("images", images_key),
+                ("fits", fits_key),
+                ("statistics", stats_key),
+            ],
         },
-        |_| Ok(((), format!("`{}`", out.join("report").join("report.html").display()))),
-        |_, r| crate::report::write(&report_inputs, &|i| images.positions(r, i).unwrap_or_default(), out),
+        |_| {
+            Ok((
+                (),
+                format!("`{}`", out.join("report").join("report.html").display()),
+            ))
+        },
+        |_, r| {
+            crate::report::write(
+                &report_inputs,
+                &|i| images.positions(r, i).unwrap_or_default(),
+                out,
+            )
+        },
     )?;
 
-    let exit = if failed.is_empty() { Exit::Ok } else { Exit::Problem };
+    let exit = if failed.is_empty() {
+        Exit::Ok
+    } else {
+        Exit::Problem
+    };
     let manifest = manifest::Manifest {
         tool: "satstep",
         version: env!("CARGO_PKG_VERSION"),
         cache_format: crate::stages::key::CACHE_FORMAT,
-        finished_utc: chrono::Utc::now().format("%Y-%m-%dT%H:%M:%S%.3fZ").to_string(),
+        finished_utc: chrono::Utc::now()
+            .format("%Y-%m-%dT%H:%M:%S%.3fZ")
+            .to_string(),
         command: std::env::args().collect(),
         study_file: study.file.display().to_string(),
         study: serde_json::to_value(study)?,
-        inputs: hashed.iter().map(|(p, h)| manifest::InputFile { path: p.display().to_string(), sha256: h.map(|x| x.0.hex()).unwrap_or_else(|| "unreadable".into()), bytes: h.map(|x| x.1).unwrap_or(0) }).collect(),
+        inputs: hashed
+            .iter()
+            .map(|(p, h)| manifest::InputFile {
+                path: p.display().to_string(),
+                sha256: h.map(|x| x.0.hex()).unwrap_or_else(|| "unreadable".into()),
+                bytes: h.map(|x| x.1).unwrap_or(0),
+            })
+            .collect(),
         seeds: seeds(study),
         stages: runner.log(),
         captures: capture_counts(&tables, &images, &fits),
@@ -377,18 +563,31 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
 /// The analysis draws no random numbers; a simulated study's seed is kept.
 fn seeds(study: &Study) -> BTreeMap<String, String> {
     let mut s = BTreeMap::new();
-    s.insert("analysis".into(), "none: no stage draws random numbers".into());
+    s.insert(
+        "analysis".into(),
+        "none: no stage draws random numbers".into(),
+    );
     if let Ok(text) = std::fs::read_to_string(study.root.join("truth").join("rendering.yaml")) {
         // The simulator names its seed in the file's first line: "(seed N)".
         if let Some(rest) = text.lines().next().and_then(|l| l.split("(seed ").nth(1)) {
-            s.insert("simulation".into(), rest.chars().take_while(char::is_ascii_digit).collect());
+            s.insert(
+                "simulation".into(),
+                rest.chars().take_while(char::is_ascii_digit).collect(),
+            );
         }
     }
     s
 }
 
-fn capture_counts(tables: &epochs::EpochTables, images: &transmissions::ImageTables, fits: &[fits::FitRow]) -> manifest::CaptureCounts {
-    let mut counts = manifest::CaptureCounts { listed: tables.captures.len(), ..Default::default() };
+fn capture_counts(
+    tables: &epochs::EpochTables,
+    images: &transmissions::ImageTables,
+    fits: &[fits::FitRow],
+) -> manifest::CaptureCounts {
+    let mut counts = manifest::CaptureCounts {
+        listed: tables.captures.len(),
+        ..Default::default()
+    };
     for u in crate::report::tables::usage(tables, images, fits) {
         match u {
             None => counts.used += 1,

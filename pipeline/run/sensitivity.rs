@@ -10,8 +10,8 @@ use std::path::Path;
 
 use anyhow::{Context, Result};
 
-use crate::cli::printer::Printer;
 use crate::cli::Exit;
+use crate::cli::printer::Printer;
 use crate::config::diag::Findings;
 use crate::config::read::Reader;
 use crate::config::study::Instrument;
@@ -23,7 +23,12 @@ use crate::tables::Table;
 /// (`name`, `pixel_size_um`, `bands` at the top).
 pub fn load_instrument(path: &Path) -> Result<Instrument, Findings> {
     let mut findings = Findings::new();
-    let Some(root) = crate::config::read::load_tree(path, "file", "give a study file or an instrument file", &mut findings) else {
+    let Some(root) = crate::config::read::load_tree(
+        path,
+        "file",
+        "give a study file or an instrument file",
+        &mut findings,
+    ) else {
         return Err(findings);
     };
     let dir = path.parent().map(Path::to_path_buf).unwrap_or_default();
@@ -40,17 +45,32 @@ pub fn load_instrument(path: &Path) -> Result<Instrument, Findings> {
 
 /// `only`: band names to keep (all the instrument's bands when empty), so
 /// that candidate band sets can be compared before a study.
-pub fn sensitivity(file: &Path, op: &OperatingPoint, unknowns: Unknowns, only: &[String], out: &Path, printer: &Printer) -> Result<Exit> {
+pub fn sensitivity(
+    file: &Path,
+    op: &OperatingPoint,
+    unknowns: Unknowns,
+    only: &[String],
+    out: &Path,
+    printer: &Printer,
+) -> Result<Exit> {
     // The operating point must be one the model can describe.
     let checks = [
         ("--so2", op.so2 * 100.0, 0.0, 100.0, "percent"),
         ("--diameter", op.diameter_um, 5.0, 500.0, "µm"),
         ("--hb", op.hb_g_per_l, 20.0, 400.0, "g/L"),
-        ("--double-pass", op.double_pass, 0.0, 0.96, "(with the 4 % blood backscatter, the paths sum to one)"),
+        (
+            "--double-pass",
+            op.double_pass,
+            0.0,
+            0.96,
+            "(with the 4 % blood backscatter, the paths sum to one)",
+        ),
     ];
     for (name, v, lo, hi, unit) in checks {
         if !(lo..=hi).contains(&v) {
-            printer.error(format!("`{name}` is {v}; give a value from {lo} to {hi} {unit}"));
+            printer.error(format!(
+                "`{name}` is {v}; give a value from {lo} to {hi} {unit}"
+            ));
             return Ok(Exit::Problem);
         }
     }
@@ -58,7 +78,11 @@ pub fn sensitivity(file: &Path, op: &OperatingPoint, unknowns: Unknowns, only: &
         Ok(i) => i,
         Err(f) => {
             printer.findings(&f);
-            printer.error(format!("`{}` has {} errors", file.display(), f.error_count()));
+            printer.error(format!(
+                "`{}` has {} errors",
+                file.display(),
+                f.error_count()
+            ));
             return Ok(Exit::Problem);
         }
     };
@@ -69,7 +93,11 @@ pub fn sensitivity(file: &Path, op: &OperatingPoint, unknowns: Unknowns, only: &
             Some(i) if !chosen.contains(&i) => chosen.push(i),
             Some(_) => {}
             None => {
-                printer.error(format!("`--bands`: `{name}` is not a band of the instrument in `{}`; {}", file.display(), crate::config::diag::suggest(name, &all)));
+                printer.error(format!(
+                    "`--bands`: `{name}` is not a band of the instrument in `{}`; {}",
+                    file.display(),
+                    crate::config::diag::suggest(name, &all)
+                ));
                 return Ok(Exit::Problem);
             }
         }
@@ -79,8 +107,16 @@ pub fn sensitivity(file: &Path, op: &OperatingPoint, unknowns: Unknowns, only: &
     }
     chosen.sort_unstable();
     if chosen.len() < 4 {
-        let what = if only.is_empty() { "the instrument has" } else { "`--bands` selects" };
-        printer.error(format!("{what} {} bands; `{}` needs at least 4", chosen.len(), unknowns.method()));
+        let what = if only.is_empty() {
+            "the instrument has"
+        } else {
+            "`--bands` selects"
+        };
+        printer.error(format!(
+            "{what} {} bands; `{}` needs at least 4",
+            chosen.len(),
+            unknowns.method()
+        ));
         return Ok(Exit::Problem);
     }
     let Some(curves) = crate::report::data::sensitivity_curves(&inst, &chosen, op, unknowns) else {
@@ -90,7 +126,12 @@ pub fn sensitivity(file: &Path, op: &OperatingPoint, unknowns: Unknowns, only: &
     let (mut tw, mut tk, mut tb, mut tc, mut te) = (vec![], vec![], vec![], vec![], vec![]);
     for (w, rows) in &curves.rows {
         for (k, per, all) in rows {
-            for (b, e) in per.iter().enumerate().map(|(b, e)| (Some(b), *e)).chain([(None, *all)]) {
+            for (b, e) in per
+                .iter()
+                .enumerate()
+                .map(|(b, e)| (Some(b), *e))
+                .chain([(None, *all)])
+            {
                 tw.push(w.name().to_string());
                 tk.push(*k);
                 tb.push(b.map_or_else(|| "all bands".to_string(), |b| curves.names[b].clone()));
@@ -101,7 +142,12 @@ pub fn sensitivity(file: &Path, op: &OperatingPoint, unknowns: Unknowns, only: &
     }
     std::fs::create_dir_all(out).with_context(|| format!("cannot create `{}`", out.display()))?;
     let mut t = Table::new();
-    t.text("method", &vec![unknowns.method().to_string(); tk.len()]).text("weights", &tw).real("veil", tk).text("band", &tb).opt_real("centre_nm", tc).real("so2_error_points", te);
+    t.text("method", &vec![unknowns.method().to_string(); tk.len()])
+        .text("weights", &tw)
+        .real("veil", tk)
+        .text("band", &tb)
+        .opt_real("centre_nm", tc)
+        .real("so2_error_points", te);
     t.write(out, "sensitivity")?;
     crate::report::figures::sensitivity(out, &curves)?;
 
@@ -132,6 +178,9 @@ pub fn sensitivity(file: &Path, op: &OperatingPoint, unknowns: Unknowns, only: &
         }
     }
     printer.data(s);
-    printer.info(format!("wrote `sensitivity.csv`, `.parquet`, `.svg` and `.png` under `{}`", out.display()));
+    printer.info(format!(
+        "wrote `sensitivity.csv`, `.parquet`, `.svg` and `.png` under `{}`",
+        out.display()
+    ));
     Ok(Exit::Ok)
 }

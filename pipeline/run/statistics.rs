@@ -21,8 +21,11 @@ use rayon::prelude::*;
 use crate::config::study::{Adjustment as Adjust, Study};
 use crate::run::epochs::EpochTables;
 use crate::run::fits::FitRow;
-use crate::stats::agreement::{agreement, Agreement};
-use crate::stats::epoch_model::{self, analyse, slope_on_reference, Adjustment, Component, ContrastResult, ContrastSpec, Design, Observation, SlopeResult};
+use crate::stats::agreement::{Agreement, agreement};
+use crate::stats::epoch_model::{
+    self, Adjustment, Component, ContrastResult, ContrastSpec, Design, Observation, SlopeResult,
+    analyse, slope_on_reference,
+};
 use crate::tables::Table;
 
 /// One subject × epoch summary of one method and vessel kind.
@@ -189,14 +192,35 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
     // The values the statistics use: steady captures, a finite SO2, wide enough.
     let usable = |r: &FitRow| steady(r) && r.so2.is_some_and(f64::is_finite) && !narrow(r);
     let epoch_names: Vec<String> = p.epochs.iter().map(|e| e.name.clone()).collect();
-    let specs: Vec<ContrastSpec> = p.contrasts.iter().map(|ct| ContrastSpec { label: ct.label.clone(), weights: ct.weights.clone() }).collect();
-    let design = Design { epochs: &epoch_names, baseline: p.baseline, contrasts: &specs, confidence: study.statistics.confidence, adjustment: adjustment(study) };
+    let specs: Vec<ContrastSpec> = p
+        .contrasts
+        .iter()
+        .map(|ct| ContrastSpec {
+            label: ct.label.clone(),
+            weights: ct.weights.clone(),
+        })
+        .collect();
+    let design = Design {
+        epochs: &epoch_names,
+        baseline: p.baseline,
+        contrasts: &specs,
+        confidence: study.statistics.confidence,
+        adjustment: adjustment(study),
+    };
     let base = &p.epochs[p.baseline].name;
-    let mut st = Statistics { confidence: study.statistics.confidence, adjustment: design.adjustment.name().to_string(), ..Statistics::default() };
+    let mut st = Statistics {
+        confidence: study.statistics.confidence,
+        adjustment: design.adjustment.name().to_string(),
+        ..Statistics::default()
+    };
     // Each method and vessel kind is analysed on its own, in parallel; the
     // parts are joined in the study's order, so the result does not depend
     // on the number of threads.
-    let pairs: Vec<(&crate::config::study::Method, &str)> = study.methods.iter().flat_map(|m| [(m, "arteriole"), (m, "venule")]).collect();
+    let pairs: Vec<(&crate::config::study::Method, &str)> = study
+        .methods
+        .iter()
+        .flat_map(|m| [(m, "arteriole"), (m, "venule")])
+        .collect();
     let parts: Vec<Statistics> = pairs
         .par_iter()
         .map(|&(m, kind)| {
@@ -207,24 +231,45 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
             let mut by: BTreeMap<(String, String), BTreeMap<usize, Vec<f64>>> = BTreeMap::new();
             for r in &rows {
                 let cr = &c[r.capture_index];
-                by.entry((cr.subject.clone(), cr.epoch.clone().unwrap_or_default())).or_default().entry(r.capture_index).or_default().push(r.so2.unwrap_or(f64::NAN));
+                by.entry((cr.subject.clone(), cr.epoch.clone().unwrap_or_default()))
+                    .or_default()
+                    .entry(r.capture_index)
+                    .or_default()
+                    .push(r.so2.unwrap_or(f64::NAN));
             }
             let mut narrow_by: BTreeMap<(String, String), i64> = BTreeMap::new();
-            for r in fits.iter().filter(mine).filter(|r| steady(r) && r.so2.is_some_and(f64::is_finite) && narrow(r)) {
+            for r in fits
+                .iter()
+                .filter(mine)
+                .filter(|r| steady(r) && r.so2.is_some_and(f64::is_finite) && narrow(r))
+            {
                 let cr = &c[r.capture_index];
-                *narrow_by.entry((cr.subject.clone(), cr.epoch.clone().unwrap_or_default())).or_default() += 1;
+                *narrow_by
+                    .entry((cr.subject.clone(), cr.epoch.clone().unwrap_or_default()))
+                    .or_default() += 1;
             }
-            let cells: std::collections::BTreeSet<&(String, String)> = by.keys().chain(narrow_by.keys()).collect();
+            let cells: std::collections::BTreeSet<&(String, String)> =
+                by.keys().chain(narrow_by.keys()).collect();
             for key in cells {
-                let means: Vec<f64> = by.get(key).map(|caps| caps.values().map(|v| mean(v)).collect()).unwrap_or_default();
+                let means: Vec<f64> = by
+                    .get(key)
+                    .map(|caps| caps.values().map(|v| mean(v)).collect())
+                    .unwrap_or_default();
                 st.summaries.push(SummaryRow {
                     method: m.label.clone(),
                     kind: kind.into(),
                     subject: key.0.clone(),
                     epoch: key.1.clone(),
                     captures: means.len() as i64,
-                    segments: by.get(key).map(|caps| caps.values().map(|v| v.len() as i64).sum()).unwrap_or(0),
-                    mean: if means.is_empty() { f64::NAN } else { mean(&means) },
+                    segments: by
+                        .get(key)
+                        .map(|caps| caps.values().map(|v| v.len() as i64).sum())
+                        .unwrap_or(0),
+                    mean: if means.is_empty() {
+                        f64::NAN
+                    } else {
+                        mean(&means)
+                    },
                     sd: sd(&means),
                     below_min_diameter: narrow_by.get(key).copied().unwrap_or(0),
                 });
@@ -234,12 +279,22 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
                 .iter()
                 .filter_map(|r| {
                     let cr = &c[r.capture_index];
-                    let epoch = epoch_names.iter().position(|e| Some(e.as_str()) == cr.epoch.as_deref())?;
-                    Some(Observation { subject: cr.subject.clone(), session: cr.session.clone(), eye: cr.eye.clone(), segment: r.segment.clone(), epoch, so2: r.so2? })
+                    let epoch = epoch_names
+                        .iter()
+                        .position(|e| Some(e.as_str()) == cr.epoch.as_deref())?;
+                    Some(Observation {
+                        subject: cr.subject.clone(),
+                        session: cr.session.clone(),
+                        eye: cr.eye.clone(),
+                        segment: r.segment.clone(),
+                        epoch,
+                        so2: r.so2?,
+                    })
                 })
                 .collect();
             let subj_mean = |subject: &str, epoch: &str| -> Option<f64> {
-                by.get(&(subject.to_string(), epoch.to_string())).map(|caps| mean(&caps.values().map(|v| mean(v)).collect::<Vec<_>>()))
+                by.get(&(subject.to_string(), epoch.to_string()))
+                    .map(|caps| mean(&caps.values().map(|v| mean(v)).collect::<Vec<_>>()))
             };
             let subjects: Vec<String> = {
                 let mut v: Vec<String> = by.keys().map(|k| k.0.clone()).collect();
@@ -248,10 +303,30 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
             };
             // Paired differences against the baseline, each subject's
             // segments compared with themselves.
-            for (ei, e) in p.epochs.iter().enumerate().filter(|(ei, _)| *ei != p.baseline) {
-                let spec = ContrastSpec { label: format!("{} - {base}", e.name), weights: vec![(ei, 1.0), (p.baseline, -1.0)] };
-                if let Some((t, n)) = epoch_model::subject_level_test(&obs, &spec, study.statistics.confidence) {
-                    st.paired.push(PairedRow { method: m.label.clone(), kind: kind.into(), epoch: e.name.clone(), subjects: n as i64, mean_difference: t.estimate, std_error: t.std_error, df: t.df, t: t.t, p: t.p });
+            for (ei, e) in p
+                .epochs
+                .iter()
+                .enumerate()
+                .filter(|(ei, _)| *ei != p.baseline)
+            {
+                let spec = ContrastSpec {
+                    label: format!("{} - {base}", e.name),
+                    weights: vec![(ei, 1.0), (p.baseline, -1.0)],
+                };
+                if let Some((t, n)) =
+                    epoch_model::subject_level_test(&obs, &spec, study.statistics.confidence)
+                {
+                    st.paired.push(PairedRow {
+                        method: m.label.clone(),
+                        kind: kind.into(),
+                        epoch: e.name.clone(),
+                        subjects: n as i64,
+                        mean_difference: t.estimate,
+                        std_error: t.std_error,
+                        df: t.df,
+                        t: t.t,
+                        p: t.p,
+                    });
                 }
             }
             // Method comparison: repeatability (pooled within subject × epoch
@@ -266,28 +341,78 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
                     dfw += means.len() as f64 - 1.0;
                 }
             }
-            let all: Vec<&FitRow> = fits.iter().filter(mine).filter(|r| r.so2.is_some_and(f64::is_finite) && !narrow(r)).collect();
-            let outside = all.iter().filter(|r| !(0.0..=100.0).contains(&r.so2.unwrap_or(f64::NAN))).count();
-            let ses: Vec<f64> = rows.iter().filter_map(|r| r.so2_se).filter(|v| v.is_finite()).collect();
-            let mut comp = |q: &str, v: f64, unit: &str| st.comparison.push(ComparisonRow { method: m.label.clone(), kind: kind.into(), quantity: q.into(), value: v, unit: unit.into() });
-            comp("repeatability_sd", if dfw > 0.0 { (ss / dfw).sqrt() } else { f64::NAN }, UNIT_CAPTURES);
-            comp("mean_segment_se", if ses.is_empty() { f64::NAN } else { mean(&ses) }, UNIT_FITS);
+            let all: Vec<&FitRow> = fits
+                .iter()
+                .filter(mine)
+                .filter(|r| r.so2.is_some_and(f64::is_finite) && !narrow(r))
+                .collect();
+            let outside = all
+                .iter()
+                .filter(|r| !(0.0..=100.0).contains(&r.so2.unwrap_or(f64::NAN)))
+                .count();
+            let ses: Vec<f64> = rows
+                .iter()
+                .filter_map(|r| r.so2_se)
+                .filter(|v| v.is_finite())
+                .collect();
+            let mut comp = |q: &str, v: f64, unit: &str| {
+                st.comparison.push(ComparisonRow {
+                    method: m.label.clone(),
+                    kind: kind.into(),
+                    quantity: q.into(),
+                    value: v,
+                    unit: unit.into(),
+                })
+            };
+            comp(
+                "repeatability_sd",
+                if dfw > 0.0 {
+                    (ss / dfw).sqrt()
+                } else {
+                    f64::NAN
+                },
+                UNIT_CAPTURES,
+            );
+            comp(
+                "mean_segment_se",
+                if ses.is_empty() { f64::NAN } else { mean(&ses) },
+                UNIT_FITS,
+            );
             let along: Vec<f64> = rows.iter().filter_map(|r| r.along_sd).collect();
             if !along.is_empty() {
                 comp("along_segment_sd", mean(&along), UNIT_FITS);
             }
             comp("values", all.len() as f64, UNIT_FITS);
-            comp("share_outside_0_100", if all.is_empty() { f64::NAN } else { outside as f64 / all.len() as f64 }, UNIT_FITS);
+            comp(
+                "share_outside_0_100",
+                if all.is_empty() {
+                    f64::NAN
+                } else {
+                    outside as f64 / all.len() as f64
+                },
+                UNIT_FITS,
+            );
             // Slope of the retinal change on the SpO2 change (per subject and
             // epoch against the baseline, pooled): a description, not a test.
             let spo2_mean = |s: &str, epoch: &str| -> Option<f64> {
-                let v: Vec<f64> = c.iter().filter(|r| r.subject == s && r.status == "steady" && r.epoch.as_deref() == Some(epoch)).filter_map(|r| r.spo2).collect();
+                let v: Vec<f64> = c
+                    .iter()
+                    .filter(|r| {
+                        r.subject == s && r.status == "steady" && r.epoch.as_deref() == Some(epoch)
+                    })
+                    .filter_map(|r| r.spo2)
+                    .collect();
                 (!v.is_empty()).then(|| mean(&v))
             };
             let (mut dx, mut dy) = (Vec::new(), Vec::new());
             for s in &subjects {
                 for e in p.epochs.iter().filter(|e| &e.name != base) {
-                    if let (Some(r1), Some(r0), Some(s1), Some(s0)) = (subj_mean(s, &e.name), subj_mean(s, base), spo2_mean(s, &e.name), spo2_mean(s, base)) {
+                    if let (Some(r1), Some(r0), Some(s1), Some(s0)) = (
+                        subj_mean(s, &e.name),
+                        subj_mean(s, base),
+                        spo2_mean(s, &e.name),
+                        spo2_mean(s, base),
+                    ) {
                         dx.push(s1 - s0);
                         dy.push(r1 - r0);
                     }
@@ -306,30 +431,73 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
                     formula: a.formula.clone(),
                     observations: a.observations as i64,
                     fitted: !a.components.is_empty(),
-                    boundary: a.components.iter().filter(|c| c.boundary).map(|c| c.group.clone()).collect(),
+                    boundary: a
+                        .components
+                        .iter()
+                        .filter(|c| c.boundary)
+                        .map(|c| c.group.clone())
+                        .collect(),
                 });
-                st.variance.extend(a.components.into_iter().map(|component| VarianceRow { method: m.label.clone(), kind: kind.into(), component }));
-                st.contrasts.extend(a.contrasts.into_iter().map(|result| ContrastRow { method: m.label.clone(), kind: kind.into(), result }));
+                st.variance
+                    .extend(a.components.into_iter().map(|component| VarianceRow {
+                        method: m.label.clone(),
+                        kind: kind.into(),
+                        component,
+                    }));
+                st.contrasts
+                    .extend(a.contrasts.into_iter().map(|result| ContrastRow {
+                        method: m.label.clone(),
+                        kind: kind.into(),
+                        result,
+                    }));
             }
             if kind == "arteriole" {
                 let mut per_capture: BTreeMap<usize, Vec<f64>> = BTreeMap::new();
                 for r in &rows {
-                    per_capture.entry(r.capture_index).or_default().push(r.so2.unwrap_or(f64::NAN));
+                    per_capture
+                        .entry(r.capture_index)
+                        .or_default()
+                        .push(r.so2.unwrap_or(f64::NAN));
                 }
-                let captures: Vec<(usize, f64, f64)> = per_capture.iter().filter_map(|(ci, v)| c[*ci].spo2.map(|s| (*ci, mean(v), s))).collect();
-                let pairs: Vec<(String, f64, f64)> = captures.iter().map(|(ci, so2, spo2)| (c[*ci].subject.clone(), *so2, *spo2)).collect();
+                let captures: Vec<(usize, f64, f64)> = per_capture
+                    .iter()
+                    .filter_map(|(ci, v)| c[*ci].spo2.map(|s| (*ci, mean(v), s)))
+                    .collect();
+                let pairs: Vec<(String, f64, f64)> = captures
+                    .iter()
+                    .map(|(ci, so2, spo2)| (c[*ci].subject.clone(), *so2, *spo2))
+                    .collect();
                 if let Some(a) = agreement(&pairs) {
                     // The slope over subject × epoch means, subjects as the unit.
-                    let mut cells: BTreeMap<(String, String), (Vec<f64>, Vec<f64>)> = BTreeMap::new();
+                    let mut cells: BTreeMap<(String, String), (Vec<f64>, Vec<f64>)> =
+                        BTreeMap::new();
                     for (ci, so2, spo2) in &captures {
-                        let e = cells.entry((c[*ci].subject.clone(), c[*ci].epoch.clone().unwrap_or_default())).or_default();
+                        let e = cells
+                            .entry((
+                                c[*ci].subject.clone(),
+                                c[*ci].epoch.clone().unwrap_or_default(),
+                            ))
+                            .or_default();
                         e.0.push(*so2);
                         e.1.push(*spo2);
                     }
-                    let cells: Vec<(String, f64, f64)> = cells.into_iter().map(|((s, _), (a, b))| (s, mean(&a), mean(&b))).collect();
+                    let cells: Vec<(String, f64, f64)> = cells
+                        .into_iter()
+                        .map(|((s, _), (a, b))| (s, mean(&a), mean(&b)))
+                        .collect();
                     let slope = slope_on_reference(&cells, study.statistics.confidence);
-                    st.agreement.push(AgreementRow { method: m.label.clone(), agreement: a, slope });
-                    st.agreement_pairs.extend(pairs.iter().map(|(s, so2, spo2)| AgreementPair { method: m.label.clone(), subject: s.clone(), so2: *so2, spo2: *spo2 }));
+                    st.agreement.push(AgreementRow {
+                        method: m.label.clone(),
+                        agreement: a,
+                        slope,
+                    });
+                    st.agreement_pairs
+                        .extend(pairs.iter().map(|(s, so2, spo2)| AgreementPair {
+                            method: m.label.clone(),
+                            subject: s.clone(),
+                            so2: *so2,
+                            spo2: *spo2,
+                        }));
                 }
             }
             st
@@ -345,13 +513,22 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
         for r in fits.iter().filter(|r| r.method == m.label && usable(r)) {
             if let Some(v) = r.so2 {
                 let e = per.entry(r.capture_index).or_default();
-                if r.kind == "arteriole" { e.0.push(v) } else { e.1.push(v) }
+                if r.kind == "arteriole" {
+                    e.0.push(v)
+                } else {
+                    e.1.push(v)
+                }
             }
         }
         let mut by: BTreeMap<(String, String), Vec<(f64, i64)>> = BTreeMap::new();
         for (ci, (a, v)) in &per {
             if !a.is_empty() && !v.is_empty() {
-                by.entry((c[*ci].subject.clone(), c[*ci].epoch.clone().unwrap_or_default())).or_default().push((mean(a) - mean(v), (a.len() + v.len()) as i64));
+                by.entry((
+                    c[*ci].subject.clone(),
+                    c[*ci].epoch.clone().unwrap_or_default(),
+                ))
+                .or_default()
+                .push((mean(a) - mean(v), (a.len() + v.len()) as i64));
             }
         }
         for ((s, e), d) in by {
@@ -374,14 +551,31 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
         for mb in &study.methods[i + 1..] {
             for kind in ["arteriole", "venule"] {
                 let get = |label: &str| -> BTreeMap<(usize, String), f64> {
-                    fits.iter().filter(|r| r.method == label && r.kind == kind && usable(r)).filter_map(|r| Some(((r.capture_index, r.segment.clone()), r.so2?))).collect()
+                    fits.iter()
+                        .filter(|r| r.method == label && r.kind == kind && usable(r))
+                        .filter_map(|r| Some(((r.capture_index, r.segment.clone()), r.so2?)))
+                        .collect()
                 };
                 let (a, b) = (get(&ma.label), get(&mb.label));
-                let pairs: Vec<(String, f64, f64)> = a.iter().filter_map(|(k, va)| b.get(k).map(|vb| (c[k.0].subject.clone(), *va, *vb))).collect();
+                let pairs: Vec<(String, f64, f64)> = a
+                    .iter()
+                    .filter_map(|(k, va)| b.get(k).map(|vb| (c[k.0].subject.clone(), *va, *vb)))
+                    .collect();
                 if let Some(ag) = agreement(&pairs) {
                     let label = format!("{} vs {}", ma.label, mb.label);
-                    for (q, v) in [("bias", ag.bias), ("loa_lower", ag.lower), ("loa_upper", ag.upper), ("pairs", ag.n as f64)] {
-                        st.comparison.push(ComparisonRow { method: label.clone(), kind: kind.into(), quantity: q.into(), value: v, unit: UNIT_PAIRS.into() });
+                    for (q, v) in [
+                        ("bias", ag.bias),
+                        ("loa_lower", ag.lower),
+                        ("loa_upper", ag.upper),
+                        ("pairs", ag.n as f64),
+                    ] {
+                        st.comparison.push(ComparisonRow {
+                            method: label.clone(),
+                            kind: kind.into(),
+                            quantity: q.into(),
+                            value: v,
+                            unit: UNIT_PAIRS.into(),
+                        });
                     }
                 }
             }
@@ -432,7 +626,11 @@ impl Statistics {
             .int("levels", v.iter().map(|r| r.component.levels as i64))
             .real("variance", v.iter().map(|r| r.component.variance))
             .real("sd", v.iter().map(|r| r.component.variance.sqrt()))
-            .text("boundary", v.iter().map(|r| if r.component.boundary { "yes" } else { "no" }));
+            .text(
+                "boundary",
+                v.iter()
+                    .map(|r| if r.component.boundary { "yes" } else { "no" }),
+            );
         written.extend(t.write(&dir, "variance_components")?);
         let md = &self.models;
         let mut t = Table::new();
@@ -440,11 +638,18 @@ impl Statistics {
             .text("kind", md.iter().map(|r| &r.kind))
             .text("formula", md.iter().map(|r| &r.formula))
             .int("observations", md.iter().map(|r| r.observations))
-            .text("fitted", md.iter().map(|r| if r.fitted { "yes" } else { "no" }))
+            .text(
+                "fitted",
+                md.iter().map(|r| if r.fitted { "yes" } else { "no" }),
+            )
             .text("boundary", md.iter().map(|r| r.boundary.join("; ")));
         written.extend(t.write(&dir, "models")?);
         let a = &self.agreement;
-        let sl = |f: fn(&SlopeResult) -> f64| a.iter().map(move |r| r.slope.as_ref().map(f)).collect::<Vec<_>>();
+        let sl = |f: fn(&SlopeResult) -> f64| {
+            a.iter()
+                .map(move |r| r.slope.as_ref().map(f))
+                .collect::<Vec<_>>()
+        };
         let mut t = Table::new();
         t.text("method", a.iter().map(|r| &r.method))
             .int("captures", a.iter().map(|r| r.agreement.n as i64))
@@ -460,8 +665,15 @@ impl Statistics {
             .opt_real("slope_lower", sl(|s| s.test.lower))
             .opt_real("slope_upper", sl(|s| s.test.upper))
             .real("confidence", a.iter().map(|_| self.confidence))
-            .opt_text("slope_model", a.iter().map(|r| r.slope.as_ref().map(|s| s.formula.clone())))
-            .opt_int("slope_points", a.iter().map(|r| r.slope.as_ref().map(|s| s.points as i64)));
+            .opt_text(
+                "slope_model",
+                a.iter()
+                    .map(|r| r.slope.as_ref().map(|s| s.formula.clone())),
+            )
+            .opt_int(
+                "slope_points",
+                a.iter().map(|r| r.slope.as_ref().map(|s| s.points as i64)),
+            );
         written.extend(t.write(&dir, "agreement")?);
         let q = &self.paired;
         let mut t = Table::new();
@@ -492,7 +704,9 @@ pub fn describe(study: &Study, stats: Option<&Statistics>) -> String {
     let p = &study.protocol;
     let level = study.statistics.confidence * 100.0;
     let adjust = match study.statistics.adjustment {
-        Adjust::Holm => "p values Holm-adjusted across the protocol's contrasts within each method and vessel kind",
+        Adjust::Holm => {
+            "p values Holm-adjusted across the protocol's contrasts within each method and vessel kind"
+        }
         Adjust::None => "p values not adjusted for multiplicity",
     };
     let mut text = format!(
@@ -500,7 +714,11 @@ pub fn describe(study: &Study, stats: Option<&Statistics>) -> String {
         p.epochs[p.baseline].name,
     );
     if let Some(st) = stats {
-        let fallbacks = st.contrasts.iter().filter(|c| c.result.basis != epoch_model::Basis::MixedModel).count();
+        let fallbacks = st
+            .contrasts
+            .iter()
+            .filter(|c| c.result.basis != epoch_model::Basis::MixedModel)
+            .count();
         text.push_str(&format!(" In this study {} of {} contrasts were tested in the mixed model and {fallbacks} at the subject level.", st.contrasts.len() - fallbacks, st.contrasts.len()));
     }
     if let Some(d) = study.exclusions.min_diameter_um {

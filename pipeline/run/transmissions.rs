@@ -10,16 +10,16 @@ use anyhow::Result;
 use rayon::prelude::*;
 
 use crate::config::diag::Findings;
-use crate::config::segments::{load_segments, Segment};
+use crate::config::segments::{Segment, load_segments};
 use crate::config::study::{BandResponse, Study};
 use crate::images::correct::Corrections;
-use crate::images::ingest::{read_capture, Multiband};
-use crate::images::profile::{analyse_segment, ProfileSettings};
-use crate::images::register::{register, Registration};
+use crate::images::ingest::{Multiband, read_capture};
+use crate::images::profile::{ProfileSettings, analyse_segment};
+use crate::images::register::{Registration, register};
 use crate::run::epochs::EpochTables;
-use crate::stages::key::{hash_file_or_missing, Key, KeyBuilder};
 use crate::stages::Items;
 use crate::stages::Runner;
+use crate::stages::key::{Key, KeyBuilder, hash_file_or_missing};
 use crate::tables::{Table, TableStream};
 
 /// Lowest match score at which a capture counts as registered.
@@ -70,7 +70,10 @@ pub type CaptureItem = (ImageStatus, Vec<PositionRow>);
 
 /// The profile settings for a study's instrument.
 pub fn profile_settings(study: &Study) -> ProfileSettings {
-    ProfileSettings { half_length_px: (220.0 / study.instrument.pixel_size_um).max(8.0) + 4.0, ..ProfileSettings::default() }
+    ProfileSettings {
+        half_length_px: (220.0 / study.instrument.pixel_size_um).max(8.0) + 4.0,
+        ..ProfileSettings::default()
+    }
 }
 
 /// The stage's settings part: everything besides the files that changes what it computes.
@@ -81,9 +84,23 @@ pub fn settings_key(study: &Study) -> Key {
         .value("pixel-size", &study.instrument.pixel_size_um)
         .value("profile", &profile_settings(study))
         .value("min-score", &MIN_REGISTRATION_SCORE)
-        .value("band-offsets", &study.instrument.bands.iter().map(|b| b.offset_px).collect::<Vec<_>>())
-        .value("estimate-band-offsets", &study.instrument.estimate_band_offsets);
-    for (name, f) in [("dark", &study.instrument.dark), ("flat", &study.instrument.flat)] {
+        .value(
+            "band-offsets",
+            &study
+                .instrument
+                .bands
+                .iter()
+                .map(|b| b.offset_px)
+                .collect::<Vec<_>>(),
+        )
+        .value(
+            "estimate-band-offsets",
+            &study.instrument.estimate_band_offsets,
+        );
+    for (name, f) in [
+        ("dark", &study.instrument.dark),
+        ("flat", &study.instrument.flat),
+    ] {
         if let Some(p) = f {
             k.key(name, &hash_file_or_missing(p));
         }
@@ -96,9 +113,17 @@ pub fn settings_key(study: &Study) -> Key {
 pub fn width_band(study: &Study) -> usize {
     let centre = |r: &BandResponse| match r {
         BandResponse::Gaussian { centre_nm, .. } => *centre_nm,
-        BandResponse::Table { points, .. } => points.iter().map(|p| p.0 * p.1).sum::<f64>() / points.iter().map(|p| p.1).sum::<f64>(),
+        BandResponse::Table { points, .. } => {
+            points.iter().map(|p| p.0 * p.1).sum::<f64>() / points.iter().map(|p| p.1).sum::<f64>()
+        }
     };
-    (0..study.instrument.bands.len()).min_by(|a, b| (centre(&study.instrument.bands[*a].response) - 570.0).abs().total_cmp(&(centre(&study.instrument.bands[*b].response) - 570.0).abs())).unwrap_or(0)
+    (0..study.instrument.bands.len())
+        .min_by(|a, b| {
+            (centre(&study.instrument.bands[*a].response) - 570.0)
+                .abs()
+                .total_cmp(&(centre(&study.instrument.bands[*b].response) - 570.0).abs())
+        })
+        .unwrap_or(0)
 }
 
 fn tally_flags(rows: &[PositionRow]) -> BTreeMap<String, usize> {
@@ -116,7 +141,12 @@ fn tally_flags(rows: &[PositionRow]) -> BTreeMap<String, usize> {
 
 type Tally = (usize, ImageStatus, usize, BTreeMap<String, usize>);
 
-fn merge(results: Vec<Tally>, status: &mut [ImageStatus], counts: &mut [usize], flags: &mut BTreeMap<String, usize>) {
+fn merge(
+    results: Vec<Tally>,
+    status: &mut [ImageStatus],
+    counts: &mut [usize],
+    flags: &mut BTreeMap<String, usize>,
+) {
     for (i, st, n, f) in results {
         status[i] = st;
         counts[i] = n;
@@ -128,14 +158,26 @@ fn merge(results: Vec<Tally>, status: &mut [ImageStatus], counts: &mut [usize], 
 
 /// Cache keys of the captures when a spectra table replaces the images.
 pub fn spectra_item_keys(study: &Study, epochs: &EpochTables) -> Vec<Key> {
-    let file = study.spectra_file.as_deref().map(hash_file_or_missing).unwrap_or_else(|| hash_file_or_missing(Path::new("")));
-    let bands: Vec<&str> = study.instrument.bands.iter().map(|b| b.name.as_str()).collect();
+    let file = study
+        .spectra_file
+        .as_deref()
+        .map(hash_file_or_missing)
+        .unwrap_or_else(|| hash_file_or_missing(Path::new("")));
+    let bands: Vec<&str> = study
+        .instrument
+        .bands
+        .iter()
+        .map(|b| b.name.as_str())
+        .collect();
     epochs
         .captures
         .iter()
         .map(|row| {
             let mut k = KeyBuilder::new("spectra-capture", VERSION);
-            k.key("table", &file).value("capture", &(&row.subject, &row.capture)).value("bands", &bands).value("status", &row.status);
+            k.key("table", &file)
+                .value("capture", &(&row.subject, &row.capture))
+                .value("bands", &bands)
+                .value("status", &row.status);
             k.finish()
         })
         .collect()
@@ -144,25 +186,68 @@ pub fn spectra_item_keys(study: &Study, epochs: &EpochTables) -> Vec<Key> {
 /// The image stage for a study with a spectra table: each analysed
 /// capture's positions come from the table instead of its images (no
 /// registration, no profile flags; `along_px` is the position index).
-pub fn from_spectra(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: &Items) -> ImageTables {
+pub fn from_spectra(
+    study: &Study,
+    epochs: &EpochTables,
+    keys: Vec<Key>,
+    items: &Items,
+) -> ImageTables {
     let n = epochs.captures.len();
     let table = study.spectra.as_ref();
-    let file = study.spectra_file.as_deref().unwrap_or(Path::new("")).display().to_string();
-    let mut status: Vec<ImageStatus> = (0..n).map(|i| ImageStatus { status: "not-analysed".into(), message: Some(format!("status `{}`", epochs.captures[i].status)), registration: None }).collect();
+    let file = study
+        .spectra_file
+        .as_deref()
+        .unwrap_or(Path::new(""))
+        .display()
+        .to_string();
+    let mut status: Vec<ImageStatus> = (0..n)
+        .map(|i| ImageStatus {
+            status: "not-analysed".into(),
+            message: Some(format!("status `{}`", epochs.captures[i].status)),
+            registration: None,
+        })
+        .collect();
     let (mut counts, mut flags) = (vec![0; n], BTreeMap::new());
-    let analysed: Vec<usize> = (0..n).filter(|i| matches!(epochs.captures[*i].status.as_str(), "steady" | "settling")).collect();
+    let analysed: Vec<usize> = (0..n)
+        .filter(|i| matches!(epochs.captures[*i].status.as_str(), "steady" | "settling"))
+        .collect();
     let results: Vec<Tally> = analysed
         .par_iter()
         .map(|&i| {
             let row = &epochs.captures[i];
             let (st, rows): CaptureItem = items.get_or_compute(&keys[i], || {
-                let found = table.and_then(|t| t.captures.get(&(row.subject.clone(), row.capture.clone())).or_else(|| t.captures.get(&(String::new(), row.capture.clone()))));
+                let found = table.and_then(|t| {
+                    t.captures
+                        .get(&(row.subject.clone(), row.capture.clone()))
+                        .or_else(|| t.captures.get(&(String::new(), row.capture.clone())))
+                });
                 match found {
-                    None => (ImageStatus { status: "error".into(), message: Some(format!("not in the spectra table `{file}`")), registration: None }, vec![]),
+                    None => (
+                        ImageStatus {
+                            status: "error".into(),
+                            message: Some(format!("not in the spectra table `{file}`")),
+                            registration: None,
+                        },
+                        vec![],
+                    ),
                     Some(ps) => (
-                        ImageStatus { status: "ok".into(), message: Some("from the spectra table".into()), registration: None },
+                        ImageStatus {
+                            status: "ok".into(),
+                            message: Some("from the spectra table".into()),
+                            registration: None,
+                        },
                         ps.iter()
-                            .map(|p| PositionRow { capture_index: i, segment: p.vessel.clone(), kind: p.kind.clone(), position: p.position, along_px: p.position as f64, diameter_um: p.diameter_um, flags: String::new(), reflex: false, transmission: p.transmission.clone() })
+                            .map(|p| PositionRow {
+                                capture_index: i,
+                                segment: p.vessel.clone(),
+                                kind: p.kind.clone(),
+                                position: p.position,
+                                along_px: p.position as f64,
+                                diameter_um: p.diameter_um,
+                                flags: String::new(),
+                                reflex: false,
+                                transmission: p.transmission.clone(),
+                            })
                             .collect(),
                     ),
                 }
@@ -171,7 +256,12 @@ pub fn from_spectra(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: 
         })
         .collect();
     merge(results, &mut status, &mut counts, &mut flags);
-    ImageTables { status, position_counts: counts, flag_counts: flags, keys }
+    ImageTables {
+        status,
+        position_counts: counts,
+        flag_counts: flags,
+        keys,
+    }
 }
 
 /// The capture file behind each row of the epoch table.
@@ -180,8 +270,14 @@ pub fn capture_files(study: &Study, epochs: &EpochTables) -> Vec<PathBuf> {
         .captures
         .iter()
         .map(|row| {
-            let sess = study.subjects.iter().find(|s| s.id == row.subject).and_then(|s| s.sessions.iter().find(|x| x.id == row.session));
-            sess.and_then(|s| s.captures.iter().find(|c| c.listed == row.capture)).map(|c| c.path.clone()).unwrap_or_default()
+            let sess = study
+                .subjects
+                .iter()
+                .find(|s| s.id == row.subject)
+                .and_then(|s| s.sessions.iter().find(|x| x.id == row.session));
+            sess.and_then(|s| s.captures.iter().find(|c| c.listed == row.capture))
+                .map(|c| c.path.clone())
+                .unwrap_or_default()
         })
         .collect()
 }
@@ -192,10 +288,17 @@ pub fn capture_files(study: &Study, epochs: &EpochTables) -> Vec<PathBuf> {
 pub fn item_keys(study: &Study, epochs: &EpochTables, hashes: &BTreeMap<PathBuf, Key>) -> Vec<Key> {
     let settings = settings_key(study);
     let files = capture_files(study, epochs);
-    let hash = |p: &Path| hashes.get(p).copied().unwrap_or_else(|| hash_file_or_missing(p));
+    let hash = |p: &Path| {
+        hashes
+            .get(p)
+            .copied()
+            .unwrap_or_else(|| hash_file_or_missing(p))
+    };
     let mut first: BTreeMap<(String, String, String), usize> = BTreeMap::new();
     for (i, row) in epochs.captures.iter().enumerate() {
-        first.entry((row.subject.clone(), row.session.clone(), row.eye.clone())).or_insert(i);
+        first
+            .entry((row.subject.clone(), row.session.clone(), row.eye.clone()))
+            .or_insert(i);
     }
     epochs
         .captures
@@ -210,7 +313,12 @@ pub fn item_keys(study: &Study, epochs: &EpochTables, hashes: &BTreeMap<PathBuf,
                 .key("capture", &hash(&files[i]))
                 .key("reference", &hash(&files[ref_i]))
                 .value("is-reference", &(i == ref_i))
-                .key("segments", &segs.map(|p| hash(&p)).unwrap_or_else(|| hash_file_or_missing(Path::new(""))))
+                .key(
+                    "segments",
+                    &segs
+                        .map(|p| hash(&p))
+                        .unwrap_or_else(|| hash_file_or_missing(Path::new(""))),
+                )
                 .value("status", &row.status);
             k.finish()
         })
@@ -218,8 +326,17 @@ pub fn item_keys(study: &Study, epochs: &EpochTables, hashes: &BTreeMap<PathBuf,
 }
 
 fn segments_file(study: &Study, subject: &str, session: &str, eye: &str) -> Option<PathBuf> {
-    let sess = study.subjects.iter().find(|s| s.id == subject)?.sessions.iter().find(|x| x.id == session)?;
-    sess.segments.iter().find(|(e, _)| e.as_str() == eye).map(|(_, p)| p.clone())
+    let sess = study
+        .subjects
+        .iter()
+        .find(|s| s.id == subject)?
+        .sessions
+        .iter()
+        .find(|x| x.id == session)?;
+    sess.segments
+        .iter()
+        .find(|(e, _)| e.as_str() == eye)
+        .map(|(_, p)| p.clone())
 }
 
 pub fn build(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: &Items) -> ImageTables {
@@ -235,19 +352,35 @@ pub fn build(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: &Items)
         for sess in &subj.sessions {
             for (eye, p) in &sess.segments {
                 let segs = load_segments(p, *eye, &mut Findings::new()).unwrap_or_default();
-                segments.insert((subj.id.clone(), sess.id.clone(), eye.as_str().to_string()), segs);
+                segments.insert(
+                    (subj.id.clone(), sess.id.clone(), eye.as_str().to_string()),
+                    segs,
+                );
             }
         }
     }
     for (i, row) in epochs.captures.iter().enumerate() {
-        groups.entry((row.subject.clone(), row.session.clone(), row.eye.clone())).or_default().push(i);
+        groups
+            .entry((row.subject.clone(), row.session.clone(), row.eye.clone()))
+            .or_default()
+            .push(i);
     }
-    let mut status: Vec<ImageStatus> = (0..epochs.captures.len()).map(|_| ImageStatus { status: "not-analysed".into(), message: None, registration: None }).collect();
+    let mut status: Vec<ImageStatus> = (0..epochs.captures.len())
+        .map(|_| ImageStatus {
+            status: "not-analysed".into(),
+            message: None,
+            registration: None,
+        })
+        .collect();
     let mut position_counts = vec![0; epochs.captures.len()];
     let mut flag_counts: BTreeMap<String, usize> = BTreeMap::new();
     for (key, idx) in &groups {
         let segs = segments.get(key).cloned().unwrap_or_default();
-        let analysed: Vec<usize> = idx.iter().copied().filter(|i| matches!(epochs.captures[*i].status.as_str(), "steady" | "settling")).collect();
+        let analysed: Vec<usize> = idx
+            .iter()
+            .copied()
+            .filter(|i| matches!(epochs.captures[*i].status.as_str(), "steady" | "settling"))
+            .collect();
         for i in idx {
             if !analysed.contains(i) {
                 status[*i].message = Some(format!("status `{}`", epochs.captures[*i].status));
@@ -263,14 +396,43 @@ pub fn build(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: &Items)
             .map(|&i| {
                 let (st, rows): CaptureItem = items.get_or_compute(&keys[i], || {
                     let read_ref = || -> Result<Multiband, String> {
-                        let mut r = read_capture(&files[ref_i], nb, None).map_err(|e| e.to_string())?;
-                        corrections.as_ref().map_err(|e| format!("calibration frames: {e}"))?.apply(&mut r)?;
+                        let mut r =
+                            read_capture(&files[ref_i], nb, None).map_err(|e| e.to_string())?;
+                        corrections
+                            .as_ref()
+                            .map_err(|e| format!("calibration frames: {e}"))?
+                            .apply(&mut r)?;
                         Ok(r)
                     };
                     match (reference.get_or_init(read_ref), &corrections) {
-                        (Ok(r), Ok(corr)) => analyse_capture(i, i == ref_i, &files[i], r, &segs, nb, wb, &settings, study.instrument.pixel_size_um, corr),
-                        (_, Err(e)) => (ImageStatus { status: "error".into(), message: Some(format!("calibration frames: {e}")), registration: None }, vec![]),
-                        (Err(e), _) => (ImageStatus { status: "error".into(), message: Some(format!("reference capture: {e}")), registration: None }, vec![]),
+                        (Ok(r), Ok(corr)) => analyse_capture(
+                            i,
+                            i == ref_i,
+                            &files[i],
+                            r,
+                            &segs,
+                            nb,
+                            wb,
+                            &settings,
+                            study.instrument.pixel_size_um,
+                            corr,
+                        ),
+                        (_, Err(e)) => (
+                            ImageStatus {
+                                status: "error".into(),
+                                message: Some(format!("calibration frames: {e}")),
+                                registration: None,
+                            },
+                            vec![],
+                        ),
+                        (Err(e), _) => (
+                            ImageStatus {
+                                status: "error".into(),
+                                message: Some(format!("reference capture: {e}")),
+                                registration: None,
+                            },
+                            vec![],
+                        ),
                     }
                 });
                 (i, st, rows.len(), tally_flags(&rows))
@@ -278,35 +440,96 @@ pub fn build(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: &Items)
             .collect();
         merge(results, &mut status, &mut position_counts, &mut flag_counts);
     }
-    ImageTables { status, position_counts, flag_counts, keys }
+    ImageTables {
+        status,
+        position_counts,
+        flag_counts,
+        keys,
+    }
 }
 
 #[allow(clippy::too_many_arguments)]
 /// One capture through the stage: read, register to the eye's reference
 /// (identity for the reference itself), map the segments, profile them.
-pub fn analyse_capture(i: usize, is_reference: bool, file: &Path, reference: &Multiband, segs: &[Segment], nb: usize, wb: usize, st: &ProfileSettings, px_um: f64, corr: &Corrections) -> (ImageStatus, Vec<PositionRow>) {
+pub fn analyse_capture(
+    i: usize,
+    is_reference: bool,
+    file: &Path,
+    reference: &Multiband,
+    segs: &[Segment],
+    nb: usize,
+    wb: usize,
+    st: &ProfileSettings,
+    px_um: f64,
+    corr: &Corrections,
+) -> (ImageStatus, Vec<PositionRow>) {
     let mut img = match read_capture(file, nb, Some((reference.width, reference.height))) {
         Ok(m) => m,
-        Err(e) => return (ImageStatus { status: "error".into(), message: Some(e.to_string()), registration: None }, vec![]),
+        Err(e) => {
+            return (
+                ImageStatus {
+                    status: "error".into(),
+                    message: Some(e.to_string()),
+                    registration: None,
+                },
+                vec![],
+            );
+        }
     };
     if let Err(e) = corr.apply(&mut img) {
-        return (ImageStatus { status: "error".into(), message: Some(e), registration: None }, vec![]);
+        return (
+            ImageStatus {
+                status: "error".into(),
+                message: Some(e),
+                registration: None,
+            },
+            vec![],
+        );
     }
     // The reference capture defines the eye's coordinates: identity.
     let reg = if is_reference {
-        Registration { dx: 0.0, dy: 0.0, angle_deg: 0.0, score: 1.0 }
+        Registration {
+            dx: 0.0,
+            dy: 0.0,
+            angle_deg: 0.0,
+            score: 1.0,
+        }
     } else {
-        register(&reference.bands[wb], &img.bands[wb], img.width, img.height, 2.0)
+        register(
+            &reference.bands[wb],
+            &img.bands[wb],
+            img.width,
+            img.height,
+            2.0,
+        )
     };
     if reg.score < MIN_REGISTRATION_SCORE {
-        let msg = format!("match score {:.3} below {MIN_REGISTRATION_SCORE}", reg.score);
-        return (ImageStatus { status: "not-registered".into(), message: Some(msg), registration: Some(reg) }, vec![]);
+        let msg = format!(
+            "match score {:.3} below {MIN_REGISTRATION_SCORE}",
+            reg.score
+        );
+        return (
+            ImageStatus {
+                status: "not-registered".into(),
+                message: Some(msg),
+                registration: Some(reg),
+            },
+            vec![],
+        );
     }
     let (cx, cy) = (img.width as f64 / 2.0, img.height as f64 / 2.0);
-    let lines: Vec<Vec<(f64, f64)>> = segs.iter().map(|s| s.points.iter().map(|p| reg.apply(*p, cx, cy)).collect()).collect();
+    let lines: Vec<Vec<(f64, f64)>> = segs
+        .iter()
+        .map(|s| s.points.iter().map(|p| reg.apply(*p, cx, cy)).collect())
+        .collect();
     let mut rows = Vec::new();
     for (k, seg) in segs.iter().enumerate() {
-        let others: Vec<Vec<(f64, f64)>> = lines.iter().enumerate().filter(|(j, _)| *j != k).map(|(_, l)| l.clone()).collect();
+        let others: Vec<Vec<(f64, f64)>> = lines
+            .iter()
+            .enumerate()
+            .filter(|(j, _)| *j != k)
+            .map(|(_, l)| l.clone())
+            .collect();
         for r in analyse_segment(&img, &lines[k], &others, wb, st) {
             rows.push(PositionRow {
                 capture_index: i,
@@ -315,13 +538,25 @@ pub fn analyse_capture(i: usize, is_reference: bool, file: &Path, reference: &Mu
                 position: r.position,
                 along_px: r.along_px,
                 diameter_um: r.diameter_px * px_um,
-                flags: r.flags.iter().map(|f| f.as_str()).collect::<Vec<_>>().join(";"),
+                flags: r
+                    .flags
+                    .iter()
+                    .map(|f| f.as_str())
+                    .collect::<Vec<_>>()
+                    .join(";"),
                 reflex: r.reflex,
                 transmission: r.transmission,
             });
         }
     }
-    (ImageStatus { status: "ok".into(), message: None, registration: Some(reg) }, rows)
+    (
+        ImageStatus {
+            status: "ok".into(),
+            message: None,
+            registration: Some(reg),
+        },
+        rows,
+    )
 }
 
 impl ImageTables {
@@ -335,14 +570,23 @@ impl ImageTables {
             return Ok(vec![]);
         }
         let (_, rows): CaptureItem = runner.item("images", &self.keys[i])?;
-        Ok(rows.into_iter().map(|mut r| {
-            // The stored index is the one of the run that computed the item.
-            r.capture_index = i;
-            r
-        }).collect())
+        Ok(rows
+            .into_iter()
+            .map(|mut r| {
+                // The stored index is the one of the run that computed the item.
+                r.capture_index = i;
+                r
+            })
+            .collect())
     }
 
-    pub fn write(&self, out: &Path, study: &Study, epochs: &EpochTables, runner: &Runner) -> Result<Vec<PathBuf>> {
+    pub fn write(
+        &self,
+        out: &Path,
+        study: &Study,
+        epochs: &EpochTables,
+        runner: &Runner,
+    ) -> Result<Vec<PathBuf>> {
         let dir = out.join("transmissions");
         let mut stream = TableStream::new(&dir, "positions");
         for i in 0..epochs.captures.len() {
@@ -362,24 +606,35 @@ fn position_table(p: &[PositionRow], study: &Study, epochs: &EpochTables) -> Tab
     let c = &epochs.captures;
     let mut t = Table::new();
     t.text("subject", p.iter().map(|r| &c[r.capture_index].subject))
-            .text("session", p.iter().map(|r| &c[r.capture_index].session))
-            .text("eye", p.iter().map(|r| &c[r.capture_index].eye))
-            .text("capture", p.iter().map(|r| &c[r.capture_index].capture))
-            .text("segment", p.iter().map(|r| &r.segment))
-            .text("kind", p.iter().map(|r| &r.kind))
-            .int("position", p.iter().map(|r| r.position as i64))
-            .real("along_px", p.iter().map(|r| r.along_px))
-            .real("diameter_um", p.iter().map(|r| r.diameter_um))
-            .text("flags", p.iter().map(|r| &r.flags))
-            .text("central_reflex", p.iter().map(|r| if r.reflex { "yes" } else { "no" }));
-        for (b, band) in study.instrument.bands.iter().enumerate() {
-            t.real(&format!("t_{}", band.name), p.iter().map(|r| r.transmission[b]));
-        }
-        t
+        .text("session", p.iter().map(|r| &c[r.capture_index].session))
+        .text("eye", p.iter().map(|r| &c[r.capture_index].eye))
+        .text("capture", p.iter().map(|r| &c[r.capture_index].capture))
+        .text("segment", p.iter().map(|r| &r.segment))
+        .text("kind", p.iter().map(|r| &r.kind))
+        .int("position", p.iter().map(|r| r.position as i64))
+        .real("along_px", p.iter().map(|r| r.along_px))
+        .real("diameter_um", p.iter().map(|r| r.diameter_um))
+        .text("flags", p.iter().map(|r| &r.flags))
+        .text(
+            "central_reflex",
+            p.iter().map(|r| if r.reflex { "yes" } else { "no" }),
+        );
+    for (b, band) in study.instrument.bands.iter().enumerate() {
+        t.real(
+            &format!("t_{}", band.name),
+            p.iter().map(|r| r.transmission[b]),
+        );
+    }
+    t
 }
 
 impl ImageTables {
-    fn write_status(&self, dir: &Path, epochs: &EpochTables, written: &mut Vec<PathBuf>) -> Result<()> {
+    fn write_status(
+        &self,
+        dir: &Path,
+        epochs: &EpochTables,
+        written: &mut Vec<PathBuf>,
+    ) -> Result<()> {
         let c = &epochs.captures;
         let s = &self.status;
         let mut t = Table::new();
@@ -391,8 +646,14 @@ impl ImageTables {
             .opt_text("message", s.iter().map(|r| r.message.clone()))
             .opt_real("dx_px", s.iter().map(|r| r.registration.map(|g| g.dx)))
             .opt_real("dy_px", s.iter().map(|r| r.registration.map(|g| g.dy)))
-            .opt_real("angle_deg", s.iter().map(|r| r.registration.map(|g| g.angle_deg)))
-            .opt_real("match_score", s.iter().map(|r| r.registration.map(|g| g.score)));
+            .opt_real(
+                "angle_deg",
+                s.iter().map(|r| r.registration.map(|g| g.angle_deg)),
+            )
+            .opt_real(
+                "match_score",
+                s.iter().map(|r| r.registration.map(|g| g.score)),
+            );
         written.extend(t.write(dir, "captures")?);
         Ok(())
     }

@@ -67,7 +67,11 @@ impl CohortDesign {
     /// spreads of the order of DOMAIN.md's typical values (subject 4,
     /// session 1.5, eye 1.5, segment 3, capture 1.5, residual 3 points).
     pub fn step_down(subjects: usize) -> CohortDesign {
-        let epoch = |name: &str, change: f64, response_sd: f64| EpochTruth { name: name.into(), change, response_sd };
+        let epoch = |name: &str, change: f64, response_sd: f64| EpochTruth {
+            name: name.into(),
+            change,
+            response_sd,
+        };
         CohortDesign {
             subjects,
             two_eye_share: 0.0,
@@ -77,8 +81,20 @@ impl CohortDesign {
             missing_capture: 0.0,
             missing_value: 0.0,
             level: 95.0,
-            epochs: vec![epoch("air", 0.0, 1.5), epoch("low-15", -7.0, 2.5), epoch("low-12", -12.0, 4.0), epoch("recovery", 0.0, 1.5)],
-            spread: Spread { subject: 4.0, session: 1.5, eye: 1.5, segment: 3.0, capture: 1.5, residual: 3.0 },
+            epochs: vec![
+                epoch("air", 0.0, 1.5),
+                epoch("low-15", -7.0, 2.5),
+                epoch("low-12", -12.0, 4.0),
+                epoch("recovery", 0.0, 1.5),
+            ],
+            spread: Spread {
+                subject: 4.0,
+                session: 1.5,
+                eye: 1.5,
+                segment: 3.0,
+                capture: 1.5,
+                residual: 3.0,
+            },
         }
     }
 
@@ -88,7 +104,10 @@ impl CohortDesign {
 
     /// The true population value of a contrast.
     pub fn true_contrast(&self, weights: &[(usize, f64)]) -> f64 {
-        weights.iter().map(|(e, w)| w * self.epochs[*e].change).sum()
+        weights
+            .iter()
+            .map(|(e, w)| w * self.epochs[*e].change)
+            .sum()
     }
 
     /// One simulated study, seeded by `seed` and `name` alone.
@@ -99,11 +118,33 @@ impl CohortDesign {
         for s in 0..self.subjects {
             let subject = format!("S{:02}", s + 1);
             let u_subject = n(self.spread.subject).sample(&mut rng);
-            let response: Vec<f64> = self.epochs.iter().map(|e| n(e.response_sd).sample(&mut rng)).collect();
-            let eyes: &[&str] = if rng.random::<f64>() < self.two_eye_share { &["OD", "OS"] } else { &["OD"] };
-            let sessions: &[&str] = if rng.random::<f64>() < self.two_session_share { &["s1", "s2"] } else { &["s1"] };
-            let u_eye: Vec<f64> = eyes.iter().map(|_| n(self.spread.eye).sample(&mut rng)).collect();
-            let u_segment: Vec<Vec<f64>> = eyes.iter().map(|_| (0..self.segments_per_eye).map(|_| n(self.spread.segment).sample(&mut rng)).collect()).collect();
+            let response: Vec<f64> = self
+                .epochs
+                .iter()
+                .map(|e| n(e.response_sd).sample(&mut rng))
+                .collect();
+            let eyes: &[&str] = if rng.random::<f64>() < self.two_eye_share {
+                &["OD", "OS"]
+            } else {
+                &["OD"]
+            };
+            let sessions: &[&str] = if rng.random::<f64>() < self.two_session_share {
+                &["s1", "s2"]
+            } else {
+                &["s1"]
+            };
+            let u_eye: Vec<f64> = eyes
+                .iter()
+                .map(|_| n(self.spread.eye).sample(&mut rng))
+                .collect();
+            let u_segment: Vec<Vec<f64>> = eyes
+                .iter()
+                .map(|_| {
+                    (0..self.segments_per_eye)
+                        .map(|_| n(self.spread.segment).sample(&mut rng))
+                        .collect()
+                })
+                .collect();
             for session in sessions {
                 let u_session = n(self.spread.session).sample(&mut rng);
                 for (ei, epoch) in self.epochs.iter().enumerate() {
@@ -124,7 +165,15 @@ impl CohortDesign {
                                     eye: eye.to_string(),
                                     segment: format!("A{}", g + 1),
                                     epoch: ei,
-                                    so2: self.level + epoch.change + u_subject + response[ei] + u_session + u_eye[k] + ug + u_capture + e,
+                                    so2: self.level
+                                        + epoch.change
+                                        + u_subject
+                                        + response[ei]
+                                        + u_session
+                                        + u_eye[k]
+                                        + ug
+                                        + u_capture
+                                        + e,
                                 });
                             }
                         }
@@ -150,8 +199,26 @@ mod tests {
             missing_capture: 0.1,
             missing_value: 0.05,
             level: 95.0,
-            epochs: vec![EpochTruth { name: "air".into(), change: 0.0, response_sd: 1.0 }, EpochTruth { name: "low".into(), change: -8.0, response_sd: 3.0 }],
-            spread: Spread { subject: 3.0, session: 1.0, eye: 1.0, segment: 2.0, capture: 1.0, residual: 2.5 },
+            epochs: vec![
+                EpochTruth {
+                    name: "air".into(),
+                    change: 0.0,
+                    response_sd: 1.0,
+                },
+                EpochTruth {
+                    name: "low".into(),
+                    change: -8.0,
+                    response_sd: 3.0,
+                },
+            ],
+            spread: Spread {
+                subject: 3.0,
+                session: 1.0,
+                eye: 1.0,
+                segment: 2.0,
+                capture: 1.0,
+                residual: 2.5,
+            },
         }
     }
 
@@ -165,7 +232,12 @@ mod tests {
             let v: Vec<f64> = a.iter().filter(|o| o.epoch == e).map(|o| o.so2).collect();
             v.iter().sum::<f64>() / v.len() as f64
         };
-        assert!((mean(1) - mean(0) + 8.0).abs() < 4.0, "{} {}", mean(0), mean(1));
+        assert!(
+            (mean(1) - mean(0) + 8.0).abs() < 4.0,
+            "{} {}",
+            mean(0),
+            mean(1)
+        );
         assert_eq!(d.true_contrast(&[(1, 1.0), (0, -1.0)]), -8.0);
     }
 }

@@ -10,7 +10,7 @@
 //! then supplies more of the inner retina's oxygen (a modelling choice for
 //! the simulator, sized so that 100 % O2 raises venules by about 20 points).
 
-use crate::physiology::{alveolar_po2_mmhg, severinghaus_saturation, AIR_O2_FRACTION};
+use crate::physiology::{AIR_O2_FRACTION, alveolar_po2_mmhg, severinghaus_saturation};
 
 /// Physiological parameters of one simulated subject.
 #[derive(Debug, Clone, serde::Serialize)]
@@ -68,11 +68,22 @@ pub fn venous(p: &SubjectPhysiology, sao2: f64, pao2: f64) -> f64 {
 }
 
 /// Integrates the course from `t0_s` to `t1_s` with FiO2 given per second.
-pub fn simulate(p: &SubjectPhysiology, fio2_at: impl Fn(f64) -> f64, pb_mmhg: f64, t0_s: f64, t1_s: f64) -> Course {
+pub fn simulate(
+    p: &SubjectPhysiology,
+    fio2_at: impl Fn(f64) -> f64,
+    pb_mmhg: f64,
+    t0_s: f64,
+    t1_s: f64,
+) -> Course {
     let n = ((t1_s - t0_s).ceil() as usize).max(2) + 1;
     let (mut pao2, mut sao2) = steady_state(p, fio2_at(t0_s), pb_mmhg);
     let a = 1.0 - (-1.0 / p.time_constant_s).exp();
-    let mut c = Course { t0_s, sao2: Vec::with_capacity(n), svo2: Vec::with_capacity(n), pao2: Vec::with_capacity(n) };
+    let mut c = Course {
+        t0_s,
+        sao2: Vec::with_capacity(n),
+        svo2: Vec::with_capacity(n),
+        pao2: Vec::with_capacity(n),
+    };
     for i in 0..n {
         let t = t0_s + i as f64;
         let (pt, st) = steady_state(p, fio2_at(t), pb_mmhg);
@@ -125,10 +136,19 @@ mod tests {
     #[test]
     fn first_order_equilibration_reaches_90_percent_in_about_2_3_time_constants() {
         let p = typical();
-        let c = simulate(&p, |t| if t < 0.0 { 0.21 } else { 0.15 }, 760.0, -60.0, 900.0);
+        let c = simulate(
+            &p,
+            |t| if t < 0.0 { 0.21 } else { 0.15 },
+            760.0,
+            -60.0,
+            900.0,
+        );
         let (s0, s1) = (c.sao2_at(-1.0), c.sao2_at(900.0));
         let target = s0 + 0.9 * (s1 - s0);
-        let t90 = (0..900).map(|t| t as f64).find(|t| c.sao2_at(*t) <= target).unwrap();
+        let t90 = (0..900)
+            .map(|t| t as f64)
+            .find(|t| c.sao2_at(*t) <= target)
+            .unwrap();
         assert!((200.0..=260.0).contains(&t90), "{t90}");
     }
 }

@@ -22,13 +22,13 @@ use rand_distr::{Distribution, Normal, Uniform};
 use rayon::prelude::*;
 
 use crate::config::diag::Findings;
-use crate::config::protocol::{load_protocol, Protocol};
+use crate::config::protocol::{Protocol, load_protocol};
 use crate::config::read::Reader;
 use crate::config::segments::{Segment, VesselKind};
 use crate::config::study::BandResponse;
 use crate::oximetry::bands::SampledBand;
 use crate::physiology::pressure_at_altitude_mmhg;
-use crate::tables::{write_bytes_atomic, Table};
+use crate::tables::{Table, write_bytes_atomic};
 use course::SubjectPhysiology;
 use render::{Motion, Scene, VesselState};
 use seed::rng_for;
@@ -56,7 +56,18 @@ pub struct Scenario {
 }
 
 const SCENARIO_KEYS: &[&str] = &[
-    "scenario", "title", "seed", "protocol", "start", "subjects", "captures_per_epoch", "settling_captures", "altitude_m", "image", "instrument", "veil_max",
+    "scenario",
+    "title",
+    "seed",
+    "protocol",
+    "start",
+    "subjects",
+    "captures_per_epoch",
+    "settling_captures",
+    "altitude_m",
+    "image",
+    "instrument",
+    "veil_max",
 ];
 const IMAGE_KEYS: &[&str] = &["width", "height", "pixel_size_um"];
 const INSTRUMENT_KEYS: &[&str] = &["name", "bands"];
@@ -65,7 +76,9 @@ const BAND_KEYS: &[&str] = &["name", "centre_nm", "fwhm_nm"];
 /// Reads and validates a scenario file.
 pub fn load_scenario(path: &Path) -> Result<Scenario, Findings> {
     let mut findings = Findings::new();
-    let Some(root) = crate::config::read::load_tree(path, "scenario file", "check the path", &mut findings) else {
+    let Some(root) =
+        crate::config::read::load_tree(path, "scenario file", "check the path", &mut findings)
+    else {
         return Err(findings);
     };
     let dir = path.parent().map(Path::to_path_buf).unwrap_or_default();
@@ -81,9 +94,17 @@ pub fn load_scenario(path: &Path) -> Result<Scenario, Findings> {
 
 fn read_scenario(r: &mut Reader, node: &crate::config::yaml::Node, dir: &Path) -> Option<Scenario> {
     let m = r.map(node, "the scenario", SCENARIO_KEYS)?;
-    let id = r.required(&m, "scenario", "the scenario").and_then(|n| r.text(n, "`scenario`"));
-    let title = m.get("title").and_then(|n| r.text(n, "`title`")).unwrap_or_default();
-    let seed = m.get("seed").and_then(|n| r.integer(n, "`seed`")).unwrap_or(1) as u64;
+    let id = r
+        .required(&m, "scenario", "the scenario")
+        .and_then(|n| r.text(n, "`scenario`"));
+    let title = m
+        .get("title")
+        .and_then(|n| r.text(n, "`title`"))
+        .unwrap_or_default();
+    let seed = m
+        .get("seed")
+        .and_then(|n| r.integer(n, "`seed`"))
+        .unwrap_or(1) as u64;
     let proto_node = r.required(&m, "protocol", "the scenario")?;
     let protocol_file = dir.join(r.text(proto_node, "`protocol`")?);
     let protocol = match load_protocol(&protocol_file) {
@@ -93,7 +114,9 @@ fn read_scenario(r: &mut Reader, node: &crate::config::yaml::Node, dir: &Path) -
             None
         }
     };
-    let start = r.required(&m, "start", "the scenario").and_then(|n| r.time(n, "`start`"));
+    let start = r
+        .required(&m, "start", "the scenario")
+        .and_then(|n| r.time(n, "`start`"));
     let count = |r: &mut Reader, key: &str, default: i64, lo: i64, hi: i64| -> Option<usize> {
         match m.get(key) {
             None => Some(default as usize),
@@ -110,27 +133,49 @@ fn read_scenario(r: &mut Reader, node: &crate::config::yaml::Node, dir: &Path) -
     let subjects = count(r, "subjects", 8, 1, 200);
     let cpe = count(r, "captures_per_epoch", 5, 1, 50);
     let settling = count(r, "settling_captures", 1, 0, 10);
-    let altitude = m.get("altitude_m").and_then(|n| r.number(n, "`altitude_m`")).unwrap_or(0.0);
-    let veil_max = m.get("veil_max").and_then(|n| r.number(n, "`veil_max`")).unwrap_or(0.6);
+    let altitude = m
+        .get("altitude_m")
+        .and_then(|n| r.number(n, "`altitude_m`"))
+        .unwrap_or(0.0);
+    let veil_max = m
+        .get("veil_max")
+        .and_then(|n| r.number(n, "`veil_max`"))
+        .unwrap_or(0.6);
     let (mut w, mut h, mut px) = (Some(256usize), Some(256usize), Some(12.0));
     if let Some(n) = m.get("image") {
         if let Some(im) = r.map(n, "`image`", IMAGE_KEYS) {
-            if let Some(x) = im.get("width") { w = r.integer(x, "`width`").map(|v| v.clamp(32, 4096) as usize); }
-            if let Some(x) = im.get("height") { h = r.integer(x, "`height`").map(|v| v.clamp(32, 4096) as usize); }
-            if let Some(x) = im.get("pixel_size_um") { px = r.number(x, "`pixel_size_um`"); }
+            if let Some(x) = im.get("width") {
+                w = r.integer(x, "`width`").map(|v| v.clamp(32, 4096) as usize);
+            }
+            if let Some(x) = im.get("height") {
+                h = r.integer(x, "`height`").map(|v| v.clamp(32, 4096) as usize);
+            }
+            if let Some(x) = im.get("pixel_size_um") {
+                px = r.number(x, "`pixel_size_um`");
+            }
         }
     }
     let mut bands = Vec::new();
     let mut inst_name = "simulated camera".to_string();
     let inst = r.required(&m, "instrument", "the scenario")?;
     if let Some(im) = r.map(inst, "`instrument`", INSTRUMENT_KEYS) {
-        if let Some(n) = im.get("name") { inst_name = r.text(n, "`name`").unwrap_or(inst_name); }
+        if let Some(n) = im.get("name") {
+            inst_name = r.text(n, "`name`").unwrap_or(inst_name);
+        }
         if let Some(bl) = r.required(&im, "bands", "`instrument`") {
             for b in r.list(bl, "`bands`").unwrap_or_default() {
-                let Some(bm) = r.map(b, "a band", BAND_KEYS) else { continue };
-                let name = r.required(&bm, "name", "a band").and_then(|n| r.text(n, "`name`"));
-                let c = r.required(&bm, "centre_nm", "a band").and_then(|n| r.number(n, "`centre_nm`"));
-                let f = r.required(&bm, "fwhm_nm", "a band").and_then(|n| r.number(n, "`fwhm_nm`"));
+                let Some(bm) = r.map(b, "a band", BAND_KEYS) else {
+                    continue;
+                };
+                let name = r
+                    .required(&bm, "name", "a band")
+                    .and_then(|n| r.text(n, "`name`"));
+                let c = r
+                    .required(&bm, "centre_nm", "a band")
+                    .and_then(|n| r.number(n, "`centre_nm`"));
+                let f = r
+                    .required(&bm, "fwhm_nm", "a band")
+                    .and_then(|n| r.number(n, "`fwhm_nm`"));
                 if let (Some(name), Some(c), Some(f)) = (name, c, f) {
                     bands.push((name, c, f));
                 }
@@ -138,7 +183,10 @@ fn read_scenario(r: &mut Reader, node: &crate::config::yaml::Node, dir: &Path) -
         }
     }
     if !(0.0..0.95).contains(&veil_max) {
-        r.error(m.get("veil_max").map(|n| n.mark).unwrap_or(m.mark()), "`veil_max` must be in 0–0.95");
+        r.error(
+            m.get("veil_max").map(|n| n.mark).unwrap_or(m.mark()),
+            "`veil_max` must be in 0–0.95",
+        );
     }
     Some(Scenario {
         id: id?,
@@ -179,8 +227,12 @@ struct SimSubject {
 fn draw_subject(sc: &Scenario, i: usize) -> SimSubject {
     let id = format!("V{:02}", i + 1);
     let mut rng = rng_for(sc.seed, &["subject", &id]);
-    let u = |rng: &mut rand_chacha::ChaCha8Rng, a: f64, b: f64| Uniform::new(a, b).expect("range").sample(rng);
-    let n = |rng: &mut rand_chacha::ChaCha8Rng, m: f64, s: f64| Normal::new(m, s).expect("sd").sample(rng);
+    let u = |rng: &mut rand_chacha::ChaCha8Rng, a: f64, b: f64| {
+        Uniform::new(a, b).expect("range").sample(rng)
+    };
+    let n = |rng: &mut rand_chacha::ChaCha8Rng, m: f64, s: f64| {
+        Normal::new(m, s).expect("sd").sample(rng)
+    };
     let physiology = SubjectPhysiology {
         paco2_air_mmhg: n(&mut rng, 40.0, 2.0),
         ventilatory_gain_mmhg: u(&mut rng, 2.5, 5.5),
@@ -223,7 +275,15 @@ fn layout(sc: &Scenario, rng: &mut impl Rng) -> Vec<(Segment, f64, f64)> {
     let disc = (0.12 * w, 0.5 * h);
     let scale = w.min(h);
     let mut out = Vec::new();
-    let mut arc = |kind: VesselKind, id: String, from: (f64, f64), angle: f64, bend: f64, s0: f64, s1: f64, d: f64, rng: &mut dyn rand::RngCore| {
+    let mut arc = |kind: VesselKind,
+                   id: String,
+                   from: (f64, f64),
+                   angle: f64,
+                   bend: f64,
+                   s0: f64,
+                   s1: f64,
+                   d: f64,
+                   rng: &mut dyn rand::RngCore| {
         let pts: Vec<(f64, f64)> = (0..=12)
             .map(|k| {
                 let s = s0 + (s1 - s0) * k as f64 / 12.0;
@@ -231,24 +291,70 @@ fn layout(sc: &Scenario, rng: &mut impl Rng) -> Vec<(Segment, f64, f64)> {
                 (from.0 + s * a.cos(), from.1 + s * a.sin())
             })
             .collect();
-        let offset = Normal::new(0.0, if kind == VesselKind::Arteriole { 0.8 } else { 1.5 }).unwrap().sample(rng);
-        let seg = Segment { id, kind, points: pts, notes: String::new() };
+        let offset = Normal::new(
+            0.0,
+            if kind == VesselKind::Arteriole {
+                0.8
+            } else {
+                1.5
+            },
+        )
+        .unwrap()
+        .sample(rng);
+        let seg = Segment {
+            id,
+            kind,
+            points: pts,
+            notes: String::new(),
+        };
         out.push((seg, d, offset));
         let end = out.last().unwrap().0.points[6];
         (end, angle + bend * (s0 + (s1 - s0) * 0.5) / scale)
     };
     let angles = [-0.75, -0.45, -0.12, 0.15, 0.45, 0.78];
     for (k, base) in angles.iter().enumerate() {
-        let kind = if k % 2 == 0 { VesselKind::Arteriole } else { VesselKind::Venule };
-        let prefix = if kind == VesselKind::Arteriole { "A" } else { "V" };
-        let d = if kind == VesselKind::Arteriole { rng.random_range(95.0..135.0) } else { rng.random_range(125.0..175.0) };
+        let kind = if k % 2 == 0 {
+            VesselKind::Arteriole
+        } else {
+            VesselKind::Venule
+        };
+        let prefix = if kind == VesselKind::Arteriole {
+            "A"
+        } else {
+            "V"
+        };
+        let d = if kind == VesselKind::Arteriole {
+            rng.random_range(95.0..135.0)
+        } else {
+            rng.random_range(125.0..175.0)
+        };
         let a = base + rng.random_range(-0.05..0.05);
         let bend = rng.random_range(-0.35..0.35);
         let id = format!("{prefix}{}", k / 2 + 1);
-        let (mid, dir) = arc(kind, id.clone(), disc, a, bend, 0.12 * scale, 0.8 * scale, d, rng);
+        let (mid, dir) = arc(
+            kind,
+            id.clone(),
+            disc,
+            a,
+            bend,
+            0.12 * scale,
+            0.8 * scale,
+            d,
+            rng,
+        );
         if k == 1 || k == 4 {
             let side = if a < 0.0 { -0.55 } else { 0.55 };
-            arc(kind, format!("{id}b"), mid, dir + side, 0.0, 0.03 * scale, 0.38 * scale, rng.random_range(70.0..95.0), rng);
+            arc(
+                kind,
+                format!("{id}b"),
+                mid,
+                dir + side,
+                0.0,
+                0.03 * scale,
+                0.38 * scale,
+                rng.random_range(70.0..95.0),
+                rng,
+            );
         }
     }
     out
@@ -259,13 +365,32 @@ pub fn simulate(sc: &Scenario, out: &Path) -> Result<PathBuf> {
     std::fs::create_dir_all(out).with_context(|| format!("cannot create `{}`", out.display()))?;
     let p = &sc.protocol;
     let pb = pressure_at_altitude_mmhg(sc.altitude_m);
-    let bands: Vec<SampledBand> = sc.bands.iter().map(|(_, c, f)| SampledBand::from_response(&BandResponse::Gaussian { centre_nm: *c, fwhm_nm: *f })).collect();
+    let bands: Vec<SampledBand> = sc
+        .bands
+        .iter()
+        .map(|(_, c, f)| {
+            SampledBand::from_response(&BandResponse::Gaussian {
+                centre_nm: *c,
+                fwhm_nm: *f,
+            })
+        })
+        .collect();
     let mut boff_rng = rng_for(sc.seed, &["instrument", "band offsets"]);
     let band_offsets: Vec<(f64, f64)> = (0..bands.len())
-        .map(|b| if b == 0 { (0.0, 0.0) } else { (boff_rng.random_range(-0.6..0.6), boff_rng.random_range(-0.6..0.6)) })
+        .map(|b| {
+            if b == 0 {
+                (0.0, 0.0)
+            } else {
+                (
+                    boff_rng.random_range(-0.6..0.6),
+                    boff_rng.random_range(-0.6..0.6),
+                )
+            }
+        })
         .collect();
     let subjects: Vec<SimSubject> = (0..sc.subjects).map(|i| draw_subject(sc, i)).collect();
-    std::fs::copy(&sc.protocol_file, out.join("protocol.yaml")).with_context(|| format!("cannot copy `{}`", sc.protocol_file.display()))?;
+    std::fs::copy(&sc.protocol_file, out.join("protocol.yaml"))
+        .with_context(|| format!("cannot copy `{}`", sc.protocol_file.display()))?;
 
     struct CapturePlan {
         subject: usize,
@@ -288,17 +413,28 @@ pub fn simulate(sc: &Scenario, out: &Path) -> Result<PathBuf> {
             if e > 0 {
                 for j in 0..sc.settling_captures {
                     let span = (steady_from - start).max(1.0);
-                    times.push((start + span * (j as f64 + 0.5) / sc.settling_captures as f64 * 0.8 + 5.0, false));
+                    times.push((
+                        start + span * (j as f64 + 0.5) / sc.settling_captures as f64 * 0.8 + 5.0,
+                        false,
+                    ));
                 }
             }
             let span = (end - steady_from - 20.0).max(0.0);
             for j in 0..sc.captures_per_epoch {
-                let t = steady_from + 10.0 + span * (j as f64 + rng.random_range(0.2..0.8)) / sc.captures_per_epoch as f64;
+                let t = steady_from
+                    + 10.0
+                    + span * (j as f64 + rng.random_range(0.2..0.8)) / sc.captures_per_epoch as f64;
                 times.push((t.round(), true));
             }
             for (t, steady) in times {
                 k += 1;
-                plans.push(CapturePlan { subject: si, name: format!("c{k:03}"), t_s: t.round(), epoch: e, steady });
+                plans.push(CapturePlan {
+                    subject: si,
+                    name: format!("c{k:03}"),
+                    t_s: t.round(),
+                    epoch: e,
+                    steady,
+                });
             }
         }
     }
@@ -330,7 +466,11 @@ pub fn simulate(sc: &Scenario, out: &Path) -> Result<PathBuf> {
             let motion = if c.name == "c001" {
                 Motion::default()
             } else {
-                Motion { dx: rng.random_range(-6.0..6.0), dy: rng.random_range(-6.0..6.0), angle_deg: rng.random_range(-1.0..1.0) }
+                Motion {
+                    dx: rng.random_range(-6.0..6.0),
+                    dy: rng.random_range(-6.0..6.0),
+                    angle_deg: rng.random_range(-1.0..1.0),
+                }
             };
             let co = &courses[c.subject];
             let sa = co.sao2_at(c.t_s) * 100.0;
@@ -341,7 +481,11 @@ pub fn simulate(sc: &Scenario, out: &Path) -> Result<PathBuf> {
                 .segments
                 .iter()
                 .map(|(seg, d0, off)| {
-                    let base = if seg.kind == VesselKind::Arteriole { sa - s.physiology.arteriole_offset } else { sv };
+                    let base = if seg.kind == VesselKind::Arteriole {
+                        sa - s.physiology.arteriole_offset
+                    } else {
+                        sv
+                    };
                     let so2 = (base + off + jitter.sample(&mut rng)).clamp(1.0, 100.0);
                     let d0 = *d0;
                     truth.push((seg.id.clone(), seg.kind.as_str(), so2, d0));
@@ -369,7 +513,11 @@ pub fn simulate(sc: &Scenario, out: &Path) -> Result<PathBuf> {
             };
             let exposure = rng.random_range(0.9..1.1);
             let pages = render::render(&scene, &vessels, motion, exposure, &mut rng);
-            let path = out.join("subjects").join(&s.id).join("captures").join(format!("{}.tif", c.name));
+            let path = out
+                .join("subjects")
+                .join(&s.id)
+                .join("captures")
+                .join(format!("{}.tif", c.name));
             render::write_tiff(&path, sc.width, sc.height, &pages)?;
             Ok(Rendered { truth, motion })
         })
@@ -385,16 +533,42 @@ pub fn simulate(sc: &Scenario, out: &Path) -> Result<PathBuf> {
             writeln!(list, "captures/{}.tif,{}", c.name, t.to_rfc3339())?;
         }
         write_bytes_atomic(&dir.join("captures.csv"), list.as_bytes())?;
-        write_bytes_atomic(&dir.join("spo2.csv"), spo2_log(sc, s, &courses[si]).as_bytes())?;
+        write_bytes_atomic(
+            &dir.join("spo2.csv"),
+            spo2_log(sc, s, &courses[si]).as_bytes(),
+        )?;
         let mut seg = String::from("eye: OD\nsegments:\n");
         for (sg, _, _) in &s.segments {
-            let pts: Vec<String> = sg.points.iter().map(|(x, y)| format!("[{x:.1}, {y:.1}]")).collect();
-            writeln!(seg, "  - id: {}\n    kind: {}\n    points: [{}]", sg.id, sg.kind.as_str(), pts.join(", "))?;
+            let pts: Vec<String> = sg
+                .points
+                .iter()
+                .map(|(x, y)| format!("[{x:.1}, {y:.1}]"))
+                .collect();
+            writeln!(
+                seg,
+                "  - id: {}\n    kind: {}\n    points: [{}]",
+                sg.id,
+                sg.kind.as_str(),
+                pts.join(", ")
+            )?;
         }
         write_bytes_atomic(&dir.join("segments-OD.yaml"), seg.as_bytes())?;
     }
 
-    write_truth(sc, &subjects, &plans.iter().map(|c| (c.subject, c.name.clone(), c.t_s, c.epoch, c.steady)).collect::<Vec<_>>(), &rendered.iter().map(|r| (r.truth.clone(), r.motion)).collect::<Vec<_>>(), &band_offsets, out)?;
+    write_truth(
+        sc,
+        &subjects,
+        &plans
+            .iter()
+            .map(|c| (c.subject, c.name.clone(), c.t_s, c.epoch, c.steady))
+            .collect::<Vec<_>>(),
+        &rendered
+            .iter()
+            .map(|r| (r.truth.clone(), r.motion))
+            .collect::<Vec<_>>(),
+        &band_offsets,
+        out,
+    )?;
     let study = study_yaml(sc, &subjects);
     let study_path = out.join("study.yaml");
     write_bytes_atomic(&study_path, study.as_bytes())?;
@@ -420,8 +594,13 @@ fn spo2_log(sc: &Scenario, s: &SimSubject, co: &course::Course) -> String {
             dropout_left -= 1;
             let _ = writeln!(out, "{},", ts.to_rfc3339());
         } else {
-            let avg: f64 = (0..8).map(|k| co.sao2_at(t - s.probe_lag_s - k as f64)).sum::<f64>() / 8.0;
-            let v = (avg * 100.0 + noise.sample(&mut rng)).round().clamp(50.0, 100.0);
+            let avg: f64 = (0..8)
+                .map(|k| co.sao2_at(t - s.probe_lag_s - k as f64))
+                .sum::<f64>()
+                / 8.0;
+            let v = (avg * 100.0 + noise.sample(&mut rng))
+                .round()
+                .clamp(50.0, 100.0);
             let _ = writeln!(out, "{},{}", ts.to_rfc3339(), v);
         }
         t += 1.0;
@@ -440,7 +619,16 @@ fn write_truth(
 ) -> Result<()> {
     let dir = out.join("truth");
     let p = &sc.protocol;
-    let (mut subj, mut cap, mut seg, mut kind, mut so2, mut diam, mut epoch, mut steady) = (vec![], vec![], vec![], vec![], vec![], vec![], vec![], vec![]);
+    let (mut subj, mut cap, mut seg, mut kind, mut so2, mut diam, mut epoch, mut steady) = (
+        vec![],
+        vec![],
+        vec![],
+        vec![],
+        vec![],
+        vec![],
+        vec![],
+        vec![],
+    );
     let (mut msub, mut mcap, mut mdx, mut mdy, mut mang) = (vec![], vec![], vec![], vec![], vec![]);
     for ((si, name, _, e, st), (truth, motion)) in plans.iter().zip(rendered) {
         for (sid, k, v, d) in truth {
@@ -460,10 +648,21 @@ fn write_truth(
         mang.push(motion.angle_deg);
     }
     let mut t = Table::new();
-    t.text("subject", &subj).text("capture", &cap).text("segment", &seg).text("kind", &kind).text("epoch", &epoch).text("status", &steady).real("so2", so2.iter().copied()).real("diameter_um", diam.iter().copied());
+    t.text("subject", &subj)
+        .text("capture", &cap)
+        .text("segment", &seg)
+        .text("kind", &kind)
+        .text("epoch", &epoch)
+        .text("status", &steady)
+        .real("so2", so2.iter().copied())
+        .real("diameter_um", diam.iter().copied());
     t.write(&dir, "captures")?;
     let mut t = Table::new();
-    t.text("subject", &msub).text("capture", &mcap).real("dx_px", mdx).real("dy_px", mdy).real("angle_deg", mang);
+    t.text("subject", &msub)
+        .text("capture", &mcap)
+        .real("dx_px", mdx)
+        .real("dy_px", mdy)
+        .real("angle_deg", mang);
     t.write(&dir, "motion")?;
 
     // True per-subject epoch means over steady captures, per vessel kind.
@@ -471,15 +670,31 @@ fn write_truth(
     for s in subjects {
         for ep in &p.epochs {
             for k in ["arteriole", "venule"] {
-                let v: Vec<f64> = (0..subj.len()).filter(|&i| subj[i] == s.id && epoch[i] == ep.name && kind[i] == k && steady[i] == "steady").map(|i| so2[i]).collect();
+                let v: Vec<f64> = (0..subj.len())
+                    .filter(|&i| {
+                        subj[i] == s.id
+                            && epoch[i] == ep.name
+                            && kind[i] == k
+                            && steady[i] == "steady"
+                    })
+                    .map(|i| so2[i])
+                    .collect();
                 if !v.is_empty() {
-                    rows.push((s.id.clone(), ep.name.clone(), k.to_string(), v.iter().sum::<f64>() / v.len() as f64));
+                    rows.push((
+                        s.id.clone(),
+                        ep.name.clone(),
+                        k.to_string(),
+                        v.iter().sum::<f64>() / v.len() as f64,
+                    ));
                 }
             }
         }
     }
     let mut t = Table::new();
-    t.text("subject", rows.iter().map(|r| &r.0)).text("epoch", rows.iter().map(|r| &r.1)).text("kind", rows.iter().map(|r| &r.2)).real("so2", rows.iter().map(|r| r.3));
+    t.text("subject", rows.iter().map(|r| &r.0))
+        .text("epoch", rows.iter().map(|r| &r.1))
+        .text("kind", rows.iter().map(|r| &r.2))
+        .real("so2", rows.iter().map(|r| r.3));
     t.write(&dir, "epoch_means")?;
 
     // True contrasts: cohort mean of the per-subject contrast.
@@ -491,7 +706,14 @@ fn write_truth(
             let per: Vec<f64> = subjects
                 .iter()
                 .filter_map(|s| {
-                    c.weights.iter().map(|(e, w)| rows.iter().find(|r| r.0 == s.id && r.1 == p.epochs[*e].name && r.2 == k).map(|r| w * r.3)).sum::<Option<f64>>()
+                    c.weights
+                        .iter()
+                        .map(|(e, w)| {
+                            rows.iter()
+                                .find(|r| r.0 == s.id && r.1 == p.epochs[*e].name && r.2 == k)
+                                .map(|r| w * r.3)
+                        })
+                        .sum::<Option<f64>>()
                 })
                 .collect();
             if !per.is_empty() {
@@ -502,13 +724,25 @@ fn write_truth(
         }
     }
     let mut t = Table::new();
-    t.text("contrast", &cl).text("kind", &ck).real("so2_change", cv);
+    t.text("contrast", &cl)
+        .text("kind", &ck)
+        .real("so2_change", cv);
     t.write(&dir, "contrasts")?;
 
     let mut r = String::new();
-    writeln!(r, "# Rendering parameters of the simulated study `{}` (seed {}).", sc.id, sc.seed)?;
-    writeln!(r, "model: multi-path vessel transmission F_bs + F_1 t + F_2 t^2 with veil, band-integrated on a 1 nm grid")?;
-    writeln!(r, "backscatter_fraction: 0.04\ndouble_pass_fraction: 0.30 + 0.12 sin(9 f + phase) along each segment\nwell_electrons: 20000\nread_noise_electrons: 6")?;
+    writeln!(
+        r,
+        "# Rendering parameters of the simulated study `{}` (seed {}).",
+        sc.id, sc.seed
+    )?;
+    writeln!(
+        r,
+        "model: multi-path vessel transmission F_bs + F_1 t + F_2 t^2 with veil, band-integrated on a 1 nm grid"
+    )?;
+    writeln!(
+        r,
+        "backscatter_fraction: 0.04\ndouble_pass_fraction: 0.30 + 0.12 sin(9 f + phase) along each segment\nwell_electrons: 20000\nread_noise_electrons: 6"
+    )?;
     writeln!(r, "band_offsets_px:")?;
     for ((name, _, _), (dx, dy)) in sc.bands.iter().zip(band_offsets) {
         writeln!(r, "  {name}: [{dx:.4}, {dy:.4}]")?;
@@ -516,8 +750,21 @@ fn write_truth(
     writeln!(r, "subjects:")?;
     for s in subjects {
         let ph = &s.physiology;
-        writeln!(r, "  {}: {{pigmentation: {}, veil: {:.4}, hb_g_per_l: {:.2}, paco2_air_mmhg: {:.2}, ventilatory_gain_mmhg: {:.3}, a_a_gradient_mmhg: {:.2}, time_constant_s: {:.1}, extraction: {:.4}, arteriole_offset: {:.3}, probe_lag_s: {:.2}}}",
-            s.id, s.pigmentation, s.veil, ph.hb_g_per_l, ph.paco2_air_mmhg, ph.ventilatory_gain_mmhg, ph.a_a_gradient_mmhg, ph.time_constant_s, ph.extraction, ph.arteriole_offset, s.probe_lag_s)?;
+        writeln!(
+            r,
+            "  {}: {{pigmentation: {}, veil: {:.4}, hb_g_per_l: {:.2}, paco2_air_mmhg: {:.2}, ventilatory_gain_mmhg: {:.3}, a_a_gradient_mmhg: {:.2}, time_constant_s: {:.1}, extraction: {:.4}, arteriole_offset: {:.3}, probe_lag_s: {:.2}}}",
+            s.id,
+            s.pigmentation,
+            s.veil,
+            ph.hb_g_per_l,
+            ph.paco2_air_mmhg,
+            ph.ventilatory_gain_mmhg,
+            ph.a_a_gradient_mmhg,
+            ph.time_constant_s,
+            ph.extraction,
+            ph.arteriole_offset,
+            s.probe_lag_s
+        )?;
     }
     write_bytes_atomic(&dir.join("rendering.yaml"), r.as_bytes())?;
     Ok(())
@@ -526,32 +773,76 @@ fn write_truth(
 fn study_yaml(sc: &Scenario, subjects: &[SimSubject]) -> String {
     let p = &sc.protocol;
     let mut y = String::new();
-    let _ = writeln!(y, "# Written by `satstep simulate` from scenario `{}`. Research use only.", sc.id);
+    let _ = writeln!(
+        y,
+        "# Written by `satstep simulate` from scenario `{}`. Research use only.",
+        sc.id
+    );
     let _ = writeln!(y, "study: {}", sc.id);
     let _ = writeln!(y, "title: \"{}\"", sc.title.replace('"', "'"));
     let _ = writeln!(y, "protocol: protocol.yaml");
-    let _ = writeln!(y, "instrument:\n  name: \"{}\"\n  pixel_size_um: {}\n  bands:", sc.instrument_name, sc.pixel_size_um);
+    let _ = writeln!(
+        y,
+        "instrument:\n  name: \"{}\"\n  pixel_size_um: {}\n  bands:",
+        sc.instrument_name, sc.pixel_size_um
+    );
     for (n, c, f) in &sc.bands {
         let _ = writeln!(y, "    - {{name: {n}, centre_nm: {c}, fwhm_nm: {f}}}");
     }
     let _ = writeln!(y, "subjects:");
     for s in subjects {
-        let _ = writeln!(y, "  - id: {}\n    age: {}\n    sex: {}\n    pigmentation: {}\n    sessions:", s.id, s.age, s.sex, s.pigmentation);
-        let _ = writeln!(y, "      - id: s1\n        start: {}\n        eyes: [OD]", s.start.to_rfc3339());
+        let _ = writeln!(
+            y,
+            "  - id: {}\n    age: {}\n    sex: {}\n    pigmentation: {}\n    sessions:",
+            s.id, s.age, s.sex, s.pigmentation
+        );
+        let _ = writeln!(
+            y,
+            "      - id: s1\n        start: {}\n        eyes: [OD]",
+            s.start.to_rfc3339()
+        );
         let _ = writeln!(y, "        switches:");
         for (i, t) in s.switches_s.iter().enumerate() {
-            let _ = writeln!(y, "          {}: {}", p.epochs[i + 1].name, (s.start + Duration::seconds(*t as i64)).to_rfc3339());
+            let _ = writeln!(
+                y,
+                "          {}: {}",
+                p.epochs[i + 1].name,
+                (s.start + Duration::seconds(*t as i64)).to_rfc3339()
+            );
         }
         let _ = writeln!(y, "        captures: subjects/{}/captures.csv", s.id);
-        let _ = writeln!(y, "        reference: {{file: subjects/{}/spo2.csv, columns: {{time: time, spo2: spo2}}}}", s.id);
-        let _ = writeln!(y, "        segments: {{OD: subjects/{}/segments-OD.yaml}}", s.id);
+        let _ = writeln!(
+            y,
+            "        reference: {{file: subjects/{}/spo2.csv, columns: {{time: time, spo2: spo2}}}}",
+            s.id
+        );
+        let _ = writeln!(
+            y,
+            "        segments: {{OD: subjects/{}/segments-OD.yaml}}",
+            s.id
+        );
     }
     let names: Vec<&str> = sc.bands.iter().map(|b| b.0.as_str()).collect();
-    let pick = |target: f64| sc.bands.iter().min_by(|a, b| (a.1 - target).abs().total_cmp(&(b.1 - target).abs())).map(|b| b.0.clone()).unwrap_or_default();
+    let pick = |target: f64| {
+        sc.bands
+            .iter()
+            .min_by(|a, b| (a.1 - target).abs().total_cmp(&(b.1 - target).abs()))
+            .map(|b| b.0.clone())
+            .unwrap_or_default()
+    };
     let _ = writeln!(y, "methods:");
-    let _ = writeln!(y, "  - method: two-band\n    sensitive: {}\n    isosbestic: {}\n    calibration: {{mode: two-point, epoch: {}, venule_so2: 60}}", pick(600.0), pick(570.0), p.epochs[p.baseline].name);
+    let _ = writeln!(
+        y,
+        "  - method: two-band\n    sensitive: {}\n    isosbestic: {}\n    calibration: {{mode: two-point, epoch: {}, venule_so2: 60}}",
+        pick(600.0),
+        pick(570.0),
+        p.epochs[p.baseline].name
+    );
     if names.len() >= 4 {
-        let _ = writeln!(y, "  - method: multiband\n    loss: huber\n    huber_scale: 1.5\n  - method: multiband-pointwise\n    loss: huber");
+        let _ = writeln!(
+            y,
+            "  - method: multiband\n    loss: huber\n    huber_scale: 1.5\n  - method: multiband-pointwise\n    loss: huber"
+        );
     }
     let _ = writeln!(y, "output: results");
     y

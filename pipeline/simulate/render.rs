@@ -77,17 +77,22 @@ pub struct ChordTable {
 
 impl ChordTable {
     pub fn new(model: &VesselModel, band: usize, so2: f64, hb: f64, max_um: usize) -> Self {
-        let (t1, t2) = (0..=max_um + 1).map(|i| {
-            let ((e1, _, _), (e2, _, _)) = model.path_terms(band, so2, hb, i as f64);
-            (e1, e2)
-        }).unzip();
+        let (t1, t2) = (0..=max_um + 1)
+            .map(|i| {
+                let ((e1, _, _), (e2, _, _)) = model.path_terms(band, so2, hb, i as f64);
+                (e1, e2)
+            })
+            .unzip();
         ChordTable { t1, t2 }
     }
 
     fn at(&self, l_um: f64) -> (f64, f64) {
         let i = (l_um.floor() as usize).min(self.t1.len() - 2);
         let w = l_um - i as f64;
-        (self.t1[i] * (1.0 - w) + self.t1[i + 1] * w, self.t2[i] * (1.0 - w) + self.t2[i + 1] * w)
+        (
+            self.t1[i] * (1.0 - w) + self.t1[i + 1] * w,
+            self.t2[i] * (1.0 - w) + self.t2[i + 1] * w,
+        )
     }
 }
 
@@ -99,7 +104,11 @@ fn nearest_on(points: &[(f64, f64)], p: (f64, f64), cum: &[f64]) -> (f64, f64) {
         let (a, b) = (w[0], w[1]);
         let (vx, vy) = (b.0 - a.0, b.1 - a.1);
         let len2 = vx * vx + vy * vy;
-        let u = if len2 > 0.0 { (((p.0 - a.0) * vx + (p.1 - a.1) * vy) / len2).clamp(0.0, 1.0) } else { 0.0 };
+        let u = if len2 > 0.0 {
+            (((p.0 - a.0) * vx + (p.1 - a.1) * vy) / len2).clamp(0.0, 1.0)
+        } else {
+            0.0
+        };
         let (qx, qy) = (a.0 + u * vx, a.1 + u * vy);
         let d = ((p.0 - qx).powi(2) + (p.1 - qy).powi(2)).sqrt();
         if d < best.0 {
@@ -110,29 +119,50 @@ fn nearest_on(points: &[(f64, f64)], p: (f64, f64), cum: &[f64]) -> (f64, f64) {
 }
 
 /// Renders one capture: one 16-bit image per band, row-major.
-pub fn render(scene: &Scene, vessels: &[VesselState], motion: Motion, exposure: f64, rng: &mut impl Rng) -> Vec<Vec<u16>> {
+pub fn render(
+    scene: &Scene,
+    vessels: &[VesselState],
+    motion: Motion,
+    exposure: f64,
+    rng: &mut impl Rng,
+) -> Vec<Vec<u16>> {
     let (w, h) = (scene.width, scene.height);
     let (cx, cy) = (w as f64 / 2.0, h as f64 / 2.0);
     let normal = Normal::new(0.0, 1.0).expect("unit normal");
     let max_d = 220usize;
     let mut out = Vec::with_capacity(scene.bands.len());
     // The fundus behind the vessel weights each band's spectrum.
-    let model = VesselModel::new(scene.bands, |l| background_reflectance(l, scene.pigmentation), scene.backscatter);
+    let model = VesselModel::new(
+        scene.bands,
+        |l| background_reflectance(l, scene.pigmentation),
+        scene.backscatter,
+    );
     for (b, band) in scene.bands.iter().enumerate() {
         let refl = band.average(|l| background_reflectance(l, scene.pigmentation));
-        let tables: Vec<ChordTable> = vessels.iter().map(|v| ChordTable::new(&model, b, v.so2, scene.hb_g_per_l, max_d)).collect();
+        let tables: Vec<ChordTable> = vessels
+            .iter()
+            .map(|v| ChordTable::new(&model, b, v.so2, scene.hb_g_per_l, max_d))
+            .collect();
         // Vessel polylines in this capture and band.
         let (ox, oy) = scene.band_offsets[b];
         let moved: Vec<(Vec<(f64, f64)>, Vec<f64>)> = vessels
             .iter()
             .map(|v| {
-                let pts: Vec<(f64, f64)> = v.segment.points.iter().map(|p| {
-                    let q = motion.apply(*p, cx, cy);
-                    (q.0 + ox, q.1 + oy)
-                }).collect();
+                let pts: Vec<(f64, f64)> = v
+                    .segment
+                    .points
+                    .iter()
+                    .map(|p| {
+                        let q = motion.apply(*p, cx, cy);
+                        (q.0 + ox, q.1 + oy)
+                    })
+                    .collect();
                 let mut cum = vec![0.0];
                 for s in pts.windows(2) {
-                    cum.push(cum.last().unwrap() + ((s[1].0 - s[0].0).powi(2) + (s[1].1 - s[0].1).powi(2)).sqrt());
+                    cum.push(
+                        cum.last().unwrap()
+                            + ((s[1].0 - s[0].0).powi(2) + (s[1].1 - s[0].1).powi(2)).sqrt(),
+                    );
                 }
                 (pts, cum)
             })
@@ -140,11 +170,22 @@ pub fn render(scene: &Scene, vessels: &[VesselState], motion: Motion, exposure: 
         let mut trans = vec![1.0f64; w * h];
         for (vi, v) in vessels.iter().enumerate() {
             let (pts, cum) = &moved[vi];
-            let r_max = (v.diameter_um)(0.5).max((v.diameter_um)(0.0)).max((v.diameter_um)(1.0)) / scene.pixel_um / 2.0 + 2.0;
-            let (x0, x1) = pts.iter().fold((f64::MAX, f64::MIN), |a, p| (a.0.min(p.0), a.1.max(p.0)));
-            let (y0, y1) = pts.iter().fold((f64::MAX, f64::MIN), |a, p| (a.0.min(p.1), a.1.max(p.1)));
-            let xs = ((x0 - r_max).floor().max(0.0) as usize)..((x1 + r_max).ceil().min(w as f64 - 1.0).max(0.0) as usize + 1);
-            let ys = ((y0 - r_max).floor().max(0.0) as usize)..((y1 + r_max).ceil().min(h as f64 - 1.0).max(0.0) as usize + 1);
+            let r_max = (v.diameter_um)(0.5)
+                .max((v.diameter_um)(0.0))
+                .max((v.diameter_um)(1.0))
+                / scene.pixel_um
+                / 2.0
+                + 2.0;
+            let (x0, x1) = pts
+                .iter()
+                .fold((f64::MAX, f64::MIN), |a, p| (a.0.min(p.0), a.1.max(p.0)));
+            let (y0, y1) = pts
+                .iter()
+                .fold((f64::MAX, f64::MIN), |a, p| (a.0.min(p.1), a.1.max(p.1)));
+            let xs = ((x0 - r_max).floor().max(0.0) as usize)
+                ..((x1 + r_max).ceil().min(w as f64 - 1.0).max(0.0) as usize + 1);
+            let ys = ((y0 - r_max).floor().max(0.0) as usize)
+                ..((y1 + r_max).ceil().min(h as f64 - 1.0).max(0.0) as usize + 1);
             // Each pixel averages 3×3 sub-pixel samples, so that vessel
             // edges are not stair-stepped on the pixel grid.
             const SUB: [f64; 3] = [-1.0 / 3.0, 0.0, 1.0 / 3.0];
@@ -152,7 +193,8 @@ pub fn render(scene: &Scene, vessels: &[VesselState], motion: Motion, exposure: 
                 for x in xs.clone() {
                     // Away from the edge one sample is exact enough.
                     let (d_c, f_c) = nearest_on(pts, (x as f64, y as f64), cum);
-                    let edge = ((v.diameter_um)(f_c) / 2.0 - d_c * scene.pixel_um).abs() / scene.pixel_um;
+                    let edge =
+                        ((v.diameter_um)(f_c) / 2.0 - d_c * scene.pixel_um).abs() / scene.pixel_um;
                     let subs: &[f64] = if edge > 1.0 { &[0.0] } else { &SUB };
                     let mut acc = 0.0;
                     let mut inside = false;
@@ -190,7 +232,9 @@ pub fn render(scene: &Scene, vessels: &[VesselState], motion: Motion, exposure: 
                 let t_obs = (1.0 - scene.veil) * trans[y * w + x] + scene.veil;
                 let signal = exposure * refl / 0.22 * vign * texture;
                 let electrons = (signal * t_obs * scene.well_electrons * 0.8).max(0.0);
-                let noisy = electrons + electrons.sqrt() * normal.sample(rng) + scene.read_noise_electrons * normal.sample(rng);
+                let noisy = electrons
+                    + electrons.sqrt() * normal.sample(rng)
+                    + scene.read_noise_electrons * normal.sample(rng);
                 img.push((noisy * dn_per_e).round().clamp(0.0, 65535.0) as u16);
             }
         }
@@ -200,7 +244,12 @@ pub fn render(scene: &Scene, vessels: &[VesselState], motion: Motion, exposure: 
 }
 
 /// Writes the bands of one capture as a multi-page 16-bit TIFF, in band order.
-pub fn write_tiff(path: &std::path::Path, width: usize, height: usize, pages: &[Vec<u16>]) -> anyhow::Result<()> {
+pub fn write_tiff(
+    path: &std::path::Path,
+    width: usize,
+    height: usize,
+    pages: &[Vec<u16>],
+) -> anyhow::Result<()> {
     crate::tables::write_atomic(path, |f| {
         let mut enc = tiff::encoder::TiffEncoder::new(std::io::BufWriter::new(f))?;
         for p in pages {

@@ -11,11 +11,11 @@
 use std::path::{Path, PathBuf};
 
 use anyhow::{Context, Result};
-use serde::de::DeserializeOwned;
 use serde::Serialize;
+use serde::de::DeserializeOwned;
 use sha2::{Digest, Sha256};
 
-use super::key::{Key, CACHE_FORMAT};
+use super::key::{CACHE_FORMAT, Key};
 use crate::tables::write_bytes_atomic;
 
 const MAGIC: &[u8; 8] = b"satstep\x01";
@@ -29,12 +29,17 @@ pub enum Lookup<T> {
     Hit(T),
     Miss,
     /// The entry exists but cannot be trusted; it has been removed.
-    Corrupt { path: PathBuf, reason: String },
+    Corrupt {
+        path: PathBuf,
+        reason: String,
+    },
 }
 
 impl Store {
     pub fn new(output: &Path) -> Self {
-        Store { root: output.join("cache") }
+        Store {
+            root: output.join("cache"),
+        }
     }
 
     pub fn root(&self) -> &Path {
@@ -47,7 +52,9 @@ impl Store {
 
     pub fn get<T: DeserializeOwned>(&self, area: &str, key: &Key) -> Lookup<T> {
         let path = self.entry(area, key);
-        let Ok(bytes) = std::fs::read(&path) else { return Lookup::Miss };
+        let Ok(bytes) = std::fs::read(&path) else {
+            return Lookup::Miss;
+        };
         match decode(&bytes) {
             Ok(v) => Lookup::Hit(v),
             Err(reason) => {
@@ -94,7 +101,9 @@ fn decode<T: DeserializeOwned>(bytes: &[u8]) -> std::result::Result<T, String> {
     }
     let format = u32::from_le_bytes(bytes[8..12].try_into().expect("4 bytes"));
     if format != CACHE_FORMAT {
-        return Err(format!("cache format {format}, this version reads {CACHE_FORMAT}"));
+        return Err(format!(
+            "cache format {format}, this version reads {CACHE_FORMAT}"
+        ));
     }
     let payload = &bytes[44..];
     if Sha256::digest(payload).as_slice() != &bytes[12..44] {
@@ -126,7 +135,10 @@ mod tests {
         let key = KeyBuilder::new("t", 1).finish();
         let value = (vec![1.5_f64, f64::NAN, -0.0], "x".to_string(), Some(3_i64));
         store.put("area", &key, &value).unwrap();
-        let Lookup::Hit(back): Lookup<(Vec<f64>, String, Option<i64>)> = store.get("area", &key) else { panic!("expected a hit") };
+        let Lookup::Hit(back): Lookup<(Vec<f64>, String, Option<i64>)> = store.get("area", &key)
+        else {
+            panic!("expected a hit")
+        };
         assert_eq!(back.0[0].to_bits(), 1.5_f64.to_bits());
         assert!(back.0[1].is_nan());
         assert_eq!(back.0[2].to_bits(), (-0.0_f64).to_bits());
@@ -136,8 +148,14 @@ mod tests {
         let last = bytes.len() - 1;
         bytes[last] ^= 0xff;
         std::fs::write(&path, &bytes).unwrap();
-        assert!(matches!(store.get::<(Vec<f64>, String, Option<i64>)>("area", &key), Lookup::Corrupt { .. }));
+        assert!(matches!(
+            store.get::<(Vec<f64>, String, Option<i64>)>("area", &key),
+            Lookup::Corrupt { .. }
+        ));
         assert!(!path.exists());
-        assert!(matches!(store.get::<(Vec<f64>, String, Option<i64>)>("area", &key), Lookup::Miss));
+        assert!(matches!(
+            store.get::<(Vec<f64>, String, Option<i64>)>("area", &key),
+            Lookup::Miss
+        ));
     }
 }

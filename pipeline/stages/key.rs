@@ -13,7 +13,9 @@ use sha2::{Digest, Sha256};
 /// Bumped when the layout of cache entries or keys changes.
 pub const CACHE_FORMAT: u32 = 1;
 
-#[derive(Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, serde::Serialize, serde::Deserialize)]
+#[derive(
+    Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, serde::Serialize, serde::Deserialize,
+)]
 pub struct Key(pub [u8; 32]);
 
 impl Key {
@@ -109,12 +111,27 @@ mod tests {
 
     #[test]
     fn parts_are_length_prefixed() {
-        let a = KeyBuilder::new("s", 1).bytes("x", b"ab").bytes("y", b"c").finish();
-        let b = KeyBuilder::new("s", 1).bytes("x", b"a").bytes("y", b"bc").finish();
+        let a = KeyBuilder::new("s", 1)
+            .bytes("x", b"ab")
+            .bytes("y", b"c")
+            .finish();
+        let b = KeyBuilder::new("s", 1)
+            .bytes("x", b"a")
+            .bytes("y", b"bc")
+            .finish();
         assert_ne!(a, b);
-        let c = KeyBuilder::new("s", 2).bytes("x", b"ab").bytes("y", b"c").finish();
+        let c = KeyBuilder::new("s", 2)
+            .bytes("x", b"ab")
+            .bytes("y", b"c")
+            .finish();
         assert_ne!(a, c);
-        assert_eq!(a, KeyBuilder::new("s", 1).bytes("x", b"ab").bytes("y", b"c").finish());
+        assert_eq!(
+            a,
+            KeyBuilder::new("s", 1)
+                .bytes("x", b"ab")
+                .bytes("y", b"c")
+                .finish()
+        );
     }
 
     #[test]
@@ -123,6 +140,9 @@ mod tests {
         let dir = tempfile::tempdir().unwrap();
         let p = dir.path().join("abc");
         std::fs::write(&p, b"abc").unwrap();
-        assert_eq!(hash_file(&p).unwrap().hex(), "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad");
+        assert_eq!(
+            hash_file(&p).unwrap().hex(),
+            "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"
+        );
     }
 }

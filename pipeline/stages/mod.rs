@@ -16,17 +16,17 @@ pub mod progress;
 
 use std::collections::BTreeSet;
 use std::path::{Path, PathBuf};
-use std::sync::atomic::{AtomicUsize, Ordering};
 use std::sync::Mutex;
+use std::sync::atomic::{AtomicUsize, Ordering};
 use std::time::Instant;
 
 use anyhow::Result;
-use serde::de::DeserializeOwned;
 use serde::Serialize;
+use serde::de::DeserializeOwned;
 
 use crate::cli::printer::Printer;
 use cache::{Lookup, StageRecord, Store};
-use key::{hash_file, Key, KeyBuilder};
+use key::{Key, KeyBuilder, hash_file};
 use progress::Progress;
 
 /// The stages of `run`, in order; `--force` takes these names.
@@ -42,7 +42,10 @@ pub struct Parts {
 
 impl Parts {
     fn named(&self) -> Vec<(String, Key)> {
-        let mut v = vec![("settings".to_string(), self.settings), ("inputs".to_string(), self.inputs)];
+        let mut v = vec![
+            ("settings".to_string(), self.settings),
+            ("inputs".to_string(), self.inputs),
+        ];
         v.extend(self.upstream.iter().map(|(n, k)| (n.to_string(), *k)));
         v
     }
@@ -79,7 +82,14 @@ pub struct Runner<'a> {
 
 impl<'a> Runner<'a> {
     pub fn new(output: &Path, printer: &'a Printer, force: &[String]) -> Self {
-        Runner { store: Store::new(output), printer, output: output.to_path_buf(), force: force.iter().cloned().collect(), log: Mutex::new(vec![]), warnings: Mutex::new(vec![]) }
+        Runner {
+            store: Store::new(output),
+            printer,
+            output: output.to_path_buf(),
+            force: force.iter().cloned().collect(),
+            log: Mutex::new(vec![]),
+            warnings: Mutex::new(vec![]),
+        }
     }
 
     fn forced(&self, stage: &str) -> bool {
@@ -99,7 +109,14 @@ impl<'a> Runner<'a> {
     /// Runs `stage` unless its last result has the same key and its output
     /// files are intact. `compute` returns the result and a line of detail;
     /// `write` writes the result's tables and returns their paths.
-    pub fn stage<T, C, W>(&self, stage: &str, version: u32, parts: Parts, compute: C, write: W) -> Result<(T, Key)>
+    pub fn stage<T, C, W>(
+        &self,
+        stage: &str,
+        version: u32,
+        parts: Parts,
+        compute: C,
+        write: W,
+    ) -> Result<(T, Key)>
     where
         T: Serialize + DeserializeOwned,
         C: FnOnce(&Self) -> Result<(T, String)>,
@@ -115,19 +132,34 @@ impl<'a> Runner<'a> {
         } else if let Some(rec) = previous.as_ref().filter(|r| r.key == key.hex()) {
             match self.store.get::<T>(&area, &key) {
                 Lookup::Hit(value) => {
-                    let changed: Vec<&String> = rec.outputs.iter().filter(|(p, h)| hash_file(&self.output.join(p)).map(|k| k.hex() != *h).unwrap_or(true)).map(|(p, _)| p).collect();
+                    let changed: Vec<&String> = rec
+                        .outputs
+                        .iter()
+                        .filter(|(p, h)| {
+                            hash_file(&self.output.join(p))
+                                .map(|k| k.hex() != *h)
+                                .unwrap_or(true)
+                        })
+                        .map(|(p, _)| p)
+                        .collect();
                     let detail = if changed.is_empty() {
                         String::new()
                     } else {
                         let paths = write(&value, self)?;
                         self.record(stage, &key, &parts, &paths)?;
-                        format!("rewrote {} missing or altered output files from the cache", changed.len())
+                        format!(
+                            "rewrote {} missing or altered output files from the cache",
+                            changed.len()
+                        )
                     };
                     self.finish(stage, "up to date", String::new(), detail, t0, &key);
                     return Ok((value, key));
                 }
                 Lookup::Corrupt { path, reason: why } => {
-                    self.warn(format!("cache entry `{}` is unusable ({why}); recomputing `{stage}`", path.display()));
+                    self.warn(format!(
+                        "cache entry `{}` is unusable ({why}); recomputing `{stage}`",
+                        path.display()
+                    ));
                     reason = Some("its cached result was unusable".into());
                 }
                 Lookup::Miss => reason = Some("its cached result is missing".into()),
@@ -145,14 +177,34 @@ impl<'a> Runner<'a> {
     fn record(&self, stage: &str, key: &Key, parts: &Parts, paths: &[PathBuf]) -> Result<()> {
         let mut outputs = Vec::new();
         for p in paths {
-            let rel = p.strip_prefix(&self.output).unwrap_or(p).to_string_lossy().replace('\\', "/");
+            let rel = p
+                .strip_prefix(&self.output)
+                .unwrap_or(p)
+                .to_string_lossy()
+                .replace('\\', "/");
             outputs.push((rel, hash_file(p)?.hex()));
         }
-        let rec = StageRecord { key: key.hex(), parts: parts.named().into_iter().map(|(n, k)| (n, k.hex())).collect(), outputs };
+        let rec = StageRecord {
+            key: key.hex(),
+            parts: parts
+                .named()
+                .into_iter()
+                .map(|(n, k)| (n, k.hex()))
+                .collect(),
+            outputs,
+        };
         self.store.put_record(stage, &rec)
     }
 
-    fn finish(&self, stage: &str, status: &str, reason: String, detail: String, t0: Instant, key: &Key) {
+    fn finish(
+        &self,
+        stage: &str,
+        status: &str,
+        reason: String,
+        detail: String,
+        t0: Instant,
+        key: &Key,
+    ) {
         let seconds = t0.elapsed().as_secs_f64();
         let mut line = format!("{stage:<10} {status}");
         if !reason.is_empty() {
@@ -163,7 +215,14 @@ impl<'a> Runner<'a> {
         }
         line.push_str(&format!(" [{seconds:.1} s]"));
         self.printer.info(line);
-        self.log.lock().expect("not poisoned").push(StageLog { stage: stage.into(), status: status.into(), reason, detail, seconds, key: key.hex() });
+        self.log.lock().expect("not poisoned").push(StageLog {
+            stage: stage.into(),
+            status: status.into(),
+            reason,
+            detail,
+            seconds,
+            key: key.hex(),
+        });
     }
 
     /// A finished item of stage `area`, read back from the cache (stages
@@ -171,31 +230,56 @@ impl<'a> Runner<'a> {
     pub fn item<T: DeserializeOwned>(&self, area: &str, key: &Key) -> Result<T> {
         match self.store.get::<T>(&format!("items/{area}"), key) {
             Lookup::Hit(v) => Ok(v),
-            Lookup::Miss => anyhow::bail!("an item of `{area}` is missing from the cache under `{}`; run again with `--force {area}`", self.store.root().display()),
-            Lookup::Corrupt { path, reason } => anyhow::bail!("cache entry `{}` is unusable ({reason}); run again with `--force {area}`", path.display()),
+            Lookup::Miss => anyhow::bail!(
+                "an item of `{area}` is missing from the cache under `{}`; run again with `--force {area}`",
+                self.store.root().display()
+            ),
+            Lookup::Corrupt { path, reason } => anyhow::bail!(
+                "cache entry `{}` is unusable ({reason}); run again with `--force {area}`",
+                path.display()
+            ),
         }
     }
 
     /// A per-item cache for one stage's items; `area` is the stage's name.
     pub fn items(&self, area: &str, len: usize, what: &str) -> Items<'_> {
-        Items { runner: self, area: format!("items/{area}"), bypass: self.forced(area), hits: AtomicUsize::new(0), computed: AtomicUsize::new(0), failed_write: Mutex::new(None), bar: Progress::new(self.printer, len, what) }
+        Items {
+            runner: self,
+            area: format!("items/{area}"),
+            bypass: self.forced(area),
+            hits: AtomicUsize::new(0),
+            computed: AtomicUsize::new(0),
+            failed_write: Mutex::new(None),
+            bar: Progress::new(self.printer, len, what),
+        }
     }
 }
 
 /// Why a stage with an earlier record must run again.
 fn explain(previous: Option<&StageRecord>, parts: &Parts) -> String {
-    let Some(rec) = previous else { return "no earlier result".into() };
+    let Some(rec) = previous else {
+        return "no earlier result".into();
+    };
     let changed: Vec<String> = parts
         .named()
         .into_iter()
-        .filter(|(n, k)| rec.parts.iter().find(|(m, _)| m == n).is_none_or(|(_, h)| *h != k.hex()))
+        .filter(|(n, k)| {
+            rec.parts
+                .iter()
+                .find(|(m, _)| m == n)
+                .is_none_or(|(_, h)| *h != k.hex())
+        })
         .map(|(n, _)| match n.as_str() {
             "settings" => "settings changed".to_string(),
             "inputs" => "input files changed".to_string(),
             up => format!("`{up}` changed"),
         })
         .collect();
-    if changed.is_empty() { "stage version changed".into() } else { changed.join(", ") }
+    if changed.is_empty() {
+        "stage version changed".into()
+    } else {
+        changed.join(", ")
+    }
 }
 
 /// Item-level cache of one stage: finished items are stored at once, so an
@@ -224,7 +308,10 @@ impl Items<'_> {
                 Some(v)
             }
             Lookup::Corrupt { path, reason } => {
-                self.runner.warn(format!("cache entry `{}` is unusable ({reason}); recomputing it", path.display()));
+                self.runner.warn(format!(
+                    "cache entry `{}` is unusable ({reason}); recomputing it",
+                    path.display()
+                ));
                 None
             }
             Lookup::Miss => None,
@@ -236,13 +323,20 @@ impl Items<'_> {
         self.bar.inc();
     }
 
-    pub fn get_or_compute<T: Serialize + DeserializeOwned>(&self, key: &Key, compute: impl FnOnce() -> T) -> T {
+    pub fn get_or_compute<T: Serialize + DeserializeOwned>(
+        &self,
+        key: &Key,
+        compute: impl FnOnce() -> T,
+    ) -> T {
         if let Some(v) = self.cached(key) {
             return v;
         }
         let v = compute();
         if let Err(e) = self.runner.store.put(&self.area, key, &v) {
-            self.failed_write.lock().expect("not poisoned").get_or_insert(e);
+            self.failed_write
+                .lock()
+                .expect("not poisoned")
+                .get_or_insert(e);
         }
         self.computed_one();
         v
@@ -250,7 +344,11 @@ impl Items<'_> {
 
     /// As [`Items::get_or_compute`] for a computation that can fail; a
     /// failure is returned and nothing is stored.
-    pub fn try_get_or_compute<T: Serialize + DeserializeOwned>(&self, key: &Key, compute: impl FnOnce() -> Result<T>) -> Result<T> {
+    pub fn try_get_or_compute<T: Serialize + DeserializeOwned>(
+        &self,
+        key: &Key,
+        compute: impl FnOnce() -> Result<T>,
+    ) -> Result<T> {
         if let Some(v) = self.cached(key) {
             return Ok(v);
         }
@@ -265,9 +363,15 @@ impl Items<'_> {
     pub fn finish(self, what: &str) -> Result<String> {
         self.bar.finish();
         if let Some(e) = self.failed_write.into_inner().expect("not poisoned") {
-            return Err(e.context(format!("writing the cache under `{}`", self.runner.store.root().display())));
+            return Err(e.context(format!(
+                "writing the cache under `{}`",
+                self.runner.store.root().display()
+            )));
         }
         let (h, c) = (self.hits.into_inner(), self.computed.into_inner());
-        Ok(format!("{} {what}: {c} computed, {h} from the cache", h + c))
+        Ok(format!(
+            "{} {what}: {c} computed, {h} from the cache",
+            h + c
+        ))
     }
 }

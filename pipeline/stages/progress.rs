@@ -13,9 +13,11 @@ impl Progress {
             return Progress(None);
         }
         let bar = ProgressBar::with_draw_target(Some(len as u64), ProgressDrawTarget::stderr());
-        let style = ProgressStyle::with_template("{prefix:>12} {bar:32} {pos}/{len} {msg} ({elapsed}, about {eta} left)")
-            .expect("valid template")
-            .progress_chars("=> ");
+        let style = ProgressStyle::with_template(
+            "{prefix:>12} {bar:32} {pos}/{len} {msg} ({elapsed}, about {eta} left)",
+        )
+        .expect("valid template")
+        .progress_chars("=> ");
         bar.set_style(style);
         bar.set_prefix(what.to_string());
         Progress(Some(bar))

@@ -53,7 +53,12 @@ pub fn agreement<S: AsRef<str> + Ord + Clone>(pairs: &[(S, f64, f64)]) -> Option
     let mut ss_b = 0.0;
     let mut sum_m2 = 0.0;
     for s in &subj {
-        let g: Vec<f64> = pairs.iter().zip(&d).filter(|(p, _)| p.0 == *s).map(|(_, x)| *x).collect();
+        let g: Vec<f64> = pairs
+            .iter()
+            .zip(&d)
+            .filter(|(p, _)| p.0 == *s)
+            .map(|(_, x)| *x)
+            .collect();
         let m = g.len() as f64;
         let mean = g.iter().sum::<f64>() / m;
         ss_w += g.iter().map(|x| (x - mean).powi(2)).sum::<f64>();
@@ -68,7 +73,17 @@ pub fn agreement<S: AsRef<str> + Ord + Clone>(pairs: &[(S, f64, f64)]) -> Option
     let divisor = (nf * nf - sum_m2) / ((k as f64 - 1.0) * nf);
     let var_between = ((ms_b - ms_w) / divisor).max(0.0);
     let (lower, upper) = limits(bias, var_between, ms_w);
-    Some(Agreement { n, subjects: k, bias, precision, arms, var_between, var_within: ms_w, lower, upper })
+    Some(Agreement {
+        n,
+        subjects: k,
+        bias,
+        precision,
+        arms,
+        var_between,
+        var_within: ms_w,
+        lower,
+        upper,
+    })
 }
 
 /// Paired t test of `a − b`: (mean difference, SE, df, t, two-sided p).
@@ -82,14 +97,18 @@ pub fn paired_t(a: &[f64], b: &[f64]) -> Option<(f64, f64, f64, f64, f64)> {
     let sd = (d.iter().map(|x| (x - m).powi(2)).sum::<f64>() / (n - 1.0)).sqrt();
     let se = sd / n.sqrt();
     let t = m / se;
-    let p = StudentsT::new(0.0, 1.0, n - 1.0).ok().map(|dist| 2.0 * dist.sf(t.abs()))?;
+    let p = StudentsT::new(0.0, 1.0, n - 1.0)
+        .ok()
+        .map(|dist| 2.0 * dist.sf(t.abs()))?;
     Some((m, se, n - 1.0, t, p))
 }
 
 /// Likelihood-ratio test between nested ML fits: (χ², df, p).
 pub fn likelihood_ratio(deviance_small: f64, deviance_large: f64, df: usize) -> (f64, f64, f64) {
     let chi2 = (deviance_small - deviance_large).max(0.0);
-    let p = ChiSquared::new(df as f64).map(|d| d.sf(chi2)).unwrap_or(f64::NAN);
+    let p = ChiSquared::new(df as f64)
+        .map(|d| d.sf(chi2))
+        .unwrap_or(f64::NAN);
     (chi2, df as f64, p)
 }
 
@@ -110,18 +129,32 @@ mod tests {
 
     #[test]
     fn arms_identity_holds() {
-        let pairs: Vec<(&str, f64, f64)> =
-            [("a", 95.0, 97.0), ("a", 93.5, 96.0), ("b", 90.0, 89.0), ("b", 88.0, 87.5), ("c", 85.0, 88.0), ("c", 86.0, 86.5)].to_vec();
+        let pairs: Vec<(&str, f64, f64)> = [
+            ("a", 95.0, 97.0),
+            ("a", 93.5, 96.0),
+            ("b", 90.0, 89.0),
+            ("b", 88.0, 87.5),
+            ("c", 85.0, 88.0),
+            ("c", 86.0, 86.5),
+        ]
+        .to_vec();
         let a = agreement(&pairs).unwrap();
         let n = pairs.len() as f64;
-        assert!((a.arms.powi(2) - (a.bias.powi(2) + a.precision.powi(2) * (n - 1.0) / n)).abs() < 1e-12);
+        assert!(
+            (a.arms.powi(2) - (a.bias.powi(2) + a.precision.powi(2) * (n - 1.0) / n)).abs() < 1e-12
+        );
     }
 
     #[test]
     fn equal_replicates_reduce_to_the_textbook_components() {
         // Two subjects, two replicates each: MS_within = pooled variance,
         // σ²_between = (MS_between − MS_within)/m with m = 2.
-        let pairs = [("a", 1.0, 0.0), ("a", 3.0, 0.0), ("b", 5.0, 0.0), ("b", 9.0, 0.0)];
+        let pairs = [
+            ("a", 1.0, 0.0),
+            ("a", 3.0, 0.0),
+            ("b", 5.0, 0.0),
+            ("b", 9.0, 0.0),
+        ];
         let a = agreement(&pairs).unwrap();
         assert!((a.var_within - 5.0).abs() < 1e-12);
         // MS_between = 2·(2 − 4.5)² + 2·(7 − 4.5)² = 25 on 1 df.
@@ -132,7 +165,9 @@ mod tests {
     fn paired_t_by_hand() {
         let (m, se, df, t, p) = paired_t(&[5.0, 7.0, 9.0], &[4.0, 5.0, 6.0]).unwrap();
         assert_eq!((m, df), (2.0, 2.0));
-        assert!((se - (1.0f64 / 3.0).sqrt()).abs() < 1e-12 && (t - 2.0 * 3.0f64.sqrt()).abs() < 1e-12);
+        assert!(
+            (se - (1.0f64 / 3.0).sqrt()).abs() < 1e-12 && (t - 2.0 * 3.0f64.sqrt()).abs() < 1e-12
+        );
         assert!((p - 0.0742).abs() < 1e-3, "{p}");
     }
 

@@ -24,12 +24,20 @@ impl RandomSpec {
     /// Parses `subject`, `subject:eye`, `Subject@Days`.
     pub fn parse(s: &str) -> Result<Self, String> {
         let (g, sl) = match s.split_once('@') {
-            Some((g, sl)) => (g, sl.split(',').map(|x| x.trim().to_string()).filter(|x| !x.is_empty()).collect()),
+            Some((g, sl)) => (
+                g,
+                sl.split(',')
+                    .map(|x| x.trim().to_string())
+                    .filter(|x| !x.is_empty())
+                    .collect(),
+            ),
             None => (s, Vec::new()),
         };
         let groups: Vec<String> = g.split(':').map(|x| x.trim().to_string()).collect();
         if groups.iter().any(|x| x.is_empty()) {
-            return Err(format!("`{s}`: write a grouping column, `a:b` for groups nested in groups, `group@slope` for a random slope"));
+            return Err(format!(
+                "`{s}`: write a grouping column, `a:b` for groups nested in groups, `group@slope` for a random slope"
+            ));
         }
         Ok(RandomSpec { groups, slopes: sl })
     }
@@ -64,11 +72,18 @@ pub struct Design {
 
 fn column(t: &CsvTable, file: &Path, name: &str, f: &mut Findings) -> Option<Vec<String>> {
     let c = t.column(file, name, "the data", f)?;
-    Some(t.rows.iter().map(|r| r.field(c).map(|x| x.0.to_string()).unwrap_or_default()).collect())
+    Some(
+        t.rows
+            .iter()
+            .map(|r| r.field(c).map(|x| x.0.to_string()).unwrap_or_default())
+            .collect(),
+    )
 }
 
 fn numeric(v: &[String]) -> Option<Vec<f64>> {
-    v.iter().map(|s| s.parse::<f64>().ok().filter(|x| x.is_finite())).collect()
+    v.iter()
+        .map(|s| s.parse::<f64>().ok().filter(|x| x.is_finite()))
+        .collect()
 }
 
 /// Builds the design; problems are findings against `file`.
@@ -76,9 +91,19 @@ pub fn build(t: &CsvTable, file: &Path, spec: &Spec, f: &mut Findings) -> Option
     let n = t.rows.len();
     let y_raw = column(t, file, &spec.response, f)?;
     let Some(y) = numeric(&y_raw) else {
-        let bad = y_raw.iter().position(|s| s.parse::<f64>().map(|v| !v.is_finite()).unwrap_or(true)).unwrap_or(0);
-        f.error(file, Some(Mark::new(t.rows[bad].line, 1)), format!("response `{}` is not a number here: `{}`", spec.response, y_raw[bad]))
-            .hint("remove or fill rows without a response");
+        let bad = y_raw
+            .iter()
+            .position(|s| s.parse::<f64>().map(|v| !v.is_finite()).unwrap_or(true))
+            .unwrap_or(0);
+        f.error(
+            file,
+            Some(Mark::new(t.rows[bad].line, 1)),
+            format!(
+                "response `{}` is not a number here: `{}`",
+                spec.response, y_raw[bad]
+            ),
+        )
+        .hint("remove or fill rows without a response");
         return None;
     };
     let mut cols: Vec<Vec<f64>> = vec![vec![1.0; n]];
@@ -91,7 +116,12 @@ pub fn build(t: &CsvTable, file: &Path, spec: &Spec, f: &mut Findings) -> Option
             names.push(fx.clone());
             continue;
         }
-        let mut levels: Vec<String> = raw.iter().cloned().collect::<BTreeSet<_>>().into_iter().collect();
+        let mut levels: Vec<String> = raw
+            .iter()
+            .cloned()
+            .collect::<BTreeSet<_>>()
+            .into_iter()
+            .collect();
         if let Some((_, r)) = spec.reference.iter().find(|(c, _)| c == fx) {
             match levels.iter().position(|l| l == r) {
                 Some(i) => {
@@ -99,8 +129,12 @@ pub fn build(t: &CsvTable, file: &Path, spec: &Spec, f: &mut Findings) -> Option
                     levels.insert(0, lv);
                 }
                 None => {
-                    f.error(file, None, format!("`--reference {fx}={r}`: `{r}` is not a level of `{fx}`"))
-                        .hint(format!("levels: {}", levels.join(", ")));
+                    f.error(
+                        file,
+                        None,
+                        format!("`--reference {fx}={r}`: `{r}` is not a level of `{fx}`"),
+                    )
+                    .hint(format!("levels: {}", levels.join(", ")));
                     return None;
                 }
             }
@@ -108,10 +142,18 @@ pub fn build(t: &CsvTable, file: &Path, spec: &Spec, f: &mut Findings) -> Option
         let mut xc = Vec::new();
         for lv in &levels[1..] {
             xc.push(cols.len());
-            cols.push(raw.iter().map(|s| if s == lv { 1.0 } else { 0.0 }).collect());
+            cols.push(
+                raw.iter()
+                    .map(|s| if s == lv { 1.0 } else { 0.0 })
+                    .collect(),
+            );
             names.push(format!("{fx}={lv}"));
         }
-        factors.push(Factor { column: fx.clone(), levels, x_columns: xc });
+        factors.push(Factor {
+            column: fx.clone(),
+            levels,
+            x_columns: xc,
+        });
     }
     let x = DMatrix::from_fn(n, cols.len(), |i, j| cols[j][i]);
     let mut terms = Vec::new();
@@ -126,22 +168,48 @@ pub fn build(t: &CsvTable, file: &Path, spec: &Spec, f: &mut Findings) -> Option
                 keys[i].push_str(&v[i]);
             }
         }
-        let levels: Vec<String> = keys.iter().cloned().collect::<BTreeSet<_>>().into_iter().collect();
-        let group = keys.iter().map(|k| levels.binary_search(k).expect("level present")).collect();
+        let levels: Vec<String> = keys
+            .iter()
+            .cloned()
+            .collect::<BTreeSet<_>>()
+            .into_iter()
+            .collect();
+        let group = keys
+            .iter()
+            .map(|k| levels.binary_search(k).expect("level present"))
+            .collect();
         let mut columns = vec![vec![1.0; n]];
         let mut cn = vec!["(Intercept)".to_string()];
         for s in &r.slopes {
             let raw = column(t, file, s, f)?;
             let Some(v) = numeric(&raw) else {
-                f.error(file, None, format!("random slope `{s}` must be a numeric column"));
+                f.error(
+                    file,
+                    None,
+                    format!("random slope `{s}` must be a numeric column"),
+                );
                 return None;
             };
             columns.push(v);
             cn.push(s.clone());
         }
-        terms.push(RandomTerm { name: r.name(), levels, group, column_names: cn, columns });
+        terms.push(RandomTerm {
+            name: r.name(),
+            levels,
+            group,
+            column_names: cn,
+            columns,
+        });
     }
-    Some(Design { data: LmmData { y, x, x_names: names, terms }, factors })
+    Some(Design {
+        data: LmmData {
+            y,
+            x,
+            x_names: names,
+            terms,
+        },
+        factors,
+    })
 }
 
 impl Design {
@@ -154,11 +222,18 @@ impl Design {
         for tok in text.split_whitespace() {
             if expect_term {
                 let (coef, name) = match tok.split_once('*') {
-                    Some((c, n)) => (c.parse::<f64>().map_err(|_| format!("`{c}` is not a number"))?, n),
+                    Some((c, n)) => (
+                        c.parse::<f64>()
+                            .map_err(|_| format!("`{c}` is not a number"))?,
+                        n,
+                    ),
                     None => (1.0, tok),
                 };
-                let hits: Vec<(&Factor, usize)> =
-                    self.factors.iter().filter_map(|fa| fa.levels.iter().position(|lv| lv == name).map(|i| (fa, i))).collect();
+                let hits: Vec<(&Factor, usize)> = self
+                    .factors
+                    .iter()
+                    .filter_map(|fa| fa.levels.iter().position(|lv| lv == name).map(|i| (fa, i)))
+                    .collect();
                 match hits.as_slice() {
                     [] => return Err(format!("`{name}` is not a level of any fixed factor")),
                     [(fa, i)] => {

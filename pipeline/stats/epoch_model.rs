@@ -44,7 +44,7 @@ use std::collections::BTreeMap;
 use nalgebra::DMatrix;
 use statrs::distribution::{ContinuousCDF, StudentsT};
 
-use super::infer::{contrast_at, holm, Test};
+use super::infer::{Test, contrast_at, holm};
 use super::lmm::{Criterion, LmmData, Model, RandomTerm};
 
 /// lme4's default tolerance for a singular fit (`isSingular(tol = 1e-4)`),
@@ -167,15 +167,28 @@ fn factor(name: &str, keys: &[String], columns: Option<Vec<f64>>) -> RandomTerm 
     let mut levels: Vec<String> = keys.to_vec();
     levels.sort();
     levels.dedup();
-    let group = keys.iter().map(|k| levels.binary_search(k).expect("present")).collect();
-    RandomTerm { name: name.into(), levels, group, column_names: vec!["(Intercept)".into()], columns: vec![columns.unwrap_or_else(|| vec![1.0; keys.len()])] }
+    let group = keys
+        .iter()
+        .map(|k| levels.binary_search(k).expect("present"))
+        .collect();
+    RandomTerm {
+        name: name.into(),
+        levels,
+        group,
+        column_names: vec!["(Intercept)".into()],
+        columns: vec![columns.unwrap_or_else(|| vec![1.0; keys.len()])],
+    }
 }
 
 /// The model's random terms and its formula. Session and eye levels enter
 /// only when some subject has two; otherwise they duplicate the subject.
 /// Sessions are crossed with eyes and segments: the same vessels are seen
 /// on each visit.
-fn random_terms(obs: &[Observation], epochs: &[String], present: &[usize]) -> (Vec<RandomTerm>, String) {
+fn random_terms(
+    obs: &[Observation],
+    epochs: &[String],
+    present: &[usize],
+) -> (Vec<RandomTerm>, String) {
     let key = |f: &dyn Fn(&Observation) -> String| obs.iter().map(f).collect::<Vec<String>>();
     let subject = key(&|o| o.subject.clone());
     let session = key(&|o| format!("{}:{}", o.subject, o.session));
@@ -199,22 +212,48 @@ fn random_terms(obs: &[Observation], epochs: &[String], present: &[usize]) -> (V
     for &e in present {
         let column = obs.iter().map(|o| (o.epoch == e) as u8 as f64).collect();
         terms.push(factor(&epoch_term_name(&epochs[e]), &subject, Some(column)));
-        formula.push_str(&format!(" + (0 + dummy(epoch, \"{}\") | subject)", epochs[e]));
+        formula.push_str(&format!(
+            " + (0 + dummy(epoch, \"{}\") | subject)",
+            epochs[e]
+        ));
     }
     (terms, formula)
 }
 
 /// Each subject's mean of each segment's values in each epoch:
 /// subject → (eye, segment) → epoch → mean.
-fn segment_means(obs: &[Observation]) -> BTreeMap<&str, BTreeMap<(&str, &str), BTreeMap<usize, f64>>> {
-    let mut sums: BTreeMap<&str, BTreeMap<(&str, &str), BTreeMap<usize, (f64, usize)>>> = BTreeMap::new();
+fn segment_means(
+    obs: &[Observation],
+) -> BTreeMap<&str, BTreeMap<(&str, &str), BTreeMap<usize, f64>>> {
+    let mut sums: BTreeMap<&str, BTreeMap<(&str, &str), BTreeMap<usize, (f64, usize)>>> =
+        BTreeMap::new();
     for o in obs {
-        let c = sums.entry(o.subject.as_str()).or_default().entry((o.eye.as_str(), o.segment.as_str())).or_default().entry(o.epoch).or_default();
+        let c = sums
+            .entry(o.subject.as_str())
+            .or_default()
+            .entry((o.eye.as_str(), o.segment.as_str()))
+            .or_default()
+            .entry(o.epoch)
+            .or_default();
         c.0 += o.so2;
         c.1 += 1;
     }
     sums.into_iter()
-        .map(|(s, segs)| (s, segs.into_iter().map(|(k, m)| (k, m.into_iter().map(|(e, (sum, n))| (e, sum / n as f64)).collect())).collect()))
+        .map(|(s, segs)| {
+            (
+                s,
+                segs.into_iter()
+                    .map(|(k, m)| {
+                        (
+                            k,
+                            m.into_iter()
+                                .map(|(e, (sum, n))| (e, sum / n as f64))
+                                .collect(),
+                        )
+                    })
+                    .collect(),
+            )
+        })
         .collect()
 }
 
@@ -225,11 +264,24 @@ fn segment_means(obs: &[Observation]) -> BTreeMap<&str, BTreeMap<(&str, &str), B
 /// value from posing as a change. Subjects without such a segment are left
 /// out.
 pub fn subject_contrasts(obs: &[Observation], spec: &ContrastSpec) -> Vec<(String, f64)> {
-    let involved: Vec<(usize, f64)> = spec.weights.iter().copied().filter(|(_, w)| *w != 0.0).collect();
+    let involved: Vec<(usize, f64)> = spec
+        .weights
+        .iter()
+        .copied()
+        .filter(|(_, w)| *w != 0.0)
+        .collect();
     segment_means(obs)
         .into_iter()
         .filter_map(|(s, segs)| {
-            let v: Vec<f64> = segs.values().filter_map(|m| involved.iter().map(|(e, w)| m.get(e).map(|v| w * v)).sum::<Option<f64>>()).collect();
+            let v: Vec<f64> = segs
+                .values()
+                .filter_map(|m| {
+                    involved
+                        .iter()
+                        .map(|(e, w)| m.get(e).map(|v| w * v))
+                        .sum::<Option<f64>>()
+                })
+                .collect();
             (!v.is_empty()).then(|| (s.to_string(), v.iter().sum::<f64>() / v.len() as f64))
         })
         .collect()
@@ -237,8 +289,15 @@ pub fn subject_contrasts(obs: &[Observation], spec: &ContrastSpec) -> Vec<(Strin
 
 /// One-sample t test over subjects of each subject's contrast
 /// ([`subject_contrasts`]); `None` with fewer than two subjects.
-pub fn subject_level_test(obs: &[Observation], spec: &ContrastSpec, confidence: f64) -> Option<(Test, usize)> {
-    let values: Vec<f64> = subject_contrasts(obs, spec).into_iter().map(|(_, v)| v).collect();
+pub fn subject_level_test(
+    obs: &[Observation],
+    spec: &ContrastSpec,
+    confidence: f64,
+) -> Option<(Test, usize)> {
+    let values: Vec<f64> = subject_contrasts(obs, spec)
+        .into_iter()
+        .map(|(_, v)| v)
+        .collect();
     let n = values.len();
     if n < 2 {
         return None;
@@ -251,7 +310,19 @@ pub fn subject_level_test(obs: &[Observation], spec: &ContrastSpec, confidence: 
     let t = mean / se;
     let d = StudentsT::new(0.0, 1.0, df).ok()?;
     let (p, q) = (2.0 * d.sf(t.abs()), d.inverse_cdf(0.5 + confidence / 2.0));
-    Some((Test { label: spec.label.clone(), estimate: mean, std_error: se, df, t, p, lower: mean - q * se, upper: mean + q * se }, n))
+    Some((
+        Test {
+            label: spec.label.clone(),
+            estimate: mean,
+            std_error: se,
+            df,
+            t,
+            p,
+            lower: mean - q * se,
+            upper: mean + q * se,
+        },
+        n,
+    ))
 }
 
 fn subjects_with(obs: &[Observation], spec: &ContrastSpec) -> usize {
@@ -261,19 +332,55 @@ fn subjects_with(obs: &[Observation], spec: &ContrastSpec) -> usize {
 /// Fits the epoch model to the observations and tests the design's
 /// contrasts. Contrasts naming an epoch without values are left out.
 pub fn analyse(obs: &[Observation], design: &Design) -> EpochAnalysis {
-    let present: Vec<usize> = (0..design.epochs.len()).filter(|e| obs.iter().any(|o| o.epoch == *e)).collect();
-    let testable: Vec<&ContrastSpec> = design.contrasts.iter().filter(|c| c.weights.iter().all(|(e, w)| *w == 0.0 || present.contains(e))).collect();
+    let present: Vec<usize> = (0..design.epochs.len())
+        .filter(|e| obs.iter().any(|o| o.epoch == *e))
+        .collect();
+    let testable: Vec<&ContrastSpec> = design
+        .contrasts
+        .iter()
+        .filter(|c| {
+            c.weights
+                .iter()
+                .all(|(e, w)| *w == 0.0 || present.contains(e))
+        })
+        .collect();
     let (terms, formula) = random_terms(obs, design.epochs, &present);
-    let mut analysis = EpochAnalysis { contrasts: Vec::new(), components: Vec::new(), formula, observations: obs.len(), reml_criterion: None };
+    let mut analysis = EpochAnalysis {
+        contrasts: Vec::new(),
+        components: Vec::new(),
+        formula,
+        observations: obs.len(),
+        reml_criterion: None,
+    };
     let mut results: Vec<(Test, Basis, usize)> = Vec::new();
     let fitted = (obs.len() >= 10 && present.contains(&design.baseline) && present.len() >= 2)
         .then(|| {
-            let others: Vec<usize> = present.iter().copied().filter(|e| *e != design.baseline).collect();
-            let x = DMatrix::from_fn(obs.len(), 1 + others.len(), |i, j| if j == 0 { 1.0 } else { (obs[i].epoch == others[j - 1]) as u8 as f64 });
-            let x_names = std::iter::once("(Intercept)".to_string()).chain(others.iter().map(|e| design.epochs[*e].clone())).collect();
+            let others: Vec<usize> = present
+                .iter()
+                .copied()
+                .filter(|e| *e != design.baseline)
+                .collect();
+            let x = DMatrix::from_fn(obs.len(), 1 + others.len(), |i, j| {
+                if j == 0 {
+                    1.0
+                } else {
+                    (obs[i].epoch == others[j - 1]) as u8 as f64
+                }
+            });
+            let x_names = std::iter::once("(Intercept)".to_string())
+                .chain(others.iter().map(|e| design.epochs[*e].clone()))
+                .collect();
             let levels: Vec<usize> = terms.iter().map(|t| t.levels.len()).collect();
             let names: Vec<String> = terms.iter().map(|t| t.name.clone()).collect();
-            let model = Model::new(LmmData { y: obs.iter().map(|o| o.so2).collect(), x, x_names, terms }, Criterion::Reml);
+            let model = Model::new(
+                LmmData {
+                    y: obs.iter().map(|o| o.so2).collect(),
+                    x,
+                    x_names,
+                    terms,
+                },
+                Criterion::Reml,
+            );
             let fit = model.fit()?;
             Some((model, fit, others, levels, names))
         })
@@ -284,10 +391,26 @@ pub fn analyse(obs: &[Observation], design: &Design) -> EpochAnalysis {
             analysis.reml_criterion = Some(fit.deviance);
             // Every term here has one column, so θ holds one relative factor per term.
             for (k, ((_, _, cov), lv)) in comps.terms.iter().zip(levels).enumerate() {
-                analysis.components.push(Component { group: names[k].clone(), levels: *lv, variance: cov[(0, 0)], boundary: fit.theta[k] < BOUNDARY_THETA });
+                analysis.components.push(Component {
+                    group: names[k].clone(),
+                    levels: *lv,
+                    variance: cov[(0, 0)],
+                    boundary: fit.theta[k] < BOUNDARY_THETA,
+                });
             }
-            analysis.components.push(Component { group: "Residual".into(), levels: obs.len(), variance: comps.residual, boundary: false });
-            let epoch_boundary = |e: usize| analysis.components.iter().find(|c| c.group == epoch_term_name(&design.epochs[e])).is_none_or(|c| c.boundary);
+            analysis.components.push(Component {
+                group: "Residual".into(),
+                levels: obs.len(),
+                variance: comps.residual,
+                boundary: false,
+            });
+            let epoch_boundary = |e: usize| {
+                analysis
+                    .components
+                    .iter()
+                    .find(|c| c.group == epoch_term_name(&design.epochs[e]))
+                    .is_none_or(|c| c.boundary)
+            };
             for spec in &testable {
                 let involved = spec.weights.iter().filter(|(_, w)| *w != 0.0);
                 if involved.clone().all(|(e, _)| epoch_boundary(*e)) {
@@ -302,7 +425,11 @@ pub fn analyse(obs: &[Observation], design: &Design) -> EpochAnalysis {
                         l[1 + j] += w;
                     }
                 }
-                results.push((contrast_at(model, fit, &spec.label, &l, design.confidence), Basis::MixedModel, subjects_with(obs, spec)));
+                results.push((
+                    contrast_at(model, fit, &spec.label, &l, design.confidence),
+                    Basis::MixedModel,
+                    subjects_with(obs, spec),
+                ));
             }
         }
         None => {
@@ -313,8 +440,19 @@ pub fn analyse(obs: &[Observation], design: &Design) -> EpochAnalysis {
             }
         }
     }
-    let adjusted = design.adjustment.apply(&results.iter().map(|r| r.0.p).collect::<Vec<_>>());
-    analysis.contrasts = results.into_iter().zip(adjusted).map(|((test, basis, subjects), p_adjusted)| ContrastResult { test, p_adjusted, basis, subjects }).collect();
+    let adjusted = design
+        .adjustment
+        .apply(&results.iter().map(|r| r.0.p).collect::<Vec<_>>());
+    analysis.contrasts = results
+        .into_iter()
+        .zip(adjusted)
+        .map(|((test, basis, subjects), p_adjusted)| ContrastResult {
+            test,
+            p_adjusted,
+            basis,
+            subjects,
+        })
+        .collect();
     analysis
 }
 
@@ -356,24 +494,47 @@ pub fn slope_on_reference(cells: &[(String, f64, f64)], confidence: f64) -> Opti
     let data = |with_slope: bool| {
         let mut terms = vec![factor("subject", &keys, None)];
         if with_slope {
-            let mut t = factor("subject", &keys, Some(cells.iter().map(|c| c.2 - centre).collect()));
+            let mut t = factor(
+                "subject",
+                &keys,
+                Some(cells.iter().map(|c| c.2 - centre).collect()),
+            );
             t.column_names = vec!["spo2".into()];
             terms.push(t);
         }
-        LmmData { y: cells.iter().map(|c| c.1).collect(), x: x.clone(), x_names: vec!["(Intercept)".into(), "spo2".into()], terms }
+        LmmData {
+            y: cells.iter().map(|c| c.1).collect(),
+            x: x.clone(),
+            x_names: vec!["(Intercept)".into(), "spo2".into()],
+            terms,
+        }
     };
     let full = Model::new(data(true), Criterion::Reml);
     let (model, fit, formula) = match full.fit() {
-        Some(f) if f.theta[1] >= BOUNDARY_THETA => (full, f, "so2 ~ spo2 + (1 | subject) + (0 + spo2 | subject), on subject × epoch means"),
+        Some(f) if f.theta[1] >= BOUNDARY_THETA => (
+            full,
+            f,
+            "so2 ~ spo2 + (1 | subject) + (0 + spo2 | subject), on subject × epoch means",
+        ),
         _ => {
             let m = Model::new(data(false), Criterion::Reml);
             let f = m.fit()?;
-            (m, f, "so2 ~ spo2 + (1 | subject), on subject × epoch means (slope variance on the boundary)")
+            (
+                m,
+                f,
+                "so2 ~ spo2 + (1 | subject), on subject × epoch means (slope variance on the boundary)",
+            )
         }
     };
     let test = contrast_at(&model, &fit, "slope on SpO2", &[0.0, 1.0], confidence);
     let intercept = fit.beta[0] - fit.beta[1] * centre;
-    Some(SlopeResult { test, intercept, formula: formula.into(), points: n, subjects })
+    Some(SlopeResult {
+        test,
+        intercept,
+        formula: formula.into(),
+        points: n,
+        subjects,
+    })
 }
 
 #[cfg(test)]
@@ -381,7 +542,14 @@ mod tests {
     use super::*;
 
     fn obs(subject: &str, epoch: usize, so2: f64) -> Observation {
-        Observation { subject: subject.into(), session: "s1".into(), eye: "OD".into(), segment: "A1".into(), epoch, so2 }
+        Observation {
+            subject: subject.into(),
+            session: "s1".into(),
+            eye: "OD".into(),
+            segment: "A1".into(),
+            epoch,
+            so2,
+        }
     }
 
     // The subject-level test of `b - a` is the paired t test of the subjects'
@@ -395,10 +563,19 @@ mod tests {
             v.push(obs(s, 0, a + 1.0));
             v.push(obs(s, 1, b));
         }
-        let spec = ContrastSpec { label: "b - a".into(), weights: vec![(1, 1.0), (0, -1.0)] };
+        let spec = ContrastSpec {
+            label: "b - a".into(),
+            weights: vec![(1, 1.0), (0, -1.0)],
+        };
         let (t, n) = subject_level_test(&v, &spec, 0.95).unwrap();
         assert_eq!(n, 3);
-        assert!((t.estimate - 3.0).abs() < 1e-12 && (t.std_error - 1.0 / 3f64.sqrt()).abs() < 1e-12 && (t.t - 27f64.sqrt()).abs() < 1e-9 && t.df == 2.0, "{t:?}");
+        assert!(
+            (t.estimate - 3.0).abs() < 1e-12
+                && (t.std_error - 1.0 / 3f64.sqrt()).abs() < 1e-12
+                && (t.t - 27f64.sqrt()).abs() < 1e-9
+                && t.df == 2.0,
+            "{t:?}"
+        );
         // A subject without the second epoch does not count.
         v.push(obs("S4", 0, 90.0));
         assert_eq!(subject_level_test(&v, &spec, 0.95).unwrap().1, 3);
@@ -411,7 +588,10 @@ mod tests {
     fn subject_contrasts_compare_each_segment_with_itself() {
         let mut v = vec![obs("S1", 0, 90.0), obs("S1", 0, 70.0), obs("S1", 1, 85.0)];
         v[1].segment = "A2".into();
-        let spec = ContrastSpec { label: "low - air".into(), weights: vec![(1, 1.0), (0, -1.0)] };
+        let spec = ContrastSpec {
+            label: "low - air".into(),
+            weights: vec![(1, 1.0), (0, -1.0)],
+        };
         assert_eq!(subject_contrasts(&v, &spec), vec![("S1".to_string(), -5.0)]);
     }
 
@@ -421,7 +601,18 @@ mod tests {
         v[2].eye = "OS".into();
         let (terms, formula) = random_terms(&v, &["air".into(), "low".into()], &[0, 1]);
         let names: Vec<&str> = terms.iter().map(|t| t.name.as_str()).collect();
-        assert_eq!(names, ["subject", "subject:eye:segment", "subject:epoch=air", "subject:epoch=low"]);
-        assert_eq!(formula, "so2 ~ epoch + (1 | subject) + (1 | subject:eye:segment) + (0 + dummy(epoch, \"air\") | subject) + (0 + dummy(epoch, \"low\") | subject)");
+        assert_eq!(
+            names,
+            [
+                "subject",
+                "subject:eye:segment",
+                "subject:epoch=air",
+                "subject:epoch=low"
+            ]
+        );
+        assert_eq!(
+            formula,
+            "so2 ~ epoch + (1 | subject) + (1 | subject:eye:segment) + (0 + dummy(epoch, \"air\") | subject) + (0 + dummy(epoch, \"low\") | subject)"
+        );
     }
 }

@@ -37,7 +37,16 @@ pub fn contrast_at(model: &Model, fit: &Fit, label: &str, l: &[f64], confidence:
         Ok(d) => (2.0 * d.sf(t.abs()), d.inverse_cdf(0.5 + confidence / 2.0)),
         Err(_) => (f64::NAN, f64::NAN),
     };
-    Test { label: label.to_string(), estimate: est, std_error: se, df, t, p, lower: est - q * se, upper: est + q * se }
+    Test {
+        label: label.to_string(),
+        estimate: est,
+        std_error: se,
+        df,
+        t,
+        p,
+        lower: est - q * se,
+        upper: est + q * se,
+    }
 }
 
 /// F test of `Lβ = 0` (rows of `l` are the hypotheses): the eigenvectors of
@@ -60,8 +69,14 @@ pub fn f_test(model: &Model, fit: &Fit, l: &DMatrix<f64>) -> (f64, f64, f64, f64
         }
     }
     f /= q as f64;
-    let ddf = if e > q as f64 { 2.0 * e / (e - q as f64) } else { f64::NAN };
-    let p = FisherSnedecor::new(q as f64, ddf).map(|d| d.sf(f)).unwrap_or(f64::NAN);
+    let ddf = if e > q as f64 {
+        2.0 * e / (e - q as f64)
+    } else {
+        f64::NAN
+    };
+    let p = FisherSnedecor::new(q as f64, ddf)
+        .map(|d| d.sf(f))
+        .unwrap_or(f64::NAN);
     (f, q as f64, ddf, p)
 }
 

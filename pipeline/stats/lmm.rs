@@ -210,12 +210,17 @@ impl Model {
                 ztx: DMatrix::zeros(m.len(), p),
                 zty: DVector::zeros(m.len()),
                 // A level's coefficients are contiguous globally and all in this block, so they stay contiguous locally.
-                block_of: m.iter().map(|&j| (block_of[j].0, local[block_of[j].1], block_of[j].2)).collect(),
+                block_of: m
+                    .iter()
+                    .map(|&j| (block_of[j].0, local[block_of[j].1], block_of[j].2))
+                    .collect(),
             })
             .collect();
         for i in 0..n {
             nonzeros(i, &mut nz);
-            let Some(&(first, _)) = nz.first() else { continue };
+            let Some(&(first, _)) = nz.first() else {
+                continue;
+            };
             let blk = &mut blocks[which[first]];
             for &(a, va) in &nz {
                 let la = local[a];
@@ -229,13 +234,28 @@ impl Model {
             }
         }
         let y = DVector::from_column_slice(&data.y);
-        let cross = Cross { xtx: data.x.transpose() * &data.x, xty: data.x.transpose() * &y, yty: y.norm_squared(), blocks, n, p };
-        Model { data, cross, criterion }
+        let cross = Cross {
+            xtx: data.x.transpose() * &data.x,
+            xty: data.x.transpose() * &y,
+            yty: y.norm_squared(),
+            blocks,
+            n,
+            p,
+        };
+        Model {
+            data,
+            cross,
+            criterion,
+        }
     }
 
     /// Number of θ elements: a lower triangle per term.
     pub fn n_theta(&self) -> usize {
-        self.data.terms.iter().map(|t| t.p() * (t.p() + 1) / 2).sum()
+        self.data
+            .terms
+            .iter()
+            .map(|t| t.p() * (t.p() + 1) / 2)
+            .sum()
     }
 
     /// Positions in θ that are diagonal elements (kept ≥ 0).
@@ -339,29 +359,43 @@ impl Model {
         let cbeta = rx.l().solve_lower_triangular(&rhs)?;
         let pwrss = cr.yty - cu2 - cbeta.norm_squared();
         let rx_inv = rx.inverse();
-        Some(AtTheta { logdet_l, logdet_rx, pwrss: pwrss.max(0.0), beta, rx_inv })
+        Some(AtTheta {
+            logdet_l,
+            logdet_rx,
+            pwrss: pwrss.max(0.0),
+            beta,
+            rx_inv,
+        })
     }
 
     /// The profiled deviance at θ.
     pub fn profiled_deviance(&self, theta: &[f64]) -> f64 {
-        let Some(a) = self.at(theta) else { return f64::INFINITY };
+        let Some(a) = self.at(theta) else {
+            return f64::INFINITY;
+        };
         let (n, p) = (self.cross.n as f64, self.cross.p as f64);
         let two_pi = 2.0 * std::f64::consts::PI;
         match self.criterion {
             Criterion::Ml => a.logdet_l + n * (1.0 + (two_pi * a.pwrss / n).ln()),
-            Criterion::Reml => a.logdet_l + a.logdet_rx + (n - p) * (1.0 + (two_pi * a.pwrss / (n - p)).ln()),
+            Criterion::Reml => {
+                a.logdet_l + a.logdet_rx + (n - p) * (1.0 + (two_pi * a.pwrss / (n - p)).ln())
+            }
         }
     }
 
     /// −2ℓ at (θ, σ), not profiled over σ (used for Satterthwaite).
     pub fn deviance_at(&self, theta: &[f64], sigma: f64) -> f64 {
-        let Some(a) = self.at(theta) else { return f64::INFINITY };
+        let Some(a) = self.at(theta) else {
+            return f64::INFINITY;
+        };
         let (n, p) = (self.cross.n as f64, self.cross.p as f64);
         let s2 = sigma * sigma;
         let two_pi = 2.0 * std::f64::consts::PI;
         match self.criterion {
             Criterion::Ml => a.logdet_l + n * (two_pi * s2).ln() + a.pwrss / s2,
-            Criterion::Reml => a.logdet_l + a.logdet_rx + (n - p) * (two_pi * s2).ln() + a.pwrss / s2,
+            Criterion::Reml => {
+                a.logdet_l + a.logdet_rx + (n - p) * (two_pi * s2).ln() + a.pwrss / s2
+            }
         }
     }
 
@@ -373,9 +407,15 @@ impl Model {
     pub fn fit(&self) -> Option<Fit> {
         let nt = self.n_theta();
         let diag = self.diagonal_positions();
-        let start: Vec<f64> = (0..nt).map(|k| if diag.contains(&k) { 1.0 } else { 0.0 }).collect();
+        let start: Vec<f64> = (0..nt)
+            .map(|k| if diag.contains(&k) { 1.0 } else { 0.0 })
+            .collect();
         let count = std::sync::atomic::AtomicU64::new(0);
-        let cost = DevianceCost { model: self, diag: &diag, count: &count };
+        let cost = DevianceCost {
+            model: self,
+            diag: &diag,
+            count: &count,
+        };
         let mut simplex = vec![start.clone()];
         for k in 0..nt {
             let mut v = start.clone();
@@ -392,10 +432,19 @@ impl Model {
             // grows with its size: an absolute tolerance of 1e-12 is below that
             // noise on large data and would never be met.
             let tol = (1e-13 * best_cost.abs()).max(1e-12);
-            let solver = NelderMead::new(simplex.clone()).with_sd_tolerance(tol).ok()?;
-            let res = Executor::new(cost.clone(), solver).configure(|s| s.max_iters(4000)).run().ok()?;
+            let solver = NelderMead::new(simplex.clone())
+                .with_sd_tolerance(tol)
+                .ok()?;
+            let res = Executor::new(cost.clone(), solver)
+                .configure(|s| s.max_iters(4000))
+                .run()
+                .ok()?;
             let x = res.state().get_best_param()?.clone();
-            let moved = x.iter().zip(&best).map(|(a, b)| (a - b).abs()).fold(0.0, f64::max);
+            let moved = x
+                .iter()
+                .zip(&best)
+                .map(|(a, b)| (a - b).abs())
+                .fold(0.0, f64::max);
             let new_cost = res.state().get_best_cost();
             let gained = best_cost - new_cost;
             best = x;
@@ -417,7 +466,9 @@ impl Model {
         // flat direction can leave θ loose in the sixth digit. Newton steps
         // on the free coordinates (numerical gradient and Hessian, as for
         // Satterthwaite's df; variances on the boundary held at zero) pin it.
-        let free: Vec<usize> = (0..nt).filter(|k| !diag.contains(k) || best[*k].abs() >= 1e-4).collect();
+        let free: Vec<usize> = (0..nt)
+            .filter(|k| !diag.contains(k) || best[*k].abs() >= 1e-4)
+            .collect();
         for _ in 0..3 {
             if free.is_empty() {
                 break;
@@ -431,7 +482,9 @@ impl Model {
             };
             let x0: Vec<f64> = free.iter().map(|k| best[*k]).collect();
             let g = DVector::from_vec(gradient(&sub, &x0));
-            let Some(chol) = hessian(&sub, &x0).cholesky() else { break };
+            let Some(chol) = hessian(&sub, &x0).cholesky() else {
+                break;
+            };
             let step = chol.solve(&g);
             let x1: Vec<f64> = x0.iter().zip(step.iter()).map(|(a, d)| a - d).collect();
             let f1 = sub(&x1);
@@ -443,7 +496,11 @@ impl Model {
             }
             best_cost = f1;
         }
-        let theta: Vec<f64> = best.iter().enumerate().map(|(k, v)| if diag.contains(&k) { v.abs() } else { *v }).collect();
+        let theta: Vec<f64> = best
+            .iter()
+            .enumerate()
+            .map(|(k, v)| if diag.contains(&k) { v.abs() } else { *v })
+            .collect();
         let a = self.at(&theta)?;
         let (n, p) = (self.cross.n as f64, self.cross.p as f64);
         let s2 = match self.criterion {
@@ -479,19 +536,34 @@ impl Model {
             .factors(&fit.theta)
             .into_iter()
             .zip(&self.data.terms)
-            .map(|(l, t)| (t.name.clone(), t.column_names.clone(), &l * l.transpose() * s2))
+            .map(|(l, t)| {
+                (
+                    t.name.clone(),
+                    t.column_names.clone(),
+                    &l * l.transpose() * s2,
+                )
+            })
             .collect();
-        Components { terms, residual: s2 }
+        Components {
+            terms,
+            residual: s2,
+        }
     }
 
     /// Satterthwaite degrees of freedom for `l'β`.
     pub fn satterthwaite(&self, fit: &Fit, l: &[f64]) -> f64 {
-        let Some(a) = &fit.varpar_cov else { return f64::NAN };
+        let Some(a) = &fit.varpar_cov else {
+            return f64::NAN;
+        };
         let mut phi = fit.theta.clone();
         phi.push(fit.sigma);
         let np = phi.len();
         let lv = DVector::from_column_slice(l);
-        let var = |v: &[f64]| self.vcov_at(&v[..np - 1], v[np - 1]).map(|c| (lv.transpose() * c * &lv)[0]).unwrap_or(f64::NAN);
+        let var = |v: &[f64]| {
+            self.vcov_at(&v[..np - 1], v[np - 1])
+                .map(|c| (lv.transpose() * c * &lv)[0])
+                .unwrap_or(f64::NAN)
+        };
         let gv = DVector::from_vec(gradient(&var, &phi));
         let denom = (gv.transpose() * a * &gv)[0];
         let v0 = var(&phi);
@@ -512,8 +584,13 @@ impl CostFunction for DevianceCost<'_> {
     fn cost(&self, x: &Vec<f64>) -> Result<f64, argmin::core::Error> {
         // The diagonal of each factor enters through |·|: the optimiser may
         // cross zero, and a variance at zero is a valid estimate.
-        let t: Vec<f64> = x.iter().enumerate().map(|(k, v)| if self.diag.contains(&k) { v.abs() } else { *v }).collect();
-        self.count.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+        let t: Vec<f64> = x
+            .iter()
+            .enumerate()
+            .map(|(k, v)| if self.diag.contains(&k) { v.abs() } else { *v })
+            .collect();
+        self.count
+            .fetch_add(1, std::sync::atomic::Ordering::Relaxed);
         Ok(self.model.profiled_deviance(&t))
     }
 }
@@ -559,7 +636,9 @@ fn hessian(f: &dyn Fn(&[f64]) -> f64, x: &[f64]) -> DMatrix<f64> {
         for j in 0..i {
             let d = |s: f64| {
                 let (hi, hj) = (h0[i] * s, h0[j] * s);
-                (at(&[(i, hi), (j, hj)]) - at(&[(i, hi), (j, -hj)]) - at(&[(i, -hi), (j, hj)]) + at(&[(i, -hi), (j, -hj)])) / (4.0 * hi * hj)
+                (at(&[(i, hi), (j, hj)]) - at(&[(i, hi), (j, -hj)]) - at(&[(i, -hi), (j, hj)])
+                    + at(&[(i, -hi), (j, -hj)]))
+                    / (4.0 * hi * hj)
             };
             h[(i, j)] = (4.0 * d(0.5) - d(1.0)) / 3.0;
             h[(j, i)] = h[(i, j)];

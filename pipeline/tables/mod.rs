@@ -35,12 +35,20 @@ impl Table {
         self
     }
 
-    pub fn text<S: AsRef<str>>(&mut self, name: &str, values: impl IntoIterator<Item = S>) -> &mut Self {
+    pub fn text<S: AsRef<str>>(
+        &mut self,
+        name: &str,
+        values: impl IntoIterator<Item = S>,
+    ) -> &mut Self {
         let v: Vec<String> = values.into_iter().map(|s| s.as_ref().to_string()).collect();
         self.push(Column::new(name.into(), v))
     }
 
-    pub fn opt_text(&mut self, name: &str, values: impl IntoIterator<Item = Option<String>>) -> &mut Self {
+    pub fn opt_text(
+        &mut self,
+        name: &str,
+        values: impl IntoIterator<Item = Option<String>>,
+    ) -> &mut Self {
         let v: Vec<Option<String>> = values.into_iter().collect();
         self.push(Column::new(name.into(), v))
     }
@@ -50,7 +58,11 @@ impl Table {
         self.push(Column::new(name.into(), v))
     }
 
-    pub fn opt_real(&mut self, name: &str, values: impl IntoIterator<Item = Option<f64>>) -> &mut Self {
+    pub fn opt_real(
+        &mut self,
+        name: &str,
+        values: impl IntoIterator<Item = Option<f64>>,
+    ) -> &mut Self {
         let v: Vec<Option<f64>> = values.into_iter().collect();
         self.push(Column::new(name.into(), v))
     }
@@ -60,7 +72,11 @@ impl Table {
         self.push(Column::new(name.into(), v))
     }
 
-    pub fn opt_int(&mut self, name: &str, values: impl IntoIterator<Item = Option<i64>>) -> &mut Self {
+    pub fn opt_int(
+        &mut self,
+        name: &str,
+        values: impl IntoIterator<Item = Option<i64>>,
+    ) -> &mut Self {
         let v: Vec<Option<i64>> = values.into_iter().collect();
         self.push(Column::new(name.into(), v))
     }
@@ -75,7 +91,8 @@ impl Table {
 
     /// Writes `dir/stem.parquet` and `dir/stem.csv`; returns both paths.
     pub fn write(&self, dir: &Path, stem: &str) -> Result<Vec<PathBuf>> {
-        fs::create_dir_all(dir).with_context(|| format!("cannot create the output folder `{}`", dir.display()))?;
+        fs::create_dir_all(dir)
+            .with_context(|| format!("cannot create the output folder `{}`", dir.display()))?;
         let mut df = self.frame()?;
         let pq = dir.join(format!("{stem}.parquet"));
         write_atomic(&pq, |f| {
@@ -97,29 +114,66 @@ pub enum CellsError {
     /// Not Parquet, or damaged.
     Unreadable(String),
     /// A column of a type that has no plain text form (lists, structs, …).
-    Column { index: usize, name: String, dtype: String },
+    Column {
+        index: usize,
+        name: String,
+        dtype: String,
+    },
 }
 
 /// Reads a Parquet file as text cells, column by column, as a CSV export
 /// would show them: numbers in their shortest exact form (parsing a cell
 /// gives back the stored value), booleans as `true`/`false`, nulls empty.
 /// Returns the column names and the columns.
-pub fn read_parquet_cells(path: &Path) -> std::result::Result<(Vec<String>, Vec<Vec<String>>), CellsError> {
+pub fn read_parquet_cells(
+    path: &Path,
+) -> std::result::Result<(Vec<String>, Vec<Vec<String>>), CellsError> {
     use polars::prelude::{DataType, ParquetReader, SerReader};
     let file = fs::File::open(path).map_err(|e| CellsError::Unreadable(e.to_string()))?;
-    let df = ParquetReader::new(file).finish().map_err(|e| CellsError::Unreadable(e.to_string()))?;
-    let names: Vec<String> = df.get_column_names().iter().map(|n| n.to_string()).collect();
+    let df = ParquetReader::new(file)
+        .finish()
+        .map_err(|e| CellsError::Unreadable(e.to_string()))?;
+    let names: Vec<String> = df
+        .get_column_names()
+        .iter()
+        .map(|n| n.to_string())
+        .collect();
     let mut cells = Vec::with_capacity(names.len());
     for (index, col) in df.columns().iter().enumerate() {
         let s = col.as_materialized_series();
         let text: Option<Vec<String>> = match s.dtype() {
-            DataType::String => s.str().ok().map(|c| c.iter().map(|v| v.unwrap_or("").to_string()).collect()),
-            DataType::Boolean => s.bool().ok().map(|c| c.iter().map(|v| v.map(|b| b.to_string()).unwrap_or_default()).collect()),
-            DataType::Float32 | DataType::Float64 => s.cast(&DataType::Float64).ok().and_then(|f| f.f64().ok().map(|c| c.iter().map(|v| v.map(|x| x.to_string()).unwrap_or_default()).collect())),
-            d if d.is_integer() => s.cast(&DataType::Int64).ok().and_then(|f| f.i64().ok().map(|c| c.iter().map(|v| v.map(|x| x.to_string()).unwrap_or_default()).collect())),
+            DataType::String => s
+                .str()
+                .ok()
+                .map(|c| c.iter().map(|v| v.unwrap_or("").to_string()).collect()),
+            DataType::Boolean => s.bool().ok().map(|c| {
+                c.iter()
+                    .map(|v| v.map(|b| b.to_string()).unwrap_or_default())
+                    .collect()
+            }),
+            DataType::Float32 | DataType::Float64 => {
+                s.cast(&DataType::Float64).ok().and_then(|f| {
+                    f.f64().ok().map(|c| {
+                        c.iter()
+                            .map(|v| v.map(|x| x.to_string()).unwrap_or_default())
+                            .collect()
+                    })
+                })
+            }
+            d if d.is_integer() => s.cast(&DataType::Int64).ok().and_then(|f| {
+                f.i64().ok().map(|c| {
+                    c.iter()
+                        .map(|v| v.map(|x| x.to_string()).unwrap_or_default())
+                        .collect()
+                })
+            }),
             _ => None,
         };
-        cells.push(text.ok_or_else(|| CellsError::Column { index, name: names[index].clone(), dtype: s.dtype().to_string() })?);
+        cells.push(text.ok_or_else(|| CellsError::Column {
+            index,
+            name: names[index].clone(),
+            dtype: s.dtype().to_string(),
+        })?);
     }
     Ok((names, cells))
 }
@@ -146,11 +200,18 @@ struct StreamWriters {
 
 impl TableStream {
     pub fn new(dir: &Path, stem: &str) -> Self {
-        TableStream { dir: dir.to_path_buf(), stem: stem.to_string(), buffer: vec![], buffered: 0, writers: None }
+        TableStream {
+            dir: dir.to_path_buf(),
+            stem: stem.to_string(),
+            buffer: vec![],
+            buffered: 0,
+            writers: None,
+        }
     }
 
     fn tmp(&self, ext: &str) -> PathBuf {
-        self.dir.join(format!(".{}.{ext}.{}.tmp", self.stem, std::process::id()))
+        self.dir
+            .join(format!(".{}.{ext}.{}.tmp", self.stem, std::process::id()))
     }
 
     pub fn push(&mut self, t: Table) -> Result<()> {
@@ -174,14 +235,20 @@ impl TableStream {
         self.buffer.clear();
         self.buffered = 0;
         if self.writers.is_none() {
-            fs::create_dir_all(&self.dir).with_context(|| format!("cannot create the output folder `{}`", self.dir.display()))?;
+            fs::create_dir_all(&self.dir).with_context(|| {
+                format!("cannot create the output folder `{}`", self.dir.display())
+            })?;
             let (pq, csv) = (self.tmp("parquet"), self.tmp("csv"));
-            let fp = fs::File::create(&pq).with_context(|| format!("cannot create `{}`", pq.display()))?;
-            let fc = fs::File::create(&csv).with_context(|| format!("cannot create `{}`", csv.display()))?;
+            let fp = fs::File::create(&pq)
+                .with_context(|| format!("cannot create `{}`", pq.display()))?;
+            let fc = fs::File::create(&csv)
+                .with_context(|| format!("cannot create `{}`", csv.display()))?;
             let schema = df.schema().as_ref().clone();
             self.writers = Some(StreamWriters {
                 parquet: ParquetWriter::new(fp.try_clone()?).batched(&schema)?,
-                csv: CsvWriter::new(std::io::BufWriter::new(fc.try_clone()?)).include_header(true).batched(&schema)?,
+                csv: CsvWriter::new(std::io::BufWriter::new(fc.try_clone()?))
+                    .include_header(true)
+                    .batched(&schema)?,
                 files: [(pq, fp), (csv, fc)],
             });
         }
@@ -208,7 +275,8 @@ impl TableStream {
         for ((tmp, f), ext) in w.files.into_iter().zip(["parquet", "csv"]) {
             f.sync_all()?;
             let path = self.dir.join(format!("{}.{ext}", self.stem));
-            fs::rename(&tmp, &path).with_context(|| format!("cannot move `{}` into place", path.display()))?;
+            fs::rename(&tmp, &path)
+                .with_context(|| format!("cannot move `{}` into place", path.display()))?;
             out.push(path);
         }
         Ok(out)
@@ -230,14 +298,18 @@ impl Drop for TableStream {
 pub fn write_atomic(path: &Path, fill: impl FnOnce(&mut fs::File) -> Result<()>) -> Result<()> {
     let dir = path.parent().unwrap_or(Path::new("."));
     fs::create_dir_all(dir).with_context(|| format!("cannot create `{}`", dir.display()))?;
-    let name = path.file_name().map(|n| n.to_string_lossy().to_string()).unwrap_or_default();
+    let name = path
+        .file_name()
+        .map(|n| n.to_string_lossy().to_string())
+        .unwrap_or_default();
     // Unique per write: two threads may write the same path at once (equal
     // cache entries from identical inputs); each renames its own complete file.
     static SERIAL: std::sync::atomic::AtomicU64 = std::sync::atomic::AtomicU64::new(0);
     let serial = SERIAL.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
     let tmp = dir.join(format!(".{name}.{}-{serial}.tmp", std::process::id()));
     let result = (|| -> Result<()> {
-        let mut f = fs::File::create(&tmp).with_context(|| format!("cannot create `{}`", tmp.display()))?;
+        let mut f =
+            fs::File::create(&tmp).with_context(|| format!("cannot create `{}`", tmp.display()))?;
         fill(&mut f)?;
         f.flush()?;
         f.sync_all()?;
@@ -247,7 +319,8 @@ pub fn write_atomic(path: &Path, fill: impl FnOnce(&mut fs::File) -> Result<()>)
         let _ = fs::remove_file(&tmp);
         return Err(e.context(format!("cannot write `{}`", path.display())));
     }
-    fs::rename(&tmp, path).with_context(|| format!("cannot move `{}` into place", path.display()))?;
+    fs::rename(&tmp, path)
+        .with_context(|| format!("cannot move `{}` into place", path.display()))?;
     Ok(())
 }
 
@@ -267,7 +340,10 @@ mod tests {
     fn parquet_cells_give_back_the_stored_values() {
         let dir = tempfile::tempdir().unwrap();
         let mut t = Table::new();
-        t.text("name", ["a", "b"]).int("n", [3, -1]).real("x", [0.1 + 0.2, 1e-300]).opt_real("y", [Some(2.5), None]);
+        t.text("name", ["a", "b"])
+            .int("n", [3, -1])
+            .real("x", [0.1 + 0.2, 1e-300])
+            .opt_real("y", [Some(2.5), None]);
         t.write(dir.path(), "t").unwrap();
         let (names, cells) = read_parquet_cells(&dir.path().join("t.parquet")).unwrap();
         assert_eq!(names, ["name", "n", "x", "y"]);
@@ -276,14 +352,19 @@ mod tests {
         assert_eq!(cells[2][0].parse::<f64>().unwrap(), 0.1 + 0.2);
         assert_eq!(cells[2][1].parse::<f64>().unwrap(), 1e-300);
         assert_eq!(cells[3], ["2.5", ""]);
-        assert!(matches!(read_parquet_cells(&dir.path().join("t.csv")), Err(CellsError::Unreadable(_))));
+        assert!(matches!(
+            read_parquet_cells(&dir.path().join("t.csv")),
+            Err(CellsError::Unreadable(_))
+        ));
     }
 
     #[test]
     fn writes_csv_and_parquet_that_read_back() {
         let dir = tempfile::tempdir().unwrap();
         let mut t = Table::new();
-        t.text("capture", ["a.tif", "b.tif"]).opt_real("spo2", [Some(97.5), None]).int("n", [3, 0]);
+        t.text("capture", ["a.tif", "b.tif"])
+            .opt_real("spo2", [Some(97.5), None])
+            .int("n", [3, 0]);
         let paths = t.write(dir.path(), "captures").unwrap();
         assert_eq!(paths.len(), 2);
         let csv = fs::read_to_string(dir.path().join("captures.csv")).unwrap();
@@ -292,7 +373,13 @@ mod tests {
         use polars::prelude::SerReader;
         let df = polars::prelude::ParquetReader::new(f).finish().unwrap();
         assert_eq!(df.shape(), (2, 3));
-        assert!(!dir.path().read_dir().unwrap().any(|e| e.unwrap().file_name().to_string_lossy().ends_with(".tmp")));
+        assert!(
+            !dir.path().read_dir().unwrap().any(|e| e
+                .unwrap()
+                .file_name()
+                .to_string_lossy()
+                .ends_with(".tmp"))
+        );
     }
 
     #[test]
@@ -300,7 +387,9 @@ mod tests {
         let dir = tempfile::tempdir().unwrap();
         let piece = |k: i64| {
             let mut t = Table::new();
-            t.text("capture", [format!("c{k}"), format!("c{k}")]).opt_real("t", [Some(k as f64 / 3.0), None]).int("n", [k, -k]);
+            t.text("capture", [format!("c{k}"), format!("c{k}")])
+                .opt_real("t", [Some(k as f64 / 3.0), None])
+                .int("n", [k, -k]);
             t
         };
         let mut s = TableStream::new(dir.path(), "streamed");
@@ -310,14 +399,30 @@ mod tests {
         s.finish(Table::new()).unwrap();
         let mut whole = Table::new();
         whole
-            .text("capture", (0..5).flat_map(|k| [format!("c{k}"), format!("c{k}")]))
+            .text(
+                "capture",
+                (0..5).flat_map(|k| [format!("c{k}"), format!("c{k}")]),
+            )
             .opt_real("t", (0..5).flat_map(|k| [Some(k as f64 / 3.0), None]))
             .int("n", (0..5).flat_map(|k| [k, -k]));
         whole.write(dir.path(), "whole").unwrap();
-        assert_eq!(fs::read(dir.path().join("streamed.csv")).unwrap(), fs::read(dir.path().join("whole.csv")).unwrap());
+        assert_eq!(
+            fs::read(dir.path().join("streamed.csv")).unwrap(),
+            fs::read(dir.path().join("whole.csv")).unwrap()
+        );
         use polars::prelude::SerReader;
-        let read = |n: &str| polars::prelude::ParquetReader::new(fs::File::open(dir.path().join(n)).unwrap()).finish().unwrap();
+        let read = |n: &str| {
+            polars::prelude::ParquetReader::new(fs::File::open(dir.path().join(n)).unwrap())
+                .finish()
+                .unwrap()
+        };
         assert!(read("streamed.parquet").equals_missing(&read("whole.parquet")));
-        assert!(!dir.path().read_dir().unwrap().any(|e| e.unwrap().file_name().to_string_lossy().ends_with(".tmp")));
+        assert!(
+            !dir.path().read_dir().unwrap().any(|e| e
+                .unwrap()
+                .file_name()
+                .to_string_lossy()
+                .ends_with(".tmp"))
+        );
     }
 }

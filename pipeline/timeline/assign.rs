@@ -46,7 +46,11 @@ pub fn session_spans(protocol: &Protocol, session: &Session) -> Vec<EpochSpan> {
     let mut starts: Vec<(f64, bool)> = Vec::with_capacity(protocol.epochs.len());
     let mut t = 0.0;
     for (i, e) in protocol.epochs.iter().enumerate() {
-        let recorded = session.switches.iter().find(|(j, _)| *j == i).map(|(_, at)| seconds_between(&session.start, at));
+        let recorded = session
+            .switches
+            .iter()
+            .find(|(j, _)| *j == i)
+            .map(|(_, at)| seconds_between(&session.start, at));
         let s = match recorded {
             Some(r) => (r, true),
             None => (t, false),
@@ -62,7 +66,13 @@ pub fn session_spans(protocol: &Protocol, session: &Session) -> Vec<EpochSpan> {
         .map(|(i, e)| {
             let (start, recorded) = starts[i];
             let end = starts.get(i + 1).map(|s| s.0).unwrap_or(last_end);
-            EpochSpan { epoch: i, start_s: start, settle_end_s: (start + e.settle_s).min(end), end_s: end, recorded }
+            EpochSpan {
+                epoch: i,
+                start_s: start,
+                settle_end_s: (start + e.settle_s).min(end),
+                end_s: end,
+                recorded,
+            }
         })
         .collect()
 }
@@ -71,7 +81,11 @@ pub fn session_spans(protocol: &Protocol, session: &Session) -> Vec<EpochSpan> {
 pub fn assign(spans: &[EpochSpan], t_s: f64) -> (Option<usize>, CaptureStatus) {
     for s in spans {
         if t_s >= s.start_s && t_s < s.end_s {
-            let status = if t_s < s.settle_end_s { CaptureStatus::Settling } else { CaptureStatus::Steady };
+            let status = if t_s < s.settle_end_s {
+                CaptureStatus::Settling
+            } else {
+                CaptureStatus::Steady
+            };
             return (Some(s.epoch), status);
         }
     }
@@ -86,12 +100,25 @@ mod tests {
     use std::collections::BTreeMap;
 
     fn protocol() -> Protocol {
-        let gas = Gas { written: GasSpec::Air, o2_fraction: 0.21, equivalent_altitude_m: Some(0.0) };
-        let ep = |n: &str, d: f64, s: f64| Epoch { name: n.into(), gas: gas.clone(), duration_s: d, settle_s: s };
+        let gas = Gas {
+            written: GasSpec::Air,
+            o2_fraction: 0.21,
+            equivalent_altitude_m: Some(0.0),
+        };
+        let ep = |n: &str, d: f64, s: f64| Epoch {
+            name: n.into(),
+            gas: gas.clone(),
+            duration_s: d,
+            settle_s: s,
+        };
         Protocol {
             name: "p".into(),
             description: String::new(),
-            epochs: vec![ep("air", 600.0, 120.0), ep("low", 600.0, 180.0), ep("air-2", 300.0, 60.0)],
+            epochs: vec![
+                ep("air", 600.0, 120.0),
+                ep("low", 600.0, 180.0),
+                ep("air-2", 300.0, 60.0),
+            ],
             baseline: 0,
             contrasts: vec![],
             reference: ReferenceSettings::default(),
@@ -103,7 +130,10 @@ mod tests {
             id: "1".into(),
             start: parse_time("2026-03-04T09:00:00+01:00").unwrap(),
             eyes: vec![crate::config::study::Eye::OD],
-            switches: switches.into_iter().map(|(i, t)| (i, parse_time(t).unwrap())).collect(),
+            switches: switches
+                .into_iter()
+                .map(|(i, t)| (i, parse_time(t).unwrap()))
+                .collect(),
             captures: vec![],
             reference: None,
             segments: BTreeMap::new(),
@@ -113,11 +143,16 @@ mod tests {
     #[test]
     fn planned_spans_follow_durations() {
         let s = session_spans(&protocol(), &session(vec![]));
-        assert_eq!(s.iter().map(|x| (x.start_s, x.settle_end_s, x.end_s)).collect::<Vec<_>>(), vec![
-            (0.0, 120.0, 600.0),
-            (600.0, 780.0, 1200.0),
-            (1200.0, 1260.0, 1500.0)
-        ]);
+        assert_eq!(
+            s.iter()
+                .map(|x| (x.start_s, x.settle_end_s, x.end_s))
+                .collect::<Vec<_>>(),
+            vec![
+                (0.0, 120.0, 600.0),
+                (600.0, 780.0, 1200.0),
+                (1200.0, 1260.0, 1500.0)
+            ]
+        );
     }
 
     #[test]
@@ -125,7 +160,10 @@ mod tests {
         // The switch to `low` happened 40 s late, written in UTC.
         let s = session_spans(&protocol(), &session(vec![(1, "2026-03-04T08:10:40Z")]));
         assert_eq!(s[0].end_s, 640.0);
-        assert_eq!((s[1].start_s, s[1].settle_end_s, s[1].end_s), (640.0, 820.0, 1240.0));
+        assert_eq!(
+            (s[1].start_s, s[1].settle_end_s, s[1].end_s),
+            (640.0, 820.0, 1240.0)
+        );
         assert!(s[1].recorded && !s[2].recorded);
         assert_eq!(s[2].start_s, 1240.0);
     }
@@ -134,9 +172,17 @@ mod tests {
     fn boundaries_are_half_open() {
         let s = session_spans(&protocol(), &session(vec![]));
         assert_eq!(assign(&s, 599.999), (Some(0), CaptureStatus::Steady));
-        assert_eq!(assign(&s, 600.0), (Some(1), CaptureStatus::Settling), "exactly at a switch: the new epoch");
+        assert_eq!(
+            assign(&s, 600.0),
+            (Some(1), CaptureStatus::Settling),
+            "exactly at a switch: the new epoch"
+        );
         assert_eq!(assign(&s, 779.9), (Some(1), CaptureStatus::Settling));
-        assert_eq!(assign(&s, 780.0), (Some(1), CaptureStatus::Steady), "exactly at the end of the settle window");
+        assert_eq!(
+            assign(&s, 780.0),
+            (Some(1), CaptureStatus::Steady),
+            "exactly at the end of the settle window"
+        );
         assert_eq!(assign(&s, -1.0), (None, CaptureStatus::Outside));
         assert_eq!(assign(&s, 1500.0), (None, CaptureStatus::Outside));
         assert_eq!(assign(&s, 0.0), (Some(0), CaptureStatus::Settling));
@@ -146,7 +192,13 @@ mod tests {
     fn offsets_do_not_matter_only_instants() {
         let sess = session(vec![]);
         // 09:10:00+01:00 is 03:10:00-05:00: exactly the switch to `low`.
-        let t = seconds_between(&sess.start, &parse_time("2026-03-04T03:10:00-05:00").unwrap());
-        assert_eq!(assign(&session_spans(&protocol(), &sess), t), (Some(1), CaptureStatus::Settling));
+        let t = seconds_between(
+            &sess.start,
+            &parse_time("2026-03-04T03:10:00-05:00").unwrap(),
+        );
+        assert_eq!(
+            assign(&session_spans(&protocol(), &sess), t),
+            (Some(1), CaptureStatus::Settling)
+        );
     }
 }

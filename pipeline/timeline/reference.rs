@@ -51,7 +51,11 @@ pub struct CaptureReference {
 }
 
 /// Reads a log; malformed lines are findings with `file:line:column`.
-pub fn read_log(log: &ReferenceLog, session_start: &DateTime<FixedOffset>, findings: &mut Findings) -> Option<SpO2Log> {
+pub fn read_log(
+    log: &ReferenceLog,
+    session_start: &DateTime<FixedOffset>,
+    findings: &mut Findings,
+) -> Option<SpO2Log> {
     let p: &Path = &log.path;
     let before = findings.error_count();
     let t = read_csv(p, findings)?;
@@ -61,13 +65,19 @@ pub fn read_log(log: &ReferenceLog, session_start: &DateTime<FixedOffset>, findi
     let mut out = SpO2Log::default();
     for row in &t.rows {
         let Some((ts, tm)) = row.field(tc) else {
-            findings.error(p, Some(crate::config::diag::Mark::new(row.line, 1)), "this line has no time");
+            findings.error(
+                p,
+                Some(crate::config::diag::Mark::new(row.line, 1)),
+                "this line has no time",
+            );
             continue;
         };
         let time = match parse_time(ts) {
             Ok(v) => v,
             Err(e) => {
-                findings.error(p, Some(tm), format!("time: {e}")).hint("the log's times must be ISO 8601 with the UTC offset");
+                findings
+                    .error(p, Some(tm), format!("time: {e}"))
+                    .hint("the log's times must be ISO 8601 with the UTC offset");
                 continue;
             }
         };
@@ -79,7 +89,9 @@ pub fn read_log(log: &ReferenceLog, session_start: &DateTime<FixedOffset>, findi
                 Ok(v) if v.is_finite() && (1.0..=100.0).contains(&v) => Some(v),
                 Ok(_) => None,
                 Err(_) => {
-                    findings.error(p, Some(m), format!("SpO2 `{s}` is not a number")).hint("leave the cell empty for a dropout");
+                    findings
+                        .error(p, Some(m), format!("SpO2 `{s}` is not a number"))
+                        .hint("leave the cell empty for a dropout");
                     continue;
                 }
             },
@@ -99,19 +111,40 @@ pub fn read_log(log: &ReferenceLog, session_start: &DateTime<FixedOffset>, findi
 /// The reference value for a capture at `t_s` seconds from the session start.
 pub fn reference_at(log: &SpO2Log, t_s: f64, settings: &ReferenceSettings) -> CaptureReference {
     let centre = t_s + settings.lag_s;
-    let (lo, hi) = (centre - settings.window_s / 2.0, centre + settings.window_s / 2.0);
+    let (lo, hi) = (
+        centre - settings.window_s / 2.0,
+        centre + settings.window_s / 2.0,
+    );
     let from = log.samples.partition_point(|(t, _)| *t < lo);
     let to = log.samples.partition_point(|(t, _)| *t <= hi);
     let mut vals: Vec<f64> = log.samples[from..to].iter().map(|(_, v)| *v).collect();
     if vals.is_empty() {
-        return CaptureReference { spo2: None, samples: 0, range: None, status: ReferenceStatus::Missing };
+        return CaptureReference {
+            spo2: None,
+            samples: 0,
+            range: None,
+            status: ReferenceStatus::Missing,
+        };
     }
     vals.sort_by(f64::total_cmp);
     let n = vals.len();
-    let median = if n % 2 == 1 { vals[n / 2] } else { 0.5 * (vals[n / 2 - 1] + vals[n / 2]) };
+    let median = if n % 2 == 1 {
+        vals[n / 2]
+    } else {
+        0.5 * (vals[n / 2 - 1] + vals[n / 2])
+    };
     let range = vals[n - 1] - vals[0];
-    let status = if range > settings.stability_limit { ReferenceStatus::Unstable } else { ReferenceStatus::Ok };
-    CaptureReference { spo2: Some(median), samples: n, range: Some(range), status }
+    let status = if range > settings.stability_limit {
+        ReferenceStatus::Unstable
+    } else {
+        ReferenceStatus::Ok
+    };
+    CaptureReference {
+        spo2: Some(median),
+        samples: n,
+        range: Some(range),
+        status,
+    }
 }
 
 #[cfg(test)]
@@ -119,12 +152,22 @@ mod tests {
     use super::*;
 
     fn settings(lag: f64, window: f64) -> ReferenceSettings {
-        ReferenceSettings { lag_s: lag, window_s: window, stability_limit: 3.0, ..Default::default() }
+        ReferenceSettings {
+            lag_s: lag,
+            window_s: window,
+            stability_limit: 3.0,
+            ..Default::default()
+        }
     }
 
     #[test]
     fn median_over_the_lagged_window() {
-        let log = SpO2Log { samples: (0..100).map(|t| (t as f64, if t < 50 { 98.0 } else { 90.0 })).collect(), dropouts: 0 };
+        let log = SpO2Log {
+            samples: (0..100)
+                .map(|t| (t as f64, if t < 50 { 98.0 } else { 90.0 }))
+                .collect(),
+            dropouts: 0,
+        };
         // Capture at 30 s, lag 20 s: window 45..55 s straddles the drop.
         let r = reference_at(&log, 30.0, &settings(20.0, 10.0));
         assert_eq!(r.samples, 11);
@@ -139,7 +182,10 @@ mod tests {
 
     #[test]
     fn even_count_median_is_the_mean_of_the_middle_two() {
-        let log = SpO2Log { samples: vec![(0.0, 95.0), (1.0, 97.0), (2.0, 96.0), (3.0, 94.0)], dropouts: 0 };
+        let log = SpO2Log {
+            samples: vec![(0.0, 95.0), (1.0, 97.0), (2.0, 96.0), (3.0, 94.0)],
+            dropouts: 0,
+        };
         let r = reference_at(&log, 1.5, &settings(0.0, 4.0));
         assert_eq!(r.spo2, Some(95.5));
     }

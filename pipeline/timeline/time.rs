@@ -31,7 +31,9 @@ pub fn parse_time(text: &str) -> Result<DateTime<FixedOffset>, String> {
 /// Seconds from `a` to `b` (positive when `b` is later), to the microsecond.
 pub fn seconds_between(a: &DateTime<FixedOffset>, b: &DateTime<FixedOffset>) -> f64 {
     let d = b.signed_duration_since(*a);
-    d.num_microseconds().map(|us| us as f64 * 1e-6).unwrap_or_else(|| d.num_milliseconds() as f64 * 1e-3)
+    d.num_microseconds()
+        .map(|us| us as f64 * 1e-6)
+        .unwrap_or_else(|| d.num_milliseconds() as f64 * 1e-3)
 }
 
 #[cfg(test)]
@@ -49,7 +51,13 @@ mod tests {
 
     #[test]
     fn refuses_times_without_offset() {
-        assert_eq!(parse_time("2026-03-04T09:15:00"), Err("`2026-03-04T09:15:00` has no UTC offset".into()));
-        assert_eq!(parse_time("yesterday"), Err("`yesterday` is not a date-time".into()));
+        assert_eq!(
+            parse_time("2026-03-04T09:15:00"),
+            Err("`2026-03-04T09:15:00` has no UTC offset".into())
+        );
+        assert_eq!(
+            parse_time("yesterday"),
+            Err("`yesterday` is not a date-time".into())
+        );
     }
 }

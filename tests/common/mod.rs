@@ -36,7 +36,15 @@ pub fn repo() -> PathBuf {
 pub fn simulated(dir: &Path, scenario: &str, out: &str) -> PathBuf {
     let sc = repo().join(scenario);
     let folder = dir.join(out);
-    let o = satstep(dir, &["simulate", sc.to_str().unwrap(), "--out", folder.to_str().unwrap()]);
+    let o = satstep(
+        dir,
+        &[
+            "simulate",
+            sc.to_str().unwrap(),
+            "--out",
+            folder.to_str().unwrap(),
+        ],
+    );
     assert_eq!(o.code, 0, "{}", o.stderr);
     folder
 }
@@ -85,10 +93,18 @@ pub fn small_study(dir: &Path, captures: &[(&str, &str)], switches: &str) {
     let start = chrono::DateTime::parse_from_rfc3339("2026-05-04T09:00:00+02:00").unwrap();
     for s in -30..1500 {
         let v = if s < 660 { 98 } else { 90 };
-        log.push_str(&format!("{},{}\n", (start + chrono::Duration::seconds(s)).to_rfc3339(), v));
+        log.push_str(&format!(
+            "{},{}\n",
+            (start + chrono::Duration::seconds(s)).to_rfc3339(),
+            v
+        ));
     }
     write(dir, "S1/spo2.csv", &log);
-    write(dir, "S1/segments-OD.yaml", "eye: OD\nsegments:\n  - id: A1\n    kind: arteriole\n    points: [[1, 1], [6, 6]]\n");
+    write(
+        dir,
+        "S1/segments-OD.yaml",
+        "eye: OD\nsegments:\n  - id: A1\n    kind: arteriole\n    points: [[1, 1], [6, 6]]\n",
+    );
     write(
         dir,
         "study.yaml",
@@ -137,7 +153,10 @@ pub fn hashes_except(root: &Path, skip: &[&str]) -> BTreeMap<String, String> {
             if p.is_dir() {
                 stack.push(p);
             } else {
-                out.insert(rel, format!("{:x}", Sha256::digest(std::fs::read(&p).unwrap())));
+                out.insert(
+                    rel,
+                    format!("{:x}", Sha256::digest(std::fs::read(&p).unwrap())),
+                );
             }
         }
     }
