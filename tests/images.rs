@@ -526,7 +526,7 @@ fn a_central_reflex_does_not_bias_the_transmission() {
         &mut rand_chacha::ChaCha8Rng::seed_from_u64(2),
     );
     let sigma = 0.12 * d_um / 2.0 / 12.0;
-    let len = ((b.0 - a.0) as f64).hypot(b.1 - a.1);
+    let len = (b.0 - a.0).hypot(b.1 - a.1);
     let dist = |i: usize| {
         let (x, y) = ((i % 160) as f64 - a.0, (i / 160) as f64 - a.1);
         (x * (b.1 - a.1) - y * (b.0 - a.0)).abs() / len

@@ -197,17 +197,19 @@ impl<'a> Problem for Joint<'a> {
     }
 }
 
+/// Normal-equation blocks of the joint fit: A (3×3), per position b_p (3)
+/// and c_p, the shared gradient (3) and the per-position gradients.
+type NormalBlocks = (
+    Matrix3<f64>,
+    Vec<Vector3<f64>>,
+    Vec<f64>,
+    Vector3<f64>,
+    Vec<f64>,
+);
+
 impl JointLin {
     /// Normal-equation blocks: A (3×3), per position b_p (3), c_p, and gradients.
-    fn normal(
-        &self,
-    ) -> (
-        Matrix3<f64>,
-        Vec<Vector3<f64>>,
-        Vec<f64>,
-        Vector3<f64>,
-        Vec<f64>,
-    ) {
+    fn normal(&self) -> NormalBlocks {
         let mut a = Matrix3::zeros();
         let mut gg = Vector3::zeros();
         let mut bs = Vec::with_capacity(self.blocks.len());

@@ -216,7 +216,7 @@ fn fit_capture(
                     loss,
                     pointwise,
                 } => {
-                    let (model, settings) = multiband_model(&bands, sel, *loss);
+                    let (model, settings) = multiband_model(bands, sel, *loss);
                     let spectra = SegmentSpectra {
                         diameters_um: pos.iter().map(|p| p.diameter_um).collect(),
                         transmissions: pos

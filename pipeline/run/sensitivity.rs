@@ -142,7 +142,7 @@ pub fn sensitivity(
     }
     std::fs::create_dir_all(out).with_context(|| format!("cannot create `{}`", out.display()))?;
     let mut t = Table::new();
-    t.text("method", &vec![unknowns.method().to_string(); tk.len()])
+    t.text("method", vec![unknowns.method().to_string(); tk.len()])
         .text("weights", &tw)
         .real("veil", tk)
         .text("band", &tb)

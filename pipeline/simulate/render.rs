@@ -19,6 +19,9 @@ use crate::config::segments::Segment;
 use crate::oximetry::bands::SampledBand;
 use crate::oximetry::model::VesselModel;
 
+/// A vessel's centre line moved into one capture and band, with its diameters.
+type MovedVessel = (Vec<(f64, f64)>, Vec<f64>);
+
 /// Rigid motion of a capture relative to the eye's reference capture:
 /// rotation by `angle_deg` about the image centre, then translation.
 #[derive(Debug, Clone, Copy, Default, serde::Serialize)]
@@ -145,7 +148,7 @@ pub fn render(
             .collect();
         // Vessel polylines in this capture and band.
         let (ox, oy) = scene.band_offsets[b];
-        let moved: Vec<(Vec<(f64, f64)>, Vec<f64>)> = vessels
+        let moved: Vec<MovedVessel> = vessels
             .iter()
             .map(|v| {
                 let pts: Vec<(f64, f64)> = v

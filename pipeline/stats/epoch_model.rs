@@ -220,13 +220,13 @@ fn random_terms(
     (terms, formula)
 }
 
+/// Per subject, per (eye, segment), per epoch: a value.
+type BySegment<'a, T> = BTreeMap<&'a str, BTreeMap<(&'a str, &'a str), BTreeMap<usize, T>>>;
+
 /// Each subject's mean of each segment's values in each epoch:
 /// subject → (eye, segment) → epoch → mean.
-fn segment_means(
-    obs: &[Observation],
-) -> BTreeMap<&str, BTreeMap<(&str, &str), BTreeMap<usize, f64>>> {
-    let mut sums: BTreeMap<&str, BTreeMap<(&str, &str), BTreeMap<usize, (f64, usize)>>> =
-        BTreeMap::new();
+fn segment_means(obs: &[Observation]) -> BySegment<'_, f64> {
+    let mut sums: BySegment<'_, (f64, usize)> = BTreeMap::new();
     for o in obs {
         let c = sums
             .entry(o.subject.as_str())
