@@ -6,6 +6,7 @@ mod common;
 use std::collections::BTreeMap;
 
 use common::*;
+use satstep::oximetry::odr::within_group_slope;
 
 #[test]
 fn same_seed_same_bytes_whatever_the_jobs() {
@@ -594,17 +595,7 @@ fn statistics_settings_do_what_they_say() {
                     r[col].parse().unwrap(),
                 ));
         }
-        let (mut sxx, mut sxy) = (0.0, 0.0);
-        for g in groups.values().filter(|g| g.len() > 1) {
-            let n = g.len() as f64;
-            let (mx, my) = (
-                g.iter().map(|p| p.0).sum::<f64>() / n,
-                g.iter().map(|p| p.1).sum::<f64>() / n,
-            );
-            sxx += g.iter().map(|p| (p.0 - mx).powi(2)).sum::<f64>();
-            sxy += g.iter().map(|p| (p.0 - mx) * (p.1 - my)).sum::<f64>();
-        }
-        sxy / sxx
+        within_group_slope(&groups.into_values().collect::<Vec<_>>()).unwrap()
     };
     let (raw, corrected) = (slope(c("odr_uncorrected")), slope(c("odr")));
     assert!(

@@ -12,6 +12,7 @@ use crate::run::epochs::EpochTables;
 use crate::run::fits::FitRow;
 use crate::run::statistics::Statistics;
 use crate::run::transmissions::ImageTables;
+use crate::stats::infer::format_p;
 use crate::tables::write_bytes_atomic;
 
 /// A table of text cells with a caption; numeric columns align right.
@@ -183,10 +184,6 @@ fn f(v: f64, digits: usize) -> String {
     }
 }
 
-fn p_value(p: f64) -> String {
-    crate::stats::infer::format_p(p)
-}
-
 /// Why a capture did not enter the statistics, or `None` when it did.
 pub fn usage(epochs: &EpochTables, images: &ImageTables, fits: &[FitRow]) -> Vec<Option<String>> {
     let mut with_so2 = vec![false; epochs.captures.len()];
@@ -242,7 +239,7 @@ pub fn accounting(
     if let Some(d) = study.exclusions.min_diameter_um {
         for r in fits
             .iter()
-            .filter(|r| usage[r.capture_index].is_none() && !(r.diameter_um >= d))
+            .filter(|r| usage[r.capture_index].is_none() && r.below_diameter(d))
         {
             let c = &epochs.captures[r.capture_index];
             narrow
@@ -395,8 +392,8 @@ pub fn contrasts(study: &Study, stats: &Statistics) -> ReportTable {
             format!("{} to {}", f(test.lower, 2), f(test.upper, 2)),
             f(test.df, 1),
             f(test.t, 2),
-            p_value(test.p),
-            p_value(r.result.p_adjusted),
+            format_p(test.p),
+            format_p(r.result.p_adjusted),
             r.result.basis.name().to_string(),
         ]);
     }

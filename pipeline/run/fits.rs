@@ -47,6 +47,14 @@ pub struct FitRow {
     pub along_sd: Option<f64>,
 }
 
+impl FitRow {
+    /// Narrower than `min_um`; a row without a measured diameter counts as
+    /// narrower, since it cannot show that it is wide enough.
+    pub fn below_diameter(&self, min_um: f64) -> bool {
+        !(self.diameter_um >= min_um)
+    }
+}
+
 /// Version of this stage's computation; bump when its results change.
 pub const VERSION: u32 = 4;
 

@@ -187,7 +187,7 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
     let c = &epochs.captures;
     let p = &study.protocol;
     let min_d = study.exclusions.min_diameter_um;
-    let narrow = |r: &FitRow| min_d.is_some_and(|d| !(r.diameter_um >= d));
+    let narrow = |r: &FitRow| min_d.is_some_and(|d| r.below_diameter(d));
     let steady = |r: &FitRow| c[r.capture_index].status == "steady";
     // The values the statistics use: steady captures, a finite SO2, wide enough.
     let usable = |r: &FitRow| steady(r) && r.so2.is_some_and(f64::is_finite) && !narrow(r);

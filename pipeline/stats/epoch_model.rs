@@ -44,6 +44,7 @@ use std::collections::BTreeMap;
 use nalgebra::DMatrix;
 use statrs::distribution::{ContinuousCDF, StudentsT};
 
+use super::agreement::paired_t;
 use super::infer::{Test, contrast_at, holm};
 use super::lmm::{Criterion, LmmData, Model, RandomTerm};
 
@@ -298,18 +299,11 @@ pub fn subject_level_test(
         .into_iter()
         .map(|(_, v)| v)
         .collect();
-    let n = values.len();
-    if n < 2 {
-        return None;
-    }
-    let nf = n as f64;
-    let mean = values.iter().sum::<f64>() / nf;
-    let sd = (values.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / (nf - 1.0)).sqrt();
-    let se = sd / nf.sqrt();
-    let df = nf - 1.0;
-    let t = mean / se;
-    let d = StudentsT::new(0.0, 1.0, df).ok()?;
-    let (p, q) = (2.0 * d.sf(t.abs()), d.inverse_cdf(0.5 + confidence / 2.0));
+    // A one-sample t test is the paired test against zero.
+    let (mean, se, df, t, p) = paired_t(&values, &vec![0.0; values.len()])?;
+    let q = StudentsT::new(0.0, 1.0, df)
+        .ok()?
+        .inverse_cdf(0.5 + confidence / 2.0);
     Some((
         Test {
             label: spec.label.clone(),
@@ -321,7 +315,7 @@ pub fn subject_level_test(
             lower: mean - q * se,
             upper: mean + q * se,
         },
-        n,
+        values.len(),
     ))
 }
 
