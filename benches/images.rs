@@ -13,8 +13,8 @@ use satstep::config::segments::{Segment, VesselKind};
 use satstep::images::ingest::read_capture;
 use satstep::images::profile::ProfileSettings;
 use satstep::oximetry::bands::SampledBand;
-use satstep::run::transmissions::analyse_capture;
 use satstep::simulate::render::{Motion, Scene, VesselState, render, write_tiff};
+use satstep::stages::images::analyse_capture;
 
 const SIZE: usize = 1024;
 

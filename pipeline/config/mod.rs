@@ -5,9 +5,12 @@
 pub mod csvfile;
 pub mod diag;
 pub mod duration;
+pub mod eye;
 pub mod protocol;
 pub mod read;
 pub mod segments;
 pub mod spectra;
+pub mod spo2log;
 pub mod study;
+pub mod time;
 pub mod yaml;

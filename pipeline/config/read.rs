@@ -9,7 +9,7 @@ use chrono::{DateTime, FixedOffset};
 use super::diag::{Finding, Findings, Mark, suggest};
 use super::duration::parse_seconds;
 use super::yaml::{Node, Value};
-use crate::timeline::time::parse_time;
+use crate::config::time::parse_time;
 
 /// Reads and parses a YAML file; a missing file or a syntax error becomes
 /// findings (`cannot read the {what}: …` with `hint`).

@@ -14,8 +14,8 @@
 use std::path::Path;
 
 use super::diag::Findings;
+use super::eye::Eye;
 use super::read::Reader;
-use super::study::Eye;
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord, serde::Serialize)]
 pub enum VesselKind {

@@ -10,35 +10,14 @@ use chrono::{DateTime, FixedOffset};
 
 use super::csvfile::read_csv;
 use super::diag::{Findings, Mark};
+pub use super::eye::Eye;
 use super::protocol::{Protocol, load_protocol, read_protocol};
 use super::read::{MapView, Reader};
+use super::segments::Segment;
+pub use super::spo2log::ReferenceLog;
+use super::spo2log::SpO2Log;
+use super::time::parse_time;
 use super::yaml::Node;
-use crate::timeline::time::parse_time;
-
-#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, serde::Serialize)]
-pub enum Eye {
-    /// Right eye (oculus dexter).
-    OD,
-    /// Left eye (oculus sinister).
-    OS,
-}
-
-impl Eye {
-    pub const NAMES: [&'static str; 2] = ["OD", "OS"];
-    pub fn from_name(s: &str) -> Option<Eye> {
-        match s {
-            "OD" => Some(Eye::OD),
-            "OS" => Some(Eye::OS),
-            _ => None,
-        }
-    }
-    pub fn as_str(&self) -> &'static str {
-        match self {
-            Eye::OD => "OD",
-            Eye::OS => "OS",
-        }
-    }
-}
 
 #[derive(Debug, Clone, PartialEq, serde::Serialize)]
 pub enum BandResponse {
@@ -90,13 +69,6 @@ pub struct Capture {
 }
 
 #[derive(Debug, Clone, PartialEq, serde::Serialize)]
-pub struct ReferenceLog {
-    pub path: PathBuf,
-    pub time_column: String,
-    pub spo2_column: String,
-}
-
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
 pub struct Session {
     pub id: String,
     pub start: DateTime<FixedOffset>,
@@ -106,6 +78,13 @@ pub struct Session {
     pub captures: Vec<Capture>,
     pub reference: Option<ReferenceLog>,
     pub segments: BTreeMap<Eye, PathBuf>,
+    /// The reference log's samples, read once with the study
+    /// ([`crate::study::load_study`]); not part of the session's identity.
+    #[serde(skip)]
+    pub spo2: Option<SpO2Log>,
+    /// Each eye's segments, read once with the study.
+    #[serde(skip)]
+    pub vessels: BTreeMap<Eye, Vec<Segment>>,
 }
 
 #[derive(Debug, Clone, PartialEq, serde::Serialize)]
@@ -283,7 +262,10 @@ const EXCLUDED_CAPTURE_KEYS: &[&str] = &["file", "reason"];
 /// Reads and validates a study file and everything it names (protocol,
 /// capture lists, reference logs, segment files). All findings, errors and
 /// warnings, come back together; the study is `Some` only without errors.
-pub fn load_study(path: &Path) -> (Option<Study>, Findings) {
+/// Reads and checks the study file and the files it lists, keeping the
+/// study even when there are errors so that the session files can be
+/// checked too; [`crate::study::load_study`] reads those and decides.
+pub fn read_study_file(path: &Path) -> (Option<Study>, Findings) {
     let mut findings = Findings::new();
     let Some(root_node) = super::read::load_tree(
         path,
@@ -304,11 +286,7 @@ pub fn load_study(path: &Path) -> (Option<Study>, Findings) {
         s.spectra = check_spectra(&s, &mut findings);
         s
     });
-    if findings.has_errors() {
-        (None, findings)
-    } else {
-        (study, findings)
-    }
+    (study, findings)
 }
 
 fn read_study(r: &mut Reader, node: &Node, file: &Path, root: &Path) -> Option<Study> {
@@ -729,6 +707,8 @@ fn read_session(
         captures,
         reference,
         segments,
+        spo2: None,
+        vessels: BTreeMap::new(),
     })
 }
 
@@ -1285,17 +1265,6 @@ fn check_files(study: &Study, findings: &mut Findings) {
     let mut seen: HashMap<PathBuf, (PathBuf, Mark)> = HashMap::new();
     for subj in &study.subjects {
         for sess in &subj.sessions {
-            for (eye, p) in &sess.segments {
-                if p.is_file() {
-                    super::segments::load_segments(p, *eye, findings);
-                }
-            }
-            if let Some(log) = &sess.reference {
-                crate::timeline::reference::read_log(log, &sess.start, findings);
-            }
-            let spans = crate::timeline::assign::session_spans(&study.protocol, sess);
-            let first = spans.first().map(|s| s.start_s).unwrap_or(0.0);
-            let last = spans.last().map(|s| s.end_s).unwrap_or(0.0);
             for c in &sess.captures {
                 // With a spectra table the capture files are not needed.
                 if study.spectra_file.is_none() && !c.path.is_file() {
@@ -1324,18 +1293,6 @@ fn check_files(study: &Study, findings: &mut Findings) {
                         .hint("remove one of the two lines");
                 } else {
                     seen.insert(key, (c.source.clone(), c.mark));
-                }
-                let t = crate::timeline::time::seconds_between(&sess.start, &c.time);
-                if t < first || t >= last {
-                    findings
-                        .warning(&c.source, Some(c.mark), format!(
-                            "capture `{}` at {} is outside the protocol ({} to {} after the session start); it is kept with status `outside`",
-                            c.listed,
-                            c.time.to_rfc3339(),
-                            super::duration::format_seconds(first),
-                            super::duration::format_seconds(last)
-                        ))
-                        .hint("check the capture's time stamp and the session's `start`");
                 }
             }
         }

@@ -8,7 +8,7 @@
 
 use crate::config::protocol::Protocol;
 use crate::config::study::Session;
-use crate::timeline::time::seconds_between;
+use crate::config::time::seconds_between;
 
 /// Where one epoch lies in one session, seconds from the session start.
 #[derive(Debug, Clone, PartialEq)]
@@ -96,7 +96,7 @@ pub fn assign(spans: &[EpochSpan], t_s: f64) -> (Option<usize>, CaptureStatus) {
 mod tests {
     use super::*;
     use crate::config::protocol::{Epoch, Gas, GasSpec, ReferenceSettings};
-    use crate::timeline::time::parse_time;
+    use crate::config::time::parse_time;
     use std::collections::BTreeMap;
 
     fn protocol() -> Protocol {
@@ -137,6 +137,8 @@ mod tests {
             captures: vec![],
             reference: None,
             segments: BTreeMap::new(),
+            spo2: None,
+            vessels: BTreeMap::new(),
         }
     }
 

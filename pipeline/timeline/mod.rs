@@ -3,4 +3,5 @@
 
 pub mod assign;
 pub mod reference;
-pub mod time;
+
+pub mod show;

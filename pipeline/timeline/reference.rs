@@ -7,22 +7,8 @@
 //! samples in the window exceeds the stability limit the value is kept and
 //! flagged `unstable`.
 
-use std::path::Path;
-
-use chrono::{DateTime, FixedOffset};
-
-use crate::config::csvfile::read_csv;
-use crate::config::diag::Findings;
 use crate::config::protocol::ReferenceSettings;
-use crate::config::study::ReferenceLog;
-use crate::timeline::time::{parse_time, seconds_between};
-
-/// A session's log, times in seconds from the session start, sorted.
-#[derive(Debug, Clone, Default)]
-pub struct SpO2Log {
-    pub samples: Vec<(f64, f64)>,
-    pub dropouts: usize,
-}
+pub use crate::config::spo2log::SpO2Log;
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum ReferenceStatus {
@@ -48,64 +34,6 @@ pub struct CaptureReference {
     pub samples: usize,
     pub range: Option<f64>,
     pub status: ReferenceStatus,
-}
-
-/// Reads a log; malformed lines are findings with `file:line:column`.
-pub fn read_log(
-    log: &ReferenceLog,
-    session_start: &DateTime<FixedOffset>,
-    findings: &mut Findings,
-) -> Option<SpO2Log> {
-    let p: &Path = &log.path;
-    let before = findings.error_count();
-    let t = read_csv(p, findings)?;
-    let tc = t.column(p, &log.time_column, "the SpO2 log", findings);
-    let sc = t.column(p, &log.spo2_column, "the SpO2 log", findings);
-    let (tc, sc) = (tc?, sc?);
-    let mut out = SpO2Log::default();
-    for row in &t.rows {
-        let Some((ts, tm)) = row.field(tc) else {
-            findings.error(
-                p,
-                Some(crate::config::diag::Mark::new(row.line, 1)),
-                "this line has no time",
-            );
-            continue;
-        };
-        let time = match parse_time(ts) {
-            Ok(v) => v,
-            Err(e) => {
-                findings
-                    .error(p, Some(tm), format!("time: {e}"))
-                    .hint("the log's times must be ISO 8601 with the UTC offset");
-                continue;
-            }
-        };
-        let value = row.field(sc).map(|(s, m)| (s.to_string(), m));
-        let v = match value {
-            None => None,
-            Some((s, _)) if s.is_empty() || s.eq_ignore_ascii_case("nan") || s == "-" => None,
-            Some((s, m)) => match s.parse::<f64>() {
-                Ok(v) if v.is_finite() && (1.0..=100.0).contains(&v) => Some(v),
-                Ok(_) => None,
-                Err(_) => {
-                    findings
-                        .error(p, Some(m), format!("SpO2 `{s}` is not a number"))
-                        .hint("leave the cell empty for a dropout");
-                    continue;
-                }
-            },
-        };
-        match v {
-            Some(v) => out.samples.push((seconds_between(session_start, &time), v)),
-            None => out.dropouts += 1,
-        }
-    }
-    if findings.error_count() > before {
-        return None;
-    }
-    out.samples.sort_by(|a, b| a.0.total_cmp(&b.0));
-    Some(out)
 }
 
 /// The reference value for a capture at `t_s` seconds from the session start.

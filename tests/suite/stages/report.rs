@@ -3,11 +3,9 @@
 //! engine is installed), the HTML carries only embedded resources, and the
 //! cautions, methods and provenance are there.
 
-mod common;
-
 use std::path::{Path, PathBuf};
 
-use common::*;
+use crate::common::*;
 
 fn run_study(dir: &Path) -> PathBuf {
     let sc = repo().join("tests/fixtures/runner-scenario.yaml");

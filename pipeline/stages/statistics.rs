@@ -13,14 +13,17 @@
 //! `exclusions.min_diameter_um` are left out of all of it and counted.
 
 use std::collections::BTreeMap;
-use std::path::Path;
+use std::path::{Path, PathBuf};
 
 use anyhow::Result;
 use rayon::prelude::*;
 
+use super::epochs::{EpochTables, Epochs};
+use super::fits::{FitRow, Fits};
+use super::stage::{Run, Stage};
 use crate::config::study::{Adjustment as Adjust, Study};
-use crate::run::epochs::EpochTables;
-use crate::run::fits::FitRow;
+use crate::runner::Runner;
+use crate::runner::key::{Key, KeyBuilder};
 use crate::stats::agreement::{Agreement, agreement};
 use crate::stats::epoch_model::{
     self, Adjustment, Component, ContrastResult, ContrastSpec, Design, Observation, SlopeResult,
@@ -114,7 +117,7 @@ pub struct AgreementPair {
 }
 
 #[derive(Default, Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
-pub struct Statistics {
+pub struct StatisticsTables {
     pub summaries: Vec<SummaryRow>,
     pub contrasts: Vec<ContrastRow>,
     pub variance: Vec<VarianceRow>,
@@ -128,9 +131,9 @@ pub struct Statistics {
     pub adjustment: String,
 }
 
-impl Statistics {
+impl StatisticsTables {
     /// Adds another part's rows after this one's.
-    fn append(&mut self, other: Statistics) {
+    fn append(&mut self, other: StatisticsTables) {
         self.summaries.extend(other.summaries);
         self.contrasts.extend(other.contrasts);
         self.variance.extend(other.variance);
@@ -161,20 +164,85 @@ fn adjustment(study: &Study) -> Adjustment {
     }
 }
 
-/// Version of this stage's computation; bump when its results change.
-pub const VERSION: u32 = 4;
+/// The statistics stage.
+pub struct StatisticsStage;
 
-/// The stage's settings: its own section of the study, the minimum
-/// diameter, the protocol's epochs and contrasts, and the method labels it
-/// groups by.
-pub fn settings_key(study: &Study) -> crate::stages::key::Key {
-    let labels: Vec<&str> = study.methods.iter().map(|m| m.label.as_str()).collect();
-    let mut k = crate::stages::key::KeyBuilder::new("statistics-settings", VERSION);
-    k.value("statistics", &study.statistics)
-        .value("min-diameter-um", &study.exclusions.min_diameter_um)
-        .value("protocol", &study.protocol)
-        .value("methods", &labels);
-    k.finish()
+impl Stage for StatisticsStage {
+    const NAME: &'static str = "statistics";
+    const VERSION: u32 = 4;
+    const SUMMARY: &'static str =
+        "summaries, the epoch model and its contrasts, agreement with SpO2, method comparison";
+    const UPSTREAM: &'static [&'static str] = &["epochs", "fits"];
+    type Output = StatisticsTables;
+
+    /// Its own section of the study, the minimum diameter, the protocol's
+    /// epochs and contrasts, and the method labels it groups by.
+    fn settings(study: &Study) -> Key {
+        let labels: Vec<&str> = study.methods.iter().map(|m| m.label.as_str()).collect();
+        let mut k = KeyBuilder::new("statistics-settings", Self::VERSION);
+        k.value("statistics", &study.statistics)
+            .value("min-diameter-um", &study.exclusions.min_diameter_um)
+            .value("protocol", &study.protocol)
+            .value("methods", &labels);
+        k.finish()
+    }
+
+    fn build(run: &Run, _: &Runner) -> Result<(StatisticsTables, String)> {
+        let s = build(run.study, run.output::<Epochs>(), run.output::<Fits>());
+        let d = format!(
+            "{} subject × epoch summaries, {} contrasts, {} agreement rows",
+            s.summaries.len(),
+            s.contrasts.len(),
+            s.agreement.len()
+        );
+        Ok((s, d))
+    }
+
+    fn write(s: &StatisticsTables, run: &Run, _: &Runner) -> Result<Vec<PathBuf>> {
+        s.write(run.out())
+    }
+
+    /// A minimum diameter that empties a method and vessel kind, and every
+    /// contrast on one line.
+    fn report(run: &Run, runner: &Runner) {
+        let (study, stats) = (run.study, run.output::<StatisticsStage>());
+        // A minimum diameter that empties a method and vessel kind leaves it
+        // out of every statistic: say so rather than let the rows vanish.
+        if let Some(d) = study.exclusions.min_diameter_um {
+            let mut by: BTreeMap<(&str, &str), (i64, i64)> = BTreeMap::new();
+            for r in stats.summaries.iter().filter(|r| r.kind != "arteriovenous") {
+                let e = by.entry((r.method.as_str(), r.kind.as_str())).or_default();
+                e.0 += r.segments;
+                e.1 += r.below_min_diameter;
+            }
+            for ((m, k), (used, narrow)) in by {
+                if used == 0 && narrow > 0 {
+                    runner.printer.warn(format!("`exclusions.min_diameter_um: {d}` leaves no {k} value of `{m}` ({narrow} values are narrower): no {k} statistics for it"));
+                }
+            }
+        }
+        for c in &stats.contrasts {
+            let t = &c.result.test;
+            runner.printer.info(format!(
+                "  {} {}: {} = {:+.2} points ({:.0} % CI {:+.2} to {:+.2}, df {:.1}, p {} ({}), {})",
+                c.method,
+                c.kind,
+                t.label,
+                t.estimate,
+                study.statistics.confidence * 100.0,
+                t.lower,
+                t.upper,
+                t.df,
+                crate::stats::infer::format_p(c.result.p_adjusted),
+                stats.adjustment,
+                c.result.basis.name()
+            ));
+        }
+    }
+
+    fn describe(run: &Run) -> Option<String> {
+        Some(describe(run.study, run.try_output::<StatisticsStage>()))
+    }
 }
 
 /// Unit of replication of each method-comparison quantity.
@@ -183,7 +251,7 @@ const UNIT_FITS: &str = "segment fits";
 const UNIT_CHANGES: &str = "subject × epoch changes from baseline (descriptive, pooled)";
 const UNIT_PAIRS: &str = "segment × capture pairs; limits for repeated measures per subject";
 
-pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics {
+fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> StatisticsTables {
     let c = &epochs.captures;
     let p = &study.protocol;
     let min_d = study.exclusions.min_diameter_um;
@@ -208,10 +276,10 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
         adjustment: adjustment(study),
     };
     let base = &p.epochs[p.baseline].name;
-    let mut st = Statistics {
+    let mut st = StatisticsTables {
         confidence: study.statistics.confidence,
         adjustment: design.adjustment.name().to_string(),
-        ..Statistics::default()
+        ..StatisticsTables::default()
     };
     // Each method and vessel kind is analysed on its own, in parallel; the
     // parts are joined in the study's order, so the result does not depend
@@ -221,10 +289,10 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
         .iter()
         .flat_map(|m| [(m, "arteriole"), (m, "venule")])
         .collect();
-    let parts: Vec<Statistics> = pairs
+    let parts: Vec<StatisticsTables> = pairs
         .par_iter()
         .map(|&(m, kind)| {
-            let mut st = Statistics::default();
+            let mut st = StatisticsTables::default();
             let mine = |r: &&FitRow| r.method == m.label && r.kind == kind;
             let rows: Vec<&FitRow> = fits.iter().filter(mine).filter(|r| usable(r)).collect();
             // Summaries: capture means first, then over captures.
@@ -584,7 +652,7 @@ pub fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> Statistics
     st
 }
 
-impl Statistics {
+impl StatisticsTables {
     pub fn write(&self, out: &Path) -> Result<Vec<std::path::PathBuf>> {
         let mut written = Vec::new();
         let dir = out.join("statistics");
@@ -700,7 +768,7 @@ impl Statistics {
 }
 
 /// This stage's part of the report's methods text.
-pub fn describe(study: &Study, stats: Option<&Statistics>) -> String {
+fn describe(study: &Study, stats: Option<&StatisticsTables>) -> String {
     let p = &study.protocol;
     let level = study.statistics.confidence * 100.0;
     let adjust = match study.statistics.adjustment {

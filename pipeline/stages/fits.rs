@@ -4,11 +4,14 @@
 //! are made after all segment ODRs are known.
 
 use std::collections::BTreeMap;
-use std::path::Path;
+use std::path::{Path, PathBuf};
 
 use anyhow::Result;
 use rayon::prelude::*;
 
+use super::epochs::{EpochTables, Epochs};
+use super::images::{ImageTables, Images, PositionRow};
+use super::stage::{Run, Stage};
 use crate::config::study::{Calibration, Loss, Method, MethodKind, Study};
 use crate::oximetry::bands::SampledBand;
 use crate::oximetry::model::VesselModel;
@@ -17,10 +20,8 @@ use crate::oximetry::odr::{
 };
 use crate::oximetry::pointwise::fit_pointwise;
 use crate::oximetry::segment::{FitSettings, RobustLoss, SegmentSpectra, fit_segment};
-use crate::run::epochs::EpochTables;
-use crate::run::transmissions::{ImageTables, PositionRow};
-use crate::stages::key::{Key, KeyBuilder};
-use crate::stages::{Items, Runner};
+use crate::runner::key::{Key, KeyBuilder};
+use crate::runner::{Items, Runner};
 use crate::tables::Table;
 
 /// Fewest unflagged positions a segment needs to be fitted.
@@ -55,22 +56,67 @@ impl FitRow {
     }
 }
 
-/// Version of this stage's computation; bump when its results change.
-pub const VERSION: u32 = 4;
+/// The fits stage.
+pub struct Fits;
 
-/// The stage's settings: the methods and the bands they read.
-pub fn settings_key(study: &Study) -> Key {
-    let mut k = KeyBuilder::new("fits-settings", VERSION);
-    k.value("methods", &study.methods)
-        .value("bands", &study.instrument.bands)
-        .value("min-positions", &MIN_POSITIONS);
-    k.finish()
+impl Stage for Fits {
+    const NAME: &'static str = "fits";
+    const VERSION: u32 = 4;
+    const SUMMARY: &'static str = "SO2 of every segment of every capture by each method";
+    const UPSTREAM: &'static [&'static str] = &["epochs", "images"];
+    type Output = Vec<FitRow>;
+
+    /// The methods and the bands they read.
+    fn settings(study: &Study) -> Key {
+        let mut k = KeyBuilder::new("fits-settings", Self::VERSION);
+        k.value("methods", &study.methods)
+            .value("bands", &study.instrument.bands)
+            .value("min-positions", &MIN_POSITIONS);
+        k.finish()
+    }
+
+    fn build(run: &Run, runner: &Runner) -> Result<(Vec<FitRow>, String)> {
+        let study = run.study;
+        let multiband = study
+            .methods
+            .iter()
+            .filter(|m| matches!(m.kind, MethodKind::Multiband { .. }))
+            .count();
+        let items = runner.items(
+            Self::NAME,
+            run.output::<Images>().keys.len() * multiband,
+            "fits",
+        );
+        let rows = build(
+            study,
+            run.output::<Epochs>(),
+            run.output::<Images>(),
+            runner,
+            &items,
+        )?;
+        let detail = items.finish("multiband capture fits")?;
+        let d = format!(
+            "{} segment fits over {} methods, {} with an SO2 ({detail})",
+            rows.len(),
+            study.methods.len(),
+            rows.iter().filter(|f| f.so2.is_some()).count()
+        );
+        Ok((rows, d))
+    }
+
+    fn write(rows: &Vec<FitRow>, run: &Run, _: &Runner) -> Result<Vec<PathBuf>> {
+        write(rows, run.output::<Epochs>(), run.out())
+    }
+
+    fn describe(run: &Run) -> Option<String> {
+        Some(describe(run.study))
+    }
 }
 
 /// Fits every capture's segments by every method. Captures are taken in
 /// parallel, each reading its positions from the image stage's cache and
 /// dropping them when done; multiband results are cached per capture.
-pub fn build(
+fn build(
     study: &Study,
     epochs: &EpochTables,
     images: &ImageTables,
@@ -104,7 +150,7 @@ pub fn build(
                     // Multiband fits are the slow part: kept per capture, so that an
                     // interrupted run or a changed capture refits only what it must.
                     MethodKind::Multiband { .. } => {
-                        let mut k = KeyBuilder::new("fits-capture", VERSION);
+                        let mut k = KeyBuilder::new("fits-capture", Fits::VERSION);
                         k.value("method", m)
                             .value("bands", &study.instrument.bands)
                             .value("min-positions", &MIN_POSITIONS)
@@ -401,7 +447,7 @@ fn calibrate(rows: &mut [FitRow], cal: &Calibration, study: &Study, epochs: &Epo
     }
 }
 
-pub fn write(rows: &[FitRow], epochs: &EpochTables, out: &Path) -> Result<Vec<std::path::PathBuf>> {
+fn write(rows: &[FitRow], epochs: &EpochTables, out: &Path) -> Result<Vec<PathBuf>> {
     let c = &epochs.captures;
     let mut t = Table::new();
     t.text("subject", rows.iter().map(|r| &c[r.capture_index].subject))
@@ -431,7 +477,7 @@ pub fn write(rows: &[FitRow], epochs: &EpochTables, out: &Path) -> Result<Vec<st
 }
 
 /// This stage's part of the report's methods text: one sentence per method.
-pub fn describe(study: &Study) -> String {
+fn describe(study: &Study) -> String {
     let band = |i: &usize| study.instrument.bands[*i].name.clone();
     let mut parts = vec![format!(
         "Segments with at least {MIN_POSITIONS} usable positions were analysed by each method."

@@ -2,12 +2,10 @@
 //! table instead of images runs through the same fits and statistics, and
 //! gives the same SO2 as the images it was extracted from.
 
-mod common;
-
 use std::collections::BTreeMap;
 use std::path::Path;
 
-use common::*;
+use crate::common::*;
 
 fn records(path: &Path) -> (Vec<String>, Vec<Vec<String>>) {
     let mut r = csv::Reader::from_path(path).unwrap();

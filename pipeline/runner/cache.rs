@@ -126,7 +126,7 @@ pub struct StageRecord {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::stages::key::KeyBuilder;
+    use crate::runner::key::KeyBuilder;
 
     #[test]
     fn round_trip_and_corruption() {

@@ -1,25 +1,12 @@
-//! Command-line interface: argument parsing and the verbs. Each verb returns
-//! an [`Exit`]; `main` only maps it to the process status.
-
-pub mod printer;
+//! Command-line interface: parses the arguments and hands them to the verb
+//! in [`crate::commands`].
 
 use std::path::PathBuf;
 
 use clap::{Args, Parser, Subcommand};
 
-use printer::{Level, Printer};
-
-/// Process exit status, documented in the README.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum Exit {
-    /// Everything worked.
-    Ok = 0,
-    /// A user or data problem: bad input, a failed check, or some items
-    /// failed while the rest of the run finished and wrote its outputs.
-    Problem = 1,
-    /// A bug or an environment failure (disk full, permission denied).
-    Internal = 2,
-}
+use crate::commands::{self, Exit};
+use crate::console::{Level, Printer};
 
 #[derive(Parser, Debug)]
 #[command(name = "satstep", version, about = "Breathing-challenge retinal oximetry studies: from protocol and captures to per-vessel SO2, statistics and report.", long_about = None)]
@@ -64,8 +51,7 @@ pub enum Command {
         /// The study file, or a folder holding `study.yaml`.
         study: PathBuf,
         /// Run this stage even if it is up to date (repeatable; `all` for every stage).
-        /// Stages: epochs, images, fits, statistics, report.
-        #[arg(long, value_name = "STAGE", value_parser = clap::builder::PossibleValuesParser::new(crate::stages::STAGES.iter().copied().chain(["all"])))]
+        #[arg(long, value_name = "STAGE", value_parser = stage_names())]
         force: Vec<String>,
     },
     /// SO2 error from a 1 % transmission error per band, for veils 0–0.9.
@@ -141,6 +127,18 @@ pub enum ProtocolAction {
     },
 }
 
+/// `--force` takes the stages' names from the one stage list, in order,
+/// each with its summary for the help text.
+fn stage_names() -> clap::builder::PossibleValuesParser {
+    use clap::builder::PossibleValue;
+    let stages = crate::stages::STAGES
+        .iter()
+        .map(|s| PossibleValue::new(s.name()).help(s.summary()));
+    clap::builder::PossibleValuesParser::new(
+        stages.chain([PossibleValue::new("all").help("every stage")]),
+    )
+}
+
 impl Global {
     pub fn printer(&self) -> Printer {
         let level = if self.quiet {
@@ -179,12 +177,14 @@ pub fn main_with_args(args: impl IntoIterator<Item = std::ffi::OsString>) -> Exi
             .build_global();
     }
     let result = match cli.command {
-        Command::Check { study } => crate::run::check(&study, &printer),
+        Command::Check { study } => commands::check::check(&study, &printer),
         Command::Protocol {
             action: ProtocolAction::Show { file },
-        } => crate::run::show_protocol(&file, &printer),
-        Command::Run { study, force } => crate::run::run(&study, &force, &printer),
-        Command::Simulate { scenario, out } => crate::run::simulate(&scenario, &out, &printer),
+        } => commands::protocol::show_protocol(&file, &printer),
+        Command::Run { study, force } => commands::run::run(&study, &force, &printer),
+        Command::Simulate { scenario, out } => {
+            commands::simulate::simulate(&scenario, &out, &printer)
+        }
         Command::Mixed {
             data,
             response,
@@ -195,7 +195,7 @@ pub fn main_with_args(args: impl IntoIterator<Item = std::ffi::OsString>) -> Exi
             ml,
             out,
         } => {
-            let args = crate::run::mixed::MixedArgs {
+            let args = commands::mixed::MixedArgs {
                 data,
                 response,
                 fixed,
@@ -205,7 +205,7 @@ pub fn main_with_args(args: impl IntoIterator<Item = std::ffi::OsString>) -> Exi
                 ml,
                 out,
             };
-            crate::run::mixed::mixed(&args, &printer)
+            commands::mixed::mixed(&args, &printer)
         }
         Command::Sensitivity {
             file,
@@ -229,7 +229,7 @@ pub fn main_with_args(args: impl IntoIterator<Item = std::ffi::OsString>) -> Exi
             } else {
                 Unknowns::VeilShared
             };
-            crate::run::sensitivity::sensitivity(&file, &op, unknowns, &bands, &out, &printer)
+            commands::sensitivity::sensitivity(&file, &op, unknowns, &bands, &out, &printer)
         }
     };
     match result {

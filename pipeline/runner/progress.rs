@@ -3,7 +3,7 @@
 
 use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
 
-use crate::cli::printer::Printer;
+use crate::console::Printer;
 
 pub struct Progress(Option<ProgressBar>);
 

@@ -6,10 +6,10 @@ use std::path::{Path, PathBuf};
 use anyhow::Result;
 use nalgebra::DMatrix;
 
-use crate::cli::Exit;
-use crate::cli::printer::Printer;
+use crate::commands::Exit;
 use crate::config::csvfile::read_csv;
 use crate::config::diag::Findings;
+use crate::console::Printer;
 use crate::stats::design::{RandomSpec, Spec, build};
 use crate::stats::infer::{Test, contrast, f_test, holm};
 use crate::stats::lmm::{Criterion, Model};

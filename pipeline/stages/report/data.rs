@@ -5,17 +5,15 @@
 
 use std::collections::BTreeMap;
 
-use crate::config::diag::Findings;
 use crate::config::study::{Instrument, MethodKind, Study};
 use crate::oximetry::bands::SampledBand;
 use crate::oximetry::odr::segment_odr;
 use crate::oximetry::pointwise::fit_position;
 use crate::oximetry::sensitivity::{OperatingPoint, Unknowns, Weights, so2_errors};
-use crate::run::epochs::EpochTables;
-use crate::run::fits::{FitRow, multiband_model};
-use crate::run::statistics::Statistics;
-use crate::run::transmissions::PositionRow;
-use crate::timeline::reference::read_log;
+use crate::stages::epochs::EpochTables;
+use crate::stages::fits::{FitRow, multiband_model};
+use crate::stages::images::PositionRow;
+use crate::stages::statistics::StatisticsTables;
 
 pub struct SpanShade {
     pub start_min: f64,
@@ -126,7 +124,7 @@ pub fn prepare(
     epochs: &EpochTables,
     positions: &dyn Fn(usize) -> Vec<PositionRow>,
     fits: &[FitRow],
-    stats: &Statistics,
+    stats: &StatisticsTables,
 ) -> ReportData {
     let primary = primary_method(study);
     let p = &study.protocol;
@@ -240,11 +238,7 @@ fn courses(study: &Study, epochs: &EpochTables, fits: &[FitRow], method: &str) -
                     }
                 }
             }
-            if let Some(log) = sess
-                .reference
-                .as_ref()
-                .and_then(|r| read_log(r, &sess.start, &mut Findings::new()))
-            {
+            if let Some(log) = &sess.spo2 {
                 // Every 5th sample of a 1 Hz log is plenty at figure scale.
                 course.spo2 = log
                     .samples
@@ -259,7 +253,12 @@ fn courses(study: &Study, epochs: &EpochTables, fits: &[FitRow], method: &str) -
     out
 }
 
-fn changes(stats: &Statistics, method: &str, baseline: &str, after: &[String]) -> Vec<ChangePoint> {
+fn changes(
+    stats: &StatisticsTables,
+    method: &str,
+    baseline: &str,
+    after: &[String],
+) -> Vec<ChangePoint> {
     let mut out = Vec::new();
     for kind in ["arteriole", "venule"] {
         let rows: Vec<_> = stats

@@ -9,17 +9,17 @@ use std::path::{Path, PathBuf};
 use anyhow::Result;
 use rayon::prelude::*;
 
-use crate::config::diag::Findings;
-use crate::config::segments::{Segment, load_segments};
+use super::epochs::{EpochTables, Epochs};
+use super::stage::{Run, Stage};
+use crate::config::segments::Segment;
 use crate::config::study::{BandResponse, Study};
 use crate::images::correct::Corrections;
 use crate::images::ingest::{Multiband, read_capture};
 use crate::images::profile::{ProfileSettings, analyse_segment};
 use crate::images::register::{Registration, register};
-use crate::run::epochs::EpochTables;
-use crate::stages::Items;
-use crate::stages::Runner;
-use crate::stages::key::{Key, KeyBuilder, hash_file_or_missing};
+use crate::runner::Items;
+use crate::runner::Runner;
+use crate::runner::key::{Key, KeyBuilder, combine, hash_file_or_missing};
 use crate::tables::{Table, TableStream};
 
 /// Lowest match score at which a capture counts as registered.
@@ -62,8 +62,77 @@ pub struct ImageTables {
     pub keys: Vec<Key>,
 }
 
-/// Version of this stage's computation; bump when its results change.
-pub const VERSION: u32 = 4;
+/// The images stage.
+pub struct Images;
+
+impl Images {
+    /// Each capture's item key: the capture file's content (or its spectra
+    /// rows) with everything the stage does to it.
+    fn item_keys(run: &Run) -> Vec<Key> {
+        if run.study.spectra.is_some() {
+            spectra_item_keys(run.study, run.output::<Epochs>())
+        } else {
+            item_keys(run.study, run.output::<Epochs>(), run.hashes())
+        }
+    }
+}
+
+impl Stage for Images {
+    const NAME: &'static str = "images";
+    const VERSION: u32 = 4;
+    const SUMMARY: &'static str =
+        "registration and transmissions along each vessel segment, capture by capture";
+    const UPSTREAM: &'static [&'static str] = &["epochs"];
+    type Output = ImageTables;
+
+    fn settings(study: &Study) -> Key {
+        settings_key(study)
+    }
+
+    fn inputs(run: &Run) -> Key {
+        combine("captures", Self::item_keys(run))
+    }
+
+    fn build(run: &Run, runner: &Runner) -> Result<(ImageTables, String)> {
+        let (study, epochs) = (run.study, run.output::<Epochs>());
+        let keys = Self::item_keys(run);
+        let analysed = epochs
+            .captures
+            .iter()
+            .filter(|c| matches!(c.status.as_str(), "steady" | "settling"))
+            .count();
+        let items = runner.items(Self::NAME, analysed, "images");
+        let t = if study.spectra.is_some() {
+            from_spectra(study, epochs, keys, &items)
+        } else {
+            build(study, epochs, keys, &items)
+        };
+        let detail = items.finish("captures")?;
+        let d = format!("{detail}; {} profile positions", t.total_positions());
+        Ok((t, d))
+    }
+
+    fn write(t: &ImageTables, run: &Run, runner: &Runner) -> Result<Vec<PathBuf>> {
+        t.write(run.out(), run.study, run.output::<Epochs>(), runner)
+    }
+
+    /// Every capture that could not be read or registered, by name.
+    fn report(run: &Run, runner: &Runner) {
+        let (epochs, images) = (run.output::<Epochs>(), run.output::<Images>());
+        for i in images.failed() {
+            runner.warn(format!(
+                "capture `{}` ({}): {}",
+                epochs.captures[i].capture,
+                images.status[i].status,
+                images.status[i].message.clone().unwrap_or_default()
+            ));
+        }
+    }
+
+    fn describe(run: &Run) -> Option<String> {
+        Some(describe(run.study))
+    }
+}
 
 /// One capture's item in the stage's cache.
 pub type CaptureItem = (ImageStatus, Vec<PositionRow>);
@@ -78,7 +147,7 @@ pub fn profile_settings(study: &Study) -> ProfileSettings {
 
 /// The stage's settings part: everything besides the files that changes what it computes.
 pub fn settings_key(study: &Study) -> Key {
-    let mut k = KeyBuilder::new("images-settings", VERSION);
+    let mut k = KeyBuilder::new("images-settings", Images::VERSION);
     k.value("bands", &study.instrument.bands.len())
         .value("width-band", &width_band(study))
         .value("pixel-size", &study.instrument.pixel_size_um)
@@ -173,7 +242,7 @@ pub fn spectra_item_keys(study: &Study, epochs: &EpochTables) -> Vec<Key> {
         .captures
         .iter()
         .map(|row| {
-            let mut k = KeyBuilder::new("spectra-capture", VERSION);
+            let mut k = KeyBuilder::new("spectra-capture", Images::VERSION);
             k.key("table", &file)
                 .value("capture", &(&row.subject, &row.capture))
                 .value("bands", &bands)
@@ -308,7 +377,7 @@ pub fn item_keys(study: &Study, epochs: &EpochTables, hashes: &BTreeMap<PathBuf,
             let group = (row.subject.clone(), row.session.clone(), row.eye.clone());
             let ref_i = first[&group];
             let segs = segments_file(study, &row.subject, &row.session, &row.eye);
-            let mut k = KeyBuilder::new("images-capture", VERSION);
+            let mut k = KeyBuilder::new("images-capture", Images::VERSION);
             k.key("settings", &settings)
                 .key("capture", &hash(&files[i]))
                 .key("reference", &hash(&files[ref_i]))
@@ -350,11 +419,10 @@ pub fn build(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: &Items)
     let mut segments: BTreeMap<(String, String, String), Vec<Segment>> = BTreeMap::new();
     for subj in &study.subjects {
         for sess in &subj.sessions {
-            for (eye, p) in &sess.segments {
-                let segs = load_segments(p, *eye, &mut Findings::new()).unwrap_or_default();
+            for (eye, segs) in &sess.vessels {
                 segments.insert(
                     (subj.id.clone(), sess.id.clone(), eye.as_str().to_string()),
-                    segs,
+                    segs.clone(),
                 );
             }
         }
@@ -560,6 +628,13 @@ pub fn analyse_capture(
 }
 
 impl ImageTables {
+    /// The captures that could not be read or registered.
+    pub fn failed(&self) -> Vec<usize> {
+        (0..self.status.len())
+            .filter(|i| matches!(self.status[*i].status.as_str(), "error" | "not-registered"))
+            .collect()
+    }
+
     pub fn total_positions(&self) -> usize {
         self.position_counts.iter().sum()
     }
@@ -660,7 +735,7 @@ impl ImageTables {
 }
 
 /// This stage's part of the report's methods text.
-pub fn describe(study: &Study) -> String {
+fn describe(study: &Study) -> String {
     let s = profile_settings(study);
     format!(
         "Captures were read as multi-page TIFF files (one page per band) and registered to the eye's earliest capture by a rigid transform (translation and rotation; phase correlation followed by normalised cross-correlation with sub-pixel interpolation in the band nearest 570 nm); captures with a match score below {MIN_REGISTRATION_SCORE} were flagged as not registered and not analysed. Along each vessel segment, intensity profiles were sampled across the vessel every {:.0} px by bilinear interpolation; a quadratic background was fitted to the outer parts of each profile and an absorbing-cylinder profile to the vessel, giving its centre, width (diameter at {:.1} µm per pixel) and fit residual. Transmission in each band was the intensity on the vessel's centre line divided by the background beneath it. Positions were flagged (off the image, contrast below {:.2}, residual too large, within {:.0} px of another segment) and flagged positions were not used.",

@@ -1,9 +1,7 @@
 //! Command-line tests: the real binary on real files in a temporary folder,
 //! checking exit status and the exact messages a researcher sees.
 
-mod common;
-
-use common::*;
+use crate::common::*;
 
 #[test]
 fn every_ready_protocol_parses_and_plans() {

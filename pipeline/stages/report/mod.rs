@@ -18,16 +18,91 @@ use std::path::{Path, PathBuf};
 
 use anyhow::Result;
 
+use super::epochs::{EpochTables, Epochs};
+use super::fits::{FitRow, Fits};
+use super::images::{ImageTables, Images, PositionRow};
+use super::stage::{Run, Stage};
+use super::statistics::{StatisticsStage, StatisticsTables};
 use crate::config::study::Study;
-use crate::run::epochs::EpochTables;
-use crate::run::fits::FitRow;
-use crate::run::statistics::Statistics;
-use crate::run::transmissions::ImageTables;
+use crate::runner::Runner;
+use crate::runner::key::{Key, KeyBuilder, combine};
 use crate::tables::write_bytes_atomic;
 use tables::{ReportTable, html_escape};
 
-/// Version of the report's layout; bump when its output changes.
-pub const VERSION: u32 = 3;
+/// The report stage.
+pub struct Report;
+
+impl Stage for Report {
+    const NAME: &'static str = "report";
+    /// Version of the report's layout; bump when its output changes.
+    const VERSION: u32 = 3;
+    const SUMMARY: &'static str = "the paper's tables and figures, report.html and report.md";
+    const UPSTREAM: &'static [&'static str] = &["epochs", "images", "fits", "statistics"];
+    type Output = ();
+
+    fn settings(study: &Study) -> Key {
+        let mut k = KeyBuilder::new("report-settings", Self::VERSION);
+        k.value("study", study);
+        k.finish()
+    }
+
+    /// Every input file: the report lists them with their hashes.
+    fn inputs(run: &Run) -> Key {
+        combine("inputs", run.inputs.iter().map(|(p, _)| run.hash(p)))
+    }
+
+    fn build(run: &Run, _: &Runner) -> Result<((), String)> {
+        Ok((
+            (),
+            format!(
+                "`{}`",
+                run.out().join("report").join("report.html").display()
+            ),
+        ))
+    }
+
+    fn write(_: &(), run: &Run, runner: &Runner) -> Result<Vec<PathBuf>> {
+        let study = run.study;
+        let rel = |p: &Path| {
+            p.strip_prefix(&study.root)
+                .unwrap_or(p)
+                .to_string_lossy()
+                .replace('\\', "/")
+        };
+        let inputs = Inputs {
+            study,
+            epochs: run.output::<Epochs>(),
+            images: run.output::<Images>(),
+            fits: run.output::<Fits>(),
+            stats: run.output::<StatisticsStage>(),
+            methods: &run.methods,
+            files: run
+                .inputs
+                .iter()
+                .map(|(p, h)| {
+                    (
+                        rel(p),
+                        h.map(|x| x.0.hex()).unwrap_or_else(|| "unreadable".into()),
+                    )
+                })
+                .collect(),
+        };
+        let images = run.output::<Images>();
+        write(
+            &inputs,
+            &|i| images.positions(runner, i).unwrap_or_default(),
+            run.out(),
+        )
+    }
+
+    fn describe(_: &Run) -> Option<String> {
+        Some(format!(
+            "All analyses were run with satstep {} (cache format {}); the same inputs give the same tables and figures byte for byte, whatever the number of worker threads.",
+            env!("CARGO_PKG_VERSION"),
+            crate::runner::key::CACHE_FORMAT
+        ))
+    }
+}
 
 /// The cautions every report carries.
 pub const CAUTIONS: &[&str] = &[
@@ -56,31 +131,18 @@ pub struct Inputs<'a> {
     pub epochs: &'a EpochTables,
     pub images: &'a ImageTables,
     pub fits: &'a [FitRow],
-    pub stats: &'a Statistics,
+    pub stats: &'a StatisticsTables,
+    /// The methods text, one paragraph per stage in the stages' order.
+    pub methods: &'a [String],
     /// (path relative to the study folder, SHA-256) of every input file.
     pub files: Vec<(String, String)>,
 }
 
-/// The methods text: each stage's description, in order.
-pub fn methods_text(study: &Study, stats: Option<&Statistics>) -> Vec<String> {
-    vec![
-        crate::run::epochs::describe(study),
-        crate::run::transmissions::describe(study),
-        crate::run::fits::describe(study),
-        crate::run::statistics::describe(study, stats),
-        format!(
-            "All analyses were run with satstep {} (cache format {}); the same inputs give the same tables and figures byte for byte, whatever the number of worker threads.",
-            env!("CARGO_PKG_VERSION"),
-            crate::stages::key::CACHE_FORMAT
-        ),
-    ]
-}
-
 /// Writes the report; returns every file written.
 /// `positions` reads one capture's profile positions (from the image stage's cache).
-pub fn write(
+fn write(
     inp: &Inputs,
-    positions: &dyn Fn(usize) -> Vec<crate::run::transmissions::PositionRow>,
+    positions: &dyn Fn(usize) -> Vec<PositionRow>,
     out: &Path,
 ) -> Result<Vec<PathBuf>> {
     let dir = out.join("report");
@@ -256,7 +318,7 @@ impl Document<'_> {
         }
         h.push_str(&format!(
             "<pre>{}</pre>\n",
-            html_escape(&crate::run::render_timeline(&s.protocol))
+            html_escape(&crate::timeline::show::render_timeline(&s.protocol))
         ));
         h.push_str("<h2 id=\"results\">Results</h2>\n");
         h.push_str(&format!(
@@ -275,8 +337,8 @@ impl Document<'_> {
             ));
         }
         h.push_str("<h2 id=\"methods\">Methods</h2>\n");
-        for p in methods_text(s, Some(self.inp.stats)) {
-            h.push_str(&format!("<p>{}</p>\n", html_escape(&p)));
+        for p in self.inp.methods {
+            h.push_str(&format!("<p>{}</p>\n", html_escape(p)));
         }
         h.push_str("<h3>References</h3>\n<ol>\n");
         for r in REFERENCES {
@@ -300,7 +362,7 @@ impl Document<'_> {
         h.push_str(&format!(
             "<p>satstep {} · cache format {} · study file <code>{}</code></p>\n",
             env!("CARGO_PKG_VERSION"),
-            crate::stages::key::CACHE_FORMAT,
+            crate::runner::key::CACHE_FORMAT,
             html_escape(&self.rel(&s.file))
         ));
         h.push_str("<p>Per-stage keys, timings and counts are in <code>manifest.json</code> beside this folder.</p>\n<details><summary>Input files and their SHA-256</summary>\n<table><tbody>\n");
@@ -340,7 +402,7 @@ impl Document<'_> {
         }
         m.push_str(&format!(
             "```\n{}```\n\n## Results\n\nFigures of a single method show `{}`.\n\n",
-            crate::run::render_timeline(&s.protocol),
+            crate::timeline::show::render_timeline(&s.protocol),
             self.primary
         ));
         for t in self.results {
@@ -353,7 +415,7 @@ impl Document<'_> {
             ));
         }
         m.push_str("## Methods\n\n");
-        for p in methods_text(s, Some(self.inp.stats)) {
+        for p in self.inp.methods {
             m.push_str(&format!("{p}\n\n"));
         }
         m.push_str("### References\n\n");
@@ -371,7 +433,7 @@ impl Document<'_> {
         for f in &fails {
             m.push_str(&format!("- {f}\n"));
         }
-        m.push_str(&format!("\n## Provenance\n\nsatstep {} · cache format {} · study file `{}`\n\nPer-stage keys, timings and counts are in `manifest.json` beside this folder.\n", env!("CARGO_PKG_VERSION"), crate::stages::key::CACHE_FORMAT, self.rel(&s.file)));
+        m.push_str(&format!("\n## Provenance\n\nsatstep {} · cache format {} · study file `{}`\n\nPer-stage keys, timings and counts are in `manifest.json` beside this folder.\n", env!("CARGO_PKG_VERSION"), crate::runner::key::CACHE_FORMAT, self.rel(&s.file)));
         m.push_str("\n| input file | SHA-256 |\n|---|---|\n");
         for (p, k) in &self.inp.files {
             m.push_str(&format!("| `{p}` | `{k}` |\n"));

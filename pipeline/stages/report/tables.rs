@@ -8,10 +8,10 @@ use std::path::{Path, PathBuf};
 use anyhow::Result;
 
 use crate::config::study::{Adjustment, Study};
-use crate::run::epochs::EpochTables;
-use crate::run::fits::FitRow;
-use crate::run::statistics::Statistics;
-use crate::run::transmissions::ImageTables;
+use crate::stages::epochs::EpochTables;
+use crate::stages::fits::FitRow;
+use crate::stages::images::ImageTables;
+use crate::stages::statistics::StatisticsTables;
 use crate::stats::infer::format_p;
 use crate::tables::write_bytes_atomic;
 
@@ -306,7 +306,7 @@ pub fn accounting(
 }
 
 /// Mean ± SD over subjects of the subjects' epoch means, per method and epoch.
-pub fn so2_by_epoch(study: &Study, stats: &Statistics) -> ReportTable {
+pub fn so2_by_epoch(study: &Study, stats: &StatisticsTables) -> ReportTable {
     let mut t = ReportTable::new(
         "so2_by_epoch",
         "SO2 (%) by epoch: mean ± SD over subjects of each subject's mean of steady captures; arteriovenous = arteriolar − venular per capture",
@@ -358,7 +358,7 @@ pub fn so2_by_epoch(study: &Study, stats: &Statistics) -> ReportTable {
     t
 }
 
-pub fn contrasts(study: &Study, stats: &Statistics) -> ReportTable {
+pub fn contrasts(study: &Study, stats: &StatisticsTables) -> ReportTable {
     let level = format!("{:.0} % CI", study.statistics.confidence * 100.0);
     let adj = match study.statistics.adjustment {
         Adjustment::Holm => "p (Holm)",
@@ -400,7 +400,7 @@ pub fn contrasts(study: &Study, stats: &Statistics) -> ReportTable {
     t
 }
 
-pub fn variance_components(stats: &Statistics) -> ReportTable {
+pub fn variance_components(stats: &StatisticsTables) -> ReportTable {
     let mut t = ReportTable::new(
         "variance_components",
         "Variance components of the epoch models (SO2 points): the SD of each random effect and of the residual, with the number of levels (observations for the residual); `subject:epoch=E` is the subject-specific deviation in epoch E; a component on the boundary is estimated as zero",
@@ -427,7 +427,7 @@ pub fn variance_components(stats: &Statistics) -> ReportTable {
     t
 }
 
-pub fn agreement(study: &Study, stats: &Statistics) -> ReportTable {
+pub fn agreement(study: &Study, stats: &StatisticsTables) -> ReportTable {
     let level = format!("slope {:.0} % CI", study.statistics.confidence * 100.0);
     let mut t = ReportTable::new(
         "agreement",
@@ -479,7 +479,7 @@ pub fn agreement(study: &Study, stats: &Statistics) -> ReportTable {
     t
 }
 
-pub fn method_comparison(stats: &Statistics) -> ReportTable {
+pub fn method_comparison(stats: &StatisticsTables) -> ReportTable {
     let mut t = ReportTable::new(
         "method_comparison",
         "Method comparison on the same cohort: repeatability, uncertainty, spread along segments, values outside 0–100 %, response to the SpO2 change, and agreement between methods, each with the unit it is computed over",

@@ -2,12 +2,10 @@
 //! results whatever `--jobs`, an interrupted run resumed, corrupt cache
 //! entries recomputed. Uses a simulated study of 33 captures.
 
-mod common;
-
 use std::path::{Path, PathBuf};
 use std::time::{Duration, Instant};
 
-use common::*;
+use crate::common::*;
 
 /// Everything but the cache and the manifests (which hold times).
 const VOLATILE: &[&str] = &["cache", "manifest"];

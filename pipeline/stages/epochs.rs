@@ -7,12 +7,14 @@ use std::path::{Path, PathBuf};
 
 use anyhow::Result;
 
-use crate::config::diag::Findings;
+use super::stage::{Run, Stage};
 use crate::config::study::Study;
+use crate::config::time::seconds_between;
+use crate::runner::Runner;
+use crate::runner::key::{Key, KeyBuilder, combine};
 use crate::tables::Table;
 use crate::timeline::assign::{CaptureStatus, assign, session_spans};
-use crate::timeline::reference::{ReferenceStatus, read_log, reference_at};
-use crate::timeline::time::seconds_between;
+use crate::timeline::reference::{ReferenceStatus, reference_at};
 
 /// One row of the capture table.
 #[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
@@ -54,11 +56,63 @@ pub struct EpochTables {
     pub spans: Vec<SpanRow>,
 }
 
-/// Version of this stage's computation; bump when its results change.
-pub const VERSION: u32 = 1;
+/// The epochs stage.
+pub struct Epochs;
 
-/// Assigns every capture. Log problems were already reported by the check;
-/// a session whose log cannot be read gets `missing` references.
+impl Stage for Epochs {
+    const NAME: &'static str = "epochs";
+    const VERSION: u32 = 1;
+    const SUMMARY: &'static str = "each capture's gas epoch, status and reference SpO2";
+    const UPSTREAM: &'static [&'static str] = &[];
+    type Output = EpochTables;
+
+    fn settings(study: &Study) -> Key {
+        let mut k = KeyBuilder::new("epochs-settings", Self::VERSION);
+        // Only the exclusions of whole captures and subjects: the minimum
+        // diameter acts on segment values in the statistics stage.
+        k.value("protocol", &study.protocol)
+            .value("subjects", &study.subjects)
+            .value("excluded-subjects", &study.exclusions.subjects)
+            .value("excluded-captures", &study.exclusions.captures);
+        k.finish()
+    }
+
+    fn inputs(run: &Run) -> Key {
+        combine(
+            "spo2-logs",
+            run.study
+                .subjects
+                .iter()
+                .flat_map(|s| &s.sessions)
+                .filter_map(|s| s.reference.as_ref())
+                .map(|r| run.hash(&r.path)),
+        )
+    }
+
+    fn build(run: &Run, _: &Runner) -> Result<(EpochTables, String)> {
+        let t = build(run.study);
+        let d = format!(
+            "{} captures: {} steady, {} settling, {} outside the protocol, {} excluded",
+            t.captures.len(),
+            t.count(CaptureStatus::Steady),
+            t.count(CaptureStatus::Settling),
+            t.count(CaptureStatus::Outside),
+            t.captures.iter().filter(|c| c.status == "excluded").count()
+        );
+        Ok((t, d))
+    }
+
+    fn write(t: &EpochTables, run: &Run, _: &Runner) -> Result<Vec<PathBuf>> {
+        t.write(run.out())
+    }
+
+    fn describe(run: &Run) -> Option<String> {
+        Some(describe(run.study))
+    }
+}
+
+/// Assigns every capture, with its reference SpO2 from the session's log
+/// as read with the study (a session without a log gets `missing`).
 pub fn build(study: &Study) -> EpochTables {
     let mut captures = Vec::new();
     let mut spans_out = Vec::new();
@@ -82,10 +136,7 @@ pub fn build(study: &Study) -> EpochTables {
                     o2_fraction: p.epochs[s.epoch].gas.o2_fraction,
                 });
             }
-            let log = sess
-                .reference
-                .as_ref()
-                .and_then(|l| read_log(l, &sess.start, &mut Findings::new()));
+            let log = sess.spo2.as_ref();
             let mut caps: Vec<_> = sess.captures.iter().collect();
             caps.sort_by(|a, b| a.time.cmp(&b.time).then(a.listed.cmp(&b.listed)));
             for c in caps {
@@ -101,7 +152,7 @@ pub fn build(study: &Study) -> EpochTables {
                         .find(|(f, _)| *f == c.listed)
                         .map(|(_, r)| r.clone())
                 };
-                let r = log.as_ref().map(|l| reference_at(l, t, &p.reference));
+                let r = log.map(|l| reference_at(l, t, &p.reference));
                 captures.push(CaptureRow {
                     subject: subj.id.clone(),
                     session: sess.id.clone(),
@@ -181,7 +232,7 @@ impl EpochTables {
 }
 
 /// This stage's part of the report's methods text.
-pub fn describe(study: &Study) -> String {
+fn describe(study: &Study) -> String {
     let p = &study.protocol;
     let r = &p.reference;
     format!(

@@ -10,11 +10,11 @@ use std::path::Path;
 
 use anyhow::{Context, Result};
 
-use crate::cli::Exit;
-use crate::cli::printer::Printer;
+use crate::commands::Exit;
 use crate::config::diag::Findings;
 use crate::config::read::Reader;
 use crate::config::study::Instrument;
+use crate::console::Printer;
 use crate::oximetry::sensitivity::{OperatingPoint, Unknowns, Weights};
 use crate::tables::Table;
 
@@ -119,7 +119,9 @@ pub fn sensitivity(
         ));
         return Ok(Exit::Problem);
     }
-    let Some(curves) = crate::report::data::sensitivity_curves(&inst, &chosen, op, unknowns) else {
+    let Some(curves) =
+        crate::stages::report::data::sensitivity_curves(&inst, &chosen, op, unknowns)
+    else {
         printer.error("the model cannot be linearised at some veil between 0 and 0.9: the bands do not separate the unknowns");
         return Ok(Exit::Problem);
     };
@@ -149,7 +151,7 @@ pub fn sensitivity(
         .opt_real("centre_nm", tc)
         .real("so2_error_points", te);
     t.write(out, "sensitivity")?;
-    crate::report::figures::sensitivity(out, &curves)?;
+    crate::stages::report::figures::sensitivity(out, &curves)?;
 
     let mut s = format!(
         "SO2 error (points) for a 1 % transmission error, `{}`, at SO2 {:.0} %, diameter {:.0} µm, hemoglobin {:.0} g/L, double-pass fraction {:.2}\n",

@@ -1,11 +1,9 @@
 //! The simulator writes studies that the rest of the program accepts, with
 //! the same bytes whatever the thread count.
 
-mod common;
-
 use std::collections::BTreeMap;
 
-use common::*;
+use crate::common::*;
 use satstep::oximetry::odr::within_group_slope;
 
 #[test]

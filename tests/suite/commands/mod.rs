@@ -1,0 +1,3 @@
+//! The program as a user runs it.
+
+mod cli;

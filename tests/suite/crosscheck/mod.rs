@@ -1,0 +1,4 @@
+//! Agreement with reference software, and calibration on whole studies.
+
+mod calibration;
+mod lme4;
