@@ -2,6 +2,10 @@
 //! bands) and single-position fits per second, on one core and on all
 //! cores. Run with `cargo bench --bench engine`.
 
+// A benchmark reports on stdout.
+#![allow(clippy::print_stdout)]
+
+use satstep::oximetry::model::BLOOD_BACKSCATTER;
 use std::time::Instant;
 
 use rand::SeedableRng;
@@ -48,7 +52,7 @@ fn main() {
         .iter()
         .map(|c| SampledBand::gaussian(*c, 8.0))
         .collect();
-    let model = VesselModel::new(&bands, |_| 1.0, 0.04);
+    let model = VesselModel::new(&bands, |_| 1.0, BLOOD_BACKSCATTER);
     let settings = FitSettings::default();
     let segments: Vec<SegmentSpectra> = (0..24).map(|s| segment(&model, s, 200)).collect();
     let cores = std::thread::available_parallelism()

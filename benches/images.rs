@@ -5,6 +5,10 @@
 //! rendered first with the simulator (not timed). Run with
 //! `cargo bench --bench images`.
 
+// A benchmark reports on stdout.
+#![allow(clippy::print_stdout)]
+
+use satstep::oximetry::model::BLOOD_BACKSCATTER;
 use std::time::Instant;
 
 use rand::SeedableRng;
@@ -72,7 +76,7 @@ fn main() {
         pigmentation: 2.0,
         veil: 0.2,
         hb_g_per_l: 150.0,
-        backscatter: 0.04,
+        backscatter: BLOOD_BACKSCATTER,
         well_electrons: 20_000.0,
         read_noise_electrons: 6.0,
     };
@@ -163,7 +167,9 @@ fn main() {
         let dt = t0.elapsed().as_secs_f64();
         let positions: usize = results.iter().map(|r| r.1.len()).sum();
         assert!(
-            results.iter().all(|r| r.0.status == "ok"),
+            results
+                .iter()
+                .all(|r| r.0.status == satstep::stages::images::ImageOutcome::Ok),
             "{:?}",
             results[0].0
         );

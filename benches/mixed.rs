@@ -2,6 +2,9 @@
 //! (subject, subject:eye, subject:eye:vessel), and the same data fitted by
 //! lme4 when R is installed. Run with `cargo bench --bench mixed`.
 
+// A benchmark reports on stdout.
+#![allow(clippy::print_stdout)]
+
 use std::process::Command;
 use std::time::Instant;
 

@@ -105,9 +105,12 @@ pub fn mixed(a: &MixedArgs, printer: &Printer) -> Result<Exit> {
         design.data,
         if a.ml { Criterion::Ml } else { Criterion::Reml },
     );
-    let Some(fit) = model.fit() else {
-        printer.error("the model could not be fitted: the fixed effects are not estimable (check for empty or collinear columns)");
-        return Ok(Exit::Problem);
+    let fit = match model.fit() {
+        Ok(f) => f,
+        Err(e) => {
+            printer.error(format!("the model could not be fitted: {e}"));
+            return Ok(Exit::Problem);
+        }
     };
     let p = fit.beta.len();
     let fixed: Vec<Test> = (0..p)

@@ -2,15 +2,17 @@
 //! `2.5min`. A bare number is refused, because "5" could mean seconds or
 //! minutes and a wrong guess would silently shift every epoch.
 
+use super::ValueError;
+
 /// Parses a duration into seconds. Parts go from larger to smaller units
 /// (`1h30min`, not `30min1h`); each unit at most once.
-pub fn parse_seconds(text: &str) -> Result<f64, String> {
+pub fn parse_seconds(text: &str) -> Result<f64, ValueError> {
     let t = text.trim();
     if t.is_empty() {
-        return Err("the duration is empty".into());
+        return Err(ValueError("the duration is empty".into()));
     }
     if t.parse::<f64>().is_ok() {
-        return Err(format!("`{t}` has no unit"));
+        return Err(ValueError(format!("`{t}` has no unit")));
     }
     const UNITS: [(&str, f64); 3] = [("h", 3600.0), ("min", 60.0), ("s", 1.0)];
     let mut rest = t;
@@ -21,11 +23,11 @@ pub fn parse_seconds(text: &str) -> Result<f64, String> {
             .find(|c: char| !(c.is_ascii_digit() || c == '.'))
             .unwrap_or(rest.len());
         if num_len == 0 {
-            return Err(format!("`{t}` is not a duration"));
+            return Err(ValueError(format!("`{t}` is not a duration")));
         }
         let value: f64 = rest[..num_len]
             .parse()
-            .map_err(|_| format!("`{}` is not a number", &rest[..num_len]))?;
+            .map_err(|_| ValueError(format!("`{}` is not a number", &rest[..num_len])))?;
         rest = &rest[num_len..];
         let Some((rank, (unit, factor))) = UNITS.iter().enumerate().find(|(_, (u, _))| {
             rest.starts_with(u) && !rest[u.len()..].starts_with(|c: char| c.is_ascii_alphabetic())
@@ -34,16 +36,16 @@ pub fn parse_seconds(text: &str) -> Result<f64, String> {
                 .chars()
                 .take_while(|c| c.is_ascii_alphabetic())
                 .collect();
-            return Err(if unit.is_empty() {
+            return Err(ValueError(if unit.is_empty() {
                 format!("`{t}` has a number without a unit")
             } else {
                 format!("unknown unit `{unit}` in `{t}`")
-            });
+            }));
         };
         if last_rank.is_some_and(|r| rank <= r) {
-            return Err(format!(
+            return Err(ValueError(format!(
                 "`{t}`: write the parts from hours down to seconds, each once"
-            ));
+            )));
         }
         last_rank = Some(rank);
         total += value * factor;
@@ -93,24 +95,34 @@ mod tests {
 
     #[test]
     fn refuses_ambiguous_or_malformed_forms() {
-        assert_eq!(parse_seconds("5"), Err("`5` has no unit".to_string()));
+        assert_eq!(
+            parse_seconds("5"),
+            Err(ValueError("`5` has no unit".to_string()))
+        );
         assert_eq!(
             parse_seconds("5 minutes"),
-            Err("`5 minutes` has a number without a unit".to_string())
+            Err(ValueError(
+                "`5 minutes` has a number without a unit".to_string()
+            ))
         );
         assert_eq!(
             parse_seconds("5m"),
-            Err("unknown unit `m` in `5m`".to_string())
+            Err(ValueError("unknown unit `m` in `5m`".to_string()))
         );
         assert_eq!(
             parse_seconds("30min1h"),
-            Err("`30min1h`: write the parts from hours down to seconds, each once".to_string())
+            Err(ValueError(
+                "`30min1h`: write the parts from hours down to seconds, each once".to_string()
+            ))
         );
         assert_eq!(
             parse_seconds("min"),
-            Err("`min` is not a duration".to_string())
+            Err(ValueError("`min` is not a duration".to_string()))
         );
-        assert_eq!(parse_seconds(""), Err("the duration is empty".to_string()));
+        assert_eq!(
+            parse_seconds(""),
+            Err(ValueError("the duration is empty".to_string()))
+        );
         assert!(parse_seconds("-5min").is_err());
         assert!(parse_seconds("1.2.3s").is_err());
     }

@@ -2,6 +2,7 @@
 //! they name. Everything is validated into domain types with all findings
 //! collected and positioned (`file:line:column`).
 
+pub mod contrast;
 pub mod csvfile;
 pub mod diag;
 pub mod duration;
@@ -14,3 +15,10 @@ pub mod spo2log;
 pub mod study;
 pub mod time;
 pub mod yaml;
+
+/// Why one written value (a duration, a date-time) could not be read. The
+/// reader places it in the file as a finding; the text says what is wrong
+/// with the value as written.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+#[error("{0}")]
+pub struct ValueError(pub String);

@@ -16,6 +16,7 @@
 
 use std::path::Path;
 
+use super::contrast::{ContrastError, parse_terms};
 use super::diag::{Findings, Mark};
 use super::read::Reader;
 use super::yaml::Node;
@@ -261,7 +262,7 @@ pub fn read_protocol(r: &mut Reader, node: &Node) -> Option<Protocol> {
                 };
                 match parse_contrast(&text, &names) {
                     Ok(c) => contrasts.push(c),
-                    Err(ContrastError::UnknownEpoch(e)) => {
+                    Err(ContrastError::Unknown(e)) => {
                         let hint = super::diag::suggest(&e, &names);
                         r.error(
                             item.mark,
@@ -462,57 +463,17 @@ fn read_reference(r: &mut Reader, node: &Node) -> Option<ReferenceSettings> {
     })
 }
 
-#[derive(Debug, PartialEq)]
-pub enum ContrastError {
-    UnknownEpoch(String),
-    Syntax(String),
-}
-
-/// Parses `a - b`, `0.5*a + 0.5*b - c`; weights must sum to zero so that the
-/// contrast compares epochs rather than measuring a level.
+/// Parses `a - b`, `0.5*a + 0.5*b - c` (see [`super::contrast`]) over the
+/// epochs; weights must sum to zero so that the contrast compares epochs
+/// rather than measuring a level.
 pub fn parse_contrast(text: &str, epochs: &[&str]) -> Result<Contrast, ContrastError> {
-    let tokens: Vec<&str> = text.split_whitespace().collect();
-    if tokens.is_empty() {
-        return Err(ContrastError::Syntax("it is empty".into()));
-    }
     let mut weights: Vec<(usize, f64)> = Vec::new();
-    let mut sign = 1.0;
-    let mut expect_term = true;
-    for tok in tokens {
-        if expect_term {
-            let (coef, name) = match tok.split_once('*') {
-                Some((c, n)) => {
-                    let c: f64 = c
-                        .parse()
-                        .map_err(|_| ContrastError::Syntax(format!("`{c}` is not a number")))?;
-                    (c, n)
-                }
-                None => (1.0, tok),
-            };
-            let idx = epochs
-                .iter()
-                .position(|e| *e == name)
-                .ok_or_else(|| ContrastError::UnknownEpoch(name.to_string()))?;
-            match weights.iter_mut().find(|(i, _)| *i == idx) {
-                Some((_, w)) => *w += sign * coef,
-                None => weights.push((idx, sign * coef)),
-            }
-            expect_term = false;
-        } else {
-            sign = match tok {
-                "+" => 1.0,
-                "-" => -1.0,
-                _ => {
-                    return Err(ContrastError::Syntax(format!(
-                        "expected `+` or `-` before `{tok}`"
-                    )));
-                }
-            };
-            expect_term = true;
-        }
-    }
-    if expect_term {
-        return Err(ContrastError::Syntax("it ends with an operator".into()));
+    for (name, w) in parse_terms(text)? {
+        let idx = epochs
+            .iter()
+            .position(|e| *e == name)
+            .ok_or(ContrastError::Unknown(name))?;
+        weights.push((idx, w));
     }
     weights.retain(|(_, w)| *w != 0.0);
     let sum: f64 = weights.iter().map(|(_, w)| w).sum();
@@ -540,7 +501,7 @@ mod tests {
         assert_eq!(c.weights, vec![(1, 0.5), (2, 0.5), (0, -1.0)]);
         assert_eq!(
             parse_contrast("low-15 - hyper", &e),
-            Err(ContrastError::UnknownEpoch("hyper".into()))
+            Err(ContrastError::Unknown("hyper".into()))
         );
         assert!(matches!(
             parse_contrast("low-15", &e),

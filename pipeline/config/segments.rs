@@ -17,10 +17,19 @@ use super::diag::Findings;
 use super::eye::Eye;
 use super::read::Reader;
 
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord, serde::Serialize)]
+#[derive(
+    Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord, serde::Serialize, serde::Deserialize,
+)]
+#[serde(rename_all = "kebab-case")]
 pub enum VesselKind {
     Arteriole,
     Venule,
+}
+
+impl std::fmt::Display for VesselKind {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(self.as_str())
+    }
 }
 
 impl VesselKind {
@@ -47,15 +56,6 @@ pub struct Segment {
     /// (x, y) in pixels, x to the right, y down.
     pub points: Vec<(f64, f64)>,
     pub notes: String,
-}
-
-impl Segment {
-    pub fn length_px(&self) -> f64 {
-        self.points
-            .windows(2)
-            .map(|w| ((w[1].0 - w[0].0).powi(2) + (w[1].1 - w[0].1).powi(2)).sqrt())
-            .sum()
-    }
 }
 
 const FILE_KEYS: &[&str] = &["eye", "segments"];

@@ -20,12 +20,13 @@ use std::path::{Path, PathBuf};
 
 use super::csvfile::read_table;
 use super::diag::{Findings, Mark};
+use super::segments::VesselKind;
 
 /// One vessel position of one capture.
 #[derive(Debug, Clone, PartialEq)]
 pub struct SpectraPosition {
     pub vessel: String,
-    pub kind: String,
+    pub kind: VesselKind,
     pub position: usize,
     /// In the instrument's band order.
     pub transmission: Vec<f64>,
@@ -85,7 +86,7 @@ pub fn read_spectra(
     let c_d = t.header.iter().position(|h| h == "diameter_um");
     let before = findings.error_count();
     // (subject, capture, vessel, position) → (kind, per-band T, diameter, first line).
-    type Acc = (String, Vec<Option<f64>>, f64, usize);
+    type Acc = (VesselKind, Vec<Option<f64>>, f64, usize);
     let mut acc: BTreeMap<(String, String, String, usize), Acc> = BTreeMap::new();
     for row in &t.rows {
         let get = |c: usize| row.field(c).filter(|(s, _)| !s.trim().is_empty());
@@ -110,7 +111,7 @@ pub fn read_spectra(
         ) else {
             continue;
         };
-        if !matches!(kind.0.trim(), "arteriole" | "venule") {
+        let Some(vessel_kind) = VesselKind::from_name(kind.0.trim()) else {
             findings.error(
                 path,
                 Some(kind.1),
@@ -120,7 +121,7 @@ pub fn read_spectra(
                 ),
             );
             continue;
-        }
+        };
         let Ok(position) = pos.0.trim().parse::<usize>() else {
             findings
                 .error(
@@ -186,15 +187,8 @@ pub fn read_spectra(
                 ves.0.trim().to_string(),
                 position,
             ))
-            .or_insert_with(|| {
-                (
-                    kind.0.trim().to_string(),
-                    vec![None; bands.len()],
-                    diameter,
-                    row.line,
-                )
-            });
-        if e.0 != kind.0.trim() {
+            .or_insert_with(|| (vessel_kind, vec![None; bands.len()], diameter, row.line));
+        if e.0 != vessel_kind {
             findings.error(
                 path,
                 Some(kind.1),

@@ -4,9 +4,11 @@
 
 use chrono::{DateTime, FixedOffset, NaiveDateTime};
 
+use super::ValueError;
+
 /// Parses an ISO 8601 / RFC 3339 date-time with a UTC offset (`Z` allowed),
 /// with `T` or a space between date and time and optional fractional seconds.
-pub fn parse_time(text: &str) -> Result<DateTime<FixedOffset>, String> {
+pub fn parse_time(text: &str) -> Result<DateTime<FixedOffset>, ValueError> {
     let t = text.trim();
     let normalised = if t.len() > 10 && t.as_bytes()[10] == b' ' {
         let mut s = t.to_string();
@@ -23,9 +25,9 @@ pub fn parse_time(text: &str) -> Result<DateTime<FixedOffset>, String> {
         return Ok(v);
     }
     if NaiveDateTime::parse_from_str(&normalised, "%Y-%m-%dT%H:%M:%S%.f").is_ok() {
-        return Err(format!("`{t}` has no UTC offset"));
+        return Err(ValueError(format!("`{t}` has no UTC offset")));
     }
-    Err(format!("`{t}` is not a date-time"))
+    Err(ValueError(format!("`{t}` is not a date-time")))
 }
 
 /// Seconds from `a` to `b` (positive when `b` is later), to the microsecond.
@@ -37,6 +39,8 @@ pub fn seconds_between(a: &DateTime<FixedOffset>, b: &DateTime<FixedOffset>) -> 
 }
 
 #[cfg(test)]
+// Values here are exact by construction (sums of binary fractions, integers).
+#[allow(clippy::float_cmp)]
 mod tests {
     use super::*;
 
@@ -53,11 +57,11 @@ mod tests {
     fn refuses_times_without_offset() {
         assert_eq!(
             parse_time("2026-03-04T09:15:00"),
-            Err("`2026-03-04T09:15:00` has no UTC offset".into())
+            Err(ValueError("`2026-03-04T09:15:00` has no UTC offset".into()))
         );
         assert_eq!(
             parse_time("yesterday"),
-            Err("`yesterday` is not a date-time".into())
+            Err(ValueError("`yesterday` is not a date-time".into()))
         );
     }
 }

@@ -1,9 +1,9 @@
 //! The one place that knows YAML. Files are read into a small tree whose
 //! every node remembers its `line:column`, so that validation can point at
 //! the exact spot of each mistake and report all of them at once (a serde
-//! deserializer stops at the first error and forgets positions). Writing
-//! (the resolved configuration in a run's manifest) goes through serde_yaml.
-//! Swapping the YAML library means changing this file only.
+//! deserializer stops at the first error and forgets positions). satstep
+//! writes no YAML of its own (the manifest's resolved study is JSON; the
+//! simulator writes its few YAML files as text). Swapping the YAML library means changing this file only.
 
 use std::path::Path;
 
@@ -230,12 +230,6 @@ pub fn parse(file: &Path, text: &str) -> Result<Node, Vec<Finding>> {
         value: Value::Null,
         mark: Mark::new(1, 1),
     }))
-}
-
-/// Renders any serializable value as YAML text (used for the resolved
-/// configuration written beside a run's outputs).
-pub fn to_yaml_string<T: serde::Serialize>(value: &T) -> Result<String, serde_yaml::Error> {
-    serde_yaml::to_string(value)
 }
 
 #[cfg(test)]

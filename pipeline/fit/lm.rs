@@ -9,7 +9,7 @@
 //! actually taken is the projected one.
 
 /// Why a fit stopped.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 pub enum Termination {
     /// The scaled gradient (cosine between residuals and Jacobian columns) is below `gtol`.
     SmallGradient,

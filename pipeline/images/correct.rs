@@ -59,14 +59,16 @@ impl Corrections {
     }
 
     /// Corrects `img` in place; returns the band offsets used (px).
-    pub fn apply(&self, img: &mut Multiband) -> Result<Vec<(f64, f64)>, String> {
+    pub fn apply(&self, img: &mut Multiband) -> Result<Vec<(f64, f64)>, CaptureError> {
         let (w, h) = (img.width, img.height);
         for frame in [&self.dark, &self.flat].into_iter().flatten() {
             if (frame.width, frame.height) != (w, h) {
-                return Err(format!(
-                    "the calibration frames are {}×{} pixels, the capture {w}×{h}",
-                    frame.width, frame.height
-                ));
+                return Err(CaptureError::FrameSize {
+                    frame_w: frame.width,
+                    frame_h: frame.height,
+                    w,
+                    h,
+                });
             }
         }
         for b in 0..img.bands.len() {

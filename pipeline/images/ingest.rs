@@ -24,7 +24,9 @@ impl Multiband {
     }
 }
 
-#[derive(Debug, thiserror::Error, PartialEq)]
+/// Why a capture (or a calibration frame) could not be used: the image
+/// engine's error.
+#[derive(Debug, Clone, thiserror::Error, PartialEq)]
 pub enum CaptureError {
     #[error("cannot open `{path}`: {reason}")]
     Open { path: PathBuf, reason: String },
@@ -65,6 +67,16 @@ pub enum CaptureError {
         w: usize,
         h: usize,
     },
+    #[error("the calibration frames are {frame_w}×{frame_h} pixels, the capture {w}×{h}")]
+    FrameSize {
+        frame_w: usize,
+        frame_h: usize,
+        w: usize,
+        h: usize,
+    },
+    /// A dark or flat frame could not be read.
+    #[error("calibration frames: {0}")]
+    Calibration(Box<CaptureError>),
 }
 
 /// Reads a capture and checks its band count (and its size, when given).

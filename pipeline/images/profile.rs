@@ -51,7 +51,9 @@ impl Default for ProfileSettings {
     }
 }
 
-#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+/// Why a profile position is not used, as the positions table writes it.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "kebab-case")]
 pub enum Flag {
     OffImage,
     LowContrast,
@@ -60,6 +62,15 @@ pub enum Flag {
 }
 
 impl Flag {
+    /// Flags as one cell: `;`-separated, empty for none.
+    pub fn join(flags: &[Flag]) -> String {
+        flags
+            .iter()
+            .map(|f| f.as_str())
+            .collect::<Vec<_>>()
+            .join(";")
+    }
+
     pub fn as_str(&self) -> &'static str {
         match self {
             Flag::OffImage => "off-image",
@@ -369,7 +380,8 @@ pub fn analyse_segment(
             let imin = (0..p.len())
                 .min_by(|i, j| p[*i].total_cmp(&p[*j]))
                 .unwrap_or(0);
-            if q[0] == 0.3 {
+            // The first fit starts from the profile's own depth and width.
+            if fits == 1 {
                 let depth = (1.0 - p[imin]).max(0.01);
                 let inside = p.iter().filter(|v| **v < 1.0 - depth / 2.0).count() as f64 * 0.5;
                 q = [

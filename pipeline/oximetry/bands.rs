@@ -75,18 +75,6 @@ impl SampledBand {
         self.samples.iter().map(|(l, w)| w * f(*l)).sum()
     }
 
-    /// Response-weighted mean of `f(λ)` weighted further by `g(λ)` (e.g. the
-    /// background reflectance): `Σ w g f / Σ w g`.
-    pub fn weighted_average(&self, f: impl Fn(f64) -> f64, g: impl Fn(f64) -> f64) -> f64 {
-        let (mut num, mut den) = (0.0, 0.0);
-        for (l, w) in &self.samples {
-            let gw = w * g(*l);
-            num += gw * f(*l);
-            den += gw;
-        }
-        num / den
-    }
-
     pub fn centroid_nm(&self) -> f64 {
         self.average(|l| l)
     }

@@ -15,8 +15,6 @@ const TABLE: &str = include_str!("data/hb_extinction_prahl.tsv");
 
 /// Molar mass of hemoglobin (tetramer), g/mol.
 pub const HB_MOLAR_MASS_G_PER_MOL: f64 = 64_500.0;
-/// Hemoglobin concentration of whole blood commonly assumed, g/L.
-pub const WHOLE_BLOOD_HB_G_PER_L: f64 = 150.0;
 
 pub const MIN_NM: f64 = 250.0;
 pub const MAX_NM: f64 = 1000.0;
@@ -50,19 +48,6 @@ pub fn extinction(nm: f64) -> Option<(f64, f64)> {
     let (a, b) = (t[i - 1], t[i]);
     let w = (nm - a.0) / (b.0 - a.0);
     Some((a.1 + w * (b.1 - a.1), a.2 + w * (b.2 - a.2)))
-}
-
-/// Molar concentration (mol/L) of hemoglobin at `g_per_l`.
-pub fn molar_concentration(g_per_l: f64) -> f64 {
-    g_per_l / HB_MOLAR_MASS_G_PER_MOL
-}
-
-/// Absorption coefficient mu_a (1/cm, natural log) of blood with `g_per_l`
-/// hemoglobin at saturation `s` (0–1):
-/// `mu_a = ln(10) · c · [s · eps_HbO2 + (1 − s) · eps_Hb]`.
-pub fn absorption_per_cm(nm: f64, s: f64, g_per_l: f64) -> Option<f64> {
-    let (o, d) = extinction(nm)?;
-    Some(std::f64::consts::LN_10 * molar_concentration(g_per_l) * (s * o + (1.0 - s) * d))
 }
 
 /// Wavelengths (nm) in `[lo, hi]` where the two curves cross, by linear

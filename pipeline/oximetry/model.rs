@@ -27,6 +27,11 @@
 use super::bands::SampledBand;
 use super::hemoglobin::{HB_MOLAR_MASS_G_PER_MOL, extinction};
 
+/// The blood backscatter fraction `F_bs` the multiband methods assume and
+/// the simulator renders: a fixed setting of the model, not fitted (see
+/// the model in DEVELOPERS.md).
+pub const BLOOD_BACKSCATTER: f64 = 0.04;
+
 /// One band prepared for evaluation: (weight, eps_HbO2, eps_Hb) per grid point.
 #[derive(Debug, Clone)]
 pub struct PreparedBand {
@@ -147,7 +152,7 @@ mod tests {
             .iter()
             .map(|c| SampledBand::gaussian(*c, 8.0))
             .collect();
-        VesselModel::new(&bands, |_| 1.0, 0.04)
+        VesselModel::new(&bands, |_| 1.0, BLOOD_BACKSCATTER)
     }
 
     proptest! {

@@ -77,7 +77,7 @@ pub struct SegmentFit {
     pub reduced_chi2: f64,
     pub iterations: usize,
     pub evaluations: usize,
-    pub termination: &'static str,
+    pub termination: Termination,
     pub converged: bool,
     /// Positions whose Huber weight fell below 0.5 in some band.
     pub downweighted_positions: usize,
@@ -323,13 +323,26 @@ fn huber_weights(res: &[Vec<f64>], scale: f64, floor: f64) -> Vec<Vec<f64>> {
         .collect()
 }
 
+/// Why a segment could not be fitted at all.
+#[derive(
+    Debug, Clone, Copy, PartialEq, Eq, thiserror::Error, serde::Serialize, serde::Deserialize,
+)]
+pub enum SegmentFitError {
+    #[error("no positions, fewer than 2 bands, or transmissions that do not match the bands")]
+    Shape,
+    #[error("the model is not finite at any starting point")]
+    NoStart,
+    #[error("the fit ended at a non-finite cost")]
+    NonFinite,
+}
+
 /// Fits one segment. Needs at least as many bands as 3 shared unknowns
 /// spread over the positions plus one per position (in practice ≥ 4 bands).
 pub fn fit_segment(
     model: &VesselModel,
     data: &SegmentSpectra,
     settings: &FitSettings,
-) -> Option<SegmentFit> {
+) -> Result<SegmentFit, SegmentFitError> {
     let np = data.diameters_um.len();
     let nb = model.n_bands();
     if np == 0
@@ -337,7 +350,7 @@ pub fn fit_segment(
         || data.transmissions.len() != np
         || data.transmissions.iter().any(|t| t.len() != nb)
     {
-        return None;
+        return Err(SegmentFitError::Shape);
     }
     let opts = Options {
         max_iterations: 300,
@@ -364,11 +377,12 @@ pub fn fit_segment(
         .iter()
         .map(|s| start(*s))
         .filter_map(|x| prob.cost(&x).map(|c| (c, x)))
-        .min_by(|a, b| a.0.total_cmp(&b.0))?
+        .min_by(|a, b| a.0.total_cmp(&b.0))
+        .ok_or(SegmentFitError::NoStart)?
         .1;
     let mut rep = minimize(&prob, &x0, &opts);
     if !rep.cost.is_finite() {
-        return None;
+        return Err(SegmentFitError::NonFinite);
     }
     let (mut iterations, mut evaluations) = (rep.iterations, rep.evaluations);
     if let RobustLoss::Huber { scale } = settings.loss {
@@ -431,7 +445,7 @@ pub fn fit_segment(
         .filter(|row| row.iter().any(|w| w * w < 0.5))
         .count();
     let termination: Termination = rep.termination;
-    Some(SegmentFit {
+    Ok(SegmentFit {
         so2: rep.x[0],
         so2_se: se(0),
         hb_g_per_l: rep.x[1],
@@ -446,7 +460,7 @@ pub fn fit_segment(
         },
         iterations,
         evaluations,
-        termination: termination.as_str(),
+        termination,
         converged: termination.converged(),
         downweighted_positions: downweighted,
     })

@@ -59,7 +59,10 @@ impl Store {
             Ok(v) => Lookup::Hit(v),
             Err(reason) => {
                 let _ = std::fs::remove_file(&path);
-                Lookup::Corrupt { path, reason }
+                Lookup::Corrupt {
+                    path,
+                    reason: reason.to_string(),
+                }
             }
         }
     }
@@ -73,7 +76,7 @@ impl Store {
         bytes.extend_from_slice(&payload);
         let path = self.entry(area, key);
         std::fs::create_dir_all(path.parent().expect("entry has a folder"))?;
-        write_bytes_atomic(&path, &bytes)
+        Ok(write_bytes_atomic(&path, &bytes)?)
     }
 
     fn record_path(&self, stage: &str) -> PathBuf {
@@ -91,25 +94,36 @@ impl Store {
         std::fs::create_dir_all(path.parent().expect("record has a folder"))?;
         let mut text = serde_json::to_vec_pretty(rec)?;
         text.push(b'\n');
-        write_bytes_atomic(&path, &text)
+        Ok(write_bytes_atomic(&path, &text)?)
     }
 }
 
-fn decode<T: DeserializeOwned>(bytes: &[u8]) -> std::result::Result<T, String> {
+/// Why a cache entry cannot be used (it is then recomputed).
+#[derive(Debug, thiserror::Error)]
+enum EntryError {
+    #[error("not a satstep cache entry (bad header)")]
+    Header,
+    #[error("cache format {0}, this version reads {CACHE_FORMAT}")]
+    Format(u32),
+    #[error("checksum mismatch (truncated or altered)")]
+    Checksum,
+    #[error("cannot decode: {0}")]
+    Decode(#[from] postcard::Error),
+}
+
+fn decode<T: DeserializeOwned>(bytes: &[u8]) -> std::result::Result<T, EntryError> {
     if bytes.len() < 44 || &bytes[..8] != MAGIC {
-        return Err("not a satstep cache entry (bad header)".into());
+        return Err(EntryError::Header);
     }
     let format = u32::from_le_bytes(bytes[8..12].try_into().expect("4 bytes"));
     if format != CACHE_FORMAT {
-        return Err(format!(
-            "cache format {format}, this version reads {CACHE_FORMAT}"
-        ));
+        return Err(EntryError::Format(format));
     }
     let payload = &bytes[44..];
     if Sha256::digest(payload).as_slice() != &bytes[12..44] {
-        return Err("checksum mismatch (truncated or altered)".into());
+        return Err(EntryError::Checksum);
     }
-    postcard::from_bytes(payload).map_err(|e| format!("cannot decode: {e}"))
+    Ok(postcard::from_bytes(payload)?)
 }
 
 /// What a stage recorded the last time it finished: its key and the parts

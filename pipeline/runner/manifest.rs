@@ -55,6 +55,9 @@ impl Manifest {
         let stamp = self.finished_utc.replace([':', '-', '.'], "");
         let dir = output.join("manifests");
         std::fs::create_dir_all(&dir)?;
-        write_bytes_atomic(&dir.join(format!("{stamp}.json")), &text)
+        Ok(write_bytes_atomic(
+            &dir.join(format!("{stamp}.json")),
+            &text,
+        )?)
     }
 }

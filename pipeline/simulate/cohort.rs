@@ -186,6 +186,8 @@ impl CohortDesign {
 }
 
 #[cfg(test)]
+// Values here are exact by construction (sums of binary fractions, integers).
+#[allow(clippy::float_cmp)]
 mod tests {
     use super::*;
 

@@ -15,7 +15,6 @@ pub mod seed;
 use std::fmt::Write as _;
 use std::path::{Path, PathBuf};
 
-use anyhow::{Context, Result};
 use chrono::{DateTime, Duration, FixedOffset};
 use rand::Rng;
 use rand_distr::{Distribution, Normal, Uniform};
@@ -27,8 +26,10 @@ use crate::config::read::Reader;
 use crate::config::segments::{Segment, VesselKind};
 use crate::config::study::BandResponse;
 use crate::oximetry::bands::SampledBand;
+use crate::oximetry::model::BLOOD_BACKSCATTER;
 use crate::physiology::pressure_at_altitude_mmhg;
-use crate::tables::{Table, write_bytes_atomic};
+use crate::stats::summary::mean;
+use crate::tables::{Table, TableError, write_bytes_atomic};
 use course::SubjectPhysiology;
 use render::{Motion, Scene, VesselState};
 use seed::rng_for;
@@ -360,9 +361,36 @@ fn layout(sc: &Scenario, rng: &mut impl Rng) -> Vec<(Segment, f64, f64)> {
     out
 }
 
+/// Why a simulated study could not be written.
+#[derive(Debug, thiserror::Error)]
+pub enum SimulateError {
+    #[error("cannot create `{}`", .path.display())]
+    Create {
+        path: PathBuf,
+        #[source]
+        source: std::io::Error,
+    },
+    #[error("cannot copy `{}`", .path.display())]
+    Copy {
+        path: PathBuf,
+        #[source]
+        source: std::io::Error,
+    },
+    #[error(transparent)]
+    Write(#[from] TableError),
+    /// Formatting text into a string (cannot fail in practice).
+    #[error("cannot format a file")]
+    Format(#[from] std::fmt::Error),
+}
+
+type Result<T, E = SimulateError> = std::result::Result<T, E>;
+
 /// Writes the study. Returns the study file's path.
 pub fn simulate(sc: &Scenario, out: &Path) -> Result<PathBuf> {
-    std::fs::create_dir_all(out).with_context(|| format!("cannot create `{}`", out.display()))?;
+    std::fs::create_dir_all(out).map_err(|source| SimulateError::Create {
+        path: out.to_path_buf(),
+        source,
+    })?;
     let p = &sc.protocol;
     let pb = pressure_at_altitude_mmhg(sc.altitude_m);
     let bands: Vec<SampledBand> = sc
@@ -389,8 +417,12 @@ pub fn simulate(sc: &Scenario, out: &Path) -> Result<PathBuf> {
         })
         .collect();
     let subjects: Vec<SimSubject> = (0..sc.subjects).map(|i| draw_subject(sc, i)).collect();
-    std::fs::copy(&sc.protocol_file, out.join("protocol.yaml"))
-        .with_context(|| format!("cannot copy `{}`", sc.protocol_file.display()))?;
+    std::fs::copy(&sc.protocol_file, out.join("protocol.yaml")).map_err(|source| {
+        SimulateError::Copy {
+            path: sc.protocol_file.clone(),
+            source,
+        }
+    })?;
 
     struct CapturePlan {
         subject: usize,
@@ -507,7 +539,7 @@ pub fn simulate(sc: &Scenario, out: &Path) -> Result<PathBuf> {
                 pigmentation: s.pigmentation as f64,
                 veil: s.veil,
                 hb_g_per_l: s.physiology.hb_g_per_l,
-                backscatter: 0.04,
+                backscatter: BLOOD_BACKSCATTER,
                 well_electrons: 20_000.0,
                 read_noise_electrons: 6.0,
             };
@@ -680,12 +712,7 @@ fn write_truth(
                     .map(|i| so2[i])
                     .collect();
                 if !v.is_empty() {
-                    rows.push((
-                        s.id.clone(),
-                        ep.name.clone(),
-                        k.to_string(),
-                        v.iter().sum::<f64>() / v.len() as f64,
-                    ));
+                    rows.push((s.id.clone(), ep.name.clone(), k.to_string(), mean(&v)));
                 }
             }
         }
@@ -719,7 +746,7 @@ fn write_truth(
             if !per.is_empty() {
                 cl.push(c.label.clone());
                 ck.push(k.to_string());
-                cv.push(per.iter().sum::<f64>() / per.len() as f64);
+                cv.push(mean(&per));
             }
         }
     }
@@ -741,7 +768,7 @@ fn write_truth(
     )?;
     writeln!(
         r,
-        "backscatter_fraction: 0.04\ndouble_pass_fraction: 0.30 + 0.12 sin(9 f + phase) along each segment\nwell_electrons: 20000\nread_noise_electrons: 6"
+        "backscatter_fraction: {BLOOD_BACKSCATTER}\ndouble_pass_fraction: 0.30 + 0.12 sin(9 f + phase) along each segment\nwell_electrons: 20000\nread_noise_electrons: 6"
     )?;
     writeln!(r, "band_offsets_px:")?;
     for ((name, _, _), (dx, dy)) in sc.bands.iter().zip(band_offsets) {

@@ -252,7 +252,7 @@ pub fn write_tiff(
     width: usize,
     height: usize,
     pages: &[Vec<u16>],
-) -> anyhow::Result<()> {
+) -> Result<(), crate::tables::TableError> {
     crate::tables::write_atomic(path, |f| {
         let mut enc = tiff::encoder::TiffEncoder::new(std::io::BufWriter::new(f))?;
         for p in pages {

@@ -28,13 +28,12 @@ pub struct CaptureRow {
     pub epoch: Option<String>,
     pub t_in_epoch_s: Option<f64>,
     pub o2_fraction: Option<f64>,
-    /// `steady`, `settling`, `outside` or `excluded`.
-    pub status: String,
+    pub status: CaptureStatus,
     pub exclusion: Option<String>,
     pub spo2: Option<f64>,
     pub spo2_samples: i64,
     pub spo2_range: Option<f64>,
-    pub spo2_status: String,
+    pub spo2_status: ReferenceStatus,
 }
 
 #[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
@@ -97,7 +96,7 @@ impl Stage for Epochs {
             t.count(CaptureStatus::Steady),
             t.count(CaptureStatus::Settling),
             t.count(CaptureStatus::Outside),
-            t.captures.iter().filter(|c| c.status == "excluded").count()
+            t.count(CaptureStatus::Excluded)
         );
         Ok((t, d))
     }
@@ -164,19 +163,15 @@ pub fn build(study: &Study) -> EpochTables {
                     t_in_epoch_s: epoch.map(|e| t - spans[e].start_s),
                     o2_fraction: epoch.map(|e| p.epochs[e].gas.o2_fraction),
                     status: if excluded.is_some() {
-                        "excluded".into()
+                        CaptureStatus::Excluded
                     } else {
-                        status.as_str().into()
+                        status
                     },
                     exclusion: excluded,
                     spo2: r.and_then(|r| r.spo2),
                     spo2_samples: r.map(|r| r.samples as i64).unwrap_or(0),
                     spo2_range: r.and_then(|r| r.range),
-                    spo2_status: r
-                        .map(|r| r.status)
-                        .unwrap_or(ReferenceStatus::Missing)
-                        .as_str()
-                        .into(),
+                    spo2_status: r.map(|r| r.status).unwrap_or(ReferenceStatus::Missing),
                 });
             }
         }
@@ -189,10 +184,7 @@ pub fn build(study: &Study) -> EpochTables {
 
 impl EpochTables {
     pub fn count(&self, status: CaptureStatus) -> usize {
-        self.captures
-            .iter()
-            .filter(|c| c.status == status.as_str())
-            .count()
+        self.captures.iter().filter(|c| c.status == status).count()
     }
 
     pub fn write(&self, out: &Path) -> Result<Vec<PathBuf>> {
@@ -208,12 +200,12 @@ impl EpochTables {
             .opt_text("epoch", c.iter().map(|r| r.epoch.clone()))
             .opt_real("t_in_epoch_s", c.iter().map(|r| r.t_in_epoch_s))
             .opt_real("o2_fraction", c.iter().map(|r| r.o2_fraction))
-            .text("status", c.iter().map(|r| &r.status))
+            .text("status", c.iter().map(|r| r.status.as_str()))
             .opt_text("exclusion", c.iter().map(|r| r.exclusion.clone()))
             .opt_real("spo2", c.iter().map(|r| r.spo2))
             .int("spo2_samples", c.iter().map(|r| r.spo2_samples))
             .opt_real("spo2_range", c.iter().map(|r| r.spo2_range))
-            .text("spo2_status", c.iter().map(|r| &r.spo2_status));
+            .text("spo2_status", c.iter().map(|r| r.spo2_status.as_str()));
         let mut paths = t.write(&dir, "captures")?;
         let s = &self.spans;
         let mut t = Table::new();

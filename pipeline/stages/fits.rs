@@ -3,6 +3,8 @@
 //! calibrations that need the cohort (two reference points, regression)
 //! are made after all segment ODRs are known.
 
+use crate::stats::summary::mean;
+use crate::timeline::assign::CaptureStatus;
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
@@ -12,14 +14,18 @@ use rayon::prelude::*;
 use super::epochs::{EpochTables, Epochs};
 use super::images::{ImageTables, Images, PositionRow};
 use super::stage::{Run, Stage};
+use crate::config::segments::VesselKind;
 use crate::config::study::{Calibration, Loss, Method, MethodKind, Study};
+use crate::fit::Termination;
 use crate::oximetry::bands::SampledBand;
-use crate::oximetry::model::VesselModel;
+use crate::oximetry::model::{BLOOD_BACKSCATTER, VesselModel};
 use crate::oximetry::odr::{
     Linear, diameter_corrected, leave_one_subject_out, segment_odr, two_point, within_group_slope,
 };
 use crate::oximetry::pointwise::fit_pointwise;
-use crate::oximetry::segment::{FitSettings, RobustLoss, SegmentSpectra, fit_segment};
+use crate::oximetry::segment::{
+    FitSettings, RobustLoss, SegmentFitError, SegmentSpectra, fit_segment,
+};
 use crate::runner::key::{Key, KeyBuilder};
 use crate::runner::{Items, Runner};
 use crate::tables::Table;
@@ -27,11 +33,57 @@ use crate::tables::Table;
 /// Fewest unflagged positions a segment needs to be fitted.
 pub const MIN_POSITIONS: usize = 8;
 
+/// How a segment's fit ended, as the `termination` column writes it.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub enum Outcome {
+    /// Fewer than [`MIN_POSITIONS`] unflagged positions.
+    TooFewPositions { usable: usize },
+    /// Two-band: the ODR was computed.
+    Odr,
+    /// Two-band: no finite optical density in one of the bands.
+    NoOpticalDensity,
+    /// Multiband: a position has no diameter.
+    NoDiameter,
+    /// Multiband, position by position.
+    Pointwise { converged: usize, positions: usize },
+    /// Multiband, joint fit: why the optimiser stopped.
+    Joint(Termination),
+    /// Multiband, joint fit: it could not start or ended non-finite.
+    NotFitted(SegmentFitError),
+    /// Two-band, two-point calibration: no calibration could be made for the method.
+    NoTwoPointCalibration { epoch: String },
+}
+
+impl std::fmt::Display for Outcome {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            Outcome::TooFewPositions { usable } => {
+                write!(f, "too few usable positions ({usable} < {MIN_POSITIONS})")
+            }
+            Outcome::Odr => f.write_str("odr"),
+            Outcome::NoOpticalDensity => f.write_str("no optical density"),
+            Outcome::NoDiameter => {
+                f.write_str("no diameter: the multiband model needs `diameter_um`")
+            }
+            Outcome::Pointwise {
+                converged,
+                positions,
+            } => write!(f, "{converged} of {positions} positions converged"),
+            Outcome::Joint(t) => f.write_str(t.as_str()),
+            Outcome::NotFitted(e) => write!(f, "not fitted: {e}"),
+            Outcome::NoTwoPointCalibration { epoch } => write!(
+                f,
+                "no two-point calibration: no arteriole with reference SpO2 and no venule in `{epoch}`"
+            ),
+        }
+    }
+}
+
 #[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 pub struct FitRow {
     pub capture_index: usize,
     pub segment: String,
-    pub kind: String,
+    pub kind: VesselKind,
     pub method: String,
     pub so2: Option<f64>,
     pub so2_se: Option<f64>,
@@ -41,7 +93,7 @@ pub struct FitRow {
     pub odr_uncorrected: Option<f64>,
     pub iterations: i64,
     pub evaluations: i64,
-    pub termination: String,
+    pub termination: Outcome,
     pub positions: i64,
     pub diameter_um: f64,
     /// SD of the per-position estimates along the segment (pointwise fits).
@@ -209,16 +261,16 @@ fn fit_capture(
         }
     }
     // Every segment the image stage profiled, even with too few positions.
-    let mut keys: Vec<(usize, String, String)> = positions
+    let mut keys: Vec<(usize, String, VesselKind)> = positions
         .iter()
-        .map(|r| (ci, r.segment.clone(), r.kind.clone()))
+        .map(|r| (ci, r.segment.clone(), r.kind))
         .collect();
     keys.sort();
     keys.dedup();
     let groups: BTreeMap<(usize, String), Vec<&PositionRow>> =
         groups.into_iter().map(|(k, v)| ((ci, k), v)).collect();
     {
-        let fit_one = |(ci, seg, kind): &(usize, String, String)| -> FitRow {
+        let fit_one = |(ci, seg, kind): &(usize, String, VesselKind)| -> FitRow {
             let pos = groups.get(&(*ci, seg.clone())).cloned().unwrap_or_default();
             let diameter = if pos.is_empty() {
                 f64::NAN
@@ -228,7 +280,7 @@ fn fit_capture(
             let mut row = FitRow {
                 capture_index: *ci,
                 segment: seg.clone(),
-                kind: kind.clone(),
+                kind: *kind,
                 method: m.label.clone(),
                 so2: None,
                 so2_se: None,
@@ -237,17 +289,15 @@ fn fit_capture(
                 odr_uncorrected: None,
                 iterations: 0,
                 evaluations: 0,
-                termination: String::new(),
+                termination: Outcome::TooFewPositions { usable: pos.len() },
                 positions: pos.len() as i64,
                 diameter_um: diameter,
                 along_sd: None,
             };
             if pos.len() < MIN_POSITIONS {
-                row.termination =
-                    format!("too few usable positions ({} < {MIN_POSITIONS})", pos.len());
                 return row;
             }
-            match &m.kind {
+            row.termination = match &m.kind {
                 MethodKind::TwoBand {
                     sensitive,
                     isosbestic,
@@ -256,14 +306,14 @@ fn fit_capture(
                     let ts: Vec<f64> = pos.iter().map(|p| p.transmission[*sensitive]).collect();
                     let ti: Vec<f64> = pos.iter().map(|p| p.transmission[*isosbestic]).collect();
                     row.odr = segment_odr(&ts, &ti);
-                    row.termination = if row.odr.is_some() {
-                        "odr".into()
+                    if row.odr.is_some() {
+                        Outcome::Odr
                     } else {
-                        "no optical density".into()
-                    };
+                        Outcome::NoOpticalDensity
+                    }
                 }
                 MethodKind::Multiband { .. } if pos.iter().any(|p| !p.diameter_um.is_finite()) => {
-                    row.termination = "no diameter: the multiband model needs `diameter_um`".into();
+                    Outcome::NoDiameter
                 }
                 MethodKind::Multiband {
                     bands: sel,
@@ -287,23 +337,25 @@ fn fit_capture(
                         }
                         row.iterations = f.positions.iter().map(|p| p.iterations as i64).sum();
                         row.evaluations = f.positions.iter().map(|p| p.evaluations as i64).sum();
-                        row.termination = format!(
-                            "{} of {} positions converged",
-                            f.n_converged,
-                            f.positions.len()
-                        );
-                    } else if let Some(f) = fit_segment(&model, &spectra, &settings) {
-                        row.so2 = Some(f.so2 * 100.0);
-                        row.so2_se = Some(f.so2_se * 100.0);
-                        row.reduced_chi2 = Some(f.reduced_chi2);
-                        row.iterations = f.iterations as i64;
-                        row.evaluations = f.evaluations as i64;
-                        row.termination = f.termination.to_string();
+                        Outcome::Pointwise {
+                            converged: f.n_converged,
+                            positions: f.positions.len(),
+                        }
                     } else {
-                        row.termination = "not fitted".into();
+                        match fit_segment(&model, &spectra, &settings) {
+                            Ok(f) => {
+                                row.so2 = Some(f.so2 * 100.0);
+                                row.so2_se = Some(f.so2_se * 100.0);
+                                row.reduced_chi2 = Some(f.reduced_chi2);
+                                row.iterations = f.iterations as i64;
+                                row.evaluations = f.evaluations as i64;
+                                Outcome::Joint(f.termination)
+                            }
+                            Err(e) => Outcome::NotFitted(e),
+                        }
                     }
                 }
-            }
+            };
             row
         };
         keys.iter().map(fit_one).collect()
@@ -322,7 +374,7 @@ pub fn multiband_model(
             .map(|b| bands[*b].clone())
             .collect::<Vec<_>>(),
         |_| 1.0,
-        0.04,
+        BLOOD_BACKSCATTER,
     );
     let settings = FitSettings {
         loss: match loss {
@@ -390,20 +442,19 @@ fn calibrate(rows: &mut [FitRow], cal: &Calibration, study: &Study, epochs: &Epo
         Calibration::TwoPoint { epoch, venule_so2 } => {
             let name = &study.protocol.epochs[*epoch].name;
             let in_epoch = |r: &FitRow| {
-                c[r.capture_index].status == "steady"
+                c[r.capture_index].status == CaptureStatus::Steady
                     && c[r.capture_index].epoch.as_deref() == Some(name.as_str())
             };
             let a: Vec<(f64, f64)> = rows
                 .iter()
-                .filter(|r| r.kind == "arteriole" && in_epoch(r))
+                .filter(|r| r.kind == VesselKind::Arteriole && in_epoch(r))
                 .filter_map(|r| Some((r.odr?, c[r.capture_index].spo2?)))
                 .collect();
             let v: Vec<f64> = rows
                 .iter()
-                .filter(|r| r.kind == "venule" && in_epoch(r))
+                .filter(|r| r.kind == VesselKind::Venule && in_epoch(r))
                 .filter_map(|r| r.odr)
                 .collect();
-            let mean = |x: &[f64]| x.iter().sum::<f64>() / x.len() as f64;
             let line = if a.is_empty() || v.is_empty() {
                 None
             } else {
@@ -417,16 +468,19 @@ fn calibrate(rows: &mut [FitRow], cal: &Calibration, study: &Study, epochs: &Epo
             for r in rows.iter_mut() {
                 r.so2 = line.and_then(|l| r.odr.map(|o| l.apply(o)));
                 if line.is_none() {
-                    r.termination = format!(
-                        "no two-point calibration: no arteriole with reference SpO2 and no venule in `{name}`"
-                    );
+                    r.termination = Outcome::NoTwoPointCalibration {
+                        epoch: name.clone(),
+                    };
                 }
             }
         }
         Calibration::Regression => {
             let pairs: Vec<(&str, f64, f64)> = rows
                 .iter()
-                .filter(|r| r.kind == "arteriole" && c[r.capture_index].status == "steady")
+                .filter(|r| {
+                    r.kind == VesselKind::Arteriole
+                        && c[r.capture_index].status == CaptureStatus::Steady
+                })
                 .filter_map(|r| {
                     Some((
                         c[r.capture_index].subject.as_str(),
@@ -458,9 +512,12 @@ fn write(rows: &[FitRow], epochs: &EpochTables, out: &Path) -> Result<Vec<PathBu
             "epoch",
             rows.iter().map(|r| c[r.capture_index].epoch.clone()),
         )
-        .text("status", rows.iter().map(|r| &c[r.capture_index].status))
+        .text(
+            "status",
+            rows.iter().map(|r| c[r.capture_index].status.as_str()),
+        )
         .text("segment", rows.iter().map(|r| &r.segment))
-        .text("kind", rows.iter().map(|r| &r.kind))
+        .text("kind", rows.iter().map(|r| r.kind.as_str()))
         .text("method", rows.iter().map(|r| &r.method))
         .opt_real("so2", rows.iter().map(|r| r.so2))
         .opt_real("so2_se", rows.iter().map(|r| r.so2_se))
@@ -469,11 +526,14 @@ fn write(rows: &[FitRow], epochs: &EpochTables, out: &Path) -> Result<Vec<PathBu
         .opt_real("reduced_chi2", rows.iter().map(|r| r.reduced_chi2))
         .int("iterations", rows.iter().map(|r| r.iterations))
         .int("evaluations", rows.iter().map(|r| r.evaluations))
-        .text("termination", rows.iter().map(|r| &r.termination))
+        .text(
+            "termination",
+            rows.iter().map(|r| r.termination.to_string()),
+        )
         .int("positions", rows.iter().map(|r| r.positions))
         .real("diameter_um", rows.iter().map(|r| r.diameter_um))
         .opt_real("spo2", rows.iter().map(|r| c[r.capture_index].spo2));
-    t.write(&out.join("fits"), "so2")
+    Ok(t.write(&out.join("fits"), "so2")?)
 }
 
 /// This stage's part of the report's methods text: one sentence per method.

@@ -11,11 +11,11 @@ use rayon::prelude::*;
 
 use super::epochs::{EpochTables, Epochs};
 use super::stage::{Run, Stage};
-use crate::config::segments::Segment;
+use crate::config::segments::{Segment, VesselKind};
 use crate::config::study::{BandResponse, Study};
 use crate::images::correct::Corrections;
-use crate::images::ingest::{Multiband, read_capture};
-use crate::images::profile::{ProfileSettings, analyse_segment};
+use crate::images::ingest::{CaptureError, Multiband, read_capture};
+use crate::images::profile::{Flag, ProfileSettings, analyse_segment};
 use crate::images::register::{Registration, register};
 use crate::runner::Items;
 use crate::runner::Runner;
@@ -25,23 +25,75 @@ use crate::tables::{Table, TableStream};
 /// Lowest match score at which a capture counts as registered.
 pub const MIN_REGISTRATION_SCORE: f64 = 0.8;
 
+/// Half the length of a profile across a vessel, in µm: room for the
+/// widest venules (about 200 µm) and the background either side.
+pub const PROFILE_HALF_LENGTH_UM: f64 = 220.0;
+
+/// A profile's half length is never below this many pixels (small
+/// sensors, coarse pixels), plus [`PROFILE_MARGIN_PX`].
+pub const PROFILE_MIN_HALF_LENGTH_PX: f64 = 8.0;
+
+/// Pixels added to a profile's half length for the background fit.
+pub const PROFILE_MARGIN_PX: f64 = 4.0;
+
+/// Registration and widths use the band nearest this wavelength: near an
+/// isosbestic point, with good vessel contrast in every vessel.
+pub const WIDTH_BAND_NM: f64 = 570.0;
+
 #[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 pub struct PositionRow {
     pub capture_index: usize,
     pub segment: String,
-    pub kind: String,
+    pub kind: VesselKind,
     pub position: usize,
     pub along_px: f64,
     pub diameter_um: f64,
-    pub flags: String,
+    /// Why the position is not used; empty when it is.
+    pub flags: Vec<Flag>,
     /// A central light reflex was found (T read beside it).
     pub reflex: bool,
     pub transmission: Vec<f64>,
 }
 
+/// What the image stage made of a capture, as `captures.csv` writes it.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum ImageOutcome {
+    /// Read, registered and profiled.
+    Ok,
+    /// Not read (file, calibration frames or reference capture unreadable).
+    Error,
+    /// Read, but its match score to the eye's reference is too low.
+    NotRegistered,
+    /// Not taken to the image stage (its epochs status says why).
+    NotAnalysed,
+}
+
+impl ImageOutcome {
+    pub fn as_str(&self) -> &'static str {
+        match self {
+            ImageOutcome::Ok => "ok",
+            ImageOutcome::Error => "error",
+            ImageOutcome::NotRegistered => "not-registered",
+            ImageOutcome::NotAnalysed => "not-analysed",
+        }
+    }
+
+    /// The capture was meant to be analysed and could not be.
+    pub fn failed(&self) -> bool {
+        matches!(self, ImageOutcome::Error | ImageOutcome::NotRegistered)
+    }
+}
+
+impl std::fmt::Display for ImageOutcome {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(self.as_str())
+    }
+}
+
 #[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 pub struct ImageStatus {
-    pub status: String,
+    pub status: ImageOutcome,
     pub message: Option<String>,
     pub registration: Option<Registration>,
 }
@@ -99,7 +151,7 @@ impl Stage for Images {
         let analysed = epochs
             .captures
             .iter()
-            .filter(|c| matches!(c.status.as_str(), "steady" | "settling"))
+            .filter(|c| c.status.analysed())
             .count();
         let items = runner.items(Self::NAME, analysed, "images");
         let t = if study.spectra.is_some() {
@@ -140,7 +192,9 @@ pub type CaptureItem = (ImageStatus, Vec<PositionRow>);
 /// The profile settings for a study's instrument.
 pub fn profile_settings(study: &Study) -> ProfileSettings {
     ProfileSettings {
-        half_length_px: (220.0 / study.instrument.pixel_size_um).max(8.0) + 4.0,
+        half_length_px: (PROFILE_HALF_LENGTH_UM / study.instrument.pixel_size_um)
+            .max(PROFILE_MIN_HALF_LENGTH_PX)
+            + PROFILE_MARGIN_PX,
         ..ProfileSettings::default()
     }
 }
@@ -177,7 +231,7 @@ pub fn settings_key(study: &Study) -> Key {
     k.finish()
 }
 
-/// The band used for registration and widths: the one nearest 570 nm
+/// The band used for registration and widths: the one nearest [`WIDTH_BAND_NM`]
 /// (isosbestic, good vessel contrast in every vessel).
 pub fn width_band(study: &Study) -> usize {
     let centre = |r: &BandResponse| match r {
@@ -188,9 +242,9 @@ pub fn width_band(study: &Study) -> usize {
     };
     (0..study.instrument.bands.len())
         .min_by(|a, b| {
-            (centre(&study.instrument.bands[*a].response) - 570.0)
+            (centre(&study.instrument.bands[*a].response) - WIDTH_BAND_NM)
                 .abs()
-                .total_cmp(&(centre(&study.instrument.bands[*b].response) - 570.0).abs())
+                .total_cmp(&(centre(&study.instrument.bands[*b].response) - WIDTH_BAND_NM).abs())
         })
         .unwrap_or(0)
 }
@@ -201,8 +255,8 @@ fn tally_flags(rows: &[PositionRow]) -> BTreeMap<String, usize> {
         if r.flags.is_empty() {
             *flags.entry("unflagged".into()).or_default() += 1;
         }
-        for f in r.flags.split(';').filter(|f| !f.is_empty()) {
-            *flags.entry(f.to_string()).or_default() += 1;
+        for f in &r.flags {
+            *flags.entry(f.as_str().to_string()).or_default() += 1;
         }
     }
     flags
@@ -271,14 +325,14 @@ pub fn from_spectra(
         .to_string();
     let mut status: Vec<ImageStatus> = (0..n)
         .map(|i| ImageStatus {
-            status: "not-analysed".into(),
+            status: ImageOutcome::NotAnalysed,
             message: Some(format!("status `{}`", epochs.captures[i].status)),
             registration: None,
         })
         .collect();
     let (mut counts, mut flags) = (vec![0; n], BTreeMap::new());
     let analysed: Vec<usize> = (0..n)
-        .filter(|i| matches!(epochs.captures[*i].status.as_str(), "steady" | "settling"))
+        .filter(|i| epochs.captures[*i].status.analysed())
         .collect();
     let results: Vec<Tally> = analysed
         .par_iter()
@@ -293,7 +347,7 @@ pub fn from_spectra(
                 match found {
                     None => (
                         ImageStatus {
-                            status: "error".into(),
+                            status: ImageOutcome::Error,
                             message: Some(format!("not in the spectra table `{file}`")),
                             registration: None,
                         },
@@ -301,7 +355,7 @@ pub fn from_spectra(
                     ),
                     Some(ps) => (
                         ImageStatus {
-                            status: "ok".into(),
+                            status: ImageOutcome::Ok,
                             message: Some("from the spectra table".into()),
                             registration: None,
                         },
@@ -309,11 +363,11 @@ pub fn from_spectra(
                             .map(|p| PositionRow {
                                 capture_index: i,
                                 segment: p.vessel.clone(),
-                                kind: p.kind.clone(),
+                                kind: p.kind,
                                 position: p.position,
                                 along_px: p.position as f64,
                                 diameter_um: p.diameter_um,
-                                flags: String::new(),
+                                flags: Vec::new(),
                                 reflex: false,
                                 transmission: p.transmission.clone(),
                             })
@@ -435,7 +489,7 @@ pub fn build(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: &Items)
     }
     let mut status: Vec<ImageStatus> = (0..epochs.captures.len())
         .map(|_| ImageStatus {
-            status: "not-analysed".into(),
+            status: ImageOutcome::NotAnalysed,
             message: None,
             registration: None,
         })
@@ -447,7 +501,7 @@ pub fn build(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: &Items)
         let analysed: Vec<usize> = idx
             .iter()
             .copied()
-            .filter(|i| matches!(epochs.captures[*i].status.as_str(), "steady" | "settling"))
+            .filter(|i| epochs.captures[*i].status.analysed())
             .collect();
         for i in idx {
             if !analysed.contains(i) {
@@ -457,18 +511,18 @@ pub fn build(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: &Items)
         // The eye's reference capture: its earliest listed capture. It is
         // read only if some capture of the eye is not in the cache.
         let Some(&ref_i) = idx.first() else { continue };
-        let reference: std::sync::OnceLock<Result<Multiband, String>> = std::sync::OnceLock::new();
+        let reference: std::sync::OnceLock<Result<Multiband, CaptureError>> =
+            std::sync::OnceLock::new();
         // Each capture's positions go to the cache; only counts stay here.
         let results: Vec<(usize, ImageStatus, usize, BTreeMap<String, usize>)> = analysed
             .par_iter()
             .map(|&i| {
                 let (st, rows): CaptureItem = items.get_or_compute(&keys[i], || {
-                    let read_ref = || -> Result<Multiband, String> {
-                        let mut r =
-                            read_capture(&files[ref_i], nb, None).map_err(|e| e.to_string())?;
+                    let read_ref = || -> Result<Multiband, CaptureError> {
+                        let mut r = read_capture(&files[ref_i], nb, None)?;
                         corrections
                             .as_ref()
-                            .map_err(|e| format!("calibration frames: {e}"))?
+                            .map_err(|e| CaptureError::Calibration(Box::new(e.clone())))?
                             .apply(&mut r)?;
                         Ok(r)
                     };
@@ -487,7 +541,7 @@ pub fn build(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: &Items)
                         ),
                         (_, Err(e)) => (
                             ImageStatus {
-                                status: "error".into(),
+                                status: ImageOutcome::Error,
                                 message: Some(format!("calibration frames: {e}")),
                                 registration: None,
                             },
@@ -495,7 +549,7 @@ pub fn build(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: &Items)
                         ),
                         (Err(e), _) => (
                             ImageStatus {
-                                status: "error".into(),
+                                status: ImageOutcome::Error,
                                 message: Some(format!("reference capture: {e}")),
                                 registration: None,
                             },
@@ -536,7 +590,7 @@ pub fn analyse_capture(
         Err(e) => {
             return (
                 ImageStatus {
-                    status: "error".into(),
+                    status: ImageOutcome::Error,
                     message: Some(e.to_string()),
                     registration: None,
                 },
@@ -547,8 +601,8 @@ pub fn analyse_capture(
     if let Err(e) = corr.apply(&mut img) {
         return (
             ImageStatus {
-                status: "error".into(),
-                message: Some(e),
+                status: ImageOutcome::Error,
+                message: Some(e.to_string()),
                 registration: None,
             },
             vec![],
@@ -578,7 +632,7 @@ pub fn analyse_capture(
         );
         return (
             ImageStatus {
-                status: "not-registered".into(),
+                status: ImageOutcome::NotRegistered,
                 message: Some(msg),
                 registration: Some(reg),
             },
@@ -602,16 +656,11 @@ pub fn analyse_capture(
             rows.push(PositionRow {
                 capture_index: i,
                 segment: seg.id.clone(),
-                kind: seg.kind.as_str().to_string(),
+                kind: seg.kind,
                 position: r.position,
                 along_px: r.along_px,
                 diameter_um: r.diameter_px * px_um,
-                flags: r
-                    .flags
-                    .iter()
-                    .map(|f| f.as_str())
-                    .collect::<Vec<_>>()
-                    .join(";"),
+                flags: r.flags,
                 reflex: r.reflex,
                 transmission: r.transmission,
             });
@@ -619,7 +668,7 @@ pub fn analyse_capture(
     }
     (
         ImageStatus {
-            status: "ok".into(),
+            status: ImageOutcome::Ok,
             message: None,
             registration: Some(reg),
         },
@@ -631,7 +680,7 @@ impl ImageTables {
     /// The captures that could not be read or registered.
     pub fn failed(&self) -> Vec<usize> {
         (0..self.status.len())
-            .filter(|i| matches!(self.status[*i].status.as_str(), "error" | "not-registered"))
+            .filter(|i| self.status[*i].status.failed())
             .collect()
     }
 
@@ -641,7 +690,7 @@ impl ImageTables {
 
     /// One capture's profile positions, read back from the stage's cache.
     pub fn positions(&self, runner: &Runner, i: usize) -> Result<Vec<PositionRow>> {
-        if self.status[i].status == "not-analysed" {
+        if self.status[i].status == ImageOutcome::NotAnalysed {
             return Ok(vec![]);
         }
         let (_, rows): CaptureItem = runner.item("images", &self.keys[i])?;
@@ -685,11 +734,11 @@ fn position_table(p: &[PositionRow], study: &Study, epochs: &EpochTables) -> Tab
         .text("eye", p.iter().map(|r| &c[r.capture_index].eye))
         .text("capture", p.iter().map(|r| &c[r.capture_index].capture))
         .text("segment", p.iter().map(|r| &r.segment))
-        .text("kind", p.iter().map(|r| &r.kind))
+        .text("kind", p.iter().map(|r| r.kind.as_str()))
         .int("position", p.iter().map(|r| r.position as i64))
         .real("along_px", p.iter().map(|r| r.along_px))
         .real("diameter_um", p.iter().map(|r| r.diameter_um))
-        .text("flags", p.iter().map(|r| &r.flags))
+        .text("flags", p.iter().map(|r| Flag::join(&r.flags)))
         .text(
             "central_reflex",
             p.iter().map(|r| if r.reflex { "yes" } else { "no" }),
@@ -717,7 +766,7 @@ impl ImageTables {
             .text("session", c.iter().map(|r| &r.session))
             .text("eye", c.iter().map(|r| &r.eye))
             .text("capture", c.iter().map(|r| &r.capture))
-            .text("image_status", s.iter().map(|r| &r.status))
+            .text("image_status", s.iter().map(|r| r.status.as_str()))
             .opt_text("message", s.iter().map(|r| r.message.clone()))
             .opt_real("dx_px", s.iter().map(|r| r.registration.map(|g| g.dx)))
             .opt_real("dy_px", s.iter().map(|r| r.registration.map(|g| g.dy)))

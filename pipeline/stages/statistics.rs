@@ -12,6 +12,8 @@
 //! unit of replication. Segment values narrower than
 //! `exclusions.min_diameter_um` are left out of all of it and counted.
 
+use crate::config::segments::VesselKind;
+use crate::timeline::assign::CaptureStatus;
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
@@ -29,6 +31,7 @@ use crate::stats::epoch_model::{
     self, Adjustment, Component, ContrastResult, ContrastSpec, Design, Observation, SlopeResult,
     analyse, slope_on_reference,
 };
+use crate::stats::summary::{mean, sd};
 use crate::tables::Table;
 
 /// One subject × epoch summary of one method and vessel kind.
@@ -145,18 +148,6 @@ impl StatisticsTables {
     }
 }
 
-fn mean(v: &[f64]) -> f64 {
-    v.iter().sum::<f64>() / v.len() as f64
-}
-
-fn sd(v: &[f64]) -> f64 {
-    if v.len() < 2 {
-        return f64::NAN;
-    }
-    let m = mean(v);
-    (v.iter().map(|x| (x - m).powi(2)).sum::<f64>() / (v.len() - 1) as f64).sqrt()
-}
-
 fn adjustment(study: &Study) -> Adjustment {
     match study.statistics.adjustment {
         Adjust::Holm => Adjustment::Holm,
@@ -256,7 +247,7 @@ fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> StatisticsTabl
     let p = &study.protocol;
     let min_d = study.exclusions.min_diameter_um;
     let narrow = |r: &FitRow| min_d.is_some_and(|d| r.below_diameter(d));
-    let steady = |r: &FitRow| c[r.capture_index].status == "steady";
+    let steady = |r: &FitRow| c[r.capture_index].status == CaptureStatus::Steady;
     // The values the statistics use: steady captures, a finite SO2, wide enough.
     let usable = |r: &FitRow| steady(r) && r.so2.is_some_and(f64::is_finite) && !narrow(r);
     let epoch_names: Vec<String> = p.epochs.iter().map(|e| e.name.clone()).collect();
@@ -293,7 +284,7 @@ fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> StatisticsTabl
         .par_iter()
         .map(|&(m, kind)| {
             let mut st = StatisticsTables::default();
-            let mine = |r: &&FitRow| r.method == m.label && r.kind == kind;
+            let mine = |r: &&FitRow| r.method == m.label && r.kind.as_str() == kind;
             let rows: Vec<&FitRow> = fits.iter().filter(mine).filter(|r| usable(r)).collect();
             // Summaries: capture means first, then over captures.
             let mut by: BTreeMap<(String, String), BTreeMap<usize, Vec<f64>>> = BTreeMap::new();
@@ -466,7 +457,9 @@ fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> StatisticsTabl
                 let v: Vec<f64> = c
                     .iter()
                     .filter(|r| {
-                        r.subject == s && r.status == "steady" && r.epoch.as_deref() == Some(epoch)
+                        r.subject == s
+                            && r.status == CaptureStatus::Steady
+                            && r.epoch.as_deref() == Some(epoch)
                     })
                     .filter_map(|r| r.spo2)
                     .collect();
@@ -581,7 +574,7 @@ fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> StatisticsTabl
         for r in fits.iter().filter(|r| r.method == m.label && usable(r)) {
             if let Some(v) = r.so2 {
                 let e = per.entry(r.capture_index).or_default();
-                if r.kind == "arteriole" {
+                if r.kind == VesselKind::Arteriole {
                     e.0.push(v)
                 } else {
                     e.1.push(v)
@@ -620,7 +613,7 @@ fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> StatisticsTabl
             for kind in ["arteriole", "venule"] {
                 let get = |label: &str| -> BTreeMap<(usize, String), f64> {
                     fits.iter()
-                        .filter(|r| r.method == label && r.kind == kind && usable(r))
+                        .filter(|r| r.method == label && r.kind.as_str() == kind && usable(r))
                         .filter_map(|r| Some(((r.capture_index, r.segment.clone()), r.so2?)))
                         .collect()
                 };

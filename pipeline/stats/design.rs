@@ -10,8 +10,24 @@ use std::path::Path;
 use nalgebra::DMatrix;
 
 use super::lmm::{LmmData, RandomTerm};
+use crate::config::contrast::{ContrastError, parse_terms};
 use crate::config::csvfile::CsvTable;
 use crate::config::diag::{Findings, Mark};
+
+/// Why a model term or a contrast could not be read.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum DesignError {
+    #[error(
+        "`{0}`: write a grouping column, `a:b` for groups nested in groups, `group@slope` for a random slope"
+    )]
+    RandomTerm(String),
+    #[error("`{0}` is not a level of any fixed factor")]
+    UnknownLevel(String),
+    #[error("`{0}` is a level of more than one factor")]
+    AmbiguousLevel(String),
+    #[error(transparent)]
+    Contrast(#[from] ContrastError),
+}
 
 /// A random term: grouping columns joined by `:`, slope columns after `@`.
 #[derive(Debug, Clone, PartialEq)]
@@ -22,7 +38,7 @@ pub struct RandomSpec {
 
 impl RandomSpec {
     /// Parses `subject`, `subject:eye`, `Subject@Days`.
-    pub fn parse(s: &str) -> Result<Self, String> {
+    pub fn parse(s: &str) -> Result<Self, DesignError> {
         let (g, sl) = match s.split_once('@') {
             Some((g, sl)) => (
                 g,
@@ -35,9 +51,7 @@ impl RandomSpec {
         };
         let groups: Vec<String> = g.split(':').map(|x| x.trim().to_string()).collect();
         if groups.iter().any(|x| x.is_empty()) {
-            return Err(format!(
-                "`{s}`: write a grouping column, `a:b` for groups nested in groups, `group@slope` for a random slope"
-            ));
+            return Err(DesignError::RandomTerm(s.to_string()));
         }
         Ok(RandomSpec { groups, slopes: sl })
     }
@@ -213,48 +227,25 @@ pub fn build(t: &CsvTable, file: &Path, spec: &Spec, f: &mut Findings) -> Option
 }
 
 impl Design {
-    /// Weights of a contrast written with level names, e.g. `hypoxia - recovery`.
-    pub fn contrast(&self, text: &str) -> Result<Vec<f64>, String> {
-        let p = self.data.x.ncols();
-        let mut l = vec![0.0; p];
-        let mut sign = 1.0;
-        let mut expect_term = true;
-        for tok in text.split_whitespace() {
-            if expect_term {
-                let (coef, name) = match tok.split_once('*') {
-                    Some((c, n)) => (
-                        c.parse::<f64>()
-                            .map_err(|_| format!("`{c}` is not a number"))?,
-                        n,
-                    ),
-                    None => (1.0, tok),
-                };
-                let hits: Vec<(&Factor, usize)> = self
-                    .factors
-                    .iter()
-                    .filter_map(|fa| fa.levels.iter().position(|lv| lv == name).map(|i| (fa, i)))
-                    .collect();
-                match hits.as_slice() {
-                    [] => return Err(format!("`{name}` is not a level of any fixed factor")),
-                    [(fa, i)] => {
-                        if *i > 0 {
-                            l[fa.x_columns[i - 1]] += sign * coef;
-                        }
+    /// Weights of a contrast written with level names, e.g. `hypoxia - recovery`
+    /// (the grammar of [`crate::config::contrast`]).
+    pub fn contrast(&self, text: &str) -> Result<Vec<f64>, DesignError> {
+        let mut l = vec![0.0; self.data.x.ncols()];
+        for (name, w) in parse_terms(text)? {
+            let hits: Vec<(&Factor, usize)> = self
+                .factors
+                .iter()
+                .filter_map(|fa| fa.levels.iter().position(|lv| *lv == name).map(|i| (fa, i)))
+                .collect();
+            match hits.as_slice() {
+                [] => return Err(DesignError::UnknownLevel(name)),
+                [(fa, i)] => {
+                    if *i > 0 {
+                        l[fa.x_columns[i - 1]] += w;
                     }
-                    _ => return Err(format!("`{name}` is a level of more than one factor")),
                 }
-                expect_term = false;
-            } else {
-                sign = match tok {
-                    "+" => 1.0,
-                    "-" => -1.0,
-                    _ => return Err(format!("expected `+` or `-` before `{tok}`")),
-                };
-                expect_term = true;
+                _ => return Err(DesignError::AmbiguousLevel(name)),
             }
-        }
-        if expect_term {
-            return Err("the contrast is empty or ends with an operator".into());
         }
         Ok(l)
     }

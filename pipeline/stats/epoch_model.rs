@@ -34,7 +34,7 @@
 //! of its epoch means; then the mean over segments), one-sample t test over
 //! subjects with n − 1 df. (One epoch on the boundary is harmless: the
 //! other's variance carries the subjects' spread of the response; the
-//! whole-study calibration in `tests/stats_calibration.rs` checks such
+//! whole-study calibration in `tests/suite/crosscheck/calibration.rs` checks such
 //! cases, including a baseline with no subject-specific variance.)
 //! The same fallback serves every contrast when the
 //! model cannot be fitted at all. Which test ran is written in each row.
@@ -47,6 +47,7 @@ use statrs::distribution::{ContinuousCDF, StudentsT};
 use super::agreement::paired_t;
 use super::infer::{Test, contrast_at, holm};
 use super::lmm::{Criterion, LmmData, Model, RandomTerm};
+use super::summary::mean;
 
 /// lme4's default tolerance for a singular fit (`isSingular(tol = 1e-4)`),
 /// on the relative covariance factor θ.
@@ -283,7 +284,7 @@ pub fn subject_contrasts(obs: &[Observation], spec: &ContrastSpec) -> Vec<(Strin
                         .sum::<Option<f64>>()
                 })
                 .collect();
-            (!v.is_empty()).then(|| (s.to_string(), v.iter().sum::<f64>() / v.len() as f64))
+            (!v.is_empty()).then(|| (s.to_string(), mean(&v)))
         })
         .collect()
 }
@@ -375,7 +376,7 @@ pub fn analyse(obs: &[Observation], design: &Design) -> EpochAnalysis {
                 },
                 Criterion::Reml,
             );
-            let fit = model.fit()?;
+            let fit = model.fit().ok()?;
             Some((model, fit, others, levels, names))
         })
         .flatten();
@@ -505,14 +506,14 @@ pub fn slope_on_reference(cells: &[(String, f64, f64)], confidence: f64) -> Opti
     };
     let full = Model::new(data(true), Criterion::Reml);
     let (model, fit, formula) = match full.fit() {
-        Some(f) if f.theta[1] >= BOUNDARY_THETA => (
+        Ok(f) if f.theta[1] >= BOUNDARY_THETA => (
             full,
             f,
             "so2 ~ spo2 + (1 | subject) + (0 + spo2 | subject), on subject × epoch means",
         ),
         _ => {
             let m = Model::new(data(false), Criterion::Reml);
-            let f = m.fit()?;
+            let f = m.fit().ok()?;
             (
                 m,
                 f,
@@ -532,6 +533,8 @@ pub fn slope_on_reference(cells: &[(String, f64, f64)], confidence: f64) -> Opti
 }
 
 #[cfg(test)]
+// Values here are exact by construction (sums of binary fractions, integers).
+#[allow(clippy::float_cmp)]
 mod tests {
     use super::*;
 

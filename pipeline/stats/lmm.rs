@@ -30,6 +30,15 @@ use argmin::core::{CostFunction, Executor, State};
 use argmin::solver::neldermead::NelderMead;
 use nalgebra::{DMatrix, DVector};
 
+/// Why a mixed model could not be fitted.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum LmmError {
+    #[error("the fixed effects are not estimable (check for empty or collinear columns)")]
+    NotEstimable,
+    #[error("the optimiser of the variance parameters failed: {0}")]
+    Optimiser(String),
+}
+
 /// One random-effects term: a grouping factor and the columns whose
 /// coefficients vary by group (an intercept, optionally slopes). The
 /// coefficients of one group are correlated, with a full covariance.
@@ -404,7 +413,7 @@ impl Model {
     }
 
     /// Fits the model.
-    pub fn fit(&self) -> Option<Fit> {
+    pub fn fit(&self) -> Result<Fit, LmmError> {
         let nt = self.n_theta();
         let diag = self.diagonal_positions();
         let start: Vec<f64> = (0..nt)
@@ -434,12 +443,16 @@ impl Model {
             let tol = (1e-13 * best_cost.abs()).max(1e-12);
             let solver = NelderMead::new(simplex.clone())
                 .with_sd_tolerance(tol)
-                .ok()?;
+                .map_err(|e| LmmError::Optimiser(e.to_string()))?;
             let res = Executor::new(cost.clone(), solver)
                 .configure(|s| s.max_iters(4000))
                 .run()
-                .ok()?;
-            let x = res.state().get_best_param()?.clone();
+                .map_err(|e| LmmError::Optimiser(e.to_string()))?;
+            let x = res
+                .state()
+                .get_best_param()
+                .ok_or_else(|| LmmError::Optimiser("no best point".into()))?
+                .clone();
             let moved = x
                 .iter()
                 .zip(&best)
@@ -501,7 +514,7 @@ impl Model {
             .enumerate()
             .map(|(k, v)| if diag.contains(&k) { v.abs() } else { *v })
             .collect();
-        let a = self.at(&theta)?;
+        let a = self.at(&theta).ok_or(LmmError::NotEstimable)?;
         let (n, p) = (self.cross.n as f64, self.cross.p as f64);
         let s2 = match self.criterion {
             Criterion::Ml => a.pwrss / n,
@@ -512,7 +525,7 @@ impl Model {
         let np = phi.len();
         let dev = |v: &[f64]| self.deviance_at(&v[..np - 1], v[np - 1]);
         let varpar_cov = hessian(&dev, &phi).try_inverse().map(|h| h * 2.0);
-        Some(Fit {
+        Ok(Fit {
             varpar_cov,
             criterion: self.criterion,
             sigma: s2.sqrt(),

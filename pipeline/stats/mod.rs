@@ -7,3 +7,4 @@ pub mod design;
 pub mod epoch_model;
 pub mod infer;
 pub mod lmm;
+pub mod summary;

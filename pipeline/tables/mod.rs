@@ -7,8 +7,44 @@ use std::fs;
 use std::io::Write;
 use std::path::{Path, PathBuf};
 
-use anyhow::{Context, Result};
-use polars::prelude::{Column, CsvWriter, DataFrame, ParquetWriter, SerWriter};
+use polars::prelude::{Column, CsvWriter, DataFrame, ParquetWriter, PolarsError, SerWriter};
+
+/// Why a table or file could not be written; each names the path.
+#[derive(Debug, thiserror::Error)]
+pub enum TableError {
+    #[error("cannot create the output folder `{}`", .path.display())]
+    Folder {
+        path: PathBuf,
+        #[source]
+        source: std::io::Error,
+    },
+    #[error("cannot create `{}`", .path.display())]
+    Create {
+        path: PathBuf,
+        #[source]
+        source: std::io::Error,
+    },
+    #[error("cannot write `{}`", .path.display())]
+    Write {
+        path: PathBuf,
+        #[source]
+        source: Box<dyn std::error::Error + Send + Sync>,
+    },
+    #[error("cannot move `{}` into place", .path.display())]
+    Rename {
+        path: PathBuf,
+        #[source]
+        source: std::io::Error,
+    },
+    /// Columns that do not make a table (a bug, not the data).
+    #[error("cannot build a table")]
+    Frame(#[from] PolarsError),
+}
+
+type Result<T> = std::result::Result<T, TableError>;
+
+/// What a [`write_atomic`] filler may fail with.
+pub type FillError = Box<dyn std::error::Error + Send + Sync>;
 
 /// Rows buffered by a [`TableStream`] before they go to disk as one batch.
 const STREAM_BATCH_ROWS: usize = 50_000;
@@ -91,8 +127,10 @@ impl Table {
 
     /// Writes `dir/stem.parquet` and `dir/stem.csv`; returns both paths.
     pub fn write(&self, dir: &Path, stem: &str) -> Result<Vec<PathBuf>> {
-        fs::create_dir_all(dir)
-            .with_context(|| format!("cannot create the output folder `{}`", dir.display()))?;
+        fs::create_dir_all(dir).map_err(|source| TableError::Folder {
+            path: dir.to_path_buf(),
+            source,
+        })?;
         let mut df = self.frame()?;
         let pq = dir.join(format!("{stem}.parquet"));
         write_atomic(&pq, |f| {
@@ -209,6 +247,14 @@ impl TableStream {
         }
     }
 
+    /// A failed write of the stream, named by the table it makes.
+    fn write_error(&self, e: impl Into<FillError>) -> TableError {
+        TableError::Write {
+            path: self.dir.join(format!("{}.parquet", self.stem)),
+            source: e.into(),
+        }
+    }
+
     fn tmp(&self, ext: &str) -> PathBuf {
         self.dir
             .join(format!(".{}.{ext}.{}.tmp", self.stem, std::process::id()))
@@ -235,26 +281,46 @@ impl TableStream {
         self.buffer.clear();
         self.buffered = 0;
         if self.writers.is_none() {
-            fs::create_dir_all(&self.dir).with_context(|| {
-                format!("cannot create the output folder `{}`", self.dir.display())
+            fs::create_dir_all(&self.dir).map_err(|source| TableError::Folder {
+                path: self.dir.clone(),
+                source,
             })?;
             let (pq, csv) = (self.tmp("parquet"), self.tmp("csv"));
-            let fp = fs::File::create(&pq)
-                .with_context(|| format!("cannot create `{}`", pq.display()))?;
-            let fc = fs::File::create(&csv)
-                .with_context(|| format!("cannot create `{}`", csv.display()))?;
+            let create = |p: &PathBuf| {
+                fs::File::create(p).map_err(|source| TableError::Create {
+                    path: p.clone(),
+                    source,
+                })
+            };
+            let (fp, fc) = (create(&pq)?, create(&csv)?);
             let schema = df.schema().as_ref().clone();
+            let clone = |f: &fs::File, p: &PathBuf| {
+                f.try_clone().map_err(|source| TableError::Create {
+                    path: p.clone(),
+                    source,
+                })
+            };
+            let parquet = ParquetWriter::new(clone(&fp, &pq)?)
+                .batched(&schema)
+                .map_err(|e| self.write_error(e))?;
+            let csv_writer = CsvWriter::new(std::io::BufWriter::new(clone(&fc, &csv)?))
+                .include_header(true)
+                .batched(&schema)
+                .map_err(|e| self.write_error(e))?;
             self.writers = Some(StreamWriters {
-                parquet: ParquetWriter::new(fp.try_clone()?).batched(&schema)?,
-                csv: CsvWriter::new(std::io::BufWriter::new(fc.try_clone()?))
-                    .include_header(true)
-                    .batched(&schema)?,
+                parquet,
+                csv: csv_writer,
                 files: [(pq, fp), (csv, fc)],
             });
         }
+        let path = self.dir.join(format!("{}.parquet", self.stem));
+        let err = |e: PolarsError| TableError::Write {
+            path: path.clone(),
+            source: e.into(),
+        };
         let w = self.writers.as_mut().expect("created above");
-        w.parquet.write_batch(&df)?;
-        w.csv.write_batch(&df)?;
+        w.parquet.write_batch(&df).map_err(err)?;
+        w.csv.write_batch(&df).map_err(err)?;
         Ok(())
     }
 
@@ -266,17 +332,22 @@ impl TableStream {
         }
         self.flush()?;
         let w = self.writers.take().expect("flushed at least once");
-        w.parquet.finish()?;
+        w.parquet.finish().map_err(|e| self.write_error(e))?;
         let mut csv = w.csv;
-        csv.finish()?;
+        csv.finish().map_err(|e| self.write_error(e))?;
         drop(csv);
         drop(w.parquet);
         let mut out = Vec::new();
         for ((tmp, f), ext) in w.files.into_iter().zip(["parquet", "csv"]) {
-            f.sync_all()?;
             let path = self.dir.join(format!("{}.{ext}", self.stem));
-            fs::rename(&tmp, &path)
-                .with_context(|| format!("cannot move `{}` into place", path.display()))?;
+            f.sync_all().map_err(|e| TableError::Write {
+                path: path.clone(),
+                source: e.into(),
+            })?;
+            fs::rename(&tmp, &path).map_err(|source| TableError::Rename {
+                path: path.clone(),
+                source,
+            })?;
             out.push(path);
         }
         Ok(out)
@@ -295,9 +366,15 @@ impl Drop for TableStream {
 }
 
 /// Writes through a temporary file in the same folder, then renames it into place.
-pub fn write_atomic(path: &Path, fill: impl FnOnce(&mut fs::File) -> Result<()>) -> Result<()> {
+pub fn write_atomic(
+    path: &Path,
+    fill: impl FnOnce(&mut fs::File) -> std::result::Result<(), FillError>,
+) -> Result<()> {
     let dir = path.parent().unwrap_or(Path::new("."));
-    fs::create_dir_all(dir).with_context(|| format!("cannot create `{}`", dir.display()))?;
+    fs::create_dir_all(dir).map_err(|source| TableError::Create {
+        path: dir.to_path_buf(),
+        source,
+    })?;
     let name = path
         .file_name()
         .map(|n| n.to_string_lossy().to_string())
@@ -307,20 +384,27 @@ pub fn write_atomic(path: &Path, fill: impl FnOnce(&mut fs::File) -> Result<()>)
     static SERIAL: std::sync::atomic::AtomicU64 = std::sync::atomic::AtomicU64::new(0);
     let serial = SERIAL.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
     let tmp = dir.join(format!(".{name}.{}-{serial}.tmp", std::process::id()));
-    let result = (|| -> Result<()> {
-        let mut f =
-            fs::File::create(&tmp).with_context(|| format!("cannot create `{}`", tmp.display()))?;
+    let result = (|| -> std::result::Result<(), FillError> {
+        let mut f = fs::File::create(&tmp).map_err(|source| TableError::Create {
+            path: tmp.clone(),
+            source,
+        })?;
         fill(&mut f)?;
         f.flush()?;
         f.sync_all()?;
         Ok(())
     })();
-    if let Err(e) = result {
+    if let Err(source) = result {
         let _ = fs::remove_file(&tmp);
-        return Err(e.context(format!("cannot write `{}`", path.display())));
+        return Err(TableError::Write {
+            path: path.to_path_buf(),
+            source,
+        });
     }
-    fs::rename(&tmp, path)
-        .with_context(|| format!("cannot move `{}` into place", path.display()))?;
+    fs::rename(&tmp, path).map_err(|source| TableError::Rename {
+        path: path.to_path_buf(),
+        source,
+    })?;
     Ok(())
 }
 
@@ -333,6 +417,8 @@ pub fn write_bytes_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
 }
 
 #[cfg(test)]
+// Values here are exact by construction (sums of binary fractions, integers).
+#[allow(clippy::float_cmp)]
 mod tests {
     use super::*;
 

@@ -21,7 +21,11 @@ pub struct EpochSpan {
     pub recorded: bool,
 }
 
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
+/// A capture's place in the protocol, as the epochs table writes it.
+#[derive(
+    Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord, serde::Serialize, serde::Deserialize,
+)]
+#[serde(rename_all = "kebab-case")]
 pub enum CaptureStatus {
     /// In an epoch, after its settle window: used for analysis.
     Steady,
@@ -29,15 +33,30 @@ pub enum CaptureStatus {
     Settling,
     /// Before the first epoch or after the last.
     Outside,
+    /// Left out by the study file's `exclusions` (never given by [`assign`]).
+    Excluded,
 }
 
 impl CaptureStatus {
+    /// Analysed by the image stage: steady, or settling (kept for the
+    /// time course, left out of the steady-state statistics).
+    pub fn analysed(&self) -> bool {
+        matches!(self, CaptureStatus::Steady | CaptureStatus::Settling)
+    }
+
     pub fn as_str(&self) -> &'static str {
         match self {
             CaptureStatus::Steady => "steady",
             CaptureStatus::Settling => "settling",
             CaptureStatus::Outside => "outside",
+            CaptureStatus::Excluded => "excluded",
         }
+    }
+}
+
+impl std::fmt::Display for CaptureStatus {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(self.as_str())
     }
 }
 
@@ -93,6 +112,8 @@ pub fn assign(spans: &[EpochSpan], t_s: f64) -> (Option<usize>, CaptureStatus) {
 }
 
 #[cfg(test)]
+// Values here are exact by construction (sums of binary fractions, integers).
+#[allow(clippy::float_cmp)]
 mod tests {
     use super::*;
     use crate::config::protocol::{Epoch, Gas, GasSpec, ReferenceSettings};

@@ -10,7 +10,8 @@
 use crate::config::protocol::ReferenceSettings;
 pub use crate::config::spo2log::SpO2Log;
 
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "kebab-case")]
 pub enum ReferenceStatus {
     Ok,
     Unstable,

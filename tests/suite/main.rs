@@ -6,6 +6,9 @@
 //!   whole simulated studies (the long runs are `#[ignore]`d; `.ci/run` runs them).
 //! - [`architecture`]: the layering of the source tree.
 
+// Tests may print what they measured (shown with --nocapture).
+#![allow(clippy::print_stdout)]
+
 mod architecture;
 mod commands;
 mod common;

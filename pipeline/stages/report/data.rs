@@ -3,6 +3,9 @@
 //! mixed-model estimates, agreement pairs, one segment's profile of SO2
 //! along its length for the methods side by side, and sensitivity curves.
 
+use crate::config::segments::VesselKind;
+use crate::stats::summary::mean;
+use crate::timeline::assign::CaptureStatus;
 use std::collections::BTreeMap;
 
 use crate::config::study::{Instrument, MethodKind, Study};
@@ -191,7 +194,11 @@ fn courses(study: &Study, epochs: &EpochTables, fits: &[FitRow], method: &str) -
         if let Some(v) = r.so2.filter(|v| v.is_finite()) {
             per.entry((
                 r.capture_index,
-                if r.kind == "arteriole" { "a" } else { "v" },
+                if r.kind == VesselKind::Arteriole {
+                    "a"
+                } else {
+                    "v"
+                },
             ))
             .or_default()
             .push(v);
@@ -230,11 +237,7 @@ fn courses(study: &Study, epochs: &EpochTables, fits: &[FitRow], method: &str) -
             {
                 for (k, dst) in [("a", &mut course.arterioles), ("v", &mut course.venules)] {
                     if let Some(v) = per.get(&(i, k)) {
-                        dst.push((
-                            row.t_s / 60.0,
-                            v.iter().sum::<f64>() / v.len() as f64,
-                            row.status == "steady",
-                        ));
+                        dst.push((row.t_s / 60.0, mean(v), row.status == CaptureStatus::Steady));
                     }
                 }
             }
@@ -311,9 +314,9 @@ fn along_segment(
         .iter()
         .filter(|r| {
             r.method == primary
-                && r.kind == "arteriole"
+                && r.kind == VesselKind::Arteriole
                 && r.so2.is_some()
-                && c[r.capture_index].status == "steady"
+                && c[r.capture_index].status == CaptureStatus::Steady
                 && c[r.capture_index].epoch.as_deref() == Some(baseline)
         })
         .min_by_key(|r| (r.capture_index, -r.positions))?;
@@ -399,7 +402,7 @@ fn along_segment(
         subject: c[ci].subject.clone(),
         capture: c[ci].capture.clone(),
         segment: joint.segment.clone(),
-        kind: joint.kind.clone(),
+        kind: joint.kind.to_string(),
         series,
         joint: joint.so2.map(|v| {
             (
@@ -436,7 +439,11 @@ pub fn sensitivity_curves(
         .map(|b| instrument.bands[*b].name.clone())
         .collect();
     let centres_nm = bands.iter().map(SampledBand::centroid_nm).collect();
-    let model = crate::oximetry::model::VesselModel::new(&bands, |_| 1.0, 0.04);
+    let model = crate::oximetry::model::VesselModel::new(
+        &bands,
+        |_| 1.0,
+        crate::oximetry::model::BLOOD_BACKSCATTER,
+    );
     let rows = Weights::ALL
         .iter()
         .map(|w| {

@@ -266,12 +266,7 @@ impl Document<'_> {
     fn failures(&self) -> Vec<String> {
         let c = &self.inp.epochs.captures;
         let mut v: Vec<String> = (0..c.len())
-            .filter(|i| {
-                matches!(
-                    self.inp.images.status[*i].status.as_str(),
-                    "error" | "not-registered"
-                )
-            })
+            .filter(|i| self.inp.images.status[*i].status.failed())
             .map(|i| {
                 format!(
                     "{} {} `{}`: {} ({})",

@@ -2,6 +2,8 @@
 //! numbers rounded as a paper prints them) and written as CSV, Markdown and
 //! LaTeX (booktabs). The unrounded values stay in the stages' own tables.
 
+use crate::stats::summary::{mean, sd};
+use crate::timeline::assign::CaptureStatus;
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
@@ -198,10 +200,10 @@ pub fn usage(epochs: &EpochTables, images: &ImageTables, fits: &[FitRow]) -> Vec
         .enumerate()
         .map(|(i, c)| {
             // A capture that could not be read or registered says so first.
-            if matches!(images.status[i].status.as_str(), "error" | "not-registered") {
-                Some(images.status[i].status.clone())
-            } else if c.status != "steady" {
-                Some(c.status.clone())
+            if images.status[i].status.failed() {
+                Some(images.status[i].status.to_string())
+            } else if c.status != CaptureStatus::Steady {
+                Some(c.status.to_string())
             } else if !with_so2[i] {
                 Some("no segment fitted".into())
             } else {
@@ -340,14 +342,7 @@ pub fn so2_by_epoch(study: &Study, stats: &StatisticsTables) -> ReportTable {
                     if v.is_empty() {
                         return "–".into();
                     }
-                    let mean = v.iter().sum::<f64>() / v.len() as f64;
-                    let sd = if v.len() > 1 {
-                        (v.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / (v.len() - 1) as f64)
-                            .sqrt()
-                    } else {
-                        f64::NAN
-                    };
-                    format!("{} ± {}", f(mean, 1), f(sd, 1))
+                    format!("{} ± {}", f(mean(&v), 1), f(sd(&v), 1))
                 })
                 .collect();
             let mut row = vec![m.label.clone(), e.name.clone(), n.to_string()];

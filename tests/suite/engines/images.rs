@@ -6,6 +6,7 @@ use satstep::config::segments::{Segment, VesselKind};
 use satstep::images::ingest::{CaptureError, read_capture};
 use satstep::images::register::register;
 use satstep::oximetry::bands::SampledBand;
+use satstep::oximetry::model::BLOOD_BACKSCATTER;
 use satstep::simulate::render::{Motion, Scene, VesselState, render, write_tiff};
 
 fn vessels() -> Vec<Segment> {
@@ -58,7 +59,7 @@ fn capture(motion: Motion, noise_seed: Option<u64>) -> Vec<Vec<u16>> {
         pigmentation: 2.0,
         veil: 0.1,
         hb_g_per_l: 150.0,
-        backscatter: 0.04,
+        backscatter: BLOOD_BACKSCATTER,
         // Without noise: an enormous well makes shot noise negligible.
         well_electrons: if noise_seed.is_some() { 20_000.0 } else { 1e15 },
         read_noise_electrons: if noise_seed.is_some() { 6.0 } else { 0.0 },
@@ -113,6 +114,8 @@ fn registration_recovers_known_motion() {
 }
 
 #[test]
+// Pixel values compared here are exact by construction.
+#[allow(clippy::float_cmp)]
 fn ingest_reads_every_supported_depth_and_refuses_the_rest() {
     let dir = tempfile::tempdir().unwrap();
     let pages = capture(Motion::default(), Some(1));
@@ -258,7 +261,7 @@ fn profiles_recover_known_transmission_and_diameter() {
             pigmentation: 2.0,
             veil,
             hb_g_per_l: 150.0,
-            backscatter: 0.04,
+            backscatter: BLOOD_BACKSCATTER,
             well_electrons: if noisy { 20_000.0 } else { 1e15 },
             read_noise_electrons: if noisy { 6.0 } else { 0.0 },
         };
@@ -270,7 +273,11 @@ fn profiles_recover_known_transmission_and_diameter() {
             bands: pages.iter().map(|p| as_f32(p)).collect(),
             bit_depth: 16,
         };
-        let model = VesselModel::new(&bands, |l| background_reflectance(l, 2.0), 0.04);
+        let model = VesselModel::new(
+            &bands,
+            |l| background_reflectance(l, 2.0),
+            BLOOD_BACKSCATTER,
+        );
         let mut truth = vec![0.0; 2];
         model.transmission(
             &Shared {
@@ -356,7 +363,7 @@ fn dark_flat_and_band_offsets_are_corrected() {
             pigmentation: 2.0,
             veil: 0.1,
             hb_g_per_l: 150.0,
-            backscatter: 0.04,
+            backscatter: BLOOD_BACKSCATTER,
             well_electrons: 1e15,
             read_noise_electrons: 0.0,
         };
@@ -514,7 +521,7 @@ fn a_central_reflex_does_not_bias_the_transmission() {
         pigmentation: 2.0,
         veil,
         hb_g_per_l: 150.0,
-        backscatter: 0.04,
+        backscatter: BLOOD_BACKSCATTER,
         well_electrons: 1e15,
         read_noise_electrons: 0.0,
     };
@@ -543,7 +550,11 @@ fn a_central_reflex_does_not_bias_the_transmission() {
                 .collect()
         })
         .collect();
-    let model = VesselModel::new(&bands, |l| background_reflectance(l, 2.0), 0.04);
+    let model = VesselModel::new(
+        &bands,
+        |l| background_reflectance(l, 2.0),
+        BLOOD_BACKSCATTER,
+    );
     let mut truth = vec![0.0; 2];
     model.transmission(
         &Shared {

@@ -5,6 +5,7 @@ use rand_distr::{Distribution, Normal};
 use rayon::prelude::*;
 use satstep::oximetry::bands::SampledBand;
 use satstep::oximetry::hemoglobin::{extinction, isosbestic_points};
+use satstep::oximetry::model::BLOOD_BACKSCATTER;
 use satstep::oximetry::model::{Shared, VesselModel};
 use satstep::oximetry::pointwise::fit_pointwise;
 use satstep::oximetry::segment::{FitSettings, RobustLoss, SegmentSpectra, fit_segment};
@@ -98,7 +99,7 @@ fn spectra(
 
 #[test]
 fn joint_fit_recovers_so2_with_honest_standard_errors() {
-    let model = VesselModel::new(&eight_bands(), |_| 1.0, 0.04);
+    let model = VesselModel::new(&eight_bands(), |_| 1.0, BLOOD_BACKSCATTER);
     let settings = FitSettings {
         loss: RobustLoss::Squared,
         ..FitSettings::default()
@@ -147,7 +148,7 @@ fn joint_fit_recovers_so2_with_honest_standard_errors() {
 
 #[test]
 fn pointwise_fits_spread_more_than_the_joint_fit() {
-    let model = VesselModel::new(&eight_bands(), |_| 1.0, 0.04);
+    let model = VesselModel::new(&eight_bands(), |_| 1.0, BLOOD_BACKSCATTER);
     let settings = FitSettings {
         loss: RobustLoss::Squared,
         ..FitSettings::default()
@@ -187,7 +188,7 @@ fn huber_loss_resists_a_crossing() {
     // Six of thirty positions lie over a crossing vessel: their transmission
     // is 15 % lower in every band. The robust fit stays near the truth, the
     // squared loss is dragged further.
-    let model = VesselModel::new(&eight_bands(), |_| 1.0, 0.04);
+    let model = VesselModel::new(&eight_bands(), |_| 1.0, BLOOD_BACKSCATTER);
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(5);
     let mut s = spectra(&model, 0.9, 0.2, 30, &mut rng);
     for p in 12..18 {
@@ -244,7 +245,7 @@ fn curves(model: &VesselModel, unknowns: Unknowns, weights: Weights) -> Vec<(Vec
 /// for every band and both multiband methods.
 #[test]
 fn the_veil_inflates_error_propagation_in_every_band() {
-    let model = VesselModel::new(&eight_bands(), |_| 1.0, 0.04);
+    let model = VesselModel::new(&eight_bands(), |_| 1.0, BLOOD_BACKSCATTER);
     let op = OperatingPoint::default();
     let mut clear = vec![0.0; model.n_bands()];
     model.transmission(
@@ -297,7 +298,7 @@ fn the_veil_inflates_error_propagation_in_every_band() {
 /// reports as `refitted`.
 #[test]
 fn refitted_weights_grow_with_the_veil_past_small_veils() {
-    let model = VesselModel::new(&eight_bands(), |_| 1.0, 0.04);
+    let model = VesselModel::new(&eight_bands(), |_| 1.0, BLOOD_BACKSCATTER);
     let rows = curves(&model, Unknowns::VeilShared, Weights::Refitted);
     for b in 0..model.n_bands() {
         for (i, w) in rows.windows(2).enumerate() {
@@ -333,7 +334,7 @@ fn refitted_weights_grow_with_the_veil_past_small_veils() {
 /// the `multiband` linearisation predicts, scaled to 1 %.
 #[test]
 fn linearised_errors_predict_the_joint_fit_shift() {
-    let model = VesselModel::new(&eight_bands(), |_| 1.0, 0.04);
+    let model = VesselModel::new(&eight_bands(), |_| 1.0, BLOOD_BACKSCATTER);
     let settings = FitSettings {
         loss: RobustLoss::Squared,
         ..FitSettings::default()
@@ -404,7 +405,7 @@ fn linearised_errors_predict_the_joint_fit_shift() {
 #[test]
 fn single_band_errors_beside_the_rule_of_thumb() {
     let op = OperatingPoint::default();
-    let eight = VesselModel::new(&eight_bands(), |_| 1.0, 0.04);
+    let eight = VesselModel::new(&eight_bands(), |_| 1.0, BLOOD_BACKSCATTER);
     let (per, all) = so2_errors(
         &eight,
         &op,
@@ -421,7 +422,7 @@ fn single_band_errors_beside_the_rule_of_thumb() {
         .map(|c| SampledBand::gaussian(*c, 8.0))
         .collect();
     let (per5, _) = so2_errors(
-        &VesselModel::new(&five, |_| 1.0, 0.04),
+        &VesselModel::new(&five, |_| 1.0, BLOOD_BACKSCATTER),
         &op,
         0.0,
         0.01,

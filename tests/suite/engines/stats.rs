@@ -143,6 +143,8 @@ fn sleepstudy_ml_likelihood_ratio() {
 }
 
 #[test]
+// Degrees of freedom compared here are exact by construction.
+#[allow(clippy::float_cmp)]
 fn simulated_nested_balanced() {
     let d = design(
         "sim_nested_balanced.csv",

@@ -92,6 +92,7 @@ fn every_scenario_in_the_repository_simulates_into_a_valid_study() {
 }
 
 #[test]
+#[ignore = "runs the whole demo study (about 90 s on two cores); .ci/run runs it"]
 fn simulated_reference_and_truth_are_physiological() {
     let dir = tempfile::tempdir().unwrap();
     let out = simulated(dir.path(), "demo-study/scenario.yaml", "demo");
