@@ -10,7 +10,7 @@ use crate::console::{Level, Printer};
 
 #[derive(Parser, Debug)]
 #[command(name = "satstep", version, about = "Breathing-challenge retinal oximetry studies: from protocol and captures to per-vessel SO2, statistics and report.", long_about = None)]
-pub struct Cli {
+pub(crate) struct Cli {
     #[command(flatten)]
     pub global: Global,
     #[command(subcommand)]
@@ -18,7 +18,7 @@ pub struct Cli {
 }
 
 #[derive(Args, Debug, Clone)]
-pub struct Global {
+pub(crate) struct Global {
     /// Print only errors.
     #[arg(short, long, global = true, conflicts_with = "verbose")]
     pub quiet: bool,

@@ -10,7 +10,7 @@ use crate::console::Printer;
 use crate::timeline::show::render_timeline;
 
 /// Prints a protocol's timeline.
-pub fn show_protocol(file: &Path, printer: &Printer) -> Result<Exit> {
+pub(crate) fn show_protocol(file: &Path, printer: &Printer) -> Result<Exit> {
     match load_protocol(file) {
         Ok(p) => {
             printer.data(render_timeline(&p));

@@ -21,7 +21,7 @@ use crate::tables::Table;
 /// Reads the instrument from a study file (only its `instrument:` is
 /// needed, so this works before any data exist) or from an instrument file
 /// (`name`, `pixel_size_um`, `bands` at the top).
-pub fn load_instrument(path: &Path) -> Result<Instrument, Findings> {
+pub(crate) fn load_instrument(path: &Path) -> Result<Instrument, Findings> {
     let mut findings = Findings::new();
     let Some(root) = crate::config::read::load_tree(
         path,

@@ -16,7 +16,7 @@ pub enum ContrastError {
 
 /// The expression's terms in written order, each name once with its
 /// weights added up (`a - b + a` gives `a: 2, b: -1`).
-pub fn parse_terms(text: &str) -> Result<Vec<(String, f64)>, ContrastError> {
+pub(crate) fn parse_terms(text: &str) -> Result<Vec<(String, f64)>, ContrastError> {
     let tokens: Vec<&str> = text.split_whitespace().collect();
     if tokens.is_empty() {
         return Err(ContrastError::Syntax("it is empty".into()));

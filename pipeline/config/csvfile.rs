@@ -136,7 +136,7 @@ pub fn read_csv(path: &Path, findings: &mut Findings) -> Option<CsvTable> {
 }
 
 /// Reads a table that is either CSV or, by the `.parquet` extension, Parquet.
-pub fn read_table(path: &Path, findings: &mut Findings) -> Option<CsvTable> {
+pub(crate) fn read_table(path: &Path, findings: &mut Findings) -> Option<CsvTable> {
     if path
         .extension()
         .is_some_and(|e| e.eq_ignore_ascii_case("parquet"))

@@ -151,7 +151,7 @@ impl Finding {
 }
 
 /// The names in `valid` nearest to `word`, best first, for "expected one of".
-pub fn nearest<'a>(word: &str, valid: &[&'a str]) -> Vec<&'a str> {
+pub(crate) fn nearest<'a>(word: &str, valid: &[&'a str]) -> Vec<&'a str> {
     let mut scored: Vec<(f64, &'a str)> = valid
         .iter()
         .map(|v| {
@@ -179,7 +179,7 @@ pub fn nearest<'a>(word: &str, valid: &[&'a str]) -> Vec<&'a str> {
 }
 
 /// "did you mean `x`? expected one of `a`, `b`, `c`".
-pub fn suggest(word: &str, valid: &[&str]) -> String {
+pub(crate) fn suggest(word: &str, valid: &[&str]) -> String {
     let near = nearest(word, valid);
     let all = valid
         .iter()

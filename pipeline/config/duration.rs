@@ -6,7 +6,7 @@ use super::ValueError;
 
 /// Parses a duration into seconds. Parts go from larger to smaller units
 /// (`1h30min`, not `30min1h`); each unit at most once.
-pub fn parse_seconds(text: &str) -> Result<f64, ValueError> {
+pub(crate) fn parse_seconds(text: &str) -> Result<f64, ValueError> {
     let t = text.trim();
     if t.is_empty() {
         return Err(ValueError("the duration is empty".into()));
@@ -55,7 +55,7 @@ pub fn parse_seconds(text: &str) -> Result<f64, ValueError> {
 }
 
 /// Formats seconds compactly, the inverse of [`parse_seconds`] for whole seconds.
-pub fn format_seconds(secs: f64) -> String {
+pub(crate) fn format_seconds(secs: f64) -> String {
     let neg = secs < 0.0;
     let mut s = secs.abs().round() as u64;
     let h = s / 3600;

@@ -21,4 +21,4 @@ pub mod yaml;
 /// with the value as written.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
 #[error("{0}")]
-pub struct ValueError(pub String);
+pub(crate) struct ValueError(pub String);

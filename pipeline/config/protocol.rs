@@ -179,7 +179,7 @@ pub fn load_protocol(path: &Path) -> Result<Protocol, Findings> {
 
 /// Reads a protocol from a YAML node (a protocol file's root, or a study
 /// file's inline `protocol:`).
-pub fn read_protocol(r: &mut Reader, node: &Node) -> Option<Protocol> {
+pub(crate) fn read_protocol(r: &mut Reader, node: &Node) -> Option<Protocol> {
     let m = r.map(node, "the protocol", PROTOCOL_KEYS)?;
     let name = m.get("name").and_then(|n| r.text(n, "`name`"));
     if m.get("name").is_none() {
@@ -466,7 +466,7 @@ fn read_reference(r: &mut Reader, node: &Node) -> Option<ReferenceSettings> {
 /// Parses `a - b`, `0.5*a + 0.5*b - c` (see [`super::contrast`]) over the
 /// epochs; weights must sum to zero so that the contrast compares epochs
 /// rather than measuring a level.
-pub fn parse_contrast(text: &str, epochs: &[&str]) -> Result<Contrast, ContrastError> {
+pub(crate) fn parse_contrast(text: &str, epochs: &[&str]) -> Result<Contrast, ContrastError> {
     let mut weights: Vec<(usize, f64)> = Vec::new();
     for (name, w) in parse_terms(text)? {
         let idx = epochs

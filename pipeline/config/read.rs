@@ -13,7 +13,12 @@ use crate::config::time::parse_time;
 
 /// Reads and parses a YAML file; a missing file or a syntax error becomes
 /// findings (`cannot read the {what}: …` with `hint`).
-pub fn load_tree(path: &Path, what: &str, hint: &str, findings: &mut Findings) -> Option<Node> {
+pub(crate) fn load_tree(
+    path: &Path,
+    what: &str,
+    hint: &str,
+    findings: &mut Findings,
+) -> Option<Node> {
     let text = match std::fs::read_to_string(path) {
         Ok(t) => t,
         Err(e) => {

@@ -62,7 +62,11 @@ const FILE_KEYS: &[&str] = &["eye", "segments"];
 const SEGMENT_KEYS: &[&str] = &["id", "kind", "points", "notes"];
 
 /// Reads a segment file for `eye`; findings go to `findings`.
-pub fn load_segments(path: &Path, eye: Eye, findings: &mut Findings) -> Option<Vec<Segment>> {
+pub(crate) fn load_segments(
+    path: &Path,
+    eye: Eye,
+    findings: &mut Findings,
+) -> Option<Vec<Segment>> {
     let root = super::read::load_tree(
         path,
         "segment file",

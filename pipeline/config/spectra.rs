@@ -52,7 +52,7 @@ const COLUMNS: &[&str] = &[
 ];
 
 /// Reads and checks the table against the instrument's band names.
-pub fn read_spectra(
+pub(crate) fn read_spectra(
     path: &Path,
     bands: &[String],
     findings: &mut Findings,

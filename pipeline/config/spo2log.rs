@@ -26,7 +26,7 @@ pub struct SpO2Log {
 }
 
 /// Reads a log; malformed lines are findings with `file:line:column`.
-pub fn read_log(
+pub(crate) fn read_log(
     log: &ReferenceLog,
     session_start: &DateTime<FixedOffset>,
     findings: &mut Findings,

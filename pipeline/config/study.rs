@@ -265,7 +265,7 @@ const EXCLUDED_CAPTURE_KEYS: &[&str] = &["file", "reason"];
 /// Reads and checks the study file and the files it lists, keeping the
 /// study even when there are errors so that the session files can be
 /// checked too; [`crate::study::load_study`] reads those and decides.
-pub fn read_study_file(path: &Path) -> (Option<Study>, Findings) {
+pub(crate) fn read_study_file(path: &Path) -> (Option<Study>, Findings) {
     let mut findings = Findings::new();
     let Some(root_node) = super::read::load_tree(
         path,

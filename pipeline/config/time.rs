@@ -8,7 +8,7 @@ use super::ValueError;
 
 /// Parses an ISO 8601 / RFC 3339 date-time with a UTC offset (`Z` allowed),
 /// with `T` or a space between date and time and optional fractional seconds.
-pub fn parse_time(text: &str) -> Result<DateTime<FixedOffset>, ValueError> {
+pub(crate) fn parse_time(text: &str) -> Result<DateTime<FixedOffset>, ValueError> {
     let t = text.trim();
     let normalised = if t.len() > 10 && t.as_bytes()[10] == b' ' {
         let mut s = t.to_string();
@@ -31,7 +31,7 @@ pub fn parse_time(text: &str) -> Result<DateTime<FixedOffset>, ValueError> {
 }
 
 /// Seconds from `a` to `b` (positive when `b` is later), to the microsecond.
-pub fn seconds_between(a: &DateTime<FixedOffset>, b: &DateTime<FixedOffset>) -> f64 {
+pub(crate) fn seconds_between(a: &DateTime<FixedOffset>, b: &DateTime<FixedOffset>) -> f64 {
     let d = b.signed_duration_since(*a);
     d.num_microseconds()
         .map(|us| us as f64 * 1e-6)

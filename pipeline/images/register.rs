@@ -29,7 +29,14 @@ pub struct Registration {
 
 /// The rigid motion `q = R(angle)(p − c) + c + (dx, dy)`, shared by
 /// registration and the simulator's eye motion.
-pub fn rigid(dx: f64, dy: f64, angle_deg: f64, (x, y): (f64, f64), cx: f64, cy: f64) -> (f64, f64) {
+pub(crate) fn rigid(
+    dx: f64,
+    dy: f64,
+    angle_deg: f64,
+    (x, y): (f64, f64),
+    cx: f64,
+    cy: f64,
+) -> (f64, f64) {
     let (s, c) = angle_deg.to_radians().sin_cos();
     let (u, v) = (x - cx, y - cy);
     (cx + c * u - s * v + dx, cy + s * u + c * v + dy)
@@ -42,7 +49,7 @@ impl Registration {
 }
 
 /// Bilinear sample of a row-major image; `None` outside.
-pub fn bilinear(img: &[f32], w: usize, h: usize, x: f64, y: f64) -> Option<f64> {
+pub(crate) fn bilinear(img: &[f32], w: usize, h: usize, x: f64, y: f64) -> Option<f64> {
     if !(x >= 0.0 && y >= 0.0 && x <= (w - 1) as f64 && y <= (h - 1) as f64) {
         return None;
     }
@@ -80,7 +87,12 @@ fn fft2(
 
 /// Integer translation of `moving` relative to `reference` by phase
 /// correlation, with both images windowed (Hann) and de-meaned.
-pub fn phase_correlation(reference: &[f64], moving: &[f64], w: usize, h: usize) -> (f64, f64, f64) {
+pub(crate) fn phase_correlation(
+    reference: &[f64],
+    moving: &[f64],
+    w: usize,
+    h: usize,
+) -> (f64, f64, f64) {
     let mut planner = FftPlanner::<f64>::new();
     let (fr, fc) = (planner.plan_fft_forward(w), planner.plan_fft_forward(h));
     let (ir, ic) = (planner.plan_fft_inverse(w), planner.plan_fft_inverse(h));
@@ -201,7 +213,7 @@ fn downsample(img: &[f32], w: usize, h: usize, f: usize) -> Vec<f32> {
 }
 
 /// Separable Gaussian blur (σ in pixels, edges clamped).
-pub fn blur(img: &[f32], w: usize, h: usize, sigma: f64) -> Vec<f32> {
+pub(crate) fn blur(img: &[f32], w: usize, h: usize, sigma: f64) -> Vec<f32> {
     let r = (3.0 * sigma).ceil() as isize;
     let k: Vec<f64> = (-r..=r)
         .map(|i| (-(i * i) as f64 / (2.0 * sigma * sigma)).exp())

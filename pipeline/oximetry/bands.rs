@@ -5,7 +5,7 @@
 use crate::config::study::BandResponse;
 
 /// Grid step for band integration, nm.
-pub const GRID_NM: f64 = 1.0;
+pub(crate) const GRID_NM: f64 = 1.0;
 
 /// A band sampled on the integration grid: (wavelength nm, weight), weights summing to 1.
 #[derive(Debug, Clone, PartialEq)]

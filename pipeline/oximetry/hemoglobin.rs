@@ -14,10 +14,10 @@ use std::sync::OnceLock;
 const TABLE: &str = include_str!("data/hb_extinction_prahl.tsv");
 
 /// Molar mass of hemoglobin (tetramer), g/mol.
-pub const HB_MOLAR_MASS_G_PER_MOL: f64 = 64_500.0;
+pub(crate) const HB_MOLAR_MASS_G_PER_MOL: f64 = 64_500.0;
 
-pub const MIN_NM: f64 = 250.0;
-pub const MAX_NM: f64 = 1000.0;
+pub(crate) const MIN_NM: f64 = 250.0;
+pub(crate) const MAX_NM: f64 = 1000.0;
 
 /// One row: (wavelength nm, eps HbO2, eps Hb).
 pub fn table() -> &'static [(f64, f64, f64)] {

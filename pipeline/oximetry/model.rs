@@ -56,7 +56,7 @@ pub struct Shared {
 
 /// Number of parameters the derivative of one band transmission is taken
 /// against: (S, hb, k, F_2).
-pub const N_DERIV: usize = 4;
+pub(crate) const N_DERIV: usize = 4;
 
 impl VesselModel {
     /// Prepares bands, each averaged over its response weighted by

@@ -30,7 +30,7 @@ pub fn odr(t_sensitive: f64, t_isosbestic: f64) -> Option<f64> {
 
 /// Segment ODR: ratio of the mean optical densities along the segment
 /// (more stable than the mean of per-position ratios when OD_isosbestic is small).
-pub fn segment_odr(t_sensitive: &[f64], t_isosbestic: &[f64]) -> Option<f64> {
+pub(crate) fn segment_odr(t_sensitive: &[f64], t_isosbestic: &[f64]) -> Option<f64> {
     let (mut s, mut i, mut n) = (0.0, 0.0, 0);
     for (a, b) in t_sensitive.iter().zip(t_isosbestic) {
         if *a > 0.0 && *b > 0.0 {
@@ -44,7 +44,7 @@ pub fn segment_odr(t_sensitive: &[f64], t_isosbestic: &[f64]) -> Option<f64> {
 
 /// `SO2 (%) = intercept + slope · ODR`.
 #[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
-pub struct Linear {
+pub(crate) struct Linear {
     pub intercept: f64,
     pub slope: f64,
 }
@@ -56,7 +56,7 @@ impl Linear {
 }
 
 /// Two-point calibration: arterioles (`odr_a`) at `spo2_a`, venules (`odr_v`) at `so2_v`.
-pub fn two_point(odr_a: f64, spo2_a: f64, odr_v: f64, so2_v: f64) -> Option<Linear> {
+pub(crate) fn two_point(odr_a: f64, spo2_a: f64, odr_v: f64, so2_v: f64) -> Option<Linear> {
     let d = odr_a - odr_v;
     if d.abs() < 1e-12 {
         return None;
@@ -69,7 +69,7 @@ pub fn two_point(odr_a: f64, spo2_a: f64, odr_v: f64, so2_v: f64) -> Option<Line
 }
 
 /// Ordinary least squares of `y` on `x`.
-pub fn ols(x: &[f64], y: &[f64]) -> Option<Linear> {
+pub(crate) fn ols(x: &[f64], y: &[f64]) -> Option<Linear> {
     let n = x.len() as f64;
     if x.len() < 2 || x.len() != y.len() {
         return None;
@@ -89,7 +89,9 @@ pub fn ols(x: &[f64], y: &[f64]) -> Option<Linear> {
 
 /// Leave-one-subject-out regression calibration: for each subject, the
 /// line fitted to all *other* subjects' (ODR, SpO2) pairs.
-pub fn leave_one_subject_out<'a>(pairs: &[(&'a str, f64, f64)]) -> Vec<(&'a str, Option<Linear>)> {
+pub(crate) fn leave_one_subject_out<'a>(
+    pairs: &[(&'a str, f64, f64)],
+) -> Vec<(&'a str, Option<Linear>)> {
     let mut subjects: Vec<&str> = pairs.iter().map(|p| p.0).collect();
     subjects.sort();
     subjects.dedup();
@@ -129,7 +131,7 @@ pub fn within_group_slope(groups: &[Vec<(f64, f64)>]) -> Option<f64> {
 }
 
 /// ODR corrected to the reference diameter.
-pub fn diameter_corrected(odr: f64, diameter_um: f64, slope: f64, reference_um: f64) -> f64 {
+pub(crate) fn diameter_corrected(odr: f64, diameter_um: f64, slope: f64, reference_um: f64) -> f64 {
     odr - slope * (diameter_um - reference_um)
 }
 

@@ -98,7 +98,7 @@ struct Block {
     jl: Vec<f64>,
 }
 
-pub struct JointLin {
+pub(crate) struct JointLin {
     blocks: Vec<Block>,
 }
 

@@ -11,7 +11,7 @@ use serde::Serialize;
 use sha2::{Digest, Sha256};
 
 /// Bumped when the layout of cache entries or keys changes.
-pub const CACHE_FORMAT: u32 = 1;
+pub(crate) const CACHE_FORMAT: u32 = 1;
 
 #[derive(
     Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, serde::Serialize, serde::Deserialize,
@@ -35,7 +35,7 @@ impl fmt::Debug for Key {
     }
 }
 
-pub struct KeyBuilder(Sha256);
+pub(crate) struct KeyBuilder(Sha256);
 
 impl KeyBuilder {
     /// Every key starts from the cache format, the stage's name and its version.
@@ -71,7 +71,7 @@ impl KeyBuilder {
 }
 
 /// Hash of a list of keys (a stage's items, in order).
-pub fn combine(label: &str, keys: impl IntoIterator<Item = Key>) -> Key {
+pub(crate) fn combine(label: &str, keys: impl IntoIterator<Item = Key>) -> Key {
     let mut k = KeyBuilder::new(label, 0);
     for (i, key) in keys.into_iter().enumerate() {
         k.key(&i.to_string(), &key);
@@ -80,7 +80,7 @@ pub fn combine(label: &str, keys: impl IntoIterator<Item = Key>) -> Key {
 }
 
 /// Content hash of a file, streamed.
-pub fn hash_file(path: &Path) -> std::io::Result<Key> {
+pub(crate) fn hash_file(path: &Path) -> std::io::Result<Key> {
     let mut f = std::fs::File::open(path)?;
     let mut h = Sha256::new();
     let mut buf = vec![0u8; 1 << 20];
@@ -97,7 +97,7 @@ pub fn hash_file(path: &Path) -> std::io::Result<Key> {
 /// Content hash of a file, or a fixed marker key for a file that cannot be
 /// read (the stage that reads it reports the error; the key still changes
 /// once the file appears).
-pub fn hash_file_or_missing(path: &Path) -> Key {
+pub(crate) fn hash_file_or_missing(path: &Path) -> Key {
     hash_file(path).unwrap_or_else(|e| {
         let mut k = KeyBuilder::new("unreadable-file", 0);
         k.bytes("error", format!("{:?}", e.kind()).as_bytes());

@@ -12,14 +12,14 @@ use super::StageLog;
 use crate::tables::write_bytes_atomic;
 
 #[derive(Debug, Clone, serde::Serialize)]
-pub struct InputFile {
+pub(crate) struct InputFile {
     pub path: String,
     pub sha256: String,
     pub bytes: u64,
 }
 
 #[derive(Debug, Clone, Default, serde::Serialize)]
-pub struct CaptureCounts {
+pub(crate) struct CaptureCounts {
     pub listed: usize,
     /// Captures whose SO2 entered the statistics (steady, read, registered, fitted).
     pub used: usize,
@@ -28,7 +28,7 @@ pub struct CaptureCounts {
 }
 
 #[derive(Debug, Clone, serde::Serialize)]
-pub struct Manifest {
+pub(crate) struct Manifest {
     pub tool: &'static str,
     pub version: &'static str,
     pub cache_format: u32,

@@ -29,9 +29,6 @@ use cache::{Lookup, StageRecord, Store};
 use key::{Key, KeyBuilder, hash_file};
 use progress::Progress;
 
-/// The stages of `run`, in order; `--force` takes these names.
-pub const STAGES: &[&str] = &["epochs", "images", "fits", "statistics", "report"];
-
 /// What a stage's key is made of.
 pub struct Parts {
     pub settings: Key,

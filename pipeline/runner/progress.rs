@@ -5,7 +5,7 @@ use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
 
 use crate::console::Printer;
 
-pub struct Progress(Option<ProgressBar>);
+pub(crate) struct Progress(Option<ProgressBar>);
 
 impl Progress {
     pub fn new(printer: &Printer, len: usize, what: &str) -> Self {

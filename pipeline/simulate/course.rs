@@ -51,7 +51,7 @@ impl Course {
 }
 
 /// Steady-state PaO2 and SaO2 at `fio2`.
-pub fn steady_state(p: &SubjectPhysiology, fio2: f64, pb_mmhg: f64) -> (f64, f64) {
+pub(crate) fn steady_state(p: &SubjectPhysiology, fio2: f64, pb_mmhg: f64) -> (f64, f64) {
     let drop = ((AIR_O2_FRACTION - fio2) / 0.06).max(0.0);
     let paco2 = p.paco2_air_mmhg - p.ventilatory_gain_mmhg * drop.min(2.5);
     let pao2 = (alveolar_po2_mmhg(fio2, pb_mmhg, paco2, 0.8) - p.a_a_gradient_mmhg).max(15.0);
@@ -59,7 +59,7 @@ pub fn steady_state(p: &SubjectPhysiology, fio2: f64, pb_mmhg: f64) -> (f64, f64
 }
 
 /// Venous saturation from arterial saturation and PaO2.
-pub fn venous(p: &SubjectPhysiology, sao2: f64, pao2: f64) -> f64 {
+pub(crate) fn venous(p: &SubjectPhysiology, sao2: f64, pao2: f64) -> f64 {
     let cap = 1.34 * p.hb_g_per_l / 10.0; // mL O2 per dL per unit saturation
     let ca = cap * sao2 + 0.003 * pao2;
     let hyper = ((pao2 - 100.0) / 500.0).clamp(0.0, 1.0);

@@ -75,7 +75,7 @@ const INSTRUMENT_KEYS: &[&str] = &["name", "bands"];
 const BAND_KEYS: &[&str] = &["name", "centre_nm", "fwhm_nm"];
 
 /// Reads and validates a scenario file.
-pub fn load_scenario(path: &Path) -> Result<Scenario, Findings> {
+pub(crate) fn load_scenario(path: &Path) -> Result<Scenario, Findings> {
     let mut findings = Findings::new();
     let Some(root) =
         crate::config::read::load_tree(path, "scenario file", "check the path", &mut findings)

@@ -73,7 +73,7 @@ pub fn background_reflectance(nm: f64, pigmentation: f64) -> f64 {
 
 /// Band-averaged ⟨t⟩ and ⟨t²⟩ on a chord grid of 1 µm, from the engine's
 /// model family.
-pub struct ChordTable {
+pub(crate) struct ChordTable {
     pub t1: Vec<f64>,
     pub t2: Vec<f64>,
 }

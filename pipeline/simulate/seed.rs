@@ -6,7 +6,7 @@ use rand_chacha::ChaCha8Rng;
 use sha2::{Digest, Sha256};
 
 /// A generator seeded by the master seed and a path of names.
-pub fn rng_for(master: u64, names: &[&str]) -> ChaCha8Rng {
+pub(crate) fn rng_for(master: u64, names: &[&str]) -> ChaCha8Rng {
     let mut h = Sha256::new();
     h.update(master.to_le_bytes());
     for n in names {

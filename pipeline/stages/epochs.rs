@@ -56,7 +56,7 @@ pub struct EpochTables {
 }
 
 /// The epochs stage.
-pub struct Epochs;
+pub(crate) struct Epochs;
 
 impl Stage for Epochs {
     const NAME: &'static str = "epochs";

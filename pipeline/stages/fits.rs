@@ -31,7 +31,7 @@ use crate::runner::{Items, Runner};
 use crate::tables::Table;
 
 /// Fewest unflagged positions a segment needs to be fitted.
-pub const MIN_POSITIONS: usize = 8;
+pub(crate) const MIN_POSITIONS: usize = 8;
 
 /// How a segment's fit ended, as the `termination` column writes it.
 #[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
@@ -363,7 +363,7 @@ fn fit_capture(
 }
 
 /// The vessel model over the method's bands and the fit settings for its loss.
-pub fn multiband_model(
+pub(crate) fn multiband_model(
     bands: &[SampledBand],
     selected: &[usize],
     loss: Loss,
@@ -393,7 +393,7 @@ pub fn multiband_model(
 /// group, so that differences in saturation between captures and kinds do
 /// not enter the slope) and `d_ref` the median diameter of the rows with an
 /// ODR. The uncorrected ODR stays in `odr_uncorrected`. Returns (b, d_ref).
-pub fn correct_for_diameter(rows: &mut [FitRow]) -> Option<(f64, f64)> {
+pub(crate) fn correct_for_diameter(rows: &mut [FitRow]) -> Option<(f64, f64)> {
     let mut groups: BTreeMap<(usize, &str), Vec<(f64, f64)>> = BTreeMap::new();
     for r in rows.iter() {
         if let Some(o) = r

@@ -23,22 +23,22 @@ use crate::runner::key::{Key, KeyBuilder, combine, hash_file_or_missing};
 use crate::tables::{Table, TableStream};
 
 /// Lowest match score at which a capture counts as registered.
-pub const MIN_REGISTRATION_SCORE: f64 = 0.8;
+pub(crate) const MIN_REGISTRATION_SCORE: f64 = 0.8;
 
 /// Half the length of a profile across a vessel, in µm: room for the
 /// widest venules (about 200 µm) and the background either side.
-pub const PROFILE_HALF_LENGTH_UM: f64 = 220.0;
+pub(crate) const PROFILE_HALF_LENGTH_UM: f64 = 220.0;
 
 /// A profile's half length is never below this many pixels (small
 /// sensors, coarse pixels), plus [`PROFILE_MARGIN_PX`].
-pub const PROFILE_MIN_HALF_LENGTH_PX: f64 = 8.0;
+pub(crate) const PROFILE_MIN_HALF_LENGTH_PX: f64 = 8.0;
 
 /// Pixels added to a profile's half length for the background fit.
-pub const PROFILE_MARGIN_PX: f64 = 4.0;
+pub(crate) const PROFILE_MARGIN_PX: f64 = 4.0;
 
 /// Registration and widths use the band nearest this wavelength: near an
 /// isosbestic point, with good vessel contrast in every vessel.
-pub const WIDTH_BAND_NM: f64 = 570.0;
+pub(crate) const WIDTH_BAND_NM: f64 = 570.0;
 
 #[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 pub struct PositionRow {
@@ -115,7 +115,7 @@ pub struct ImageTables {
 }
 
 /// The images stage.
-pub struct Images;
+pub(crate) struct Images;
 
 impl Images {
     /// Each capture's item key: the capture file's content (or its spectra
@@ -187,10 +187,10 @@ impl Stage for Images {
 }
 
 /// One capture's item in the stage's cache.
-pub type CaptureItem = (ImageStatus, Vec<PositionRow>);
+pub(crate) type CaptureItem = (ImageStatus, Vec<PositionRow>);
 
 /// The profile settings for a study's instrument.
-pub fn profile_settings(study: &Study) -> ProfileSettings {
+pub(crate) fn profile_settings(study: &Study) -> ProfileSettings {
     ProfileSettings {
         half_length_px: (PROFILE_HALF_LENGTH_UM / study.instrument.pixel_size_um)
             .max(PROFILE_MIN_HALF_LENGTH_PX)
@@ -200,7 +200,7 @@ pub fn profile_settings(study: &Study) -> ProfileSettings {
 }
 
 /// The stage's settings part: everything besides the files that changes what it computes.
-pub fn settings_key(study: &Study) -> Key {
+pub(crate) fn settings_key(study: &Study) -> Key {
     let mut k = KeyBuilder::new("images-settings", Images::VERSION);
     k.value("bands", &study.instrument.bands.len())
         .value("width-band", &width_band(study))
@@ -233,7 +233,7 @@ pub fn settings_key(study: &Study) -> Key {
 
 /// The band used for registration and widths: the one nearest [`WIDTH_BAND_NM`]
 /// (isosbestic, good vessel contrast in every vessel).
-pub fn width_band(study: &Study) -> usize {
+pub(crate) fn width_band(study: &Study) -> usize {
     let centre = |r: &BandResponse| match r {
         BandResponse::Gaussian { centre_nm, .. } => *centre_nm,
         BandResponse::Table { points, .. } => {
@@ -280,7 +280,7 @@ fn merge(
 }
 
 /// Cache keys of the captures when a spectra table replaces the images.
-pub fn spectra_item_keys(study: &Study, epochs: &EpochTables) -> Vec<Key> {
+pub(crate) fn spectra_item_keys(study: &Study, epochs: &EpochTables) -> Vec<Key> {
     let file = study
         .spectra_file
         .as_deref()
@@ -309,7 +309,7 @@ pub fn spectra_item_keys(study: &Study, epochs: &EpochTables) -> Vec<Key> {
 /// The image stage for a study with a spectra table: each analysed
 /// capture's positions come from the table instead of its images (no
 /// registration, no profile flags; `along_px` is the position index).
-pub fn from_spectra(
+pub(crate) fn from_spectra(
     study: &Study,
     epochs: &EpochTables,
     keys: Vec<Key>,
@@ -388,7 +388,7 @@ pub fn from_spectra(
 }
 
 /// The capture file behind each row of the epoch table.
-pub fn capture_files(study: &Study, epochs: &EpochTables) -> Vec<PathBuf> {
+pub(crate) fn capture_files(study: &Study, epochs: &EpochTables) -> Vec<PathBuf> {
     epochs
         .captures
         .iter()
@@ -408,7 +408,11 @@ pub fn capture_files(study: &Study, epochs: &EpochTables) -> Vec<PathBuf> {
 /// Cache key of each capture: the stage settings, the capture's and its
 /// eye's reference capture's content, the eye's segments and whether the
 /// capture is analysed at all.
-pub fn item_keys(study: &Study, epochs: &EpochTables, hashes: &BTreeMap<PathBuf, Key>) -> Vec<Key> {
+pub(crate) fn item_keys(
+    study: &Study,
+    epochs: &EpochTables,
+    hashes: &BTreeMap<PathBuf, Key>,
+) -> Vec<Key> {
     let settings = settings_key(study);
     let files = capture_files(study, epochs);
     let hash = |p: &Path| {

@@ -17,7 +17,7 @@ pub use stage::{Run, Stage};
 
 /// A stage as the list holds it (the [`Stage`] trait has associated types
 /// and constants, so the list holds this object-safe view of it).
-pub trait Listed: Sync {
+pub(crate) trait Listed: Sync {
     fn name(&self) -> &'static str;
     fn summary(&self) -> &'static str;
     /// Runs the stage through the runner and keeps its result in `run`.
@@ -57,7 +57,7 @@ impl<S: Stage> Listed for S {
 }
 
 /// The stages of `run`, in the order they run.
-pub static STAGES: &[&dyn Listed] = &[
+pub(crate) static STAGES: &[&dyn Listed] = &[
     &epochs::Epochs,
     &images::Images,
     &fits::Fits,
@@ -71,7 +71,7 @@ pub fn names() -> Vec<&'static str> {
 }
 
 /// Runs every stage in order.
-pub fn run_all(run: &mut Run, runner: &Runner) -> Result<()> {
+pub(crate) fn run_all(run: &mut Run, runner: &Runner) -> Result<()> {
     for stage in STAGES {
         run.methods = STAGES.iter().filter_map(|s| s.describe(run)).collect();
         stage.run(run, runner)?;

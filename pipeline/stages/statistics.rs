@@ -156,7 +156,7 @@ fn adjustment(study: &Study) -> Adjustment {
 }
 
 /// The statistics stage.
-pub struct StatisticsStage;
+pub(crate) struct StatisticsStage;
 
 impl Stage for StatisticsStage {
     const NAME: &'static str = "statistics";

@@ -9,10 +9,9 @@
 //!   the differences' variance is split into between- and within-subject
 //!   components by one-way analysis of variance (method of moments, unequal
 //!   replicates), and the limits are `bias ± 1.96·√(σ²_between + σ²_within)`.
-//! - The paired t test, and the likelihood-ratio test between nested models
-//!   fitted by ML.
+//! - The paired t test.
 
-use statrs::distribution::{ChiSquared, ContinuousCDF, StudentsT};
+use statrs::distribution::{ContinuousCDF, StudentsT};
 
 #[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Agreement {
@@ -87,7 +86,7 @@ pub fn agreement<S: AsRef<str> + Ord + Clone>(pairs: &[(S, f64, f64)]) -> Option
 }
 
 /// Paired t test of `a − b`: (mean difference, SE, df, t, two-sided p).
-pub fn paired_t(a: &[f64], b: &[f64]) -> Option<(f64, f64, f64, f64, f64)> {
+pub(crate) fn paired_t(a: &[f64], b: &[f64]) -> Option<(f64, f64, f64, f64, f64)> {
     let d: Vec<f64> = a.iter().zip(b).map(|(x, y)| x - y).collect();
     let n = d.len() as f64;
     if d.len() < 2 {
@@ -101,15 +100,6 @@ pub fn paired_t(a: &[f64], b: &[f64]) -> Option<(f64, f64, f64, f64, f64)> {
         .ok()
         .map(|dist| 2.0 * dist.sf(t.abs()))?;
     Some((m, se, n - 1.0, t, p))
-}
-
-/// Likelihood-ratio test between nested ML fits: (χ², df, p).
-pub fn likelihood_ratio(deviance_small: f64, deviance_large: f64, df: usize) -> (f64, f64, f64) {
-    let chi2 = (deviance_small - deviance_large).max(0.0);
-    let p = ChiSquared::new(df as f64)
-        .map(|d| d.sf(chi2))
-        .unwrap_or(f64::NAN);
-    (chi2, df as f64, p)
 }
 
 #[cfg(test)]
@@ -171,13 +161,5 @@ mod tests {
             (se - (1.0f64 / 3.0).sqrt()).abs() < 1e-12 && (t - 2.0 * 3.0f64.sqrt()).abs() < 1e-12
         );
         assert!((p - 0.0742).abs() < 1e-3, "{p}");
-    }
-
-    #[test]
-    fn lrt_matches_the_reference_chi_square() {
-        // lmm_reference.out: sleepstudy ML, χ² 42.139 on 2 df, p 7.072e-10.
-        let (c, df, p) = likelihood_ratio(1794.07864301, 1751.93934449, 2);
-        assert!((c - 42.139).abs() < 1e-3 && df == 2.0);
-        assert!((p - 7.072e-10).abs() < 1e-12, "{p}");
     }
 }

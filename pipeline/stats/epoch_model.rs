@@ -51,7 +51,7 @@ use super::summary::mean;
 
 /// lme4's default tolerance for a singular fit (`isSingular(tol = 1e-4)`),
 /// on the relative covariance factor θ.
-pub const BOUNDARY_THETA: f64 = 1e-4;
+pub(crate) const BOUNDARY_THETA: f64 = 1e-4;
 
 /// One segment value of one capture.
 #[derive(Debug, Clone, PartialEq)]
@@ -161,7 +161,7 @@ pub struct EpochAnalysis {
 }
 
 /// Group name of the subject-specific deviation in epoch `name`.
-pub fn epoch_term_name(name: &str) -> String {
+pub(crate) fn epoch_term_name(name: &str) -> String {
     format!("subject:epoch={name}")
 }
 
@@ -265,7 +265,7 @@ fn segment_means(obs: &[Observation]) -> BySegment<'_, f64> {
 /// vessel with itself keeps the changing mix of segments that yield a
 /// value from posing as a change. Subjects without such a segment are left
 /// out.
-pub fn subject_contrasts(obs: &[Observation], spec: &ContrastSpec) -> Vec<(String, f64)> {
+pub(crate) fn subject_contrasts(obs: &[Observation], spec: &ContrastSpec) -> Vec<(String, f64)> {
     let involved: Vec<(usize, f64)> = spec
         .weights
         .iter()
@@ -291,7 +291,7 @@ pub fn subject_contrasts(obs: &[Observation], spec: &ContrastSpec) -> Vec<(Strin
 
 /// One-sample t test over subjects of each subject's contrast
 /// ([`subject_contrasts`]); `None` with fewer than two subjects.
-pub fn subject_level_test(
+pub(crate) fn subject_level_test(
     obs: &[Observation],
     spec: &ContrastSpec,
     confidence: f64,
@@ -471,7 +471,10 @@ pub struct SlopeResult {
 }
 
 /// `cells`: (subject, SO2 epoch mean, SpO2 epoch mean).
-pub fn slope_on_reference(cells: &[(String, f64, f64)], confidence: f64) -> Option<SlopeResult> {
+pub(crate) fn slope_on_reference(
+    cells: &[(String, f64, f64)],
+    confidence: f64,
+) -> Option<SlopeResult> {
     let n = cells.len();
     let subjects = {
         let mut s: Vec<&str> = cells.iter().map(|c| c.0.as_str()).collect();

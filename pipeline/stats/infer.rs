@@ -26,7 +26,13 @@ pub fn contrast(model: &Model, fit: &Fit, label: &str, l: &[f64]) -> Test {
 }
 
 /// As [`contrast`], with an interval of the given coverage.
-pub fn contrast_at(model: &Model, fit: &Fit, label: &str, l: &[f64], confidence: f64) -> Test {
+pub(crate) fn contrast_at(
+    model: &Model,
+    fit: &Fit,
+    label: &str,
+    l: &[f64],
+    confidence: f64,
+) -> Test {
     let lv = DVector::from_column_slice(l);
     let est = lv.dot(&DVector::from_column_slice(&fit.beta));
     let var = (lv.transpose() * &fit.vcov * &lv)[0];
@@ -82,7 +88,7 @@ pub fn f_test(model: &Model, fit: &Fit, l: &DMatrix<f64>) -> (f64, f64, f64, f64
 
 /// A p value for people: three decimals, and `< 0.001` below that, so
 /// that a value that underflowed is never printed as 0.
-pub fn format_p(p: f64) -> String {
+pub(crate) fn format_p(p: f64) -> String {
     if !p.is_finite() {
         "–".into()
     } else if p < 0.001 {

@@ -44,7 +44,7 @@ pub enum TableError {
 type Result<T> = std::result::Result<T, TableError>;
 
 /// What a [`write_atomic`] filler may fail with.
-pub type FillError = Box<dyn std::error::Error + Send + Sync>;
+pub(crate) type FillError = Box<dyn std::error::Error + Send + Sync>;
 
 /// Rows buffered by a [`TableStream`] before they go to disk as one batch.
 const STREAM_BATCH_ROWS: usize = 50_000;
@@ -148,7 +148,7 @@ impl Table {
 
 /// Why a Parquet file could not be read as cells.
 #[derive(Debug)]
-pub enum CellsError {
+pub(crate) enum CellsError {
     /// Not Parquet, or damaged.
     Unreadable(String),
     /// A column of a type that has no plain text form (lists, structs, …).
@@ -163,7 +163,7 @@ pub enum CellsError {
 /// would show them: numbers in their shortest exact form (parsing a cell
 /// gives back the stored value), booleans as `true`/`false`, nulls empty.
 /// Returns the column names and the columns.
-pub fn read_parquet_cells(
+pub(crate) fn read_parquet_cells(
     path: &Path,
 ) -> std::result::Result<(Vec<String>, Vec<Vec<String>>), CellsError> {
     use polars::prelude::{DataType, ParquetReader, SerReader};
@@ -222,7 +222,7 @@ pub fn read_parquet_cells(
 /// CSV chunk. Both files appear (by rename) only when [`finish`] succeeds.
 ///
 /// [`finish`]: TableStream::finish
-pub struct TableStream {
+pub(crate) struct TableStream {
     dir: PathBuf,
     stem: String,
     buffer: Vec<Table>,
@@ -366,7 +366,7 @@ impl Drop for TableStream {
 }
 
 /// Writes through a temporary file in the same folder, then renames it into place.
-pub fn write_atomic(
+pub(crate) fn write_atomic(
     path: &Path,
     fill: impl FnOnce(&mut fs::File) -> std::result::Result<(), FillError>,
 ) -> Result<()> {
@@ -409,7 +409,7 @@ pub fn write_atomic(
 }
 
 /// Writes bytes atomically.
-pub fn write_bytes_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
+pub(crate) fn write_bytes_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
     write_atomic(path, |f| {
         f.write_all(bytes)?;
         Ok(())

@@ -12,7 +12,7 @@ use crate::config::time::seconds_between;
 
 /// Where one epoch lies in one session, seconds from the session start.
 #[derive(Debug, Clone, PartialEq)]
-pub struct EpochSpan {
+pub(crate) struct EpochSpan {
     pub epoch: usize,
     pub start_s: f64,
     pub settle_end_s: f64,
@@ -61,7 +61,7 @@ impl std::fmt::Display for CaptureStatus {
 }
 
 /// The epochs of `protocol` as they happened in `session`.
-pub fn session_spans(protocol: &Protocol, session: &Session) -> Vec<EpochSpan> {
+pub(crate) fn session_spans(protocol: &Protocol, session: &Session) -> Vec<EpochSpan> {
     let mut starts: Vec<(f64, bool)> = Vec::with_capacity(protocol.epochs.len());
     let mut t = 0.0;
     for (i, e) in protocol.epochs.iter().enumerate() {
@@ -97,7 +97,7 @@ pub fn session_spans(protocol: &Protocol, session: &Session) -> Vec<EpochSpan> {
 }
 
 /// The epoch (if any) and status of a capture taken `t_s` seconds after the session start.
-pub fn assign(spans: &[EpochSpan], t_s: f64) -> (Option<usize>, CaptureStatus) {
+pub(crate) fn assign(spans: &[EpochSpan], t_s: f64) -> (Option<usize>, CaptureStatus) {
     for s in spans {
         if t_s >= s.start_s && t_s < s.end_s {
             let status = if t_s < s.settle_end_s {

@@ -30,7 +30,7 @@ impl ReferenceStatus {
 }
 
 #[derive(Debug, Clone, Copy, PartialEq)]
-pub struct CaptureReference {
+pub(crate) struct CaptureReference {
     pub spo2: Option<f64>,
     pub samples: usize,
     pub range: Option<f64>,
@@ -38,7 +38,11 @@ pub struct CaptureReference {
 }
 
 /// The reference value for a capture at `t_s` seconds from the session start.
-pub fn reference_at(log: &SpO2Log, t_s: f64, settings: &ReferenceSettings) -> CaptureReference {
+pub(crate) fn reference_at(
+    log: &SpO2Log,
+    t_s: f64,
+    settings: &ReferenceSettings,
+) -> CaptureReference {
     let centre = t_s + settings.lag_s;
     let (lo, hi) = (
         centre - settings.window_s / 2.0,

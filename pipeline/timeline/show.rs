@@ -4,7 +4,7 @@ use crate::config::duration::format_seconds;
 use crate::config::protocol::{GasSpec, ProbeSite, Protocol};
 
 /// The timeline as text: one line per epoch with cumulative times.
-pub fn render_timeline(p: &Protocol) -> String {
+pub(crate) fn render_timeline(p: &Protocol) -> String {
     let mut out = format!("protocol `{}`", p.name);
     if !p.description.is_empty() {
         out.push_str(&format!(": {}", p.description));

@@ -77,7 +77,7 @@ pub struct AlongSegment {
 }
 
 /// One veil: (k, SO2 error per band, SO2 error for all bands), in points.
-pub type SensitivityRow = (f64, Vec<f64>, f64);
+pub(crate) type SensitivityRow = (f64, Vec<f64>, f64);
 
 pub struct SensitivityCurves {
     pub names: Vec<String>,
@@ -104,7 +104,7 @@ pub struct ReportData {
     pub sensitivity: Option<SensitivityCurves>,
 }
 
-pub fn primary_method(study: &Study) -> String {
+pub(crate) fn primary_method(study: &Study) -> String {
     study
         .methods
         .iter()
@@ -122,7 +122,7 @@ pub fn primary_method(study: &Study) -> String {
         .unwrap_or_default()
 }
 
-pub fn prepare(
+pub(crate) fn prepare(
     study: &Study,
     epochs: &EpochTables,
     positions: &dyn Fn(usize) -> Vec<PositionRow>,
@@ -415,7 +415,7 @@ fn along_segment(
 }
 
 /// The default operating point of `satstep sensitivity`.
-pub const OPERATING_POINT: OperatingPoint = OperatingPoint {
+pub(crate) const OPERATING_POINT: OperatingPoint = OperatingPoint {
     so2: 0.95,
     diameter_um: 120.0,
     hb_g_per_l: 150.0,
@@ -424,7 +424,7 @@ pub const OPERATING_POINT: OperatingPoint = OperatingPoint {
 
 /// Sensitivity curves for the instrument's bands `selected` (indices in
 /// the instrument's order).
-pub fn sensitivity_curves(
+pub(crate) fn sensitivity_curves(
     instrument: &Instrument,
     selected: &[usize],
     op: &OperatingPoint,

@@ -30,7 +30,7 @@ use crate::tables::write_bytes_atomic;
 use tables::{ReportTable, html_escape};
 
 /// The report stage.
-pub struct Report;
+pub(crate) struct Report;
 
 impl Stage for Report {
     const NAME: &'static str = "report";
@@ -105,14 +105,14 @@ impl Stage for Report {
 }
 
 /// The cautions every report carries.
-pub const CAUTIONS: &[&str] = &[
+pub(crate) const CAUTIONS: &[&str] = &[
     "Research use only: satstep is for research on oximetry methods, not a medical device; its results must not be used for diagnosis or treatment.",
     "Breathing challenges can hurt people. Low-oxygen and oxygen breathing need medical supervision, ethics approval, continuous monitoring and stopping rules set by the study's physician.",
     "Local regulations and the approving ethics committee decide what may be done, not this tool.",
 ];
 
 /// Published sources of the methods, cited in the methods text.
-pub const REFERENCES: &[&str] = &[
+pub(crate) const REFERENCES: &[&str] = &[
     "Prahl SA (1999). Optical absorption of hemoglobin. Oregon Medical Laser Center, compiled from Gratzer WB and Kollias N. (Molar extinction coefficients of oxy- and deoxyhemoglobin.)",
     "Bates D, Mächler M, Bolker B, Walker S (2015). Fitting linear mixed-effects models using lme4. Journal of Statistical Software 67(1):1–48.",
     "Kuznetsova A, Brockhoff PB, Christensen RHB (2017). lmerTest package: tests in linear mixed effects models. Journal of Statistical Software 82(13):1–26.",
@@ -126,7 +126,7 @@ pub const REFERENCES: &[&str] = &[
     "ISO 2533:1975. Standard Atmosphere. International Organization for Standardization.",
 ];
 
-pub struct Inputs<'a> {
+pub(crate) struct Inputs<'a> {
     pub study: &'a Study,
     pub epochs: &'a EpochTables,
     pub images: &'a ImageTables,

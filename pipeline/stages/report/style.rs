@@ -12,10 +12,10 @@ static FONT: &[u8] = include_bytes!("fonts/DejaVuSans.ttf");
 static REGISTER: Once = Once::new();
 
 /// The family name every text style uses.
-pub const FAMILY: &str = "sans-serif";
+pub(crate) const FAMILY: &str = "sans-serif";
 
 /// Registers the embedded font; call before drawing.
-pub fn init() {
+pub(crate) fn init() {
     REGISTER.call_once(|| {
         plotters::style::register_font(FAMILY, FontStyle::Normal, FONT)
             .unwrap_or_else(|_| panic!("the embedded font is a valid TrueType file"));
@@ -23,7 +23,7 @@ pub fn init() {
 }
 
 /// Okabe & Ito (2008), "Color Universal Design", the eight-colour set.
-pub const PALETTE: [RGBColor; 8] = [
+pub(crate) const PALETTE: [RGBColor; 8] = [
     RGBColor(0, 114, 178),   // blue
     RGBColor(230, 159, 0),   // orange
     RGBColor(0, 158, 115),   // bluish green
@@ -35,13 +35,13 @@ pub const PALETTE: [RGBColor; 8] = [
 ];
 
 /// Vessel kinds keep their colours in every figure.
-pub const ARTERIOLE: RGBColor = PALETTE[5];
-pub const VENULE: RGBColor = PALETTE[0];
-pub const REFERENCE: RGBColor = RGBColor(40, 40, 40);
-pub const GRID: RGBColor = RGBColor(232, 232, 232);
-pub const INK: RGBColor = RGBColor(60, 60, 60);
+pub(crate) const ARTERIOLE: RGBColor = PALETTE[5];
+pub(crate) const VENULE: RGBColor = PALETTE[0];
+pub(crate) const REFERENCE: RGBColor = RGBColor(40, 40, 40);
+pub(crate) const GRID: RGBColor = RGBColor(232, 232, 232);
+pub(crate) const INK: RGBColor = RGBColor(60, 60, 60);
 
-pub fn method_colour(i: usize) -> RGBColor {
+pub(crate) fn method_colour(i: usize) -> RGBColor {
     [
         PALETTE[0], PALETTE[5], PALETTE[2], PALETTE[3], PALETTE[1], PALETTE[4],
     ][i % 6]

@@ -149,7 +149,7 @@ impl ReportTable {
     }
 }
 
-pub fn latex_escape(s: &str) -> String {
+pub(crate) fn latex_escape(s: &str) -> String {
     let mut out = String::with_capacity(s.len());
     for ch in s.chars() {
         match ch {
@@ -171,7 +171,7 @@ pub fn latex_escape(s: &str) -> String {
     out
 }
 
-pub fn html_escape(s: &str) -> String {
+pub(crate) fn html_escape(s: &str) -> String {
     s.replace('&', "&amp;")
         .replace('<', "&lt;")
         .replace('>', "&gt;")
@@ -187,7 +187,11 @@ fn f(v: f64, digits: usize) -> String {
 }
 
 /// Why a capture did not enter the statistics, or `None` when it did.
-pub fn usage(epochs: &EpochTables, images: &ImageTables, fits: &[FitRow]) -> Vec<Option<String>> {
+pub(crate) fn usage(
+    epochs: &EpochTables,
+    images: &ImageTables,
+    fits: &[FitRow],
+) -> Vec<Option<String>> {
     let mut with_so2 = vec![false; epochs.captures.len()];
     for f in fits {
         if f.so2.is_some_and(f64::is_finite) {
