@@ -30,6 +30,7 @@ use crate::oximetry::model::BLOOD_BACKSCATTER;
 use crate::physiology::pressure_at_altitude_mmhg;
 use crate::stats::summary::mean;
 use crate::tables::{Table, TableError, write_bytes_atomic};
+use crate::timeline::assign::CaptureStatus;
 use course::SubjectPhysiology;
 use render::{Motion, Scene, VesselState};
 use seed::rng_for;
@@ -671,7 +672,11 @@ fn write_truth(
             so2.push(*v);
             diam.push(*d);
             epoch.push(p.epochs[*e].name.clone());
-            steady.push(if *st { "steady" } else { "settling" }.to_string());
+            steady.push(if *st {
+                CaptureStatus::Steady
+            } else {
+                CaptureStatus::Settling
+            });
         }
         msub.push(subjects[*si].id.clone());
         mcap.push(format!("captures/{name}.tif"));
@@ -685,7 +690,7 @@ fn write_truth(
         .text("segment", &seg)
         .text("kind", &kind)
         .text("epoch", &epoch)
-        .text("status", &steady)
+        .text("status", steady.iter().map(CaptureStatus::as_str))
         .real("so2", so2.iter().copied())
         .real("diameter_um", diam.iter().copied());
     t.write(&dir, "captures")?;
@@ -707,7 +712,7 @@ fn write_truth(
                         subj[i] == s.id
                             && epoch[i] == ep.name
                             && kind[i] == k
-                            && steady[i] == "steady"
+                            && steady[i] == CaptureStatus::Steady
                     })
                     .map(|i| so2[i])
                     .collect();

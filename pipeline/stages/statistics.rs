@@ -20,10 +20,10 @@ use std::path::{Path, PathBuf};
 use anyhow::Result;
 use rayon::prelude::*;
 
-use super::epochs::{EpochTables, Epochs};
+use super::epochs::{CaptureRow, EpochTables, Epochs};
 use super::fits::{FitRow, Fits};
 use super::stage::{Run, Stage};
-use crate::config::study::{Adjustment as Adjust, Study};
+use crate::config::study::{Adjustment as Adjust, Method, Study};
 use crate::runner::Runner;
 use crate::runner::key::{Key, KeyBuilder};
 use crate::stats::agreement::{Agreement, agreement};
@@ -201,7 +201,7 @@ impl Stage for StatisticsStage {
         // out of every statistic: say so rather than let the rows vanish.
         if let Some(d) = study.exclusions.min_diameter_um {
             let mut by: BTreeMap<(&str, &str), (i64, i64)> = BTreeMap::new();
-            for r in stats.summaries.iter().filter(|r| r.kind != "arteriovenous") {
+            for r in stats.summaries.iter().filter(|r| r.kind != ARTERIOVENOUS) {
                 let e = by.entry((r.method.as_str(), r.kind.as_str())).or_default();
                 e.0 += r.segments;
                 e.1 += r.below_min_diameter;
@@ -236,342 +236,472 @@ impl Stage for StatisticsStage {
     }
 }
 
+/// The `kind` of the arteriolar-minus-venular rows of the summaries.
+pub const ARTERIOVENOUS: &str = "arteriovenous";
+
 /// Unit of replication of each method-comparison quantity.
 const UNIT_CAPTURES: &str = "capture means within subject × epoch";
 const UNIT_FITS: &str = "segment fits";
 const UNIT_CHANGES: &str = "subject × epoch changes from baseline (descriptive, pooled)";
 const UNIT_PAIRS: &str = "segment × capture pairs; limits for repeated measures per subject";
 
+/// What every part of the stage reads, and which segment values it uses.
+struct Context<'a> {
+    study: &'a Study,
+    captures: &'a [CaptureRow],
+    fits: &'a [FitRow],
+    epoch_names: Vec<String>,
+    specs: Vec<ContrastSpec>,
+}
+
+impl<'a> Context<'a> {
+    fn new(study: &'a Study, epochs: &'a EpochTables, fits: &'a [FitRow]) -> Self {
+        let p = &study.protocol;
+        Context {
+            study,
+            captures: &epochs.captures,
+            fits,
+            epoch_names: p.epochs.iter().map(|e| e.name.clone()).collect(),
+            specs: p
+                .contrasts
+                .iter()
+                .map(|ct| ContrastSpec {
+                    label: ct.label.clone(),
+                    weights: ct.weights.clone(),
+                })
+                .collect(),
+        }
+    }
+
+    fn design(&self) -> Design<'_> {
+        Design {
+            epochs: &self.epoch_names,
+            baseline: self.study.protocol.baseline,
+            contrasts: &self.specs,
+            confidence: self.study.statistics.confidence,
+            adjustment: adjustment(self.study),
+        }
+    }
+
+    fn baseline(&self) -> &str {
+        &self.epoch_names[self.study.protocol.baseline]
+    }
+
+    fn narrow(&self, r: &FitRow) -> bool {
+        self.study
+            .exclusions
+            .min_diameter_um
+            .is_some_and(|d| r.below_diameter(d))
+    }
+
+    fn steady(&self, r: &FitRow) -> bool {
+        self.captures[r.capture_index].status == CaptureStatus::Steady
+    }
+
+    /// The values the statistics use: steady captures, a finite SO2, wide enough.
+    fn usable(&self, r: &FitRow) -> bool {
+        self.steady(r) && r.so2.is_some_and(f64::is_finite) && !self.narrow(r)
+    }
+
+    /// (subject, epoch) of a fit's capture.
+    fn cell(&self, capture_index: usize) -> (String, String) {
+        let cr = &self.captures[capture_index];
+        (cr.subject.clone(), cr.epoch.clone().unwrap_or_default())
+    }
+}
+
+/// One method and vessel kind: its usable segment values, and the same
+/// grouped by subject × epoch and capture.
+struct Group<'a> {
+    method: &'a Method,
+    kind: VesselKind,
+    rows: Vec<&'a FitRow>,
+    by_cell: BTreeMap<(String, String), BTreeMap<usize, Vec<f64>>>,
+}
+
+impl<'a> Group<'a> {
+    fn new(cx: &Context<'a>, method: &'a Method, kind: VesselKind) -> Self {
+        let rows: Vec<&FitRow> = cx
+            .fits
+            .iter()
+            .filter(|r| r.method == method.label && r.kind == kind && cx.usable(r))
+            .collect();
+        let mut by_cell: BTreeMap<(String, String), BTreeMap<usize, Vec<f64>>> = BTreeMap::new();
+        for r in &rows {
+            by_cell
+                .entry(cx.cell(r.capture_index))
+                .or_default()
+                .entry(r.capture_index)
+                .or_default()
+                .push(r.so2.unwrap_or(f64::NAN));
+        }
+        Group {
+            method,
+            kind,
+            rows,
+            by_cell,
+        }
+    }
+
+    fn mine(&self, r: &FitRow) -> bool {
+        r.method == self.method.label && r.kind == self.kind
+    }
+
+    fn label(&self) -> String {
+        self.method.label.clone()
+    }
+
+    fn kind(&self) -> String {
+        self.kind.as_str().to_string()
+    }
+
+    /// A subject's mean over captures in an epoch (capture means first).
+    fn subject_mean(&self, subject: &str, epoch: &str) -> Option<f64> {
+        self.by_cell
+            .get(&(subject.to_string(), epoch.to_string()))
+            .map(|caps| mean(&caps.values().map(|v| mean(v)).collect::<Vec<_>>()))
+    }
+}
+
 fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> StatisticsTables {
-    let c = &epochs.captures;
-    let p = &study.protocol;
-    let min_d = study.exclusions.min_diameter_um;
-    let narrow = |r: &FitRow| min_d.is_some_and(|d| r.below_diameter(d));
-    let steady = |r: &FitRow| c[r.capture_index].status == CaptureStatus::Steady;
-    // The values the statistics use: steady captures, a finite SO2, wide enough.
-    let usable = |r: &FitRow| steady(r) && r.so2.is_some_and(f64::is_finite) && !narrow(r);
-    let epoch_names: Vec<String> = p.epochs.iter().map(|e| e.name.clone()).collect();
-    let specs: Vec<ContrastSpec> = p
-        .contrasts
-        .iter()
-        .map(|ct| ContrastSpec {
-            label: ct.label.clone(),
-            weights: ct.weights.clone(),
-        })
-        .collect();
-    let design = Design {
-        epochs: &epoch_names,
-        baseline: p.baseline,
-        contrasts: &specs,
-        confidence: study.statistics.confidence,
-        adjustment: adjustment(study),
-    };
-    let base = &p.epochs[p.baseline].name;
+    let cx = Context::new(study, epochs, fits);
     let mut st = StatisticsTables {
         confidence: study.statistics.confidence,
-        adjustment: design.adjustment.name().to_string(),
+        adjustment: cx.design().adjustment.name().to_string(),
         ..StatisticsTables::default()
     };
     // Each method and vessel kind is analysed on its own, in parallel; the
     // parts are joined in the study's order, so the result does not depend
     // on the number of threads.
-    let pairs: Vec<(&crate::config::study::Method, &str)> = study
+    let pairs: Vec<(&Method, VesselKind)> = study
         .methods
         .iter()
-        .flat_map(|m| [(m, "arteriole"), (m, "venule")])
+        .flat_map(|m| [(m, VesselKind::Arteriole), (m, VesselKind::Venule)])
         .collect();
     let parts: Vec<StatisticsTables> = pairs
         .par_iter()
-        .map(|&(m, kind)| {
-            let mut st = StatisticsTables::default();
-            let mine = |r: &&FitRow| r.method == m.label && r.kind.as_str() == kind;
-            let rows: Vec<&FitRow> = fits.iter().filter(mine).filter(|r| usable(r)).collect();
-            // Summaries: capture means first, then over captures.
-            let mut by: BTreeMap<(String, String), BTreeMap<usize, Vec<f64>>> = BTreeMap::new();
-            for r in &rows {
-                let cr = &c[r.capture_index];
-                by.entry((cr.subject.clone(), cr.epoch.clone().unwrap_or_default()))
-                    .or_default()
-                    .entry(r.capture_index)
-                    .or_default()
-                    .push(r.so2.unwrap_or(f64::NAN));
-            }
-            let mut narrow_by: BTreeMap<(String, String), i64> = BTreeMap::new();
-            for r in fits
-                .iter()
-                .filter(mine)
-                .filter(|r| steady(r) && r.so2.is_some_and(f64::is_finite) && narrow(r))
-            {
-                let cr = &c[r.capture_index];
-                *narrow_by
-                    .entry((cr.subject.clone(), cr.epoch.clone().unwrap_or_default()))
-                    .or_default() += 1;
-            }
-            let cells: std::collections::BTreeSet<&(String, String)> =
-                by.keys().chain(narrow_by.keys()).collect();
-            for key in cells {
-                let means: Vec<f64> = by
-                    .get(key)
-                    .map(|caps| caps.values().map(|v| mean(v)).collect())
-                    .unwrap_or_default();
-                st.summaries.push(SummaryRow {
-                    method: m.label.clone(),
-                    kind: kind.into(),
-                    subject: key.0.clone(),
-                    epoch: key.1.clone(),
-                    captures: means.len() as i64,
-                    segments: by
-                        .get(key)
-                        .map(|caps| caps.values().map(|v| v.len() as i64).sum())
-                        .unwrap_or(0),
-                    mean: if means.is_empty() {
-                        f64::NAN
-                    } else {
-                        mean(&means)
-                    },
-                    sd: sd(&means),
-                    below_min_diameter: narrow_by.get(key).copied().unwrap_or(0),
-                });
-            }
-            // The segment values as the epoch model and the paired tests take them.
-            let obs: Vec<Observation> = rows
-                .iter()
-                .filter_map(|r| {
-                    let cr = &c[r.capture_index];
-                    let epoch = epoch_names
-                        .iter()
-                        .position(|e| Some(e.as_str()) == cr.epoch.as_deref())?;
-                    Some(Observation {
-                        subject: cr.subject.clone(),
-                        session: cr.session.clone(),
-                        eye: cr.eye.clone(),
-                        segment: r.segment.clone(),
-                        epoch,
-                        so2: r.so2?,
-                    })
-                })
-                .collect();
-            let subj_mean = |subject: &str, epoch: &str| -> Option<f64> {
-                by.get(&(subject.to_string(), epoch.to_string()))
-                    .map(|caps| mean(&caps.values().map(|v| mean(v)).collect::<Vec<_>>()))
-            };
-            let subjects: Vec<String> = {
-                let mut v: Vec<String> = by.keys().map(|k| k.0.clone()).collect();
-                v.dedup();
-                v
-            };
-            // Paired differences against the baseline, each subject's
-            // segments compared with themselves.
-            for (ei, e) in p
-                .epochs
-                .iter()
-                .enumerate()
-                .filter(|(ei, _)| *ei != p.baseline)
-            {
-                let spec = ContrastSpec {
-                    label: format!("{} - {base}", e.name),
-                    weights: vec![(ei, 1.0), (p.baseline, -1.0)],
-                };
-                if let Some((t, n)) =
-                    epoch_model::subject_level_test(&obs, &spec, study.statistics.confidence)
-                {
-                    st.paired.push(PairedRow {
-                        method: m.label.clone(),
-                        kind: kind.into(),
-                        epoch: e.name.clone(),
-                        subjects: n as i64,
-                        mean_difference: t.estimate,
-                        std_error: t.std_error,
-                        df: t.df,
-                        t: t.t,
-                        p: t.p,
-                    });
-                }
-            }
-            // Method comparison: repeatability (pooled within subject × epoch
-            // SD of capture means), along-segment spread (mean SE of the
-            // segment estimates), share of values outside 0–100 %.
-            let (mut ss, mut dfw) = (0.0, 0.0);
-            for caps in by.values() {
-                let means: Vec<f64> = caps.values().map(|v| mean(v)).collect();
-                if means.len() > 1 {
-                    let mu = mean(&means);
-                    ss += means.iter().map(|x| (x - mu).powi(2)).sum::<f64>();
-                    dfw += means.len() as f64 - 1.0;
-                }
-            }
-            let all: Vec<&FitRow> = fits
-                .iter()
-                .filter(mine)
-                .filter(|r| r.so2.is_some_and(f64::is_finite) && !narrow(r))
-                .collect();
-            let outside = all
-                .iter()
-                .filter(|r| !(0.0..=100.0).contains(&r.so2.unwrap_or(f64::NAN)))
-                .count();
-            let ses: Vec<f64> = rows
-                .iter()
-                .filter_map(|r| r.so2_se)
-                .filter(|v| v.is_finite())
-                .collect();
-            let mut comp = |q: &str, v: f64, unit: &str| {
-                st.comparison.push(ComparisonRow {
-                    method: m.label.clone(),
-                    kind: kind.into(),
-                    quantity: q.into(),
-                    value: v,
-                    unit: unit.into(),
-                })
-            };
-            comp(
-                "repeatability_sd",
-                if dfw > 0.0 {
-                    (ss / dfw).sqrt()
-                } else {
-                    f64::NAN
-                },
-                UNIT_CAPTURES,
-            );
-            comp(
-                "mean_segment_se",
-                if ses.is_empty() { f64::NAN } else { mean(&ses) },
-                UNIT_FITS,
-            );
-            let along: Vec<f64> = rows.iter().filter_map(|r| r.along_sd).collect();
-            if !along.is_empty() {
-                comp("along_segment_sd", mean(&along), UNIT_FITS);
-            }
-            comp("values", all.len() as f64, UNIT_FITS);
-            comp(
-                "share_outside_0_100",
-                if all.is_empty() {
-                    f64::NAN
-                } else {
-                    outside as f64 / all.len() as f64
-                },
-                UNIT_FITS,
-            );
-            // Slope of the retinal change on the SpO2 change (per subject and
-            // epoch against the baseline, pooled): a description, not a test.
-            let spo2_mean = |s: &str, epoch: &str| -> Option<f64> {
-                let v: Vec<f64> = c
-                    .iter()
-                    .filter(|r| {
-                        r.subject == s
-                            && r.status == CaptureStatus::Steady
-                            && r.epoch.as_deref() == Some(epoch)
-                    })
-                    .filter_map(|r| r.spo2)
-                    .collect();
-                (!v.is_empty()).then(|| mean(&v))
-            };
-            let (mut dx, mut dy) = (Vec::new(), Vec::new());
-            for s in &subjects {
-                for e in p.epochs.iter().filter(|e| &e.name != base) {
-                    if let (Some(r1), Some(r0), Some(s1), Some(s0)) = (
-                        subj_mean(s, &e.name),
-                        subj_mean(s, base),
-                        spo2_mean(s, &e.name),
-                        spo2_mean(s, base),
-                    ) {
-                        dx.push(s1 - s0);
-                        dy.push(r1 - r0);
-                    }
-                }
-            }
-            if let Some(l) = crate::oximetry::odr::ols(&dx, &dy) {
-                comp("slope_change_on_spo2_change", l.slope, UNIT_CHANGES);
-            }
-
-            // The epoch model.
-            if !obs.is_empty() {
-                let a = analyse(&obs, &design);
-                st.models.push(ModelRow {
-                    method: m.label.clone(),
-                    kind: kind.into(),
-                    formula: a.formula.clone(),
-                    observations: a.observations as i64,
-                    fitted: !a.components.is_empty(),
-                    boundary: a
-                        .components
-                        .iter()
-                        .filter(|c| c.boundary)
-                        .map(|c| c.group.clone())
-                        .collect(),
-                });
-                st.variance
-                    .extend(a.components.into_iter().map(|component| VarianceRow {
-                        method: m.label.clone(),
-                        kind: kind.into(),
-                        component,
-                    }));
-                st.contrasts
-                    .extend(a.contrasts.into_iter().map(|result| ContrastRow {
-                        method: m.label.clone(),
-                        kind: kind.into(),
-                        result,
-                    }));
-            }
-            if kind == "arteriole" {
-                let mut per_capture: BTreeMap<usize, Vec<f64>> = BTreeMap::new();
-                for r in &rows {
-                    per_capture
-                        .entry(r.capture_index)
-                        .or_default()
-                        .push(r.so2.unwrap_or(f64::NAN));
-                }
-                let captures: Vec<(usize, f64, f64)> = per_capture
-                    .iter()
-                    .filter_map(|(ci, v)| c[*ci].spo2.map(|s| (*ci, mean(v), s)))
-                    .collect();
-                let pairs: Vec<(String, f64, f64)> = captures
-                    .iter()
-                    .map(|(ci, so2, spo2)| (c[*ci].subject.clone(), *so2, *spo2))
-                    .collect();
-                if let Some(a) = agreement(&pairs) {
-                    // The slope over subject × epoch means, subjects as the unit.
-                    let mut cells: BTreeMap<(String, String), (Vec<f64>, Vec<f64>)> =
-                        BTreeMap::new();
-                    for (ci, so2, spo2) in &captures {
-                        let e = cells
-                            .entry((
-                                c[*ci].subject.clone(),
-                                c[*ci].epoch.clone().unwrap_or_default(),
-                            ))
-                            .or_default();
-                        e.0.push(*so2);
-                        e.1.push(*spo2);
-                    }
-                    let cells: Vec<(String, f64, f64)> = cells
-                        .into_iter()
-                        .map(|((s, _), (a, b))| (s, mean(&a), mean(&b)))
-                        .collect();
-                    let slope = slope_on_reference(&cells, study.statistics.confidence);
-                    st.agreement.push(AgreementRow {
-                        method: m.label.clone(),
-                        agreement: a,
-                        slope,
-                    });
-                    st.agreement_pairs
-                        .extend(pairs.iter().map(|(s, so2, spo2)| AgreementPair {
-                            method: m.label.clone(),
-                            subject: s.clone(),
-                            so2: *so2,
-                            spo2: *spo2,
-                        }));
-                }
-            }
-            st
-        })
+        .map(|&(m, kind)| analyse_group(&cx, &Group::new(&cx, m, kind)))
         .collect();
     for part in parts {
         st.append(part);
     }
-    // Arteriovenous difference per method, subject and epoch: per capture
-    // the mean arteriolar minus the mean venular SO2, then over captures.
-    for m in &study.methods {
+    arteriovenous(&cx, &mut st);
+    between_methods(&cx, &mut st);
+    st
+}
+
+/// Everything the stage says about one method and vessel kind, in the
+/// order the tables list it.
+fn analyse_group(cx: &Context, g: &Group) -> StatisticsTables {
+    let mut st = StatisticsTables::default();
+    summaries(cx, g, &mut st);
+    let obs = observations(cx, g);
+    paired(cx, g, &obs, &mut st);
+    comparison(cx, g, &mut st);
+    epoch_model_rows(cx, g, &obs, &mut st);
+    if g.kind == VesselKind::Arteriole {
+        agreement_with_reference(cx, g, &mut st);
+    }
+    st
+}
+
+/// Per subject × epoch: capture means first, then over captures; cells
+/// that lost every value to the minimum diameter keep a row that says so.
+fn summaries(cx: &Context, g: &Group, st: &mut StatisticsTables) {
+    let mut narrow_by: BTreeMap<(String, String), i64> = BTreeMap::new();
+    for r in cx
+        .fits
+        .iter()
+        .filter(|r| g.mine(r) && cx.steady(r) && r.so2.is_some_and(f64::is_finite) && cx.narrow(r))
+    {
+        *narrow_by.entry(cx.cell(r.capture_index)).or_default() += 1;
+    }
+    let cells: std::collections::BTreeSet<&(String, String)> =
+        g.by_cell.keys().chain(narrow_by.keys()).collect();
+    for key in cells {
+        let means: Vec<f64> = g
+            .by_cell
+            .get(key)
+            .map(|caps| caps.values().map(|v| mean(v)).collect())
+            .unwrap_or_default();
+        st.summaries.push(SummaryRow {
+            method: g.label(),
+            kind: g.kind(),
+            subject: key.0.clone(),
+            epoch: key.1.clone(),
+            captures: means.len() as i64,
+            segments: g
+                .by_cell
+                .get(key)
+                .map(|caps| caps.values().map(|v| v.len() as i64).sum())
+                .unwrap_or(0),
+            mean: if means.is_empty() {
+                f64::NAN
+            } else {
+                mean(&means)
+            },
+            sd: sd(&means),
+            below_min_diameter: narrow_by.get(key).copied().unwrap_or(0),
+        });
+    }
+}
+
+/// The segment values as the epoch model and the paired tests take them.
+fn observations(cx: &Context, g: &Group) -> Vec<Observation> {
+    g.rows
+        .iter()
+        .filter_map(|r| {
+            let cr = &cx.captures[r.capture_index];
+            let epoch = cx
+                .epoch_names
+                .iter()
+                .position(|e| Some(e.as_str()) == cr.epoch.as_deref())?;
+            Some(Observation {
+                subject: cr.subject.clone(),
+                session: cr.session.clone(),
+                eye: cr.eye.clone(),
+                segment: r.segment.clone(),
+                epoch,
+                so2: r.so2?,
+            })
+        })
+        .collect()
+}
+
+/// Paired differences against the baseline, each subject's segments
+/// compared with themselves.
+fn paired(cx: &Context, g: &Group, obs: &[Observation], st: &mut StatisticsTables) {
+    let p = &cx.study.protocol;
+    for (ei, e) in p
+        .epochs
+        .iter()
+        .enumerate()
+        .filter(|(ei, _)| *ei != p.baseline)
+    {
+        let spec = ContrastSpec {
+            label: format!("{} - {}", e.name, cx.baseline()),
+            weights: vec![(ei, 1.0), (p.baseline, -1.0)],
+        };
+        if let Some((t, n)) =
+            epoch_model::subject_level_test(obs, &spec, cx.study.statistics.confidence)
+        {
+            st.paired.push(PairedRow {
+                method: g.label(),
+                kind: g.kind(),
+                epoch: e.name.clone(),
+                subjects: n as i64,
+                mean_difference: t.estimate,
+                std_error: t.std_error,
+                df: t.df,
+                t: t.t,
+                p: t.p,
+            });
+        }
+    }
+}
+
+/// Method comparison: repeatability (pooled within subject × epoch SD of
+/// capture means), along-segment spread (mean SE of the segment
+/// estimates), share of values outside 0–100 %, and the slope of the
+/// retinal change on the SpO2 change.
+fn comparison(cx: &Context, g: &Group, st: &mut StatisticsTables) {
+    let (mut ss, mut dfw) = (0.0, 0.0);
+    for caps in g.by_cell.values() {
+        let means: Vec<f64> = caps.values().map(|v| mean(v)).collect();
+        if means.len() > 1 {
+            let mu = mean(&means);
+            ss += means.iter().map(|x| (x - mu).powi(2)).sum::<f64>();
+            dfw += means.len() as f64 - 1.0;
+        }
+    }
+    let all: Vec<&FitRow> = cx
+        .fits
+        .iter()
+        .filter(|r| g.mine(r) && r.so2.is_some_and(f64::is_finite) && !cx.narrow(r))
+        .collect();
+    let outside = all
+        .iter()
+        .filter(|r| !(0.0..=100.0).contains(&r.so2.unwrap_or(f64::NAN)))
+        .count();
+    let ses: Vec<f64> = g
+        .rows
+        .iter()
+        .filter_map(|r| r.so2_se)
+        .filter(|v| v.is_finite())
+        .collect();
+    let mut comp = |q: &str, v: f64, unit: &str| {
+        st.comparison.push(ComparisonRow {
+            method: g.label(),
+            kind: g.kind(),
+            quantity: q.into(),
+            value: v,
+            unit: unit.into(),
+        })
+    };
+    comp(
+        "repeatability_sd",
+        if dfw > 0.0 {
+            (ss / dfw).sqrt()
+        } else {
+            f64::NAN
+        },
+        UNIT_CAPTURES,
+    );
+    comp(
+        "mean_segment_se",
+        if ses.is_empty() { f64::NAN } else { mean(&ses) },
+        UNIT_FITS,
+    );
+    let along: Vec<f64> = g.rows.iter().filter_map(|r| r.along_sd).collect();
+    if !along.is_empty() {
+        comp("along_segment_sd", mean(&along), UNIT_FITS);
+    }
+    comp("values", all.len() as f64, UNIT_FITS);
+    comp(
+        "share_outside_0_100",
+        if all.is_empty() {
+            f64::NAN
+        } else {
+            outside as f64 / all.len() as f64
+        },
+        UNIT_FITS,
+    );
+    if let Some(slope) = slope_change_on_spo2_change(cx, g) {
+        comp("slope_change_on_spo2_change", slope, UNIT_CHANGES);
+    }
+}
+
+/// Slope of the retinal change on the SpO2 change (per subject and epoch
+/// against the baseline, pooled): a description, not a test.
+fn slope_change_on_spo2_change(cx: &Context, g: &Group) -> Option<f64> {
+    let spo2_mean = |s: &str, epoch: &str| -> Option<f64> {
+        let v: Vec<f64> = cx
+            .captures
+            .iter()
+            .filter(|r| {
+                r.subject == s
+                    && r.status == CaptureStatus::Steady
+                    && r.epoch.as_deref() == Some(epoch)
+            })
+            .filter_map(|r| r.spo2)
+            .collect();
+        (!v.is_empty()).then(|| mean(&v))
+    };
+    let subjects: Vec<String> = {
+        let mut v: Vec<String> = g.by_cell.keys().map(|k| k.0.clone()).collect();
+        v.dedup();
+        v
+    };
+    let base = cx.baseline();
+    let (mut dx, mut dy) = (Vec::new(), Vec::new());
+    for s in &subjects {
+        for e in cx.study.protocol.epochs.iter().filter(|e| e.name != base) {
+            if let (Some(r1), Some(r0), Some(s1), Some(s0)) = (
+                g.subject_mean(s, &e.name),
+                g.subject_mean(s, base),
+                spo2_mean(s, &e.name),
+                spo2_mean(s, base),
+            ) {
+                dx.push(s1 - s0);
+                dy.push(r1 - r0);
+            }
+        }
+    }
+    crate::oximetry::odr::ols(&dx, &dy).map(|l| l.slope)
+}
+
+/// The epoch model: its formula and boundary terms, variance components
+/// and contrasts.
+fn epoch_model_rows(cx: &Context, g: &Group, obs: &[Observation], st: &mut StatisticsTables) {
+    if obs.is_empty() {
+        return;
+    }
+    let a = analyse(obs, &cx.design());
+    st.models.push(ModelRow {
+        method: g.label(),
+        kind: g.kind(),
+        formula: a.formula.clone(),
+        observations: a.observations as i64,
+        fitted: !a.components.is_empty(),
+        boundary: a
+            .components
+            .iter()
+            .filter(|c| c.boundary)
+            .map(|c| c.group.clone())
+            .collect(),
+    });
+    st.variance
+        .extend(a.components.into_iter().map(|component| VarianceRow {
+            method: g.label(),
+            kind: g.kind(),
+            component,
+        }));
+    st.contrasts
+        .extend(a.contrasts.into_iter().map(|result| ContrastRow {
+            method: g.label(),
+            kind: g.kind(),
+            result,
+        }));
+}
+
+/// Arteriolar SO2 against the reference SpO2: bias and limits over
+/// captures, and the slope over subject × epoch means.
+fn agreement_with_reference(cx: &Context, g: &Group, st: &mut StatisticsTables) {
+    let c = cx.captures;
+    let mut per_capture: BTreeMap<usize, Vec<f64>> = BTreeMap::new();
+    for r in &g.rows {
+        per_capture
+            .entry(r.capture_index)
+            .or_default()
+            .push(r.so2.unwrap_or(f64::NAN));
+    }
+    let captures: Vec<(usize, f64, f64)> = per_capture
+        .iter()
+        .filter_map(|(ci, v)| c[*ci].spo2.map(|s| (*ci, mean(v), s)))
+        .collect();
+    let pairs: Vec<(String, f64, f64)> = captures
+        .iter()
+        .map(|(ci, so2, spo2)| (c[*ci].subject.clone(), *so2, *spo2))
+        .collect();
+    let Some(a) = agreement(&pairs) else {
+        return;
+    };
+    // The slope over subject × epoch means, subjects as the unit.
+    let mut cells: BTreeMap<(String, String), (Vec<f64>, Vec<f64>)> = BTreeMap::new();
+    for (ci, so2, spo2) in &captures {
+        let e = cells.entry(cx.cell(*ci)).or_default();
+        e.0.push(*so2);
+        e.1.push(*spo2);
+    }
+    let cells: Vec<(String, f64, f64)> = cells
+        .into_iter()
+        .map(|((s, _), (a, b))| (s, mean(&a), mean(&b)))
+        .collect();
+    let slope = slope_on_reference(&cells, cx.study.statistics.confidence);
+    st.agreement.push(AgreementRow {
+        method: g.label(),
+        agreement: a,
+        slope,
+    });
+    st.agreement_pairs
+        .extend(pairs.iter().map(|(s, so2, spo2)| AgreementPair {
+            method: g.label(),
+            subject: s.clone(),
+            so2: *so2,
+            spo2: *spo2,
+        }));
+}
+
+/// Arteriovenous difference per method, subject and epoch: per capture
+/// the mean arteriolar minus the mean venular SO2, then over captures.
+fn arteriovenous(cx: &Context, st: &mut StatisticsTables) {
+    for m in &cx.study.methods {
         let mut per: BTreeMap<usize, (Vec<f64>, Vec<f64>)> = BTreeMap::new();
-        for r in fits.iter().filter(|r| r.method == m.label && usable(r)) {
+        for r in cx
+            .fits
+            .iter()
+            .filter(|r| r.method == m.label && cx.usable(r))
+        {
             if let Some(v) = r.so2 {
                 let e = per.entry(r.capture_index).or_default();
                 if r.kind == VesselKind::Arteriole {
@@ -584,19 +714,16 @@ fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> StatisticsTabl
         let mut by: BTreeMap<(String, String), Vec<(f64, i64)>> = BTreeMap::new();
         for (ci, (a, v)) in &per {
             if !a.is_empty() && !v.is_empty() {
-                by.entry((
-                    c[*ci].subject.clone(),
-                    c[*ci].epoch.clone().unwrap_or_default(),
-                ))
-                .or_default()
-                .push((mean(a) - mean(v), (a.len() + v.len()) as i64));
+                by.entry(cx.cell(*ci))
+                    .or_default()
+                    .push((mean(a) - mean(v), (a.len() + v.len()) as i64));
             }
         }
         for ((s, e), d) in by {
             let diffs: Vec<f64> = d.iter().map(|x| x.0).collect();
             st.summaries.push(SummaryRow {
                 method: m.label.clone(),
-                kind: "arteriovenous".into(),
+                kind: ARTERIOVENOUS.into(),
                 subject: s,
                 epoch: e,
                 captures: d.len() as i64,
@@ -607,20 +734,28 @@ fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> StatisticsTabl
             });
         }
     }
-    // Agreement between methods on the same segments and captures.
-    for (i, ma) in study.methods.iter().enumerate() {
-        for mb in &study.methods[i + 1..] {
-            for kind in ["arteriole", "venule"] {
+}
+
+/// Agreement between methods on the same segments and captures.
+fn between_methods(cx: &Context, st: &mut StatisticsTables) {
+    let methods = &cx.study.methods;
+    for (i, ma) in methods.iter().enumerate() {
+        for mb in &methods[i + 1..] {
+            for kind in [VesselKind::Arteriole, VesselKind::Venule] {
                 let get = |label: &str| -> BTreeMap<(usize, String), f64> {
-                    fits.iter()
-                        .filter(|r| r.method == label && r.kind.as_str() == kind && usable(r))
+                    cx.fits
+                        .iter()
+                        .filter(|r| r.method == label && r.kind == kind && cx.usable(r))
                         .filter_map(|r| Some(((r.capture_index, r.segment.clone()), r.so2?)))
                         .collect()
                 };
                 let (a, b) = (get(&ma.label), get(&mb.label));
                 let pairs: Vec<(String, f64, f64)> = a
                     .iter()
-                    .filter_map(|(k, va)| b.get(k).map(|vb| (c[k.0].subject.clone(), *va, *vb)))
+                    .filter_map(|(k, va)| {
+                        b.get(k)
+                            .map(|vb| (cx.captures[k.0].subject.clone(), *va, *vb))
+                    })
                     .collect();
                 if let Some(ag) = agreement(&pairs) {
                     let label = format!("{} vs {}", ma.label, mb.label);
@@ -632,7 +767,7 @@ fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> StatisticsTabl
                     ] {
                         st.comparison.push(ComparisonRow {
                             method: label.clone(),
-                            kind: kind.into(),
+                            kind: kind.as_str().into(),
                             quantity: q.into(),
                             value: v,
                             unit: UNIT_PAIRS.into(),
@@ -642,7 +777,6 @@ fn build(study: &Study, epochs: &EpochTables, fits: &[FitRow]) -> StatisticsTabl
             }
         }
     }
-    st
 }
 
 impl StatisticsTables {

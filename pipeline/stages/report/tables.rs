@@ -13,7 +13,7 @@ use crate::config::study::{Adjustment, Study};
 use crate::stages::epochs::EpochTables;
 use crate::stages::fits::FitRow;
 use crate::stages::images::ImageTables;
-use crate::stages::statistics::StatisticsTables;
+use crate::stages::statistics::{ARTERIOVENOUS, StatisticsTables};
 use crate::stats::infer::format_p;
 use crate::tables::write_bytes_atomic;
 
@@ -322,13 +322,13 @@ pub fn so2_by_epoch(study: &Study, stats: &StatisticsTables) -> ReportTable {
             ("subjects", true),
             ("arterioles", true),
             ("venules", true),
-            ("arteriovenous", true),
+            (ARTERIOVENOUS, true),
         ],
     );
     for m in &study.methods {
         for e in &study.protocol.epochs {
             let mut n = 0;
-            let cells: Vec<String> = ["arteriole", "venule", "arteriovenous"]
+            let cells: Vec<String> = ["arteriole", "venule", ARTERIOVENOUS]
                 .iter()
                 .map(|k| {
                     let v: Vec<f64> = stats
