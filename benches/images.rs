@@ -18,7 +18,7 @@ use satstep::images::ingest::read_capture;
 use satstep::images::profile::ProfileSettings;
 use satstep::oximetry::bands::SampledBand;
 use satstep::simulate::render::{Motion, Scene, VesselState, render, write_tiff};
-use satstep::stages::images::analyse_capture;
+use satstep::stages::transmissions::analyse_capture;
 
 const SIZE: usize = 1024;
 
@@ -169,7 +169,7 @@ fn main() {
         assert!(
             results
                 .iter()
-                .all(|r| r.0.status == satstep::stages::images::ImageOutcome::Ok),
+                .all(|r| r.0.status == satstep::stages::transmissions::ImageOutcome::Ok),
             "{:?}",
             results[0].0
         );

@@ -16,7 +16,7 @@ use crate::runner::key::hash_file;
 use crate::runner::{Runner, manifest};
 use crate::stages::epochs::{EpochTables, Epochs};
 use crate::stages::fits::{FitRow, Fits};
-use crate::stages::images::{ImageTables, Images};
+use crate::stages::transmissions::{TransmissionTables, Transmissions};
 use crate::stages::{Run, run_all};
 use crate::study::{load_study, resolve_study_path};
 
@@ -114,7 +114,7 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
     let mut run = Run::new(study, hashed);
     run_all(&mut run, &runner)?;
 
-    let failed = run.output::<Images>().failed();
+    let failed = run.output::<Transmissions>().failed();
     let exit = if failed.is_empty() {
         Exit::Ok
     } else {
@@ -143,7 +143,7 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
         stages: runner.log(),
         captures: capture_counts(
             run.output::<Epochs>(),
-            run.output::<Images>(),
+            run.output::<Transmissions>(),
             run.output::<Fits>(),
         ),
         warnings: runner.warnings.lock().expect("not poisoned").clone(),
@@ -178,7 +178,7 @@ fn seeds(study: &Study) -> BTreeMap<String, String> {
 
 fn capture_counts(
     tables: &EpochTables,
-    images: &ImageTables,
+    images: &TransmissionTables,
     fits: &[FitRow],
 ) -> manifest::CaptureCounts {
     let mut counts = manifest::CaptureCounts {

@@ -23,7 +23,7 @@ pub(crate) struct CaptureCounts {
     pub listed: usize,
     /// Captures whose SO2 entered the statistics (steady, read, registered, fitted).
     pub used: usize,
-    /// Not used, by reason (status from the epoch or image stage).
+    /// Not used, by reason (status from the epochs or transmissions stage).
     pub not_used: BTreeMap<String, usize>,
 }
 

@@ -203,7 +203,7 @@ impl<'a> Runner<'a> {
         key: &Key,
     ) {
         let seconds = t0.elapsed().as_secs_f64();
-        let mut line = format!("{stage:<10} {status}");
+        let mut line = format!("{stage:<13} {status}");
         if !reason.is_empty() {
             line.push_str(&format!(" ({reason})"));
         }

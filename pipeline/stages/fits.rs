@@ -12,8 +12,8 @@ use anyhow::Result;
 use rayon::prelude::*;
 
 use super::epochs::{EpochTables, Epochs};
-use super::images::{ImageTables, Images, PositionRow};
 use super::stage::{Run, Stage};
+use super::transmissions::{PositionRow, TransmissionTables, Transmissions};
 use crate::config::segments::VesselKind;
 use crate::config::study::{Calibration, Loss, Method, MethodKind, Study};
 use crate::fit::Termination;
@@ -115,7 +115,7 @@ impl Stage for Fits {
     const NAME: &'static str = "fits";
     const VERSION: u32 = 4;
     const SUMMARY: &'static str = "SO2 of every segment of every capture by each method";
-    const UPSTREAM: &'static [&'static str] = &["epochs", "images"];
+    const UPSTREAM: &'static [&'static str] = &["epochs", "transmissions"];
     type Output = Vec<FitRow>;
 
     /// The methods and the bands they read.
@@ -136,13 +136,13 @@ impl Stage for Fits {
             .count();
         let items = runner.items(
             Self::NAME,
-            run.output::<Images>().keys.len() * multiband,
+            run.output::<Transmissions>().keys.len() * multiband,
             "fits",
         );
         let rows = build(
             study,
             run.output::<Epochs>(),
-            run.output::<Images>(),
+            run.output::<Transmissions>(),
             runner,
             &items,
         )?;
@@ -166,12 +166,12 @@ impl Stage for Fits {
 }
 
 /// Fits every capture's segments by every method. Captures are taken in
-/// parallel, each reading its positions from the image stage's cache and
+/// parallel, each reading its positions from the transmissions stage's cache and
 /// dropping them when done; multiband results are cached per capture.
 fn build(
     study: &Study,
     epochs: &EpochTables,
-    images: &ImageTables,
+    images: &TransmissionTables,
     runner: &Runner,
     items: &Items,
 ) -> Result<Vec<FitRow>> {
@@ -206,7 +206,7 @@ fn build(
                         k.value("method", m)
                             .value("bands", &study.instrument.bands)
                             .value("min-positions", &MIN_POSITIONS)
-                            .key("images", &images.keys[ci]);
+                            .key("transmissions", &images.keys[ci]);
                         items.try_get_or_compute(&k.finish(), || {
                             Ok(fit_capture(m, &bands, ci, load()?))
                         })?
@@ -260,7 +260,7 @@ fn fit_capture(
             groups.entry(r.segment.clone()).or_default().push(r);
         }
     }
-    // Every segment the image stage profiled, even with too few positions.
+    // Every segment the transmissions stage profiled, even with too few positions.
     let mut keys: Vec<(usize, String, VesselKind)> = positions
         .iter()
         .map(|r| (ci, r.segment.clone(), r.kind))

@@ -1,14 +1,14 @@
-//! The stages of `run`, in order, each one file or folder: epochs, images,
-//! fits, statistics, report. [`STAGES`] is the one list the runner, `--force`,
+//! The stages of `run`, in order, each one file or folder: epochs,
+//! transmissions, fits, statistics, report. [`STAGES`] is the one list the runner, `--force`,
 //! the help text and the methods text take their order from; adding a stage
 //! is one file implementing [`Stage`] plus one line in it.
 
 pub mod epochs;
 pub mod fits;
-pub mod images;
 pub mod report;
 pub mod stage;
 pub mod statistics;
+pub mod transmissions;
 
 use anyhow::Result;
 
@@ -59,7 +59,7 @@ impl<S: Stage> Listed for S {
 /// The stages of `run`, in the order they run.
 pub(crate) static STAGES: &[&dyn Listed] = &[
     &epochs::Epochs,
-    &images::Images,
+    &transmissions::Transmissions,
     &fits::Fits,
     &statistics::StatisticsStage,
     &report::Report,

@@ -38,7 +38,7 @@ pub enum CaptureStatus {
 }
 
 impl CaptureStatus {
-    /// Analysed by the image stage: steady, or settling (kept for the
+    /// Analysed by the transmissions stage: steady, or settling (kept for the
     /// time course, left out of the steady-state statistics).
     pub fn analysed(&self) -> bool {
         matches!(self, CaptureStatus::Steady | CaptureStatus::Settling)

@@ -411,7 +411,7 @@ fn no_circle_and_no_upward_import() {
     // Sanity: the reader found the imports it must find.
     assert!(
         g.edges[&vec!["stages".to_string(), "fits".to_string()]]
-            .contains(&vec!["stages".to_string(), "images".to_string()])
+            .contains(&vec!["stages".to_string(), "transmissions".to_string()])
     );
     assert!(
         g.edges[&vec!["commands".to_string(), "run".to_string()]]

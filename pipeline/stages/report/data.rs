@@ -15,8 +15,8 @@ use crate::oximetry::pointwise::fit_position;
 use crate::oximetry::sensitivity::{OperatingPoint, Unknowns, Weights, so2_errors};
 use crate::stages::epochs::EpochTables;
 use crate::stages::fits::{FitRow, multiband_model};
-use crate::stages::images::PositionRow;
 use crate::stages::statistics::StatisticsTables;
+use crate::stages::transmissions::PositionRow;
 
 pub struct SpanShade {
     pub start_min: f64,

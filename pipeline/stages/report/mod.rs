@@ -20,9 +20,9 @@ use anyhow::Result;
 
 use super::epochs::{EpochTables, Epochs};
 use super::fits::{FitRow, Fits};
-use super::images::{ImageTables, Images, PositionRow};
 use super::stage::{Run, Stage};
 use super::statistics::{StatisticsStage, StatisticsTables};
+use super::transmissions::{PositionRow, TransmissionTables, Transmissions};
 use crate::config::study::Study;
 use crate::runner::Runner;
 use crate::runner::key::{Key, KeyBuilder, combine};
@@ -37,7 +37,7 @@ impl Stage for Report {
     /// Version of the report's layout; bump when its output changes.
     const VERSION: u32 = 3;
     const SUMMARY: &'static str = "the paper's tables and figures, report.html and report.md";
-    const UPSTREAM: &'static [&'static str] = &["epochs", "images", "fits", "statistics"];
+    const UPSTREAM: &'static [&'static str] = &["epochs", "transmissions", "fits", "statistics"];
     type Output = ();
 
     fn settings(study: &Study) -> Key {
@@ -72,7 +72,7 @@ impl Stage for Report {
         let inputs = Inputs {
             study,
             epochs: run.output::<Epochs>(),
-            images: run.output::<Images>(),
+            images: run.output::<Transmissions>(),
             fits: run.output::<Fits>(),
             stats: run.output::<StatisticsStage>(),
             methods: &run.methods,
@@ -87,7 +87,7 @@ impl Stage for Report {
                 })
                 .collect(),
         };
-        let images = run.output::<Images>();
+        let images = run.output::<Transmissions>();
         write(
             &inputs,
             &|i| images.positions(runner, i).unwrap_or_default(),
@@ -129,7 +129,7 @@ pub(crate) const REFERENCES: &[&str] = &[
 pub(crate) struct Inputs<'a> {
     pub study: &'a Study,
     pub epochs: &'a EpochTables,
-    pub images: &'a ImageTables,
+    pub images: &'a TransmissionTables,
     pub fits: &'a [FitRow],
     pub stats: &'a StatisticsTables,
     /// The methods text, one paragraph per stage in the stages' order.
@@ -139,7 +139,7 @@ pub(crate) struct Inputs<'a> {
 }
 
 /// Writes the report; returns every file written.
-/// `positions` reads one capture's profile positions (from the image stage's cache).
+/// `positions` reads one capture's profile positions (from the transmissions stage's cache).
 fn write(
     inp: &Inputs,
     positions: &dyn Fn(usize) -> Vec<PositionRow>,

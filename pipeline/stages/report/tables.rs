@@ -12,8 +12,8 @@ use anyhow::Result;
 use crate::config::study::{Adjustment, Study};
 use crate::stages::epochs::EpochTables;
 use crate::stages::fits::FitRow;
-use crate::stages::images::ImageTables;
 use crate::stages::statistics::{ARTERIOVENOUS, StatisticsTables};
+use crate::stages::transmissions::TransmissionTables;
 use crate::stats::infer::format_p;
 use crate::tables::write_bytes_atomic;
 
@@ -189,7 +189,7 @@ fn f(v: f64, digits: usize) -> String {
 /// Why a capture did not enter the statistics, or `None` when it did.
 pub(crate) fn usage(
     epochs: &EpochTables,
-    images: &ImageTables,
+    images: &TransmissionTables,
     fits: &[FitRow],
 ) -> Vec<Option<String>> {
     let mut with_so2 = vec![false; epochs.captures.len()];
@@ -511,7 +511,7 @@ pub fn method_comparison(stats: &StatisticsTables) -> ReportTable {
 }
 
 /// Data quality: flagged profile positions by flag, values outside 0–100 % per method.
-pub fn data_quality(study: &Study, images: &ImageTables, fits: &[FitRow]) -> ReportTable {
+pub fn data_quality(study: &Study, images: &TransmissionTables, fits: &[FitRow]) -> ReportTable {
     let mut t = ReportTable::new(
         "data_quality",
         "Data quality: profile positions by flag, and segment SO2 values outside 0–100 % (kept in the analysis)",

@@ -335,7 +335,7 @@ fn one_broken_capture_does_not_stop_the_study() {
     let again = satstep(dir.path(), &["run", a.to_str().unwrap()]);
     assert_eq!(again.code, 1, "{}", again.stderr);
     assert!(
-        again.stderr.contains("images     up to date"),
+        again.stderr.contains("transmissions up to date"),
         "{}",
         again.stderr
     );

@@ -25,7 +25,7 @@ fn run_study(dir: &Path) -> PathBuf {
     );
     let o = satstep(dir, &["run", s.to_str().unwrap()]);
     assert_eq!(o.code, 0, "{}", o.stderr);
-    assert!(o.stderr.contains("report     ran"), "{}", o.stderr);
+    assert!(o.stderr.contains("report        ran"), "{}", o.stderr);
     s.join("results/report")
 }
 

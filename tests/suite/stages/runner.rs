@@ -24,7 +24,7 @@ fn run(dir: &Path, study: &Path, extra: &[&str]) -> Output {
 fn line<'a>(o: &'a Output, stage: &str) -> &'a str {
     o.stderr
         .lines()
-        .find(|l| l.starts_with(&format!("{stage:<10} ")))
+        .find(|l| l.starts_with(&format!("{stage:<13} ")))
         .unwrap_or_else(|| panic!("no line for `{stage}` in\n{}", o.stderr))
 }
 
@@ -39,7 +39,7 @@ fn only_what_changed_reruns() {
     let dir = tempfile::tempdir().unwrap();
     let s = simulated(dir.path(), SCENARIO, "s");
     let first = run(dir.path(), &s, &[]);
-    for st in ["epochs", "images", "fits", "statistics", "report"] {
+    for st in ["epochs", "transmissions", "fits", "statistics", "report"] {
         assert!(
             line(&first, st).contains("ran (no earlier result)"),
             "{}",
@@ -51,7 +51,7 @@ fn only_what_changed_reruns() {
     // Nothing changed: every stage is up to date and nothing is rewritten.
     let t0 = Instant::now();
     let second = run(dir.path(), &s, &[]);
-    for st in ["epochs", "images", "fits", "statistics", "report"] {
+    for st in ["epochs", "transmissions", "fits", "statistics", "report"] {
         assert!(
             line(&second, st).contains("up to date"),
             "{}",
@@ -72,7 +72,7 @@ fn only_what_changed_reruns() {
         "statistics: {confidence: 0.9}\noutput: results",
     );
     let third = run(dir.path(), &s, &[]);
-    for st in ["epochs", "images", "fits"] {
+    for st in ["epochs", "transmissions", "fits"] {
         assert!(line(&third, st).contains("up to date"), "{}", third.stderr);
     }
     assert!(
@@ -96,7 +96,7 @@ fn only_what_changed_reruns() {
     edit(&study, "huber_scale: 1.5", "huber_scale: 2.0");
     let fourth = run(dir.path(), &s, &[]);
     assert!(
-        line(&fourth, "images").contains("up to date"),
+        line(&fourth, "transmissions").contains("up to date"),
         "{}",
         fourth.stderr
     );
@@ -127,7 +127,7 @@ fn only_what_changed_reruns() {
         fifth.stderr
     );
     assert!(
-        line(&fifth, "images")
+        line(&fifth, "transmissions")
             .contains("ran (input files changed): 33 captures: 1 computed, 32 from the cache"),
         "{}",
         fifth.stderr
@@ -136,7 +136,7 @@ fn only_what_changed_reruns() {
     // --force reruns a stage (and what depends on it) without its item cache.
     let forced = run(dir.path(), &s, &["--force", "fits"]);
     assert!(
-        line(&forced, "images").contains("up to date"),
+        line(&forced, "transmissions").contains("up to date"),
         "{}",
         forced.stderr
     );
@@ -199,7 +199,7 @@ fn a_killed_run_resumes_to_the_same_results() {
         .stderr(std::process::Stdio::null())
         .spawn()
         .unwrap();
-    let items = killed.join("results/cache/items/images");
+    let items = killed.join("results/cache/items/transmissions");
     let t0 = Instant::now();
     // Finished entries only (`.bin`; a write in flight is a hidden temporary file).
     let finished = || {
@@ -231,7 +231,7 @@ fn a_killed_run_resumes_to_the_same_results() {
     );
 
     let resumed = run(dir.path(), &killed, &[]);
-    let l = line(&resumed, "images");
+    let l = line(&resumed, "transmissions");
     let hits: usize = l
         .split(" computed, ")
         .nth(1)
@@ -262,12 +262,12 @@ fn a_corrupt_cache_entry_is_a_warning_and_is_recomputed() {
             .min()
             .unwrap()
     };
-    // The images stage's stored result, and one capture's entry: one
+    // The transmissions stage's stored result, and one capture's entry: one
     // truncated, one overwritten with text.
-    let stage_entry = first_file(cache.join("results/images"));
+    let stage_entry = first_file(cache.join("results/transmissions"));
     let bytes = std::fs::read(&stage_entry).unwrap();
     std::fs::write(&stage_entry, &bytes[..bytes.len() / 2]).unwrap();
-    let item = first_file(cache.join("items/images"));
+    let item = first_file(cache.join("items/transmissions"));
     std::fs::write(&item, "not a cache entry").unwrap();
 
     let o = run(dir.path(), &s, &[]);
@@ -288,7 +288,7 @@ fn a_corrupt_cache_entry_is_a_warning_and_is_recomputed() {
         o.stderr
     );
     assert!(
-        line(&o, "images").contains(
+        line(&o, "transmissions").contains(
             "ran (its cached result was unusable): 33 captures: 1 computed, 32 from the cache"
         ),
         "{}",
@@ -328,7 +328,10 @@ fn the_manifest_says_what_was_run_on_what() {
         .iter()
         .map(|s| s["stage"].as_str().unwrap())
         .collect();
-    assert_eq!(stages, ["epochs", "images", "fits", "statistics", "report"]);
+    assert_eq!(
+        stages,
+        ["epochs", "transmissions", "fits", "statistics", "report"]
+    );
     assert_eq!(m["captures"]["listed"], 33);
     assert_eq!(m["captures"]["not_used"]["settling"], 9);
     assert_eq!(m["exit_status"], 0);

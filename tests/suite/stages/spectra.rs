@@ -146,8 +146,8 @@ fn a_spectra_table_replaces_the_images() {
     assert!(
         o.stderr
             .lines()
-            .any(|l| l.starts_with("images") && l.contains("ran")),
-        "the changed input reruns the images stage: {}",
+            .any(|l| l.starts_with("transmissions") && l.contains("ran")),
+        "the changed input reruns the transmissions stage: {}",
         o.stderr
     );
     assert_eq!(

@@ -1,4 +1,4 @@
-//! The image stage over a study: every analysed capture is read, registered
+//! The transmissions stage over a study: every analysed capture is read, registered
 //! to its eye's reference capture (the eye's earliest capture), its
 //! vessel segments are mapped into it and profiled. A capture that cannot
 //! be read or registered keeps its row with the reason; the others go on.
@@ -55,7 +55,7 @@ pub struct PositionRow {
     pub transmission: Vec<f64>,
 }
 
-/// What the image stage made of a capture, as `captures.csv` writes it.
+/// What the transmissions stage made of a capture, as `captures.csv` writes it.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub enum ImageOutcome {
@@ -65,7 +65,7 @@ pub enum ImageOutcome {
     Error,
     /// Read, but its match score to the eye's reference is too low.
     NotRegistered,
-    /// Not taken to the image stage (its epochs status says why).
+    /// Not taken to the transmissions stage (its epochs status says why).
     NotAnalysed,
 }
 
@@ -99,11 +99,11 @@ pub struct ImageStatus {
 }
 
 #[derive(serde::Serialize, serde::Deserialize)]
-/// The image stage's result. The profile positions themselves stay in the
+/// The transmissions stage's result. The profile positions themselves stay in the
 /// stage's item cache, one entry per capture, and are streamed from there
 /// into the positions table and into the fits, so memory does not grow
 /// with the number of captures.
-pub struct ImageTables {
+pub struct TransmissionTables {
     /// One per capture row of the epoch table.
     pub status: Vec<ImageStatus>,
     /// Profile positions per capture.
@@ -114,10 +114,10 @@ pub struct ImageTables {
     pub keys: Vec<Key>,
 }
 
-/// The images stage.
-pub(crate) struct Images;
+/// The transmissions stage.
+pub(crate) struct Transmissions;
 
-impl Images {
+impl Transmissions {
     /// Each capture's item key: the capture file's content (or its spectra
     /// rows) with everything the stage does to it.
     fn item_keys(run: &Run) -> Vec<Key> {
@@ -129,13 +129,13 @@ impl Images {
     }
 }
 
-impl Stage for Images {
-    const NAME: &'static str = "images";
+impl Stage for Transmissions {
+    const NAME: &'static str = "transmissions";
     const VERSION: u32 = 4;
     const SUMMARY: &'static str =
         "registration and transmissions along each vessel segment, capture by capture";
     const UPSTREAM: &'static [&'static str] = &["epochs"];
-    type Output = ImageTables;
+    type Output = TransmissionTables;
 
     fn settings(study: &Study) -> Key {
         settings_key(study)
@@ -145,7 +145,7 @@ impl Stage for Images {
         combine("captures", Self::item_keys(run))
     }
 
-    fn build(run: &Run, runner: &Runner) -> Result<(ImageTables, String)> {
+    fn build(run: &Run, runner: &Runner) -> Result<(TransmissionTables, String)> {
         let (study, epochs) = (run.study, run.output::<Epochs>());
         let keys = Self::item_keys(run);
         let analysed = epochs
@@ -164,13 +164,13 @@ impl Stage for Images {
         Ok((t, d))
     }
 
-    fn write(t: &ImageTables, run: &Run, runner: &Runner) -> Result<Vec<PathBuf>> {
+    fn write(t: &TransmissionTables, run: &Run, runner: &Runner) -> Result<Vec<PathBuf>> {
         t.write(run.out(), run.study, run.output::<Epochs>(), runner)
     }
 
     /// Every capture that could not be read or registered, by name.
     fn report(run: &Run, runner: &Runner) {
-        let (epochs, images) = (run.output::<Epochs>(), run.output::<Images>());
+        let (epochs, images) = (run.output::<Epochs>(), run.output::<Transmissions>());
         for i in images.failed() {
             runner.warn(format!(
                 "capture `{}` ({}): {}",
@@ -201,7 +201,7 @@ pub(crate) fn profile_settings(study: &Study) -> ProfileSettings {
 
 /// The stage's settings part: everything besides the files that changes what it computes.
 pub(crate) fn settings_key(study: &Study) -> Key {
-    let mut k = KeyBuilder::new("images-settings", Images::VERSION);
+    let mut k = KeyBuilder::new("transmissions-settings", Transmissions::VERSION);
     k.value("bands", &study.instrument.bands.len())
         .value("width-band", &width_band(study))
         .value("pixel-size", &study.instrument.pixel_size_um)
@@ -296,7 +296,7 @@ pub(crate) fn spectra_item_keys(study: &Study, epochs: &EpochTables) -> Vec<Key>
         .captures
         .iter()
         .map(|row| {
-            let mut k = KeyBuilder::new("spectra-capture", Images::VERSION);
+            let mut k = KeyBuilder::new("spectra-capture", Transmissions::VERSION);
             k.key("table", &file)
                 .value("capture", &(&row.subject, &row.capture))
                 .value("bands", &bands)
@@ -306,7 +306,7 @@ pub(crate) fn spectra_item_keys(study: &Study, epochs: &EpochTables) -> Vec<Key>
         .collect()
 }
 
-/// The image stage for a study with a spectra table: each analysed
+/// The transmissions stage for a study with a spectra table: each analysed
 /// capture's positions come from the table instead of its images (no
 /// registration, no profile flags; `along_px` is the position index).
 pub(crate) fn from_spectra(
@@ -314,7 +314,7 @@ pub(crate) fn from_spectra(
     epochs: &EpochTables,
     keys: Vec<Key>,
     items: &Items,
-) -> ImageTables {
+) -> TransmissionTables {
     let n = epochs.captures.len();
     let table = study.spectra.as_ref();
     let file = study
@@ -379,7 +379,7 @@ pub(crate) fn from_spectra(
         })
         .collect();
     merge(results, &mut status, &mut counts, &mut flags);
-    ImageTables {
+    TransmissionTables {
         status,
         position_counts: counts,
         flag_counts: flags,
@@ -435,7 +435,7 @@ pub(crate) fn item_keys(
             let group = (row.subject.clone(), row.session.clone(), row.eye.clone());
             let ref_i = first[&group];
             let segs = segments_file(study, &row.subject, &row.session, &row.eye);
-            let mut k = KeyBuilder::new("images-capture", Images::VERSION);
+            let mut k = KeyBuilder::new("transmissions-capture", Transmissions::VERSION);
             k.key("settings", &settings)
                 .key("capture", &hash(&files[i]))
                 .key("reference", &hash(&files[ref_i]))
@@ -466,7 +466,12 @@ fn segments_file(study: &Study, subject: &str, session: &str, eye: &str) -> Opti
         .map(|(_, p)| p.clone())
 }
 
-pub fn build(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: &Items) -> ImageTables {
+pub fn build(
+    study: &Study,
+    epochs: &EpochTables,
+    keys: Vec<Key>,
+    items: &Items,
+) -> TransmissionTables {
     let nb = study.instrument.bands.len();
     let wb = width_band(study);
     let settings = profile_settings(study);
@@ -566,7 +571,7 @@ pub fn build(study: &Study, epochs: &EpochTables, keys: Vec<Key>, items: &Items)
             .collect();
         merge(results, &mut status, &mut position_counts, &mut flag_counts);
     }
-    ImageTables {
+    TransmissionTables {
         status,
         position_counts,
         flag_counts,
@@ -680,7 +685,7 @@ pub fn analyse_capture(
     )
 }
 
-impl ImageTables {
+impl TransmissionTables {
     /// The captures that could not be read or registered.
     pub fn failed(&self) -> Vec<usize> {
         (0..self.status.len())
@@ -697,7 +702,7 @@ impl ImageTables {
         if self.status[i].status == ImageOutcome::NotAnalysed {
             return Ok(vec![]);
         }
-        let (_, rows): CaptureItem = runner.item("images", &self.keys[i])?;
+        let (_, rows): CaptureItem = runner.item(Transmissions::NAME, &self.keys[i])?;
         Ok(rows
             .into_iter()
             .map(|mut r| {
@@ -756,7 +761,7 @@ fn position_table(p: &[PositionRow], study: &Study, epochs: &EpochTables) -> Tab
     t
 }
 
-impl ImageTables {
+impl TransmissionTables {
     fn write_status(
         &self,
         dir: &Path,
