@@ -19,6 +19,7 @@ pub use crate::config::study::{Study, resolve_study_path};
 pub(crate) fn load_study(path: &Path) -> (Option<Study>, Findings) {
     let (study, mut findings) = crate::config::study::read_study_file(path);
     let study = study.map(|mut s| {
+        check_paths_are_text(&s, &mut findings);
         read_session_files(&mut s, &mut findings);
         check_capture_times(&s, &mut findings);
         s
@@ -36,7 +37,12 @@ fn read_session_files(study: &mut Study, findings: &mut Findings) {
         for (eye, p) in &sess.segments {
             // A missing file was reported with the study file.
             if p.is_file() {
-                if let Some(segs) = load_segments(p, *eye, findings) {
+                let image = sess
+                    .captures
+                    .iter()
+                    .find(|c| c.eye == *eye)
+                    .and_then(|c| capture_size(&c.path));
+                if let Some(segs) = load_segments(p, *eye, image, findings) {
                     sess.vessels.insert(*eye, segs);
                 }
             }
@@ -45,6 +51,37 @@ fn read_session_files(study: &mut Study, findings: &mut Findings) {
             sess.spo2 = read_log(log, &sess.start, findings);
         }
     }
+}
+
+/// Every path the study names must be text (UTF-8): it enters the cache
+/// keys, the manifest and the report as text.
+fn check_paths_are_text(study: &Study, findings: &mut Findings) {
+    let mut paths: Vec<&Path> = vec![&study.root, &study.output];
+    for sess in study.subjects.iter().flat_map(|s| &s.sessions) {
+        paths.extend(sess.captures.iter().map(|c| c.path.as_path()));
+        paths.extend(sess.segments.values().map(|p| p.as_path()));
+        paths.extend(sess.reference.iter().map(|r| r.path.as_path()));
+    }
+    if let Some(p) = paths.into_iter().find(|p| p.to_str().is_none()) {
+        findings
+            .error(
+                &study.file,
+                None,
+                format!("the path `{}` is not valid UTF-8 text", p.to_string_lossy()),
+            )
+            .hint("rename the folder or file so that its name is UTF-8 text");
+    }
+}
+
+/// Width and height of a capture in pixels, from its TIFF header alone;
+/// `None` when it cannot be read (the transmissions stage says why).
+fn capture_size(p: &Path) -> Option<(f64, f64)> {
+    let f = std::fs::File::open(p).ok()?;
+    let (w, h) = tiff::decoder::Decoder::new(std::io::BufReader::new(f))
+        .ok()?
+        .dimensions()
+        .ok()?;
+    Some((w as f64, h as f64))
 }
 
 /// A capture outside every epoch is kept (status `outside`) but said.

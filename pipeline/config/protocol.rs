@@ -18,6 +18,7 @@ use std::path::Path;
 
 use super::contrast::{ContrastError, parse_terms};
 use super::diag::{Findings, Mark};
+use super::duration::format_seconds;
 use super::read::Reader;
 use super::yaml::Node;
 use crate::physiology::{AIR_O2_FRACTION, equivalent_altitude_m, equivalent_o2_fraction};
@@ -158,6 +159,10 @@ const PROTOCOL_KEYS: &[&str] = &[
 ];
 const EPOCH_KEYS: &[&str] = &["name", "gas", "duration", "settle", "note"];
 const GAS_KEYS: &[&str] = &["o2_fraction", "altitude_m"];
+/// Longest reference lag or window accepted (10 min): longer is a typo or
+/// a unit mistake, not an oximeter (a common-practice bound, no source).
+const MAX_REFERENCE_SPAN_S: f64 = 600.0;
+
 const REFERENCE_KEYS: &[&str] = &["probe_site", "lag", "window", "stability_limit"];
 
 /// Reads and validates a protocol file. All findings are returned together.
@@ -428,7 +433,21 @@ fn read_reference(r: &mut Reader, node: &Node) -> Option<ReferenceSettings> {
     };
     let lag = match m.get("lag") {
         None => Some(d.lag_s),
-        Some(n) => r.duration(n, "`lag`"),
+        Some(n) => match r.duration(n, "`lag`") {
+            Some(l) if l > MAX_REFERENCE_SPAN_S => {
+                r.error(
+                    n.mark,
+                    format!(
+                        "`lag` of {} is longer than {}: no pulse oximeter lags the blood by that much",
+                        format_seconds(l),
+                        format_seconds(MAX_REFERENCE_SPAN_S)
+                    ),
+                )
+                .hint("finger probes lag by about 20–60 s, ear probes less");
+                None
+            }
+            l => l,
+        },
     };
     let window = match m.get("window") {
         None => Some(d.window_s),
@@ -437,6 +456,17 @@ fn read_reference(r: &mut Reader, node: &Node) -> Option<ReferenceSettings> {
             if w == Some(0.0) {
                 r.error(n.mark, "`window` must be longer than zero")
                     .hint("the oximeter logs once a second; `10s` is common");
+                None
+            } else if let Some(w) = w.filter(|w| *w > MAX_REFERENCE_SPAN_S) {
+                r.error(
+                    n.mark,
+                    format!(
+                        "`window` of {} is longer than {}: the median would mix epochs",
+                        format_seconds(w),
+                        format_seconds(MAX_REFERENCE_SPAN_S)
+                    ),
+                )
+                .hint("the oximeter logs once a second; `10s` is common");
                 None
             } else {
                 w

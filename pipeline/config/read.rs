@@ -19,8 +19,8 @@ pub(crate) fn load_tree(
     hint: &str,
     findings: &mut Findings,
 ) -> Option<Node> {
-    let text = match std::fs::read_to_string(path) {
-        Ok(t) => t,
+    let bytes = match std::fs::read(path) {
+        Ok(b) => b,
         Err(e) => {
             findings
                 .error(path, None, format!("cannot read the {what}: {e}"))
@@ -28,7 +28,27 @@ pub(crate) fn load_tree(
             return None;
         }
     };
-    match super::yaml::parse(path, &text) {
+    let text = match String::from_utf8(bytes) {
+        Ok(t) => t,
+        Err(e) => {
+            let good = &e.as_bytes()[..e.utf8_error().valid_up_to()];
+            // Valid up to here, so the prefix decodes.
+            let before = String::from_utf8_lossy(good);
+            let line = before.matches('\n').count() + 1;
+            let col = before.rsplit('\n').next().map_or(0, |l| l.chars().count()) + 1;
+            findings
+                .error(
+                    path,
+                    Some(Mark::new(line, col)),
+                    format!("the {what} is not UTF-8 text: the byte here is not valid UTF-8"),
+                )
+                .hint("save the file as UTF-8 (plain text) and check the character at this place");
+            return None;
+        }
+    };
+    // A byte-order mark some editors write at the start is not content.
+    let text = text.strip_prefix('\u{feff}').unwrap_or(&text);
+    match super::yaml::parse(path, text) {
         Ok(n) => Some(n),
         Err(errs) => {
             for e in errs {

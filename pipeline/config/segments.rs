@@ -59,12 +59,20 @@ pub struct Segment {
 }
 
 const FILE_KEYS: &[&str] = &["eye", "segments"];
+
+/// How far outside the image (as a share of its width or height) a point
+/// may lie: eye motion moves vessels by a few per cent, no more.
+const MARGIN: f64 = 0.5;
 const SEGMENT_KEYS: &[&str] = &["id", "kind", "points", "notes"];
 
-/// Reads a segment file for `eye`; findings go to `findings`.
+/// Reads a segment file for `eye`; findings go to `findings`. With the
+/// size of the eye's captures (px), a segment that reaches far outside them
+/// is an error: it cannot be a vessel of these images, and profiling it
+/// would sample millions of positions off the image.
 pub(crate) fn load_segments(
     path: &Path,
     eye: Eye,
+    image: Option<(f64, f64)>,
     findings: &mut Findings,
 ) -> Option<Vec<Segment>> {
     let root = super::read::load_tree(
@@ -120,6 +128,30 @@ pub(crate) fn load_segments(
             }
             if points.len() < 2 {
                 r.error(pn.mark, "a segment needs at least two points");
+            } else if let Some(((x, y), (w, h))) = image.and_then(|(w, h)| {
+                points
+                    .iter()
+                    .find(|(x, y)| {
+                        !(-w * MARGIN..=w * (1.0 + MARGIN)).contains(x)
+                            || !(-h * MARGIN..=h * (1.0 + MARGIN)).contains(y)
+                    })
+                    .map(|p| (*p, (w, h)))
+            }) {
+                r.error(
+                    pn.mark,
+                    format!(
+                        "the segment reaches ({x}, {y}), far outside the captures ({w} × {h} px)"
+                    ),
+                )
+                .hint(
+                    "points are pixel coordinates (x right, y down) in the eye's reference capture",
+                );
+            } else if points.windows(2).all(|w| w[0] == w[1]) {
+                r.error(
+                    pn.mark,
+                    "the segment has no length: all its points are the same",
+                )
+                .hint("give points along the vessel, at least a few pixels apart");
             }
         }
         if let (Some(id), Some(kind)) = (id, kind) {
@@ -136,6 +168,15 @@ pub(crate) fn load_segments(
                 notes,
             });
         }
+    }
+    if out.is_empty() && findings.error_count() == before {
+        findings
+            .warning(
+                path,
+                Some(list.mark),
+                "the segment file lists no segments: this eye gives no values",
+            )
+            .hint("add the eye's vessel segments, or leave the file out of the study");
     }
     (findings.error_count() == before).then_some(out)
 }

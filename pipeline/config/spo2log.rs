@@ -1,6 +1,8 @@
 //! Pulse-oximeter logs: one CSV per session, read once with the study.
-//! Empty cells, `NaN`, `-`, non-finite values and values outside 1–100 are
-//! dropouts; a time or value that cannot be read is a finding with
+//! Empty cells, `NaN` and `-` are dropouts; 0 is a dropout too (some
+//! oximeters log it while they have no reading) and is counted in a
+//! warning; any other value outside 1–100, or infinite, is impossible and an
+//! error. A time or value that cannot be read is a finding with
 //! `file:line:column`.
 
 use std::path::{Path, PathBuf};
@@ -38,6 +40,7 @@ pub(crate) fn read_log(
     let sc = t.column(p, &log.spo2_column, "the SpO2 log", findings);
     let (tc, sc) = (tc?, sc?);
     let mut out = SpO2Log::default();
+    let mut zeros = 0usize;
     for row in &t.rows {
         let Some((ts, tm)) = row.field(tc) else {
             findings.error(p, Some(Mark::new(row.line, 1)), "this line has no time");
@@ -58,7 +61,21 @@ pub(crate) fn read_log(
             Some((s, _)) if s.is_empty() || s.eq_ignore_ascii_case("nan") || s == "-" => None,
             Some((s, m)) => match s.parse::<f64>() {
                 Ok(v) if v.is_finite() && (1.0..=100.0).contains(&v) => Some(v),
-                Ok(_) => None,
+                // Some oximeters log 0 while they have no reading.
+                Ok(0.0) => {
+                    zeros += 1;
+                    None
+                }
+                Ok(_) => {
+                    findings
+                        .error(
+                            p,
+                            Some(m),
+                            format!("SpO2 `{s}` is impossible: a saturation lies between 0 and 100 %"),
+                        )
+                        .hint("leave the cell empty (or write NaN) for a dropout; check the column is SpO2");
+                    continue;
+                }
                 Err(_) => {
                     findings
                         .error(p, Some(m), format!("SpO2 `{s}` is not a number"))
@@ -71,6 +88,15 @@ pub(crate) fn read_log(
             Some(v) => out.samples.push((seconds_between(session_start, &time), v)),
             None => out.dropouts += 1,
         }
+    }
+    if zeros > 0 {
+        findings
+            .warning(
+                p,
+                None,
+                format!("{zeros} SpO2 values of 0 were taken as dropouts (no reading)"),
+            )
+            .hint("if the oximeter writes 0 for something else, convert the log first");
     }
     if findings.error_count() > before {
         return None;

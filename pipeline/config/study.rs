@@ -139,8 +139,22 @@ pub struct Method {
 pub struct Exclusions {
     pub min_diameter_um: Option<f64>,
     pub subjects: Vec<String>,
-    /// (capture as listed, reason).
-    pub captures: Vec<(String, String)>,
+    pub captures: Vec<ExcludedCapture>,
+}
+
+/// A capture the study file leaves out, and why.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct ExcludedCapture {
+    /// As written: the capture's path relative to the study file's folder,
+    /// or as its capture list writes it when that names one capture only.
+    pub file: String,
+    pub reason: String,
+    /// The listed capture it names, found once the study is read (not part
+    /// of the study's identity: it depends on where the folder lies).
+    #[serde(skip)]
+    pub path: PathBuf,
+    #[serde(skip)]
+    pub mark: Mark,
 }
 
 /// Adjustment of p values across a model's contrasts.
@@ -282,11 +296,118 @@ pub(crate) fn read_study_file(path: &Path) -> (Option<Study>, Findings) {
     };
     // File-level checks that need the whole study.
     let study = study.map(|mut s| {
+        match_exclusions(&mut s, &mut findings);
         check_files(&s, &mut findings);
         s.spectra = check_spectra(&s, &mut findings);
         s
     });
     (study, findings)
+}
+
+/// `a/./b/../c` → `a/c`, without touching the file system (a capture
+/// named in the study need not exist when a spectra table replaces it).
+fn lexical(p: &Path) -> PathBuf {
+    use std::path::Component;
+    let mut out = PathBuf::new();
+    for c in p.components() {
+        match c {
+            Component::CurDir => {}
+            Component::ParentDir => {
+                if !out.pop() {
+                    out.push("..");
+                }
+            }
+            other => out.push(other.as_os_str()),
+        }
+    }
+    out
+}
+
+/// Finds the listed capture each exclusion names: by its path relative to
+/// the study file's folder, else as a capture list writes it if that is one
+/// capture only. An exclusion that names none, or several, is an error: a
+/// capture meant to be left out must not be analysed by mistake.
+fn match_exclusions(study: &mut Study, findings: &mut Findings) {
+    let listed: Vec<(&str, &Capture)> = study
+        .subjects
+        .iter()
+        .flat_map(|s| {
+            s.sessions
+                .iter()
+                .flat_map(move |x| x.captures.iter().map(move |c| (s.id.as_str(), c)))
+        })
+        .collect();
+    let rel = |c: &Capture| {
+        lexical(&c.path)
+            .strip_prefix(lexical(&study.root))
+            .map(|p| p.to_string_lossy().replace('\\', "/"))
+            .unwrap_or_else(|_| c.path.display().to_string())
+    };
+    let mut found = Vec::new();
+    for e in &study.exclusions.captures {
+        let want = lexical(&study.root.join(&e.file));
+        let by_path: Vec<&(&str, &Capture)> = listed
+            .iter()
+            .filter(|(_, c)| lexical(&c.path) == want)
+            .collect();
+        let hits = if by_path.is_empty() {
+            listed.iter().filter(|(_, c)| c.listed == e.file).collect()
+        } else {
+            by_path
+        };
+        match hits.as_slice() {
+            [(_, c)] => found.push(Some(c.path.clone())),
+            [] => {
+                let names: Vec<String> = listed.iter().map(|(_, c)| rel(c)).collect();
+                let names: Vec<&str> = names.iter().map(String::as_str).collect();
+                let example = names
+                    .first()
+                    .copied()
+                    .unwrap_or("subjects/ID/captures/c001.tif");
+                let best = names
+                    .iter()
+                    .map(|n| (strsim::normalized_damerau_levenshtein(&e.file, n), *n))
+                    .max_by(|a, b| a.0.total_cmp(&b.0).then(b.1.cmp(a.1)))
+                    .filter(|(score, _)| *score >= 0.8);
+                let hint = match best {
+                    Some((_, n)) => format!("did you mean `{n}`?"),
+                    None => format!(
+                        "write the capture's path relative to the study file's folder, e.g. `{example}`"
+                    ),
+                };
+                findings
+                    .error(
+                        &study.file,
+                        Some(e.mark),
+                        format!("excluded capture `{}` is not a listed capture", e.file),
+                    )
+                    .hint(hint);
+                found.push(None);
+            }
+            many => {
+                let which: Vec<String> = many
+                    .iter()
+                    .map(|(s, c)| format!("`{}` (subject {s})", rel(c)))
+                    .collect();
+                findings
+                    .error(
+                        &study.file,
+                        Some(e.mark),
+                        format!(
+                            "excluded capture `{}` names {} captures: {}",
+                            e.file,
+                            many.len(),
+                            which.join(", ")
+                        ),
+                    )
+                    .hint("write the one capture's path relative to the study file's folder");
+                found.push(None);
+            }
+        }
+    }
+    for (e, p) in study.exclusions.captures.iter_mut().zip(found) {
+        e.path = p.unwrap_or_default();
+    }
 }
 
 fn read_study(r: &mut Reader, node: &Node, file: &Path, root: &Path) -> Option<Study> {
@@ -379,10 +500,23 @@ fn read_study(r: &mut Reader, node: &Node, file: &Path, root: &Path) -> Option<S
         .and_then(|n| r.text(n, "`spectra`"))
         .map(|t| root.join(t));
 
-    let output = match m.get("output") {
-        None => root.join("results"),
-        Some(n) => root.join(r.text(n, "`output`").unwrap_or_else(|| "results".into())),
+    let (output, output_mark) = match m.get("output") {
+        None => (root.join("results"), node.mark),
+        Some(n) => (
+            root.join(r.text(n, "`output`").unwrap_or_else(|| "results".into())),
+            n.mark,
+        ),
     };
+    if output.exists() && !output.is_dir() {
+        r.error(
+            output_mark,
+            format!(
+                "the output folder `{}` is a file, not a folder",
+                output.display()
+            ),
+        )
+        .hint("set `output:` to a folder (it is created if missing), e.g. `results`");
+    }
 
     Some(Study {
         id: id?,
@@ -675,7 +809,16 @@ fn read_session(
     };
     let captures = match r.required(&m, "captures", "a session") {
         None => Vec::new(),
-        Some(n) => read_captures(r, n, root, &eyes),
+        Some(n) => {
+            let before = r.findings.error_count();
+            let c = read_captures(r, n, root, &eyes);
+            // Said once: a list whose lines were all wrong has its own errors.
+            if c.is_empty() && r.findings.error_count() == before {
+                r.error(n.mark, "the session lists no captures")
+                    .hint("a capture list has a header line `file,time` and one line per capture");
+            }
+            c
+        }
     };
     let reference = m.get("reference").and_then(|n| read_log(r, n, root));
     let mut segments = BTreeMap::new();
@@ -1204,7 +1347,12 @@ fn read_exclusions(
                 .required(&cm, "reason", "an excluded capture")
                 .and_then(|x| r.text(x, "`reason`"));
             if let (Some(f), Some(reason)) = (f, reason) {
-                caps.push((f, reason));
+                caps.push(ExcludedCapture {
+                    file: f,
+                    reason,
+                    path: PathBuf::new(),
+                    mark: item.mark,
+                });
             }
         }
     }

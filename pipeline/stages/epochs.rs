@@ -148,8 +148,8 @@ pub fn build(study: &Study) -> EpochTables {
                         .exclusions
                         .captures
                         .iter()
-                        .find(|(f, _)| *f == c.listed)
-                        .map(|(_, r)| r.clone())
+                        .find(|e| e.path == c.path)
+                        .map(|e| e.reason.clone())
                 };
                 let r = log.map(|l| reference_at(l, t, &p.reference));
                 captures.push(CaptureRow {

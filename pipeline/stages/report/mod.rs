@@ -281,8 +281,8 @@ impl Document<'_> {
                 )
             })
             .collect();
-        for (f, r) in &self.inp.study.exclusions.captures {
-            v.push(format!("`{f}` excluded by the study: {r}"));
+        for e in &self.inp.study.exclusions.captures {
+            v.push(format!("`{}` excluded by the study: {}", e.file, e.reason));
         }
         for subj in &self.inp.study.exclusions.subjects {
             v.push(format!("subject {subj} excluded by the study"));

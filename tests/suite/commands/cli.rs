@@ -1,6 +1,8 @@
 //! Command-line tests: the real binary on real files in a temporary folder,
 //! checking exit status and the exact messages a researcher sees.
 
+use std::path::Path;
+
 use crate::common::*;
 
 #[test]
@@ -670,4 +672,99 @@ fn mixed_writes_the_four_tables_and_matches_the_reference() {
         "{}",
         bad.stderr
     );
+}
+
+/// A study with two subjects listing captures of the same names.
+fn two_subject_study(dir: &Path) {
+    small_study(
+        dir,
+        &[
+            ("c1.tif", "2026-05-04T09:05:00+02:00"),
+            ("c2.tif", "2026-05-04T09:16:00+02:00"),
+        ],
+        "",
+    );
+    for f in ["captures.csv", "spo2.csv", "segments-OD.yaml"] {
+        let text = std::fs::read_to_string(dir.join("S1").join(f)).unwrap();
+        write(dir, &format!("S2/{f}"), &text);
+    }
+    for f in ["c1.tif", "c2.tif"] {
+        write_capture(dir, &format!("S2/{f}"));
+    }
+    let study = std::fs::read_to_string(dir.join("study.yaml")).unwrap();
+    let s2 = "  - id: S2\n    sessions:\n      - id: s1\n        start: 2026-05-04T09:00:00+02:00\n        eyes: [OD]\n        captures: S2/captures.csv\n        reference: {file: S2/spo2.csv}\n        segments: {OD: S2/segments-OD.yaml}\nmethods:\n";
+    write(dir, "study.yaml", &study.replacen("methods:\n", s2, 1));
+}
+
+fn with_exclusion(dir: &Path, file: &str) {
+    let study = std::fs::read_to_string(dir.join("study.yaml")).unwrap();
+    write(
+        dir,
+        "study.yaml",
+        &format!("{study}exclusions:\n  captures: [{{file: {file}, reason: blink}}]\n"),
+    );
+}
+
+#[test]
+fn an_excluded_capture_is_named_by_its_path_in_the_study_folder() {
+    // As the README writes it: relative to the study file's folder. It
+    // excludes that capture of that subject and no other.
+    let dir = tempfile::tempdir().unwrap();
+    two_subject_study(dir.path());
+    with_exclusion(dir.path(), "S2/c2.tif");
+    // (The tiny flat test captures do not register, so the run ends with 1.)
+    let out = satstep(dir.path(), &["run", "."]);
+    assert!(out.stderr.contains("1 excluded"), "{}", out.stderr);
+    let csv = std::fs::read_to_string(dir.path().join("results/epochs/captures.csv")).unwrap();
+    let excluded: Vec<(&str, &str)> = csv
+        .lines()
+        .filter(|l| l.contains(",excluded,"))
+        .map(|l| {
+            let f: Vec<&str> = l.split(',').collect();
+            (f[0], f[3])
+        })
+        .collect();
+    assert_eq!(excluded, [("S2", "c2.tif")], "{csv}");
+}
+
+#[test]
+fn an_exclusion_that_names_no_capture_or_several_is_an_error() {
+    let dir = tempfile::tempdir().unwrap();
+    two_subject_study(dir.path());
+    with_exclusion(dir.path(), "S2/c3.tif");
+    let out = satstep(dir.path(), &["check", "."]);
+    assert_eq!(out.code, 1, "{}", out.stderr);
+    assert!(
+        out.stderr
+            .contains("excluded capture `S2/c3.tif` is not a listed capture"),
+        "{}",
+        out.stderr
+    );
+    assert!(
+        out.stderr.contains("did you mean `S2/c1.tif`?")
+            || out.stderr.contains("did you mean `S2/c2.tif`?"),
+        "{}",
+        out.stderr
+    );
+
+    // As a capture list writes it, the name is in both subjects' lists.
+    let dir = tempfile::tempdir().unwrap();
+    two_subject_study(dir.path());
+    with_exclusion(dir.path(), "c2.tif");
+    let out = satstep(dir.path(), &["check", "."]);
+    assert_eq!(out.code, 1, "{}", out.stderr);
+    assert!(
+        out.stderr.contains(
+            "excluded capture `c2.tif` names 2 captures: `S1/c2.tif` (subject S1), `S2/c2.tif` (subject S2)"
+        ),
+        "{}",
+        out.stderr
+    );
+
+    // As the list writes it, and only one subject lists it: accepted.
+    let dir = tempfile::tempdir().unwrap();
+    small_study(dir.path(), &[("c1.tif", "2026-05-04T09:05:00+02:00")], "");
+    with_exclusion(dir.path(), "c1.tif");
+    let out = satstep(dir.path(), &["check", "."]);
+    assert_eq!(out.code, 0, "{}", out.stderr);
 }

@@ -1,3 +1,4 @@
 //! The program as a user runs it.
 
 mod cli;
+mod hostile;
