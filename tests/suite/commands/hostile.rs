@@ -35,6 +35,14 @@ fn says(o: &Output, what: &str) {
     );
 }
 
+/// `check` refuses the study and says `what`.
+fn refused(dir: &Path, what: &str) -> Output {
+    let o = check(dir);
+    assert_eq!(o.code, 1, "{}", o.stderr);
+    says(&o, what);
+    o
+}
+
 #[test]
 fn a_byte_order_mark_is_not_content() {
     let dir = tempfile::tempdir().unwrap();
@@ -50,13 +58,14 @@ fn a_file_that_is_not_utf8_is_named_with_the_place() {
     let dir = tempfile::tempdir().unwrap();
     study(dir.path());
     let mut bytes = std::fs::read(dir.path().join("protocol.yaml")).unwrap();
-    // Latin-1 "é" in the second line's value.
+    // A Latin-1 "é" in a comment on the second line.
     let at = bytes.iter().position(|b| *b == b'\n').unwrap() + 1;
     bytes.splice(at..at, b"# caf\xe9\n".iter().copied());
     std::fs::write(dir.path().join("protocol.yaml"), bytes).unwrap();
-    let o = check(dir.path());
-    assert_eq!(o.code, 1, "{}", o.stderr);
-    says(&o, "protocol.yaml:2:6: the protocol file is not UTF-8 text");
+    let o = refused(
+        dir.path(),
+        "protocol.yaml:2:6: the protocol file is not UTF-8 text",
+    );
     says(&o, "save the file as UTF-8");
     assert!(!o.stderr.contains("expected one of\n"), "{}", o.stderr);
 }
@@ -95,9 +104,7 @@ fn an_absurd_lag_or_window_is_an_error() {
     let dir = tempfile::tempdir().unwrap();
     study(dir.path());
     edit(dir.path(), "protocol.yaml", "window: 10s", "window: 2h");
-    let o = check(dir.path());
-    assert_eq!(o.code, 1, "{}", o.stderr);
-    says(&o, "`window` of 2h is longer than 10min");
+    refused(dir.path(), "`window` of 2h is longer than 10min");
 }
 
 #[test]
@@ -105,9 +112,10 @@ fn empty_lists_are_said() {
     let dir = tempfile::tempdir().unwrap();
     study(dir.path());
     write(dir.path(), "S1/captures.csv", "file,time\n");
-    let o = check(dir.path());
-    assert_eq!(o.code, 1, "{}", o.stderr);
-    says(&o, "study.yaml:15:19: the session lists no captures");
+    refused(
+        dir.path(),
+        "study.yaml:15:19: the session lists no captures",
+    );
 
     let dir = tempfile::tempdir().unwrap();
     study(dir.path());
@@ -130,9 +138,10 @@ fn a_segment_without_length_or_far_off_the_image_is_an_error() {
         "[[1, 1], [6, 6]]",
         "[[3, 3], [3, 3]]",
     );
-    let o = check(dir.path());
-    assert_eq!(o.code, 1, "{}", o.stderr);
-    says(&o, "the segment has no length: all its points are the same");
+    refused(
+        dir.path(),
+        "the segment has no length: all its points are the same",
+    );
 
     let dir = tempfile::tempdir().unwrap();
     study(dir.path());
@@ -157,9 +166,7 @@ fn an_output_that_is_a_file_fails_at_check() {
     write(dir.path(), "taken", "a file\n");
     let text = std::fs::read_to_string(dir.path().join("study.yaml")).unwrap();
     write(dir.path(), "study.yaml", &format!("{text}output: taken\n"));
-    let o = check(dir.path());
-    assert_eq!(o.code, 1, "{}", o.stderr);
-    says(&o, "is a file, not a folder");
+    refused(dir.path(), "is a file, not a folder");
 }
 
 #[test]
