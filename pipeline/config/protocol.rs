@@ -186,7 +186,7 @@ pub fn load_protocol(path: &Path) -> Result<Protocol, Findings> {
 /// file's inline `protocol:`).
 pub(crate) fn read_protocol(r: &mut Reader, node: &Node) -> Option<Protocol> {
     let m = r.map(node, "the protocol", PROTOCOL_KEYS)?;
-    let name = m.get("name").and_then(|n| r.text(n, "`name`"));
+    let name = m.get("name").and_then(|n| r.name(n, "`name`"));
     if m.get("name").is_none() {
         r.required(&m, "name", "the protocol");
     }
@@ -306,7 +306,7 @@ fn read_epoch(r: &mut Reader, node: &Node) -> Option<Epoch> {
     let m = r.map(node, "an epoch", EPOCH_KEYS)?;
     let name = r
         .required(&m, "name", "an epoch")
-        .and_then(|n| r.text(n, "an epoch's `name`"));
+        .and_then(|n| r.name(n, "an epoch's `name`"));
     if let Some(n) = &name {
         if n.trim().is_empty() || n.contains(char::is_whitespace) {
             r.error(

@@ -19,6 +19,21 @@ pub(crate) fn load_tree(
     hint: &str,
     findings: &mut Findings,
 ) -> Option<Node> {
+    if let Ok(m) = std::fs::metadata(path) {
+        if m.len() > super::yaml::MAX_YAML_BYTES {
+            findings
+                .error(
+                    path,
+                    None,
+                    format!(
+                        "the {what} is {:.0} MB; it is read as YAML, which is never that large",
+                        m.len() as f64 / 1e6
+                    ),
+                )
+                .hint(hint);
+            return None;
+        }
+    }
     let bytes = match std::fs::read(path) {
         Ok(b) => b,
         Err(e) => {
@@ -158,6 +173,21 @@ impl<'a> Reader<'a> {
                 None
             }
         }
+    }
+
+    /// A name that tables, figures and reports print (an id, an epoch
+    /// name, a label, a title): one line, no control characters.
+    pub fn name(&mut self, node: &Node, what: &str) -> Option<String> {
+        let t = self.text(node, what)?;
+        if t.chars().any(char::is_control) {
+            self.error(
+                node.mark,
+                format!("{what} contains a line break or another control character"),
+            )
+            .hint("write it on one line: it becomes a cell of every table");
+            return None;
+        }
+        Some(t)
     }
 
     pub fn number(&mut self, node: &Node, what: &str) -> Option<f64> {

@@ -105,7 +105,7 @@ pub(crate) fn load_segments(
         };
         let id = r
             .required(&sm, "id", "a segment")
-            .and_then(|n| r.text(n, "`id`"));
+            .and_then(|n| r.name(n, "`id`"));
         let kind = r
             .required(&sm, "kind", "a segment")
             .and_then(|n| r.choice(n, "vessel `kind`", &VesselKind::NAMES))

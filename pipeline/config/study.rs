@@ -414,10 +414,10 @@ fn read_study(r: &mut Reader, node: &Node, file: &Path, root: &Path) -> Option<S
     let m = r.map(node, "the study file", STUDY_KEYS)?;
     let id = r
         .required(&m, "study", "the study file")
-        .and_then(|n| r.text(n, "`study`"));
+        .and_then(|n| r.name(n, "`study`"));
     let title = m
         .get("title")
-        .and_then(|n| r.text(n, "`title`"))
+        .and_then(|n| r.name(n, "`title`"))
         .unwrap_or_default();
 
     let (protocol, protocol_file) = match r.required(&m, "protocol", "the study file") {
@@ -552,7 +552,7 @@ pub(crate) fn read_instrument(r: &mut Reader, node: &Node, root: &Path) -> Optio
     let m = r.map(node, "`instrument`", INSTRUMENT_KEYS)?;
     let name = m
         .get("name")
-        .and_then(|n| r.text(n, "`name`"))
+        .and_then(|n| r.name(n, "`name`"))
         .unwrap_or_else(|| "unnamed".into());
     let pixel = r
         .required(&m, "pixel_size_um", "`instrument`")
@@ -624,7 +624,7 @@ fn read_band(r: &mut Reader, node: &Node, root: &Path) -> Option<Band> {
     let m = r.map(node, "a band", BAND_KEYS)?;
     let name = r
         .required(&m, "name", "a band")
-        .and_then(|n| r.text(n, "a band's `name`"));
+        .and_then(|n| r.name(n, "a band's `name`"));
     let response = match (m.get("centre_nm"), m.get("fwhm_nm"), m.get("response")) {
         (Some(c), Some(w), None) => {
             let c = positive(r, c, "`centre_nm`");
@@ -735,7 +735,7 @@ fn read_subject(
     let m = r.map(node, "a subject", SUBJECT_KEYS)?;
     let id = r
         .required(&m, "id", "a subject")
-        .and_then(|n| r.text(n, "a subject's `id`"));
+        .and_then(|n| r.name(n, "a subject's `id`"));
     let age = m.get("age").and_then(|n| positive(r, n, "`age`"));
     let sex = m.get("sex").and_then(|n| r.text(n, "`sex`"));
     let pigmentation = m
@@ -783,7 +783,7 @@ fn read_session(
     let m = r.map(node, "a session", SESSION_KEYS)?;
     let id = m
         .get("id")
-        .and_then(|n| r.text(n, "a session's `id`"))
+        .and_then(|n| r.name(n, "a session's `id`"))
         .unwrap_or_else(|| "1".into());
     let start = r
         .required(&m, "start", "a session")
@@ -1094,7 +1094,7 @@ fn read_methods(
         };
         let label = m
             .get("label")
-            .and_then(|n| r.text(n, "`label`"))
+            .and_then(|n| r.name(n, "`label`"))
             .unwrap_or_else(|| kind.clone());
         if out.iter().any(|x| x.label == label) {
             r.error(item.mark, format!("two methods are labelled `{label}`"))

@@ -72,10 +72,32 @@ struct Builder {
     /// Open containers: the node under construction, for maps a pending key,
     /// and the container's anchor id (0 for none).
     stack: Vec<(Node, Option<Node>, usize)>,
-    anchors: Vec<(usize, Node)>,
+    /// Anchored nodes with their size in nodes.
+    anchors: Vec<(usize, Node, usize)>,
     root: Option<Node>,
     documents: usize,
     duplicate_keys: Vec<(String, Mark, Mark)>,
+    /// Nodes in the tree so far, counting every alias's copy.
+    nodes: usize,
+    /// Where the tree grew past [`MAX_NODES`]; nothing is built after it.
+    too_large: Option<Mark>,
+}
+
+/// Most nodes a file may expand to. Aliases copy their anchored node, so
+/// a few kB of nested aliases can expand to billions; a study of a thousand
+/// captures is some tens of thousands of nodes.
+const MAX_NODES: usize = 1_000_000;
+
+/// Largest file read as YAML (bytes): study, protocol and segment files
+/// are kilobytes; capture lists and logs are CSV.
+pub(crate) const MAX_YAML_BYTES: u64 = 16 << 20;
+
+fn size_of(n: &Node) -> usize {
+    1 + match &n.value {
+        Value::Seq(items) => items.iter().map(size_of).sum(),
+        Value::Map(entries) => entries.iter().map(|(k, v)| size_of(k) + size_of(v)).sum(),
+        _ => 0,
+    }
 }
 
 fn mark_of(m: &Marker) -> Mark {
@@ -86,7 +108,8 @@ fn mark_of(m: &Marker) -> Mark {
 impl Builder {
     fn attach(&mut self, node: Node, anchor: usize) {
         if anchor > 0 {
-            self.anchors.push((anchor, node.clone()));
+            let size = size_of(&node);
+            self.anchors.push((anchor, node.clone(), size));
         }
         match self.stack.last_mut() {
             None => {
@@ -119,6 +142,24 @@ impl Builder {
 impl MarkedEventReceiver for Builder {
     fn on_event(&mut self, ev: Event, marker: Marker) {
         let mark = mark_of(&marker);
+        if self.too_large.is_some() {
+            return;
+        }
+        let grows = match &ev {
+            Event::Scalar(..) | Event::SequenceStart(..) | Event::MappingStart(..) => 1,
+            Event::Alias(id) => self
+                .anchors
+                .iter()
+                .rev()
+                .find(|(a, _, _)| a == id)
+                .map_or(1, |(_, _, n)| *n),
+            _ => 0,
+        };
+        self.nodes = self.nodes.saturating_add(grows);
+        if self.nodes > MAX_NODES {
+            self.too_large = Some(mark);
+            return;
+        }
         match ev {
             Event::DocumentStart => self.documents += 1,
             Event::Scalar(text, style, anchor, tag) => {
@@ -163,8 +204,8 @@ impl MarkedEventReceiver for Builder {
                     .anchors
                     .iter()
                     .rev()
-                    .find(|(a, _)| *a == id)
-                    .map(|(_, n)| Node {
+                    .find(|(a, _, _)| *a == id)
+                    .map(|(_, n, _)| Node {
                         value: n.value.clone(),
                         mark,
                     })
@@ -188,6 +229,8 @@ pub fn parse(file: &Path, text: &str) -> Result<Node, Vec<Finding>> {
         root: None,
         documents: 0,
         duplicate_keys: Vec::new(),
+        nodes: 0,
+        too_large: None,
     };
     let mut parser = Parser::new_from_str(text);
     if let Err(e) = parser.load(&mut b, true) {
@@ -200,6 +243,17 @@ pub fn parse(file: &Path, text: &str) -> Result<Node, Vec<Finding>> {
             hint: Some(
                 "check the indentation and the `key: value` layout around this position".into(),
             ),
+        }]);
+    }
+    if let Some(mark) = b.too_large {
+        return Err(vec![Finding {
+            severity: Severity::Error,
+            file: file.to_path_buf(),
+            mark: Some(mark),
+            message: format!(
+                "the file expands to more than {MAX_NODES} values here (aliases `*name` copy what their anchor `&name` holds)"
+            ),
+            hint: Some("a study needs far fewer: check the anchors and aliases".into()),
         }]);
     }
     let mut errors = Vec::new();
@@ -234,6 +288,22 @@ pub fn parse(file: &Path, text: &str) -> Result<Node, Vec<Finding>> {
 
 #[cfg(test)]
 mod tests {
+    #[test]
+    fn an_alias_bomb_is_refused_quickly() {
+        // Nine levels of ten aliases each: 10^9 values from 300 bytes.
+        let mut text = String::from("a0: &a0 [x, x, x, x, x, x, x, x, x, x]\n");
+        for i in 1..10 {
+            let p = i - 1;
+            text.push_str(&format!(
+                "a{i}: &a{i} [*a{p}, *a{p}, *a{p}, *a{p}, *a{p}, *a{p}, *a{p}, *a{p}, *a{p}, *a{p}]\n"
+            ));
+        }
+        let t0 = std::time::Instant::now();
+        let errs = super::parse(std::path::Path::new("bomb.yaml"), &text).unwrap_err();
+        assert!(errs[0].message.contains("expands to more than"), "{errs:?}");
+        assert!(t0.elapsed().as_secs_f64() < 5.0);
+    }
+
     use super::*;
 
     fn p(text: &str) -> Node {

@@ -27,7 +27,7 @@ use crate::config::study::Study;
 use crate::runner::Runner;
 use crate::runner::key::{Key, KeyBuilder, combine};
 use crate::tables::write_bytes_atomic;
-use tables::{ReportTable, html_escape};
+use tables::{ReportTable, html_escape, markdown_escape as md};
 
 /// The report stage.
 pub(crate) struct Report;
@@ -382,9 +382,9 @@ impl Document<'_> {
     fn markdown(&self) -> String {
         let s = self.inp.study;
         let mut m = format!(
-            "# {}\n\nStudy `{}`. Report written by satstep {}.\n\n",
-            s.title,
-            s.id,
+            "# {}\n\nStudy {}. Report written by satstep {}.\n\n",
+            md(&s.title),
+            md(&s.id),
             env!("CARGO_PKG_VERSION")
         );
         m.push_str("> **Cautions.**\n");
@@ -393,7 +393,7 @@ impl Document<'_> {
         }
         m.push_str("\n## Cohort and protocol\n\n");
         for p in self.cohort() {
-            m.push_str(&format!("{p}\n\n"));
+            m.push_str(&format!("{}\n\n", md(&p)));
         }
         m.push_str(&format!(
             "```\n{}```\n\n## Results\n\nFigures of a single method show `{}`.\n\n",
@@ -401,17 +401,19 @@ impl Document<'_> {
             self.primary
         ));
         for t in self.results {
-            m.push_str(&format!("**{}**\n\n{}\n", t.caption, t.markdown()));
+            m.push_str(&format!("**{}**\n\n{}\n", md(&t.caption), t.markdown()));
         }
         for f in self.figures {
             m.push_str(&format!(
                 "![{}](figures/{}.png)\n\n*{}*\n\n",
-                f.name, f.name, f.caption
+                f.name,
+                f.name,
+                md(&f.caption)
             ));
         }
         m.push_str("## Methods\n\n");
         for p in self.inp.methods {
-            m.push_str(&format!("{p}\n\n"));
+            m.push_str(&format!("{}\n\n", md(p)));
         }
         m.push_str("### References\n\n");
         for (i, r) in REFERENCES.iter().enumerate() {
@@ -419,14 +421,14 @@ impl Document<'_> {
         }
         m.push_str("\n## Data quality\n\n");
         for t in self.quality {
-            m.push_str(&format!("**{}**\n\n{}\n", t.caption, t.markdown()));
+            m.push_str(&format!("**{}**\n\n{}\n", md(&t.caption), t.markdown()));
         }
         let fails = self.failures();
         if fails.is_empty() {
             m.push_str("Every listed capture was read and registered.\n\n");
         }
         for f in &fails {
-            m.push_str(&format!("- {f}\n"));
+            m.push_str(&format!("- {}\n", md(f)));
         }
         m.push_str(&format!("\n## Provenance\n\nsatstep {} · cache format {} · study file `{}`\n\nPer-stage keys, timings and counts are in `manifest.json` beside this folder.\n", env!("CARGO_PKG_VERSION"), crate::runner::key::CACHE_FORMAT, self.rel(&s.file)));
         m.push_str("\n| input file | SHA-256 |\n|---|---|\n");

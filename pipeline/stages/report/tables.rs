@@ -48,7 +48,7 @@ impl ReportTable {
     }
 
     pub fn markdown(&self) -> String {
-        let esc = |s: &str| s.replace('|', "\\|");
+        let esc = |s: &str| markdown_escape(s).replace('|', "\\|");
         let mut out = format!(
             "| {} |\n|",
             self.columns
@@ -165,7 +165,35 @@ pub(crate) fn latex_escape(s: &str) -> String {
             '×' => out.push_str("$\\times$"),
             'µ' => out.push_str("\\textmu{}"),
             '–' => out.push_str("--"),
-            _ => out.push(ch),
+            // OT1 fonts print `<` as ¡: set them as math.
+            '<' | '>' | '|' => {
+                out.push('$');
+                out.push(ch);
+                out.push('$');
+            }
+            c if c.is_control() => out.push(' '),
+            // Latin letters pdflatex reads as UTF-8 input; anything else
+            // (other scripts, symbols) cannot be set without extra fonts,
+            // so it is named rather than breaking the compile.
+            c if c.is_ascii() || ('\u{a0}'..='\u{17f}').contains(&c) => out.push(c),
+            c => out.push_str(&format!("[U+{:04X}]", c as u32)),
+        }
+    }
+    out
+}
+
+/// Text from the study (ids, names, titles) for Markdown: HTML's special
+/// characters as entities, so that no id becomes markup, and line breaks
+/// as spaces, so that no id breaks a table.
+pub(crate) fn markdown_escape(s: &str) -> String {
+    let mut out = String::with_capacity(s.len());
+    for ch in s.chars() {
+        match ch {
+            '&' => out.push_str("&amp;"),
+            '<' => out.push_str("&lt;"),
+            '>' => out.push_str("&gt;"),
+            c if c.is_control() => out.push(' '),
+            c => out.push(c),
         }
     }
     out
@@ -573,6 +601,18 @@ mod tests {
             s.matches('{').count() - s.matches("\\{").count(),
             s.matches('}').count() - s.matches("\\}").count()
         );
+    }
+
+    #[test]
+    fn user_text_cannot_become_markup() {
+        let mut t = ReportTable::new("x", "c", &[("id", false)]);
+        t.rows
+            .push(vec!["<script>x</script>\n<img onerror=y>".into()]);
+        let md = t.markdown();
+        assert!(!md.contains('<') && md.contains("&lt;script&gt;"), "{md}");
+        assert_eq!(md.lines().count(), 3, "{md}");
+        let tex = latex_escape("a < b | c > d, 酸素, café");
+        assert_eq!(tex, "a $<$ b $|$ c $>$ d, [U+9178][U+7D20], café");
     }
 
     #[test]

@@ -191,3 +191,14 @@ fn a_study_folder_whose_name_is_not_utf8_is_an_error_not_a_panic() {
         );
     }
 }
+
+#[test]
+fn a_name_with_a_line_break_is_refused() {
+    let dir = tempfile::tempdir().unwrap();
+    study(dir.path());
+    edit(dir.path(), "S1/segments-OD.yaml", "id: A1", "id: \"A\\n1\"");
+    refused(
+        dir.path(),
+        "segments-OD.yaml:3:9: `id` contains a line break or another control character",
+    );
+}
