@@ -91,6 +91,13 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
     std::fs::create_dir_all(out)
         .with_context(|| format!("creating the output folder `{}`", out.display()))?;
     let runner = Runner::new(out, printer, force);
+    let orphans = crate::tables::remove_orphaned_temporaries(out);
+    if orphans > 0 {
+        printer.info(format!(
+            "removed {orphans} temporary files an interrupted run left under `{}`",
+            out.display()
+        ));
+    }
 
     // Content hashes of everything the run reads, once, in parallel.
     let t0 = std::time::Instant::now();

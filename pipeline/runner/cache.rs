@@ -1,7 +1,8 @@
 //! The on-disk cache under `<output>/cache/`: one file per entry, named by
 //! its key, written atomically. An entry starts with a magic, the cache
-//! format and the SHA-256 of its payload, so that a truncated or altered
-//! file is recognised and recomputed instead of trusted.
+//! format, its own key and the SHA-256 of its payload, so that a truncated
+//! or altered file, or one copied under another key's name, is recognised
+//! and recomputed instead of trusted.
 //!
 //! Layout: `cache/<area>/<key>.bin` for results (area = stage or item kind)
 //! and `cache/stages/<stage>.json` for each stage's last record (its key
@@ -19,6 +20,9 @@ use super::key::{CACHE_FORMAT, Key};
 use crate::tables::write_bytes_atomic;
 
 const MAGIC: &[u8; 8] = b"satstep\x01";
+
+/// Magic, format, key, payload checksum.
+const HEADER: usize = 8 + 4 + 32 + 32;
 
 pub struct Store {
     root: PathBuf,
@@ -55,7 +59,7 @@ impl Store {
         let Ok(bytes) = std::fs::read(&path) else {
             return Lookup::Miss;
         };
-        match decode(&bytes) {
+        match decode(&bytes, key) {
             Ok(v) => Lookup::Hit(v),
             Err(reason) => {
                 let _ = std::fs::remove_file(&path);
@@ -69,9 +73,10 @@ impl Store {
 
     pub fn put<T: Serialize>(&self, area: &str, key: &Key, value: &T) -> Result<()> {
         let payload = postcard::to_stdvec(value).context("encoding a cache entry")?;
-        let mut bytes = Vec::with_capacity(payload.len() + 44);
+        let mut bytes = Vec::with_capacity(payload.len() + HEADER);
         bytes.extend_from_slice(MAGIC);
         bytes.extend_from_slice(&CACHE_FORMAT.to_le_bytes());
+        bytes.extend_from_slice(&key.0);
         bytes.extend_from_slice(&Sha256::digest(&payload));
         bytes.extend_from_slice(&payload);
         let path = self.entry(area, key);
@@ -107,20 +112,28 @@ enum EntryError {
     Format(u32),
     #[error("checksum mismatch (truncated or altered)")]
     Checksum,
+    #[error("it holds the entry of another key (copied or renamed)")]
+    OtherKey,
     #[error("cannot decode: {0}")]
     Decode(#[from] postcard::Error),
 }
 
-fn decode<T: DeserializeOwned>(bytes: &[u8]) -> std::result::Result<T, EntryError> {
-    if bytes.len() < 44 || &bytes[..8] != MAGIC {
+fn decode<T: DeserializeOwned>(bytes: &[u8], key: &Key) -> std::result::Result<T, EntryError> {
+    if bytes.len() < 12 || &bytes[..8] != MAGIC {
         return Err(EntryError::Header);
     }
     let format = u32::from_le_bytes(bytes[8..12].try_into().expect("4 bytes"));
     if format != CACHE_FORMAT {
         return Err(EntryError::Format(format));
     }
-    let payload = &bytes[44..];
-    if Sha256::digest(payload).as_slice() != &bytes[12..44] {
+    if bytes.len() < HEADER {
+        return Err(EntryError::Header);
+    }
+    if bytes[12..44] != key.0 {
+        return Err(EntryError::OtherKey);
+    }
+    let payload = &bytes[HEADER..];
+    if Sha256::digest(payload).as_slice() != &bytes[44..HEADER] {
         return Err(EntryError::Checksum);
     }
     Ok(postcard::from_bytes(payload)?)
@@ -171,5 +184,26 @@ mod tests {
             store.get::<(Vec<f64>, String, Option<i64>)>("area", &key),
             Lookup::Miss
         ));
+    }
+
+    #[test]
+    fn an_entry_under_another_keys_name_is_rejected() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::new(dir.path());
+        let (a, b) = (
+            KeyBuilder::new("a", 1).finish(),
+            KeyBuilder::new("b", 1).finish(),
+        );
+        store.put("area", &a, &1_i64).unwrap();
+        store.put("area", &b, &2_i64).unwrap();
+        // A's entry copied over B's: intact, checksummed, and wrong.
+        std::fs::copy(store.entry("area", &a), store.entry("area", &b)).unwrap();
+        match store.get::<i64>("area", &b) {
+            Lookup::Corrupt { reason, .. } => {
+                assert!(reason.contains("another key"), "{reason}")
+            }
+            _ => panic!("an entry under another key's name was trusted"),
+        }
+        assert!(matches!(store.get::<i64>("area", &a), Lookup::Hit(1)));
     }
 }

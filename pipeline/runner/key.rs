@@ -11,7 +11,7 @@ use serde::Serialize;
 use sha2::{Digest, Sha256};
 
 /// Bumped when the layout of cache entries or keys changes.
-pub(crate) const CACHE_FORMAT: u32 = 1;
+pub(crate) const CACHE_FORMAT: u32 = 2;
 
 #[derive(
     Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, serde::Serialize, serde::Deserialize,

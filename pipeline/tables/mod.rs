@@ -408,6 +408,49 @@ pub(crate) fn write_atomic(
     Ok(())
 }
 
+/// Removes the temporary files an interrupted run left under `dir` (those
+/// this module names `.<name>.<pid>[-<n>].tmp`), and returns how many. A file
+/// is left alone while the process that wrote it runs on this machine, and
+/// for a minute after it was last written: another run may share the
+/// folder (on a shared file system, from another machine).
+pub fn remove_orphaned_temporaries(dir: &Path) -> usize {
+    let Ok(entries) = fs::read_dir(dir) else {
+        return 0;
+    };
+    let mut removed = 0;
+    for e in entries.flatten() {
+        let path = e.path();
+        let Ok(kind) = e.file_type() else { continue };
+        if kind.is_dir() {
+            removed += remove_orphaned_temporaries(&path);
+            continue;
+        }
+        let name = e.file_name().to_string_lossy().to_string();
+        let Some(stem) = name.strip_suffix(".tmp").filter(|_| name.starts_with('.')) else {
+            continue;
+        };
+        let Some(pid) = stem
+            .rsplit('.')
+            .next()
+            .and_then(|last| last.split('-').next())
+            .and_then(|p| p.parse::<u32>().ok())
+        else {
+            continue;
+        };
+        let alive = pid == std::process::id() || Path::new(&format!("/proc/{pid}")).exists();
+        let recent = e
+            .metadata()
+            .and_then(|m| m.modified())
+            .ok()
+            .and_then(|t| t.elapsed().ok())
+            .is_none_or(|age| age.as_secs() < 60);
+        if !alive && !recent && fs::remove_file(&path).is_ok() {
+            removed += 1;
+        }
+    }
+    removed
+}
+
 /// Writes bytes atomically.
 pub(crate) fn write_bytes_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
     write_atomic(path, |f| {
@@ -421,6 +464,34 @@ pub(crate) fn write_bytes_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
 #[allow(clippy::float_cmp)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn only_orphaned_temporaries_are_removed() {
+        let dir = tempfile::tempdir().unwrap();
+        let sub = dir.path().join("cache/items");
+        fs::create_dir_all(&sub).unwrap();
+        let old = std::time::SystemTime::now() - std::time::Duration::from_secs(3600);
+        let touch = |name: &str, when: std::time::SystemTime| {
+            let p = sub.join(name);
+            fs::write(&p, b"x").unwrap();
+            fs::File::options()
+                .write(true)
+                .open(&p)
+                .unwrap()
+                .set_modified(when)
+                .unwrap();
+            p
+        };
+        // No process has a pid above Linux's largest (2^22).
+        let orphan = touch(".a.bin.4294967-3.tmp", old);
+        let stream = touch(".so2.csv.4294967.tmp", old);
+        let mine = touch(&format!(".b.bin.{}-0.tmp", std::process::id()), old);
+        let fresh = touch(".c.bin.4294967-4.tmp", std::time::SystemTime::now());
+        let other = touch("notes.tmp", old);
+        assert_eq!(remove_orphaned_temporaries(dir.path()), 2);
+        assert!(!orphan.exists() && !stream.exists());
+        assert!(mine.exists() && fresh.exists() && other.exists());
+    }
 
     #[test]
     fn parquet_cells_give_back_the_stored_values() {
