@@ -38,6 +38,8 @@ pub struct SpectraPosition {
 pub struct SpectraTable {
     pub path: PathBuf,
     pub captures: BTreeMap<(String, String), Vec<SpectraPosition>>,
+    /// Where each (subject, capture) first appears, for messages.
+    pub marks: BTreeMap<(String, String), Mark>,
 }
 
 const COLUMNS: &[&str] = &[
@@ -87,6 +89,7 @@ pub(crate) fn read_spectra(
     let before = findings.error_count();
     // (subject, capture, vessel, position) → (kind, per-band T, diameter, first line).
     type Acc = (VesselKind, Vec<Option<f64>>, f64, usize);
+    let mut marks: BTreeMap<(String, String), Mark> = BTreeMap::new();
     let mut acc: BTreeMap<(String, String, String, usize), Acc> = BTreeMap::new();
     for row in &t.rows {
         let get = |c: usize| row.field(c).filter(|(s, _)| !s.trim().is_empty());
@@ -180,6 +183,9 @@ pub(crate) fn read_spectra(
             .and_then(get)
             .map(|(s, _)| s.trim().to_string())
             .unwrap_or_default();
+        marks
+            .entry((subject.clone(), cap.0.trim().to_string()))
+            .or_insert(cap.1);
         let e = acc
             .entry((
                 subject,
@@ -221,6 +227,7 @@ pub(crate) fn read_spectra(
     let mut out = SpectraTable {
         path: path.to_path_buf(),
         captures: BTreeMap::new(),
+        marks,
     };
     for ((subject, capture, vessel, position), (kind, t, d, line)) in acc {
         let missing: Vec<&str> = t

@@ -1387,13 +1387,17 @@ fn check_spectra(study: &Study, findings: &mut Findings) -> Option<super::spectr
     }
     for (subject, capture) in table.captures.keys() {
         let who = listed.get(capture.as_str()).cloned().unwrap_or_default();
+        let mark = table
+            .marks
+            .get(&(subject.clone(), capture.clone()))
+            .copied();
         if subject.is_empty() && who.len() > 1 {
-            findings.error(path, None, format!("capture `{capture}` is listed for subjects {}; the spectra table needs a `subject` column", who.join(", ")));
+            findings.error(path, mark, format!("capture `{capture}` is listed for subjects {}; the spectra table needs a `subject` column", who.join(", ")));
         } else if who.is_empty() || (!subject.is_empty() && !who.contains(&subject.as_str())) {
             findings
                 .error(
                     path,
-                    None,
+                    mark,
                     format!(
                         "capture `{capture}`{} is not in any capture list of the study",
                         if subject.is_empty() {

@@ -255,4 +255,19 @@ fn spectra_table_mistakes_are_reported_with_positions() {
         ) || e.contains("has no row for band(s)"),
         "{e}"
     );
+    // A capture no list has, in an otherwise sound table: named with its place.
+    let mut rows = String::from("subject,capture,vessel,kind,position,band,transmission\n");
+    for b in ["b548", "b570", "b586", "b600"] {
+        rows.push_str(&format!("V01,captures/c999.tif,A1,arteriole,0,{b},0.8\n"));
+    }
+    write(&s, "spectra.csv", &rows);
+    let o = satstep(dir.path(), &["check", s.to_str().unwrap()]);
+    assert_eq!(o.code, 1, "{}", o.stderr);
+    assert!(
+        o.stderr.contains(
+            "spectra.csv:2:5: capture `captures/c999.tif` of subject `V01` is not in any capture list"
+        ),
+        "{}",
+        o.stderr
+    );
 }
