@@ -17,6 +17,7 @@ use serde::de::DeserializeOwned;
 use sha2::{Digest, Sha256};
 
 use super::key::{CACHE_FORMAT, Key};
+use crate::tables::create_folder;
 use crate::tables::write_bytes_atomic;
 
 const MAGIC: &[u8; 8] = b"satstep\x01";
@@ -80,7 +81,7 @@ impl Store {
         bytes.extend_from_slice(&Sha256::digest(&payload));
         bytes.extend_from_slice(&payload);
         let path = self.entry(area, key);
-        std::fs::create_dir_all(path.parent().expect("entry has a folder"))?;
+        create_folder(path.parent().expect("entry has a folder"))?;
         Ok(write_bytes_atomic(&path, &bytes)?)
     }
 
@@ -96,7 +97,7 @@ impl Store {
 
     pub fn put_record(&self, stage: &str, rec: &StageRecord) -> Result<()> {
         let path = self.record_path(stage);
-        std::fs::create_dir_all(path.parent().expect("record has a folder"))?;
+        create_folder(path.parent().expect("record has a folder"))?;
         let mut text = serde_json::to_vec_pretty(rec)?;
         text.push(b'\n');
         Ok(write_bytes_atomic(&path, &text)?)

@@ -9,6 +9,7 @@ use std::path::Path;
 use anyhow::Result;
 
 use super::StageLog;
+use crate::tables::create_folder;
 use crate::tables::write_bytes_atomic;
 
 #[derive(Debug, Clone, serde::Serialize)]
@@ -54,7 +55,7 @@ impl Manifest {
         write_bytes_atomic(&output.join("manifest.json"), &text)?;
         let stamp = self.finished_utc.replace([':', '-', '.'], "");
         let dir = output.join("manifests");
-        std::fs::create_dir_all(&dir)?;
+        create_folder(&dir)?;
         Ok(write_bytes_atomic(
             &dir.join(format!("{stamp}.json")),
             &text,

@@ -408,6 +408,14 @@ pub(crate) fn write_atomic(
     Ok(())
 }
 
+/// Creates a folder and its parents; the error names it.
+pub fn create_folder(dir: &Path) -> Result<()> {
+    fs::create_dir_all(dir).map_err(|source| TableError::Folder {
+        path: dir.to_path_buf(),
+        source,
+    })
+}
+
 /// Removes the temporary files an interrupted run left under `dir` (those
 /// this module names `.<name>.<pid>[-<n>].tmp`), and returns how many. A file
 /// is left alone while the process that wrote it runs on this machine, and

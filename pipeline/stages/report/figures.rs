@@ -4,14 +4,14 @@
 
 use std::path::{Path, PathBuf};
 
-use anyhow::{Result, anyhow};
+use anyhow::{Context, Result, anyhow};
 use plotters::coord::Shift;
 use plotters::prelude::*;
 
 use super::data::*;
 use super::style::*;
 use crate::oximetry::sensitivity::Weights;
-use crate::tables::write_bytes_atomic;
+use crate::tables::{create_folder, write_bytes_atomic};
 
 type DrawResult = std::result::Result<(), Box<dyn std::error::Error>>;
 
@@ -29,9 +29,9 @@ macro_rules! render {
         let mut svg = String::new();
         {
             let root = SVGBackend::with_string(&mut svg, $size).into_drawing_area();
-            root.fill(&WHITE).map_err(|e| anyhow!("{e:?}"))?;
+            root.fill(&WHITE).map_err(|e| anyhow!("drawing `{}`: {e}", $name))?;
             $draw(&root, $($arg),*).map_err(|e| anyhow!("drawing `{}`: {e}", $name))?;
-            root.present().map_err(|e| anyhow!("{e:?}"))?;
+            root.present().map_err(|e| anyhow!("drawing `{}`: {e}", $name))?;
         }
         let svg_path = $dir.join(format!("{}.svg", $name));
         write_bytes_atomic(&svg_path, svg.as_bytes())?;
@@ -39,17 +39,18 @@ macro_rules! render {
         let tmp = $dir.join(format!(".{}.partial.png", $name));
         {
             let root = BitMapBackend::new(&tmp, $size).into_drawing_area();
-            root.fill(&WHITE).map_err(|e| anyhow!("{e:?}"))?;
+            root.fill(&WHITE).map_err(|e| anyhow!("writing `{}`: {e}", tmp.display()))?;
             $draw(&root, $($arg),*).map_err(|e| anyhow!("drawing `{}`: {e}", $name))?;
-            root.present().map_err(|e| anyhow!("writing `{}`: {e:?}", png_path.display()))?;
+            root.present().map_err(|e| anyhow!("writing `{}`: {e}", tmp.display()))?;
         }
-        std::fs::rename(&tmp, &png_path)?;
+        std::fs::rename(&tmp, &png_path)
+            .with_context(|| format!("cannot move `{}` into place", png_path.display()))?;
         Figure { name: $name, caption: $caption, svg, files: vec![svg_path, png_path] }
     }};
 }
 
 pub fn all(dir: &Path, d: &ReportData) -> Result<Vec<Figure>> {
-    std::fs::create_dir_all(dir)?;
+    create_folder(dir)?;
     let mut out = Vec::new();
     let cols = d.courses.len().clamp(1, 4) as u32;
     let rows = d.courses.len().div_ceil(cols as usize).max(1) as u32;
@@ -69,7 +70,7 @@ pub fn all(dir: &Path, d: &ReportData) -> Result<Vec<Figure>> {
 
 /// The sensitivity figure alone, for `satstep sensitivity`.
 pub fn sensitivity(dir: &Path, s: &SensitivityCurves) -> Result<Figure> {
-    std::fs::create_dir_all(dir)?;
+    create_folder(dir)?;
     Ok(render!(
         dir,
         "sensitivity",

@@ -26,6 +26,7 @@ use super::transmissions::{PositionRow, TransmissionTables, Transmissions};
 use crate::config::study::Study;
 use crate::runner::Runner;
 use crate::runner::key::{Key, KeyBuilder, combine};
+use crate::tables::create_folder;
 use crate::tables::write_bytes_atomic;
 use tables::{ReportTable, html_escape, markdown_escape as md};
 
@@ -147,7 +148,7 @@ fn write(
 ) -> Result<Vec<PathBuf>> {
     let dir = out.join("report");
     let tdir = dir.join("tables");
-    std::fs::create_dir_all(&tdir)?;
+    create_folder(&tdir)?;
     let usage = tables::usage(inp.epochs, inp.images, inp.fits);
     let s = inp.study;
     let results = vec![
