@@ -180,6 +180,9 @@ pub(crate) fn nearest<'a>(word: &str, valid: &[&'a str]) -> Vec<&'a str> {
 
 /// "did you mean `x`? expected one of `a`, `b`, `c`".
 pub(crate) fn suggest(word: &str, valid: &[&str]) -> String {
+    if valid.is_empty() {
+        return "nothing is expected here: remove it".into();
+    }
     let near = nearest(word, valid);
     let all = valid
         .iter()

@@ -800,11 +800,9 @@ fn read_session(
     };
     let switches = match (m.get("switches"), protocol, start) {
         (Some(n), Some(p), Some(st)) => read_switches(r, n, p, st),
-        (Some(n), None, _) => {
-            // Without a valid protocol the epoch names cannot be checked; still read the times.
-            let _ = r.map(n, "`switches`", &[]);
-            Vec::new()
-        }
+        // Without a valid protocol the epoch names cannot be checked, and
+        // the protocol's own errors say why: one root cause, one finding.
+        (Some(_), None, _) => Vec::new(),
         _ => Vec::new(),
     };
     let captures = match r.required(&m, "captures", "a session") {

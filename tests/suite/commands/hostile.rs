@@ -56,7 +56,12 @@ fn a_byte_order_mark_is_not_content() {
 #[test]
 fn a_file_that_is_not_utf8_is_named_with_the_place() {
     let dir = tempfile::tempdir().unwrap();
-    study(dir.path());
+    // Switches name the protocol's epochs: they must not each fail too.
+    small_study(
+        dir.path(),
+        &[("c1.tif", "2026-05-04T09:05:00+02:00")],
+        "        switches: {low: 2026-05-04T07:11:00Z}\n",
+    );
     let mut bytes = std::fs::read(dir.path().join("protocol.yaml")).unwrap();
     // A Latin-1 "é" in a comment on the second line.
     let at = bytes.iter().position(|b| *b == b'\n').unwrap() + 1;
@@ -67,7 +72,9 @@ fn a_file_that_is_not_utf8_is_named_with_the_place() {
         "protocol.yaml:2:6: the protocol file is not UTF-8 text",
     );
     says(&o, "save the file as UTF-8");
-    assert!(!o.stderr.contains("expected one of\n"), "{}", o.stderr);
+    assert!(!o.stderr.contains("expected one of \n"), "{}", o.stderr);
+    // One root cause, one finding: the protocol's, not one per switch.
+    assert_eq!(o.stderr.matches("error:").count(), 2, "{}", o.stderr);
 }
 
 #[test]
