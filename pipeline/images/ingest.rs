@@ -74,6 +74,15 @@ pub enum CaptureError {
         w: usize,
         h: usize,
     },
+    #[error(
+        "`{path}` page {page} has {count} pixels that are not numbers (NaN or infinite, {percent:.2} % of the page)"
+    )]
+    NotFinite {
+        path: PathBuf,
+        page: usize,
+        count: usize,
+        percent: f64,
+    },
     /// A dark or flat frame could not be read.
     #[error("calibration frames: {0}")]
     Calibration(Box<CaptureError>),
@@ -123,18 +132,37 @@ pub fn read_capture(
                 DecodingResult::U16(v) => (v.into_iter().map(f32::from).collect(), 16),
                 DecodingResult::F32(v) => (v, 32),
                 other => {
+                    let found = match other {
+                        DecodingResult::U32(_) => "unsigned 32-bit",
+                        DecodingResult::U64(_) => "unsigned 64-bit",
+                        DecodingResult::F64(_) => "64-bit float",
+                        DecodingResult::I8(_) => "signed 8-bit",
+                        DecodingResult::I16(_) => "signed 16-bit",
+                        DecodingResult::I32(_) => "signed 32-bit",
+                        DecodingResult::I64(_) => "signed 64-bit",
+                        _ => "of an unsupported sample type",
+                    };
                     return Err(CaptureError::PixelType {
                         path: path.into(),
                         page,
-                        found: format!("{:?}", std::mem::discriminant(&other)),
+                        found: found.into(),
                     });
                 }
             },
             other => {
+                let found = match other {
+                    ColorType::RGB(b) => format!("RGB colour, {b}-bit"),
+                    ColorType::RGBA(b) => format!("RGBA colour, {b}-bit"),
+                    ColorType::GrayA(b) => format!("grey with alpha, {b}-bit"),
+                    ColorType::Palette(b) => format!("palette colour, {b}-bit"),
+                    ColorType::CMYK(b) => format!("CMYK colour, {b}-bit"),
+                    ColorType::Gray(b) => format!("{b}-bit grey"),
+                    _ => "of an unsupported colour type".into(),
+                };
                 return Err(CaptureError::PixelType {
                     path: path.into(),
                     page,
-                    found: format!("{other:?}"),
+                    found,
                 });
             }
         };
@@ -143,6 +171,15 @@ pub fn read_capture(
                 path: path.into(),
                 page,
                 reason: "fewer pixels than the page's size".into(),
+            });
+        }
+        let bad = data.iter().filter(|v| !v.is_finite()).count();
+        if bad > 0 {
+            return Err(CaptureError::NotFinite {
+                path: path.into(),
+                page,
+                count: bad,
+                percent: 100.0 * bad as f64 / data.len() as f64,
             });
         }
         depth = bits;

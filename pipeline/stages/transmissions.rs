@@ -634,7 +634,8 @@ pub fn analyse_capture(
             2.0,
         )
     };
-    if reg.score < MIN_REGISTRATION_SCORE {
+    // NaN-aware: a score that is not a number is no match.
+    if !(reg.score >= MIN_REGISTRATION_SCORE) {
         let msg = format!(
             "match score {:.3} below {MIN_REGISTRATION_SCORE}",
             reg.score

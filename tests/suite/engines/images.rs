@@ -205,7 +205,8 @@ fn ingest_reads_every_supported_depth_and_refuses_the_rest() {
     assert!(matches!(e, CaptureError::PixelType { .. }), "{e:?}");
     assert!(
         e.to_string()
-            .contains("expected single-channel 8-bit, 16-bit or 32-bit float grey")
+            .contains("page 1 is RGB colour, 8-bit; expected single-channel 8-bit, 16-bit or 32-bit float grey"),
+        "{e}"
     );
     // Pages of different sizes.
     let mixed = dir.path().join("mixed.tif");
@@ -616,4 +617,28 @@ fn a_central_reflex_does_not_bias_the_transmission() {
             );
         }
     }
+}
+
+#[test]
+fn a_capture_with_pixels_that_are_not_numbers_is_refused_with_the_share() {
+    let dir = tempfile::tempdir().unwrap();
+    let p = dir.path().join("nan.tif");
+    let f = std::fs::File::create(&p).unwrap();
+    let mut enc = tiff::encoder::TiffEncoder::new(std::io::BufWriter::new(f)).unwrap();
+    let mut page = vec![0.5f32; 100];
+    page[3] = f32::NAN;
+    page[7] = f32::INFINITY;
+    for _ in 0..2 {
+        enc.write_image::<tiff::encoder::colortype::Gray32Float>(10, 10, &page)
+            .unwrap();
+    }
+    drop(enc);
+    let e = read_capture(&p, 2, None).unwrap_err();
+    assert_eq!(
+        e.to_string(),
+        format!(
+            "`{}` page 1 has 2 pixels that are not numbers (NaN or infinite, 2.00 % of the page)",
+            p.display()
+        )
+    );
 }
