@@ -127,10 +127,7 @@ impl Table {
 
     /// Writes `dir/stem.parquet` and `dir/stem.csv`; returns both paths.
     pub fn write(&self, dir: &Path, stem: &str) -> Result<Vec<PathBuf>> {
-        fs::create_dir_all(dir).map_err(|source| TableError::Folder {
-            path: dir.to_path_buf(),
-            source,
-        })?;
+        create_folder(dir)?;
         let mut df = self.frame()?;
         let pq = dir.join(format!("{stem}.parquet"));
         write_atomic(&pq, |f| {
@@ -281,10 +278,7 @@ impl TableStream {
         self.buffer.clear();
         self.buffered = 0;
         if self.writers.is_none() {
-            fs::create_dir_all(&self.dir).map_err(|source| TableError::Folder {
-                path: self.dir.clone(),
-                source,
-            })?;
+            create_folder(&self.dir)?;
             let (pq, csv) = (self.tmp("parquet"), self.tmp("csv"));
             let create = |p: &PathBuf| {
                 fs::File::create(p).map_err(|source| TableError::Create {
