@@ -206,6 +206,53 @@ pub struct Study {
 }
 
 impl Study {
+    /// The study as cache keys see it: every path inside the study file's
+    /// folder written relative to that folder, and every path outside it
+    /// absolute, so that how the folder was typed (`.`, relative, absolute)
+    /// or where it lies changes no key. A moved folder is up to date; one
+    /// that names files outside itself by a relative path is not once those
+    /// resolve elsewhere, which is the safe side. File contents enter the
+    /// keys separately, as hashes or parsed values.
+    pub fn portable(&self) -> Study {
+        let cwd = std::env::current_dir().unwrap_or_default();
+        let root = lexical(&cwd.join(&self.root));
+        let place = |p: &Path| -> PathBuf {
+            let abs = lexical(&cwd.join(p));
+            abs.strip_prefix(&root)
+                .map(Path::to_path_buf)
+                .unwrap_or(abs)
+        };
+        let mut s = self.clone();
+        s.file = place(&s.file);
+        s.root = PathBuf::new();
+        s.output = place(&s.output);
+        for p in [&mut s.protocol_file, &mut s.spectra_file]
+            .into_iter()
+            .chain([&mut s.instrument.dark, &mut s.instrument.flat])
+            .flatten()
+        {
+            *p = place(p);
+        }
+        for b in &mut s.instrument.bands {
+            if let BandResponse::Table { file, .. } = &mut b.response {
+                *file = place(file);
+            }
+        }
+        for session in s.subjects.iter_mut().flat_map(|s| &mut s.sessions) {
+            for c in &mut session.captures {
+                c.path = place(&c.path);
+                c.source = place(&c.source);
+            }
+            if let Some(r) = &mut session.reference {
+                r.path = place(&r.path);
+            }
+            for p in session.segments.values_mut() {
+                *p = place(p);
+            }
+        }
+        s
+    }
+
     pub fn capture_count(&self) -> usize {
         self.subjects
             .iter()
@@ -312,8 +359,13 @@ fn lexical(p: &Path) -> PathBuf {
     for c in p.components() {
         match c {
             Component::CurDir => {}
+            // `..` above the start is kept, and so is a second one after it.
             Component::ParentDir => {
-                if !out.pop() {
+                if matches!(
+                    out.components().next_back(),
+                    None | Some(Component::ParentDir)
+                ) || !out.pop()
+                {
                     out.push("..");
                 }
             }
@@ -1445,6 +1497,23 @@ fn check_files(study: &Study, findings: &mut Findings) {
                     seen.insert(key, (c.source.clone(), c.mark));
                 }
             }
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn lexical_keeps_every_parent_above_the_start() {
+        for (p, want) in [
+            ("a/./b/../c", "a/c"),
+            ("../../x", "../../x"),
+            ("a/../../x", "../x"),
+            ("/s/./t/..", "/s"),
+        ] {
+            assert_eq!(lexical(Path::new(p)), PathBuf::from(want), "{p}");
         }
     }
 }

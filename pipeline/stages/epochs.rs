@@ -70,7 +70,7 @@ impl Stage for Epochs {
         // Only the exclusions of whole captures and subjects: the minimum
         // diameter acts on segment values in the statistics stage.
         k.value("protocol", &study.protocol)
-            .value("subjects", &study.subjects)
+            .value("subjects", &study.portable().subjects)
             .value("excluded-subjects", &study.exclusions.subjects)
             .value("excluded-captures", &study.exclusions.captures);
         k.finish()

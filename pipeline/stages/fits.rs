@@ -122,7 +122,7 @@ impl Stage for Fits {
     fn settings(study: &Study) -> Key {
         let mut k = KeyBuilder::new("fits-settings", Self::VERSION);
         k.value("methods", &study.methods)
-            .value("bands", &study.instrument.bands)
+            .value("bands", &study.portable().instrument.bands)
             .value("min-positions", &MIN_POSITIONS);
         k.finish()
     }
@@ -181,6 +181,8 @@ fn build(
         .iter()
         .map(|b| SampledBand::from_response(&b.response))
         .collect();
+    // The bands as keys see them (a response table by its place in the study).
+    let band_key = study.portable().instrument.bands;
     let captures: Vec<usize> = (0..epochs.captures.len())
         .filter(|i| images.position_counts[*i] > 0)
         .collect();
@@ -204,7 +206,7 @@ fn build(
                     MethodKind::Multiband { .. } => {
                         let mut k = KeyBuilder::new("fits-capture", Fits::VERSION);
                         k.value("method", m)
-                            .value("bands", &study.instrument.bands)
+                            .value("bands", &band_key)
                             .value("min-positions", &MIN_POSITIONS)
                             .key("transmissions", &images.keys[ci]);
                         items.try_get_or_compute(&k.finish(), || {

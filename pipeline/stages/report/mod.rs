@@ -43,7 +43,7 @@ impl Stage for Report {
 
     fn settings(study: &Study) -> Key {
         let mut k = KeyBuilder::new("report-settings", Self::VERSION);
-        k.value("study", study);
+        k.value("study", &study.portable());
         k.finish()
     }
 

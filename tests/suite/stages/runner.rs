@@ -167,6 +167,39 @@ fn only_what_changed_reruns() {
     assert!(s.join("results/fits/so2.csv").is_file());
 }
 
+/// Keys depend on what the study says and what its files hold, not on how
+/// its path was typed or where its folder lies.
+#[test]
+fn a_study_typed_otherwise_or_moved_is_up_to_date() {
+    let dir = tempfile::tempdir().unwrap();
+    let s = simulated(dir.path(), SCENARIO, "s");
+    run(dir.path(), Path::new("s"), &[]);
+    let before = hashes_except(&s.join("results"), VOLATILE);
+    let moved = dir.path().join("elsewhere/s2");
+    std::fs::create_dir_all(moved.parent().unwrap()).unwrap();
+    for (cwd, study) in [
+        (dir.path().to_path_buf(), s.clone()),
+        (s.clone(), PathBuf::from(".")),
+        (s.join("subjects"), PathBuf::from("../study.yaml")),
+    ] {
+        let o = run(&cwd, &study, &[]);
+        for st in ["epochs", "transmissions", "fits", "statistics", "report"] {
+            assert!(line(&o, st).contains("up to date"), "{}", o.stderr);
+        }
+    }
+    std::fs::rename(&s, &moved).unwrap();
+    for (cwd, study) in [
+        (dir.path().to_path_buf(), moved.clone()),
+        (moved.clone(), PathBuf::from(".")),
+    ] {
+        let o = run(&cwd, &study, &[]);
+        for st in ["epochs", "transmissions", "fits", "statistics", "report"] {
+            assert!(line(&o, st).contains("up to date"), "{}", o.stderr);
+        }
+    }
+    assert_eq!(before, hashes_except(&moved.join("results"), VOLATILE));
+}
+
 #[test]
 fn results_are_identical_whatever_the_jobs() {
     let dir = tempfile::tempdir().unwrap();
