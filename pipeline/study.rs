@@ -16,7 +16,7 @@ pub use crate::config::study::{Study, resolve_study_path};
 
 /// Loads the study at `path` (a study file; see [`resolve_study_path`]).
 /// `None` when any finding is an error; the findings say why.
-pub(crate) fn load_study(path: &Path) -> (Option<Study>, Findings) {
+pub fn load_study(path: &Path) -> (Option<Study>, Findings) {
     let (study, mut findings) = crate::config::study::read_study_file(path);
     let study = study.map(|mut s| {
         check_paths_are_text(&s, &mut findings);

@@ -204,15 +204,21 @@ fn trimmed(s: String) -> String {
 /// 1-based character columns at which the fields of the line starting at
 /// `raw` begin (commas inside quotes do not split).
 fn field_columns(raw: &[u8]) -> Vec<usize> {
-    let text = String::from_utf8_lossy(raw);
+    // Bytes, not a decoded copy of the rest of the file: decoding from here
+    // to the end for every row made reading quadratic in the file's length.
+    // Columns count characters, so UTF-8 continuation bytes do not count.
     let mut cols = vec![1];
     let mut in_quotes = false;
-    for (i, c) in text.chars().enumerate() {
-        match c {
-            '"' => in_quotes = !in_quotes,
-            ',' if !in_quotes => cols.push(i + 2),
-            '\n' | '\r' if !in_quotes => break,
+    let mut chars = 0;
+    for &b in raw {
+        match b {
+            b'"' => in_quotes = !in_quotes,
+            b',' if !in_quotes => cols.push(chars + 2),
+            b'\n' | b'\r' if !in_quotes => break,
             _ => {}
+        }
+        if b & 0xC0 != 0x80 {
+            chars += 1;
         }
     }
     cols
@@ -225,6 +231,7 @@ mod tests {
     #[test]
     fn columns_count_characters_and_respect_quotes() {
         assert_eq!(field_columns(b"a,bb,\"c,d\",e\nx,y"), vec![1, 3, 6, 12]);
+        assert_eq!(field_columns("é,ü,x".as_bytes()), vec![1, 3, 5]);
     }
 
     #[test]

@@ -25,6 +25,9 @@ pub struct Registration {
     pub angle_deg: f64,
     /// Normalised cross-correlation at the optimum (−1 to 1).
     pub score: f64,
+    /// The lowest such correlation in any of the 4 × 4 regions of the
+    /// compared area (see `Ncc::worst_region`).
+    pub worst_region: f64,
 }
 
 /// The rigid motion `q = R(angle)(p − c) + c + (dx, dy)`, shared by
@@ -155,15 +158,22 @@ struct Ncc<'a> {
 
 impl Ncc<'_> {
     fn score(&self, p: &[f64]) -> f64 {
+        self.correlation(p, &self.points)
+    }
+
+    /// The correlation over `points` with the moving image moved by `p`;
+    /// −1 when fewer than 100 points land on it or either side is flat.
+    fn correlation(&self, p: &[f64], points: &[(usize, usize)]) -> f64 {
         let reg = Registration {
             dx: p[0],
             dy: p[1],
             angle_deg: p[2],
             score: 0.0,
+            worst_region: 0.0,
         };
         let (cx, cy) = (self.w as f64 / 2.0, self.h as f64 / 2.0);
         let (mut n, mut sa, mut sb, mut saa, mut sbb, mut sab) = (0.0, 0.0, 0.0, 0.0, 0.0, 0.0);
-        for &(x, y) in &self.points {
+        for &(x, y) in points {
             let q = reg.apply((x as f64, y as f64), cx, cy);
             let Some(b) = bilinear(self.moving, self.w, self.h, q.0, q.1) else {
                 continue;
@@ -188,7 +198,35 @@ impl Ncc<'_> {
             cov / (va * vb).sqrt()
         }
     }
+
+    /// The lowest correlation over a `REGIONS` × `REGIONS` division of the
+    /// points' extent. A capture that matches well as a whole can still
+    /// fail in one part (a lid or lashes over the top in a partial blink,
+    /// glare): the whole-image score averages that away, this does not.
+    fn worst_region(&self, p: &[f64]) -> f64 {
+        let (Some(x0), Some(x1)) = (
+            self.points.iter().map(|q| q.0).min(),
+            self.points.iter().map(|q| q.0).max(),
+        ) else {
+            return -1.0;
+        };
+        let y0 = self.points.iter().map(|q| q.1).min().unwrap_or(0);
+        let y1 = self.points.iter().map(|q| q.1).max().unwrap_or(0);
+        let cell =
+            |v: usize, lo: usize, hi: usize| ((v - lo) * REGIONS / (hi - lo + 1)).min(REGIONS - 1);
+        let mut regions = vec![Vec::new(); REGIONS * REGIONS];
+        for &(x, y) in &self.points {
+            regions[cell(y, y0, y1) * REGIONS + cell(x, x0, x1)].push((x, y));
+        }
+        regions
+            .iter()
+            .map(|pts| self.correlation(p, pts))
+            .fold(f64::INFINITY, f64::min)
+    }
 }
+
+/// Regions per side for [`Registration::worst_region`].
+pub(crate) const REGIONS: usize = 4;
 
 impl CostFunction for Ncc<'_> {
     type Param = Vec<f64>;
@@ -350,5 +388,6 @@ pub fn register(
         dy: best[1],
         angle_deg: best[2],
         score: ncc.score(&best),
+        worst_region: ncc.worst_region(&best),
     }
 }

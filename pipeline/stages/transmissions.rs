@@ -16,11 +16,19 @@ use crate::config::study::{BandResponse, Study};
 use crate::images::correct::Corrections;
 use crate::images::ingest::{CaptureError, Multiband, read_capture};
 use crate::images::profile::{Flag, ProfileSettings, analyse_segment};
-use crate::images::register::{Registration, register};
+use crate::images::register::{REGIONS, Registration, register};
 use crate::runner::Items;
 use crate::runner::Runner;
 use crate::runner::key::{Key, KeyBuilder, combine, hash_file_or_missing};
 use crate::tables::{Table, TableStream};
+
+/// Lowest correlation in any region of the compared area at which a
+/// registered capture counts as matching throughout. A judgement, not a
+/// published value: on simulated captures the worst region scores above
+/// 0.99; a region under a lid or washed out by glare scores near 0 or
+/// below; real captures, with less structure in some regions, stay well
+/// above 0.5 where they match.
+pub(crate) const MIN_REGION_SCORE: f64 = 0.5;
 
 /// Lowest match score at which a capture counts as registered.
 pub(crate) const MIN_REGISTRATION_SCORE: f64 = 0.8;
@@ -65,6 +73,10 @@ pub enum ImageOutcome {
     Error,
     /// Read, but its match score to the eye's reference is too low.
     NotRegistered,
+    /// Registered as a whole, but one region of it does not match the
+    /// reference (a partial blink, lashes, glare): its transmissions there
+    /// would be wrong, and nothing tells which segments escaped.
+    PartUnmatched,
     /// Not taken to the transmissions stage (its epochs status says why).
     NotAnalysed,
 }
@@ -75,13 +87,17 @@ impl ImageOutcome {
             ImageOutcome::Ok => "ok",
             ImageOutcome::Error => "error",
             ImageOutcome::NotRegistered => "not-registered",
+            ImageOutcome::PartUnmatched => "part-unmatched",
             ImageOutcome::NotAnalysed => "not-analysed",
         }
     }
 
     /// The capture was meant to be analysed and could not be.
     pub fn failed(&self) -> bool {
-        matches!(self, ImageOutcome::Error | ImageOutcome::NotRegistered)
+        matches!(
+            self,
+            ImageOutcome::Error | ImageOutcome::NotRegistered | ImageOutcome::PartUnmatched
+        )
     }
 }
 
@@ -131,7 +147,7 @@ impl Transmissions {
 
 impl Stage for Transmissions {
     const NAME: &'static str = "transmissions";
-    const VERSION: u32 = 4;
+    const VERSION: u32 = 5;
     const SUMMARY: &'static str =
         "registration and transmissions along each vessel segment, capture by capture";
     const UPSTREAM: &'static [&'static str] = &["epochs"];
@@ -207,6 +223,7 @@ pub(crate) fn settings_key(study: &Study) -> Key {
         .value("pixel-size", &study.instrument.pixel_size_um)
         .value("profile", &profile_settings(study))
         .value("min-score", &MIN_REGISTRATION_SCORE)
+        .value("min-region-score", &MIN_REGION_SCORE)
         .value(
             "band-offsets",
             &study
@@ -624,6 +641,7 @@ pub fn analyse_capture(
             dy: 0.0,
             angle_deg: 0.0,
             score: 1.0,
+            worst_region: 1.0,
         }
     } else {
         register(
@@ -643,6 +661,20 @@ pub fn analyse_capture(
         return (
             ImageStatus {
                 status: ImageOutcome::NotRegistered,
+                message: Some(msg),
+                registration: Some(reg),
+            },
+            vec![],
+        );
+    }
+    if !(reg.worst_region >= MIN_REGION_SCORE) {
+        let msg = format!(
+            "match score {:.3} overall, but {:.3} in one of its {} × {} regions (below {MIN_REGION_SCORE}): part of the capture does not show the fundus the reference shows (a partial blink, lashes or glare?)",
+            reg.score, reg.worst_region, REGIONS, REGIONS
+        );
+        return (
+            ImageStatus {
+                status: ImageOutcome::PartUnmatched,
                 message: Some(msg),
                 registration: Some(reg),
             },
@@ -787,6 +819,10 @@ impl TransmissionTables {
             .opt_real(
                 "match_score",
                 s.iter().map(|r| r.registration.map(|g| g.score)),
+            )
+            .opt_real(
+                "worst_region_score",
+                s.iter().map(|r| r.registration.map(|g| g.worst_region)),
             );
         written.extend(t.write(dir, "captures")?);
         Ok(())
@@ -797,7 +833,7 @@ impl TransmissionTables {
 fn describe(study: &Study) -> String {
     let s = profile_settings(study);
     format!(
-        "Captures were read as multi-page TIFF files (one page per band) and registered to the eye's earliest capture by a rigid transform (translation and rotation; phase correlation followed by normalised cross-correlation with sub-pixel interpolation in the band nearest 570 nm); captures with a match score below {MIN_REGISTRATION_SCORE} were flagged as not registered and not analysed. Along each vessel segment, intensity profiles were sampled across the vessel every {:.0} px by bilinear interpolation; a quadratic background was fitted to the outer parts of each profile and an absorbing-cylinder profile to the vessel, giving its centre, width (diameter at {:.1} µm per pixel) and fit residual. Transmission in each band was the intensity on the vessel's centre line divided by the background beneath it. Positions were flagged (off the image, contrast below {:.2}, residual too large, within {:.0} px of another segment) and flagged positions were not used.",
+        "Captures were read as multi-page TIFF files (one page per band) and registered to the eye's earliest capture by a rigid transform (translation and rotation; phase correlation followed by normalised cross-correlation with sub-pixel interpolation in the band nearest 570 nm); captures with a match score below {MIN_REGISTRATION_SCORE} were flagged as not registered, and captures whose correlation fell below {MIN_REGION_SCORE} in any of {REGIONS} × {REGIONS} regions of the compared area (a partial blink, lashes or glare) as partly unmatched; neither was analysed. Along each vessel segment, intensity profiles were sampled across the vessel every {:.0} px by bilinear interpolation; a quadratic background was fitted to the outer parts of each profile and an absorbing-cylinder profile to the vessel, giving its centre, width (diameter at {:.1} µm per pixel) and fit residual. Transmission in each band was the intensity on the vessel's centre line divided by the background beneath it. Positions were flagged (off the image, contrast below {:.2}, residual too large, within {:.0} px of another segment) and flagged positions were not used.",
         s.spacing_px, study.instrument.pixel_size_um, s.min_contrast, s.neighbour_margin_px
     )
 }

@@ -14,12 +14,16 @@ pub struct Output {
 
 /// Runs `satstep` with `args` in `dir`, without colour or progress bars.
 pub fn satstep(dir: &Path, args: &[&str]) -> Output {
-    let out = Command::new(env!("CARGO_BIN_EXE_satstep"))
-        .args(args)
+    run_in(Command::new(env!("CARGO_BIN_EXE_satstep")).args(args), dir)
+}
+
+/// Runs `cmd` in `dir` without colour, and collects what it said.
+pub fn run_in(cmd: &mut Command, dir: &Path) -> Output {
+    let out = cmd
         .current_dir(dir)
         .env("NO_COLOR", "1")
         .output()
-        .expect("the binary runs");
+        .expect("the command runs");
     Output {
         code: out.status.code().unwrap_or(-1),
         stdout: String::from_utf8_lossy(&out.stdout).into_owned(),

@@ -4,7 +4,7 @@
 
 use std::path::{Path, PathBuf};
 
-use anyhow::{Context, Result, anyhow};
+use anyhow::{Result, anyhow};
 use plotters::coord::Shift;
 use plotters::prelude::*;
 
@@ -35,18 +35,31 @@ macro_rules! render {
         }
         let svg_path = $dir.join(format!("{}.svg", $name));
         write_bytes_atomic(&svg_path, svg.as_bytes())?;
+        // Drawn into memory and encoded here, so that writing the file is
+        // ours: its errors name the path and say the cause in words.
         let png_path = $dir.join(format!("{}.png", $name));
-        let tmp = $dir.join(format!(".{}.partial.png", $name));
+        let (w, h): (u32, u32) = $size;
+        let mut rgb = vec![0u8; w as usize * h as usize * 3];
         {
-            let root = BitMapBackend::new(&tmp, $size).into_drawing_area();
-            root.fill(&WHITE).map_err(|e| anyhow!("writing `{}`: {e}", tmp.display()))?;
+            let root = BitMapBackend::with_buffer(&mut rgb, (w, h)).into_drawing_area();
+            root.fill(&WHITE).map_err(|e| anyhow!("drawing `{}`: {e}", $name))?;
             $draw(&root, $($arg),*).map_err(|e| anyhow!("drawing `{}`: {e}", $name))?;
-            root.present().map_err(|e| anyhow!("writing `{}`: {e}", tmp.display()))?;
+            root.present().map_err(|e| anyhow!("drawing `{}`: {e}", $name))?;
         }
-        std::fs::rename(&tmp, &png_path)
-            .with_context(|| format!("cannot move `{}` into place", png_path.display()))?;
+        let png = encode_png(&rgb, w, h)
+            .map_err(|e| anyhow!("encoding `{}` as PNG: {e}", png_path.display()))?;
+        write_bytes_atomic(&png_path, &png)?;
         Figure { name: $name, caption: $caption, svg, files: vec![svg_path, png_path] }
     }};
+}
+
+/// An RGB buffer as PNG, with the encoder settings the plotting library's
+/// own file output uses.
+fn encode_png(rgb: &[u8], w: u32, h: u32) -> image::ImageResult<Vec<u8>> {
+    use image::ImageEncoder;
+    let mut out = Vec::new();
+    image::codecs::png::PngEncoder::new(&mut out).write_image(rgb, w, h, image::ColorType::Rgb8)?;
+    Ok(out)
 }
 
 pub fn all(dir: &Path, d: &ReportData) -> Result<Vec<Figure>> {

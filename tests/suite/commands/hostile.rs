@@ -209,3 +209,89 @@ fn a_name_with_a_line_break_is_refused() {
         "segments-OD.yaml:3:9: `id` contains a line break or another control character",
     );
 }
+
+/// Runs `satstep` with `args` in `dir` as a user who owns none of it: as
+/// `nobody` through `setpriv` when the tests run as root (root passes every
+/// permission check), else as the test's own user. The binary is copied
+/// into `dir`, which the other user can reach.
+fn satstep_unprivileged(dir: &Path, args: &[&str]) -> Output {
+    use std::os::unix::fs::PermissionsExt;
+    let bin = dir.join("satstep-bin");
+    std::fs::copy(env!("CARGO_BIN_EXE_satstep"), &bin).unwrap();
+    std::fs::set_permissions(dir, std::fs::Permissions::from_mode(0o755)).unwrap();
+    let root = Command::new("id").arg("-u").output().unwrap().stdout == b"0\n";
+    let mut cmd = if root {
+        let mut c = Command::new("setpriv");
+        c.args(["--reuid=65534", "--regid=65534", "--clear-groups", "--"])
+            .arg(&bin);
+        c
+    } else {
+        Command::new(&bin)
+    };
+    run_in(cmd.args(args), dir)
+}
+
+/// The environment's errors name the path and what was being done, and
+/// exit with the documented status 2; no Rust debug output reaches the user.
+fn environment_error(o: &Output, cause: &str, path: &str) {
+    assert_eq!(o.code, 2, "{}", o.stderr);
+    says(o, cause);
+    // The error line and its cause chain, up to the cause.
+    let at = o.stderr.find(cause).unwrap();
+    let block = &o.stderr[o.stderr[..at].rfind("error:").unwrap_or(0)..at];
+    assert!(block.contains(path), "the path is not named: {}", o.stderr);
+    for debug in ["Os {", "kind:", "Custom {", "Error {"] {
+        assert!(!o.stderr.contains(debug), "debug output: {}", o.stderr);
+    }
+}
+
+#[test]
+fn a_results_folder_that_cannot_be_written_is_named() {
+    use std::os::unix::fs::PermissionsExt;
+    let dir = tempfile::tempdir().unwrap();
+    study(dir.path());
+    let results = dir.path().join("results");
+    std::fs::create_dir(&results).unwrap();
+    std::fs::set_permissions(&results, std::fs::Permissions::from_mode(0o555)).unwrap();
+    let o = satstep_unprivileged(dir.path(), &["run", "."]);
+    environment_error(&o, "Permission denied", "results/");
+}
+
+/// A full disk wherever it strikes: over the whole results folder, and over
+/// the report's figures at sizes that run out in different files (an SVG,
+/// a PNG written through the plotting library).
+#[test]
+fn a_full_disk_is_named_with_the_path() {
+    let dir = tempfile::tempdir().unwrap();
+    let s = simulated(dir.path(), "tests/fixtures/runner-scenario.yaml", "s");
+    let figures = s.join("results/report/figures");
+    std::fs::create_dir_all(&figures).unwrap();
+    let results = s.join("results");
+    for (folder, size) in [
+        (&results, "24k"),
+        (&figures, "8k"),
+        (&figures, "60k"),
+        (&figures, "120k"),
+        (&figures, "240k"),
+    ] {
+        // A small file system over the folder, in a mount namespace of the
+        // test's own (unprivileged user namespaces allow it without root).
+        let script = format!(
+            "mount -t tmpfs -o size={size} tmpfs '{}' && exec '{}' run .",
+            folder.display(),
+            env!("CARGO_BIN_EXE_satstep")
+        );
+        let o = run_in(
+            Command::new("unshare").args([
+                "--user",
+                "--map-root-user",
+                "--mount",
+                "sh",
+                "-c",
+                &script,
+            ]),
+            &s,
+        );
+        environment_error(&o, "No space left on device", "results/");
+    }
+}

@@ -1,5 +1,6 @@
 //! Whole runs through the stages and the runner.
 
+mod blinks;
 mod demo;
 mod report;
 mod runner;
