@@ -56,7 +56,8 @@ pub(crate) fn bilinear(img: &[f32], w: usize, h: usize, x: f64, y: f64) -> Optio
     if !(x >= 0.0 && y >= 0.0 && x <= (w - 1) as f64 && y <= (h - 1) as f64) {
         return None;
     }
-    let (x0, y0) = (x.floor() as usize, y.floor() as usize);
+    // Truncation is the floor here (both are at least 0), without a libm call.
+    let (x0, y0) = (x as usize, y as usize);
     let (x1, y1) = ((x0 + 1).min(w - 1), (y0 + 1).min(h - 1));
     let (fx, fy) = (x - x0 as f64, y - y0 as f64);
     let p = |xx: usize, yy: usize| img[yy * w + xx] as f64;
@@ -164,17 +165,13 @@ impl Ncc<'_> {
     /// The correlation over `points` with the moving image moved by `p`;
     /// −1 when fewer than 100 points land on it or either side is flat.
     fn correlation(&self, p: &[f64], points: &[(usize, usize)]) -> f64 {
-        let reg = Registration {
-            dx: p[0],
-            dy: p[1],
-            angle_deg: p[2],
-            score: 0.0,
-            worst_region: 0.0,
-        };
         let (cx, cy) = (self.w as f64 / 2.0, self.h as f64 / 2.0);
+        // `rigid` with the angle's sine and cosine taken once, not per point.
+        let (sin, cos) = p[2].to_radians().sin_cos();
         let (mut n, mut sa, mut sb, mut saa, mut sbb, mut sab) = (0.0, 0.0, 0.0, 0.0, 0.0, 0.0);
         for &(x, y) in points {
-            let q = reg.apply((x as f64, y as f64), cx, cy);
+            let (u, v) = (x as f64 - cx, y as f64 - cy);
+            let q = (cx + cos * u - sin * v + p[0], cy + sin * u + cos * v + p[1]);
             let Some(b) = bilinear(self.moving, self.w, self.h, q.0, q.1) else {
                 continue;
             };
