@@ -27,6 +27,10 @@ pub struct SpO2Log {
     pub dropouts: usize,
 }
 
+/// Share of a log's samples without a value above which the log is said
+/// (common practice for a usable recording; no published threshold).
+const MAX_DROPOUT_PERCENT: usize = 20;
+
 /// Reads a log; malformed lines are findings with `file:line:column`.
 pub(crate) fn read_log(
     log: &ReferenceLog,
@@ -97,6 +101,24 @@ pub(crate) fn read_log(
                 format!("{zeros} SpO2 values of 0 were taken as dropouts (no reading)"),
             )
             .hint("if the oximeter writes 0 for something else, convert the log first");
+    }
+    // A few dropouts are normal (a probe slipping); a log that is mostly
+    // dropouts has the wrong column, a broken probe or a convention this
+    // reader does not know, and every capture would lose its reference.
+    let total = out.dropouts + out.samples.len();
+    if total > 0 && out.dropouts * 100 > MAX_DROPOUT_PERCENT * total {
+        findings
+            .warning(
+                p,
+                None,
+                format!(
+                    "{} of {total} samples have no SpO2 value (empty, NaN, `-` or 0) and were taken as dropouts",
+                    out.dropouts
+                ),
+            )
+            .hint(format!(
+                "more than {MAX_DROPOUT_PERCENT} % of a log missing leaves captures without a reference: check the column and the oximeter's export"
+            ));
     }
     if findings.error_count() > before {
         return None;

@@ -95,6 +95,30 @@ fn impossible_spo2_values_are_errors_and_zeros_are_counted_dropouts() {
     }
     says(&o, "1 SpO2 values of 0 were taken as dropouts");
     assert!(!o.stderr.contains("`NaN` is impossible"), "{}", o.stderr);
+    // A few dropouts pass without a word; a log mostly without values is said.
+    assert!(
+        !o.stderr.contains("were taken as dropouts\n"),
+        "{}",
+        o.stderr
+    );
+    let blank: Vec<String> = lines
+        .iter()
+        .enumerate()
+        .map(|(i, l)| {
+            if i == 0 {
+                l.clone()
+            } else {
+                format!("{},NaN", l.split(',').next().unwrap())
+            }
+        })
+        .collect();
+    write(dir.path(), "S1/spo2.csv", &(blank.join("\n") + "\n"));
+    let o = check(dir.path());
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    says(
+        &o,
+        "samples have no SpO2 value (empty, NaN, `-` or 0) and were taken as dropouts",
+    );
 }
 
 #[test]
