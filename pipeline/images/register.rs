@@ -163,7 +163,7 @@ impl Ncc<'_> {
     }
 
     /// The correlation over `points` with the moving image moved by `p`;
-    /// −1 when fewer than 100 points land on it or either side is flat.
+    /// −1 when fewer than `MIN_POINTS` land on it or either side is flat.
     fn correlation(&self, p: &[f64], points: &[(usize, usize)]) -> f64 {
         let (cx, cy) = (self.w as f64 / 2.0, self.h as f64 / 2.0);
         // `rigid` with the angle's sine and cosine taken once, not per point.
@@ -183,7 +183,7 @@ impl Ncc<'_> {
             sbb += b * b;
             sab += a * b;
         }
-        if n < 100.0 {
+        if n < MIN_POINTS as f64 {
             return -1.0;
         }
         let cov = sab - sa * sb / n;
@@ -215,12 +215,19 @@ impl Ncc<'_> {
         for &(x, y) in &self.points {
             regions[cell(y, y0, y1) * REGIONS + cell(x, x0, x1)].push((x, y));
         }
+        // A region too small to correlate (an image of a few dozen pixels)
+        // says nothing; without any, the whole-image score stands.
         regions
             .iter()
+            .filter(|pts| pts.len() >= MIN_POINTS)
             .map(|pts| self.correlation(p, pts))
-            .fold(f64::INFINITY, f64::min)
+            .reduce(f64::min)
+            .unwrap_or_else(|| self.score(p))
     }
 }
+
+/// Fewest points a correlation is taken over.
+const MIN_POINTS: usize = 100;
 
 /// Regions per side for [`Registration::worst_region`].
 pub(crate) const REGIONS: usize = 4;

@@ -642,3 +642,20 @@ fn a_capture_with_pixels_that_are_not_numbers_is_refused_with_the_share() {
         )
     );
 }
+
+/// The per-region score judges regions big enough to correlate: on an
+/// image of a few dozen pixels it is the whole-image score, not −1 (which
+/// would mark every such capture as partly unmatched).
+#[test]
+fn small_images_are_not_partly_unmatched_by_construction() {
+    let (w, h) = (48, 48);
+    let img: Vec<f32> = (0..w * h)
+        .map(|i| {
+            let (x, y) = ((i % w) as f32, (i / w) as f32);
+            1000.0 + 200.0 * (0.4 * x).sin() * (0.3 * y).cos() + 150.0 * (0.23 * (x + y)).sin()
+        })
+        .collect();
+    let r = register(&img, &img, w, h, 2.0);
+    assert!(r.score > 0.99, "{r:?}");
+    assert!(r.worst_region > 0.99, "{r:?}");
+}
