@@ -41,6 +41,20 @@ pub(crate) fn rigid(
     cy: f64,
 ) -> (f64, f64) {
     let (s, c) = angle_deg.to_radians().sin_cos();
+    rotate_shift(s, c, dx, dy, (x, y), cx, cy)
+}
+
+/// [`rigid`] with the angle's sine and cosine given, for loops over many
+/// points at one angle.
+fn rotate_shift(
+    s: f64,
+    c: f64,
+    dx: f64,
+    dy: f64,
+    (x, y): (f64, f64),
+    cx: f64,
+    cy: f64,
+) -> (f64, f64) {
     let (u, v) = (x - cx, y - cy);
     (cx + c * u - s * v + dx, cy + s * u + c * v + dy)
 }
@@ -166,12 +180,11 @@ impl Ncc<'_> {
     /// −1 when fewer than `MIN_POINTS` land on it or either side is flat.
     fn correlation(&self, p: &[f64], points: &[(usize, usize)]) -> f64 {
         let (cx, cy) = (self.w as f64 / 2.0, self.h as f64 / 2.0);
-        // `rigid` with the angle's sine and cosine taken once, not per point.
+        // The angle's sine and cosine once, not per point.
         let (sin, cos) = p[2].to_radians().sin_cos();
         let (mut n, mut sa, mut sb, mut saa, mut sbb, mut sab) = (0.0, 0.0, 0.0, 0.0, 0.0, 0.0);
         for &(x, y) in points {
-            let (u, v) = (x as f64 - cx, y as f64 - cy);
-            let q = (cx + cos * u - sin * v + p[0], cy + sin * u + cos * v + p[1]);
+            let q = rotate_shift(sin, cos, p[0], p[1], (x as f64, y as f64), cx, cy);
             let Some(b) = bilinear(self.moving, self.w, self.h, q.0, q.1) else {
                 continue;
             };
