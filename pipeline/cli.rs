@@ -54,6 +54,59 @@ pub enum Command {
         #[arg(long, value_name = "STAGE", value_parser = stage_names())]
         force: Vec<String>,
     },
+    /// Plan the next study: power and sample size by simulation, from a
+    /// pilot's variance components or stated ones.
+    Power {
+        /// A study (its protocol, statistics settings and finished run's
+        /// variance components), a scenario or a protocol file.
+        input: PathBuf,
+        /// The effect to detect, in SO2 points, for one of the protocol's
+        /// contrasts (repeatable), e.g. `--effect "low-15 - air=-4"`.
+        #[arg(long = "effect", value_name = "CONTRAST=POINTS")]
+        effects: Vec<String>,
+        /// Subjects to try: a list `6,8,10`, a range `6..30` (every 2) or `6..30/4`.
+        #[arg(long, default_value = "6..30/4", value_name = "LIST")]
+        subjects: String,
+        /// Steady captures per epoch (and eye and session) to try.
+        #[arg(long, default_value = "5", value_name = "LIST")]
+        captures: String,
+        /// Vessel segments per eye to try (per vessel kind).
+        #[arg(long, default_value = "4", value_name = "LIST")]
+        segments: String,
+        /// Eyes per subject to try (1, 2 or `1,2`).
+        #[arg(long, default_value = "1", value_name = "LIST")]
+        eyes: String,
+        /// Sessions per subject to try (1, 2 or `1,2`).
+        #[arg(long, default_value = "1", value_name = "LIST")]
+        sessions: String,
+        /// A `variance_components` table (CSV or Parquet) from a statistics
+        /// stage; default: the study's own results.
+        #[arg(long, value_name = "FILE")]
+        variances: Option<PathBuf>,
+        /// State or override a variance component's SD in SO2 points:
+        /// subject, session, eye, segment, residual, response (every epoch)
+        /// or response:EPOCH (repeatable), e.g. `--sd eye=1.5`.
+        #[arg(long = "sd", value_name = "GROUP=SD")]
+        sd: Vec<String>,
+        /// Only this method (repeatable; default: every method in the table).
+        #[arg(long = "method", value_name = "LABEL")]
+        methods: Vec<String>,
+        /// Only this vessel kind (repeatable).
+        #[arg(long = "kind", value_name = "KIND", value_parser = ["arteriole", "venule"])]
+        kinds: Vec<String>,
+        /// The power the smallest design must reach.
+        #[arg(long, default_value_t = 0.8)]
+        target: f64,
+        /// Simulated studies per design, or `auto` (1 000, more near the target).
+        #[arg(long, default_value = "auto", value_name = "N|auto")]
+        simulations: String,
+        /// Seed of the simulations (the same seed gives the same bytes).
+        #[arg(long, default_value_t = 1)]
+        seed: u64,
+        /// Output folder (default: `power` in the current folder).
+        #[arg(long, value_name = "DIR")]
+        out: Option<PathBuf>,
+    },
     /// SO2 error from a 1 % transmission error per band, for veils 0–0.9.
     Sensitivity {
         /// A study file (its `instrument:` is used) or an instrument file.
@@ -207,6 +260,42 @@ pub fn main_with_args(args: impl IntoIterator<Item = std::ffi::OsString>) -> Exi
             };
             commands::mixed::mixed(&args, &printer)
         }
+        Command::Power {
+            input,
+            effects,
+            subjects,
+            captures,
+            segments,
+            eyes,
+            sessions,
+            variances,
+            sd,
+            methods,
+            kinds,
+            target,
+            simulations,
+            seed,
+            out,
+        } => commands::power::power(
+            &commands::power::PowerArgs {
+                input,
+                effects,
+                subjects,
+                captures,
+                segments,
+                eyes,
+                sessions,
+                variances,
+                sd,
+                methods,
+                kinds,
+                target,
+                simulations,
+                seed,
+                out,
+            },
+            &printer,
+        ),
         Command::Sensitivity {
             file,
             so2,

@@ -4,6 +4,7 @@
 
 pub mod check;
 pub mod mixed;
+pub mod power;
 pub mod protocol;
 pub mod run;
 pub mod sensitivity;

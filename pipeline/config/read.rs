@@ -285,3 +285,41 @@ impl<'a> Reader<'a> {
         }
     }
 }
+
+/// A list of counts: `6,8,10`, a range `6..30` (every 2), or `6..30/4`.
+pub fn parse_counts(text: &str, lo: usize, hi: usize) -> Result<Vec<usize>, String> {
+    let mut out = Vec::new();
+    for part in text.split(',').map(str::trim).filter(|p| !p.is_empty()) {
+        let bad = || format!("`{part}`: write a count, a list `6,8,10` or a range `6..30/4`");
+        if let Some((a, rest)) = part.split_once("..") {
+            let (b, step) = rest.split_once('/').unwrap_or((rest, "2"));
+            let (a, b, step): (usize, usize, usize) = (
+                a.trim().parse().map_err(|_| bad())?,
+                b.trim().parse().map_err(|_| bad())?,
+                step.trim().parse().map_err(|_| bad())?,
+            );
+            if step == 0 || a > b {
+                return Err(bad());
+            }
+            let mut v = a;
+            while v <= b {
+                out.push(v);
+                v += step;
+            }
+            if out.last() != Some(&b) {
+                out.push(b);
+            }
+        } else {
+            out.push(part.parse().map_err(|_| bad())?);
+        }
+    }
+    if out.is_empty() {
+        return Err("no value given".into());
+    }
+    if let Some(v) = out.iter().find(|v| !(lo..=hi).contains(*v)) {
+        return Err(format!("{v} is outside {lo}–{hi}"));
+    }
+    out.sort_unstable();
+    out.dedup();
+    Ok(out)
+}

@@ -17,7 +17,7 @@ use super::segments::Segment;
 pub use super::spo2log::ReferenceLog;
 use super::spo2log::SpO2Log;
 use super::time::parse_time;
-use super::yaml::Node;
+use super::yaml::{Node, Value};
 
 #[derive(Debug, Clone, PartialEq, serde::Serialize)]
 pub enum BandResponse {
@@ -166,6 +166,28 @@ pub enum Adjustment {
     None,
 }
 
+/// The `power:` section: plan a follow-up study from this run's own
+/// variance components (the `power` stage; `satstep power` takes the same
+/// choices on its command line).
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct PowerSettings {
+    /// The effects to detect, by contrast label, in SO2 points.
+    pub effects: Vec<(String, f64)>,
+    pub subjects: Vec<usize>,
+    pub captures_per_epoch: Vec<usize>,
+    pub segments_per_eye: Vec<usize>,
+    pub eyes: Vec<usize>,
+    pub sessions: Vec<usize>,
+    /// Method labels to plan for (empty: every method).
+    pub methods: Vec<String>,
+    /// Vessel kinds to plan for (empty: both).
+    pub kinds: Vec<String>,
+    pub target: f64,
+    /// Studies per design; `None` for the automatic count.
+    pub simulations: Option<usize>,
+    pub seed: u64,
+}
+
 /// Settings of the statistics stage.
 #[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
 pub struct StatisticsSettings {
@@ -197,6 +219,8 @@ pub struct Study {
     pub methods: Vec<Method>,
     pub exclusions: Exclusions,
     pub statistics: StatisticsSettings,
+    /// A follow-up study to plan (the `power` stage), if any.
+    pub power: Option<PowerSettings>,
     /// A spectra table that replaces the images (see `config::spectra`).
     pub spectra_file: Option<PathBuf>,
     /// Its contents, read and checked with the study.
@@ -280,8 +304,22 @@ const STUDY_KEYS: &[&str] = &[
     "methods",
     "exclusions",
     "statistics",
+    "power",
     "spectra",
     "output",
+];
+const POWER_KEYS: &[&str] = &[
+    "effects",
+    "subjects",
+    "captures_per_epoch",
+    "segments_per_eye",
+    "eyes",
+    "sessions",
+    "methods",
+    "kinds",
+    "target",
+    "simulations",
+    "seed",
 ];
 const STATISTICS_KEYS: &[&str] = &["confidence", "adjust"];
 const INSTRUMENT_KEYS: &[&str] = &[
@@ -547,6 +585,11 @@ fn read_study(r: &mut Reader, node: &Node, file: &Path, root: &Path) -> Option<S
         Some(n) => read_statistics(r, n),
     };
 
+    let power = match (m.get("power"), &protocol) {
+        (Some(n), Some(p)) => read_power(r, n, p, &methods).map(Some),
+        _ => Some(None),
+    };
+
     let spectra_file = m
         .get("spectra")
         .and_then(|n| r.text(n, "`spectra`"))
@@ -582,6 +625,7 @@ fn read_study(r: &mut Reader, node: &Node, file: &Path, root: &Path) -> Option<S
         methods,
         exclusions: exclusions?,
         statistics: statistics?,
+        power: power?,
         spectra_file,
         spectra: None,
         output,
@@ -1359,6 +1403,139 @@ fn read_statistics(r: &mut Reader, node: &Node) -> Option<StatisticsSettings> {
         }
     }
     Some(s)
+}
+
+/// A list of counts: `[6, 8, 10]`, one count, or a text `6..20/2` or
+/// `6,8,10` ([`super::read::parse_counts`]).
+fn read_counts(r: &mut Reader, n: &Node, what: &str, lo: usize, hi: usize) -> Option<Vec<usize>> {
+    let mut out = Vec::new();
+    match &n.value {
+        Value::Seq(items) => {
+            for i in items {
+                out.push(r.integer(i, what)?);
+            }
+        }
+        Value::Scalar { text, .. } if text.contains("..") || text.contains(',') => {
+            match super::read::parse_counts(text, lo, hi) {
+                Ok(v) => return Some(v),
+                Err(e) => {
+                    r.error(n.mark, format!("{what}: {e}"));
+                    return None;
+                }
+            }
+        }
+        _ => out.push(r.integer(n, what)?),
+    }
+    if let Some(v) = out.iter().find(|v| !(lo as i64..=hi as i64).contains(*v)) {
+        r.error(n.mark, format!("{what}: {v} is outside {lo}–{hi}"));
+        return None;
+    }
+    let mut out: Vec<usize> = out.into_iter().map(|v| v as usize).collect();
+    out.sort_unstable();
+    out.dedup();
+    Some(out)
+}
+
+fn read_power(
+    r: &mut Reader,
+    node: &Node,
+    protocol: &Protocol,
+    methods: &[Method],
+) -> Option<PowerSettings> {
+    let m = r.map(node, "`power`", POWER_KEYS)?;
+    let labels: Vec<&str> = protocol
+        .contrasts
+        .iter()
+        .map(|c| c.label.as_str())
+        .collect();
+    let mut effects = Vec::new();
+    let en = r.required(&m, "effects", "`power`")?;
+    let em = r.map(en, "`effects` (contrast: SO2 points to detect)", &labels)?;
+    for label in &labels {
+        if let Some(n) = em.get(label) {
+            effects.push((
+                label.to_string(),
+                r.number(n, &format!("the effect of `{label}`"))?,
+            ));
+        }
+    }
+    if effects.is_empty() {
+        r.error(en.mark, "`effects` names no contrast")
+            .hint(format!(
+                "give the SO2 points to detect for one of the protocol's contrasts: {}",
+                labels.join(", ")
+            ));
+        return None;
+    }
+    let counts =
+        |r: &mut Reader, key: &str, default: &[usize], lo: usize, hi: usize| match m.get(key) {
+            None => Some(default.to_vec()),
+            Some(n) => read_counts(r, n, &format!("`{key}`"), lo, hi),
+        };
+    let subjects = counts(r, "subjects", &[6, 8, 10, 12, 16, 20, 24], 2, 500);
+    let captures = counts(r, "captures_per_epoch", &[5], 1, 50);
+    let segments = counts(r, "segments_per_eye", &[4], 1, 30);
+    let eyes = counts(r, "eyes", &[1], 1, 2);
+    let sessions = counts(r, "sessions", &[1], 1, 2);
+    let names = |r: &mut Reader, key: &str, allowed: &[&str]| -> Option<Vec<String>> {
+        let Some(n) = m.get(key) else {
+            return Some(Vec::new());
+        };
+        let mut out = Vec::new();
+        for i in r.list(n, &format!("`{key}`"))? {
+            out.push(r.choice(i, &format!("`{key}`"), allowed)?);
+        }
+        Some(out)
+    };
+    let method_labels: Vec<&str> = methods.iter().map(|m| m.label.as_str()).collect();
+    let chosen_methods = names(r, "methods", &method_labels);
+    let kinds = names(r, "kinds", &["arteriole", "venule"]);
+    let target = match m.get("target") {
+        None => Some(0.8),
+        Some(n) => r.number(n, "`target`").and_then(|v| {
+            if v > 0.0 && v < 1.0 {
+                Some(v)
+            } else {
+                r.error(
+                    n.mark,
+                    format!("`target` is a power between 0 and 1 (0.8 for 80 %), found {v}"),
+                );
+                None
+            }
+        }),
+    };
+    let simulations = match m.get("simulations") {
+        None => Some(None),
+        Some(n) if n.as_scalar() == Some("auto") => Some(None),
+        Some(n) => r.integer(n, "`simulations`").and_then(|v| {
+            if (10..=100_000).contains(&v) {
+                Some(Some(v as usize))
+            } else {
+                r.error(
+                    n.mark,
+                    format!("`simulations` is `auto` or a count 10–100000, found {v}"),
+                );
+                None
+            }
+        }),
+    };
+    let seed = match m.get("seed") {
+        None => Some(1),
+        Some(n) => r.integer(n, "`seed`").map(|v| v as u64),
+    };
+    Some(PowerSettings {
+        effects,
+        subjects: subjects?,
+        captures_per_epoch: captures?,
+        segments_per_eye: segments?,
+        eyes: eyes?,
+        sessions: sessions?,
+        methods: chosen_methods?,
+        kinds: kinds?,
+        target: target?,
+        simulations: simulations?,
+        seed: seed?,
+    })
 }
 
 fn read_exclusions(

@@ -29,6 +29,12 @@ impl Progress {
         }
     }
 
+    pub fn inc_by(&self, n: usize) {
+        if let Some(b) = &self.0 {
+            b.inc(n as u64);
+        }
+    }
+
     pub fn finish(&self) {
         if let Some(b) = &self.0 {
             b.finish_and_clear();

@@ -9,6 +9,7 @@
 
 pub mod cohort;
 pub mod course;
+pub mod power;
 pub mod render;
 pub mod seed;
 
@@ -55,6 +56,9 @@ pub struct Scenario {
     pub bands: Vec<(String, f64, f64)>,
     pub veil_max: f64,
     pub methods_yaml: String,
+    /// The scenario's `power:` section as written, copied into the study
+    /// file (it is checked there, against the study's contrasts and methods).
+    pub power_yaml: Option<String>,
 }
 
 const SCENARIO_KEYS: &[&str] = &[
@@ -70,6 +74,7 @@ const SCENARIO_KEYS: &[&str] = &[
     "image",
     "instrument",
     "veil_max",
+    "power",
 ];
 const IMAGE_KEYS: &[&str] = &["width", "height", "pixel_size_um"];
 const INSTRUMENT_KEYS: &[&str] = &["name", "bands"];
@@ -208,7 +213,28 @@ fn read_scenario(r: &mut Reader, node: &crate::config::yaml::Node, dir: &Path) -
         bands,
         veil_max,
         methods_yaml: String::new(),
+        power_yaml: m
+            .get("power")
+            .and_then(|_| std::fs::read_to_string(r.file).ok())
+            .and_then(|t| power_section(&t)),
     })
+}
+
+/// The top-level `power:` section of a scenario file's text, verbatim: its
+/// key line and the indented, blank or comment lines after it.
+fn power_section(text: &str) -> Option<String> {
+    let mut lines = text.lines().skip_while(|l| !l.starts_with("power:"));
+    let first = lines.next()?;
+    let mut out = format!("{first}\n");
+    for l in lines {
+        if l.is_empty() || l.starts_with(' ') || l.starts_with('#') {
+            out.push_str(l);
+            out.push('\n');
+        } else {
+            break;
+        }
+    }
+    Some(out.trim_end().to_string() + "\n")
 }
 
 /// A subject as drawn from the scenario.
@@ -875,6 +901,9 @@ fn study_yaml(sc: &Scenario, subjects: &[SimSubject]) -> String {
             y,
             "  - method: multiband\n    loss: huber\n    huber_scale: 1.5\n  - method: multiband-pointwise\n    loss: huber"
         );
+    }
+    if let Some(p) = &sc.power_yaml {
+        y.push_str(p);
     }
     let _ = writeln!(y, "output: results");
     y

@@ -5,6 +5,7 @@
 
 pub mod epochs;
 pub mod fits;
+pub mod power;
 pub mod report;
 pub mod stage;
 pub mod statistics;
@@ -62,6 +63,7 @@ pub(crate) static STAGES: &[&dyn Listed] = &[
     &transmissions::Transmissions,
     &fits::Fits,
     &statistics::StatisticsStage,
+    &power::Power,
     &report::Report,
 ];
 

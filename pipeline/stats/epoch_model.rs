@@ -80,6 +80,15 @@ pub enum Adjustment {
     None,
 }
 
+impl From<crate::config::study::Adjustment> for Adjustment {
+    fn from(a: crate::config::study::Adjustment) -> Self {
+        match a {
+            crate::config::study::Adjustment::Holm => Adjustment::Holm,
+            crate::config::study::Adjustment::None => Adjustment::None,
+        }
+    }
+}
+
 impl Adjustment {
     pub fn name(self) -> &'static str {
         match self {

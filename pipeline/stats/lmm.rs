@@ -95,6 +95,11 @@ struct Block {
 /// Cross-products computed once per data set.
 struct Cross {
     blocks: Vec<Block>,
+    /// Blocks with the same layout and the same `Z'Z` and `Z'X` (every
+    /// subject of a balanced design): the first of each class stands for
+    /// the others, whose factor `L` and `R_ZX` are the same, so one
+    /// factorisation per class and evaluation serves them all.
+    classes: Vec<Vec<usize>>,
     xtx: DMatrix<f64>,
     xty: DVector<f64>,
     yty: f64,
@@ -108,6 +113,28 @@ fn find(parent: &mut [usize], mut i: usize) -> usize {
         i = parent[i];
     }
     i
+}
+
+/// Relative tolerance on the spread of the deviance over Nelder–Mead's
+/// simplex. Loose enough that a variance heading for the boundary does not
+/// keep the simplex creeping for thousands of steps; the Newton steps that
+/// follow pin the free parameters to the deviance's rounding noise.
+const NM_TOLERANCE: f64 = 1e-10;
+
+/// Buffers of one block's factorisation, reused across evaluations.
+#[derive(Default)]
+struct Work {
+    /// Nonzeros (row, value) of Λ's columns, column after column.
+    lam: Vec<(usize, f64)>,
+    lam_start: Vec<usize>,
+    b: Vec<f64>,
+    m: Vec<f64>,
+    r: Vec<f64>,
+    /// R_ZX'R_ZX and R_ZX'c_u summed over blocks (row-major p×p, p).
+    acc: Vec<f64>,
+    acc_cu: Vec<f64>,
+    /// One block's c_u when it shares its class's factor.
+    y: Vec<f64>,
 }
 
 /// Everything computed at one θ.
@@ -243,7 +270,19 @@ impl Model {
             }
         }
         let y = DVector::from_column_slice(&data.y);
+        let mut classes: Vec<Vec<usize>> = Vec::new();
+        for (i, b) in blocks.iter().enumerate() {
+            let same = |c: &&mut Vec<usize>| {
+                let r = &blocks[c[0]];
+                r.block_of == b.block_of && r.ztz == b.ztz && r.ztx == b.ztx
+            };
+            match classes.iter_mut().find(same) {
+                Some(c) => c.push(i),
+                None => classes.push(vec![i]),
+            }
+        }
         let cross = Cross {
+            classes,
             xtx: data.x.transpose() * &data.x,
             xty: data.x.transpose() * &y,
             yty: y.norm_squared(),
@@ -303,71 +342,205 @@ impl Model {
             .collect()
     }
 
-    fn at(&self, theta: &[f64]) -> Option<AtTheta> {
+    /// Everything at θ; `full` adds β and `(R_X R_X')⁻¹`, which the
+    /// deviance does not need.
+    fn at(&self, theta: &[f64], full: bool) -> Option<AtTheta> {
         let cr = &self.cross;
+        let p = cr.p;
         let lam = self.factors(theta);
+        // Every evaluation of the deviance comes here, hundreds of times per
+        // fit: the per-block work runs in one reused buffer per thread.
+        thread_local! {
+            static WORK: std::cell::RefCell<Work> = std::cell::RefCell::new(Work::default());
+        }
         let mut logdet_l = 0.0;
-        let mut rzx_t_rzx: DMatrix<f64> = DMatrix::zeros(cr.p, cr.p);
-        let mut rzx_t_cu: DVector<f64> = DVector::zeros(cr.p);
+        let mut rzx_t_rzx: DMatrix<f64> = DMatrix::zeros(p, p);
+        let mut rzx_t_cu: DVector<f64> = DVector::zeros(p);
         let mut cu2 = 0.0;
-        for blk in &cr.blocks {
-            let q = blk.ztz.nrows();
-            // Λ entry (row k, column j): nonzero only within a level's coefficients.
-            let lam_entry = |k: usize, j: usize| -> f64 {
-                let (t, start, size) = blk.block_of[j];
-                if k < start || k >= start + size {
-                    return 0.0;
+        let scalar = self.data.terms.iter().all(|t| t.p() == 1);
+        let ok = WORK.with_borrow_mut(|w| {
+            w.acc.clear();
+            w.acc.resize(p * p, 0.0);
+            w.acc_cu.clear();
+            w.acc_cu.resize(p, 0.0);
+            for class in &cr.classes {
+                let blk = &cr.blocks[class[0]];
+                let count = class.len() as f64;
+                let q = blk.ztz.nrows();
+                let ztz = blk.ztz.as_slice();
+                let ztx = blk.ztx.as_slice();
+                w.m.clear();
+                w.m.resize(q * q, 0.0);
+                w.r.clear();
+                w.r.resize(q * (p + 1), 0.0);
+                if scalar {
+                    // Every term has one column, so Λ is diagonal: M = I + D Z'Z D.
+                    w.lam.clear();
+                    w.lam
+                        .extend(blk.block_of.iter().map(|&(t, _, _)| (0, lam[t][(0, 0)])));
+                    for i in 0..q {
+                        let li = w.lam[i].1;
+                        for j in 0..=i {
+                            w.m[i * q + j] = li * w.lam[j].1 * ztz[j * q + i];
+                        }
+                        w.m[i * q + i] += 1.0;
+                        for c in 0..p {
+                            w.r[i * (p + 1) + c] = li * ztx[c * q + i];
+                        }
+                        w.r[i * (p + 1) + p] = li * blk.zty[i];
+                    }
+                } else {
+                    // Λ by columns: the nonzeros of column j lie within its level's coefficients.
+                    w.lam.clear();
+                    w.lam_start.clear();
+                    for j in 0..q {
+                        w.lam_start.push(w.lam.len());
+                        let (t, start, size) = blk.block_of[j];
+                        for k in start..start + size {
+                            let l = lam[t][(k - start, j - start)];
+                            if l != 0.0 {
+                                w.lam.push((k, l));
+                            }
+                        }
+                    }
+                    w.lam_start.push(w.lam.len());
+                    let col = |w: &Work, j: usize| w.lam_start[j]..w.lam_start[j + 1];
+                    // B = Z'Z Λ (column-major, q×q).
+                    w.b.clear();
+                    w.b.resize(q * q, 0.0);
+                    for j in 0..q {
+                        for e in col(w, j) {
+                            let (k, l) = w.lam[e];
+                            for i in 0..q {
+                                w.b[j * q + i] += ztz[k * q + i] * l;
+                            }
+                        }
+                    }
+                    // M = Λ'B + I (lower triangle, row-major), Λ'Z'X and Λ'Z'y.
+                    for i in 0..q {
+                        for e in col(w, i) {
+                            let (k, l) = w.lam[e];
+                            for j in 0..=i {
+                                w.m[i * q + j] += l * w.b[j * q + k];
+                            }
+                            for c in 0..p {
+                                w.r[i * (p + 1) + c] += l * ztx[c * q + k];
+                            }
+                            w.r[i * (p + 1) + p] += l * blk.zty[k];
+                        }
+                        w.m[i * q + i] += 1.0;
+                    }
                 }
-                lam[t][(k - start, j - start)]
-            };
-            // B = Z'Z Λ, then M = Λ' B + I, in O(q²·p).
-            let mut b: DMatrix<f64> = DMatrix::zeros(q, q);
-            for j in 0..q {
-                let (_, start, size) = blk.block_of[j];
-                for k in start..start + size {
-                    let l = lam_entry(k, j);
-                    if l != 0.0 {
+                // Cholesky L L' = M in place (lower, row-major). M ⪰ I, so
+                // every pivot is ≥ 1 and their product is taken before one log.
+                let mut pivots = 1.0;
+                let m = &mut w.m[..q * q];
+                for i in 0..q {
+                    let (done, rest) = m.split_at_mut(i * q);
+                    let row_i = &mut rest[..=i];
+                    for j in 0..=i {
+                        let dot: f64 = if j < i {
+                            let row_j = &done[j * q..j * q + j];
+                            row_i[..j].iter().zip(row_j).map(|(a, b)| a * b).sum()
+                        } else {
+                            row_i[..j].iter().map(|a| a * a).sum()
+                        };
+                        let s = row_i[j] - dot;
+                        if i == j {
+                            if !(s > 0.0) {
+                                return false;
+                            }
+                            row_i[i] = s.sqrt();
+                        } else {
+                            row_i[j] = s / done[j * q + j];
+                        }
+                    }
+                    pivots *= row_i[i];
+                    if pivots > 1e100 {
+                        logdet_l += 2.0 * count * pivots.ln();
+                        pivots = 1.0;
+                    }
+                }
+                logdet_l += 2.0 * count * pivots.ln();
+                // Forward substitution: [R_ZX | c_u] = L⁻¹ [Λ'Z'X | Λ'Z'y],
+                // row by row (each row of the right-hand side is contiguous).
+                let wr = p + 1;
+                let r = &mut w.r[..q * wr];
+                for i in 0..q {
+                    let (done, rest) = r.split_at_mut(i * wr);
+                    let row = &mut rest[..wr];
+                    for (k, l) in m[i * q..i * q + i].iter().enumerate() {
+                        for (x, y) in row.iter_mut().zip(&done[k * wr..(k + 1) * wr]) {
+                            *x -= l * y;
+                        }
+                    }
+                    let d = m[i * q + i];
+                    row.iter_mut().for_each(|x| *x /= d);
+                }
+                for row in r.chunks_exact(wr) {
+                    for a in 0..p {
+                        for b in 0..p {
+                            w.acc[a * p + b] += count * row[a] * row[b];
+                        }
+                        w.acc_cu[a] += row[a] * row[p];
+                    }
+                    cu2 += row[p] * row[p];
+                }
+                // The class's other blocks differ only in Z'y: c_u = L⁻¹ Λ'Z'y.
+                for &other in &class[1..] {
+                    let zty = &cr.blocks[other].zty;
+                    w.y.clear();
+                    if scalar {
+                        w.y.extend((0..q).map(|i| w.lam[i].1 * zty[i]));
+                    } else {
                         for i in 0..q {
-                            b[(i, j)] += blk.ztz[(i, k)] * l;
+                            let v = w.lam[w.lam_start[i]..w.lam_start[i + 1]]
+                                .iter()
+                                .map(|&(k, l)| l * zty[k])
+                                .sum();
+                            w.y.push(v);
                         }
+                    }
+                    for i in 0..q {
+                        let dot: f64 = m[i * q..i * q + i]
+                            .iter()
+                            .zip(&w.y[..i])
+                            .map(|(l, y)| l * y)
+                            .sum();
+                        w.y[i] = (w.y[i] - dot) / m[i * q + i];
+                    }
+                    for (i, cu) in w.y.iter().enumerate() {
+                        let row = &r[i * wr..i * wr + p];
+                        for a in 0..p {
+                            w.acc_cu[a] += row[a] * cu;
+                        }
+                        cu2 += cu * cu;
                     }
                 }
             }
-            let mut m: DMatrix<f64> = DMatrix::identity(q, q);
-            let mut lztx: DMatrix<f64> = DMatrix::zeros(q, cr.p);
-            let mut lzty: DVector<f64> = DVector::zeros(q);
-            for i in 0..q {
-                let (_, start, size) = blk.block_of[i];
-                for k in start..start + size {
-                    let l = lam_entry(k, i);
-                    if l != 0.0 {
-                        for j in 0..q {
-                            m[(i, j)] += l * b[(k, j)];
-                        }
-                        for c in 0..cr.p {
-                            lztx[(i, c)] += l * blk.ztx[(k, c)];
-                        }
-                        lzty[i] += l * blk.zty[k];
-                    }
+            for a in 0..p {
+                for b in 0..p {
+                    rzx_t_rzx[(a, b)] = w.acc[a * p + b];
                 }
+                rzx_t_cu[a] = w.acc_cu[a];
             }
-            let chol = m.cholesky()?;
-            let l = chol.l();
-            logdet_l += 2.0 * l.diagonal().iter().map(|d: &f64| d.ln()).sum::<f64>();
-            let rzx = l.solve_lower_triangular(&lztx)?;
-            let cu = l.solve_lower_triangular(&lzty)?;
-            rzx_t_rzx += rzx.transpose() * &rzx;
-            rzx_t_cu += rzx.transpose() * &cu;
-            cu2 += cu.norm_squared();
+            true
+        });
+        if !ok {
+            return None;
         }
         let xtx_adj = &cr.xtx - rzx_t_rzx;
-        let rx = xtx_adj.clone().cholesky()?;
+        let rx = xtx_adj.cholesky()?;
         let logdet_rx = 2.0 * rx.l().diagonal().iter().map(|d: &f64| d.ln()).sum::<f64>();
         let rhs = &cr.xty - rzx_t_cu;
-        let beta = rx.solve(&rhs);
         let cbeta = rx.l().solve_lower_triangular(&rhs)?;
         let pwrss = cr.yty - cu2 - cbeta.norm_squared();
-        let rx_inv = rx.inverse();
+        // The deviance needs neither β nor the inverse; only a fit's result does.
+        let (beta, rx_inv) = if full {
+            (rx.solve(&rhs), rx.inverse())
+        } else {
+            (DVector::zeros(0), DMatrix::zeros(0, 0))
+        };
         Some(AtTheta {
             logdet_l,
             logdet_rx,
@@ -379,7 +552,7 @@ impl Model {
 
     /// The profiled deviance at θ.
     pub fn profiled_deviance(&self, theta: &[f64]) -> f64 {
-        let Some(a) = self.at(theta) else {
+        let Some(a) = self.at(theta, false) else {
             return f64::INFINITY;
         };
         let (n, p) = (self.cross.n as f64, self.cross.p as f64);
@@ -394,7 +567,7 @@ impl Model {
 
     /// −2ℓ at (θ, σ), not profiled over σ (used for Satterthwaite).
     pub fn deviance_at(&self, theta: &[f64], sigma: f64) -> f64 {
-        let Some(a) = self.at(theta) else {
+        let Some(a) = self.at(theta, false) else {
             return f64::INFINITY;
         };
         let (n, p) = (self.cross.n as f64, self.cross.p as f64);
@@ -409,7 +582,7 @@ impl Model {
     }
 
     fn vcov_at(&self, theta: &[f64], sigma: f64) -> Option<DMatrix<f64>> {
-        self.at(theta).map(|a| a.rx_inv * (sigma * sigma))
+        self.at(theta, true).map(|a| a.rx_inv * (sigma * sigma))
     }
 
     /// Fits the model.
@@ -440,7 +613,7 @@ impl Model {
             // The deviance is a sum over all observations, so its rounding noise
             // grows with its size: an absolute tolerance of 1e-12 is below that
             // noise on large data and would never be met.
-            let tol = (1e-13 * best_cost.abs()).max(1e-12);
+            let tol = (NM_TOLERANCE * best_cost.abs()).max(NM_TOLERANCE);
             let solver = NelderMead::new(simplex.clone())
                 .with_sd_tolerance(tol)
                 .map_err(|e| LmmError::Optimiser(e.to_string()))?;
@@ -464,7 +637,8 @@ impl Model {
             best_cost = new_cost;
             // Converged when a restart neither moves θ nor lowers the
             // deviance by more than its rounding noise.
-            if round > 0 && (moved < 1e-9 || gained.abs() <= 1e-12 * new_cost.abs().max(1.0)) {
+            if round > 0 && (moved < 1e-9 || gained.abs() <= NM_TOLERANCE * new_cost.abs().max(1.0))
+            {
                 converged = true;
                 break;
             }
@@ -479,6 +653,21 @@ impl Model {
         // flat direction can leave θ loose in the sixth digit. Newton steps
         // on the free coordinates (numerical gradient and Hessian, as for
         // Satterthwaite's df; variances on the boundary held at zero) pin it.
+        // A variance whose optimum is on the boundary leaves Nelder–Mead
+        // creeping towards θ = 0 along a direction where the deviance is
+        // flat (it depends on θ²); set such a θ to 0 exactly, as lme4's
+        // bounded optimiser does, when that is no worse.
+        for k in diag.iter().copied() {
+            if best[k].abs() < 1e-4 && best[k] != 0.0 {
+                let mut x = best.clone();
+                x[k] = 0.0;
+                let c = cost.cost(&x).unwrap_or(f64::INFINITY);
+                if c <= best_cost + 1e-12 * best_cost.abs().max(1.0) {
+                    best = x;
+                    best_cost = c.min(best_cost);
+                }
+            }
+        }
         let free: Vec<usize> = (0..nt)
             .filter(|k| !diag.contains(k) || best[*k].abs() >= 1e-4)
             .collect();
@@ -495,7 +684,7 @@ impl Model {
             };
             let x0: Vec<f64> = free.iter().map(|k| best[*k]).collect();
             let g = DVector::from_vec(gradient(&sub, &x0));
-            let Some(chol) = hessian(&sub, &x0).cholesky() else {
+            let Some(chol) = hessian_plain(&sub, &x0).cholesky() else {
                 break;
             };
             let step = chol.solve(&g);
@@ -507,14 +696,21 @@ impl Model {
             for (i, k) in free.iter().enumerate() {
                 best[*k] = x1[i];
             }
+            let gained = best_cost - f1;
             best_cost = f1;
+            // A step this small, or a gain within the deviance's rounding
+            // noise, leaves nothing for another (costly) Newton step to pin.
+            let largest = step.iter().fold(0.0f64, |m, d| m.max(d.abs()));
+            if largest < 1e-9 || gained <= 1e-13 * best_cost.abs().max(1.0) {
+                break;
+            }
         }
         let theta: Vec<f64> = best
             .iter()
             .enumerate()
             .map(|(k, v)| if diag.contains(&k) { v.abs() } else { *v })
             .collect();
-        let a = self.at(&theta).ok_or(LmmError::NotEstimable)?;
+        let a = self.at(&theta, true).ok_or(LmmError::NotEstimable)?;
         let (n, p) = (self.cross.n as f64, self.cross.p as f64);
         let s2 = match self.criterion {
             Criterion::Ml => a.pwrss / n,
@@ -625,12 +821,12 @@ fn gradient(f: &dyn Fn(&[f64]) -> f64, x: &[f64]) -> Vec<f64> {
     (0..x.len()).map(|k| derivative(f, x, k)).collect()
 }
 
-/// Hessian by central second differences, each Richardson-extrapolated
-/// from steps h and h/2 (error O(h⁴), as [`derivative`]); 4 evaluations per
-/// diagonal and 8 per off-diagonal element, the upper triangle mirrored.
-fn hessian(f: &dyn Fn(&[f64]) -> f64, x: &[f64]) -> DMatrix<f64> {
+/// Hessian by central second differences with steps `scale` times
+/// `h = 1e-3·max(|x|, 0.01)`: 2 evaluations per diagonal and 4 per
+/// off-diagonal element (plus one at `x`), the upper triangle mirrored.
+fn hessian_step(f: &dyn Fn(&[f64]) -> f64, x: &[f64], scale: f64) -> DMatrix<f64> {
     let n = x.len();
-    let h0: Vec<f64> = x.iter().map(|v| 1e-3 * v.abs().max(1e-2)).collect();
+    let h: Vec<f64> = x.iter().map(|v| 1e-3 * v.abs().max(1e-2) * scale).collect();
     let f0 = f(x);
     let at = |moves: &[(usize, f64)]| {
         let mut v = x.to_vec();
@@ -639,23 +835,29 @@ fn hessian(f: &dyn Fn(&[f64]) -> f64, x: &[f64]) -> DMatrix<f64> {
         }
         f(&v)
     };
-    let mut h = DMatrix::zeros(n, n);
+    let mut m = DMatrix::zeros(n, n);
     for i in 0..n {
-        let d = |s: f64| {
-            let hi = h0[i] * s;
-            (at(&[(i, hi)]) - 2.0 * f0 + at(&[(i, -hi)])) / (hi * hi)
-        };
-        h[(i, i)] = (4.0 * d(0.5) - d(1.0)) / 3.0;
+        m[(i, i)] = (at(&[(i, h[i])]) - 2.0 * f0 + at(&[(i, -h[i])])) / (h[i] * h[i]);
         for j in 0..i {
-            let d = |s: f64| {
-                let (hi, hj) = (h0[i] * s, h0[j] * s);
-                (at(&[(i, hi), (j, hj)]) - at(&[(i, hi), (j, -hj)]) - at(&[(i, -hi), (j, hj)])
-                    + at(&[(i, -hi), (j, -hj)]))
-                    / (4.0 * hi * hj)
-            };
-            h[(i, j)] = (4.0 * d(0.5) - d(1.0)) / 3.0;
-            h[(j, i)] = h[(i, j)];
+            m[(i, j)] = (at(&[(i, h[i]), (j, h[j])])
+                - at(&[(i, h[i]), (j, -h[j])])
+                - at(&[(i, -h[i]), (j, h[j])])
+                + at(&[(i, -h[i]), (j, -h[j])]))
+                / (4.0 * h[i] * h[j]);
+            m[(j, i)] = m[(i, j)];
         }
     }
-    h
+    m
+}
+
+/// A plain central-difference Hessian: enough to steer Newton steps,
+/// whose end point the gradient alone decides.
+fn hessian_plain(f: &dyn Fn(&[f64]) -> f64, x: &[f64]) -> DMatrix<f64> {
+    hessian_step(f, x, 1.0)
+}
+
+/// The Hessian Richardson-extrapolated from steps h and h/2 (error O(h⁴),
+/// as [`derivative`]), for the covariance of the variance parameters.
+fn hessian(f: &dyn Fn(&[f64]) -> f64, x: &[f64]) -> DMatrix<f64> {
+    (hessian_step(f, x, 0.5) * 4.0 - hessian_step(f, x, 1.0)) / 3.0
 }

@@ -584,3 +584,123 @@ where
     }
     Ok(())
 }
+
+/// One curve: its label and points (subjects, power, Monte Carlo SE).
+pub type Curve = (String, Vec<(f64, f64, f64)>);
+/// One panel: its method and curves.
+pub type Panel = (String, Vec<Curve>);
+
+/// The figure's data: per stated contrast and kind (rows) and method
+/// (columns), power against subjects, one curve per other design choice.
+pub struct PowerCurves {
+    pub target: f64,
+    /// (row title, panels).
+    pub rows: Vec<(String, Vec<Panel>)>,
+}
+
+/// The power-curve figure, for `satstep power` and the `power` stage.
+pub fn power_curves(dir: &Path, c: &PowerCurves) -> Result<Figure> {
+    create_folder(dir)?;
+    let cols = c.rows.iter().map(|r| r.1.len()).max().unwrap_or(1).max(1) as u32;
+    let rows = c.rows.len().max(1) as u32;
+    Ok(render!(
+        dir,
+        "power_curve",
+        String::new(),
+        (360 * cols + 40, 300 * rows + 40),
+        draw_power,
+        c
+    ))
+}
+
+fn draw_power<DB: DrawingBackend>(root: &DrawingArea<DB, Shift>, c: &PowerCurves) -> DrawResult
+where
+    DB::ErrorType: 'static,
+{
+    let (top, body) = root.split_vertically(36);
+    top.draw_text(
+        &format!(
+            "Power against subjects (dashed: the {:.0} % target; bars: ± 2 Monte Carlo SE)",
+            c.target * 100.0
+        ),
+        &title(17),
+        (12, 8),
+    )?;
+    let cols = c.rows.iter().map(|r| r.1.len()).max().unwrap_or(1).max(1);
+    let xmax = c
+        .rows
+        .iter()
+        .flat_map(|r| {
+            r.1.iter()
+                .flat_map(|p| p.1.iter().flat_map(|cv| cv.1.iter()))
+        })
+        .map(|p| p.0)
+        .fold(2.0, f64::max);
+    let xmin = c
+        .rows
+        .iter()
+        .flat_map(|r| {
+            r.1.iter()
+                .flat_map(|p| p.1.iter().flat_map(|cv| cv.1.iter()))
+        })
+        .map(|p| p.0)
+        .fold(xmax, f64::min);
+    let areas = body.split_evenly((c.rows.len().max(1), cols));
+    for (ri, (row_title, panels)) in c.rows.iter().enumerate() {
+        for (pi, (method, curves)) in panels.iter().enumerate() {
+            let area = &areas[ri * cols + pi];
+            let mut ch = ChartBuilder::on(area)
+                .caption(format!("{method}: {row_title}"), label(13))
+                .margin(8)
+                .x_label_area_size(36)
+                .y_label_area_size(44)
+                .build_cartesian_2d((xmin - 1.0)..(xmax + 1.0), 0.0..1.0)?;
+            ch.configure_mesh()
+                .light_line_style(TRANSPARENT)
+                .bold_line_style(GRID)
+                .x_desc("subjects")
+                .y_desc("power")
+                .y_label_formatter(&|v| format!("{:.0} %", v * 100.0))
+                .x_label_formatter(&|v| format!("{v:.0}"))
+                .label_style(label(11))
+                .axis_desc_style(label(12))
+                .draw()?;
+            ch.draw_series(DashedLineSeries::new(
+                [(xmin - 1.0, c.target), (xmax + 1.0, c.target)],
+                6,
+                4,
+                INK.stroke_width(1),
+            ))?;
+            for (k, (name, points)) in curves.iter().enumerate() {
+                let colour = method_colour(k);
+                let style = colour.stroke_width(2);
+                ch.draw_series(LineSeries::new(points.iter().map(|p| (p.0, p.1)), style))?
+                    .label(name.as_str())
+                    .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], style));
+                ch.draw_series(points.iter().map(|p| {
+                    PathElement::new(
+                        vec![
+                            (p.0, (p.1 - 2.0 * p.2).max(0.0)),
+                            (p.0, (p.1 + 2.0 * p.2).min(1.0)),
+                        ],
+                        colour.stroke_width(1),
+                    )
+                }))?;
+                ch.draw_series(
+                    points
+                        .iter()
+                        .map(|p| Circle::new((p.0, p.1), 3, colour.filled())),
+                )?;
+            }
+            if pi == 0 && ri == 0 {
+                ch.configure_series_labels()
+                    .position(SeriesLabelPosition::LowerRight)
+                    .background_style(WHITE.mix(0.9))
+                    .border_style(INK)
+                    .label_font(label(11))
+                    .draw()?;
+            }
+        }
+    }
+    Ok(())
+}

@@ -38,7 +38,8 @@ impl Stage for Report {
     /// Version of the report's layout; bump when its output changes.
     const VERSION: u32 = 3;
     const SUMMARY: &'static str = "the paper's tables and figures, report.html and report.md";
-    const UPSTREAM: &'static [&'static str] = &["epochs", "transmissions", "fits", "statistics"];
+    const UPSTREAM: &'static [&'static str] =
+        &["epochs", "transmissions", "fits", "statistics", "power"];
     type Output = ();
 
     fn settings(study: &Study) -> Key {
@@ -76,6 +77,7 @@ impl Stage for Report {
             images: run.output::<Transmissions>(),
             fits: run.output::<Fits>(),
             stats: run.output::<StatisticsStage>(),
+            power: None,
             methods: &run.methods,
             files: run
                 .inputs
@@ -89,6 +91,19 @@ impl Stage for Report {
                 .collect(),
         };
         let images = run.output::<Transmissions>();
+        let power_rows = run.output::<crate::stages::power::Power>();
+        let power = match crate::stages::power::plan_for(run)? {
+            Some((plan, _)) if !power_rows.is_empty() => Some(PowerSection {
+                lines: crate::stages::power::summary_lines(&plan, power_rows),
+                figure: figures::power_curves(
+                    &run.out().join("report").join("figures"),
+                    &crate::stages::power::curves(&plan, power_rows),
+                )?,
+                target: plan.target,
+            }),
+            _ => None,
+        };
+        let inputs = Inputs { power, ..inputs };
         write(
             &inputs,
             &|i| images.positions(runner, i).unwrap_or_default(),
@@ -127,12 +142,24 @@ pub(crate) const REFERENCES: &[&str] = &[
     "ISO 2533:1975. Standard Atmosphere. International Organization for Standardization.",
 ];
 
+/// The report's section on the power of a follow-up study.
+pub(crate) struct PowerSection {
+    /// One sentence per method, kind and contrast: the smallest design.
+    pub lines: Vec<String>,
+    pub figure: figures::Figure,
+    pub target: f64,
+}
+
+const POWER_INTRO: &str = "For a follow-up study with this instrument: the power to detect the stated effects, estimated by simulating studies from this pilot's own variance components and analysing each as above. Assumptions, the variances used and the full table are in `power/power.md` and `power/power.csv`.";
+
 pub(crate) struct Inputs<'a> {
     pub study: &'a Study,
     pub epochs: &'a EpochTables,
     pub images: &'a TransmissionTables,
     pub fits: &'a [FitRow],
     pub stats: &'a StatisticsTables,
+    /// The follow-up study's power, when the study plans one.
+    pub power: Option<PowerSection>,
     /// The methods text, one paragraph per stage in the stages' order.
     pub methods: &'a [String],
     /// (path relative to the study folder, SHA-256) of every input file.
@@ -169,6 +196,9 @@ fn write(
     let data = data::prepare(s, inp.epochs, positions, inp.fits, inp.stats);
     let figs = figures::all(&dir.join("figures"), &data)?;
     written.extend(figs.iter().flat_map(|f| f.files.clone()));
+    if let Some(p) = &inp.power {
+        written.extend(p.figure.files.clone());
+    }
     let doc = Document {
         inp,
         results: &results,
@@ -332,6 +362,20 @@ impl Document<'_> {
                 html_escape(&f.caption)
             ));
         }
+        if let Some(p) = &self.inp.power {
+            h.push_str("<h2 id=\"power\">Power for a follow-up study</h2>\n");
+            h.push_str(&format!("<p>{}</p>\n<ul>\n", html_escape(POWER_INTRO)));
+            for l in &p.lines {
+                h.push_str(&format!("<li>{}</li>\n", html_escape(l)));
+            }
+            h.push_str("</ul>\n");
+            h.push_str(&format!(
+                "<figure id=\"fig-{}\">\n{}\n<figcaption>Power against the number of subjects, per method, with the {:.0} % target dashed</figcaption>\n</figure>\n",
+                p.figure.name,
+                strip_xml_header(&p.figure.svg),
+                p.target * 100.0
+            ));
+        }
         h.push_str("<h2 id=\"methods\">Methods</h2>\n");
         for p in self.inp.methods {
             h.push_str(&format!("<p>{}</p>\n", html_escape(p)));
@@ -410,6 +454,21 @@ impl Document<'_> {
                 f.name,
                 f.name,
                 md(&f.caption)
+            ));
+        }
+        if let Some(p) = &self.inp.power {
+            m.push_str(&format!(
+                "## Power for a follow-up study\n\n{}\n\n",
+                md(POWER_INTRO)
+            ));
+            for l in &p.lines {
+                m.push_str(&format!("- {}\n", md(l)));
+            }
+            m.push_str(&format!(
+                "\n![{}](figures/{}.png)\n\n*Power against the number of subjects, per method, with the {:.0} % target dashed*\n\n",
+                p.figure.name,
+                p.figure.name,
+                p.target * 100.0
             ));
         }
         m.push_str("## Methods\n\n");

@@ -2,3 +2,4 @@
 
 mod calibration;
 mod lme4;
+mod power;

@@ -273,6 +273,37 @@ fn simulated_reference_and_truth_are_physiological() {
         compared += 1;
     }
     assert_eq!(compared, 18);
+    // The report plans a follow-up study from the demo's own variance
+    // components (the scenario's `power:` section): a power table for the
+    // two methods it names, at the automatic count of studies, and a section.
+    let power = rows("../power/power.csv");
+    assert_eq!(
+        power.len(),
+        4 * 2 * 3,
+        "4 designs × 2 methods × 3 contrasts"
+    );
+    for r in power.iter().filter(|r| &r[9] == "stated") {
+        let (n, p, se): (usize, f64, f64) = (
+            r[10].parse().unwrap(),
+            r[11].parse().unwrap(),
+            r[12].parse().unwrap(),
+        );
+        assert!(n >= 1000 && se <= 0.0159, "{r:?}");
+        if (p - 0.8).abs() <= 0.1 {
+            assert!(
+                se <= 0.01,
+                "near the target the Monte Carlo SE is ≤ 1 point: {r:?}"
+            );
+        }
+    }
+    let report = std::fs::read_to_string(out.join("results/report/report.md")).unwrap();
+    assert!(
+        report.contains("## Power for a follow-up study")
+            && report.contains("figures/power_curve.png")
+            && out.join("results/report/figures/power_curve.png").is_file()
+            && out.join("results/power/power.md").is_file(),
+        "the demo report has no power section"
+    );
     let models = rows("models.csv");
     assert_eq!(models.len(), 6);
     assert!(

@@ -363,7 +363,14 @@ fn the_manifest_says_what_was_run_on_what() {
         .collect();
     assert_eq!(
         stages,
-        ["epochs", "transmissions", "fits", "statistics", "report"]
+        [
+            "epochs",
+            "transmissions",
+            "fits",
+            "statistics",
+            "power",
+            "report"
+        ]
     );
     assert_eq!(m["captures"]["listed"], 33);
     assert_eq!(m["captures"]["not_used"]["settling"], 9);
