@@ -195,6 +195,9 @@ pub struct StatisticsSettings {
     pub confidence: f64,
     /// Adjustment of the contrasts' p values within a method and kind.
     pub adjustment: Adjustment,
+    /// Leave joint multiband fits the adequacy test calls misfits out of
+    /// every statistic (by default they are used and flagged in `fits/so2`).
+    pub adequate_only: bool,
 }
 
 impl Default for StatisticsSettings {
@@ -202,6 +205,7 @@ impl Default for StatisticsSettings {
         StatisticsSettings {
             confidence: 0.95,
             adjustment: Adjustment::Holm,
+            adequate_only: false,
         }
     }
 }
@@ -321,7 +325,7 @@ const POWER_KEYS: &[&str] = &[
     "simulations",
     "seed",
 ];
-const STATISTICS_KEYS: &[&str] = &["confidence", "adjust"];
+const STATISTICS_KEYS: &[&str] = &["confidence", "adjust", "adequate_only"];
 const INSTRUMENT_KEYS: &[&str] = &[
     "name",
     "pixel_size_um",
@@ -1386,6 +1390,9 @@ fn read_statistics(r: &mut Reader, node: &Node) -> Option<StatisticsSettings> {
             return None;
         }
         s.confidence = v;
+    }
+    if let Some(n) = m.get("adequate_only") {
+        s.adequate_only = r.boolean(n, "`adequate_only`")?;
     }
     if let Some(n) = m.get("adjust") {
         match r.text(n, "`adjust`")?.as_str() {

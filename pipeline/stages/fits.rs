@@ -24,11 +24,73 @@ use crate::oximetry::odr::{
 };
 use crate::oximetry::pointwise::fit_pointwise;
 use crate::oximetry::segment::{
-    FitSettings, RobustLoss, SegmentFitError, SegmentSpectra, fit_segment,
+    ADEQUACY_FALSE_ALARM, Adequacy, FitSettings, MISFIT_MIN_RESIDUAL, RobustLoss, SegmentFitError,
+    SegmentSpectra, fit_segment,
 };
 use crate::runner::key::{Key, KeyBuilder};
 use crate::runner::{Items, Runner};
 use crate::tables::Table;
+
+/// Share of a method's joint fits that may misfit before the run warns.
+pub(crate) const MISFIT_WARN_SHARE: f64 = 0.1;
+
+/// One warning per multiband method whose fits misfit in more than
+/// [`MISFIT_WARN_SHARE`] of segments: the share, the bands with the largest
+/// mean residual over the misfits, and the first segments.
+pub(crate) fn misfit_warnings(rows: &[FitRow], epochs: &EpochTables, study: &Study) -> Vec<String> {
+    let c = &epochs.captures;
+    let mut out = Vec::new();
+    for m in &study.methods {
+        let fitted: Vec<&FitRow> = rows
+            .iter()
+            .filter(|r| r.method == m.label && r.adequacy.is_some())
+            .collect();
+        let misfits: Vec<&FitRow> = fitted
+            .iter()
+            .copied()
+            .filter(|r| r.adequacy == Some(Adequacy::Misfit))
+            .collect();
+        if fitted.is_empty() || (misfits.len() as f64) <= MISFIT_WARN_SHARE * fitted.len() as f64 {
+            continue;
+        }
+        let mut by_band: BTreeMap<usize, (f64, usize)> = BTreeMap::new();
+        for r in &misfits {
+            for (b, v) in &r.band_residuals {
+                let e = by_band.entry(*b).or_default();
+                e.0 += v;
+                e.1 += 1;
+            }
+        }
+        let mut bands: Vec<(usize, f64)> = by_band
+            .into_iter()
+            .map(|(b, (s, n))| (b, s / n as f64))
+            .collect();
+        bands.sort_by(|a, b| b.1.abs().total_cmp(&a.1.abs()));
+        let names: Vec<String> = bands
+            .iter()
+            .take(3)
+            .map(|(b, v)| format!("{} {v:+.1} %", study.instrument.bands[*b].name))
+            .collect();
+        let mut segs: Vec<String> = misfits
+            .iter()
+            .map(|r| format!("{}/{}", c[r.capture_index].subject, r.segment))
+            .collect();
+        segs.dedup();
+        let shown: Vec<String> = segs.iter().take(5).cloned().collect();
+        out.push(format!(
+            "`{}`: the vessel model does not describe the spectra of {} of {} segment fits ({:.0} %, more than {:.0} %): bands {} off on average (model − measured); e.g. {}{}. SO2 from these fits may be biased by several points: look at the residual columns of `fits/so2` and consider restricting the statistics to adequate fits",
+            m.label,
+            misfits.len(),
+            fitted.len(),
+            100.0 * misfits.len() as f64 / fitted.len() as f64,
+            100.0 * MISFIT_WARN_SHARE,
+            names.join(", "),
+            shown.join(", "),
+            if segs.len() > shown.len() { ", …" } else { "" }
+        ));
+    }
+    out
+}
 
 /// Fewest unflagged positions a segment needs to be fitted.
 pub(crate) const MIN_POSITIONS: usize = 8;
@@ -98,6 +160,13 @@ pub struct FitRow {
     pub diameter_um: f64,
     /// SD of the per-position estimates along the segment (pointwise fits).
     pub along_sd: Option<f64>,
+    /// Joint multiband fits: whether the model describes the spectra.
+    pub adequacy: Option<Adequacy>,
+    /// Joint multiband fits: the adequacy test's largest |t| over bands.
+    pub misfit_t: Option<f64>,
+    /// Joint multiband fits: mean residual per band of the method, in % of
+    /// the transmission, as (instrument band index, residual).
+    pub band_residuals: Vec<(usize, f64)>,
 }
 
 impl FitRow {
@@ -113,7 +182,7 @@ pub struct Fits;
 
 impl Stage for Fits {
     const NAME: &'static str = "fits";
-    const VERSION: u32 = 4;
+    const VERSION: u32 = 5;
     const SUMMARY: &'static str = "SO2 of every segment of every capture by each method";
     const UPSTREAM: &'static [&'static str] = &["epochs", "transmissions"];
     type Output = Vec<FitRow>;
@@ -157,7 +226,15 @@ impl Stage for Fits {
     }
 
     fn write(rows: &Vec<FitRow>, run: &Run, _: &Runner) -> Result<Vec<PathBuf>> {
-        write(rows, run.output::<Epochs>(), run.out())
+        write(rows, run.output::<Epochs>(), run.study, run.out())
+    }
+
+    /// Says when a method's model does not describe the spectra of more
+    /// than [`MISFIT_WARN_SHARE`] of its fits, naming the bands and segments.
+    fn report(run: &Run, runner: &Runner) {
+        for line in misfit_warnings(run.output::<Fits>(), run.output::<Epochs>(), run.study) {
+            runner.warn(line);
+        }
     }
 
     fn describe(run: &Run) -> Option<String> {
@@ -295,6 +372,9 @@ fn fit_capture(
                 positions: pos.len() as i64,
                 diameter_um: diameter,
                 along_sd: None,
+                adequacy: None,
+                misfit_t: None,
+                band_residuals: Vec::new(),
             };
             if pos.len() < MIN_POSITIONS {
                 return row;
@@ -349,6 +429,13 @@ fn fit_capture(
                                 row.so2 = Some(f.so2 * 100.0);
                                 row.so2_se = Some(f.so2_se * 100.0);
                                 row.reduced_chi2 = Some(f.reduced_chi2);
+                                row.adequacy = Some(f.adequacy);
+                                row.misfit_t = Some(f.misfit_t).filter(|t| t.is_finite());
+                                row.band_residuals = sel
+                                    .iter()
+                                    .zip(&f.band_residuals)
+                                    .map(|(b, r)| (*b, r * 100.0))
+                                    .collect();
                                 row.iterations = f.iterations as i64;
                                 row.evaluations = f.evaluations as i64;
                                 Outcome::Joint(f.termination)
@@ -503,7 +590,7 @@ fn calibrate(rows: &mut [FitRow], cal: &Calibration, study: &Study, epochs: &Epo
     }
 }
 
-fn write(rows: &[FitRow], epochs: &EpochTables, out: &Path) -> Result<Vec<PathBuf>> {
+fn write(rows: &[FitRow], epochs: &EpochTables, study: &Study, out: &Path) -> Result<Vec<PathBuf>> {
     let c = &epochs.captures;
     let mut t = Table::new();
     t.text("subject", rows.iter().map(|r| &c[r.capture_index].subject))
@@ -526,6 +613,12 @@ fn write(rows: &[FitRow], epochs: &EpochTables, out: &Path) -> Result<Vec<PathBu
         .opt_real("odr", rows.iter().map(|r| r.odr))
         .opt_real("odr_uncorrected", rows.iter().map(|r| r.odr_uncorrected))
         .opt_real("reduced_chi2", rows.iter().map(|r| r.reduced_chi2))
+        .opt_text(
+            "adequacy",
+            rows.iter()
+                .map(|r| r.adequacy.map(|a| a.as_str().to_string())),
+        )
+        .opt_real("misfit_t", rows.iter().map(|r| r.misfit_t))
         .int("iterations", rows.iter().map(|r| r.iterations))
         .int("evaluations", rows.iter().map(|r| r.evaluations))
         .text(
@@ -535,6 +628,17 @@ fn write(rows: &[FitRow], epochs: &EpochTables, out: &Path) -> Result<Vec<PathBu
         .int("positions", rows.iter().map(|r| r.positions))
         .real("diameter_um", rows.iter().map(|r| r.diameter_um))
         .opt_real("spo2", rows.iter().map(|r| c[r.capture_index].spo2));
+    for (b, band) in study.instrument.bands.iter().enumerate() {
+        t.opt_real(
+            &format!("residual_{}", band.name),
+            rows.iter().map(|r| {
+                r.band_residuals
+                    .iter()
+                    .find(|(i, _)| *i == b)
+                    .map(|(_, v)| *v)
+            }),
+        );
+    }
     Ok(t.write(&out.join("fits"), "so2")?)
 }
 
@@ -574,9 +678,12 @@ fn describe(study: &Study) -> String {
                     format!("`{}`: the same model fitted independently at each position, then averaged along the segment ({}; bands {}).", m.label, l, names.join(", "))
                 } else {
                     format!(
-                        "`{}`: a band-integrated vessel transmission model (hemoglobin extinction from Prahl's compilation integrated over each band's response on a 1 nm grid; single- and double-pass Beer–Lambert paths, backscatter, and an additive veil T_obs = (1 − k)·T + k) fitted jointly to all positions of a segment, with SO2, hemoglobin concentration and k shared along the segment and path fractions per position, by bounded Levenberg–Marquardt ({l}; bands {}); standard errors from the Jacobian at the optimum scaled by the residual variance.",
+                        "`{}`: a band-integrated vessel transmission model (hemoglobin extinction from Prahl's compilation integrated over each band's response on a 1 nm grid; single- and double-pass Beer–Lambert paths, backscatter, and an additive veil T_obs = (1 − k)·T + k) fitted jointly to all positions of a segment, with SO2, hemoglobin concentration and k shared along the segment and path fractions per position, by bounded Levenberg–Marquardt ({l}; bands {}); standard errors from the Jacobian at the optimum scaled by the residual variance. Each fit's adequacy was tested on its residuals: per band, the mean residual of {} contiguous blocks of positions was compared with its standard error between blocks (t test, Bonferroni over bands for a {:.0} % false-alarm rate), and a band whose mean residual exceeded {:.1} % of the transmission at that level marked the fit as a misfit.",
                         m.label,
-                        names.join(", ")
+                        names.join(", "),
+                        crate::oximetry::segment::ADEQUACY_BLOCKS,
+                        ADEQUACY_FALSE_ALARM * 100.0,
+                        MISFIT_MIN_RESIDUAL * 100.0
                     )
                 }
             }

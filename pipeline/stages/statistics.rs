@@ -13,6 +13,7 @@
 //! `exclusions.min_diameter_um` are left out of all of it and counted.
 
 use crate::config::segments::VesselKind;
+use crate::oximetry::segment::Adequacy;
 use crate::timeline::assign::CaptureStatus;
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
@@ -298,9 +299,18 @@ impl<'a> Context<'a> {
         self.captures[r.capture_index].status == CaptureStatus::Steady
     }
 
-    /// The values the statistics use: steady captures, a finite SO2, wide enough.
+    /// A misfit left out by `statistics.adequate_only`.
+    fn misfit_left_out(&self, r: &FitRow) -> bool {
+        self.study.statistics.adequate_only && r.adequacy == Some(Adequacy::Misfit)
+    }
+
+    /// The values the statistics use: steady captures, a finite SO2, wide
+    /// enough, and adequate when only adequate fits are asked for.
     fn usable(&self, r: &FitRow) -> bool {
-        self.steady(r) && r.so2.is_some_and(f64::is_finite) && !self.narrow(r)
+        self.steady(r)
+            && r.so2.is_some_and(f64::is_finite)
+            && !self.narrow(r)
+            && !self.misfit_left_out(r)
     }
 
     /// (subject, epoch) of a fit's capture.
@@ -915,6 +925,9 @@ fn describe(study: &Study, stats: Option<&StatisticsTables>) -> String {
             .filter(|c| c.result.basis != epoch_model::Basis::MixedModel)
             .count();
         text.push_str(&format!(" In this study {} of {} contrasts were tested in the mixed model and {fallbacks} at the subject level.", st.contrasts.len() - fallbacks, st.contrasts.len()));
+    }
+    if study.statistics.adequate_only {
+        text.push_str(" Joint multiband fits whose residuals showed a misfit of the vessel model were left out of all statistics.");
     }
     if let Some(d) = study.exclusions.min_diameter_um {
         text.push_str(&format!(" Segment values with a measured diameter below {d} µm were left out of all statistics and counted per subject and epoch."));

@@ -439,3 +439,97 @@ fn single_band_errors_beside_the_rule_of_thumb() {
         "k = 0: eight bands, veil shared {per:.2?} (all {all:.2}); five bands, veil per position {per5:.2?}"
     );
 }
+
+/// Spectra of one segment whose light departs from the model by a veil
+/// that grows linearly with wavelength, `k_b = k0 + dk·(λ_b − 506)/110`
+/// (`dk = 0` is the model itself), with the noise of the image stage: 1 %
+/// independent per position and band plus 1 % that wanders smoothly along
+/// the segment (AR(1), ρ = 0.9: neighbouring profiles share pixels).
+fn spectra_with_veil_slope(
+    model: &VesselModel,
+    so2: f64,
+    k0: f64,
+    dk: f64,
+    n: usize,
+    rng: &mut impl rand::Rng,
+) -> SegmentSpectra {
+    let centres = [506.0, 522.0, 548.0, 560.0, 570.0, 586.0, 600.0, 616.0];
+    let white = Normal::new(0.0, 0.01).unwrap();
+    let innovation = Normal::new(0.0, 0.01 * (1.0f64 - 0.81).sqrt()).unwrap();
+    let mut drift: Vec<f64> = (0..centres.len()).map(|_| white.sample(rng)).collect();
+    let (mut d, mut t) = (Vec::new(), Vec::new());
+    for p in 0..n {
+        let f = p as f64 / n as f64;
+        let diam = 130.0 - 30.0 * f;
+        let f2 = 0.3 + 0.1 * (7.0 * f).sin();
+        let mut out = vec![0.0; model.n_bands()];
+        let shared = Shared {
+            so2,
+            hb_g_per_l: 150.0,
+            veil: 0.0,
+        };
+        model.transmission(&shared, f2, diam, &mut out, None);
+        for (b, v) in out.iter_mut().enumerate() {
+            let k = k0 + dk * (centres[b] - 506.0) / 110.0;
+            drift[b] = 0.9 * drift[b] + innovation.sample(rng);
+            *v = ((1.0 - k) * *v + k) * (1.0 + white.sample(rng) + drift[b]);
+        }
+        d.push(diam);
+        t.push(out);
+    }
+    SegmentSpectra {
+        diameters_um: d,
+        transmissions: t,
+    }
+}
+
+/// The share of fits the adequacy test calls misfits, over SO2 60 and 95 %
+/// and the given veils, 30 segments of 60 positions each.
+fn misfit_share(k0s: &[f64], dk: f64, seed: u64) -> (f64, f64) {
+    use satstep::oximetry::segment::Adequacy;
+    let model = VesselModel::new(&eight_bands(), |_| 1.0, BLOOD_BACKSCATTER);
+    let cases: Vec<(f64, f64, u64)> = k0s
+        .iter()
+        .flat_map(|k| [0.6, 0.95].map(|s| (s, *k)))
+        .flat_map(|(s, k)| (0..30).map(move |i| (s, k, i)))
+        .collect();
+    let out: Vec<(bool, f64)> = cases
+        .par_iter()
+        .map(|(s, k, i)| {
+            let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(
+                seed * 1000 + i + (k * 100.0) as u64 + (s * 7.0) as u64 * 100_000,
+            );
+            let data = spectra_with_veil_slope(&model, *s, *k, dk, 60, &mut rng);
+            let f = fit_segment(&model, &data, &FitSettings::default()).unwrap();
+            (f.adequacy == Adequacy::Misfit, (f.so2 - s).abs() * 100.0)
+        })
+        .collect();
+    let share = out.iter().filter(|o| o.0).count() as f64 / out.len() as f64;
+    let mean_error = out.iter().map(|o| o.1).sum::<f64>() / out.len() as f64;
+    (share, mean_error)
+}
+
+#[test]
+fn the_adequacy_test_flags_a_veil_that_changes_with_wavelength() {
+    // The model's own physics with image-like correlated noise: few misfits.
+    let (base, base_error) = misfit_share(&[0.0, 0.2, 0.4], 0.0, 1);
+    eprintln!(
+        "model physics: {:.1} % misfits, mean |SO2 error| {base_error:.2} points",
+        base * 100.0
+    );
+    assert!(base < 0.05, "{base}");
+    // A veil 0.03–0.1 higher at 616 than at 506 nm: SO2 moves by points, and
+    // the fits say so.
+    for dk in [0.03, 0.06, 0.1] {
+        let (share, error) = misfit_share(&[0.1, 0.3], dk, 2);
+        eprintln!(
+            "veil slope {dk}: {:.1} % misfits, mean |SO2 error| {error:.2} points",
+            share * 100.0
+        );
+        assert!(
+            share >= 0.9,
+            "veil slope {dk}: only {:.0} % flagged",
+            share * 100.0
+        );
+    }
+}

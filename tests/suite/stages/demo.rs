@@ -638,6 +638,27 @@ fn statistics_settings_do_what_they_say() {
         "the methods text says what ran"
     );
 
+    // Only adequate fits: the multiband values the statistics lose are
+    // exactly the usable misfits of `fits/so2`.
+    let (_, before) = read("statistics/summaries.csv");
+    let misfits = fits
+        .iter()
+        .filter(|r| {
+            &r[c("method")] == "multiband"
+                && &r[c("adequacy")] == "misfit"
+                && &r[c("status")] == "steady"
+                && !r[c("so2")].is_empty()
+                && r[c("diameter_um")].parse::<f64>().unwrap() >= median
+        })
+        .count() as i64;
+    assert!(misfits > 0, "the scenario has misfits to leave out");
+    edit("adjust: none}", "adjust: none, adequate_only: true}");
+    run();
+    let (_, after) = read("statistics/summaries.csv");
+    assert_eq!(segments(&before) - segments(&after), misfits);
+    let methods = std::fs::read_to_string(s.join("results/report/report.md")).unwrap();
+    assert!(methods.contains("misfit of the vessel model were left out of all statistics"));
+
     // A minimum above every vessel empties the statistics: a warning, not silence.
     edit(
         &format!("min_diameter_um: {median}"),
