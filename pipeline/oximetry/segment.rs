@@ -428,6 +428,31 @@ pub enum SegmentFitError {
     NonFinite,
 }
 
+/// Unweighted residuals `ln T_model − ln T_measured` at `x`, `[position][band]`
+/// (zeros where the model is not finite).
+fn residuals(
+    model: &VesselModel,
+    data: &SegmentSpectra,
+    settings: &FitSettings,
+    x: &[f64],
+) -> Vec<Vec<f64>> {
+    let nb = model.n_bands();
+    let unweighted = Joint {
+        model,
+        data,
+        sqrt_w: vec![vec![1.0; nb]; data.diameters_um.len()],
+        settings,
+    };
+    (0..data.diameters_um.len())
+        .map(|p| {
+            unweighted
+                .block(x, p, false)
+                .map(|b| b.r)
+                .unwrap_or_else(|| vec![0.0; nb])
+        })
+        .collect()
+}
+
 /// Fits one segment. Needs at least as many bands as 3 shared unknowns
 /// spread over the positions plus one per position (in practice ≥ 4 bands).
 pub fn fit_segment(
@@ -479,20 +504,7 @@ pub fn fit_segment(
     let (mut iterations, mut evaluations) = (rep.iterations, rep.evaluations);
     if let RobustLoss::Huber { scale } = settings.loss {
         for _ in 0..10 {
-            let unweighted = Joint {
-                model,
-                data,
-                sqrt_w: vec![vec![1.0; nb]; np],
-                settings,
-            };
-            let res: Vec<Vec<f64>> = (0..np)
-                .map(|p| {
-                    unweighted
-                        .block(&rep.x, p, false)
-                        .map(|b| b.r)
-                        .unwrap_or_else(|| vec![0.0; nb])
-                })
-                .collect();
+            let res = residuals(model, data, settings, &rep.x);
             let w = huber_weights(&res, scale, settings.noise * 0.1);
             let sw: Vec<Vec<f64>> = w
                 .iter()
@@ -537,21 +549,7 @@ pub fn fit_segment(
         .filter(|row| row.iter().any(|w| w * w < 0.5))
         .count();
     let termination: Termination = rep.termination;
-    let unweighted = Joint {
-        model,
-        data,
-        sqrt_w: vec![vec![1.0; nb]; np],
-        settings,
-    };
-    let residuals: Vec<Vec<f64>> = (0..np)
-        .map(|p| {
-            unweighted
-                .block(&rep.x, p, false)
-                .map(|b| b.r)
-                .unwrap_or_else(|| vec![0.0; nb])
-        })
-        .collect();
-    let (band_residuals, misfit_t, adequacy) = adequacy(&residuals);
+    let (band_residuals, misfit_t, adequacy) = adequacy(&residuals(model, data, settings, &rep.x));
     Ok(SegmentFit {
         band_residuals,
         misfit_t,

@@ -102,6 +102,57 @@ pub struct ReportData {
     pub agreement: Vec<AgreementSeries>,
     pub along: Option<AlongSegment>,
     pub sensitivity: Option<SensitivityCurves>,
+    /// Per joint multiband method: the fits' mean residual per band.
+    pub residuals: Vec<ResidualPanel>,
+}
+
+/// One method's band residuals over its fits, for the adequacy figure.
+pub struct ResidualPanel {
+    pub method: String,
+    /// (band name, each fit's mean residual in %, misfits' residuals in %).
+    pub bands: Vec<(String, Vec<f64>, Vec<f64>)>,
+    pub misfits: usize,
+    pub fits: usize,
+}
+
+/// The band residuals of every joint multiband method's fits.
+fn residual_panels(study: &Study, fits: &[FitRow]) -> Vec<ResidualPanel> {
+    use crate::oximetry::segment::Adequacy;
+    let mut out = Vec::new();
+    for m in &study.methods {
+        let judged: Vec<&FitRow> = fits
+            .iter()
+            .filter(|r| r.method == m.label && r.adequacy.is_some())
+            .collect();
+        if judged.is_empty() {
+            continue;
+        }
+        let mut bands: Vec<(String, Vec<f64>, Vec<f64>)> = Vec::new();
+        for (b, band) in study.instrument.bands.iter().enumerate() {
+            let of = |misfit: bool| -> Vec<f64> {
+                judged
+                    .iter()
+                    .filter(|r| (r.adequacy == Some(Adequacy::Misfit)) == misfit)
+                    .filter_map(|r| r.band_residuals.iter().find(|(i, _)| *i == b))
+                    .map(|(_, v)| *v)
+                    .collect()
+            };
+            let (ok, bad) = (of(false), of(true));
+            if !ok.is_empty() || !bad.is_empty() {
+                bands.push((band.name.clone(), ok, bad));
+            }
+        }
+        out.push(ResidualPanel {
+            method: m.label.clone(),
+            misfits: judged
+                .iter()
+                .filter(|r| r.adequacy == Some(Adequacy::Misfit))
+                .count(),
+            fits: judged.len(),
+            bands,
+        });
+    }
+    out
 }
 
 pub(crate) fn primary_method(study: &Study) -> String {
@@ -139,6 +190,7 @@ pub(crate) fn prepare(
         .filter(|e| *e != baseline)
         .collect();
     ReportData {
+        residuals: residual_panels(study, fits),
         courses: courses(study, epochs, fits, &primary),
         changes: changes(stats, &primary, &baseline, &epochs_after),
         estimates: stats

@@ -75,10 +75,102 @@ pub fn all(dir: &Path, d: &ReportData) -> Result<Vec<Figure>> {
     if let Some(a) = &d.along {
         out.push(render!(dir, "along_segment", format!("SO2 along segment {} ({}, subject {}, capture {}): per-position estimates of the two-band ODR and of the multiband model fitted position by position, and the joint segment fit (line, ± 1 SE band)", a.segment, a.kind, a.subject, a.capture), (900, 420), draw_along, a));
     }
+    if !d.residuals.is_empty() {
+        let n = d.residuals.len() as u32;
+        out.push(render!(dir, "band_residuals", "How well the vessel model describes the spectra: each joint multiband fit's mean residual per band (model − measured, % of the transmission; grey: adequate fits, orange: misfits), the mean over all fits (black bar) and the misfit threshold of ±1.5 % (dashed)".to_string(), (560 * n + 40, 420), draw_residuals, &d.residuals));
+    }
     if let Some(s) = &d.sensitivity {
         out.push(render!(dir, "sensitivity", format!("SO2 error of `{}` for a 1 % transmission error in each band alone and in all bands independently, against the veil k (SO2 {:.0} %, {:.0} µm, linearised); left, the fits' own weights refitted at each veil; right, the veil-free band combination held, which shows the veil's effect alone", s.method, s.so2 * 100.0, s.diameter_um), (1200, 540), draw_sensitivity, s));
     }
     Ok(out)
+}
+
+fn draw_residuals<DB: DrawingBackend>(
+    root: &DrawingArea<DB, Shift>,
+    panels: &[ResidualPanel],
+) -> DrawResult
+where
+    DB::ErrorType: 'static,
+{
+    let (top, body) = root.split_vertically(36);
+    top.draw_text(
+        "Band residuals of the joint multiband fits",
+        &title(17),
+        (12, 8),
+    )?;
+    let limit = crate::oximetry::segment::MISFIT_MIN_RESIDUAL * 100.0;
+    let areas = body.split_evenly((1, panels.len().max(1)));
+    for (p, area) in panels.iter().zip(areas) {
+        let all = p.bands.iter().flat_map(|b| b.1.iter().chain(&b.2));
+        let span = all.fold(2.0 * limit, |m, v| m.max(v.abs())).min(25.0) * 1.1;
+        let n = p.bands.len();
+        let mut ch = ChartBuilder::on(&area)
+            .caption(
+                format!(
+                    "{}: {} of {} fits misfit ({:.1} %)",
+                    p.method,
+                    p.misfits,
+                    p.fits,
+                    100.0 * p.misfits as f64 / p.fits.max(1) as f64
+                ),
+                label(14),
+            )
+            .margin(10)
+            .x_label_area_size(36)
+            .y_label_area_size(52)
+            .build_cartesian_2d(-0.5..(n as f64 - 0.5), -span..span)?;
+        let names: Vec<String> = p.bands.iter().map(|b| b.0.clone()).collect();
+        ch.configure_mesh()
+            .light_line_style(TRANSPARENT)
+            .bold_line_style(GRID)
+            .x_labels(n)
+            .x_label_formatter(&|v| {
+                let i = v.round();
+                if (v - i).abs() < 1e-6 && i >= 0.0 && (i as usize) < names.len() {
+                    names[i as usize].clone()
+                } else {
+                    String::new()
+                }
+            })
+            .y_desc("mean residual (% of T)")
+            .label_style(label(11))
+            .axis_desc_style(label(12))
+            .draw()?;
+        for s in [-limit, limit] {
+            ch.draw_series(DashedLineSeries::new(
+                [(-0.5, s), (n as f64 - 0.5, s)],
+                6,
+                4,
+                INK.stroke_width(1),
+            ))?;
+        }
+        for (i, (_, ok, bad)) in p.bands.iter().enumerate() {
+            // Fits spread across the band's slot by their order, so that
+            // thousands of points stay visible as a cloud.
+            let spread =
+                |k: usize, len: usize| i as f64 - 0.3 + 0.6 * (k as f64 + 0.5) / len.max(1) as f64;
+            let clip = |v: f64| v.clamp(-span, span);
+            ch.draw_series(ok.iter().enumerate().map(|(k, v)| {
+                Circle::new(
+                    (spread(k, ok.len()), clip(*v)),
+                    1,
+                    RGBColor(150, 150, 150).filled(),
+                )
+            }))?;
+            ch.draw_series(bad.iter().enumerate().map(|(k, v)| {
+                Circle::new((spread(k, bad.len()), clip(*v)), 2, PALETTE[1].filled())
+            }))?;
+            let all: Vec<f64> = ok.iter().chain(bad).copied().collect();
+            if !all.is_empty() {
+                let m = all.iter().sum::<f64>() / all.len() as f64;
+                ch.draw_series(std::iter::once(PathElement::new(
+                    vec![(i as f64 - 0.35, clip(m)), (i as f64 + 0.35, clip(m))],
+                    BLACK.stroke_width(3),
+                )))?;
+            }
+        }
+    }
+    Ok(())
 }
 
 /// The sensitivity figure alone, for `satstep sensitivity`.

@@ -542,7 +542,7 @@ pub fn method_comparison(stats: &StatisticsTables) -> ReportTable {
 pub fn data_quality(study: &Study, images: &TransmissionTables, fits: &[FitRow]) -> ReportTable {
     let mut t = ReportTable::new(
         "data_quality",
-        "Data quality: profile positions by flag, and segment SO2 values outside 0–100 % (kept in the analysis)",
+        "Data quality: profile positions by flag, segment SO2 values outside 0–100 % (kept in the analysis), and joint multiband fits whose residuals show a misfit of the vessel model",
         &[("item", false), ("count", true), ("of", true)],
     );
     for (k, n) in &images.flag_counts {
@@ -574,6 +574,29 @@ pub fn data_quality(study: &Study, images: &TransmissionTables, fits: &[FitRow])
             .iter()
             .filter(|r| r.method == m.label && r.so2.is_none())
             .count();
+        let judged: Vec<&FitRow> = fits
+            .iter()
+            .filter(|r| r.method == m.label && r.adequacy.is_some())
+            .collect();
+        if !judged.is_empty() {
+            let misfits = judged
+                .iter()
+                .filter(|r| r.adequacy == Some(crate::oximetry::segment::Adequacy::Misfit))
+                .count();
+            t.rows.push(vec![
+                format!(
+                    "{}: fits the vessel model does not describe (misfit{})",
+                    m.label,
+                    if study.statistics.adequate_only {
+                        "; left out of the statistics"
+                    } else {
+                        "; used and flagged"
+                    }
+                ),
+                misfits.to_string(),
+                judged.len().to_string(),
+            ]);
+        }
         t.rows.push(vec![
             format!("{}: segments without an SO2", m.label),
             unfitted.to_string(),

@@ -82,6 +82,7 @@ const FIGURES: &[&str] = &[
     "retinal_vs_reference",
     "bland_altman",
     "along_segment",
+    "band_residuals",
     "sensitivity",
 ];
 
