@@ -16,9 +16,9 @@ use crate::config::protocol::{Protocol, load_protocol};
 use crate::config::read::parse_counts;
 use crate::console::Printer;
 use crate::simulate::power::{
-    Plan, Question, Studies, Variances, grid, needed, run, variances_from,
+    Plan, Question, Studies, Variances, grid, needed, run, simulated, variances_from,
 };
-use crate::stages::power::{Source, write_outputs};
+use crate::stages::power::{Source, studies_text, write_outputs};
 use crate::stats::epoch_model::Adjustment;
 use crate::study::{load_study, resolve_study_path};
 
@@ -235,13 +235,14 @@ pub fn power(a: &PowerArgs, printer: &Printer) -> Result<Exit> {
     let counts = |name: &str, text: &str, lo: usize, hi: usize| {
         parse_counts(text, lo, hi).map_err(|e| format!("`--{name}`: {e}"))
     };
+    let [subj, capt, segm, eye, sess] = crate::config::study::PLAN_BOUNDS;
     let grids = (|| -> Result<_, String> {
         Ok((
-            counts("subjects", &a.subjects, 2, 500)?,
-            counts("captures", &a.captures, 1, 50)?,
-            counts("segments", &a.segments, 1, 30)?,
-            counts("eyes", &a.eyes, 1, 2)?,
-            counts("sessions", &a.sessions, 1, 2)?,
+            counts("subjects", &a.subjects, subj.0, subj.1)?,
+            counts("captures", &a.captures, capt.0, capt.1)?,
+            counts("segments", &a.segments, segm.0, segm.1)?,
+            counts("eyes", &a.eyes, eye.0, eye.1)?,
+            counts("sessions", &a.sessions, sess.0, sess.1)?,
         ))
     })();
     let (subjects, captures, segments, eyes, sessions) = match grids {
@@ -280,7 +281,7 @@ pub fn power(a: &PowerArgs, printer: &Printer) -> Result<Exit> {
                     path.display()
                 ));
             };
-            let (v, m) = variances_from(&rows, &epochs);
+            let (v, m) = variances_from(&rows, &epochs, &a.methods, &a.kinds);
             (v, m, Source::Table(path.clone()))
         }
         Some(path) if a.variances.is_some() || a.sd.is_empty() => {
@@ -311,38 +312,21 @@ pub fn power(a: &PowerArgs, printer: &Printer) -> Result<Exit> {
     if let Err(e) = apply_sd(&a.sd, &epochs, &mut variances) {
         return problem(e);
     }
-    // A statement fills a component the table lacked.
-    missing.retain(|m| {
-        let g = m.split(' ').next().unwrap_or("");
-        let stated = |k: &str| {
-            a.sd.iter()
-                .any(|s| s.split('=').next().map(str::trim) == Some(k))
-        };
-        !(match g {
-            "subject:session" => stated("session"),
-            "subject:eye" => stated("eye"),
-            "subject:eye:segment" => stated("segment"),
-            "Residual" => stated("residual"),
-            "subject" => stated("subject"),
-            g if g.starts_with("subject:epoch=") => {
-                stated("response") || stated(&format!("response:{}", &g["subject:epoch=".len()..]))
-            }
-            _ => false,
-        })
-    });
-    let missing = needed(missing, &designs);
-    for m in &missing {
-        printer.warn(format!("no variance component {m} in the table: taken as 0; state it with `--sd` if the planned study has it"));
-    }
-    variances.retain(|(m, k, _)| {
-        (a.methods.is_empty() || a.methods.contains(m))
-            && (a.kinds.is_empty() || a.kinds.contains(k))
-    });
     if variances.is_empty() {
         return problem(
             "no method and kind left: check `--method` and `--kind` against the variance table"
                 .into(),
         );
+    }
+    // A statement fills a component the table lacked.
+    let stated = |g: &String| {
+        a.sd.iter()
+            .any(|s| s.split('=').next().map(str::trim) == Some(g))
+    };
+    missing.retain(|m| !m.stated_by().iter().any(stated));
+    let missing = needed(missing, &designs);
+    for m in &missing {
+        printer.warn(format!("no variance component {m} in the table: taken as 0; state it with `--sd` if the planned study has it"));
     }
     let plan = Plan {
         question,
@@ -360,19 +344,17 @@ pub fn power(a: &PowerArgs, printer: &Printer) -> Result<Exit> {
         "simulating {} designs × {} methods and kinds ({})",
         plan.designs.len(),
         plan.variances.len(),
-        match plan.studies {
-            Studies::Fixed(n) => format!("{n} studies each"),
-            Studies::Auto => "1 000 studies each, more near the target power".into(),
-        }
+        studies_text(plan.studies)
     ));
-    let bar = crate::runner::progress::Progress::new(printer, cells * 1000, "studies");
+    let bar = crate::runner::progress::Progress::new(
+        printer,
+        cells * plan.studies.first_pass(),
+        "studies",
+    );
     let t0 = std::time::Instant::now();
     let rows = run(&plan, &|n| bar.inc_by(n));
     bar.finish();
-    let simulated: usize = rows
-        .chunks(plan.question.contrasts.len().max(1))
-        .map(|c| c[0].counts.studies)
-        .sum();
+    let simulated = simulated(&rows, plan.question.contrasts.len());
     let files = write_outputs(&out, &plan, &rows, &source, &missing, &protocol.name)?;
     printer.info(format!(
         "{simulated} studies simulated and analysed in {:.1} s; wrote {} files to `{}`",

@@ -288,7 +288,7 @@ impl<'a> Reader<'a> {
 
 /// A list of counts: `6,8,10`, a range `6..30` (every 2), or `6..30/4`.
 pub fn parse_counts(text: &str, lo: usize, hi: usize) -> Result<Vec<usize>, String> {
-    let mut out = Vec::new();
+    let mut out: Vec<usize> = Vec::new();
     for part in text.split(',').map(str::trim).filter(|p| !p.is_empty()) {
         let bad = || format!("`{part}`: write a count, a list `6,8,10` or a range `6..30/4`");
         if let Some((a, rest)) = part.split_once("..") {
@@ -313,11 +313,24 @@ pub fn parse_counts(text: &str, lo: usize, hi: usize) -> Result<Vec<usize>, Stri
             out.push(part.parse().map_err(|_| bad())?);
         }
     }
-    if out.is_empty() {
+    bounded_counts(out, lo, hi)
+}
+
+/// Counts checked against `lo..=hi`, sorted, each once.
+pub fn bounded_counts<T: Copy + TryInto<usize> + std::fmt::Display>(
+    values: Vec<T>,
+    lo: usize,
+    hi: usize,
+) -> Result<Vec<usize>, String> {
+    if values.is_empty() {
         return Err("no value given".into());
     }
-    if let Some(v) = out.iter().find(|v| !(lo..=hi).contains(*v)) {
-        return Err(format!("{v} is outside {lo}–{hi}"));
+    let mut out = Vec::with_capacity(values.len());
+    for v in values {
+        match v.try_into() {
+            Ok(n) if (lo..=hi).contains(&n) => out.push(n),
+            _ => return Err(format!("{v} is outside {lo}–{hi}")),
+        }
     }
     out.sort_unstable();
     out.dedup();

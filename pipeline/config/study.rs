@@ -188,6 +188,11 @@ pub struct PowerSettings {
     pub seed: u64,
 }
 
+/// Bounds of the design choices a plan may try: subjects, captures per
+/// epoch, segments per eye, eyes, sessions (the `power:` section and
+/// `satstep power` alike).
+pub const PLAN_BOUNDS: [(usize, usize); 5] = [(2, 500), (1, 50), (1, 30), (1, 2), (1, 2)];
+
 /// Settings of the statistics stage.
 #[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
 pub struct StatisticsSettings {
@@ -1415,32 +1420,28 @@ fn read_statistics(r: &mut Reader, node: &Node) -> Option<StatisticsSettings> {
 /// A list of counts: `[6, 8, 10]`, one count, or a text `6..20/2` or
 /// `6,8,10` ([`super::read::parse_counts`]).
 fn read_counts(r: &mut Reader, n: &Node, what: &str, lo: usize, hi: usize) -> Option<Vec<usize>> {
-    let mut out = Vec::new();
-    match &n.value {
+    let counts = match &n.value {
         Value::Seq(items) => {
+            let mut v = Vec::new();
             for i in items {
-                out.push(r.integer(i, what)?);
+                v.push(r.integer(i, what)?);
             }
+            super::read::bounded_counts(v, lo, hi)
         }
-        Value::Scalar { text, .. } if text.contains("..") || text.contains(',') => {
-            match super::read::parse_counts(text, lo, hi) {
-                Ok(v) => return Some(v),
-                Err(e) => {
-                    r.error(n.mark, format!("{what}: {e}"));
-                    return None;
-                }
-            }
+        Value::Scalar { text, .. } => super::read::parse_counts(text, lo, hi),
+        _ => {
+            r.error(
+                n.mark,
+                format!("{what}: write a count, a list `[6, 8, 10]` or a range `\"6..20/2\"`"),
+            );
+            return None;
         }
-        _ => out.push(r.integer(n, what)?),
-    }
-    if let Some(v) = out.iter().find(|v| !(lo as i64..=hi as i64).contains(*v)) {
-        r.error(n.mark, format!("{what}: {v} is outside {lo}–{hi}"));
-        return None;
-    }
-    let mut out: Vec<usize> = out.into_iter().map(|v| v as usize).collect();
-    out.sort_unstable();
-    out.dedup();
-    Some(out)
+    };
+    counts
+        .map_err(|e| {
+            r.error(n.mark, format!("{what}: {e}"));
+        })
+        .ok()
 }
 
 fn read_power(
@@ -1479,11 +1480,12 @@ fn read_power(
             None => Some(default.to_vec()),
             Some(n) => read_counts(r, n, &format!("`{key}`"), lo, hi),
         };
-    let subjects = counts(r, "subjects", &[6, 8, 10, 12, 16, 20, 24], 2, 500);
-    let captures = counts(r, "captures_per_epoch", &[5], 1, 50);
-    let segments = counts(r, "segments_per_eye", &[4], 1, 30);
-    let eyes = counts(r, "eyes", &[1], 1, 2);
-    let sessions = counts(r, "sessions", &[1], 1, 2);
+    let [subj, capt, segm, eye, sess] = PLAN_BOUNDS;
+    let subjects = counts(r, "subjects", &[6, 8, 10, 12, 16, 20, 24], subj.0, subj.1);
+    let captures = counts(r, "captures_per_epoch", &[5], capt.0, capt.1);
+    let segments = counts(r, "segments_per_eye", &[4], segm.0, segm.1);
+    let eyes = counts(r, "eyes", &[1], eye.0, eye.1);
+    let sessions = counts(r, "sessions", &[1], sess.0, sess.1);
     let names = |r: &mut Reader, key: &str, allowed: &[&str]| -> Option<Vec<String>> {
         let Some(n) = m.get(key) else {
             return Some(Vec::new());

@@ -186,12 +186,13 @@ pub fn grid(
 /// Of the components a variance table lacked ([`variances_from`]), those
 /// the designs need: an eye or session variance only matters when some
 /// design has two.
-pub fn needed(mut missing: Vec<String>, designs: &[PlanDesign]) -> Vec<String> {
+pub fn needed(mut missing: Vec<Missing>, designs: &[PlanDesign]) -> Vec<Missing> {
     let two_eyes = designs.iter().any(|d| d.eyes > 1);
     let two_sessions = designs.iter().any(|d| d.sessions > 1);
-    missing.retain(|m| {
-        (two_eyes || !m.starts_with("subject:eye "))
-            && (two_sessions || !m.starts_with("subject:session "))
+    missing.retain(|m| match m.group.as_str() {
+        "subject:eye" => two_eyes,
+        "subject:session" => two_sessions,
+        _ => true,
     });
     missing
 }
@@ -386,6 +387,16 @@ pub enum Studies {
     Auto,
 }
 
+impl Studies {
+    /// Studies per design before any top-up.
+    pub fn first_pass(self) -> usize {
+        match self {
+            Studies::Fixed(n) => n,
+            Studies::Auto => AUTO_FIRST,
+        }
+    }
+}
+
 /// Studies of the first pass under [`Studies::Auto`].
 pub const AUTO_FIRST: usize = 1000;
 /// Most studies per design under [`Studies::Auto`].
@@ -430,10 +441,7 @@ pub fn run(plan: &Plan, progress: &(dyn Fn(usize) + Sync)) -> Vec<PowerRow> {
     for (method, kind, v) in &plan.variances {
         let label = format!("{method}/{kind}");
         for design in &plan.designs {
-            let first = match plan.studies {
-                Studies::Fixed(n) => n,
-                Studies::Auto => AUTO_FIRST,
-            };
+            let first = plan.studies.first_pass();
             let mut counts = simulate(design, v, q, plan.seed, &label, 0..first);
             progress(first);
             if plan.studies == Studies::Auto {
@@ -481,15 +489,17 @@ pub fn run(plan: &Plan, progress: &(dyn Fn(usize) + Sync)) -> Vec<PowerRow> {
 
 /// Per method, kind and contrast with a stated effect: the smallest design
 /// whose power reaches the target (fewest subjects, then fewest captures in
-/// all), or `None` with the best design tried when none does.
+/// all) with `true`, or the best design tried with `false` when none does.
 pub fn smallest(rows: &[PowerRow], target: f64, epochs: usize) -> Vec<(&PowerRow, bool)> {
     let mut out: Vec<(&PowerRow, bool)> = Vec::new();
-    let mut keys: Vec<(&str, &str, &str)> = rows
-        .iter()
-        .filter(|r| r.stated)
-        .map(|r| (r.method.as_str(), r.kind.as_str(), r.contrast.as_str()))
-        .collect();
-    keys.dedup();
+    // Rows run through the contrasts within each design, so a key recurs.
+    let mut keys: Vec<(&str, &str, &str)> = Vec::new();
+    for r in rows.iter().filter(|r| r.stated) {
+        let key = (r.method.as_str(), r.kind.as_str(), r.contrast.as_str());
+        if !keys.contains(&key) {
+            keys.push(key);
+        }
+    }
     for key in keys {
         let group: Vec<&PowerRow> = rows
             .iter()
@@ -515,30 +525,73 @@ pub fn smallest(rows: &[PowerRow], target: f64, epochs: usize) -> Vec<(&PowerRow
     out
 }
 
+/// A variance component a table lacked for one method and kind.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Missing {
+    /// As the statistics stage names it (`subject:eye`, `subject:epoch=air`, …).
+    pub group: String,
+    pub method: String,
+    pub kind: String,
+}
+
+impl Missing {
+    /// The `--sd` groups that state this component.
+    pub fn stated_by(&self) -> Vec<String> {
+        match self.group.as_str() {
+            "subject" => vec!["subject".into()],
+            "subject:session" => vec!["session".into()],
+            "subject:eye" => vec!["eye".into()],
+            "subject:eye:segment" => vec!["segment".into()],
+            "Residual" => vec!["residual".into()],
+            g => match g.strip_prefix("subject:epoch=") {
+                Some(e) => vec!["response".into(), format!("response:{e}")],
+                None => Vec::new(),
+            },
+        }
+    }
+}
+
+impl std::fmt::Display for Missing {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(f, "{} ({}, {})", self.group, self.method, self.kind)
+    }
+}
+
 /// Variances by method and kind from the rows of a statistics stage's
-/// `variance_components` table (method, kind, group, variance), with the
+/// `variance_components` table (method, kind, group, variance), for the
+/// methods and kinds asked for (all when a list is empty), with the
 /// components the table lacks (for instance an eye variance when the pilot
 /// imaged one eye) set to 0 and listed.
 pub fn variances_from(
     rows: &[(String, String, String, f64)],
     epochs: &[String],
-) -> (Vec<(String, String, Variances)>, Vec<String>) {
-    let mut keys: Vec<(String, String)> = rows.iter().map(|r| (r.0.clone(), r.1.clone())).collect();
-    keys.dedup();
+    methods: &[String],
+    kinds: &[String],
+) -> (Vec<(String, String, Variances)>, Vec<Missing>) {
+    let mut keys: Vec<(&String, &String)> = Vec::new();
+    for r in rows {
+        let key = (&r.0, &r.1);
+        let wanted = (methods.is_empty() || methods.contains(&r.0))
+            && (kinds.is_empty() || kinds.contains(&r.1));
+        if wanted && !keys.contains(&key) {
+            keys.push(key);
+        }
+    }
     let mut out = Vec::new();
     let mut missing = Vec::new();
     for (method, kind) in keys {
         let mut sd = |group: &str| -> f64 {
             match rows
                 .iter()
-                .find(|r| r.0 == method && r.1 == kind && r.2 == group)
+                .find(|r| &r.0 == method && &r.1 == kind && r.2 == group)
             {
                 Some(r) => r.3.max(0.0).sqrt(),
                 None => {
-                    let m = format!("{group} ({method}, {kind})");
-                    if !missing.contains(&m) {
-                        missing.push(m);
-                    }
+                    missing.push(Missing {
+                        group: group.to_string(),
+                        method: method.clone(),
+                        kind: kind.clone(),
+                    });
                     0.0
                 }
             }
@@ -554,9 +607,17 @@ pub fn variances_from(
                 .collect(),
             residual: sd("Residual"),
         };
-        out.push((method, kind, v));
+        out.push((method.clone(), kind.clone(), v));
     }
     (out, missing)
+}
+
+/// Studies simulated in all, from the rows of [`run`] (each design, method
+/// and kind has one row per contrast, all with the same count).
+pub fn simulated(rows: &[PowerRow], contrasts: usize) -> usize {
+    rows.chunks(contrasts.max(1))
+        .map(|c| c[0].counts.studies)
+        .sum()
 }
 
 #[cfg(test)]
@@ -596,6 +657,43 @@ mod tests {
             changes_for(3, 0, &c, &[("d - a".into(), 1.0)]),
             Err(PlanError::UnknownContrast(_))
         ));
+    }
+
+    #[test]
+    fn the_smallest_design_is_given_once_per_stated_contrast() {
+        let row = |subjects: usize, contrast: &str, found: usize| PowerRow {
+            design: PlanDesign {
+                subjects,
+                eyes: 1,
+                sessions: 1,
+                segments_per_eye: 4,
+                captures_per_epoch: 5,
+            },
+            method: "m".into(),
+            kind: "arteriole".into(),
+            contrast: contrast.into(),
+            effect: -3.0,
+            stated: true,
+            counts: Counts {
+                studies: 100,
+                found,
+                missed_truth: 5,
+            },
+        };
+        // Two stated contrasts; rows run through them within each design.
+        let rows = vec![
+            row(6, "b - a", 50),
+            row(6, "c - a", 85),
+            row(10, "b - a", 90),
+            row(10, "c - a", 99),
+        ];
+        let best = smallest(&rows, 0.8, 4);
+        let got: Vec<(&str, usize, bool)> = best
+            .iter()
+            .map(|(r, reached)| (r.contrast.as_str(), r.design.subjects, *reached))
+            .collect();
+        assert_eq!(got, [("b - a", 10, true), ("c - a", 6, true)]);
+        assert_eq!(simulated(&rows, 2), 200);
     }
 
     /// R's `power.t.test(n, delta, sd, type = "paired", strict = TRUE)`

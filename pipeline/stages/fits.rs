@@ -71,11 +71,14 @@ pub(crate) fn misfit_warnings(rows: &[FitRow], epochs: &EpochTables, study: &Stu
             .take(3)
             .map(|(b, v)| format!("{} {v:+.1} %", study.instrument.bands[*b].name))
             .collect();
-        let mut segs: Vec<String> = misfits
-            .iter()
-            .map(|r| format!("{}/{}", c[r.capture_index].subject, r.segment))
-            .collect();
-        segs.dedup();
+        // Rows run capture by capture, so a segment recurs among other segments.
+        let mut segs: Vec<String> = Vec::new();
+        for r in &misfits {
+            let s = format!("{}/{}", c[r.capture_index].subject, r.segment);
+            if !segs.contains(&s) {
+                segs.push(s);
+            }
+        }
         let shown: Vec<String> = segs.iter().take(5).cloned().collect();
         out.push(format!(
             "`{}`: the vessel model does not describe the spectra of {} of {} segment fits ({:.0} %, more than {:.0} %): bands {} off on average (model − measured); e.g. {}{}. SO2 from these fits may be biased by several points: look at the residual columns of `fits/so2` and consider restricting the statistics to adequate fits",

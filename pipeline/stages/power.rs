@@ -16,7 +16,8 @@ use crate::config::study::Study;
 use crate::runner::Runner;
 use crate::runner::key::{Key, KeyBuilder};
 use crate::simulate::power::{
-    Plan, PowerRow, Question, Studies, grid, needed, run as simulate_plan, smallest, variances_from,
+    Missing, Plan, PowerRow, Question, Studies, grid, needed, run as simulate_plan, simulated,
+    smallest, variances_from,
 };
 use crate::tables::{Table, create_folder, write_bytes_atomic};
 
@@ -46,12 +47,9 @@ impl Stage for Power {
             return Ok((Vec::new(), "no `power:` section".into()));
         };
         let rows = simulate_plan(&plan, &|_| {});
-        let studies: usize = rows
-            .chunks(plan.question.contrasts.len().max(1))
-            .map(|c| c[0].counts.studies)
-            .sum();
         let d = format!(
-            "{studies} simulated studies over {} designs and {} methods and kinds",
+            "{} simulated studies over {} designs and {} methods and kinds",
+            simulated(&rows, plan.question.contrasts.len()),
             plan.designs.len(),
             plan.variances.len()
         );
@@ -82,17 +80,14 @@ impl Stage for Power {
         Some(format!(
             "The power of a follow-up study to detect {} was estimated by simulation from the variance components estimated here, each simulated study analysed with the same model and test ({}).",
             effects.join(" and "),
-            match p.simulations {
-                Some(n) => format!("{n} studies per design"),
-                None => "1 000 studies per design, more near the target power".into(),
-            }
+            studies_text(p.simulations.map_or(Studies::Auto, Studies::Fixed))
         ))
     }
 }
 
 /// The plan of the study's `power:` section over this run's variance
 /// components; `None` without a section.
-pub(crate) fn plan_for(run: &Run) -> Result<Option<(Plan, Vec<String>)>> {
+pub(crate) fn plan_for(run: &Run) -> Result<Option<(Plan, Vec<Missing>)>> {
     let study = run.study;
     let Some(p) = &study.power else {
         return Ok(None);
@@ -117,11 +112,7 @@ pub(crate) fn plan_for(run: &Run) -> Result<Option<(Plan, Vec<String>)>> {
             )
         })
         .collect();
-    let (mut variances, missing) = variances_from(&rows, &question.epochs);
-    variances.retain(|(m, k, _)| {
-        (p.methods.is_empty() || p.methods.contains(m))
-            && (p.kinds.is_empty() || p.kinds.contains(k))
-    });
+    let (variances, missing) = variances_from(&rows, &question.epochs, &p.methods, &p.kinds);
     let designs = grid(
         &p.subjects,
         &p.captures_per_epoch,
@@ -173,7 +164,7 @@ pub fn write_outputs(
     plan: &Plan,
     rows: &[PowerRow],
     source: &Source,
-    missing: &[String],
+    missing: &[Missing],
     protocol: &str,
 ) -> Result<Vec<PathBuf>> {
     create_folder(dir)?;
@@ -294,7 +285,8 @@ pub(crate) fn curves(plan: &Plan, rows: &[PowerRow]) -> PowerCurves {
     out
 }
 
-fn studies_text(s: Studies) -> String {
+/// How many studies were simulated per design, in words.
+pub(crate) fn studies_text(s: Studies) -> String {
     match s {
         Studies::Fixed(n) => format!("{n} simulated studies per design"),
         Studies::Auto => format!(
@@ -333,7 +325,7 @@ pub fn text(
     plan: &Plan,
     rows: &[PowerRow],
     source: &Source,
-    missing: &[String],
+    missing: &[Missing],
     protocol: &str,
 ) -> String {
     let q = &plan.question;

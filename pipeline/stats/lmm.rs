@@ -649,10 +649,6 @@ impl Model {
                 simplex.push(v);
             }
         }
-        // Nelder–Mead stops within the deviance's rounding noise, where a
-        // flat direction can leave θ loose in the sixth digit. Newton steps
-        // on the free coordinates (numerical gradient and Hessian, as for
-        // Satterthwaite's df; variances on the boundary held at zero) pin it.
         // A variance whose optimum is on the boundary leaves Nelder–Mead
         // creeping towards θ = 0 along a direction where the deviance is
         // flat (it depends on θ²); set such a θ to 0 exactly, as lme4's
@@ -668,6 +664,10 @@ impl Model {
                 }
             }
         }
+        // Nelder–Mead stops within the deviance's rounding noise, where a
+        // flat direction can leave θ loose in the sixth digit. Newton steps
+        // on the free coordinates (numerical gradient and Hessian, as for
+        // Satterthwaite's df; variances on the boundary held at zero) pin it.
         let free: Vec<usize> = (0..nt)
             .filter(|k| !diag.contains(k) || best[*k].abs() >= 1e-4)
             .collect();

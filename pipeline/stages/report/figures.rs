@@ -698,7 +698,10 @@ pub fn power_curves(dir: &Path, c: &PowerCurves) -> Result<Figure> {
     Ok(render!(
         dir,
         "power_curve",
-        String::new(),
+        format!(
+            "Power against the number of subjects, per method, with the {:.0} % target dashed",
+            c.target * 100.0
+        ),
         (360 * cols + 40, 300 * rows + 40),
         draw_power,
         c

@@ -71,13 +71,24 @@ impl Stage for Report {
                 .to_string_lossy()
                 .replace('\\', "/")
         };
+        let power_rows = run.output::<crate::stages::power::Power>();
+        let power = match crate::stages::power::plan_for(run)? {
+            Some((plan, _)) if !power_rows.is_empty() => Some(PowerSection {
+                lines: crate::stages::power::summary_lines(&plan, power_rows),
+                figure: figures::power_curves(
+                    &run.out().join("report").join("figures"),
+                    &crate::stages::power::curves(&plan, power_rows),
+                )?,
+            }),
+            _ => None,
+        };
         let inputs = Inputs {
             study,
             epochs: run.output::<Epochs>(),
             images: run.output::<Transmissions>(),
             fits: run.output::<Fits>(),
             stats: run.output::<StatisticsStage>(),
-            power: None,
+            power,
             methods: &run.methods,
             files: run
                 .inputs
@@ -91,19 +102,6 @@ impl Stage for Report {
                 .collect(),
         };
         let images = run.output::<Transmissions>();
-        let power_rows = run.output::<crate::stages::power::Power>();
-        let power = match crate::stages::power::plan_for(run)? {
-            Some((plan, _)) if !power_rows.is_empty() => Some(PowerSection {
-                lines: crate::stages::power::summary_lines(&plan, power_rows),
-                figure: figures::power_curves(
-                    &run.out().join("report").join("figures"),
-                    &crate::stages::power::curves(&plan, power_rows),
-                )?,
-                target: plan.target,
-            }),
-            _ => None,
-        };
-        let inputs = Inputs { power, ..inputs };
         write(
             &inputs,
             &|i| images.positions(runner, i).unwrap_or_default(),
@@ -147,7 +145,6 @@ pub(crate) struct PowerSection {
     /// One sentence per method, kind and contrast: the smallest design.
     pub lines: Vec<String>,
     pub figure: figures::Figure,
-    pub target: f64,
 }
 
 const POWER_INTRO: &str = "For a follow-up study with this instrument: the power to detect the stated effects, estimated by simulating studies from this pilot's own variance components and analysing each as above. Assumptions, the variances used and the full table are in `power/power.md` and `power/power.csv`.";
@@ -370,10 +367,10 @@ impl Document<'_> {
             }
             h.push_str("</ul>\n");
             h.push_str(&format!(
-                "<figure id=\"fig-{}\">\n{}\n<figcaption>Power against the number of subjects, per method, with the {:.0} % target dashed</figcaption>\n</figure>\n",
+                "<figure id=\"fig-{}\">\n{}\n<figcaption>{}</figcaption>\n</figure>\n",
                 p.figure.name,
                 strip_xml_header(&p.figure.svg),
-                p.target * 100.0
+                html_escape(&p.figure.caption)
             ));
         }
         h.push_str("<h2 id=\"methods\">Methods</h2>\n");
@@ -465,10 +462,10 @@ impl Document<'_> {
                 m.push_str(&format!("- {}\n", md(l)));
             }
             m.push_str(&format!(
-                "\n![{}](figures/{}.png)\n\n*Power against the number of subjects, per method, with the {:.0} % target dashed*\n\n",
+                "\n![{}](figures/{}.png)\n\n*{}*\n\n",
                 p.figure.name,
                 p.figure.name,
-                p.target * 100.0
+                md(&p.figure.caption)
             ));
         }
         m.push_str("## Methods\n\n");
