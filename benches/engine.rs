@@ -24,11 +24,7 @@ fn segment(model: &VesselModel, seed: u64, n: usize) -> SegmentSpectra {
         let f = p as f64 / n as f64;
         let mut out = vec![0.0; model.n_bands()];
         model.transmission(
-            &Shared {
-                so2: 0.6 + 0.35 * (seed % 2) as f64,
-                hb_g_per_l: 150.0,
-                veil: 0.3,
-            },
+            &Shared::new(0.6 + 0.35 * (seed % 2) as f64, 150.0, 0.3),
             0.3 + 0.1 * (9.0 * f).sin(),
             140.0 - 40.0 * f,
             &mut out,

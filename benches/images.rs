@@ -8,7 +8,6 @@
 // A benchmark reports on stdout.
 #![allow(clippy::print_stdout)]
 
-use satstep::oximetry::model::BLOOD_BACKSCATTER;
 use std::time::Instant;
 
 use rand::SeedableRng;
@@ -76,7 +75,7 @@ fn main() {
         pigmentation: 2.0,
         veil: 0.2,
         hb_g_per_l: 150.0,
-        backscatter: BLOOD_BACKSCATTER,
+        optics: Default::default(),
         well_electrons: 20_000.0,
         read_noise_electrons: 6.0,
     };

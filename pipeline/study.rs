@@ -22,6 +22,7 @@ pub fn load_study(path: &Path) -> (Option<Study>, Findings) {
         check_paths_are_text(&s, &mut findings);
         read_session_files(&mut s, &mut findings);
         check_capture_times(&s, &mut findings);
+        check_model_support(&s, &mut findings);
         s
     });
     if findings.has_errors() {
@@ -104,5 +105,72 @@ fn check_capture_times(study: &Study, findings: &mut Findings) {
                     .hint("check the capture's time stamp and the session's `start`");
             }
         }
+    }
+}
+
+/// Refuses a multiband method's extensions when its bands cannot separate
+/// them from SO2 ([`crate::oximetry::sensitivity::support`]).
+fn check_model_support(study: &Study, findings: &mut Findings) {
+    use crate::config::study::MethodKind;
+    use crate::config::vessel_model::{Extensions, ModelChoice};
+    use crate::oximetry::sensitivity::{SUPPORT_MAX_INFLATION, support};
+    for m in &study.methods {
+        let MethodKind::Multiband {
+            bands,
+            model: ModelChoice::Fixed(e),
+            model_mark,
+            ..
+        } = &m.kind
+        else {
+            continue;
+        };
+        if *e == Extensions::BASE {
+            continue;
+        }
+        let sampled: Vec<crate::oximetry::bands::SampledBand> = bands
+            .iter()
+            .map(|b| {
+                crate::oximetry::bands::SampledBand::from_response(
+                    &study.instrument.bands[*b].response,
+                )
+            })
+            .collect();
+        let s = support(&crate::oximetry::model::VesselModel::new(
+            &sampled,
+            |_| 1.0,
+            crate::oximetry::model::BLOOD_BACKSCATTER,
+        ));
+        let Some(mine) = s
+            .iter()
+            .find(|x| x.extensions == *e)
+            .filter(|x| !x.supported)
+        else {
+            continue;
+        };
+        let ok: Vec<String> = s
+            .iter()
+            .filter(|x| x.supported && x.extensions != Extensions::BASE)
+            .map(|x| format!("`{}`", x.extensions.name()))
+            .collect();
+        findings
+            .error(
+                &study.file,
+                *model_mark,
+                format!(
+                    "method `{}`: these {} bands cannot separate `{}` from SO2: it would multiply the SO2 standard error by {:.1} (at most {SUPPORT_MAX_INFLATION} is accepted)",
+                    m.label,
+                    bands.len(),
+                    e.name(),
+                    mine.inflation,
+                ),
+            )
+            .hint(if ok.is_empty() {
+                "use `model: base`, or more bands; `satstep sensitivity STUDY` lists what the bands support".to_string()
+            } else {
+                format!(
+                    "these bands support {} (or `auto`); `satstep sensitivity STUDY` lists them",
+                    ok.join(", ")
+                )
+            });
     }
 }

@@ -151,7 +151,7 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
         captures: capture_counts(
             run.output::<Epochs>(),
             run.output::<Transmissions>(),
-            run.output::<Fits>(),
+            &run.output::<Fits>().rows,
         ),
         warnings: runner.warnings.lock().expect("not poisoned").clone(),
         exit_status: exit as i32,

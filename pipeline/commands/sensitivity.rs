@@ -4,7 +4,8 @@
 //! veil and with the veil-free band combination held (see
 //! [`crate::oximetry::sensitivity`]). Writes `sensitivity.csv` (and
 //! `.parquet`) and a figure (`sensitivity.svg`, `sensitivity.png`); prints
-//! the tables.
+//! the tables; and which extensions of the vessel model the bands can
+//! identify (`model_support.csv`, [`crate::oximetry::sensitivity::support`]).
 
 use std::path::Path;
 
@@ -179,9 +180,42 @@ pub fn sensitivity(
             s.push_str(&format!(" {all:>9.2}\n"));
         }
     }
+    // Which extensions of the vessel model these bands can identify.
+    let sampled: Vec<crate::oximetry::bands::SampledBand> = chosen
+        .iter()
+        .map(|b| crate::oximetry::bands::SampledBand::from_response(&inst.bands[*b].response))
+        .collect();
+    let support = crate::oximetry::sensitivity::support(&crate::oximetry::model::VesselModel::new(
+        &sampled,
+        |_| 1.0,
+        crate::oximetry::model::BLOOD_BACKSCATTER,
+    ));
+    s.push_str(&format!(
+        "\nmodel extensions these {} bands support (`model:` of a `multiband` method; SO2 standard error over the base model's, at most {} accepted)\n",
+        chosen.len(),
+        crate::oximetry::sensitivity::SUPPORT_MAX_INFLATION
+    ));
+    for x in &support {
+        s.push_str(&format!(
+            "  {:<48} {:>6.2}  {}\n",
+            x.extensions.name(),
+            x.inflation,
+            if x.supported { "supported" } else { "refused" }
+        ));
+    }
+    let mut t = Table::new();
+    t.text("model", support.iter().map(|x| x.extensions.name()))
+        .real("so2_se_inflation", support.iter().map(|x| x.inflation))
+        .text(
+            "supported",
+            support
+                .iter()
+                .map(|x| if x.supported { "yes" } else { "no" }),
+        );
+    t.write(out, "model_support")?;
     printer.data(s);
     printer.info(format!(
-        "wrote `sensitivity.csv`, `.parquet`, `.svg` and `.png` under `{}`",
+        "wrote `sensitivity.csv`, `model_support.csv` (each with `.parquet`), `sensitivity.svg` and `.png` under `{}`",
         out.display()
     ));
     Ok(Exit::Ok)

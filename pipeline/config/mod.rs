@@ -14,6 +14,7 @@ pub mod spectra;
 pub mod spo2log;
 pub mod study;
 pub mod time;
+pub mod vessel_model;
 pub mod yaml;
 
 /// Why one written value (a duration, a date-time) could not be read. The

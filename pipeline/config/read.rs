@@ -272,6 +272,14 @@ impl<'a> Reader<'a> {
         }
     }
 
+    /// A list, or a single item standing for a list of one.
+    pub fn list_or_one<'n>(&mut self, node: &'n Node) -> Option<Vec<&'n Node>> {
+        match &node.value {
+            Value::Seq(items) => Some(items.iter().collect()),
+            _ => Some(vec![node]),
+        }
+    }
+
     /// One of a fixed set of words.
     pub fn choice(&mut self, node: &Node, what: &str, allowed: &[&str]) -> Option<String> {
         let t = self.text(node, what)?;

@@ -17,6 +17,7 @@ use super::segments::Segment;
 pub use super::spo2log::ReferenceLog;
 use super::spo2log::SpO2Log;
 use super::time::parse_time;
+use super::vessel_model::{EXTENSION_NAMES, Extensions, ModelChoice};
 use super::yaml::{Node, Value};
 
 #[derive(Debug, Clone, PartialEq, serde::Serialize)]
@@ -105,6 +106,10 @@ pub enum Calibration {
     TwoPoint { epoch: usize, venule_so2: f64 },
     /// Regression on the reference SpO2 across subjects, leave one subject out.
     Regression,
+    /// Per subject: the slope from the subject's own arteriolar ODR against
+    /// the reference SpO2 across epochs, the line through the subject's
+    /// mean; free of what differs between subjects (veil, vessel diameter).
+    WithinSubject,
 }
 
 #[derive(Debug, Clone, PartialEq, serde::Serialize)]
@@ -119,6 +124,11 @@ pub enum MethodKind {
         bands: Vec<usize>,
         loss: Loss,
         pointwise: bool,
+        model: ModelChoice,
+        /// Where the study file says `model:` (for the check of what the
+        /// bands can identify, made once the study is loaded).
+        #[serde(skip)]
+        model_mark: Option<Mark>,
     },
 }
 
@@ -361,7 +371,7 @@ const METHOD_KEYS_TWO_BAND: &[&str] = &[
     "calibration",
     "diameter_correction",
 ];
-const METHOD_KEYS_MULTI: &[&str] = &["method", "label", "bands", "loss", "huber_scale"];
+const METHOD_KEYS_MULTI: &[&str] = &["method", "label", "bands", "loss", "huber_scale", "model"];
 const METHOD_NAMES: &[&str] = &["two-band", "multiband", "multiband-pointwise"];
 const CALIBRATION_KEYS: &[&str] = &["mode", "intercept", "slope", "epoch", "venule_so2"];
 const EXCLUSION_KEYS: &[&str] = &["min_diameter_um", "subjects", "captures"];
@@ -547,10 +557,6 @@ fn read_study(r: &mut Reader, node: &Node, file: &Path, root: &Path) -> Option<S
     let instrument = r
         .required(&m, "instrument", "the study file")
         .and_then(|n| read_instrument(r, n, root));
-    let band_names: Vec<String> = instrument
-        .as_ref()
-        .map(|i| i.bands.iter().map(|b| b.name.clone()).collect())
-        .unwrap_or_default();
 
     let mut subjects = Vec::new();
     let mut seen_subjects: HashMap<String, Mark> = HashMap::new();
@@ -581,7 +587,12 @@ fn read_study(r: &mut Reader, node: &Node, file: &Path, root: &Path) -> Option<S
 
     let methods = match m.get("methods") {
         None => Vec::new(),
-        Some(n) => read_methods(r, n, &band_names, protocol.as_ref()),
+        Some(n) => read_methods(
+            r,
+            n,
+            instrument.as_ref().map_or(&[][..], |i| &i.bands[..]),
+            protocol.as_ref(),
+        ),
     };
 
     let exclusions = match m.get("exclusions") {
@@ -1170,9 +1181,10 @@ fn read_log(r: &mut Reader, node: &Node, root: &Path) -> Option<ReferenceLog> {
 fn read_methods(
     r: &mut Reader,
     node: &Node,
-    bands: &[String],
+    instrument_bands: &[Band],
     protocol: Option<&Protocol>,
 ) -> Vec<Method> {
+    let bands: Vec<String> = instrument_bands.iter().map(|b| b.name.clone()).collect();
     let mut out: Vec<Method> = Vec::new();
     let Some(items) = r.list(node, "`methods`") else {
         return out;
@@ -1285,11 +1297,18 @@ fn read_methods(
                 (Some(_), Some(s)) => Some(Loss::Huber { scale: s }),
                 _ => None,
             };
-            match (bands_sel, loss) {
-                (Some(b), Some(l)) => Some(MethodKind::Multiband {
+            let pointwise = kind == "multiband-pointwise";
+            let model = match m.get("model") {
+                None => Some(ModelChoice::Fixed(Extensions::BASE)),
+                Some(n) => read_model(r, n, pointwise),
+            };
+            match (bands_sel, loss, model) {
+                (Some(b), Some(l), Some(model)) => Some(MethodKind::Multiband {
                     bands: b,
                     loss: l,
-                    pointwise: kind == "multiband-pointwise",
+                    pointwise,
+                    model,
+                    model_mark: m.get("model").map(|n| n.mark),
                 }),
                 _ => None,
             }
@@ -1299,6 +1318,42 @@ fn read_methods(
         }
     }
     out
+}
+
+/// `model:` of a multiband method: `base`, `auto`, an extension's name or
+/// a list of them.
+fn read_model(r: &mut Reader, node: &Node, pointwise: bool) -> Option<ModelChoice> {
+    let choices: Vec<&str> = ["base", "auto"]
+        .into_iter()
+        .chain(EXTENSION_NAMES)
+        .collect();
+    let names: Vec<(String, Mark)> = match r.list_or_one(node) {
+        Some(items) => items
+            .into_iter()
+            .filter_map(|n| r.choice(n, "`model`", &choices).map(|t| (t, n.mark)))
+            .collect(),
+        None => return None,
+    };
+    if pointwise && names.iter().any(|(n, _)| n != "base") {
+        r.error(node.mark, "`multiband-pointwise` fits the base model only")
+            .hint("the extensions are shared along a segment: use `method: multiband` for them");
+        return None;
+    }
+    if names.iter().any(|(n, _)| n == "auto" || n == "base") && names.len() > 1 {
+        r.error(
+            node.mark,
+            "`base` and `auto` stand alone; list extensions to combine them",
+        );
+        return None;
+    }
+    match names.first().map(|(n, _)| n.as_str()) {
+        Some("auto") => Some(ModelChoice::Auto),
+        _ => Some(ModelChoice::Fixed(
+            names
+                .iter()
+                .fold(Extensions::BASE, |acc, (n, _)| acc.with(n).unwrap_or(acc)),
+        )),
+    }
 }
 
 fn read_calibration(
@@ -1311,7 +1366,7 @@ fn read_calibration(
         r.choice(
             n,
             "calibration `mode`",
-            &["fixed", "two-point", "regression"],
+            &["fixed", "two-point", "regression", "within-subject"],
         )
     })?;
     let only = |r: &mut Reader, m: &MapView, allowed: &[&str]| {
@@ -1377,6 +1432,10 @@ fn read_calibration(
                 epoch: idx?,
                 venule_so2: v?,
             })
+        }
+        "within-subject" => {
+            only(r, &m, &[]);
+            Some(Calibration::WithinSubject)
         }
         _ => {
             only(r, &m, &[]);

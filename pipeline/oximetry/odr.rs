@@ -12,8 +12,17 @@
 //! - two reference points from a named epoch: the cohort's mean arteriolar
 //!   ODR at the cohort's mean reference SpO2 and the mean venular ODR at a
 //!   stated venular value;
-//! - regression of the reference SpO2 on arteriolar ODR across calibration
-//!   subjects, leaving each subject out of its own calibration.
+//! - a calibration line between arteriolar ODR and the reference SpO2
+//!   across calibration subjects, leaving each subject out of its own
+//!   calibration ([`inverse_calibration`]);
+//! - within each subject: the line between the subject's own arteriolar
+//!   ODR and the reference SpO2 across the protocol's epochs, so that the
+//!   slope is not confounded by what differs between subjects (each
+//!   subject's veil and vessel diameters move ODR at a given SO2). The
+//!   arterioles then agree with the reference by construction; the
+//!   venules, and the change between epochs, are what it measures.
+//!
+//! Every mode reports its slope with a standard error ([`Calibrated`]).
 //!
 //! An optional diameter correction removes the linear dependence of ODR on
 //! vessel diameter, with the slope estimated within captures (pooled
@@ -66,6 +75,76 @@ pub(crate) fn two_point(odr_a: f64, spo2_a: f64, odr_v: f64, so2_v: f64) -> Opti
         intercept: spo2_a - slope * odr_a,
         slope,
     })
+}
+
+/// A calibration line with the standard error of its slope (NaN when the
+/// mode has none, as for stated constants) and the points behind it.
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct Calibrated {
+    pub intercept: f64,
+    pub slope: f64,
+    pub slope_se: f64,
+    pub points: usize,
+}
+
+/// Ordinary least squares of `y` on `x`, with the slope's standard error
+/// `√(s²/Sxx)`, `s²` the residual variance on n − 2 degrees of freedom
+/// (NaN with two points).
+pub(crate) fn ols_with_se(x: &[f64], y: &[f64]) -> Option<Calibrated> {
+    let l = ols(x, y)?;
+    let n = x.len() as f64;
+    let mx = x.iter().sum::<f64>() / n;
+    let sxx: f64 = x.iter().map(|v| (v - mx).powi(2)).sum();
+    let ss: f64 = x
+        .iter()
+        .zip(y)
+        .map(|(a, b)| (b - l.apply(*a)).powi(2))
+        .sum();
+    Some(Calibrated {
+        intercept: l.intercept,
+        slope: l.slope,
+        slope_se: if x.len() > 2 {
+            (ss / (n - 2.0) / sxx).sqrt()
+        } else {
+            f64::NAN
+        },
+        points: x.len(),
+    })
+}
+
+/// A calibration line `SO2 = intercept + slope·ODR` from pairs of ODR and
+/// reference SpO2, by classical calibration: ODR (the measurement, which
+/// carries the noise) regressed on SpO2 (the standard), then inverted
+/// (Eisenhart, J Res Natl Bur Stand 22:207–246, 1939; cited from memory).
+/// Regressing SpO2 on a noisy ODR instead would shrink the slope towards
+/// zero (regression dilution), and with it every change between epochs.
+/// The slope's standard error is the delta method's `se_b/b²`.
+pub(crate) fn inverse_calibration(odr: &[f64], spo2: &[f64]) -> Option<Calibrated> {
+    let r = ols_with_se(spo2, odr)?;
+    if r.slope.abs() < 1e-12 {
+        return None;
+    }
+    Some(Calibrated {
+        intercept: -r.intercept / r.slope,
+        slope: 1.0 / r.slope,
+        slope_se: r.slope_se / (r.slope * r.slope),
+        points: r.points,
+    })
+}
+
+/// The standard error of a two-point slope `(S_a − S_v)/(O_a − O_v)` by the
+/// delta method, from the standard errors of the arteriolar and venular
+/// mean ODRs and of the mean reference SpO2 (the venular value is stated).
+pub(crate) fn two_point_slope_se(
+    line: &Linear,
+    odr_a: f64,
+    odr_v: f64,
+    se_a: f64,
+    se_v: f64,
+    se_spo2: f64,
+) -> f64 {
+    let d = odr_a - odr_v;
+    ((line.slope / d).powi(2) * (se_a * se_a + se_v * se_v) + (se_spo2 / d).powi(2)).sqrt()
 }
 
 /// Ordinary least squares of `y` on `x`.

@@ -47,11 +47,7 @@ pub fn fit_position(
         let mut jm = vec![[0.0; N_DERIV]; nb];
         let want = j.is_some();
         model.transmission(
-            &Shared {
-                so2: x[0],
-                hb_g_per_l: x[1],
-                veil: x[2],
-            },
+            &Shared::new(x[0], x[1], x[2]),
             x[3],
             d_um,
             &mut tm,
@@ -65,7 +61,8 @@ pub fn fit_position(
         }
         if let Some(j) = j {
             for k in 0..nb {
-                for q in 0..N_DERIV {
+                // S, hb, k, F_2: the base model's columns.
+                for q in 0..4 {
                     j[(k, q)] = jm[k][q] / tm[k];
                 }
             }

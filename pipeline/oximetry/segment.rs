@@ -20,9 +20,11 @@
 //! chi-square against the stated measurement noise, iterations, evaluations
 //! and the termination reason.
 
-use nalgebra::{Matrix3, Vector3};
+use nalgebra::{SMatrix, SVector};
 
-use super::model::{N_DERIV, Shared, VesselModel};
+use super::model::{
+    D_BACKSCATTER, D_DOUBLE_PASS, D_FUNDUS, D_VEIL_SLOPE, Extensions, N_DERIV, Shared, VesselModel,
+};
 use crate::fit::{Linearization, Options, Problem, Termination, minimize};
 
 /// Transmissions along one segment in one capture.
@@ -88,6 +90,15 @@ pub struct SegmentFit {
     /// ([`adequacy`]); NaN with too few positions.
     pub misfit_t: f64,
     pub adequacy: Adequacy,
+    /// The model fitted: the base model and the extensions switched on.
+    pub model: Extensions,
+    /// The extensions' parameters and their standard errors, NaN where the
+    /// model does not have them.
+    pub veil_slope: (f64, f64),
+    pub backscatter_scale: (f64, f64),
+    pub fundus_slope: (f64, f64),
+    /// What the information criterion needs of the residuals.
+    pub residuals: ResidualSummary,
 }
 
 /// Whether the model describes a segment's spectra.
@@ -181,43 +192,82 @@ struct Joint<'a> {
     /// sqrt of the robust weight per (position, band).
     sqrt_w: Vec<Vec<f64>>,
     settings: &'a FitSettings,
+    /// Derivative columns of the shared unknowns, in the fit's order.
+    cols: Vec<usize>,
 }
 
-/// Per position: residuals, Jacobian columns for the shared parameters and the local one.
+/// Most shared unknowns of any model: S, hb, k and three extensions.
+const MAX_SHARED: usize = 6;
+type SharedMatrix = SMatrix<f64, MAX_SHARED, MAX_SHARED>;
+type SharedVector = SVector<f64, MAX_SHARED>;
+
+/// Per position: residuals, Jacobian rows for the shared parameters (zero
+/// past the model's own) and the local one.
 struct Block {
     r: Vec<f64>,
-    jg: Vec<[f64; 3]>,
+    jg: Vec<SharedVector>,
     jl: Vec<f64>,
 }
 
 pub(crate) struct JointLin {
     blocks: Vec<Block>,
+    g: usize,
+}
+
+/// The shared parameters of the fit vector `x` (S, hb, k, then the
+/// model's extensions in [`Extensions::shared_columns`] order).
+fn shared_of(cols: &[usize], x: &[f64]) -> Shared {
+    let mut sh = Shared::new(x[0], x[1], x[2]);
+    for (i, c) in cols.iter().enumerate().skip(3) {
+        match *c {
+            D_VEIL_SLOPE => sh.veil_slope = x[i],
+            D_BACKSCATTER => sh.backscatter = x[i],
+            _ => sh.fundus_slope = x[i],
+        }
+    }
+    sh
 }
 
 impl<'a> Joint<'a> {
+    fn new(
+        model: &'a VesselModel,
+        data: &'a SegmentSpectra,
+        settings: &'a FitSettings,
+        sqrt_w: Vec<Vec<f64>>,
+    ) -> Self {
+        Joint {
+            model,
+            data,
+            sqrt_w,
+            settings,
+            cols: model.extensions.shared_columns(),
+        }
+    }
+
     fn n_pos(&self) -> usize {
         self.data.diameters_um.len()
     }
 
+    fn g(&self) -> usize {
+        self.cols.len()
+    }
+
     fn block(&self, x: &[f64], p: usize, with_jac: bool) -> Option<Block> {
         let nb = self.model.n_bands();
-        let sh = Shared {
-            so2: x[0],
-            hb_g_per_l: x[1],
-            veil: x[2],
-        };
+        let g = self.g();
+        let sh = shared_of(&self.cols, x);
         let mut t = vec![0.0; nb];
         let mut j = vec![[0.0; N_DERIV]; nb];
         self.model.transmission(
             &sh,
-            x[3 + p],
+            x[g + p],
             self.data.diameters_um[p],
             &mut t,
             with_jac.then_some(&mut j[..]),
         );
         let mut b = Block {
             r: Vec::with_capacity(nb),
-            jg: Vec::with_capacity(nb),
+            jg: Vec::with_capacity(if with_jac { nb } else { 0 }),
             jl: Vec::with_capacity(nb),
         };
         for k in 0..nb {
@@ -229,8 +279,12 @@ impl<'a> Joint<'a> {
             b.r.push(w * (t[k].ln() - meas.ln()));
             if with_jac {
                 let s = w / t[k];
-                b.jg.push([s * j[k][0], s * j[k][1], s * j[k][2]]);
-                b.jl.push(s * j[k][3]);
+                let mut row = SharedVector::zeros();
+                for (i, c) in self.cols.iter().enumerate() {
+                    row[i] = s * j[k][*c];
+                }
+                b.jg.push(row);
+                b.jl.push(s * j[k][D_DOUBLE_PASS]);
             }
         }
         Some(b)
@@ -241,7 +295,7 @@ impl<'a> Problem for Joint<'a> {
     type Lin = JointLin;
 
     fn n_params(&self) -> usize {
-        3 + self.n_pos()
+        self.g() + self.n_pos()
     }
 
     fn cost(&self, x: &[f64]) -> Option<f64> {
@@ -258,22 +312,25 @@ impl<'a> Problem for Joint<'a> {
     }
 
     fn linearize(&self, x: &[f64]) -> JointLin {
+        let g = self.g();
         JointLin {
             blocks: (0..self.n_pos())
                 .map(|p| {
                     self.block(x, p, true).unwrap_or(Block {
                         r: vec![0.0; 1],
-                        jg: vec![[0.0; 3]; 1],
+                        jg: vec![SharedVector::zeros(); 1],
                         jl: vec![0.0; 1],
                     })
                 })
                 .collect(),
+            g,
         }
     }
 
     fn lower(&self) -> Vec<f64> {
         let s = self.settings;
         let mut v = vec![s.so2_bounds.0, s.hb_bounds.0, 0.0];
+        v.extend(self.cols[3..].iter().map(|c| extension_bounds(*c).0));
         v.extend(std::iter::repeat_n(0.0, self.n_pos()));
         v
     }
@@ -281,6 +338,7 @@ impl<'a> Problem for Joint<'a> {
     fn upper(&self) -> Vec<f64> {
         let s = self.settings;
         let mut v = vec![s.so2_bounds.1, s.hb_bounds.1, s.veil_max];
+        v.extend(self.cols[3..].iter().map(|c| extension_bounds(*c).1));
         v.extend(std::iter::repeat_n(
             1.0 - self.model.backscatter,
             self.n_pos(),
@@ -289,44 +347,70 @@ impl<'a> Problem for Joint<'a> {
     }
 }
 
-/// Normal-equation blocks of the joint fit: A (3×3), per position b_p (3)
-/// and c_p, the shared gradient (3) and the per-position gradients.
+/// Bounds of an extension's parameter: a veil change of at most 0.5 per
+/// 100 nm, an albedo scale 0–1, a double-pass share that may fall to a
+/// tenth or treble per 100 nm.
+fn extension_bounds(col: usize) -> (f64, f64) {
+    match col {
+        D_VEIL_SLOPE => (-0.5, 0.5),
+        D_BACKSCATTER => (0.0, 1.0),
+        _ => (-0.9, 2.0),
+    }
+}
+
+/// Where an extension's parameter starts: at rest, except the albedo
+/// scale, which starts where the base model's 4 % backscatter lies for
+/// oxygenated blood in the green.
+fn extension_start(col: usize) -> f64 {
+    match col {
+        D_BACKSCATTER => 0.3,
+        _ => 0.0,
+    }
+}
+
+/// Normal-equation blocks of the joint fit: A, per position b_p and c_p,
+/// the shared gradient and the per-position gradients. The shared blocks
+/// are of the largest size; past the model's own `g` unknowns A is the
+/// identity and everything else zero, so that those steps are zero.
 type NormalBlocks = (
-    Matrix3<f64>,
-    Vec<Vector3<f64>>,
+    SharedMatrix,
+    Vec<SharedVector>,
     Vec<f64>,
-    Vector3<f64>,
+    SharedVector,
     Vec<f64>,
 );
 
 impl JointLin {
-    /// Normal-equation blocks: A (3×3), per position b_p (3), c_p, and gradients.
+    /// Normal-equation blocks: A, per position b_p, c_p, and gradients.
     fn normal(&self) -> NormalBlocks {
-        let mut a = Matrix3::zeros();
-        let mut gg = Vector3::zeros();
+        let mut a = SharedMatrix::zeros();
+        let mut gg = SharedVector::zeros();
         let mut bs = Vec::with_capacity(self.blocks.len());
         let mut cs = Vec::with_capacity(self.blocks.len());
         let mut gl = Vec::with_capacity(self.blocks.len());
         for blk in &self.blocks {
-            let mut b = Vector3::zeros();
-            let (mut c, mut g) = (0.0, 0.0);
+            let mut b = SharedVector::zeros();
+            let (mut c, mut gp) = (0.0, 0.0);
             for k in 0..blk.r.len() {
-                let jg = Vector3::from(blk.jg[k]);
+                let jg = &blk.jg[k];
                 a += jg * jg.transpose();
                 gg += jg * blk.r[k];
                 b += jg * blk.jl[k];
                 c += blk.jl[k] * blk.jl[k];
-                g += blk.jl[k] * blk.r[k];
+                gp += blk.jl[k] * blk.r[k];
             }
             bs.push(b);
             cs.push(c);
-            gl.push(g);
+            gl.push(gp);
+        }
+        for i in self.g..MAX_SHARED {
+            a[(i, i)] = 1.0;
         }
         (a, bs, cs, gg, gl)
     }
 
     /// The reduced (Schur) matrix for the shared parameters, undamped.
-    fn schur(&self) -> Matrix3<f64> {
+    fn schur(&self) -> SharedMatrix {
         let (a, bs, cs, _, _) = self.normal();
         let mut s = a;
         for (b, c) in bs.iter().zip(&cs) {
@@ -341,28 +425,29 @@ impl JointLin {
 impl Linearization for JointLin {
     fn jtj_diagonal(&self) -> Vec<f64> {
         let (a, _, cs, _, _) = self.normal();
-        let mut d = vec![a[(0, 0)], a[(1, 1)], a[(2, 2)]];
+        let mut d: Vec<f64> = (0..self.g).map(|i| a[(i, i)]).collect();
         d.extend(cs);
         d
     }
 
     fn gradient(&self) -> Vec<f64> {
         let (_, _, _, gg, gl) = self.normal();
-        let mut g = vec![gg[0], gg[1], gg[2]];
+        let mut g: Vec<f64> = gg.iter().take(self.g).copied().collect();
         g.extend(gl);
         g
     }
 
     fn step(&self, lambda: f64, damping: &[f64]) -> Option<Vec<f64>> {
+        let g = self.g;
         let (a, bs, cs, gg, gl) = self.normal();
         let mut s = a;
-        for i in 0..3 {
+        for i in 0..g {
             s[(i, i)] += lambda * damping[i];
         }
         let mut rhs = -gg;
         let mut cl = Vec::with_capacity(cs.len());
         for p in 0..cs.len() {
-            let c = cs[p] + lambda * damping[3 + p];
+            let c = cs[p] + lambda * damping[g + p];
             if !(c > 0.0) {
                 return None;
             }
@@ -371,7 +456,7 @@ impl Linearization for JointLin {
             rhs += bs[p] * (gl[p] / c);
         }
         let dg = s.cholesky()?.solve(&rhs);
-        let mut out = vec![dg[0], dg[1], dg[2]];
+        let mut out: Vec<f64> = dg.iter().take(g).copied().collect();
         for p in 0..cs.len() {
             out.push(-(gl[p] + bs[p].dot(&dg)) / cl[p]);
         }
@@ -379,14 +464,17 @@ impl Linearization for JointLin {
     }
 
     fn predicted_reduction(&self, delta: &[f64]) -> f64 {
+        let g = self.g;
         let mut rjd = 0.0;
         let mut jd2 = 0.0;
         for (p, blk) in self.blocks.iter().enumerate() {
             for k in 0..blk.r.len() {
-                let jd = blk.jg[k][0] * delta[0]
-                    + blk.jg[k][1] * delta[1]
-                    + blk.jg[k][2] * delta[2]
-                    + blk.jl[k] * delta[3 + p];
+                let jd = blk.jg[k]
+                    .iter()
+                    .zip(&delta[..g])
+                    .map(|(j, d)| j * d)
+                    .sum::<f64>()
+                    + blk.jl[k] * delta[g + p];
                 rjd += blk.r[k] * jd;
                 jd2 += jd * jd;
             }
@@ -437,12 +525,12 @@ fn residuals(
     x: &[f64],
 ) -> Vec<Vec<f64>> {
     let nb = model.n_bands();
-    let unweighted = Joint {
+    let unweighted = Joint::new(
         model,
         data,
-        sqrt_w: vec![vec![1.0; nb]; data.diameters_um.len()],
         settings,
-    };
+        vec![vec![1.0; nb]; data.diameters_um.len()],
+    );
     (0..data.diameters_um.len())
         .map(|p| {
             unweighted
@@ -451,6 +539,107 @@ fn residuals(
                 .unwrap_or_else(|| vec![0.0; nb])
         })
         .collect()
+}
+
+/// What the information criterion needs of a fit's residuals: their
+/// count, their loss sum `Q` (the sum of squares, or under the Huber loss
+/// twice the Huber loss at a cut-off fixed from the stated noise, 1.5 × it,
+/// the same for every candidate model so that their criteria compare: a
+/// crossing then weighs alike whichever model is fitted), the shared
+/// unknowns, and the lag-1 autocorrelation of the residuals along the
+/// segment (pooled over bands).
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+pub struct ResidualSummary {
+    pub n: usize,
+    pub loss_sum: f64,
+    pub shared: usize,
+    pub lag1: f64,
+}
+
+impl ResidualSummary {
+    fn of(res: &[Vec<f64>], shared: usize, loss: &RobustLoss, noise: f64) -> Self {
+        let n = res.iter().map(Vec::len).sum::<usize>();
+        let loss_sum: f64 = res
+            .iter()
+            .flatten()
+            .map(|r| match loss {
+                RobustLoss::Squared => r * r,
+                RobustLoss::Huber { scale } => {
+                    let c = scale * noise;
+                    if r.abs() <= c {
+                        r * r
+                    } else {
+                        2.0 * c * r.abs() - c * c
+                    }
+                }
+            })
+            .sum();
+        let nb = res.first().map_or(0, Vec::len);
+        let (mut num, mut den) = (0.0, 0.0);
+        for b in 0..nb {
+            let m = res.iter().map(|r| r[b]).sum::<f64>() / res.len() as f64;
+            for p in 0..res.len() {
+                let d = res[p][b] - m;
+                den += d * d;
+                if p > 0 {
+                    num += d * (res[p - 1][b] - m);
+                }
+            }
+        }
+        ResidualSummary {
+            n,
+            loss_sum,
+            shared,
+            lag1: if den > 0.0 { num / den } else { 0.0 },
+        }
+    }
+}
+
+/// Schwarz's Bayesian information criterion (Schwarz, Annals of
+/// Statistics 6:461–464, 1978) over an effective number of residuals,
+/// `n_e·ln(Q/n) + p·ln n_e`, `p` the shared unknowns (the per-position
+/// ones are common to every candidate). Residuals of neighbouring positions
+/// share image pixels and are correlated, so they carry less information
+/// than their count: `n_e = n·(1 − ρ)/(1 + ρ)`, the effective sample size
+/// of an AR(1) series with lag-1 correlation `ρ` (common practice, e.g.
+/// for the mean of an autocorrelated series), `ρ` from the most flexible
+/// candidate's residuals so that a misfit's systematic residuals do not
+/// count as correlation.
+pub fn information_criterion(s: &ResidualSummary, rho: f64) -> f64 {
+    let rho = rho.clamp(0.0, 0.95);
+    let n = s.n as f64;
+    let ne = (n * (1.0 - rho) / (1.0 + rho)).max(2.0);
+    ne * (s.loss_sum.max(1e-300) / n).ln() + s.shared as f64 * ne.ln()
+}
+
+/// Fits every candidate model (the same bands, different extensions) and
+/// keeps the one with the smallest [`information_criterion`]; a candidate
+/// that cannot be fitted is passed over. The first candidate's error is
+/// returned when none can be fitted.
+pub fn fit_segment_choosing(
+    candidates: &[VesselModel],
+    data: &SegmentSpectra,
+    settings: &FitSettings,
+) -> Result<SegmentFit, SegmentFitError> {
+    let mut fits = Vec::new();
+    let mut first_err = None;
+    for m in candidates {
+        match fit_segment(m, data, settings) {
+            Ok(f) => fits.push(f),
+            Err(e) => {
+                first_err.get_or_insert(e);
+            }
+        }
+    }
+    let rho = fits
+        .iter()
+        .max_by_key(|f| f.residuals.shared)
+        .map_or(0.0, |f| f.residuals.lag1);
+    fits.into_iter()
+        .map(|f| (information_criterion(&f.residuals, rho), f))
+        .min_by(|a, b| a.0.total_cmp(&b.0))
+        .map(|(_, f)| f)
+        .ok_or(first_err.unwrap_or(SegmentFitError::Shape))
 }
 
 /// Fits one segment. Needs at least as many bands as 3 shared unknowns
@@ -476,17 +665,14 @@ pub fn fit_segment(
         gtol: 1e-8,
         tau: 1e-3,
     };
-    let mut prob = Joint {
-        model,
-        data,
-        sqrt_w: vec![vec![1.0; nb]; np],
-        settings,
-    };
+    let mut prob = Joint::new(model, data, settings, vec![vec![1.0; nb]; np]);
+    let g = prob.g();
     // Start from the best of a coarse grid over SO2 (cheap cost
     // evaluations), so that arteriolar and venular segments alike begin on
     // the right side of the valley.
     let start = |s0: f64| {
         let mut x0 = vec![s0, 150.0, 0.2];
+        x0.extend(prob.cols[3..].iter().map(|c| extension_start(*c)));
         x0.extend(std::iter::repeat_n(0.3, np));
         x0
     };
@@ -538,19 +724,36 @@ pub fn fit_segment(
     }
     let lin = prob.linearize(&rep.x);
     let m = (np * nb) as f64;
-    let dof = m - (3 + np) as f64;
+    let dof = m - (g + np) as f64;
     let ssr = 2.0 * rep.cost;
     let s2 = if dof > 0.0 { ssr / dof } else { f64::NAN };
     let cov = lin.schur().try_inverse().map(|c| c * s2);
-    let se = |i: usize| cov.map(|c| c[(i, i)].max(0.0).sqrt()).unwrap_or(f64::NAN);
+    let se = |i: usize| {
+        cov.as_ref()
+            .map(|c| c[(i, i)].max(0.0).sqrt())
+            .unwrap_or(f64::NAN)
+    };
     let downweighted = prob
         .sqrt_w
         .iter()
         .filter(|row| row.iter().any(|w| w * w < 0.5))
         .count();
     let termination: Termination = rep.termination;
-    let (band_residuals, misfit_t, adequacy) = adequacy(&residuals(model, data, settings, &rep.x));
+    let res = residuals(model, data, settings, &rep.x);
+    let summary = ResidualSummary::of(&res, g, &settings.loss, settings.noise);
+    let (band_residuals, misfit_t, adequacy) = adequacy(&res);
+    let extension = |col: usize| {
+        prob.cols
+            .iter()
+            .position(|c| *c == col)
+            .map_or((f64::NAN, f64::NAN), |i| (rep.x[i], se(i)))
+    };
     Ok(SegmentFit {
+        model: model.extensions,
+        veil_slope: extension(D_VEIL_SLOPE),
+        backscatter_scale: extension(D_BACKSCATTER),
+        fundus_slope: extension(D_FUNDUS),
+        residuals: summary,
         band_residuals,
         misfit_t,
         adequacy,
@@ -560,7 +763,7 @@ pub fn fit_segment(
         hb_se: se(1),
         veil: rep.x[2],
         veil_se: se(2),
-        double_pass: rep.x[3..].to_vec(),
+        double_pass: rep.x[g..].to_vec(),
         reduced_chi2: if dof > 0.0 {
             ssr / dof / (settings.noise * settings.noise)
         } else {

@@ -9,6 +9,7 @@
 
 pub mod cohort;
 pub mod course;
+pub mod optics;
 pub mod power;
 pub mod render;
 pub mod seed;
@@ -33,6 +34,7 @@ use crate::stats::summary::mean;
 use crate::tables::{Table, TableError, write_bytes_atomic};
 use crate::timeline::assign::CaptureStatus;
 use course::SubjectPhysiology;
+use optics::Optics;
 use render::{Motion, Scene, VesselState};
 use seed::rng_for;
 
@@ -55,6 +57,8 @@ pub struct Scenario {
     pub instrument_name: String,
     pub bands: Vec<(String, f64, f64)>,
     pub veil_max: f64,
+    /// How the eye's optics depart from the base vessel model.
+    pub optics: Optics,
     pub methods_yaml: String,
     /// The scenario's `power:` section as written, copied into the study
     /// file (it is checked there, against the study's contrasts and methods).
@@ -74,7 +78,15 @@ const SCENARIO_KEYS: &[&str] = &[
     "image",
     "instrument",
     "veil_max",
+    "optics",
     "power",
+];
+const OPTICS_KEYS: &[&str] = &[
+    "veil_slope",
+    "backscatter_scale",
+    "fundus_exponent",
+    "psf_px",
+    "reflex",
 ];
 const IMAGE_KEYS: &[&str] = &["width", "height", "pixel_size_um"];
 const INSTRUMENT_KEYS: &[&str] = &["name", "bands"];
@@ -189,6 +201,10 @@ fn read_scenario(r: &mut Reader, node: &crate::config::yaml::Node, dir: &Path) -
             }
         }
     }
+    let optics = m
+        .get("optics")
+        .map(|n| read_optics(r, n))
+        .unwrap_or(Some(Optics::default()));
     if !(0.0..0.95).contains(&veil_max) {
         r.error(
             m.get("veil_max").map(|n| n.mark).unwrap_or(m.mark()),
@@ -212,12 +228,57 @@ fn read_scenario(r: &mut Reader, node: &crate::config::yaml::Node, dir: &Path) -
         instrument_name: inst_name,
         bands,
         veil_max,
+        optics: optics?,
         methods_yaml: String::new(),
         power_yaml: m
             .get("power")
             .and_then(|_| std::fs::read_to_string(r.file).ok())
             .and_then(|t| power_section(&t)),
     })
+}
+
+/// The `optics:` section: each departure from the base model with the
+/// range in which it stays physical.
+fn read_optics(r: &mut Reader, node: &crate::config::yaml::Node) -> Option<Optics> {
+    let m = r.map(node, "`optics`", OPTICS_KEYS)?;
+    let mut o = Optics::default();
+    let mut ok = true;
+    for (key, lo, hi, what) in [
+        ("veil_slope", -0.5, 0.5, "a change of the veil per 100 nm"),
+        (
+            "backscatter_scale",
+            0.0,
+            1.0,
+            "a scale of the blood's reflectance",
+        ),
+        (
+            "fundus_exponent",
+            0.0,
+            2.0,
+            "an exponent of the fundus reflectance",
+        ),
+        ("psf_px", 0.0, 5.0, "an SD in pixels"),
+        ("reflex", 0.0, 0.9, "a share of the light the axis absorbs"),
+    ] {
+        let Some(n) = m.get(key) else { continue };
+        let Some(v) = r.number(n, &format!("`{key}`")) else {
+            ok = false;
+            continue;
+        };
+        if !(lo..=hi).contains(&v) {
+            r.error(n.mark, format!("`{key}` {v} is outside {lo}–{hi} ({what})"));
+            ok = false;
+            continue;
+        }
+        match key {
+            "veil_slope" => o.veil_slope = v,
+            "backscatter_scale" => o.backscatter_scale = v,
+            "fundus_exponent" => o.fundus_exponent = v,
+            "psf_px" => o.psf_px = v,
+            _ => o.reflex = v,
+        }
+    }
+    ok.then_some(o)
 }
 
 /// The top-level `power:` section of a scenario file's text, verbatim: its
@@ -566,7 +627,7 @@ pub fn simulate(sc: &Scenario, out: &Path) -> Result<PathBuf> {
                 pigmentation: s.pigmentation as f64,
                 veil: s.veil,
                 hb_g_per_l: s.physiology.hb_g_per_l,
-                backscatter: BLOOD_BACKSCATTER,
+                optics: sc.optics,
                 well_electrons: 20_000.0,
                 read_noise_electrons: 6.0,
             };
@@ -800,6 +861,12 @@ fn write_truth(
     writeln!(
         r,
         "backscatter_fraction: {BLOOD_BACKSCATTER}\ndouble_pass_fraction: 0.30 + 0.12 sin(9 f + phase) along each segment\nwell_electrons: 20000\nread_noise_electrons: 6"
+    )?;
+    let o = &sc.optics;
+    writeln!(
+        r,
+        "optics: {{veil_slope: {}, backscatter_scale: {}, fundus_exponent: {}, psf_px: {}, reflex: {}}}",
+        o.veil_slope, o.backscatter_scale, o.fundus_exponent, o.psf_px, o.reflex
     )?;
     writeln!(r, "band_offsets_px:")?;
     for ((name, _, _), (dx, dy)) in sc.bands.iter().zip(band_offsets) {

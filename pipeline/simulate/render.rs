@@ -15,9 +15,9 @@
 use rand::Rng;
 use rand_distr::{Distribution, Normal};
 
-use crate::config::segments::Segment;
+use super::optics::{BandOptics, Optics, blur};
+use crate::config::segments::{Segment, VesselKind};
 use crate::oximetry::bands::SampledBand;
-use crate::oximetry::model::VesselModel;
 
 /// A vessel's centre line moved into one capture and band, with its diameters.
 type MovedVessel = (Vec<(f64, f64)>, Vec<f64>);
@@ -58,7 +58,8 @@ pub struct Scene<'a> {
     pub pigmentation: f64,
     pub veil: f64,
     pub hb_g_per_l: f64,
-    pub backscatter: f64,
+    /// Departures from the base model (all at rest for the base model).
+    pub optics: Optics,
     pub well_electrons: f64,
     pub read_noise_electrons: f64,
 }
@@ -71,20 +72,17 @@ pub fn background_reflectance(nm: f64, pigmentation: f64) -> f64 {
     base * (-(0.25 * pigmentation) * (550.0 / nm).powi(4)).exp()
 }
 
-/// Band-averaged ⟨t⟩ and ⟨t²⟩ on a chord grid of 1 µm, from the engine's
-/// model family.
+/// A band's transmission terms `(c0, c1)` ([`BandOptics::terms`]) on a
+/// chord grid of 1 µm.
 pub(crate) struct ChordTable {
     pub t1: Vec<f64>,
     pub t2: Vec<f64>,
 }
 
 impl ChordTable {
-    pub fn new(model: &VesselModel, band: usize, so2: f64, hb: f64, max_um: usize) -> Self {
+    pub fn new(band: &BandOptics, optics: &Optics, so2: f64, hb: f64, max_um: usize) -> Self {
         let (t1, t2) = (0..=max_um + 1)
-            .map(|i| {
-                let ((e1, _, _), (e2, _, _)) = model.path_terms(band, so2, hb, i as f64);
-                (e1, e2)
-            })
+            .map(|i| band.terms(optics, so2, hb, i as f64))
             .unzip();
         ChordTable { t1, t2 }
     }
@@ -134,18 +132,21 @@ pub fn render(
     let normal = Normal::new(0.0, 1.0).expect("unit normal");
     let max_d = 220usize;
     let mut out = Vec::with_capacity(scene.bands.len());
-    // The fundus behind the vessel weights each band's spectrum.
-    let model = VesselModel::new(
-        scene.bands,
-        |l| background_reflectance(l, scene.pigmentation),
-        scene.backscatter,
-    );
-    for (b, band) in scene.bands.iter().enumerate() {
+    let optics = &scene.optics;
+    for band in scene.bands.iter() {
+        // The fundus behind the vessel weights each band's spectrum.
+        let bo = BandOptics::new(
+            band,
+            optics,
+            |l| background_reflectance(l, scene.pigmentation),
+            |l| background_reflectance(l, scene.pigmentation),
+        );
         let refl = band.average(|l| background_reflectance(l, scene.pigmentation));
         let tables: Vec<ChordTable> = vessels
             .iter()
-            .map(|v| ChordTable::new(&model, b, v.so2, scene.hb_g_per_l, max_d))
+            .map(|v| ChordTable::new(&bo, optics, v.so2, scene.hb_g_per_l, max_d))
             .collect();
+        let b = out.len();
         // Vessel polylines in this capture and band.
         let (ox, oy) = scene.band_offsets[b];
         let moved: Vec<MovedVessel> = vessels
@@ -215,8 +216,17 @@ pub fn render(
                             let chord = 2.0 * (radius_um * radius_um - d_um * d_um).sqrt();
                             let (e1, e2) = tables[vi].at(chord.min(max_d as f64));
                             let f2 = (v.double_pass)(frac);
-                            let f1 = 1.0 - scene.backscatter - f2;
-                            acc += scene.backscatter + f1 * e1 + f2 * e2;
+                            let t = e1 + f2 * e2;
+                            // A central reflex gives back part of the light
+                            // the axis of an arteriole absorbs.
+                            acc += if optics.reflex > 0.0
+                                && v.segment.kind == VesselKind::Arteriole
+                                && d_um < radius_um / 3.0
+                            {
+                                t + optics.reflex * (1.0 - t)
+                            } else {
+                                t
+                            };
                         }
                     }
                     if inside {
@@ -225,16 +235,26 @@ pub fn render(
                 }
             }
         }
-        let mut img = Vec::with_capacity(w * h);
-        let dn_per_e = 65535.0 / scene.well_electrons;
+        let veil = bo.veil(optics, scene.veil);
+        let mut light = Vec::with_capacity(w * h);
         for y in 0..h {
             for x in 0..w {
                 let (u, v) = ((x as f64 - cx) / cx, (y as f64 - cy) / cy);
                 let vign = 1.0 - 0.35 * (u * u + v * v);
                 let texture = 1.0 + 0.04 * ((x as f64 * 0.031).sin() * (y as f64 * 0.027).cos());
-                let t_obs = (1.0 - scene.veil) * trans[y * w + x] + scene.veil;
+                let t_obs = (1.0 - veil) * trans[y * w + x] + veil;
                 let signal = exposure * refl / 0.22 * vign * texture;
-                let electrons = (signal * t_obs * scene.well_electrons * 0.8).max(0.0);
+                light.push(signal * t_obs);
+            }
+        }
+        // The eye's and camera's optics blur the light before the sensor
+        // counts it.
+        blur(&mut light, w, h, optics.psf_px);
+        let mut img = Vec::with_capacity(w * h);
+        let dn_per_e = 65535.0 / scene.well_electrons;
+        for y in 0..h {
+            for x in 0..w {
+                let electrons = (light[y * w + x] * scene.well_electrons * 0.8).max(0.0);
                 let noisy = electrons
                     + electrons.sqrt() * normal.sample(rng)
                     + scene.read_noise_electrons * normal.sample(rng);

@@ -16,17 +16,20 @@ use super::stage::{Run, Stage};
 use super::transmissions::{PositionRow, TransmissionTables, Transmissions};
 use crate::config::segments::VesselKind;
 use crate::config::study::{Calibration, Loss, Method, MethodKind, Study};
+use crate::config::vessel_model::ModelChoice;
 use crate::fit::Termination;
 use crate::oximetry::bands::SampledBand;
 use crate::oximetry::model::{BLOOD_BACKSCATTER, VesselModel};
 use crate::oximetry::odr::{
-    Linear, diameter_corrected, leave_one_subject_out, segment_odr, two_point, within_group_slope,
+    Calibrated, Linear, diameter_corrected, inverse_calibration, leave_one_subject_out,
+    segment_odr, two_point, two_point_slope_se, within_group_slope,
 };
 use crate::oximetry::pointwise::fit_pointwise;
 use crate::oximetry::segment::{
     ADEQUACY_FALSE_ALARM, Adequacy, FitSettings, MISFIT_MIN_RESIDUAL, RobustLoss, SegmentFitError,
-    SegmentSpectra, fit_segment,
+    SegmentSpectra, fit_segment, fit_segment_choosing,
 };
+use crate::oximetry::sensitivity::supported_models;
 use crate::runner::key::{Key, KeyBuilder};
 use crate::runner::{Items, Runner};
 use crate::tables::Table;
@@ -81,7 +84,7 @@ pub(crate) fn misfit_warnings(rows: &[FitRow], epochs: &EpochTables, study: &Stu
         }
         let shown: Vec<String> = segs.iter().take(5).cloned().collect();
         out.push(format!(
-            "`{}`: the vessel model does not describe the spectra of {} of {} segment fits ({:.0} %, more than {:.0} %): bands {} off on average (model − measured); e.g. {}{}. SO2 from these fits may be biased by several points: look at the residual columns of `fits/so2` and consider restricting the statistics to adequate fits",
+            "`{}`: the vessel model does not describe the spectra of {} of {} segment fits ({:.0} %, more than {:.0} %): bands {} off on average (model − measured); e.g. {}{}. SO2 from these fits may be biased by several points: look at the residual columns of `fits/so2`, and fit an extended model (`model: auto`, or the extensions `satstep sensitivity` says the bands support) or restrict the statistics to adequate fits",
             m.label,
             misfits.len(),
             fitted.len(),
@@ -170,6 +173,14 @@ pub struct FitRow {
     /// Joint multiband fits: mean residual per band of the method, in % of
     /// the transmission, as (instrument band index, residual).
     pub band_residuals: Vec<(usize, f64)>,
+    /// Joint multiband fits: the model fitted (`base` or its extensions),
+    /// the one `model: auto` chose.
+    pub model: Option<String>,
+    /// Joint multiband fits: the extensions' parameters where fitted
+    /// (veil change per 100 nm, albedo scale, double-pass change per 100 nm).
+    pub veil_slope: Option<f64>,
+    pub backscatter_scale: Option<f64>,
+    pub fundus_slope: Option<f64>,
 }
 
 impl FitRow {
@@ -185,10 +196,10 @@ pub struct Fits;
 
 impl Stage for Fits {
     const NAME: &'static str = "fits";
-    const VERSION: u32 = 5;
+    const VERSION: u32 = 6;
     const SUMMARY: &'static str = "SO2 of every segment of every capture by each method";
     const UPSTREAM: &'static [&'static str] = &["epochs", "transmissions"];
-    type Output = Vec<FitRow>;
+    type Output = FitTables;
 
     /// The methods and the bands they read.
     fn settings(study: &Study) -> Key {
@@ -199,7 +210,7 @@ impl Stage for Fits {
         k.finish()
     }
 
-    fn build(run: &Run, runner: &Runner) -> Result<(Vec<FitRow>, String)> {
+    fn build(run: &Run, runner: &Runner) -> Result<(FitTables, String)> {
         let study = run.study;
         let multiband = study
             .methods
@@ -211,7 +222,7 @@ impl Stage for Fits {
             run.output::<Transmissions>().keys.len() * multiband,
             "fits",
         );
-        let rows = build(
+        let tables = build(
             study,
             run.output::<Epochs>(),
             run.output::<Transmissions>(),
@@ -219,23 +230,30 @@ impl Stage for Fits {
             &items,
         )?;
         let detail = items.finish("multiband capture fits")?;
+        let rows = &tables.rows;
         let d = format!(
             "{} segment fits over {} methods, {} with an SO2 ({detail})",
             rows.len(),
             study.methods.len(),
             rows.iter().filter(|f| f.so2.is_some()).count()
         );
-        Ok((rows, d))
+        Ok((tables, d))
     }
 
-    fn write(rows: &Vec<FitRow>, run: &Run, _: &Runner) -> Result<Vec<PathBuf>> {
-        write(rows, run.output::<Epochs>(), run.study, run.out())
+    fn write(tables: &FitTables, run: &Run, _: &Runner) -> Result<Vec<PathBuf>> {
+        let mut files = write(&tables.rows, run.output::<Epochs>(), run.study, run.out())?;
+        files.extend(write_calibrations(&tables.calibrations, run.out())?);
+        Ok(files)
     }
 
     /// Says when a method's model does not describe the spectra of more
     /// than [`MISFIT_WARN_SHARE`] of its fits, naming the bands and segments.
     fn report(run: &Run, runner: &Runner) {
-        for line in misfit_warnings(run.output::<Fits>(), run.output::<Epochs>(), run.study) {
+        for line in misfit_warnings(
+            &run.output::<Fits>().rows,
+            run.output::<Epochs>(),
+            run.study,
+        ) {
             runner.warn(line);
         }
     }
@@ -254,7 +272,7 @@ fn build(
     images: &TransmissionTables,
     runner: &Runner,
     items: &Items,
-) -> Result<Vec<FitRow>> {
+) -> Result<FitTables> {
     let bands: Vec<SampledBand> = study
         .instrument
         .bands
@@ -308,6 +326,7 @@ fn build(
         })
         .collect::<Result<_>>()?;
     let mut out = Vec::new();
+    let mut calibrations = Vec::new();
     for (mi, m) in study.methods.iter().enumerate() {
         let mut rows: Vec<FitRow> = per_capture
             .iter()
@@ -322,11 +341,56 @@ fn build(
             if *diameter_correction {
                 correct_for_diameter(&mut rows);
             }
-            calibrate(&mut rows, calibration, study, epochs);
+            calibrations.extend(
+                calibrate(&mut rows, calibration, study, epochs)
+                    .into_iter()
+                    .map(|(subject, c)| CalibrationRow {
+                        method: m.label.clone(),
+                        subject,
+                        line: c,
+                    }),
+            );
         }
         out.extend(rows);
     }
-    Ok(out)
+    Ok(FitTables {
+        rows: out,
+        calibrations,
+    })
+}
+
+/// What the fits stage hands on: every segment fit, and each two-band
+/// method's calibration lines.
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
+pub struct FitTables {
+    pub rows: Vec<FitRow>,
+    pub calibrations: Vec<CalibrationRow>,
+}
+
+/// One calibration line of a two-band method: for the whole cohort
+/// (`subject` empty) or for one subject (leave-one-out regression, or
+/// within-subject).
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
+pub struct CalibrationRow {
+    pub method: String,
+    pub subject: Option<String>,
+    pub line: Calibrated,
+}
+
+/// `fits/calibration`: one row per calibration line.
+fn write_calibrations(rows: &[CalibrationRow], out: &Path) -> Result<Vec<PathBuf>> {
+    let mut t = Table::new();
+    t.text("method", rows.iter().map(|r| &r.method))
+        .opt_text("subject", rows.iter().map(|r| r.subject.clone()))
+        .real("intercept", rows.iter().map(|r| r.line.intercept))
+        .real("slope", rows.iter().map(|r| r.line.slope))
+        .opt_real(
+            "slope_se",
+            rows.iter()
+                .map(|r| Some(r.line.slope_se).filter(|v| v.is_finite())),
+        )
+        .int("points", rows.iter().map(|r| r.line.points as i64));
+    Ok(t.write(&out.join("fits"), "calibration")?)
 }
 
 /// One capture's segments by one method (before any cohort calibration).
@@ -378,6 +442,10 @@ fn fit_capture(
                 adequacy: None,
                 misfit_t: None,
                 band_residuals: Vec::new(),
+                model: None,
+                veil_slope: None,
+                backscatter_scale: None,
+                fundus_slope: None,
             };
             if pos.len() < MIN_POSITIONS {
                 return row;
@@ -404,6 +472,8 @@ fn fit_capture(
                     bands: sel,
                     loss,
                     pointwise,
+                    model: choice,
+                    ..
                 } => {
                     let (model, settings) = multiband_model(bands, sel, *loss);
                     let spectra = SegmentSpectra {
@@ -427,8 +497,21 @@ fn fit_capture(
                             positions: f.positions.len(),
                         }
                     } else {
-                        match fit_segment(&model, &spectra, &settings) {
+                        let fitted = match choice {
+                            ModelChoice::Fixed(e) => {
+                                fit_segment(&model.clone().with_extensions(*e), &spectra, &settings)
+                            }
+                            ModelChoice::Auto => {
+                                fit_segment_choosing(&supported_models(&model), &spectra, &settings)
+                            }
+                        };
+                        match fitted {
                             Ok(f) => {
+                                row.model = Some(f.model.name());
+                                let fitted = |v: (f64, f64)| Some(v.0).filter(|x| x.is_finite());
+                                row.veil_slope = fitted(f.veil_slope);
+                                row.backscatter_scale = fitted(f.backscatter_scale);
+                                row.fundus_slope = fitted(f.fundus_slope);
                                 row.so2 = Some(f.so2 * 100.0);
                                 row.so2_se = Some(f.so2_se * 100.0);
                                 row.reduced_chi2 = Some(f.reduced_chi2);
@@ -518,9 +601,46 @@ pub(crate) fn correct_for_diameter(rows: &mut [FitRow]) -> Option<(f64, f64)> {
     Some((slope, reference))
 }
 
-/// Applies the two-band calibration to rows holding ODRs.
-fn calibrate(rows: &mut [FitRow], cal: &Calibration, study: &Study, epochs: &EpochTables) {
+/// Applies the two-band calibration to rows holding ODRs; returns the
+/// lines used, per subject where the mode has one per subject.
+fn calibrate(
+    rows: &mut [FitRow],
+    cal: &Calibration,
+    study: &Study,
+    epochs: &EpochTables,
+) -> Vec<(Option<String>, Calibrated)> {
     let c = &epochs.captures;
+    let steady = |r: &FitRow| c[r.capture_index].status == CaptureStatus::Steady;
+    // Steady arterioles with a reference: (subject, ODR, SpO2).
+    let arterioles: Vec<(String, f64, f64)> = rows
+        .iter()
+        .filter(|r| r.kind == VesselKind::Arteriole && steady(r))
+        .filter_map(|r| {
+            Some((
+                c[r.capture_index].subject.clone(),
+                r.odr?,
+                c[r.capture_index].spo2?,
+            ))
+        })
+        .collect();
+    let per_subject = |rows: &mut [FitRow], lines: &BTreeMap<String, Option<Calibrated>>| {
+        for r in rows.iter_mut() {
+            let l = lines.get(&c[r.capture_index].subject).copied().flatten();
+            r.so2 = l.and_then(|l| {
+                r.odr.map(|o| {
+                    Linear {
+                        intercept: l.intercept,
+                        slope: l.slope,
+                    }
+                    .apply(o)
+                })
+            });
+        }
+        lines
+            .iter()
+            .filter_map(|(s, l)| Some((Some(s.clone()), (*l)?)))
+            .collect()
+    };
     match cal {
         Calibration::Fixed { intercept, slope } => {
             let l = Linear {
@@ -530,12 +650,20 @@ fn calibrate(rows: &mut [FitRow], cal: &Calibration, study: &Study, epochs: &Epo
             for r in rows.iter_mut() {
                 r.so2 = r.odr.map(|o| l.apply(o));
             }
+            vec![(
+                None,
+                Calibrated {
+                    intercept: *intercept,
+                    slope: *slope,
+                    slope_se: f64::NAN,
+                    points: 0,
+                },
+            )]
         }
         Calibration::TwoPoint { epoch, venule_so2 } => {
             let name = &study.protocol.epochs[*epoch].name;
             let in_epoch = |r: &FitRow| {
-                c[r.capture_index].status == CaptureStatus::Steady
-                    && c[r.capture_index].epoch.as_deref() == Some(name.as_str())
+                steady(r) && c[r.capture_index].epoch.as_deref() == Some(name.as_str())
             };
             let a: Vec<(f64, f64)> = rows
                 .iter()
@@ -547,15 +675,21 @@ fn calibrate(rows: &mut [FitRow], cal: &Calibration, study: &Study, epochs: &Epo
                 .filter(|r| r.kind == VesselKind::Venule && in_epoch(r))
                 .filter_map(|r| r.odr)
                 .collect();
+            let se_of_mean = |x: &[f64]| {
+                if x.len() < 2 {
+                    return f64::NAN;
+                }
+                let m = mean(x);
+                (x.iter().map(|v| (v - m).powi(2)).sum::<f64>()
+                    / (x.len() - 1) as f64
+                    / x.len() as f64)
+                    .sqrt()
+            };
+            let (oa, sa): (Vec<f64>, Vec<f64>) = a.iter().copied().unzip();
             let line = if a.is_empty() || v.is_empty() {
                 None
             } else {
-                two_point(
-                    mean(&a.iter().map(|p| p.0).collect::<Vec<_>>()),
-                    mean(&a.iter().map(|p| p.1).collect::<Vec<_>>()),
-                    mean(&v),
-                    *venule_so2,
-                )
+                two_point(mean(&oa), mean(&sa), mean(&v), *venule_so2)
             };
             for r in rows.iter_mut() {
                 r.so2 = line.and_then(|l| r.odr.map(|o| l.apply(o)));
@@ -565,30 +699,63 @@ fn calibrate(rows: &mut [FitRow], cal: &Calibration, study: &Study, epochs: &Epo
                     };
                 }
             }
+            line.map(|l| {
+                (
+                    None,
+                    Calibrated {
+                        intercept: l.intercept,
+                        slope: l.slope,
+                        slope_se: two_point_slope_se(
+                            &l,
+                            mean(&oa),
+                            mean(&v),
+                            se_of_mean(&oa),
+                            se_of_mean(&v),
+                            se_of_mean(&sa),
+                        ),
+                        points: a.len() + v.len(),
+                    },
+                )
+            })
+            .into_iter()
+            .collect()
         }
         Calibration::Regression => {
-            let pairs: Vec<(&str, f64, f64)> = rows
+            let pairs: Vec<(&str, f64, f64)> = arterioles
                 .iter()
-                .filter(|r| {
-                    r.kind == VesselKind::Arteriole
-                        && c[r.capture_index].status == CaptureStatus::Steady
-                })
-                .filter_map(|r| {
-                    Some((
-                        c[r.capture_index].subject.as_str(),
-                        r.odr?,
-                        c[r.capture_index].spo2?,
-                    ))
-                })
+                .map(|(s, o, p)| (s.as_str(), *o, *p))
                 .collect();
-            let cal: BTreeMap<String, Option<Linear>> = leave_one_subject_out(&pairs)
+            let lines: BTreeMap<String, Option<Calibrated>> = leave_one_subject_out(&pairs)
                 .into_iter()
-                .map(|(s, l)| (s.to_string(), l))
+                .map(|(s, _)| {
+                    let (x, y): (Vec<f64>, Vec<f64>) = pairs
+                        .iter()
+                        .filter(|p| p.0 != s)
+                        .map(|p| (p.1, p.2))
+                        .unzip();
+                    (s.to_string(), inverse_calibration(&x, &y))
+                })
                 .collect();
-            for r in rows.iter_mut() {
-                let l = cal.get(&c[r.capture_index].subject).copied().flatten();
-                r.so2 = l.and_then(|l| r.odr.map(|o| l.apply(o)));
+            per_subject(rows, &lines)
+        }
+        Calibration::WithinSubject => {
+            let mut by: BTreeMap<String, (Vec<f64>, Vec<f64>)> = BTreeMap::new();
+            for (s, o, p) in &arterioles {
+                let e = by.entry(s.clone()).or_default();
+                e.0.push(*o);
+                e.1.push(*p);
             }
+            let lines: BTreeMap<String, Option<Calibrated>> = by
+                .into_iter()
+                .map(|(s, (x, y))| (s, inverse_calibration(&x, &y)))
+                .collect();
+            // Subjects without arterioles get no line (and no SO2).
+            let mut all = lines.clone();
+            for r in rows.iter() {
+                all.entry(c[r.capture_index].subject.clone())
+                    .or_insert(None);
+            }
+            per_subject(rows, &all)
         }
     }
 }
@@ -622,6 +789,13 @@ fn write(rows: &[FitRow], epochs: &EpochTables, study: &Study, out: &Path) -> Re
                 .map(|r| r.adequacy.map(|a| a.as_str().to_string())),
         )
         .opt_real("misfit_t", rows.iter().map(|r| r.misfit_t))
+        .opt_text("model", rows.iter().map(|r| r.model.clone()))
+        .opt_real("veil_slope", rows.iter().map(|r| r.veil_slope))
+        .opt_real(
+            "backscatter_scale",
+            rows.iter().map(|r| r.backscatter_scale),
+        )
+        .opt_real("fundus_slope", rows.iter().map(|r| r.fundus_slope))
         .int("iterations", rows.iter().map(|r| r.iterations))
         .int("evaluations", rows.iter().map(|r| r.evaluations))
         .text(
@@ -645,6 +819,52 @@ fn write(rows: &[FitRow], epochs: &EpochTables, study: &Study, out: &Path) -> Re
     Ok(t.write(&out.join("fits"), "so2")?)
 }
 
+/// What a joint method's model choice adds to the methods text.
+fn model_sentence(choice: ModelChoice, bands: &[SampledBand]) -> String {
+    let describe = |e: crate::oximetry::model::Extensions| {
+        let mut parts = Vec::new();
+        if e.veil_slope {
+            parts.push("a veil linear in wavelength");
+        }
+        if e.backscatter {
+            parts.push(
+                "a blood backscatter proportional to the albedo μs'/(μs' + μa(λ)) with μs' = 15 /cm",
+            );
+        }
+        if e.fundus {
+            parts.push(
+                "a double-pass fraction linear in wavelength (following the fundus reflectance)",
+            );
+        }
+        parts.join(", ")
+    };
+    match choice {
+        ModelChoice::Fixed(e) if e == crate::oximetry::model::Extensions::BASE => String::new(),
+        ModelChoice::Fixed(e) => format!(
+            " The model was extended by {}, each one parameter shared along the segment.",
+            describe(e)
+        ),
+        ModelChoice::Auto => {
+            let base = VesselModel::new(bands, |_| 1.0, BLOOD_BACKSCATTER);
+            let supported: Vec<String> = crate::oximetry::sensitivity::support(&base)
+                .into_iter()
+                .filter(|s| s.supported && s.extensions.count() > 0)
+                .map(|s| describe(s.extensions))
+                .collect();
+            format!(
+                " For each segment the model was chosen by Schwarz's information criterion (with the residual sum of squares under the Huber loss at a cut-off of 1.5 times the stated noise) among the base model and its extensions that these {} bands separate from SO2, that is those that inflate its standard error at most {}-fold: {}; each extension is one parameter shared along the segment.",
+                bands.len(),
+                crate::oximetry::sensitivity::SUPPORT_MAX_INFLATION,
+                if supported.is_empty() {
+                    "none".to_string()
+                } else {
+                    supported.join("; ")
+                }
+            )
+        }
+    }
+}
+
 /// This stage's part of the report's methods text: one sentence per method.
 fn describe(study: &Study) -> String {
     let band = |i: &usize| study.instrument.bands[*i].name.clone();
@@ -657,7 +877,8 @@ fn describe(study: &Study) -> String {
                 let cal = match calibration {
                     Calibration::Fixed { intercept, slope } => format!("with fixed constants (SO2 = {intercept} + {slope}·ODR)"),
                     Calibration::TwoPoint { epoch, venule_so2 } => format!("calibrated from two points in epoch `{}`: arterioles at the reference SpO2 and venules at {venule_so2} %", study.protocol.epochs[*epoch].name),
-                    Calibration::Regression => "calibrated by regression on the reference SpO2, leaving each subject out of its own calibration".to_string(),
+                    Calibration::Regression => "calibrated against the reference SpO2 across subjects, leaving each subject out of its own calibration, by classical calibration (arteriolar ODR regressed on SpO2 and the line inverted, so that noise in ODR does not shrink the slope)".to_string(),
+                    Calibration::WithinSubject => "calibrated within each subject by classical calibration (the subject's own arteriolar ODR regressed on the reference SpO2 across the protocol's epochs, steady captures, and the line inverted), so that the slope is free of what differs between subjects; the subject's arterioles then agree with the reference by construction, and its venules and the changes between epochs are what is measured".to_string(),
                 };
                 format!(
                     "`{}`: the optical density ratio ODR = log10(1/T_{})/log10(1/T_{}) of the segment's mean optical densities, SO2 linear in ODR, {cal}{}.",
@@ -671,7 +892,13 @@ fn describe(study: &Study) -> String {
                     }
                 )
             }
-            MethodKind::Multiband { bands, loss, pointwise } => {
+            MethodKind::Multiband {
+                bands,
+                loss,
+                pointwise,
+                model,
+                ..
+            } => {
                 let l = match loss {
                     Loss::Squared => "least squares".to_string(),
                     Loss::Huber { scale } => format!("a Huber loss (threshold {scale} noise SD)"),
@@ -687,6 +914,12 @@ fn describe(study: &Study) -> String {
                         crate::oximetry::segment::ADEQUACY_BLOCKS,
                         ADEQUACY_FALSE_ALARM * 100.0,
                         MISFIT_MIN_RESIDUAL * 100.0
+                    ) + &model_sentence(
+                        *model,
+                        &bands
+                            .iter()
+                            .map(|b| SampledBand::from_response(&study.instrument.bands[*b].response))
+                            .collect::<Vec<_>>(),
                     )
                 }
             }

@@ -161,7 +161,7 @@ pub(crate) struct StatisticsStage;
 
 impl Stage for StatisticsStage {
     const NAME: &'static str = "statistics";
-    const VERSION: u32 = 4;
+    const VERSION: u32 = 5;
     const SUMMARY: &'static str =
         "summaries, the epoch model and its contrasts, agreement with SpO2, method comparison";
     const UPSTREAM: &'static [&'static str] = &["epochs", "fits"];
@@ -180,7 +180,11 @@ impl Stage for StatisticsStage {
     }
 
     fn build(run: &Run, _: &Runner) -> Result<(StatisticsTables, String)> {
-        let s = build(run.study, run.output::<Epochs>(), run.output::<Fits>());
+        let s = build(
+            run.study,
+            run.output::<Epochs>(),
+            &run.output::<Fits>().rows,
+        );
         let d = format!(
             "{} subject × epoch summaries, {} contrasts, {} agreement rows",
             s.summaries.len(),
@@ -244,6 +248,8 @@ pub const ARTERIOVENOUS: &str = "arteriovenous";
 const UNIT_CAPTURES: &str = "capture means within subject × epoch";
 const UNIT_FITS: &str = "segment fits";
 const UNIT_CHANGES: &str = "subject × epoch changes from baseline (descriptive, pooled)";
+const UNIT_RATIO: &str =
+    "measured change / SpO2 change, mean of subjects' ratios, interval at the study's confidence";
 const UNIT_PAIRS: &str = "segment × capture pairs; limits for repeated measures per subject";
 
 /// What every part of the stage reads, and which segment values it uses.
@@ -579,11 +585,55 @@ fn comparison(cx: &Context, g: &Group, st: &mut StatisticsTables) {
     if let Some(slope) = slope_change_on_spo2_change(cx, g) {
         comp("slope_change_on_spo2_change", slope, UNIT_CHANGES);
     }
+    if let Some((ratio, lo, hi, n)) = change_ratio(cx, g) {
+        comp("change_ratio", ratio, UNIT_RATIO);
+        comp("change_ratio_lower", lo, UNIT_RATIO);
+        comp("change_ratio_upper", hi, UNIT_RATIO);
+        comp("change_ratio_subjects", n as f64, UNIT_RATIO);
+    }
+}
+
+/// The measured change over the reference's change, so that a method that
+/// shrinks (or inflates) the response shows at a glance: per subject, the
+/// least-squares ratio through the origin of the retinal change from
+/// baseline on the SpO2 change over the non-baseline epochs
+/// `Σ ΔSpO2·ΔSO2 / Σ ΔSpO2²`, then the mean over subjects with a t interval
+/// at the study's confidence (n − 1 df); subjects whose SpO2 moved by less
+/// than 1 point in every epoch give no ratio. Returns (ratio, lower, upper,
+/// subjects).
+fn change_ratio(cx: &Context, g: &Group) -> Option<(f64, f64, f64, usize)> {
+    use statrs::distribution::{ContinuousCDF, StudentsT};
+    let per_subject: Vec<f64> = changes_by_subject(cx, g)
+        .into_iter()
+        .filter_map(|pairs| {
+            let sxx: f64 = pairs.iter().map(|(x, _)| x * x).sum();
+            (pairs.iter().any(|(x, _)| x.abs() >= 1.0))
+                .then(|| pairs.iter().map(|(x, y)| x * y).sum::<f64>() / sxx)
+        })
+        .collect();
+    let n = per_subject.len();
+    if n < 2 {
+        return None;
+    }
+    let m = mean(&per_subject);
+    let sd = (per_subject.iter().map(|v| (v - m).powi(2)).sum::<f64>() / (n - 1) as f64).sqrt();
+    let q = StudentsT::new(0.0, 1.0, (n - 1) as f64)
+        .ok()?
+        .inverse_cdf(0.5 + cx.study.statistics.confidence / 2.0);
+    let half = q * sd / (n as f64).sqrt();
+    Some((m, m - half, m + half, n))
 }
 
 /// Slope of the retinal change on the SpO2 change (per subject and epoch
 /// against the baseline, pooled): a description, not a test.
 fn slope_change_on_spo2_change(cx: &Context, g: &Group) -> Option<f64> {
+    let (dx, dy): (Vec<f64>, Vec<f64>) = changes_by_subject(cx, g).into_iter().flatten().unzip();
+    crate::oximetry::odr::ols(&dx, &dy).map(|l| l.slope)
+}
+
+/// Per subject, its (SpO2 change, retinal change) from the baseline epoch
+/// for each other epoch where both exist (steady captures' means).
+fn changes_by_subject(cx: &Context, g: &Group) -> Vec<Vec<(f64, f64)>> {
     let spo2_mean = |s: &str, epoch: &str| -> Option<f64> {
         let v: Vec<f64> = cx
             .captures
@@ -603,21 +653,24 @@ fn slope_change_on_spo2_change(cx: &Context, g: &Group) -> Option<f64> {
         v
     };
     let base = cx.baseline();
-    let (mut dx, mut dy) = (Vec::new(), Vec::new());
-    for s in &subjects {
-        for e in cx.study.protocol.epochs.iter().filter(|e| e.name != base) {
-            if let (Some(r1), Some(r0), Some(s1), Some(s0)) = (
-                g.subject_mean(s, &e.name),
-                g.subject_mean(s, base),
-                spo2_mean(s, &e.name),
-                spo2_mean(s, base),
-            ) {
-                dx.push(s1 - s0);
-                dy.push(r1 - r0);
-            }
-        }
-    }
-    crate::oximetry::odr::ols(&dx, &dy).map(|l| l.slope)
+    subjects
+        .iter()
+        .map(|s| {
+            cx.study
+                .protocol
+                .epochs
+                .iter()
+                .filter(|e| e.name != base)
+                .filter_map(|e| {
+                    Some((
+                        spo2_mean(s, &e.name)? - spo2_mean(s, base)?,
+                        g.subject_mean(s, &e.name)? - g.subject_mean(s, base)?,
+                    ))
+                })
+                .collect::<Vec<_>>()
+        })
+        .filter(|v| !v.is_empty())
+        .collect()
 }
 
 /// The epoch model: its formula and boundary terms, variance components

@@ -170,3 +170,17 @@ pub fn hashes_except(root: &Path, skip: &[&str]) -> BTreeMap<String, String> {
 pub fn hashes(root: &Path) -> BTreeMap<String, String> {
     hashes_except(root, &[])
 }
+
+/// A CSV file's rows by column name.
+pub fn records(path: &Path) -> Vec<BTreeMap<String, String>> {
+    let mut r = csv::Reader::from_path(path).unwrap();
+    let head: Vec<String> = r.headers().unwrap().iter().map(String::from).collect();
+    r.records()
+        .map(|x| {
+            head.iter()
+                .cloned()
+                .zip(x.unwrap().iter().map(String::from))
+                .collect()
+        })
+        .collect()
+}

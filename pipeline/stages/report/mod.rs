@@ -36,7 +36,7 @@ pub(crate) struct Report;
 impl Stage for Report {
     const NAME: &'static str = "report";
     /// Version of the report's layout; bump when its output changes.
-    const VERSION: u32 = 4;
+    const VERSION: u32 = 5;
     const SUMMARY: &'static str = "the paper's tables and figures, report.html and report.md";
     const UPSTREAM: &'static [&'static str] =
         &["epochs", "transmissions", "fits", "statistics", "power"];
@@ -86,7 +86,7 @@ impl Stage for Report {
             study,
             epochs: run.output::<Epochs>(),
             images: run.output::<Transmissions>(),
-            fits: run.output::<Fits>(),
+            fits: &run.output::<Fits>().rows,
             stats: run.output::<StatisticsStage>(),
             power,
             methods: &run.methods,

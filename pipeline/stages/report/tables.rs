@@ -509,7 +509,7 @@ pub fn agreement(study: &Study, stats: &StatisticsTables) -> ReportTable {
 pub fn method_comparison(stats: &StatisticsTables) -> ReportTable {
     let mut t = ReportTable::new(
         "method_comparison",
-        "Method comparison on the same cohort: repeatability, uncertainty, spread along segments, values outside 0–100 %, response to the SpO2 change, and agreement between methods, each with the unit it is computed over",
+        "Method comparison on the same cohort: repeatability, uncertainty, spread along segments, values outside 0–100 %, response to the SpO2 change (its slope, and the ratio of the measured to the reference change with its interval: below 1 the method shrinks the response), and agreement between methods, each with the unit it is computed over",
         &[
             ("method", false),
             ("kind", false),
@@ -518,20 +518,43 @@ pub fn method_comparison(stats: &StatisticsTables) -> ReportTable {
             ("unit", false),
         ],
     );
+    let find = |m: &str, k: &str, q: &str| {
+        stats
+            .comparison
+            .iter()
+            .find(|r| r.method == m && r.kind == k && r.quantity == q)
+            .map(|r| r.value)
+    };
     for r in &stats.comparison {
         let q = &r.quantity;
-        let digits = if q.contains("share") || q.contains("slope") {
+        // The ratio's interval and subject count join the ratio's row.
+        if q.starts_with("change_ratio_") {
+            continue;
+        }
+        let digits = if q.contains("share") || q.contains("slope") || q.contains("ratio") {
             3
         } else if q == "n" || q == "pairs" || q.starts_with("values") {
             0
         } else {
             2
         };
+        let value = if q == "change_ratio" {
+            let at = |x: &str| find(&r.method, &r.kind, x);
+            format!(
+                "{} ({} to {}, {} subjects)",
+                f(r.value, digits),
+                f(at("change_ratio_lower").unwrap_or(f64::NAN), digits),
+                f(at("change_ratio_upper").unwrap_or(f64::NAN), digits),
+                f(at("change_ratio_subjects").unwrap_or(f64::NAN), 0)
+            )
+        } else {
+            f(r.value, digits)
+        };
         t.rows.push(vec![
             r.method.clone(),
             r.kind.clone(),
             q.replace('_', " "),
-            f(r.value, digits),
+            value,
             r.unit.clone(),
         ]);
     }

@@ -59,7 +59,7 @@ fn capture(motion: Motion, noise_seed: Option<u64>) -> Vec<Vec<u16>> {
         pigmentation: 2.0,
         veil: 0.1,
         hb_g_per_l: 150.0,
-        backscatter: BLOOD_BACKSCATTER,
+        optics: Default::default(),
         // Without noise: an enormous well makes shot noise negligible.
         well_electrons: if noise_seed.is_some() { 20_000.0 } else { 1e15 },
         read_noise_electrons: if noise_seed.is_some() { 6.0 } else { 0.0 },
@@ -262,7 +262,7 @@ fn profiles_recover_known_transmission_and_diameter() {
             pigmentation: 2.0,
             veil,
             hb_g_per_l: 150.0,
-            backscatter: BLOOD_BACKSCATTER,
+            optics: Default::default(),
             well_electrons: if noisy { 20_000.0 } else { 1e15 },
             read_noise_electrons: if noisy { 6.0 } else { 0.0 },
         };
@@ -280,17 +280,7 @@ fn profiles_recover_known_transmission_and_diameter() {
             BLOOD_BACKSCATTER,
         );
         let mut truth = vec![0.0; 2];
-        model.transmission(
-            &Shared {
-                so2,
-                hb_g_per_l: 150.0,
-                veil,
-            },
-            0.3,
-            d_um,
-            &mut truth,
-            None,
-        );
+        model.transmission(&Shared::new(so2, 150.0, veil), 0.3, d_um, &mut truth, None);
         let res = analyse_segment(&img, &seg.points, &[], 0, &ProfileSettings::default());
         assert!(res.len() > 40);
         let ok: Vec<_> = res.iter().filter(|r| r.flags.is_empty()).collect();
@@ -364,7 +354,7 @@ fn dark_flat_and_band_offsets_are_corrected() {
             pigmentation: 2.0,
             veil: 0.1,
             hb_g_per_l: 150.0,
-            backscatter: BLOOD_BACKSCATTER,
+            optics: Default::default(),
             well_electrons: 1e15,
             read_noise_electrons: 0.0,
         };
@@ -522,7 +512,7 @@ fn a_central_reflex_does_not_bias_the_transmission() {
         pigmentation: 2.0,
         veil,
         hb_g_per_l: 150.0,
-        backscatter: BLOOD_BACKSCATTER,
+        optics: Default::default(),
         well_electrons: 1e15,
         read_noise_electrons: 0.0,
     };
@@ -557,17 +547,7 @@ fn a_central_reflex_does_not_bias_the_transmission() {
         BLOOD_BACKSCATTER,
     );
     let mut truth = vec![0.0; 2];
-    model.transmission(
-        &Shared {
-            so2,
-            hb_g_per_l: 150.0,
-            veil,
-        },
-        0.3,
-        d_um,
-        &mut truth,
-        None,
-    );
+    model.transmission(&Shared::new(so2, 150.0, veil), 0.3, d_um, &mut truth, None);
     for (bands_px, reflex) in [
         (pages.iter().map(|p| as_f32(p)).collect::<Vec<_>>(), false),
         (with_reflex, true),

@@ -1,5 +1,6 @@
 //! The engines, checked against published values and richer physics.
 
+mod extensions;
 mod images;
 mod nist;
 mod oximetry;

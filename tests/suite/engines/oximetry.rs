@@ -77,17 +77,7 @@ fn spectra(
         let diam = 130.0 - 30.0 * f;
         let f2 = 0.3 + 0.1 * (7.0 * f).sin();
         let mut out = vec![0.0; model.n_bands()];
-        model.transmission(
-            &Shared {
-                so2,
-                hb_g_per_l: 150.0,
-                veil,
-            },
-            f2,
-            diam,
-            &mut out,
-            None,
-        );
+        model.transmission(&Shared::new(so2, 150.0, veil), f2, diam, &mut out, None);
         d.push(diam);
         t.push(out.iter().map(|v| v * (1.0 + noise.sample(rng))).collect());
     }
@@ -249,11 +239,7 @@ fn the_veil_inflates_error_propagation_in_every_band() {
     let op = OperatingPoint::default();
     let mut clear = vec![0.0; model.n_bands()];
     model.transmission(
-        &Shared {
-            so2: op.so2,
-            hb_g_per_l: op.hb_g_per_l,
-            veil: 0.0,
-        },
+        &Shared::new(op.so2, op.hb_g_per_l, 0.0),
         op.double_pass,
         op.diameter_um,
         &mut clear,
@@ -348,11 +334,7 @@ fn linearised_errors_predict_the_joint_fit_shift() {
                 let diam = op.diameter_um * (1.0 + 0.3 * f);
                 let mut out = vec![0.0; model.n_bands()];
                 model.transmission(
-                    &Shared {
-                        so2: op.so2,
-                        hb_g_per_l: op.hb_g_per_l,
-                        veil,
-                    },
+                    &Shared::new(op.so2, op.hb_g_per_l, veil),
                     op.double_pass * (1.0 + 0.3 * (7.0 * f).sin()),
                     diam,
                     &mut out,
@@ -463,11 +445,7 @@ fn spectra_with_veil_slope(
         let diam = 130.0 - 30.0 * f;
         let f2 = 0.3 + 0.1 * (7.0 * f).sin();
         let mut out = vec![0.0; model.n_bands()];
-        let shared = Shared {
-            so2,
-            hb_g_per_l: 150.0,
-            veil: 0.0,
-        };
+        let shared = Shared::new(so2, 150.0, 0.0);
         model.transmission(&shared, f2, diam, &mut out, None);
         for (b, v) in out.iter_mut().enumerate() {
             let k = k0 + dk * (centres[b] - 506.0) / 110.0;

@@ -3,24 +3,8 @@
 //! flagged with its reason, counted in the report's capture accounting,
 //! and kept out of the fits and statistics; the rest of the study runs.
 
-use std::collections::BTreeMap;
-use std::path::Path;
 
 use crate::common::*;
-
-/// A CSV file's rows by column name.
-fn records(path: &Path) -> Vec<BTreeMap<String, String>> {
-    let mut r = csv::Reader::from_path(path).unwrap();
-    let head: Vec<String> = r.headers().unwrap().iter().map(String::from).collect();
-    r.records()
-        .map(|x| {
-            head.iter()
-                .cloned()
-                .zip(x.unwrap().iter().map(String::from))
-                .collect()
-        })
-        .collect()
-}
 
 #[test]
 fn a_partial_blink_is_flagged_counted_and_left_out() {

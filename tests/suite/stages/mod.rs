@@ -2,6 +2,7 @@
 
 mod blinks;
 mod demo;
+mod optics;
 mod report;
 mod runner;
 mod spectra;

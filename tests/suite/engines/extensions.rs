@@ -1,0 +1,296 @@
+//! The vessel model's extensions on spectra whose physics departs from the
+//! base model as real eyes do, rendered by the simulator's own optics
+//! (`simulate::optics`), which none of the extensions describes exactly:
+//! a veil that changes with wavelength, a blood backscatter that follows
+//! the albedo at another scattering coefficient, a double-pass share that
+//! follows the fundus reflectance.
+
+use rand::SeedableRng;
+use rand_distr::{Distribution, Normal};
+use rayon::prelude::*;
+use satstep::oximetry::bands::SampledBand;
+use satstep::oximetry::model::{BLOOD_BACKSCATTER, Extensions, VesselModel};
+use satstep::oximetry::segment::{
+    Adequacy, FitSettings, SegmentFit, SegmentSpectra, fit_segment, fit_segment_choosing,
+};
+use satstep::simulate::optics::{BandOptics, Optics};
+use satstep::simulate::render::background_reflectance;
+
+const CENTRES: [f64; 8] = [506.0, 522.0, 548.0, 560.0, 570.0, 586.0, 600.0, 616.0];
+
+fn bands() -> Vec<SampledBand> {
+    CENTRES
+        .iter()
+        .map(|c| SampledBand::gaussian(*c, 8.0))
+        .collect()
+}
+
+/// One segment's spectra under `optics` at veil `k`, with the image
+/// stage's noise: 1 % independent per position and band plus 1 % that
+/// wanders along the segment (AR(1), ρ = 0.9).
+pub fn spectra(optics: &Optics, so2: f64, k: f64, n: usize, seed: u64) -> SegmentSpectra {
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
+    let fundus = |l: f64| background_reflectance(l, 2.0);
+    let bo: Vec<BandOptics> = bands()
+        .iter()
+        .map(|b| BandOptics::new(b, optics, |_| 1.0, fundus))
+        .collect();
+    let white = Normal::new(0.0, 0.01).unwrap();
+    let innovation = Normal::new(0.0, 0.01 * (1.0f64 - 0.81).sqrt()).unwrap();
+    let mut drift: Vec<f64> = (0..bo.len()).map(|_| white.sample(&mut rng)).collect();
+    let (mut d, mut t) = (Vec::new(), Vec::new());
+    for p in 0..n {
+        let f = p as f64 / n as f64;
+        let diam = 130.0 - 30.0 * f;
+        let f2 = 0.3 + 0.1 * (7.0 * f).sin();
+        let row: Vec<f64> = bo
+            .iter()
+            .enumerate()
+            .map(|(b, o)| {
+                let (c0, c1) = o.terms(optics, so2, 150.0, diam);
+                let kb = o.veil(optics, k);
+                drift[b] = 0.9 * drift[b] + innovation.sample(&mut rng);
+                ((1.0 - kb) * (c0 + f2 * c1) + kb) * (1.0 + white.sample(&mut rng) + drift[b])
+            })
+            .collect();
+        d.push(diam);
+        t.push(row);
+    }
+    SegmentSpectra {
+        diameters_um: d,
+        transmissions: t,
+    }
+}
+
+pub fn model(ext: Extensions) -> VesselModel {
+    VesselModel::new(&bands(), |_| 1.0, BLOOD_BACKSCATTER).with_extensions(ext)
+}
+
+/// How a fit is chosen: one model, or the information criterion over all.
+#[derive(Clone, Copy)]
+pub enum Fitting {
+    One(Extensions),
+    Auto,
+}
+
+pub struct Summary {
+    pub bias: f64,
+    pub rms: f64,
+    pub misfit: f64,
+    pub chosen: Vec<(String, usize)>,
+}
+
+/// Fits `reps` segments at SO2 60 and 95 % and the given veil.
+pub fn summary(optics: &Optics, k: f64, fitting: Fitting, reps: u64) -> Summary {
+    let candidates = satstep::oximetry::sensitivity::supported_models(&model(Extensions::BASE));
+    let cases: Vec<(f64, u64)> = [0.6, 0.95]
+        .iter()
+        .flat_map(|s| (0..reps).map(move |i| (*s, i)))
+        .collect();
+    let fits: Vec<(f64, SegmentFit)> = cases
+        .par_iter()
+        .map(|(s, i)| {
+            let data = spectra(optics, *s, k, 60, i * 7919 + (s * 100.0) as u64);
+            let f = match fitting {
+                Fitting::One(e) => fit_segment(&model(e), &data, &FitSettings::default()),
+                Fitting::Auto => fit_segment_choosing(&candidates, &data, &FitSettings::default()),
+            }
+            .unwrap();
+            (*s, f)
+        })
+        .collect();
+    let n = fits.len() as f64;
+    let err: Vec<f64> = fits.iter().map(|(s, f)| (f.so2 - s) * 100.0).collect();
+    let mut chosen: std::collections::BTreeMap<String, usize> = Default::default();
+    for (_, f) in &fits {
+        *chosen.entry(f.model.name()).or_default() += 1;
+    }
+    Summary {
+        bias: err.iter().sum::<f64>() / n,
+        rms: (err.iter().map(|e| e * e).sum::<f64>() / n).sqrt(),
+        misfit: fits
+            .iter()
+            .filter(|(_, f)| f.adequacy == Adequacy::Misfit)
+            .count() as f64
+            / n,
+        chosen: chosen.into_iter().collect(),
+    }
+}
+
+fn ext(name: &str) -> Extensions {
+    Extensions::BASE.with(name).unwrap()
+}
+
+/// The effects and levels of the table in DEVELOPERS.md ("Model
+/// extensions"), each with the extension that describes it.
+fn effects() -> Vec<(&'static str, Optics, Option<Extensions>)> {
+    let o = Optics::default;
+    vec![
+        ("none", o(), None),
+        (
+            "veil slope 0.05",
+            Optics {
+                veil_slope: 0.05,
+                ..o()
+            },
+            Some(ext("veil-slope")),
+        ),
+        (
+            "veil slope 0.09",
+            Optics {
+                veil_slope: 0.09,
+                ..o()
+            },
+            Some(ext("veil-slope")),
+        ),
+        (
+            "fundus exponent 0.3",
+            Optics {
+                fundus_exponent: 0.3,
+                ..o()
+            },
+            Some(ext("fundus-slope")),
+        ),
+        (
+            "fundus exponent 0.6",
+            Optics {
+                fundus_exponent: 0.6,
+                ..o()
+            },
+            Some(ext("fundus-slope")),
+        ),
+        (
+            "backscatter 0.2",
+            Optics {
+                backscatter_scale: 0.2,
+                ..o()
+            },
+            Some(ext("backscatter-spectrum")),
+        ),
+        (
+            "backscatter 0.4",
+            Optics {
+                backscatter_scale: 0.4,
+                ..o()
+            },
+            Some(ext("backscatter-spectrum")),
+        ),
+    ]
+}
+
+/// Per effect and veil: bias and RMS of SO2 for the base model, the
+/// effect's own extension and `auto`, and the base fits' misfit share.
+/// Prints the table of DEVELOPERS.md; asserts what the issue of model
+/// adequacy asks where this band set can deliver it:
+/// - the base model is biased by each veil and fundus effect (> 4 points),
+///   its own extension and `auto` bring SO2 within 2 points at veils up to
+///   0.4, and `auto` stays within 1 point where there is no effect;
+/// - the adequacy test flags the base fits of a veil slope at both veils
+///   and of the stronger fundus effect at the low veil in ≥ 90 % of
+///   segments, and < 5 % where there is no effect.
+///
+/// The backscatter spectrum is refused for these bands (its SO2 standard
+/// error is 3 times the base model's, `support`), so `auto` leaves its bias
+/// of 1–3 points; the test holds it below 3.
+#[test]
+fn extensions_remove_the_biases_the_base_model_cannot_see() {
+    let reps = 10;
+    let mut failures = Vec::new();
+    eprintln!(
+        "| effect | veil k | base bias | base RMS | base misfits | extension bias | extension RMS | auto bias | auto RMS |"
+    );
+    eprintln!("|---|---|---|---|---|---|---|---|---|");
+    for (name, optics, own) in effects() {
+        for k in [0.1, 0.4] {
+            let base = summary(&optics, k, Fitting::One(Extensions::BASE), reps);
+            let own_fit = own.map(|e| summary(&optics, k, Fitting::One(e), reps));
+            let auto = summary(&optics, k, Fitting::Auto, reps);
+            eprintln!(
+                "| {name} | {k} | {:+.2} | {:.2} | {:.0} % | {} | {} | {:+.2} | {:.2} |",
+                base.bias,
+                base.rms,
+                base.misfit * 100.0,
+                own_fit
+                    .as_ref()
+                    .map_or("–".into(), |s| format!("{:+.2}", s.bias)),
+                own_fit
+                    .as_ref()
+                    .map_or("–".into(), |s| format!("{:.2}", s.rms)),
+                auto.bias,
+                auto.rms
+            );
+            eprintln!("    auto chose {:?}", auto.chosen);
+            let mut check = |ok: bool, what: String| {
+                if !ok {
+                    failures.push(format!("{name}, k {k}: {what}"));
+                }
+            };
+            match name {
+                "none" => {
+                    check(auto.bias.abs() < 1.0, format!("auto bias {:.2}", auto.bias));
+                    check(
+                        base.misfit < 0.05,
+                        format!("base misfits {:.2}", base.misfit),
+                    );
+                }
+                n if n.starts_with("backscatter") => {
+                    check(auto.bias.abs() < 3.0, format!("auto bias {:.2}", auto.bias));
+                }
+                _ => {
+                    let own_fit = own_fit.unwrap();
+                    check(
+                        base.bias.abs() > 4.0,
+                        format!("base bias only {:.2}", base.bias),
+                    );
+                    check(
+                        own_fit.bias.abs() < 2.0,
+                        format!("extension bias {:.2}", own_fit.bias),
+                    );
+                    check(auto.bias.abs() < 2.0, format!("auto bias {:.2}", auto.bias));
+                    if name.starts_with("veil") || (name == "fundus exponent 0.6" && k < 0.2) {
+                        check(
+                            base.misfit >= 0.9,
+                            format!("base misfits only {:.2}", base.misfit),
+                        );
+                    }
+                }
+            }
+        }
+    }
+    assert!(failures.is_empty(), "{failures:#?}");
+}
+
+#[test]
+fn the_bands_say_which_extensions_they_can_identify() {
+    use satstep::oximetry::sensitivity::support;
+    let supported = |m: &VesselModel| -> Vec<String> {
+        support(m)
+            .into_iter()
+            .filter(|s| s.supported)
+            .map(|s| s.extensions.name())
+            .collect()
+    };
+    // Eight bands over 506–616 nm: both slopes, alone and together; the
+    // backscatter spectrum is too close to what S and hb already do.
+    assert_eq!(
+        supported(&model(Extensions::BASE)),
+        [
+            "base",
+            "veil-slope",
+            "fundus-slope",
+            "veil-slope+fundus-slope"
+        ]
+    );
+    let s = support(&model(Extensions::BASE));
+    assert!((s[0].inflation - 1.0).abs() < 1e-12);
+    assert!(s.iter().all(|x| x.inflation >= 1.0 - 1e-9));
+    // Five bands: only the veil slope remains.
+    let five: Vec<SampledBand> = [506.0, 548.0, 570.0, 600.0, 616.0]
+        .iter()
+        .map(|c| SampledBand::gaussian(*c, 8.0))
+        .collect();
+    assert_eq!(
+        supported(&VesselModel::new(&five, |_| 1.0, BLOOD_BACKSCATTER)),
+        ["base", "veil-slope"]
+    );
+}
