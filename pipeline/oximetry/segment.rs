@@ -613,7 +613,8 @@ pub fn information_criterion(s: &ResidualSummary, rho: f64) -> f64 {
 }
 
 /// Fits every candidate model (the same bands, different extensions) and
-/// keeps the one with the smallest [`information_criterion`]; a candidate
+/// keeps the one with the smallest [`information_criterion`], its SO2
+/// standard error widened by the uncertainty of the choice; a candidate
 /// that cannot be fitted is passed over. The first candidate's error is
 /// returned when none can be fitted.
 pub fn fit_segment_choosing(
@@ -635,11 +636,36 @@ pub fn fit_segment_choosing(
         .iter()
         .max_by_key(|f| f.residuals.shared)
         .map_or(0.0, |f| f.residuals.lag1);
-    fits.into_iter()
+    let scored: Vec<(f64, SegmentFit)> = fits
+        .into_iter()
         .map(|f| (information_criterion(&f.residuals, rho), f))
+        .collect();
+    let Some(best) = scored
+        .iter()
         .min_by(|a, b| a.0.total_cmp(&b.0))
-        .map(|(_, f)| f)
-        .ok_or(first_err.unwrap_or(SegmentFitError::Shape))
+        .map(|(c, f)| (*c, f.clone()))
+    else {
+        return Err(first_err.unwrap_or(SegmentFitError::Shape));
+    };
+    let (c_min, mut chosen) = best;
+    // The choice itself is uncertain: the SE is the unconditional one of
+    // Buckland, Burnham & Augustin (Biometrics 53:603–618, 1997; cited from
+    // memory), Σ w_m·√(se_m² + (S_m − S_chosen)²) with Schwarz weights
+    // w_m ∝ exp(−ΔC_m/2), so that a segment whose candidates disagree says so.
+    let weights: Vec<f64> = scored
+        .iter()
+        .map(|(c, _)| (-(c - c_min) / 2.0).exp())
+        .collect();
+    let total: f64 = weights.iter().sum();
+    let unconditional: f64 = scored
+        .iter()
+        .zip(&weights)
+        .map(|((_, f), w)| w / total * (f.so2_se.powi(2) + (f.so2 - chosen.so2).powi(2)).sqrt())
+        .sum();
+    if unconditional.is_finite() {
+        chosen.so2_se = unconditional;
+    }
+    Ok(chosen)
 }
 
 /// Fits one segment. Needs at least as many bands as 3 shared unknowns

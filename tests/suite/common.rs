@@ -184,3 +184,76 @@ pub fn records(path: &Path) -> Vec<BTreeMap<String, String>> {
         })
         .collect()
 }
+
+/// How a method's reported SO2 standard errors compare with the scatter of
+/// repeated captures of the same vessel in the same epoch: the pooled SD of
+/// SO2 within subject × segment × epoch (steady captures, fits whose SE is
+/// below 5 points: a broken fit's SE says so by itself), over the RMS of
+/// their SEs. Returns (ratio on SO2, ratio on SO2 − truth): the first is
+/// what a lab can compute; the second leaves out the simulator's true
+/// capture-to-capture change (0.7 points).
+pub fn se_scatter_ratio(study: &Path, method: &str) -> (f64, f64) {
+    let truth = true_so2(study);
+    // Per subject × segment × epoch: (SO2, SO2 − truth, SE) of each capture.
+    type Key = (String, String, String);
+    let mut groups: BTreeMap<Key, Vec<(f64, f64, f64)>> = BTreeMap::new();
+    for r in records(&study.join("results/fits/so2.csv")) {
+        if r["method"] != method
+            || r["status"] != "steady"
+            || r["so2"].is_empty()
+            || r["so2_se"].is_empty()
+        {
+            continue;
+        }
+        let (v, se): (f64, f64) = (r["so2"].parse().unwrap(), r["so2_se"].parse().unwrap());
+        let Some(t) = truth.get(&(
+            r["subject"].clone(),
+            r["capture"].clone(),
+            r["segment"].clone(),
+        )) else {
+            continue;
+        };
+        if se < 5.0 {
+            groups
+                .entry((
+                    r["subject"].clone(),
+                    r["segment"].clone(),
+                    r["epoch"].clone(),
+                ))
+                .or_default()
+                .push((v, v - t, se));
+        }
+    }
+    let (mut ss_raw, mut ss_err, mut ss_se, mut df) = (0.0, 0.0, 0.0, 0.0);
+    for g in groups.values().filter(|g| g.len() > 1) {
+        let n = g.len() as f64;
+        let (m_raw, m_err) = (
+            g.iter().map(|x| x.0).sum::<f64>() / n,
+            g.iter().map(|x| x.1).sum::<f64>() / n,
+        );
+        ss_raw += g.iter().map(|x| (x.0 - m_raw).powi(2)).sum::<f64>();
+        ss_err += g.iter().map(|x| (x.1 - m_err).powi(2)).sum::<f64>();
+        ss_se += g.iter().map(|x| x.2 * x.2).sum::<f64>() * (n - 1.0) / n;
+        df += n - 1.0;
+    }
+    assert!(df > 20.0, "{method}: too few repeated captures");
+    let se = (ss_se / df).sqrt();
+    ((ss_raw / df).sqrt() / se, (ss_err / df).sqrt() / se)
+}
+
+/// A simulated study's true SO2 by (subject, capture, segment), from `truth/`.
+pub fn true_so2(study: &Path) -> BTreeMap<(String, String, String), f64> {
+    records(&study.join("truth/captures.csv"))
+        .into_iter()
+        .map(|r| {
+            (
+                (
+                    r["subject"].clone(),
+                    r["capture"].clone(),
+                    r["segment"].clone(),
+                ),
+                r["so2"].parse().unwrap(),
+            )
+        })
+        .collect()
+}

@@ -3,7 +3,6 @@
 //! flagged with its reason, counted in the report's capture accounting,
 //! and kept out of the fits and statistics; the rest of the study runs.
 
-
 use crate::common::*;
 
 #[test]
