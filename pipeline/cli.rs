@@ -154,6 +154,9 @@ pub enum Command {
         /// A contrast of factor levels, e.g. "hypoxia - recovery"; repeat for more (Holm-adjusted).
         #[arg(long, value_name = "\"LEVEL_A - LEVEL_B\"")]
         contrast: Vec<String>,
+        /// Keep only the rows whose column equals the value, e.g. `method=multiband`; repeat to combine (all must hold).
+        #[arg(long = "where", value_name = "COL=VALUE")]
+        filters: Vec<String>,
         /// Maximum likelihood instead of REML.
         #[arg(long)]
         ml: bool,
@@ -245,6 +248,7 @@ pub fn main_with_args(args: impl IntoIterator<Item = std::ffi::OsString>) -> Exi
             random,
             reference,
             contrast,
+            filters,
             ml,
             out,
         } => {
@@ -255,6 +259,7 @@ pub fn main_with_args(args: impl IntoIterator<Item = std::ffi::OsString>) -> Exi
                 random,
                 reference,
                 contrasts: contrast,
+                filters,
                 ml,
                 out,
             };

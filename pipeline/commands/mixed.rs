@@ -1,5 +1,8 @@
 //! `satstep mixed`: a linear mixed model on an exported table, with
-//! Satterthwaite tests, for re-analysing results outside a study run.
+//! Satterthwaite tests, for re-analysing results outside a study run. Rows
+//! can be chosen with `--where COL=VALUE`; rows with a missing value (an
+//! empty cell, or `NaN`) in a column the model uses are left out and
+//! counted, as a study's own tables have them (a segment without an SO2).
 
 use std::path::{Path, PathBuf};
 
@@ -22,6 +25,8 @@ pub struct MixedArgs {
     pub random: Vec<String>,
     pub reference: Vec<String>,
     pub contrasts: Vec<String>,
+    /// `COL=VALUE`: rows kept.
+    pub filters: Vec<String>,
     pub ml: bool,
     pub out: Option<PathBuf>,
 }
@@ -78,10 +83,82 @@ pub fn mixed(a: &MixedArgs, printer: &Printer) -> Result<Exit> {
         random,
         reference,
     };
-    let Some(table) = read_csv(&a.data, &mut findings) else {
+    let Some(mut table) = read_csv(&a.data, &mut findings) else {
         printer.findings(&findings);
         return Ok(Exit::Problem);
     };
+    let total = table.rows.len();
+    for w in &a.filters {
+        let Some((col, value)) = w.split_once('=') else {
+            printer.error(format!(
+                "`--where {w}`: write `COLUMN=VALUE`, e.g. `method=multiband`"
+            ));
+            return Ok(Exit::Problem);
+        };
+        let Some(c) = table.column(&a.data, col.trim(), "`--where`", &mut findings) else {
+            printer.findings(&findings);
+            return Ok(Exit::Problem);
+        };
+        table
+            .rows
+            .retain(|r| r.field(c).is_some_and(|(t, _)| t.trim() == value.trim()));
+    }
+    let chosen = table.rows.len();
+    if !a.filters.is_empty() {
+        printer.info(format!(
+            "`--where` keeps {chosen} of {total} rows of `{}`",
+            a.data.display()
+        ));
+        if chosen == 0 {
+            printer.error("no row is left to fit: check the `--where` columns and values (they are compared as text)");
+            return Ok(Exit::Problem);
+        }
+    }
+    // Rows missing a value the model needs are left out, and counted.
+    let mut used: Vec<String> = vec![spec.response.clone()];
+    used.extend(spec.fixed.iter().cloned());
+    for r in &spec.random {
+        used.extend(r.groups.iter().cloned());
+        used.extend(r.slopes.iter().cloned());
+    }
+    let mut cols = Vec::new();
+    for name in &used {
+        match table.column(&a.data, name, "the model", &mut findings) {
+            Some(c) => cols.push((name.clone(), c)),
+            None => {
+                printer.findings(&findings);
+                return Ok(Exit::Problem);
+            }
+        }
+    }
+    let missing = |t: &str| {
+        let t = t.trim();
+        t.is_empty() || t.eq_ignore_ascii_case("nan")
+    };
+    let mut by_column: Vec<(String, usize)> = Vec::new();
+    table.rows.retain(|r| {
+        let gap = cols
+            .iter()
+            .find(|(_, c)| r.field(*c).is_none_or(|(t, _)| missing(t)));
+        if let Some((name, _)) = gap {
+            match by_column.iter_mut().find(|(n, _)| n == name) {
+                Some(e) => e.1 += 1,
+                None => by_column.push((name.clone(), 1)),
+            }
+        }
+        gap.is_none()
+    });
+    if !by_column.is_empty() {
+        let dropped: usize = by_column.iter().map(|(_, n)| n).sum();
+        let detail: Vec<String> = by_column
+            .iter()
+            .map(|(c, n)| format!("{n} in `{c}`"))
+            .collect();
+        printer.warn(format!(
+            "left out {dropped} of {chosen} rows with a missing value ({})",
+            detail.join(", ")
+        ));
+    }
     let Some(design) = build(&table, &a.data, &spec, &mut findings) else {
         printer.findings(&findings);
         printer.error(format!(

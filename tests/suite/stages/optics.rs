@@ -210,6 +210,71 @@ fn auto_model_recovers_what_a_wavelength_dependent_veil_hides() {
         "the comparison table shows the ratio"
     );
 
+    // `satstep mixed` takes the run's own `fits/so2.csv`: `--where` picks
+    // the rows, and rows without an SO2 are left out and counted.
+    let so2 = s.join("results/fits/so2.csv");
+    let chosen: Vec<&BTreeMap<String, String>> = fits
+        .iter()
+        .filter(|r| {
+            r["method"] == "two-band" && r["kind"] == "arteriole" && r["status"] == "steady"
+        })
+        .collect();
+    let empty = chosen.iter().filter(|r| r["so2"].is_empty()).count();
+    assert!(empty > 0, "the table has segments without an SO2");
+    let args = |filter: &str| {
+        vec![
+            "mixed".to_string(),
+            "--data".into(),
+            so2.to_str().unwrap().into(),
+            "--response".into(),
+            "so2".into(),
+            "--fixed".into(),
+            "epoch".into(),
+            "--random".into(),
+            "subject".into(),
+            "--random".into(),
+            "subject:segment".into(),
+            "--where".into(),
+            filter.into(),
+            "--where".into(),
+            "kind=arteriole".into(),
+            "--where".into(),
+            "status=steady".into(),
+        ]
+    };
+    let run = |filter: &str| {
+        let a = args(filter);
+        satstep(
+            dir.path(),
+            &a.iter().map(String::as_str).collect::<Vec<_>>(),
+        )
+    };
+    let o = run("method=two-band");
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    assert!(
+        o.stderr
+            .contains(&format!("keeps {} of {} rows", chosen.len(), fits.len()))
+            && o.stderr.contains(&format!(
+                "left out {empty} of {} rows with a missing value ({empty} in `so2`)",
+                chosen.len()
+            )),
+        "{}",
+        o.stderr
+    );
+    assert!(
+        o.stdout
+            .contains(&format!("{} observations", chosen.len() - empty)),
+        "{}",
+        o.stdout
+    );
+    let o = run("metod=two-band");
+    assert_eq!(o.code, 1);
+    assert!(
+        o.stderr.contains("no column `metod`") && o.stderr.contains("did you mean `method`?"),
+        "{}",
+        o.stderr
+    );
+
     // The methods text says how the model was chosen and how the two-band
     // lines were calibrated.
     assert!(report.contains("Schwarz's information criterion"));
