@@ -167,10 +167,11 @@ pub(crate) fn ols(x: &[f64], y: &[f64]) -> Option<Linear> {
 }
 
 /// Leave-one-subject-out regression calibration: for each subject, the
-/// line fitted to all *other* subjects' (ODR, SpO2) pairs.
+/// line of all *other* subjects' (ODR, SpO2) pairs, by
+/// [`inverse_calibration`].
 pub(crate) fn leave_one_subject_out<'a>(
     pairs: &[(&'a str, f64, f64)],
-) -> Vec<(&'a str, Option<Linear>)> {
+) -> Vec<(&'a str, Option<Calibrated>)> {
     let mut subjects: Vec<&str> = pairs.iter().map(|p| p.0).collect();
     subjects.sort();
     subjects.dedup();
@@ -182,7 +183,7 @@ pub(crate) fn leave_one_subject_out<'a>(
                 .filter(|p| p.0 != s)
                 .map(|p| (p.1, p.2))
                 .unzip();
-            (s, ols(&x, &y))
+            (s, inverse_calibration(&x, &y))
         })
         .collect()
 }

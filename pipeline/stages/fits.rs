@@ -284,6 +284,11 @@ fn build(
     let captures: Vec<usize> = (0..epochs.captures.len())
         .filter(|i| images.position_counts[*i] > 0)
         .collect();
+    // Each multiband method's vessel models and fit settings, prepared once:
+    // `auto`'s candidates come from an identifiability analysis that would
+    // otherwise be repeated for every segment.
+    let prepared: Vec<Option<Prepared>> =
+        study.methods.iter().map(|m| prepare(m, &bands)).collect();
     let per_capture: Vec<Vec<Vec<FitRow>>> = captures
         .par_iter()
         .map(|&ci| -> Result<Vec<Vec<FitRow>>> {
@@ -297,7 +302,7 @@ fn build(
                 Ok(loaded.get_or_init(|| v))
             };
             let mut out = Vec::with_capacity(study.methods.len());
-            for m in &study.methods {
+            for (m, prep) in study.methods.iter().zip(&prepared) {
                 let rows = match &m.kind {
                     // Multiband fits are the slow part: kept per capture, so that an
                     // interrupted run or a changed capture refits only what it must.
@@ -308,10 +313,10 @@ fn build(
                             .value("min-positions", &MIN_POSITIONS)
                             .key("transmissions", &images.keys[ci]);
                         items.try_get_or_compute(&k.finish(), || {
-                            Ok(fit_capture(m, &bands, ci, load()?))
+                            Ok(fit_capture(m, prep.as_ref(), ci, load()?))
                         })?
                     }
-                    MethodKind::TwoBand { .. } => fit_capture(m, &bands, ci, load()?),
+                    MethodKind::TwoBand { .. } => fit_capture(m, None, ci, load()?),
                 };
                 out.push(
                     rows.into_iter()
@@ -393,10 +398,42 @@ fn write_calibrations(rows: &[CalibrationRow], out: &Path) -> Result<Vec<PathBuf
     Ok(t.write(&out.join("fits"), "calibration")?)
 }
 
-/// One capture's segments by one method (before any cohort calibration).
+/// A multiband method's models: the base model over its bands (the
+/// pointwise fit's), the models its segment fits choose among (one unless
+/// `model: auto`), and the fit settings.
+struct Prepared {
+    base: VesselModel,
+    candidates: Vec<VesselModel>,
+    settings: FitSettings,
+}
+
+fn prepare(m: &Method, bands: &[SampledBand]) -> Option<Prepared> {
+    let MethodKind::Multiband {
+        bands: sel,
+        loss,
+        model,
+        ..
+    } = &m.kind
+    else {
+        return None;
+    };
+    let (base, settings) = multiband_model(bands, sel, *loss);
+    let candidates = match model {
+        ModelChoice::Fixed(e) => vec![base.clone().with_extensions(*e)],
+        ModelChoice::Auto => supported_models(&base),
+    };
+    Some(Prepared {
+        base,
+        candidates,
+        settings,
+    })
+}
+
+/// One capture's segments by one method (before any cohort calibration;
+/// `prep` for a multiband method).
 fn fit_capture(
     m: &Method,
-    bands: &[SampledBand],
+    prep: Option<&Prepared>,
     ci: usize,
     positions: &[PositionRow],
 ) -> Vec<FitRow> {
@@ -470,12 +507,11 @@ fn fit_capture(
                 }
                 MethodKind::Multiband {
                     bands: sel,
-                    loss,
                     pointwise,
-                    model: choice,
                     ..
                 } => {
-                    let (model, settings) = multiband_model(bands, sel, *loss);
+                    let prep = prep.expect("a multiband method is prepared");
+                    let (model, settings) = (&prep.base, &prep.settings);
                     let spectra = SegmentSpectra {
                         diameters_um: pos.iter().map(|p| p.diameter_um).collect(),
                         transmissions: pos
@@ -484,7 +520,7 @@ fn fit_capture(
                             .collect(),
                     };
                     if *pointwise {
-                        let f = fit_pointwise(&model, &spectra, &settings);
+                        let f = fit_pointwise(model, &spectra, settings);
                         if f.so2.is_finite() {
                             row.so2 = Some(f.so2 * 100.0);
                             row.so2_se = Some(f.so2_se * 100.0);
@@ -497,13 +533,9 @@ fn fit_capture(
                             positions: f.positions.len(),
                         }
                     } else {
-                        let fitted = match choice {
-                            ModelChoice::Fixed(e) => {
-                                fit_segment(&model.clone().with_extensions(*e), &spectra, &settings)
-                            }
-                            ModelChoice::Auto => {
-                                fit_segment_choosing(&supported_models(&model), &spectra, &settings)
-                            }
+                        let fitted = match &prep.candidates[..] {
+                            [one] => fit_segment(one, &spectra, settings),
+                            all => fit_segment_choosing(all, &spectra, settings),
                         };
                         match fitted {
                             Ok(f) => {
@@ -727,14 +759,7 @@ fn calibrate(
                 .collect();
             let lines: BTreeMap<String, Option<Calibrated>> = leave_one_subject_out(&pairs)
                 .into_iter()
-                .map(|(s, _)| {
-                    let (x, y): (Vec<f64>, Vec<f64>) = pairs
-                        .iter()
-                        .filter(|p| p.0 != s)
-                        .map(|p| (p.1, p.2))
-                        .unzip();
-                    (s.to_string(), inverse_calibration(&x, &y))
-                })
+                .map(|(s, l)| (s.to_string(), l))
                 .collect();
             per_subject(rows, &lines)
         }
