@@ -35,7 +35,7 @@ fn tests_table(rows: &[Test], holm_p: Option<&[f64]>) -> Table {
     let mut t = Table::new();
     t.text("term", rows.iter().map(|r| &r.label))
         .real("estimate", rows.iter().map(|r| r.estimate))
-        .real("std_error", rows.iter().map(|r| r.std_error))
+        .real("se", rows.iter().map(|r| r.std_error))
         .real("df", rows.iter().map(|r| r.df))
         .real("t", rows.iter().map(|r| r.t))
         .real("p", rows.iter().map(|r| r.p))

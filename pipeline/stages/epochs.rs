@@ -23,7 +23,7 @@ pub struct CaptureRow {
     pub session: String,
     pub eye: String,
     pub capture: String,
-    pub time: String,
+    pub time: chrono::DateTime<chrono::FixedOffset>,
     pub t_s: f64,
     pub epoch: Option<String>,
     pub t_in_epoch_s: Option<f64>,
@@ -41,7 +41,7 @@ pub struct SpanRow {
     pub subject: String,
     pub session: String,
     pub epoch: String,
-    pub start: String,
+    pub start: chrono::DateTime<chrono::FixedOffset>,
     pub start_s: f64,
     pub settle_end_s: f64,
     pub end_s: f64,
@@ -60,7 +60,7 @@ pub(crate) struct Epochs;
 
 impl Stage for Epochs {
     const NAME: &'static str = "epochs";
-    const VERSION: u32 = 1;
+    const VERSION: u32 = 2;
     const SUMMARY: &'static str = "each capture's gas epoch, status and reference SpO2";
     const UPSTREAM: &'static [&'static str] = &[];
     type Output = EpochTables;
@@ -127,7 +127,7 @@ pub fn build(study: &Study) -> EpochTables {
                     subject: subj.id.clone(),
                     session: sess.id.clone(),
                     epoch: p.epochs[s.epoch].name.clone(),
-                    start: start.to_rfc3339(),
+                    start,
                     start_s: s.start_s,
                     settle_end_s: s.settle_end_s,
                     end_s: s.end_s,
@@ -157,7 +157,7 @@ pub fn build(study: &Study) -> EpochTables {
                     session: sess.id.clone(),
                     eye: c.eye.as_str().to_string(),
                     capture: c.listed.clone(),
-                    time: c.time.to_rfc3339(),
+                    time: c.time,
                     t_s: t,
                     epoch: epoch.map(|e| p.epochs[e].name.clone()),
                     t_in_epoch_s: epoch.map(|e| t - spans[e].start_s),
@@ -195,7 +195,7 @@ impl EpochTables {
             .text("session", c.iter().map(|r| &r.session))
             .text("eye", c.iter().map(|r| &r.eye))
             .text("capture", c.iter().map(|r| &r.capture))
-            .text("time", c.iter().map(|r| &r.time))
+            .time("time", c.iter().map(|r| r.time))
             .real("t_s", c.iter().map(|r| r.t_s))
             .opt_text("epoch", c.iter().map(|r| r.epoch.clone()))
             .opt_real("t_in_epoch_s", c.iter().map(|r| r.t_in_epoch_s))
@@ -212,7 +212,7 @@ impl EpochTables {
         t.text("subject", s.iter().map(|r| &r.subject))
             .text("session", s.iter().map(|r| &r.session))
             .text("epoch", s.iter().map(|r| &r.epoch))
-            .text("start", s.iter().map(|r| &r.start))
+            .time("start", s.iter().map(|r| r.start))
             .real("start_s", s.iter().map(|r| r.start_s))
             .real("settle_end_s", s.iter().map(|r| r.settle_end_s))
             .real("end_s", s.iter().map(|r| r.end_s))

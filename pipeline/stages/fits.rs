@@ -122,6 +122,31 @@ pub enum Outcome {
     NoTwoPointCalibration { epoch: String },
 }
 
+impl Outcome {
+    /// The `termination` column: a code from a fixed set (DEVELOPERS.md,
+    /// "Table formats"), so that programs can count and filter on it.
+    pub fn code(&self) -> &'static str {
+        match self {
+            Outcome::TooFewPositions { .. } => "too-few-positions",
+            Outcome::Odr => "odr",
+            Outcome::NoOpticalDensity => "no-optical-density",
+            Outcome::NoDiameter => "no-diameter",
+            Outcome::Pointwise { .. } => "pointwise",
+            Outcome::Joint(t) => t.as_str(),
+            Outcome::NotFitted(_) => "not-fitted",
+            Outcome::NoTwoPointCalibration { .. } => "no-two-point-calibration",
+        }
+    }
+
+    /// The `termination_detail` column: what the code alone does not say.
+    pub fn detail(&self) -> Option<String> {
+        match self {
+            Outcome::Odr | Outcome::Joint(_) | Outcome::NoOpticalDensity => None,
+            _ => Some(self.to_string()),
+        }
+    }
+}
+
 impl std::fmt::Display for Outcome {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         match self {
@@ -196,7 +221,7 @@ pub struct Fits;
 
 impl Stage for Fits {
     const NAME: &'static str = "fits";
-    const VERSION: u32 = 6;
+    const VERSION: u32 = 7;
     const SUMMARY: &'static str = "SO2 of every segment of every capture by each method";
     const UPSTREAM: &'static [&'static str] = &["epochs", "transmissions"];
     type Output = FitTables;
@@ -823,9 +848,10 @@ fn write(rows: &[FitRow], epochs: &EpochTables, study: &Study, out: &Path) -> Re
         .opt_real("fundus_slope", rows.iter().map(|r| r.fundus_slope))
         .int("iterations", rows.iter().map(|r| r.iterations))
         .int("evaluations", rows.iter().map(|r| r.evaluations))
-        .text(
-            "termination",
-            rows.iter().map(|r| r.termination.to_string()),
+        .text("termination", rows.iter().map(|r| r.termination.code()))
+        .opt_text(
+            "termination_detail",
+            rows.iter().map(|r| r.termination.detail()),
         )
         .int("positions", rows.iter().map(|r| r.positions))
         .real("diameter_um", rows.iter().map(|r| r.diameter_um))

@@ -161,7 +161,7 @@ pub(crate) struct StatisticsStage;
 
 impl Stage for StatisticsStage {
     const NAME: &'static str = "statistics";
-    const VERSION: u32 = 5;
+    const VERSION: u32 = 6;
     const SUMMARY: &'static str =
         "summaries, the epoch model and its contrasts, agreement with SpO2, method comparison";
     const UPSTREAM: &'static [&'static str] = &["epochs", "fits"];
@@ -864,7 +864,7 @@ impl StatisticsTables {
             .text("kind", c.iter().map(|r| &r.kind))
             .text("contrast", c.iter().map(|r| &r.result.test.label))
             .real("estimate", c.iter().map(|r| r.result.test.estimate))
-            .real("std_error", c.iter().map(|r| r.result.test.std_error))
+            .real("se", c.iter().map(|r| r.result.test.std_error))
             .real("df", c.iter().map(|r| r.result.test.df))
             .real("t", c.iter().map(|r| r.result.test.t))
             .real("p", c.iter().map(|r| r.result.test.p))
@@ -940,7 +940,7 @@ impl StatisticsTables {
             .text("epoch", q.iter().map(|r| &r.epoch))
             .int("subjects", q.iter().map(|r| r.subjects))
             .real("mean_difference", q.iter().map(|r| r.mean_difference))
-            .real("std_error", q.iter().map(|r| r.std_error))
+            .real("se", q.iter().map(|r| r.std_error))
             .real("df", q.iter().map(|r| r.df))
             .real("t", q.iter().map(|r| r.t))
             .real("p", q.iter().map(|r| r.p));

@@ -147,7 +147,7 @@ impl Transmissions {
 
 impl Stage for Transmissions {
     const NAME: &'static str = "transmissions";
-    const VERSION: u32 = 5;
+    const VERSION: u32 = 6;
     const SUMMARY: &'static str =
         "registration and transmissions along each vessel segment, capture by capture";
     const UPSTREAM: &'static [&'static str] = &["epochs"];
@@ -780,7 +780,7 @@ fn position_table(p: &[PositionRow], study: &Study, epochs: &EpochTables) -> Tab
         .int("position", p.iter().map(|r| r.position as i64))
         .real("along_px", p.iter().map(|r| r.along_px))
         .real("diameter_um", p.iter().map(|r| r.diameter_um))
-        .text("flags", p.iter().map(|r| Flag::join(&r.flags)))
+        .text("quality_flags", p.iter().map(|r| Flag::join(&r.flags)))
         .text(
             "central_reflex",
             p.iter().map(|r| if r.reflex { "yes" } else { "no" }),

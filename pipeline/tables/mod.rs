@@ -50,9 +50,16 @@ pub(crate) type FillError = Box<dyn std::error::Error + Send + Sync>;
 const STREAM_BATCH_ROWS: usize = 50_000;
 
 /// A column-oriented table under construction.
+///
+/// Conventions (DEVELOPERS.md, "Table formats"): a missing number is null
+/// in Parquet and an empty cell in CSV, never `NaN`; a time is a Parquet
+/// timestamp in UTC and, in CSV, ISO 8601 with the offset it was recorded
+/// with.
 #[derive(Default)]
 pub struct Table {
     columns: Vec<Column>,
+    /// Columns whose CSV form differs from the Parquet one (times), by index.
+    csv_forms: Vec<(usize, Column)>,
     height: Option<usize>,
 }
 
@@ -89,9 +96,9 @@ impl Table {
         self.push(Column::new(name.into(), v))
     }
 
+    /// A number column; NaN is written as a missing value.
     pub fn real(&mut self, name: &str, values: impl IntoIterator<Item = f64>) -> &mut Self {
-        let v: Vec<f64> = values.into_iter().collect();
-        self.push(Column::new(name.into(), v))
+        self.opt_real(name, values.into_iter().map(Some))
     }
 
     pub fn opt_real(
@@ -99,7 +106,10 @@ impl Table {
         name: &str,
         values: impl IntoIterator<Item = Option<f64>>,
     ) -> &mut Self {
-        let v: Vec<Option<f64>> = values.into_iter().collect();
+        let v: Vec<Option<f64>> = values
+            .into_iter()
+            .map(|x| x.filter(|x| !x.is_nan()))
+            .collect();
         self.push(Column::new(name.into(), v))
     }
 
@@ -117,12 +127,41 @@ impl Table {
         self.push(Column::new(name.into(), v))
     }
 
+    /// A time column: a timestamp (ms, UTC) in Parquet, ISO 8601 with the
+    /// value's own offset in CSV.
+    pub fn time(
+        &mut self,
+        name: &str,
+        values: impl IntoIterator<Item = chrono::DateTime<chrono::FixedOffset>>,
+    ) -> &mut Self {
+        use polars::prelude::{Int64Chunked, IntoColumn, TimeUnit, TimeZone};
+        let v: Vec<chrono::DateTime<chrono::FixedOffset>> = values.into_iter().collect();
+        let text: Vec<String> = v.iter().map(|t| t.to_rfc3339()).collect();
+        let ms = Int64Chunked::from_vec(
+            name.into(),
+            v.iter().map(|t| t.timestamp_millis()).collect(),
+        )
+        .into_datetime(TimeUnit::Milliseconds, Some(TimeZone::UTC));
+        self.csv_forms
+            .push((self.columns.len(), Column::new(name.into(), text)));
+        self.push(ms.into_column())
+    }
+
     pub fn height(&self) -> usize {
         self.height.unwrap_or(0)
     }
 
     fn frame(&self) -> Result<DataFrame> {
         Ok(DataFrame::new(self.height(), self.columns.clone())?)
+    }
+
+    /// The frame as CSV writes it: time columns as text with their offsets.
+    fn csv_frame(&self) -> Result<DataFrame> {
+        let mut columns = self.columns.clone();
+        for (i, c) in &self.csv_forms {
+            columns[*i] = c.clone();
+        }
+        Ok(DataFrame::new(self.height(), columns)?)
     }
 
     /// Writes `dir/stem.parquet` and `dir/stem.csv`; returns both paths.
@@ -135,6 +174,7 @@ impl Table {
             Ok(())
         })?;
         let csv = dir.join(format!("{stem}.csv"));
+        let mut df = self.csv_frame()?;
         write_atomic(&csv, |f| {
             CsvWriter::new(f).include_header(true).finish(&mut df)?;
             Ok(())
@@ -195,6 +235,11 @@ pub(crate) fn read_parquet_cells(
                     })
                 })
             }
+            DataType::Datetime(..) => s.cast(&DataType::String).ok().and_then(|f| {
+                f.str()
+                    .ok()
+                    .map(|c| c.iter().map(|v| v.unwrap_or("").to_string()).collect())
+            }),
             d if d.is_integer() => s.cast(&DataType::Int64).ok().and_then(|f| {
                 f.i64().ok().map(|c| {
                     c.iter()

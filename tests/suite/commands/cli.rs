@@ -595,7 +595,7 @@ fn mixed_writes_the_four_tables_and_matches_the_reference() {
     );
     let read = |f: &str| std::fs::read_to_string(dir.path().join("fit").join(f)).unwrap();
     let fe = read("fixed_effects.csv");
-    assert!(fe.starts_with("term,estimate,std_error,df,t,p,lower,upper,confidence\n"));
+    assert!(fe.starts_with("term,estimate,se,df,t,p,lower,upper,confidence\n"));
     assert!(
         fe.lines()
             .nth(2)

@@ -537,8 +537,8 @@ fn statistics_settings_do_what_they_say() {
     let dcol = fh.iter().position(|c| c == "diameter_um").unwrap();
     let mut d: Vec<f64> = fits
         .iter()
+        .filter(|r| !r[dcol].is_empty())
         .map(|r| r[dcol].parse::<f64>().unwrap())
-        .filter(|v| v.is_finite())
         .collect();
     d.sort_by(f64::total_cmp);
     let median = d[d.len() / 2].round();

@@ -1,6 +1,7 @@
 //! Whole runs through the stages and the runner.
 
 mod blinks;
+mod conventions;
 mod demo;
 mod optics;
 mod report;

@@ -36,7 +36,7 @@ fn a_spectra_table_replaces_the_images() {
         .collect();
     let mut tidy =
         String::from("subject,capture,vessel,kind,position,band,transmission,diameter_um\n");
-    for r in rows.iter().filter(|r| r[col("flags")].is_empty()) {
+    for r in rows.iter().filter(|r| r[col("quality_flags")].is_empty()) {
         for (i, b) in &bands {
             tidy.push_str(&format!(
                 "{},{},{},{},{},{b},{},{}\n",
