@@ -36,7 +36,7 @@ pub(crate) struct Report;
 impl Stage for Report {
     const NAME: &'static str = "report";
     /// Version of the report's layout; bump when its output changes.
-    const VERSION: u32 = 6;
+    const VERSION: u32 = 9;
     const SUMMARY: &'static str = "the paper's tables and figures, report.html and report.md";
     const UPSTREAM: &'static [&'static str] =
         &["epochs", "transmissions", "fits", "statistics", "power"];
@@ -176,11 +176,13 @@ fn write(
     let usage = tables::usage(inp.epochs, inp.images, inp.fits);
     let s = inp.study;
     let results = vec![
+        tables::participants(s, inp.epochs, &usage),
         tables::so2_by_epoch(s, inp.stats),
         tables::contrasts(s, inp.stats),
         tables::variance_components(inp.stats),
         tables::agreement(s, inp.stats),
         tables::method_comparison(inp.stats),
+        tables::method_agreement(inp.stats),
     ];
     let quality = vec![
         tables::accounting(s, inp.epochs, &usage, inp.fits),

@@ -70,34 +70,78 @@ impl ReportTable {
         out
     }
 
-    /// A booktabs `table` environment; needs `\usepackage{booktabs}`.
+    /// A booktabs `table` environment. The file's first lines say what it
+    /// needs (`LATEX_PACKAGES`). Leading cells that repeat the row above
+    /// are left blank (grouped rows, a little space between groups); a
+    /// table wider than the text is scaled to the text width.
     pub fn latex(&self) -> String {
-        let align: String = self
-            .numeric
-            .iter()
-            .map(|n| if *n { 'r' } else { 'l' })
+        // Long text (a test's name, a unit) wraps in a ragged column of its
+        // own instead of widening the table.
+        let align: String = (0..self.columns.len())
+            .map(|i| {
+                let widest = self.rows.iter().map(|r| r[i].chars().count()).max();
+                if self.numeric[i] {
+                    "r"
+                } else if widest.unwrap_or(0) > LATEX_WRAP_CHARS {
+                    ">{\\raggedright\\arraybackslash}p{11em}"
+                } else {
+                    "l"
+                }
+            })
             .collect();
         let row = |cells: &[String]| {
             cells
                 .iter()
-                .map(|c| latex_escape(c))
+                .map(|c| latex_cell(c))
                 .collect::<Vec<_>>()
                 .join(" & ")
                 + " \\\\\n"
         };
-        let mut out = String::from("\\begin{table}[htbp]\n\\centering\n");
+        let mut out = format!(
+            "% satstep report table `{}`. Needs, in the preamble: {LATEX_PACKAGES}.\n",
+            self.name
+        );
+        // A long table in a smaller size, so that it stays on one page.
+        let size = if self.rows.len() > LATEX_LONG_ROWS {
+            "\\footnotesize"
+        } else {
+            "\\small"
+        };
+        out.push_str(&format!("\\begin{{table}}[htbp]\n\\centering\n{size}\n"));
         out.push_str(&format!(
-            "\\caption{{{}}}\n\\label{{tab:{}}}\n",
-            latex_escape(&self.caption),
+            "\\caption{{{}}}\n\\label{{tab:{}}}\n\\smallskip\n",
+            latex_cell(&self.caption),
             self.name
         ));
-        out.push_str(&format!("\\begin{{tabular}}{{{align}}}\n\\toprule\n"));
+        out.push_str(&format!(
+            "\\sbox0{{%\n\\begin{{tabular}}{{{align}}}\n\\toprule\n"
+        ));
         out.push_str(&row(&self.columns));
         out.push_str("\\midrule\n");
+        let mut previous: Option<&Vec<String>> = None;
         for r in &self.rows {
-            out.push_str(&row(r));
+            let mut cells = r.clone();
+            if let Some(p) = previous {
+                // Blank the leading text cells the row shares with the one
+                // above (never a number, never the whole row).
+                let same = (0..cells.len() - 1)
+                    .take_while(|i| !self.numeric[*i] && cells[*i] == p[*i])
+                    .count();
+                if same == 0 && !self.numeric[0] {
+                    out.push_str("\\addlinespace\n");
+                }
+                for c in cells.iter_mut().take(same) {
+                    c.clear();
+                }
+            }
+            out.push_str(&row(&cells));
+            previous = Some(r);
         }
-        out.push_str("\\bottomrule\n\\end{tabular}\n\\end{table}\n");
+        out.push_str("\\bottomrule\n\\end{tabular}}%\n");
+        out.push_str(
+            "\\ifdim\\wd0>\\linewidth\\resizebox{\\linewidth}{!}{\\usebox0}\\else\\usebox0\\fi\n",
+        );
+        out.push_str("\\end{table}\n");
         out
     }
 
@@ -147,6 +191,53 @@ impl ReportTable {
         }
         Ok(paths)
     }
+}
+
+/// The packages the LaTeX tables need, as their header states it.
+pub const LATEX_PACKAGES: &str = "\\usepackage{booktabs} \\usepackage{array} \\usepackage{graphicx} (all in any TeX installation; UTF-8 input, the default since 2018)";
+
+/// LaTeX tables with more rows than this are set in a smaller size.
+const LATEX_LONG_ROWS: usize = 36;
+
+/// Text columns with a cell longer than this wrap in the LaTeX tables.
+const LATEX_WRAP_CHARS: usize = 22;
+
+/// A report cell as LaTeX: escaped, a minus sign (not a hyphen) before a
+/// number, and the subscripts of SO2, SpO2, FiO2 and O2.
+pub(crate) fn latex_cell(s: &str) -> String {
+    let chars: Vec<char> = s.chars().collect();
+    let mut minus = String::with_capacity(s.len());
+    for (i, ch) in chars.iter().enumerate() {
+        let before = i.checked_sub(1).map(|j| chars[j]);
+        let after = chars.get(i + 1);
+        let starts_number = *ch == '-'
+            && after.is_some_and(|c| c.is_ascii_digit() || *c == '.')
+            && before.is_none_or(|c| c == ' ' || c == '(' || c == '[');
+        minus.push(if starts_number { '−' } else { *ch });
+    }
+    let escaped = latex_escape(&minus);
+    let mut out = String::with_capacity(escaped.len());
+    let mut word = String::new();
+    let flush = |word: &mut String, out: &mut String| {
+        match word.as_str() {
+            "SO2" | "SpO2" | "FiO2" | "O2" => {
+                out.push_str(&word[..word.len() - 1]);
+                out.push_str("\\textsubscript{2}");
+            }
+            _ => out.push_str(word),
+        }
+        word.clear();
+    };
+    for ch in escaped.chars() {
+        if ch.is_ascii_alphanumeric() {
+            word.push(ch);
+        } else {
+            flush(&mut word, &mut out);
+            out.push(ch);
+        }
+    }
+    flush(&mut word, &mut out);
+    out
 }
 
 pub(crate) fn latex_escape(s: &str) -> String {
@@ -243,6 +334,123 @@ pub(crate) fn usage(
             }
         })
         .collect()
+}
+
+/// The participants and what was used of them, as a paper's first table
+/// gives them: count, age, sex, fundus pigmentation, eyes, sessions and
+/// captures used.
+pub fn participants(study: &Study, epochs: &EpochTables, usage: &[Option<String>]) -> ReportTable {
+    use std::collections::BTreeSet;
+    let mut t = ReportTable::new(
+        "participants",
+        "Participants and the captures used of them (attributes as recorded in the study file)",
+        &[("characteristic", false), ("value", false)],
+    );
+    let subjects = &study.subjects;
+    let n = subjects.len();
+    let mut row = |k: &str, v: String| t.rows.push(vec![k.to_string(), v]);
+    row("participants", n.to_string());
+    let ages: Vec<f64> = subjects.iter().filter_map(|s| s.age).collect();
+    if !ages.is_empty() {
+        let (lo, hi) = ages
+            .iter()
+            .fold((f64::INFINITY, f64::NEG_INFINITY), |a, x| {
+                (a.0.min(*x), a.1.max(*x))
+            });
+        let missing = n - ages.len();
+        row(
+            "age (years), mean ± SD (range)",
+            format!(
+                "{} ± {} ({}–{}){}",
+                f(mean(&ages), 1),
+                f(sd(&ages), 1),
+                f(lo, 0),
+                f(hi, 0),
+                if missing > 0 {
+                    format!(", not recorded for {missing}")
+                } else {
+                    String::new()
+                }
+            ),
+        );
+    }
+    let counts = |values: Vec<Option<String>>| {
+        let mut c: BTreeMap<String, usize> = BTreeMap::new();
+        for v in values {
+            *c.entry(v.unwrap_or_else(|| "not recorded".into()))
+                .or_default() += 1;
+        }
+        c.iter()
+            .map(|(k, v)| format!("{k}: {v}"))
+            .collect::<Vec<_>>()
+            .join(", ")
+    };
+    row(
+        "sex",
+        counts(subjects.iter().map(|s| s.sex.clone()).collect()),
+    );
+    row(
+        "fundus pigmentation grade",
+        counts(
+            subjects
+                .iter()
+                .map(|s| s.pigmentation.map(|g| g.to_string()))
+                .collect(),
+        ),
+    );
+    let eyes: BTreeSet<(&str, String)> = subjects
+        .iter()
+        .flat_map(|s| {
+            s.sessions.iter().flat_map(|x| {
+                x.eyes
+                    .iter()
+                    .map(|e| (s.id.as_str(), e.as_str().to_string()))
+            })
+        })
+        .collect();
+    row("eyes imaged", eyes.len().to_string());
+    row(
+        "sessions",
+        subjects
+            .iter()
+            .map(|s| s.sessions.len())
+            .sum::<usize>()
+            .to_string(),
+    );
+    let used = usage.iter().filter(|u| u.is_none()).count();
+    row(
+        "captures used / acquired",
+        format!("{used} / {}", epochs.captures.len()),
+    );
+    let mut per: Vec<f64> = subjects
+        .iter()
+        .map(|s| {
+            epochs
+                .captures
+                .iter()
+                .zip(usage)
+                .filter(|(c, u)| c.subject == s.id && u.is_none())
+                .count() as f64
+        })
+        .collect();
+    per.sort_by(f64::total_cmp);
+    if let (Some(lo), Some(hi)) = (per.first(), per.last()) {
+        let mid = if per.len() % 2 == 1 {
+            per[per.len() / 2]
+        } else {
+            (per[per.len() / 2 - 1] + per[per.len() / 2]) / 2.0
+        };
+        row(
+            "captures used per participant, median (range)",
+            format!(
+                "{} ({}–{})",
+                f(mid, if mid.fract() == 0.0 { 0 } else { 1 }),
+                f(*lo, 0),
+                f(*hi, 0)
+            ),
+        );
+    }
+    t
 }
 
 /// Captures acquired, used and not used by reason, per subject and epoch.
@@ -507,16 +715,36 @@ pub fn agreement(study: &Study, stats: &StatisticsTables) -> ReportTable {
 }
 
 pub fn method_comparison(stats: &StatisticsTables) -> ReportTable {
+    // Methods (and method pairs) as columns, quantities as rows, each with
+    // the unit it is computed over: one page however many methods.
+    let mut methods: Vec<&str> = Vec::new();
+    let mut rows: Vec<(&str, &str, &str)> = Vec::new();
+    for r in &stats.comparison {
+        if r.quantity.starts_with("change_ratio_") || is_pair(&r.method) {
+            continue;
+        }
+        if !methods.contains(&r.method.as_str()) {
+            methods.push(&r.method);
+        }
+        let key = (r.kind.as_str(), r.quantity.as_str(), r.unit.as_str());
+        if !rows.iter().any(|k| k.0 == key.0 && k.1 == key.1) {
+            rows.push(key);
+        }
+    }
+    // Kinds together, in the order they first appear.
+    let kinds: Vec<&str> = rows.iter().fold(Vec::new(), |mut k, r| {
+        if !k.contains(&r.0) {
+            k.push(r.0);
+        }
+        k
+    });
+    rows.sort_by_key(|r| kinds.iter().position(|k| *k == r.0));
+    let mut columns: Vec<(&str, bool)> = vec![("kind", false), ("quantity (unit)", false)];
+    columns.extend(methods.iter().map(|m| (*m, true)));
     let mut t = ReportTable::new(
         "method_comparison",
-        "Method comparison on the same cohort: repeatability, uncertainty, spread along segments, values outside 0–100 %, response to the SpO2 change (its slope, and the ratio of the measured to the reference change with its interval: below 1 the method shrinks the response), and agreement between methods, each with the unit it is computed over",
-        &[
-            ("method", false),
-            ("kind", false),
-            ("quantity", false),
-            ("value", true),
-            ("unit", false),
-        ],
+        "Method comparison on the same cohort, one column per method: repeatability, uncertainty, spread along segments, values outside 0–100 %, response to the SpO2 change (its slope, and the ratio of the measured to the reference change with its interval: below 1 the method shrinks the response), each with the unit it is computed over; – where a quantity does not apply",
+        &columns,
     );
     let find = |m: &str, k: &str, q: &str| {
         stats
@@ -525,12 +753,7 @@ pub fn method_comparison(stats: &StatisticsTables) -> ReportTable {
             .find(|r| r.method == m && r.kind == k && r.quantity == q)
             .map(|r| r.value)
     };
-    for r in &stats.comparison {
-        let q = &r.quantity;
-        // The ratio's interval and subject count join the ratio's row.
-        if q.starts_with("change_ratio_") {
-            continue;
-        }
+    for (kind, q, unit) in rows {
         let digits = if q.contains("share") || q.contains("slope") || q.contains("ratio") {
             3
         } else if q == "n" || q == "pairs" || q.starts_with("values") {
@@ -538,24 +761,72 @@ pub fn method_comparison(stats: &StatisticsTables) -> ReportTable {
         } else {
             2
         };
-        let value = if q == "change_ratio" {
-            let at = |x: &str| find(&r.method, &r.kind, x);
-            format!(
-                "{} ({} to {}, {} subjects)",
-                f(r.value, digits),
-                f(at("change_ratio_lower").unwrap_or(f64::NAN), digits),
-                f(at("change_ratio_upper").unwrap_or(f64::NAN), digits),
-                f(at("change_ratio_subjects").unwrap_or(f64::NAN), 0)
-            )
-        } else {
-            f(r.value, digits)
+        let quantity = format!("{} ({unit})", q.replace('_', " "));
+        let mut cells = vec![kind.to_string(), quantity];
+        let mut interval = vec![kind.to_string(), "its interval (subjects)".to_string()];
+        for m in &methods {
+            let Some(v) = find(m, kind, q) else {
+                cells.push("–".into());
+                interval.push("–".into());
+                continue;
+            };
+            cells.push(f(v, digits));
+            // The change ratio's interval and subject count: a row of their own.
+            let at = |x: &str| find(m, kind, x).unwrap_or(f64::NAN);
+            interval.push(format!(
+                "{} to {} ({})",
+                f(at("change_ratio_lower"), 2),
+                f(at("change_ratio_upper"), 2),
+                f(at("change_ratio_subjects"), 0)
+            ));
+        }
+        t.rows.push(cells);
+        if q == "change_ratio" {
+            t.rows.push(interval);
+        }
+    }
+    t
+}
+
+/// A method pair's label in the comparison rows (`A vs B`).
+fn is_pair(method: &str) -> bool {
+    method.contains(" vs ")
+}
+
+/// Agreement between the methods, pair by pair: the bias and the limits of
+/// agreement over the segment × capture values both methods have.
+pub fn method_agreement(stats: &StatisticsTables) -> ReportTable {
+    let mut t = ReportTable::new(
+        "method_agreement",
+        "Agreement between methods on the same segment fits: bias (first minus second method, SO2 points) and limits of agreement for repeated measures per subject (Bland & Altman 2007)",
+        &[
+            ("methods", false),
+            ("kind", false),
+            ("pairs", true),
+            ("bias", true),
+            ("limits of agreement", true),
+        ],
+    );
+    let mut keys: Vec<(&str, &str)> = Vec::new();
+    for r in stats.comparison.iter().filter(|r| is_pair(&r.method)) {
+        if !keys.contains(&(r.method.as_str(), r.kind.as_str())) {
+            keys.push((&r.method, &r.kind));
+        }
+    }
+    for (m, k) in keys {
+        let at = |q: &str| {
+            stats
+                .comparison
+                .iter()
+                .find(|r| r.method == m && r.kind == k && r.quantity == q)
+                .map_or(f64::NAN, |r| r.value)
         };
         t.rows.push(vec![
-            r.method.clone(),
-            r.kind.clone(),
-            q.replace('_', " "),
-            value,
-            r.unit.clone(),
+            m.to_string(),
+            k.to_string(),
+            f(at("pairs"), 0),
+            f(at("bias"), 2),
+            format!("{} to {}", f(at("loa_lower"), 2), f(at("loa_upper"), 2)),
         ]);
     }
     t

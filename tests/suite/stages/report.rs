@@ -30,6 +30,7 @@ fn run_study(dir: &Path) -> PathBuf {
 }
 
 const TABLES: &[(&str, &[&str])] = &[
+    ("participants", &["characteristic", "value"]),
     (
         "capture_accounting",
         &["subject", "epoch", "acquired", "used", "settling"],
@@ -71,7 +72,17 @@ const TABLES: &[(&str, &[&str])] = &[
     ),
     (
         "method_comparison",
-        &["method", "kind", "quantity", "value"],
+        &[
+            "kind",
+            "quantity (unit)",
+            "two-band",
+            "multiband",
+            "multiband-pointwise",
+        ],
+    ),
+    (
+        "method_agreement",
+        &["methods", "kind", "pairs", "bias", "limits of agreement"],
     ),
     ("data_quality", &["item", "count", "of"]),
 ];
@@ -255,18 +266,49 @@ fn the_report_is_complete_and_self_contained() {
     }
     assert!(md.contains("Research use only"));
 
-    // With a TeX engine installed, every table compiles.
-    if std::process::Command::new("pdflatex")
+    // The participants table counts the fixture's three subjects and
+    // gives their ages and sexes as the study file records them.
+    let people = std::fs::read_to_string(rep.join("tables/participants.csv")).unwrap();
+    assert!(people.contains("\nparticipants,3\n"), "{people}");
+    assert!(people.contains("\"age (years), mean ± SD (range)\","), "{people}");
+    assert!(people.contains("\neyes imaged,3\n"), "{people}");
+
+    // Every LaTeX table states its preamble, sets minus signs and
+    // subscripts, and groups repeated method names.
+    let contrasts = std::fs::read_to_string(rep.join("tables/contrasts.tex")).unwrap();
+    assert!(contrasts.starts_with(
+        "% satstep report table `contrasts`. Needs, in the preamble: \\usepackage{booktabs}"
+    ));
+    assert!(contrasts.contains("SO\\textsubscript{2}"), "{contrasts}");
+    assert!(contrasts.contains("& $-$"), "{contrasts}");
+    assert!(
+        !contrasts.contains("& -"),
+        "a hyphen for a minus: {contrasts}"
+    );
+    assert_eq!(
+        contrasts.matches("\nmultiband & ").count(),
+        1,
+        "the method is named once per group: {contrasts}"
+    );
+
+    // With a TeX engine installed (`.ci/run` installs one and sets
+    // SATSTEP_REQUIRE_TEX), every table compiles under the stated
+    // preamble and fits the text width of an article page.
+    let have_tex = std::process::Command::new("pdflatex")
         .arg("--version")
         .output()
-        .is_ok()
-    {
+        .is_ok();
+    assert!(
+        have_tex || std::env::var("SATSTEP_REQUIRE_TEX").is_err(),
+        "SATSTEP_REQUIRE_TEX is set but pdflatex is not installed"
+    );
+    if have_tex {
         let mut doc = String::from(
-            "\\documentclass{article}\n\\usepackage[utf8]{inputenc}\n\\usepackage{booktabs}\n\\usepackage{textcomp}\n\\begin{document}\n",
+            "\\documentclass{article}\n\\usepackage{booktabs}\n\\usepackage{array}\n\\usepackage{graphicx}\n\\begin{document}\n",
         );
         for (name, _) in TABLES {
             doc.push_str(&format!(
-                "\\input{{{}}}\n",
+                "\\input{{{}}}\n\\clearpage\n",
                 rep.join(format!("tables/{name}.tex")).display()
             ));
         }
@@ -284,6 +326,23 @@ fn the_report_is_complete_and_self_contained() {
             "{}",
             String::from_utf8_lossy(&st.stdout)
         );
+        let log = std::fs::read_to_string(dir.path().join("tables.log")).unwrap();
+        // A table wider than the text is scaled to it (a table that still
+        // overflows, or is taller than the page, is a failure).
+        for complaint in ["Overfull \\hbox", "Overfull \\vbox", "Float too large"] {
+            assert!(
+                !log.contains(complaint),
+                "{complaint} in the tables:\n{log}"
+            );
+        }
+        // One page per table: none runs over a page.
+        let pages = log
+            .split("Output written on ")
+            .nth(1)
+            .and_then(|t| t.split('(').nth(1))
+            .and_then(|t| t.split(' ').next())
+            .and_then(|n| n.parse::<usize>().ok());
+        assert_eq!(pages, Some(TABLES.len()), "{log}");
     }
 }
 
