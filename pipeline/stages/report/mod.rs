@@ -36,7 +36,7 @@ pub(crate) struct Report;
 impl Stage for Report {
     const NAME: &'static str = "report";
     /// Version of the report's layout; bump when its output changes.
-    const VERSION: u32 = 9;
+    const VERSION: u32 = 10;
     const SUMMARY: &'static str = "the paper's tables and figures, report.html and report.md";
     const UPSTREAM: &'static [&'static str] =
         &["epochs", "transmissions", "fits", "statistics", "power"];
@@ -180,7 +180,8 @@ fn write(
         tables::so2_by_epoch(s, inp.stats),
         tables::contrasts(s, inp.stats),
         tables::variance_components(inp.stats),
-        tables::agreement(s, inp.stats),
+        tables::agreement(inp.stats),
+        tables::slope_on_reference(s, inp.stats),
         tables::method_comparison(inp.stats),
         tables::method_agreement(inp.stats),
     ];

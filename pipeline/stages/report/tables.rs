@@ -25,6 +25,8 @@ pub struct ReportTable {
     pub columns: Vec<String>,
     pub numeric: Vec<bool>,
     pub rows: Vec<Vec<String>>,
+    /// Leading columns that LaTeX sets as a heading over their rows.
+    pub groups: usize,
 }
 
 impl ReportTable {
@@ -35,7 +37,14 @@ impl ReportTable {
             columns: columns.iter().map(|c| c.0.to_string()).collect(),
             numeric: columns.iter().map(|c| c.1).collect(),
             rows: vec![],
+            groups: 0,
         }
+    }
+
+    /// The first `n` columns head groups of rows in LaTeX.
+    fn grouped(mut self, n: usize) -> Self {
+        self.groups = n;
+        self
     }
 
     pub fn csv(&self) -> Result<Vec<u8>> {
@@ -75,17 +84,23 @@ impl ReportTable {
     /// are left blank (grouped rows, a little space between groups); a
     /// table wider than the text is scaled to the text width.
     pub fn latex(&self) -> String {
+        // The leading `groups` columns become a heading row over their
+        // rows (in italics) instead of columns of their own.
+        let g = self.groups;
+        let shown = g..self.columns.len();
         // Long text (a test's name, a unit) wraps in a ragged column of its
         // own instead of widening the table.
-        let align: String = (0..self.columns.len())
+        let wrap = if shown.len() > 4 { "7em" } else { "11em" };
+        let align: String = shown
+            .clone()
             .map(|i| {
                 let widest = self.rows.iter().map(|r| r[i].chars().count()).max();
                 if self.numeric[i] {
-                    "r"
+                    "r".to_string()
                 } else if widest.unwrap_or(0) > LATEX_WRAP_CHARS {
-                    ">{\\raggedright\\arraybackslash}p{11em}"
+                    format!(">{{\\raggedright\\arraybackslash}}p{{{wrap}}}")
                 } else {
-                    "l"
+                    "l".to_string()
                 }
             })
             .collect();
@@ -101,13 +116,26 @@ impl ReportTable {
             "% satstep report table `{}`. Needs, in the preamble: {LATEX_PACKAGES}.\n",
             self.name
         );
-        // A long table in a smaller size, so that it stays on one page.
-        let size = if self.rows.len() > LATEX_LONG_ROWS {
+        // A long or wide table in a smaller size, so that it stays on one
+        // page and within the text width; columns a little closer.
+        let heads = if g == 0 {
+            0
+        } else {
+            let mut keys: Vec<&[String]> = self.rows.iter().map(|r| &r[..g]).collect();
+            keys.dedup();
+            keys.len()
+        };
+        let lines = self.rows.len() + heads;
+        let size = if lines > 3 * LATEX_LONG_ROWS / 2 {
+            "\\scriptsize"
+        } else if lines > LATEX_LONG_ROWS || shown.len() >= LATEX_WIDE_COLUMNS {
             "\\footnotesize"
         } else {
             "\\small"
         };
-        out.push_str(&format!("\\begin{{table}}[htbp]\n\\centering\n{size}\n"));
+        out.push_str(&format!(
+            "\\begin{{table}}[htbp]\n\\centering\n{size}\n\\setlength{{\\tabcolsep}}{{4pt}}\n"
+        ));
         out.push_str(&format!(
             "\\caption{{{}}}\n\\label{{tab:{}}}\n\\smallskip\n",
             latex_cell(&self.caption),
@@ -116,18 +144,29 @@ impl ReportTable {
         out.push_str(&format!(
             "\\sbox0{{%\n\\begin{{tabular}}{{{align}}}\n\\toprule\n"
         ));
-        out.push_str(&row(&self.columns));
+        out.push_str(&row(&self.columns[shown.clone()]));
         out.push_str("\\midrule\n");
         let mut previous: Option<&Vec<String>> = None;
         for r in &self.rows {
-            let mut cells = r.clone();
-            if let Some(p) = previous {
+            let mut cells = r[shown.clone()].to_vec();
+            let new_group = g > 0 && previous.is_none_or(|p| p[..g] != r[..g]);
+            if new_group {
+                if previous.is_some() {
+                    out.push_str("\\addlinespace\n");
+                }
+                out.push_str(&format!(
+                    "\\multicolumn{{{}}}{{@{{}}l}}{{\\textit{{{}}}}} \\\\\n",
+                    shown.len(),
+                    latex_cell(&r[..g].join(", "))
+                ));
+            } else if let Some(p) = previous {
                 // Blank the leading text cells the row shares with the one
                 // above (never a number, never the whole row).
+                let p = &p[shown.clone()];
                 let same = (0..cells.len() - 1)
-                    .take_while(|i| !self.numeric[*i] && cells[*i] == p[*i])
+                    .take_while(|i| !self.numeric[g + *i] && cells[*i] == p[*i])
                     .count();
-                if same == 0 && !self.numeric[0] {
+                if g == 0 && same == 0 && !self.numeric[0] {
                     out.push_str("\\addlinespace\n");
                 }
                 for c in cells.iter_mut().take(same) {
@@ -196,8 +235,12 @@ impl ReportTable {
 /// The packages the LaTeX tables need, as their header states it.
 pub const LATEX_PACKAGES: &str = "\\usepackage{booktabs} \\usepackage{array} \\usepackage{graphicx} (all in any TeX installation; UTF-8 input, the default since 2018)";
 
-/// LaTeX tables with more rows than this are set in a smaller size.
-const LATEX_LONG_ROWS: usize = 36;
+/// LaTeX tables with more lines than this (rows and group headings) are
+/// set in a smaller size, and smaller still above one and a half times this.
+const LATEX_LONG_ROWS: usize = 30;
+
+/// LaTeX tables with this many columns or more are set in a smaller size.
+const LATEX_WIDE_COLUMNS: usize = 6;
 
 /// Text columns with a cell longer than this wrap in the LaTeX tables.
 const LATEX_WRAP_CHARS: usize = 22;
@@ -560,7 +603,8 @@ pub fn so2_by_epoch(study: &Study, stats: &StatisticsTables) -> ReportTable {
             ("venules", true),
             (ARTERIOVENOUS, true),
         ],
-    );
+    )
+    .grouped(1);
     for m in &study.methods {
         for e in &study.protocol.epochs {
             let mut n = 0;
@@ -594,7 +638,7 @@ pub fn so2_by_epoch(study: &Study, stats: &StatisticsTables) -> ReportTable {
 }
 
 pub fn contrasts(study: &Study, stats: &StatisticsTables) -> ReportTable {
-    let level = format!("{:.0} % CI", study.statistics.confidence * 100.0);
+    let estimate = format!("estimate ({:.0} % CI)", study.statistics.confidence * 100.0);
     let adj = match study.statistics.adjustment {
         Adjustment::Holm => "p (Holm)",
         Adjustment::None => "p (unadjusted)",
@@ -602,31 +646,33 @@ pub fn contrasts(study: &Study, stats: &StatisticsTables) -> ReportTable {
     let mut t = ReportTable::new(
         "contrasts",
         format!(
-            "Contrasts of SO2 between epochs (points): mixed model with subject-specific epoch deviations (REML, Satterthwaite df), or the subject-level t test where the model could not carry the contrast (column `test`); {level}; {adj} within method and vessel kind"
+            "Contrasts of SO2 between epochs (points): mixed model with subject-specific epoch deviations (REML, Satterthwaite df), or the subject-level t test where the model could not carry the contrast (column `test`); {adj} within method and vessel kind"
         ),
         &[
             ("method", false),
             ("kind", false),
             ("contrast", false),
-            ("estimate", true),
-            (level.as_str(), true),
+            (estimate.as_str(), true),
             ("df", true),
-            ("t", true),
             ("p", true),
             (adj, true),
             ("test", false),
         ],
-    );
+    )
+    .grouped(2);
     for r in &stats.contrasts {
         let test = &r.result.test;
         t.rows.push(vec![
             r.method.clone(),
             r.kind.clone(),
             test.label.clone(),
-            f(test.estimate, 2),
-            format!("{} to {}", f(test.lower, 2), f(test.upper, 2)),
+            format!(
+                "{} ({} to {})",
+                f(test.estimate, 2),
+                f(test.lower, 2),
+                f(test.upper, 2)
+            ),
             f(test.df, 1),
-            f(test.t, 2),
             format_p(test.p),
             format_p(r.result.p_adjusted),
             r.result.basis.name().to_string(),
@@ -647,7 +693,8 @@ pub fn variance_components(stats: &StatisticsTables) -> ReportTable {
             ("SD", true),
             ("boundary", false),
         ],
-    );
+    )
+    .grouped(2);
     for r in &stats.variance {
         let c = &r.component;
         t.rows.push(vec![
@@ -662,11 +709,10 @@ pub fn variance_components(stats: &StatisticsTables) -> ReportTable {
     t
 }
 
-pub fn agreement(study: &Study, stats: &StatisticsTables) -> ReportTable {
-    let level = format!("slope {:.0} % CI", study.statistics.confidence * 100.0);
+pub fn agreement(stats: &StatisticsTables) -> ReportTable {
     let mut t = ReportTable::new(
         "agreement",
-        "Agreement of capture-mean arteriolar SO2 with the reference SpO2 (points): bias, precision, Arms over captures, repeated-measures 95 % limits of agreement (Bland & Altman 2007); slope of SO2 on SpO2 over subject × epoch means with a random intercept and slope by subject (subjects are the unit; `model` says when the random slope was dropped)",
+        "Agreement of capture-mean arteriolar SO2 with the reference SpO2 (points): bias, precision, Arms over captures and the repeated-measures 95 % limits of agreement (Bland & Altman 2007)",
         &[
             ("method", false),
             ("captures", true),
@@ -675,14 +721,11 @@ pub fn agreement(study: &Study, stats: &StatisticsTables) -> ReportTable {
             ("precision", true),
             ("Arms", true),
             ("limits of agreement", true),
-            ("slope", true),
-            (level.as_str(), true),
-            ("slope df", true),
-            ("model", false),
         ],
-    );
+    )
+    .grouped(1);
     for r in &stats.agreement {
-        let (a, s) = (&r.agreement, &r.slope);
+        let a = &r.agreement;
         t.rows.push(vec![
             r.method.clone(),
             a.n.to_string(),
@@ -691,24 +734,45 @@ pub fn agreement(study: &Study, stats: &StatisticsTables) -> ReportTable {
             f(a.precision, 2),
             f(a.arms, 2),
             format!("{} to {}", f(a.lower, 2), f(a.upper, 2)),
-            s.as_ref()
-                .map(|s| f(s.test.estimate, 3))
-                .unwrap_or_else(|| "–".into()),
-            s.as_ref()
-                .map(|s| format!("{} to {}", f(s.test.lower, 3), f(s.test.upper, 3)))
-                .unwrap_or_else(|| "–".into()),
-            s.as_ref()
-                .map(|s| f(s.test.df, 1))
-                .unwrap_or_else(|| "–".into()),
-            s.as_ref()
-                .map(|s| {
-                    if s.formula.contains("0 + spo2") {
-                        "random slope".to_string()
-                    } else {
-                        "random intercept only (slope variance on the boundary)".to_string()
-                    }
-                })
-                .unwrap_or_else(|| "–".into()),
+        ]);
+    }
+    t
+}
+
+/// The slope of retinal SO2 on the reference over subject × epoch means.
+pub fn slope_on_reference(study: &Study, stats: &StatisticsTables) -> ReportTable {
+    let level = format!("slope ({:.0} % CI)", study.statistics.confidence * 100.0);
+    let mut t = ReportTable::new(
+        "slope_on_reference",
+        "Slope of arteriolar SO2 on the reference SpO2 over subject × epoch means, with a random intercept and slope by subject (subjects are the unit; `model` says when the random slope was dropped)",
+        &[
+            ("method", false),
+            (level.as_str(), true),
+            ("df", true),
+            ("model", false),
+        ],
+    )
+    .grouped(1);
+    for r in &stats.agreement {
+        let Some(s) = &r.slope else {
+            t.rows
+                .push(vec![r.method.clone(), "–".into(), "–".into(), "–".into()]);
+            continue;
+        };
+        t.rows.push(vec![
+            r.method.clone(),
+            format!(
+                "{} ({} to {})",
+                f(s.test.estimate, 3),
+                f(s.test.lower, 3),
+                f(s.test.upper, 3)
+            ),
+            f(s.test.df, 1),
+            if s.formula.contains("0 + spo2") {
+                "random slope".to_string()
+            } else {
+                "random intercept only (slope variance on the boundary)".to_string()
+            },
         ]);
     }
     t
@@ -739,13 +803,25 @@ pub fn method_comparison(stats: &StatisticsTables) -> ReportTable {
         k
     });
     rows.sort_by_key(|r| kinds.iter().position(|k| *k == r.0));
+    // What each quantity is computed over, once, for the caption.
+    let mut over: Vec<String> = Vec::new();
+    for (_, q, unit) in &rows {
+        let text = format!("{} over {unit}", quantity_name(q));
+        if !over.contains(&text) {
+            over.push(text);
+        }
+    }
     let mut columns: Vec<(&str, bool)> = vec![("kind", false), ("quantity (unit)", false)];
     columns.extend(methods.iter().map(|m| (*m, true)));
     let mut t = ReportTable::new(
         "method_comparison",
-        "Method comparison on the same cohort, one column per method: repeatability, uncertainty, spread along segments, values outside 0–100 %, response to the SpO2 change (its slope, and the ratio of the measured to the reference change with its interval: below 1 the method shrinks the response), each with the unit it is computed over; – where a quantity does not apply",
+        format!(
+            "Method comparison on the same cohort, one column per method: repeatability, uncertainty, spread along segments, values outside 0–100 %, response to the SpO2 change (its slope, and the ratio of the measured to the reference change with its interval: below 1 the method shrinks the response); – where a quantity does not apply. Computed over: {}",
+            over.join("; ")
+        ),
         &columns,
-    );
+    )
+    .grouped(1);
     let find = |m: &str, k: &str, q: &str| {
         stats
             .comparison
@@ -753,7 +829,7 @@ pub fn method_comparison(stats: &StatisticsTables) -> ReportTable {
             .find(|r| r.method == m && r.kind == k && r.quantity == q)
             .map(|r| r.value)
     };
-    for (kind, q, unit) in rows {
+    for (kind, q, _) in rows {
         let digits = if q.contains("share") || q.contains("slope") || q.contains("ratio") {
             3
         } else if q == "n" || q == "pairs" || q.starts_with("values") {
@@ -761,7 +837,7 @@ pub fn method_comparison(stats: &StatisticsTables) -> ReportTable {
         } else {
             2
         };
-        let quantity = format!("{} ({unit})", q.replace('_', " "));
+        let quantity = format!("{} ({})", quantity_name(q), unit_of(q));
         let mut cells = vec![kind.to_string(), quantity];
         let mut interval = vec![kind.to_string(), "its interval (subjects)".to_string()];
         for m in &methods {
@@ -786,6 +862,34 @@ pub fn method_comparison(stats: &StatisticsTables) -> ReportTable {
         }
     }
     t
+}
+
+/// A method-comparison quantity as a paper names it.
+fn quantity_name(quantity: &str) -> String {
+    match quantity {
+        "repeatability_sd" => "repeatability SD".into(),
+        "mean_segment_se" => "mean segment SE".into(),
+        "share_outside_0_100" => "share outside 0–100 %".into(),
+        "slope_change_on_spo2_change" => "slope of change on SpO2 change".into(),
+        "along_segment_sd" => "along-segment SD".into(),
+        q => q.replace('_', " "),
+    }
+}
+
+/// The unit of a method-comparison quantity, as a table's row gives it
+/// (what it is computed over is in the caption).
+fn unit_of(quantity: &str) -> &'static str {
+    if quantity.contains("share") {
+        "share"
+    } else if quantity == "n" || quantity == "pairs" || quantity.starts_with("values") {
+        "count"
+    } else if quantity.contains("slope") {
+        "points per SpO2 point"
+    } else if quantity.contains("ratio") {
+        "ratio"
+    } else {
+        "SO2 points"
+    }
 }
 
 /// A method pair's label in the comparison rows (`A vs B`).
