@@ -28,7 +28,7 @@ use crate::runner::Runner;
 use crate::runner::key::{Key, KeyBuilder, combine};
 use crate::tables::create_folder;
 use crate::tables::write_bytes_atomic;
-use tables::{ReportTable, html_escape, markdown_escape as md};
+use tables::{ReportTable, html_escape, html_prose, markdown_escape as md};
 
 /// The report stage.
 pub(crate) struct Report;
@@ -36,7 +36,7 @@ pub(crate) struct Report;
 impl Stage for Report {
     const NAME: &'static str = "report";
     /// Version of the report's layout; bump when its output changes.
-    const VERSION: u32 = 10;
+    const VERSION: u32 = 11;
     const SUMMARY: &'static str = "the paper's tables and figures, report.html and report.md";
     const UPSTREAM: &'static [&'static str] =
         &["epochs", "transmissions", "fits", "statistics", "power"];
@@ -338,9 +338,24 @@ impl Document<'_> {
             h.push_str(&format!("<li>{}</li>", html_escape(c)));
         }
         h.push_str("</ul></div>\n");
+        // A short contents list of the sections.
+        h.push_str("<nav><strong>Contents</strong><ol>");
+        let mut sections = vec![("cohort", "Cohort and protocol"), ("results", "Results")];
+        if self.inp.power.is_some() {
+            sections.push(("power", "Power for a follow-up study"));
+        }
+        sections.extend([
+            ("methods", "Methods"),
+            ("quality", "Data quality"),
+            ("provenance", "Provenance"),
+        ]);
+        for (id, title) in sections {
+            h.push_str(&format!("<li><a href=\"#{id}\">{title}</a></li>"));
+        }
+        h.push_str("</ol></nav>\n");
         h.push_str("<h2 id=\"cohort\">Cohort and protocol</h2>\n");
         for p in self.cohort() {
-            h.push_str(&format!("<p>{}</p>\n", html_escape(&p)));
+            h.push_str(&format!("<p>{}</p>\n", html_prose(&p)));
         }
         h.push_str(&format!(
             "<pre>{}</pre>\n",
@@ -351,34 +366,39 @@ impl Document<'_> {
             "<p>Figures of a single method show <code>{}</code>.</p>\n",
             html_escape(self.primary)
         ));
+        // Tables and figures are numbered in the order they appear.
+        let (mut table_no, mut figure_no) = (0, 0);
         for t in self.results {
-            h.push_str(&t.html());
+            table_no += 1;
+            h.push_str(&t.html(table_no));
         }
         for f in self.figures {
+            figure_no += 1;
             h.push_str(&format!(
-                "<figure id=\"fig-{}\">\n{}\n<figcaption>{}</figcaption>\n</figure>\n",
+                "<figure id=\"fig-{}\">\n{}\n<figcaption><strong>Figure {figure_no}.</strong> {}</figcaption>\n</figure>\n",
                 f.name,
                 strip_xml_header(&f.svg),
-                html_escape(&f.caption)
+                html_prose(&f.caption)
             ));
         }
         if let Some(p) = &self.inp.power {
             h.push_str("<h2 id=\"power\">Power for a follow-up study</h2>\n");
-            h.push_str(&format!("<p>{}</p>\n<ul>\n", html_escape(POWER_INTRO)));
+            h.push_str(&format!("<p>{}</p>\n<ul>\n", html_prose(POWER_INTRO)));
             for l in &p.lines {
-                h.push_str(&format!("<li>{}</li>\n", html_escape(l)));
+                h.push_str(&format!("<li>{}</li>\n", html_prose(l)));
             }
             h.push_str("</ul>\n");
+            figure_no += 1;
             h.push_str(&format!(
-                "<figure id=\"fig-{}\">\n{}\n<figcaption>{}</figcaption>\n</figure>\n",
+                "<figure id=\"fig-{}\">\n{}\n<figcaption><strong>Figure {figure_no}.</strong> {}</figcaption>\n</figure>\n",
                 p.figure.name,
                 strip_xml_header(&p.figure.svg),
-                html_escape(&p.figure.caption)
+                html_prose(&p.figure.caption)
             ));
         }
         h.push_str("<h2 id=\"methods\">Methods</h2>\n");
         for p in self.inp.methods {
-            h.push_str(&format!("<p>{}</p>\n", html_escape(p)));
+            h.push_str(&format!("<p>{}</p>\n", html_prose(p)));
         }
         h.push_str("<h3>References</h3>\n<ol>\n");
         for r in REFERENCES {
@@ -386,7 +406,8 @@ impl Document<'_> {
         }
         h.push_str("</ol>\n<h2 id=\"quality\">Data quality</h2>\n");
         for t in self.quality {
-            h.push_str(&t.html());
+            table_no += 1;
+            h.push_str(&t.html(table_no));
         }
         let fails = self.failures();
         if fails.is_empty() {
@@ -394,7 +415,7 @@ impl Document<'_> {
         } else {
             h.push_str("<ul>\n");
             for f in &fails {
-                h.push_str(&format!("<li>{}</li>\n", html_escape(f)));
+                h.push_str(&format!("<li>{}</li>\n", html_prose(f)));
             }
             h.push_str("</ul>\n");
         }
@@ -445,12 +466,19 @@ impl Document<'_> {
             crate::timeline::show::render_timeline(&s.protocol),
             self.primary
         ));
+        let (mut table_no, mut figure_no) = (0, 0);
         for t in self.results {
-            m.push_str(&format!("**{}**\n\n{}\n", md(&t.caption), t.markdown()));
+            table_no += 1;
+            m.push_str(&format!(
+                "**Table {table_no}.** {}\n\n{}\n",
+                md(&t.caption),
+                t.markdown()
+            ));
         }
         for f in self.figures {
+            figure_no += 1;
             m.push_str(&format!(
-                "![{}](figures/{}.png)\n\n*{}*\n\n",
+                "![{}](figures/{}.png)\n\n**Figure {figure_no}.** {}\n\n",
                 f.name,
                 f.name,
                 md(&f.caption)
@@ -464,8 +492,9 @@ impl Document<'_> {
             for l in &p.lines {
                 m.push_str(&format!("- {}\n", md(l)));
             }
+            figure_no += 1;
             m.push_str(&format!(
-                "\n![{}](figures/{}.png)\n\n*{}*\n\n",
+                "\n![{}](figures/{}.png)\n\n**Figure {figure_no}.** {}\n\n",
                 p.figure.name,
                 p.figure.name,
                 md(&p.figure.caption)
@@ -481,7 +510,12 @@ impl Document<'_> {
         }
         m.push_str("\n## Data quality\n\n");
         for t in self.quality {
-            m.push_str(&format!("**{}**\n\n{}\n", md(&t.caption), t.markdown()));
+            table_no += 1;
+            m.push_str(&format!(
+                "**Table {table_no}.** {}\n\n{}\n",
+                md(&t.caption),
+                t.markdown()
+            ));
         }
         let fails = self.failures();
         if fails.is_empty() {

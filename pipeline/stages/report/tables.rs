@@ -184,11 +184,12 @@ impl ReportTable {
         out
     }
 
-    pub fn html(&self) -> String {
+    /// The table as HTML, its caption numbered `number`.
+    pub fn html(&self, number: usize) -> String {
         let mut out = format!(
-            "<table id=\"tab-{}\">\n<caption>{}</caption>\n<thead><tr>",
+            "<table id=\"tab-{}\">\n<caption><strong>Table {number}.</strong> {}</caption>\n<thead><tr>",
             self.name,
-            html_escape(&self.caption)
+            html_prose(&self.caption)
         );
         for (c, n) in self.columns.iter().zip(&self.numeric) {
             out.push_str(&format!(
@@ -331,6 +332,27 @@ pub(crate) fn markdown_escape(s: &str) -> String {
         }
     }
     out
+}
+
+/// Prose for HTML: escaped, with Markdown's inline code (`x`) rendered as
+/// `<code>`, so that no backtick shows (left as is when unbalanced).
+pub(crate) fn html_prose(s: &str) -> String {
+    let escaped = html_escape(s);
+    let parts: Vec<&str> = escaped.split('`').collect();
+    if parts.len() % 2 == 0 {
+        return escaped;
+    }
+    parts
+        .iter()
+        .enumerate()
+        .map(|(i, p)| {
+            if i % 2 == 1 {
+                format!("<code>{p}</code>")
+            } else {
+                p.to_string()
+            }
+        })
+        .collect()
 }
 
 pub(crate) fn html_escape(s: &str) -> String {

@@ -263,6 +263,35 @@ fn the_report_is_complete_and_self_contained() {
     ] {
         assert!(html.contains(needle), "report.html lacks `{needle}`");
     }
+    // A document: a contents list, tables and figures numbered in order,
+    // and Markdown's inline code rendered (no backtick shows in the text;
+    // the protocol's timeline in <pre> is shown as it is).
+    assert!(html.contains("<nav><strong>Contents</strong><ol><li><a href=\"#cohort\">"));
+    for n in 1..=TABLES.len() {
+        assert!(
+            html.contains(&format!("<strong>Table {n}.</strong>")),
+            "Table {n}"
+        );
+    }
+    for n in 1..=FIGURES.len() {
+        assert!(
+            html.contains(&format!("<strong>Figure {n}.</strong>")),
+            "Figure {n}"
+        );
+    }
+    let text: String = html
+        .split("<pre>")
+        .enumerate()
+        .map(|(i, part)| {
+            if i == 0 {
+                part
+            } else {
+                part.split("</pre>").nth(1).unwrap_or("")
+            }
+        })
+        .collect();
+    assert!(!text.contains('`'), "a literal backtick in report.html");
+    assert!(html.contains("<code>test</code>"), "inline code rendered");
 
     let md = std::fs::read_to_string(rep.join("report.md")).unwrap();
     for link in md.split("](").skip(1) {
