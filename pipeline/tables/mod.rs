@@ -303,6 +303,9 @@ impl TableStream {
     }
 
     pub fn push(&mut self, t: Table) -> Result<()> {
+        // Streams write one frame to both files; a time column's CSV form
+        // (`Table::time`) is only honoured by `Table::write`.
+        debug_assert!(t.csv_forms.is_empty(), "time columns in a streamed table");
         self.buffered += t.height();
         self.buffer.push(t);
         if self.buffered >= STREAM_BATCH_ROWS {

@@ -503,48 +503,17 @@ fn a_central_reflex_does_not_bias_the_transmission() {
         SampledBand::gaussian(570.0, 10.0),
         SampledBand::gaussian(600.0, 10.0),
     ];
-    let (a, b) = ((20.0, 40.0), (140.0, 120.0));
-    let seg = Segment {
-        id: "A1".into(),
-        kind: VesselKind::Arteriole,
-        points: vec![a, b],
-        notes: String::new(),
-    };
     let (d_um, so2, veil) = (130.0, 0.96, 0.1);
-    let vs = vec![VesselState {
-        segment: &seg,
-        so2,
-        diameter_um: Box::new(move |_| d_um),
-        double_pass: Box::new(|_| 0.3),
-    }];
-    let offsets = [(0.0, 0.0), (0.0, 0.0)];
-    let scene = Scene {
-        width: 160,
-        height: 160,
-        pixel_um: 12.0,
-        bands: &bands,
-        band_offsets: &offsets,
-        pigmentation: 2.0,
-        veil,
-        hb_g_per_l: 150.0,
-        optics: Default::default(),
-        well_electrons: 1e15,
-        read_noise_electrons: 0.0,
-    };
-    let pages = render(
-        &scene,
-        &vs,
-        Motion::default(),
-        1.0,
-        &mut rand_chacha::ChaCha8Rng::seed_from_u64(2),
-    );
+    let (seg, plain) = straight_vessel(&bands, d_um, so2, veil, false, Default::default());
+    let (a, b) = (seg.points[0], seg.points[1]);
     let sigma = 0.12 * d_um / 2.0 / 12.0;
     let len = (b.0 - a.0).hypot(b.1 - a.1);
     let dist = |i: usize| {
         let (x, y) = ((i % 160) as f64 - a.0, (i / 160) as f64 - a.1);
         (x * (b.1 - a.1) - y * (b.0 - a.0)).abs() / len
     };
-    let with_reflex: Vec<Vec<f32>> = pages
+    let with_reflex: Vec<Vec<f32>> = plain
+        .bands
         .iter()
         .map(|p| {
             p.iter()
@@ -563,10 +532,7 @@ fn a_central_reflex_does_not_bias_the_transmission() {
     );
     let mut truth = vec![0.0; 2];
     model.transmission(&Shared::new(so2, 150.0, veil), 0.3, d_um, &mut truth, None);
-    for (bands_px, reflex) in [
-        (pages.iter().map(|p| as_f32(p)).collect::<Vec<_>>(), false),
-        (with_reflex, true),
-    ] {
+    for (bands_px, reflex) in [(plain.bands.clone(), false), (with_reflex, true)] {
         let img = Multiband {
             width: 160,
             height: 160,
