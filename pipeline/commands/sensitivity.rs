@@ -152,7 +152,11 @@ pub fn sensitivity(
         .opt_real("centre_nm", tc)
         .real("so2_error_points", te);
     t.write(out, "sensitivity")?;
-    crate::stages::report::figures::sensitivity(out, &curves)?;
+    crate::stages::report::figures::sensitivity(
+        out,
+        &curves,
+        crate::stages::report::figures::Print::default(),
+    )?;
 
     let mut s = format!(
         "SO2 error (points) for a 1 % transmission error, `{}`, at SO2 {:.0} %, diameter {:.0} µm, hemoglobin {:.0} g/L, double-pass fraction {:.2}\n",

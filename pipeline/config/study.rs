@@ -198,6 +198,58 @@ pub struct PowerSettings {
     pub seed: u64,
 }
 
+/// The tables the report writes, by name: what `report: appendix:` may list.
+pub const REPORT_TABLES: &[&str] = &[
+    "participants",
+    "so2_by_epoch",
+    "contrasts",
+    "variance_components",
+    "agreement",
+    "slope_on_reference",
+    "method_comparison",
+    "method_agreement",
+    "capture_accounting",
+    "data_quality",
+    "truth",
+];
+
+/// The `report:` section: how the report presents the results. Nothing in
+/// it changes a number.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct ReportSettings {
+    /// The method the single-method figures show; `None`: the first joint
+    /// multiband method, else the first method.
+    pub primary: Option<String>,
+    /// Print width of the figures' PNG files, mm.
+    pub figure_width_mm: f64,
+    /// Print resolution of the figures' PNG files, dots per inch.
+    pub dpi: u32,
+    /// Tables set in the appendix instead of the results; `None`: every
+    /// table longer than [`ReportSettings::LONG_TABLE_ROWS`] rows.
+    pub appendix: Option<Vec<String>>,
+    /// The date under the title; `None`: the last session's date, so that
+    /// the same inputs give the same report on any day.
+    pub date: Option<chrono::NaiveDate>,
+}
+
+impl ReportSettings {
+    /// Rows above which a table goes to the appendix unless `appendix:` says.
+    pub const LONG_TABLE_ROWS: usize = 24;
+}
+
+impl Default for ReportSettings {
+    fn default() -> Self {
+        ReportSettings {
+            primary: None,
+            // The text width of a two-column journal page, about 7 in.
+            figure_width_mm: 174.0,
+            dpi: 300,
+            appendix: None,
+            date: None,
+        }
+    }
+}
+
 /// Bounds of the design choices a plan may try: subjects, captures per
 /// epoch, segments per eye, eyes, sessions (the `power:` section and
 /// `satstep power` alike).
@@ -240,6 +292,8 @@ pub struct Study {
     pub statistics: StatisticsSettings,
     /// A follow-up study to plan (the `power` stage), if any.
     pub power: Option<PowerSettings>,
+    /// How the report presents the results (the `report:` section).
+    pub report: ReportSettings,
     /// A spectra table that replaces the images (see `config::spectra`).
     pub spectra_file: Option<PathBuf>,
     /// Its contents, read and checked with the study.
@@ -325,8 +379,10 @@ const STUDY_KEYS: &[&str] = &[
     "statistics",
     "power",
     "spectra",
+    "report",
     "output",
 ];
+const REPORT_KEYS: &[&str] = &["primary", "figure_width_mm", "dpi", "appendix", "date"];
 const POWER_KEYS: &[&str] = &[
     "effects",
     "subjects",
@@ -610,6 +666,11 @@ fn read_study(r: &mut Reader, node: &Node, file: &Path, root: &Path) -> Option<S
         _ => Some(None),
     };
 
+    let report = match m.get("report") {
+        None => Some(ReportSettings::default()),
+        Some(n) => read_report(r, n, &methods),
+    };
+
     let spectra_file = m
         .get("spectra")
         .and_then(|n| r.text(n, "`spectra`"))
@@ -646,6 +707,7 @@ fn read_study(r: &mut Reader, node: &Node, file: &Path, root: &Path) -> Option<S
         exclusions: exclusions?,
         statistics: statistics?,
         power: power?,
+        report: report?,
         spectra_file,
         spectra: None,
         output,
@@ -1474,6 +1536,71 @@ fn read_statistics(r: &mut Reader, node: &Node) -> Option<StatisticsSettings> {
         }
     }
     Some(s)
+}
+
+fn read_report(r: &mut Reader, node: &Node, methods: &[Method]) -> Option<ReportSettings> {
+    let m = r.map(node, "`report`", REPORT_KEYS)?;
+    let mut s = ReportSettings::default();
+    let mut ok = true;
+    if let Some(n) = m.get("primary") {
+        let labels: Vec<&str> = methods.iter().map(|m| m.label.as_str()).collect();
+        s.primary = r.choice(n, "`primary` (a method of `methods:`)", &labels);
+        ok &= s.primary.is_some();
+    }
+    if let Some(n) = m.get("figure_width_mm") {
+        match r.number(n, "`figure_width_mm`") {
+            Some(v) if (40.0..=400.0).contains(&v) => s.figure_width_mm = v,
+            Some(v) => {
+                r.error(
+                    n.mark,
+                    format!("`figure_width_mm` is a print width of 40–400 mm, found {v}"),
+                )
+                .hint(
+                    "a journal column is about 85 mm wide, a two-column page's text about 174 mm",
+                );
+                ok = false;
+            }
+            None => ok = false,
+        }
+    }
+    if let Some(n) = m.get("dpi") {
+        match r.integer(n, "`dpi`") {
+            Some(v) if (72..=1200).contains(&v) => s.dpi = v as u32,
+            Some(v) => {
+                r.error(
+                    n.mark,
+                    format!("`dpi` is a print resolution of 72–1200 dots per inch, found {v}"),
+                )
+                .hint("journals ask for 300 dpi for figures, 600 for line art");
+                ok = false;
+            }
+            None => ok = false,
+        }
+    }
+    if let Some(n) = m.get("appendix") {
+        let mut names = Vec::new();
+        for i in r.list_or_one(n)? {
+            match r.choice(i, "`appendix` (a report table)", REPORT_TABLES) {
+                Some(t) => names.push(t),
+                None => ok = false,
+            }
+        }
+        s.appendix = Some(names);
+    }
+    if let Some(n) = m.get("date") {
+        let text = r.text(n, "`date`")?;
+        match chrono::NaiveDate::parse_from_str(&text, "%Y-%m-%d") {
+            Ok(d) => s.date = Some(d),
+            Err(_) => {
+                r.error(
+                    n.mark,
+                    format!("`date` is a day as YYYY-MM-DD, found `{text}`"),
+                );
+                ok = false;
+            }
+        }
+    }
+    ok.then_some(s)
 }
 
 /// A list of counts: `[6, 8, 10]`, one count, or a text `6..20/2` or

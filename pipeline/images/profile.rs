@@ -280,6 +280,35 @@ fn distance_to(points: &[(f64, f64)], p: (f64, f64)) -> f64 {
 }
 
 /// Analyses one segment (its polyline already in this capture's coordinates).
+/// Cumulative length of a polyline at each of its points, from 0.
+pub(crate) fn arc_lengths(line: &[(f64, f64)]) -> Vec<f64> {
+    let mut cum = vec![0.0];
+    for w in line.windows(2) {
+        let last = cum[cum.len() - 1];
+        cum.push(last + ((w[1].0 - w[0].0).powi(2) + (w[1].1 - w[0].1).powi(2)).sqrt());
+    }
+    cum
+}
+
+/// The point `along` pixels down a polyline of at least two points, and
+/// the unit tangent there; `cum` is [`arc_lengths`] of the line.
+pub(crate) fn locate(line: &[(f64, f64)], cum: &[f64], along: f64) -> ((f64, f64), (f64, f64)) {
+    let seg = cum
+        .partition_point(|c| *c <= along)
+        .clamp(1, line.len() - 1);
+    let (a, b) = (line[seg - 1], line[seg]);
+    let len = cum[seg] - cum[seg - 1];
+    let f = if len > 0.0 {
+        (along - cum[seg - 1]) / len
+    } else {
+        0.0
+    };
+    (
+        (a.0 + f * (b.0 - a.0), a.1 + f * (b.1 - a.1)),
+        ((b.0 - a.0) / len.max(1e-12), (b.1 - a.1) / len.max(1e-12)),
+    )
+}
+
 pub fn analyse_segment(
     img: &Multiband,
     line: &[(f64, f64)],
@@ -287,12 +316,7 @@ pub fn analyse_segment(
     width_band: usize,
     st: &ProfileSettings,
 ) -> Vec<ProfileResult> {
-    let mut cum = vec![0.0];
-    for w in line.windows(2) {
-        cum.push(
-            cum.last().unwrap() + ((w[1].0 - w[0].0).powi(2) + (w[1].1 - w[0].1).powi(2)).sqrt(),
-        );
-    }
+    let cum = arc_lengths(line);
     let total = *cum.last().unwrap_or(&0.0);
     let half = st.half_length_px;
     let s: Vec<f64> = (0..=(4.0 * half) as usize)
@@ -302,18 +326,7 @@ pub fn analyse_segment(
     let mut along = st.end_margin_px;
     let mut k = 0;
     while along <= total - st.end_margin_px {
-        let seg = cum
-            .partition_point(|c| *c <= along)
-            .clamp(1, line.len() - 1);
-        let (a, b) = (line[seg - 1], line[seg]);
-        let len = cum[seg] - cum[seg - 1];
-        let f = if len > 0.0 {
-            (along - cum[seg - 1]) / len
-        } else {
-            0.0
-        };
-        let centre = (a.0 + f * (b.0 - a.0), a.1 + f * (b.1 - a.1));
-        let (tx, ty) = ((b.0 - a.0) / len.max(1e-12), (b.1 - a.1) / len.max(1e-12));
+        let (centre, (tx, ty)) = locate(line, &cum, along);
         let normal = (-ty, tx);
         let mut flags = Vec::new();
         let sample = |band: usize| -> Option<Vec<f64>> {

@@ -30,6 +30,17 @@ pub struct Registration {
     pub worst_region: f64,
 }
 
+impl Registration {
+    /// No motion: how the eye's reference capture lies on itself.
+    pub const IDENTITY: Registration = Registration {
+        dx: 0.0,
+        dy: 0.0,
+        angle_deg: 0.0,
+        score: 1.0,
+        worst_region: 1.0,
+    };
+}
+
 /// The rigid motion `q = R(angle)(p − c) + c + (dx, dy)`, shared by
 /// registration and the simulator's eye motion.
 pub(crate) fn rigid(

@@ -57,6 +57,8 @@ pub struct Scenario {
     pub instrument_name: String,
     pub bands: Vec<(String, f64, f64)>,
     pub veil_max: f64,
+    /// How the vessels lie in the field.
+    pub layout: Layout,
     /// How the eye's optics depart from the base vessel model.
     pub optics: Optics,
     pub methods_yaml: String,
@@ -78,9 +80,20 @@ const SCENARIO_KEYS: &[&str] = &[
     "image",
     "instrument",
     "veil_max",
+    "layout",
     "optics",
     "power",
 ];
+
+/// How the simulated vessels lie in the field (the scenario's `layout:`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Layout {
+    /// Close together, touching and running to the border (the default,
+    /// which the flag rules' tests rely on).
+    Crowded,
+    /// Apart and clear of the border: every profile position usable.
+    Clear,
+}
 const OPTICS_KEYS: &[&str] = &[
     "veil_slope",
     "backscatter_scale",
@@ -160,6 +173,16 @@ fn read_scenario(r: &mut Reader, node: &crate::config::yaml::Node, dir: &Path) -
         .get("veil_max")
         .and_then(|n| r.number(n, "`veil_max`"))
         .unwrap_or(0.6);
+    let layout = match m.get("layout") {
+        None => Some(Layout::Crowded),
+        Some(n) => r.choice(n, "`layout`", &["crowded", "clear"]).map(|t| {
+            if t == "clear" {
+                Layout::Clear
+            } else {
+                Layout::Crowded
+            }
+        }),
+    };
     let (mut w, mut h, mut px) = (Some(256usize), Some(256usize), Some(12.0));
     if let Some(n) = m.get("image") {
         if let Some(im) = r.map(n, "`image`", IMAGE_KEYS) {
@@ -228,6 +251,7 @@ fn read_scenario(r: &mut Reader, node: &crate::config::yaml::Node, dir: &Path) -
         instrument_name: inst_name,
         bands,
         veil_max,
+        layout: layout?,
         optics: optics?,
         methods_yaml: String::new(),
         power_yaml: m
@@ -342,7 +366,10 @@ fn draw_subject(sc: &Scenario, i: usize) -> SimSubject {
     }
     // Sessions on consecutive mornings and afternoons.
     let start = sc.start + Duration::minutes((i / 2) as i64 * 24 * 60 + (i % 2) as i64 * 240);
-    let segments = layout(sc, &mut rng);
+    let segments = match sc.layout {
+        Layout::Clear => clear_layout(sc, &mut rng),
+        Layout::Crowded => crowded_layout(sc, &mut rng),
+    };
     SimSubject {
         age: u(&mut rng, 21.0, 58.0) as u32,
         sex: if rng.random_bool(0.5) { "F" } else { "M" },
@@ -357,9 +384,104 @@ fn draw_subject(sc: &Scenario, i: usize) -> SimSubject {
     }
 }
 
-/// A branching vessel layout around an optic disc at the left of the field:
-/// three arterioles and three venules leave the disc, two of them branch.
-fn layout(sc: &Scenario, rng: &mut impl Rng) -> Vec<(Segment, f64, f64)> {
+/// Clear space kept between a simulated vessel and the image border, µm:
+/// the profile's half-length across the vessel (220 µm, the transmissions
+/// stage's `PROFILE_HALF_LENGTH_UM`) and a little more, so that a profile
+/// stays inside the image.
+pub(crate) const BORDER_CLEARANCE_UM: f64 = 260.0;
+
+/// The `k`-th vessel leaving the disc: arterioles and venules alternate,
+/// each with a diameter drawn from its kind's range (µm).
+fn main_vessel(k: usize, rng: &mut impl Rng) -> (VesselKind, &'static str, f64) {
+    if k % 2 == 0 {
+        (VesselKind::Arteriole, "A", rng.random_range(95.0..135.0))
+    } else {
+        (VesselKind::Venule, "V", rng.random_range(125.0..175.0))
+    }
+}
+
+/// A vessel's own offset of SO2 from its kind's (points; arterioles vary less).
+fn vessel_offset(kind: VesselKind, rng: &mut dyn rand::RngCore) -> f64 {
+    let sd = if kind == VesselKind::Arteriole {
+        0.8
+    } else {
+        1.5
+    };
+    Normal::new(0.0, sd).unwrap().sample(rng)
+}
+
+/// The `clear` layout: three arterioles and three venules leave an optic
+/// disc at the left of the field, alternating. Vessels
+/// fan out far enough apart, and stop far enough from the border,
+/// that their profiles meet neither a neighbour nor the edge once the eye
+/// has moved by a few pixels: a clean field, as a lab would choose for a
+/// validation study.
+fn clear_layout(sc: &Scenario, rng: &mut impl Rng) -> Vec<(Segment, f64, f64)> {
+    let (w, h) = (sc.width as f64, sc.height as f64);
+    let disc = (0.10 * w, 0.5 * h);
+    let scale = w.min(h);
+    // Clearance plus the largest simulated eye motion (about 6 px).
+    let margin = BORDER_CLEARANCE_UM / sc.pixel_size_um + 6.0;
+    let inside =
+        |p: &(f64, f64)| p.0 >= margin && p.0 <= w - margin && p.1 >= margin && p.1 <= h - margin;
+    let mut out = Vec::new();
+    let mut arc = |kind: VesselKind,
+                   id: String,
+                   from: (f64, f64),
+                   angle: f64,
+                   bend: f64,
+                   s0: f64,
+                   s1: f64,
+                   d: f64,
+                   rng: &mut dyn rand::RngCore| {
+        // Finely stepped, then cut where the vessel would come too near
+        // the border, and thinned to 13 points at most.
+        let fine: Vec<(f64, f64)> = (0..=96)
+            .map(|k| {
+                let s = s0 + (s1 - s0) * k as f64 / 96.0;
+                let a = angle + bend * s / scale;
+                (from.0 + s * a.cos(), from.1 + s * a.sin())
+            })
+            .take_while(inside)
+            .collect();
+        let step = fine.len().div_ceil(12).max(1);
+        let mut pts: Vec<(f64, f64)> = fine.iter().step_by(step).copied().collect();
+        if let Some(last) = fine.last() {
+            if pts.last() != Some(last) {
+                pts.push(*last);
+            }
+        }
+        let offset = vessel_offset(kind, rng);
+        if pts.len() >= 2 {
+            out.push((
+                Segment {
+                    id,
+                    kind,
+                    points: pts,
+                    notes: String::new(),
+                },
+                d,
+                offset,
+            ));
+        }
+    };
+    let angles = [-0.7, -0.42, -0.14, 0.14, 0.42, 0.7];
+    for (k, base) in angles.iter().enumerate() {
+        let (kind, prefix, d) = main_vessel(k, rng);
+        let a = base + rng.random_range(-0.04..0.04);
+        let bend = rng.random_range(-0.12..0.12);
+        let id = format!("{prefix}{}", k / 2 + 1);
+        arc(kind, id, disc, a, bend, 0.2 * scale, 0.85 * scale, d, rng);
+    }
+    out
+}
+
+/// The `crowded` layout: three arterioles and three venules leave an optic
+/// disc at the left of the field close together, two of them branch, and
+/// bends let neighbours touch and vessels run to the border, so that many
+/// profile positions meet a neighbour or the edge (a field that exercises
+/// the flag rules).
+fn crowded_layout(sc: &Scenario, rng: &mut impl Rng) -> Vec<(Segment, f64, f64)> {
     let (w, h) = (sc.width as f64, sc.height as f64);
     let disc = (0.12 * w, 0.5 * h);
     let scale = w.min(h);
@@ -380,16 +502,7 @@ fn layout(sc: &Scenario, rng: &mut impl Rng) -> Vec<(Segment, f64, f64)> {
                 (from.0 + s * a.cos(), from.1 + s * a.sin())
             })
             .collect();
-        let offset = Normal::new(
-            0.0,
-            if kind == VesselKind::Arteriole {
-                0.8
-            } else {
-                1.5
-            },
-        )
-        .unwrap()
-        .sample(rng);
+        let offset = vessel_offset(kind, rng);
         let seg = Segment {
             id,
             kind,
@@ -402,21 +515,7 @@ fn layout(sc: &Scenario, rng: &mut impl Rng) -> Vec<(Segment, f64, f64)> {
     };
     let angles = [-0.75, -0.45, -0.12, 0.15, 0.45, 0.78];
     for (k, base) in angles.iter().enumerate() {
-        let kind = if k % 2 == 0 {
-            VesselKind::Arteriole
-        } else {
-            VesselKind::Venule
-        };
-        let prefix = if kind == VesselKind::Arteriole {
-            "A"
-        } else {
-            "V"
-        };
-        let d = if kind == VesselKind::Arteriole {
-            rng.random_range(95.0..135.0)
-        } else {
-            rng.random_range(125.0..175.0)
-        };
+        let (kind, prefix, d) = main_vessel(k, rng);
         let a = base + rng.random_range(-0.05..0.05);
         let bend = rng.random_range(-0.35..0.35);
         let id = format!("{prefix}{}", k / 2 + 1);
@@ -867,6 +966,14 @@ fn write_truth(
         r,
         "optics: {{veil_slope: {}, backscatter_scale: {}, fundus_exponent: {}, psf_px: {}, reflex: {}}}",
         o.veil_slope, o.backscatter_scale, o.fundus_exponent, o.psf_px, o.reflex
+    )?;
+    writeln!(
+        r,
+        "layout: {}",
+        match sc.layout {
+            Layout::Clear => "clear",
+            Layout::Crowded => "crowded",
+        }
     )?;
     writeln!(r, "band_offsets_px:")?;
     for ((name, _, _), (dx, dy)) in sc.bands.iter().zip(band_offsets) {

@@ -205,7 +205,11 @@ pub fn write_outputs(
     .real("power", best.iter().map(|b| b.0.counts.power()))
     .real("mc_se", best.iter().map(|b| b.0.counts.mc_se()));
     files.extend(t.write(dir, "smallest")?);
-    let fig = crate::stages::report::figures::power_curves(dir, &curves(plan, rows))?;
+    let fig = crate::stages::report::figures::power_curves(
+        dir,
+        &curves(plan, rows),
+        crate::stages::report::figures::Print::default(),
+    )?;
     files.extend(fig.files);
     let md = dir.join("power.md");
     write_bytes_atomic(&md, text(plan, rows, source, missing, protocol).as_bytes())?;

@@ -636,13 +636,7 @@ pub fn analyse_capture(
     }
     // The reference capture defines the eye's coordinates: identity.
     let reg = if is_reference {
-        Registration {
-            dx: 0.0,
-            dy: 0.0,
-            angle_deg: 0.0,
-            score: 1.0,
-            worst_region: 1.0,
-        }
+        Registration::IDENTITY
     } else {
         register(
             &reference.bands[wb],

@@ -16,9 +16,10 @@ use crate::oximetry::sensitivity::{OperatingPoint, Unknowns, Weights, so2_errors
 use crate::stages::epochs::EpochTables;
 use crate::stages::fits::{FitRow, multiband_model};
 use crate::stages::statistics::StatisticsTables;
-use crate::stages::transmissions::PositionRow;
+use crate::stages::transmissions::{PositionRow, TransmissionTables};
 
 pub struct SpanShade {
+    pub epoch: String,
     pub start_min: f64,
     pub settle_min: f64,
     pub end_min: f64,
@@ -104,6 +105,133 @@ pub struct ReportData {
     pub sensitivity: Option<SensitivityCurves>,
     /// Per joint multiband method: the fits' mean residual per band.
     pub residuals: Vec<ResidualPanel>,
+    /// Per subject and session: each segment's SO2 per epoch.
+    pub vessels: Vec<VesselPanel>,
+    /// Per subject and session: the registration of each capture.
+    pub registration: Vec<RegistrationPanel>,
+}
+
+/// One subject's (and session's) segments across the epochs.
+pub struct VesselPanel {
+    pub subject: String,
+    /// The protocol's epochs, in order: the x axis.
+    pub epochs: Vec<String>,
+    /// (kind, segment, mean SO2 of the steady captures per epoch).
+    pub lines: Vec<(VesselKind, String, Vec<Option<f64>>)>,
+}
+
+/// One subject's (and session's) registration over time.
+pub struct RegistrationPanel {
+    pub subject: String,
+    /// (minutes, dx px, dy px, rotation degrees) per registered capture.
+    pub points: Vec<(f64, f64, f64, f64)>,
+    /// Minutes of the captures that could not be read or registered.
+    pub failed: Vec<f64>,
+}
+
+/// Per subject and session, each segment's mean SO2 over the steady
+/// captures of each epoch, for `method`.
+fn vessel_panels(
+    study: &Study,
+    epochs: &EpochTables,
+    fits: &[FitRow],
+    method: &str,
+) -> Vec<VesselPanel> {
+    let c = &epochs.captures;
+    let names: Vec<String> = study
+        .protocol
+        .epochs
+        .iter()
+        .map(|e| e.name.clone())
+        .collect();
+    // (subject, session) → (kind, segment) → epoch → values.
+    type Cells<'a> = BTreeMap<(VesselKind, &'a str), Vec<Vec<f64>>>;
+    let mut per: BTreeMap<(&str, &str), Cells> = BTreeMap::new();
+    for r in fits.iter().filter(|r| r.method == method) {
+        let cap = &c[r.capture_index];
+        let (Some(v), Some(e)) = (r.so2.filter(|v| v.is_finite()), cap.epoch.as_deref()) else {
+            continue;
+        };
+        if cap.status != CaptureStatus::Steady {
+            continue;
+        }
+        let Some(ei) = names.iter().position(|n| n == e) else {
+            continue;
+        };
+        per.entry((cap.subject.as_str(), cap.session.as_str()))
+            .or_default()
+            .entry((r.kind, r.segment.as_str()))
+            .or_insert_with(|| vec![Vec::new(); names.len()])[ei]
+            .push(v);
+    }
+    let mut out = Vec::new();
+    for subj in &study.subjects {
+        for sess in &subj.sessions {
+            let Some(cells) = per.get(&(subj.id.as_str(), sess.id.as_str())) else {
+                continue;
+            };
+            out.push(VesselPanel {
+                subject: if subj.sessions.len() > 1 {
+                    format!("{} {}", subj.id, sess.id)
+                } else {
+                    subj.id.clone()
+                },
+                epochs: names.clone(),
+                lines: cells
+                    .iter()
+                    .map(|((k, seg), v)| {
+                        (
+                            *k,
+                            seg.to_string(),
+                            v.iter().map(|x| (!x.is_empty()).then(|| mean(x))).collect(),
+                        )
+                    })
+                    .collect(),
+            });
+        }
+    }
+    out
+}
+
+/// Per subject and session, each capture's registration against time.
+fn registration_panels(
+    study: &Study,
+    epochs: &EpochTables,
+    images: &TransmissionTables,
+) -> Vec<RegistrationPanel> {
+    let c = &epochs.captures;
+    let mut out = Vec::new();
+    for subj in &study.subjects {
+        for sess in &subj.sessions {
+            let mut p = RegistrationPanel {
+                subject: if subj.sessions.len() > 1 {
+                    format!("{} {}", subj.id, sess.id)
+                } else {
+                    subj.id.clone()
+                },
+                points: Vec::new(),
+                failed: Vec::new(),
+            };
+            for (i, row) in c
+                .iter()
+                .enumerate()
+                .filter(|(_, r)| r.subject == subj.id && r.session == sess.id)
+            {
+                let Some(st) = images.status.get(i) else {
+                    continue;
+                };
+                match &st.registration {
+                    _ if st.status.failed() => p.failed.push(row.t_s / 60.0),
+                    Some(g) => p.points.push((row.t_s / 60.0, g.dx, g.dy, g.angle_deg)),
+                    None => {}
+                }
+            }
+            if !p.points.is_empty() || !p.failed.is_empty() {
+                out.push(p);
+            }
+        }
+    }
+    out
 }
 
 /// One method's band residuals over its fits, for the adequacy figure.
@@ -155,7 +283,12 @@ fn residual_panels(study: &Study, fits: &[FitRow]) -> Vec<ResidualPanel> {
     out
 }
 
+/// The method single-method figures show: `report: primary:`, else the
+/// first joint multiband method, else the first.
 pub(crate) fn primary_method(study: &Study) -> String {
+    if let Some(m) = &study.report.primary {
+        return m.clone();
+    }
     study
         .methods
         .iter()
@@ -179,6 +312,7 @@ pub(crate) fn prepare(
     positions: &dyn Fn(usize) -> Vec<PositionRow>,
     fits: &[FitRow],
     stats: &StatisticsTables,
+    images: &TransmissionTables,
 ) -> ReportData {
     let primary = primary_method(study);
     let p = &study.protocol;
@@ -191,6 +325,8 @@ pub(crate) fn prepare(
         .collect();
     ReportData {
         residuals: residual_panels(study, fits),
+        vessels: vessel_panels(study, epochs, fits, &primary),
+        registration: registration_panels(study, epochs, images),
         courses: courses(study, epochs, fits, &primary),
         changes: changes(stats, &primary, &baseline, &epochs_after),
         estimates: stats
@@ -269,6 +405,7 @@ fn courses(study: &Study, epochs: &EpochTables, fits: &[FitRow], method: &str) -
                 .iter()
                 .filter(|s| s.subject == subj.id && s.session == sess.id)
                 .map(|s| SpanShade {
+                    epoch: s.epoch.clone(),
                     start_min: s.start_s / 60.0,
                     settle_min: s.settle_end_s / 60.0,
                     end_min: s.end_s / 60.0,

@@ -10,6 +10,7 @@ use plotters::prelude::*;
 
 use super::data::*;
 use super::style::*;
+use crate::config::study::ReportSettings;
 use crate::oximetry::sensitivity::Weights;
 use crate::tables::{create_folder, write_bytes_atomic};
 
@@ -21,66 +22,141 @@ pub struct Figure {
     pub caption: String,
     pub svg: String,
     pub files: Vec<PathBuf>,
+    /// A data-quality figure (the report's data-quality section), not a result.
+    pub quality: bool,
 }
 
-macro_rules! render {
-    ($dir:expr, $name:expr, $caption:expr, $size:expr, $draw:ident, $($arg:expr),*) => {{
-        init();
-        let mut svg = String::new();
-        {
-            let root = SVGBackend::with_string(&mut svg, $size).into_drawing_area();
-            root.fill(&WHITE).map_err(|e| anyhow!("drawing `{}`: {e}", $name))?;
-            $draw(&root, $($arg),*).map_err(|e| anyhow!("drawing `{}`: {e}", $name))?;
-            root.present().map_err(|e| anyhow!("drawing `{}`: {e}", $name))?;
-        }
-        let svg_path = $dir.join(format!("{}.svg", $name));
-        write_bytes_atomic(&svg_path, svg.as_bytes())?;
-        // Drawn into memory and encoded here, so that writing the file is
-        // ours: its errors name the path and say the cause in words.
-        let png_path = $dir.join(format!("{}.png", $name));
-        let (w, h): (u32, u32) = $size;
-        let mut rgb = vec![0u8; w as usize * h as usize * 3];
-        {
-            let root = BitMapBackend::with_buffer(&mut rgb, (w, h)).into_drawing_area();
-            root.fill(&WHITE).map_err(|e| anyhow!("drawing `{}`: {e}", $name))?;
-            $draw(&root, $($arg),*).map_err(|e| anyhow!("drawing `{}`: {e}", $name))?;
-            root.present().map_err(|e| anyhow!("drawing `{}`: {e}", $name))?;
-        }
-        let png = encode_png(&rgb, w, h)
-            .map_err(|e| anyhow!("encoding `{}` as PNG: {e}", png_path.display()))?;
-        write_bytes_atomic(&png_path, &png)?;
-        Figure { name: $name, caption: $caption, svg, files: vec![svg_path, png_path] }
-    }};
+/// Print size of the PNG files: width in mm and resolution in dpi.
+#[derive(Clone, Copy)]
+pub struct Print {
+    pub width_mm: f64,
+    pub dpi: u32,
 }
 
-/// An RGB buffer as PNG, with the encoder settings the plotting library's
-/// own file output uses.
-fn encode_png(rgb: &[u8], w: u32, h: u32) -> image::ImageResult<Vec<u8>> {
-    use image::ImageEncoder;
+impl Default for Print {
+    /// The `report:` section's defaults.
+    fn default() -> Self {
+        Print::of(&ReportSettings::default())
+    }
+}
+
+impl Print {
+    pub fn of(r: &ReportSettings) -> Self {
+        Print {
+            width_mm: r.figure_width_mm,
+            dpi: r.dpi,
+        }
+    }
+}
+
+/// Draws with `draw` to SVG, writes `<name>.svg`, and rasterises that SVG
+/// to `<name>.png` at the print size, so that both files are one drawing.
+fn render(
+    dir: &Path,
+    name: &'static str,
+    caption: String,
+    size: (u32, u32),
+    print: Print,
+    draw: &dyn Fn(&DrawingArea<SVGBackend, Shift>) -> DrawResult,
+) -> Result<Figure> {
+    init();
+    let mut svg = String::new();
+    {
+        let root = SVGBackend::with_string(&mut svg, size).into_drawing_area();
+        root.fill(&WHITE)
+            .map_err(|e| anyhow!("drawing `{name}`: {e}"))?;
+        draw(&root).map_err(|e| anyhow!("drawing `{name}`: {e}"))?;
+        root.present()
+            .map_err(|e| anyhow!("drawing `{name}`: {e}"))?;
+    }
+    let svg_path = dir.join(format!("{name}.svg"));
+    write_bytes_atomic(&svg_path, svg.as_bytes())?;
+    let png_path = dir.join(format!("{name}.png"));
+    let png = rasterise(&svg, print)
+        .map_err(|e| anyhow!("rendering `{}` as PNG: {e}", png_path.display()))?;
+    write_bytes_atomic(&png_path, &png)?;
+    Ok(Figure {
+        name,
+        caption,
+        svg,
+        files: vec![svg_path, png_path],
+        quality: false,
+    })
+}
+
+/// An SVG drawing as PNG at `print`'s width and resolution, white behind,
+/// with the resolution stated in the file (the pHYs chunk) so that page
+/// layout programs place it at its print size. Text is set in the embedded
+/// font alone, so the pixels do not depend on the machine's fonts.
+pub(crate) fn rasterise(svg: &str, print: Print) -> std::result::Result<Vec<u8>, String> {
+    use resvg::{tiny_skia, usvg};
+    let mut opt = usvg::Options::default();
+    opt.fontdb_mut().load_font_data(FONT.to_vec());
+    opt.fontdb_mut().set_sans_serif_family("DejaVu Sans");
+    opt.font_family = "DejaVu Sans".into();
+    let tree = usvg::Tree::from_str(svg, &opt).map_err(|e| e.to_string())?;
+    let size = tree.size();
+    let width = (print.width_mm / 25.4 * f64::from(print.dpi)).round() as u32;
+    let scale = width as f32 / size.width();
+    let height = (size.height() * scale).round().max(1.0) as u32;
+    let mut pixmap = tiny_skia::Pixmap::new(width, height).ok_or("the figure has no area")?;
+    pixmap.fill(tiny_skia::Color::WHITE);
+    resvg::render(
+        &tree,
+        tiny_skia::Transform::from_scale(scale, scale),
+        &mut pixmap.as_mut(),
+    );
+    // Opaque on white, so the premultiplied pixels are the colours.
+    let rgb: Vec<u8> = pixmap
+        .data()
+        .chunks_exact(4)
+        .flat_map(|p| [p[0], p[1], p[2]])
+        .collect();
     let mut out = Vec::new();
-    image::codecs::png::PngEncoder::new(&mut out).write_image(rgb, w, h, image::ColorType::Rgb8)?;
+    {
+        let mut enc = png::Encoder::new(&mut out, width, height);
+        enc.set_color(png::ColorType::Rgb);
+        enc.set_depth(png::BitDepth::Eight);
+        let per_metre = (f64::from(print.dpi) / 0.0254).round() as u32;
+        enc.set_pixel_dims(Some(png::PixelDimensions {
+            xppu: per_metre,
+            yppu: per_metre,
+            unit: png::Unit::Meter,
+        }));
+        let mut w = enc.write_header().map_err(|e| e.to_string())?;
+        w.write_image_data(&rgb).map_err(|e| e.to_string())?;
+    }
     Ok(out)
 }
 
-pub fn all(dir: &Path, d: &ReportData) -> Result<Vec<Figure>> {
+pub fn all(dir: &Path, d: &ReportData, settings: &ReportSettings) -> Result<Vec<Figure>> {
     create_folder(dir)?;
+    let print = Print::of(settings);
     let mut out = Vec::new();
-    let cols = d.courses.len().clamp(1, 4) as u32;
-    let rows = d.courses.len().div_ceil(cols as usize).max(1) as u32;
-    out.push(render!(dir, "time_course", format!("SO2 of arterioles and venules over the session, per subject ({}); capture means, epochs shaded by inspired O2 (darker = less O2; settle windows lighter), reference SpO2 as the black line", d.primary), (300 * cols + 40, 250 * rows + 80), draw_courses, d));
-    out.push(render!(dir, "epoch_change", format!("Change of SO2 from `{}` per epoch ({}): each subject's mean (small points) and the mixed-model estimate with its {:.0} % confidence interval", d.baseline, d.primary, d.confidence * 100.0), (980, 440), draw_epoch_change, d));
+    out.push(render(dir, "time_course", format!("SO2 of arterioles and venules over the session, per subject (`{}`): capture means (filled: steady captures; open: settling captures, left out of the statistics), the reference SpO2 as the black line; epochs shaded by inspired O2 (darker = less O2; the settle window at the start of each epoch lighter) and named at the top", d.primary), grid_size(d.courses.len(), 300, 250), print, &|r| draw_courses(r, d))?);
+    if !d.vessels.is_empty() {
+        out.push(render(dir, "vessel_courses", format!("SO2 of every vessel segment across the epochs, per subject (`{}`): one line per segment through its mean over the steady captures of each epoch; a segment with no value in an epoch has a gap there", d.primary), grid_size(d.vessels.len(), 300, 250), print, &|r| draw_vessels(r, d))?);
+    }
+    out.push(render(dir, "epoch_change", format!("Change of SO2 from `{}` per epoch (`{}`): each subject's mean (small points) and the mixed-model estimate with its {:.0} % confidence interval", d.baseline, d.primary, d.confidence * 100.0), (980, 476), print, &|r| draw_epoch_change(r, d))?);
     let n = d.agreement.len().max(1) as u32;
-    out.push(render!(dir, "retinal_vs_reference", "Capture-mean arteriolar SO2 against the reference SpO2, per method: identity (dashed) and the fitted line of SO2 on SpO2 (subject random intercepts)".to_string(), (340 * n + 40, 380), draw_scatter, d));
-    out.push(render!(dir, "bland_altman", "Difference between arteriolar SO2 and reference SpO2 against their mean, per method: bias (solid) and repeated-measures 95 % limits of agreement (dashed; Bland & Altman 2007)".to_string(), (340 * n + 40, 380), draw_bland_altman, d));
+    out.push(render(dir, "retinal_vs_reference", "Capture-mean arteriolar SO2 against the reference SpO2, per method: identity (dashed) and the fitted line of SO2 on SpO2 (subject random intercepts)".to_string(), (340 * n + 40, 416), print, &|r| draw_scatter(r, d))?);
+    out.push(render(dir, "bland_altman", "Difference between arteriolar SO2 and reference SpO2 against their mean, per method: bias (solid) and repeated-measures 95 % limits of agreement (dashed; Bland & Altman 2007)".to_string(), (340 * n + 40, 416), print, &|r| draw_bland_altman(r, d))?);
     if let Some(a) = &d.along {
-        out.push(render!(dir, "along_segment", format!("SO2 along segment {} ({}, subject {}, capture {}): per-position estimates of the two-band ODR and of the multiband model fitted position by position, and the joint segment fit (line, ± 1 SE band)", a.segment, a.kind, a.subject, a.capture), (900, 420), draw_along, a));
+        out.push(render(dir, "along_segment", format!("SO2 along segment {} ({}, subject {}, capture {}): per-position estimates of the two-band ODR and of the multiband model fitted position by position (lines break where flagged positions are left out), and the joint segment fit (line, ± 1 SE band)", a.segment, a.kind, a.subject, a.capture), (900, 420), print, &|r| draw_along(r, a))?);
+    }
+    if let Some(s) = &d.sensitivity {
+        out.push(render(dir, "sensitivity", format!("SO2 error of `{}` for a 1 % transmission error in each band alone and in all bands independently, against the veil k (SO2 {:.0} %, {:.0} µm, linearised); left, the fits' own weights refitted at each veil; right, the veil-free band combination held, which shows the veil's effect alone", s.method, s.so2 * 100.0, s.diameter_um), (1200, 540), print, &|r| draw_sensitivity(r, s))?);
     }
     if !d.residuals.is_empty() {
         let n = d.residuals.len() as u32;
-        out.push(render!(dir, "band_residuals", "How well the vessel model describes the spectra: each joint multiband fit's mean residual per band (model − measured, % of the transmission; grey: adequate fits, orange: misfits), the mean over all fits (black bar) and the misfit threshold of ±1.5 % (dashed)".to_string(), (560 * n + 40, 420), draw_residuals, &d.residuals));
+        let mut f = render(dir, "band_residuals", "How well the vessel model describes the spectra: each joint multiband fit's mean residual per band (model − measured, % of the transmission; grey: adequate fits, orange: misfits), the mean over all fits (black bar) and the misfit threshold of ±1.5 % (dashed)".to_string(), (560 * n + 40, 420), print, &|r| draw_residuals(r, &d.residuals))?;
+        f.quality = true;
+        out.push(f);
     }
-    if let Some(s) = &d.sensitivity {
-        out.push(render!(dir, "sensitivity", format!("SO2 error of `{}` for a 1 % transmission error in each band alone and in all bands independently, against the veil k (SO2 {:.0} %, {:.0} µm, linearised); left, the fits' own weights refitted at each veil; right, the veil-free band combination held, which shows the veil's effect alone", s.method, s.so2 * 100.0, s.diameter_um), (1200, 540), draw_sensitivity, s));
+    if !d.registration.is_empty() {
+        let mut f = render(dir, "registration", "Registration of each capture to its eye's reference capture over the session, per subject: the shift found in x and y (pixels, left axis) and the rotation (degrees, scaled onto the same axis as marked); a capture that could not be registered is marked by a cross on the time axis".to_string(), grid_size(d.registration.len(), 300, 230), print, &|r| draw_registration(r, &d.registration))?;
+        f.quality = true;
+        out.push(f);
     }
     Ok(out)
 }
@@ -174,16 +250,16 @@ where
 }
 
 /// The sensitivity figure alone, for `satstep sensitivity`.
-pub fn sensitivity(dir: &Path, s: &SensitivityCurves) -> Result<Figure> {
+pub fn sensitivity(dir: &Path, s: &SensitivityCurves, print: Print) -> Result<Figure> {
     create_folder(dir)?;
-    Ok(render!(
+    render(
         dir,
         "sensitivity",
         String::new(),
         (1200, 540),
-        draw_sensitivity,
-        s
-    ))
+        print,
+        &|r| draw_sensitivity(r, s),
+    )
 }
 
 fn range(values: impl Iterator<Item = f64>, pad: f64) -> (f64, f64) {
@@ -199,28 +275,49 @@ fn range(values: impl Iterator<Item = f64>, pad: f64) -> (f64, f64) {
     (lo - pad * span, hi + pad * span)
 }
 
-fn draw_courses<DB: DrawingBackend>(root: &DrawingArea<DB, Shift>, d: &ReportData) -> DrawResult
+/// A figure of one panel per subject: the heading and legend in a strip
+/// at the top, and the body split into a grid of up to four columns.
+fn subject_panels<DB: DrawingBackend>(
+    root: &DrawingArea<DB, Shift>,
+    heading: &str,
+    legend: &[(&str, RGBColor, Mark)],
+    legend_x: i32,
+    n: usize,
+) -> Result<Vec<DrawingArea<DB, Shift>>, Box<dyn std::error::Error>>
 where
     DB::ErrorType: 'static,
 {
     let (top, body) = root.split_vertically(40);
-    top.draw_text(
+    top.draw_text(heading, &title(18), (12, 10))?;
+    legend_row(&top, legend, legend_x)?;
+    let cols = n.clamp(1, 4);
+    let rows = n.div_ceil(cols).max(1);
+    Ok(body.split_evenly((rows, cols)))
+}
+
+/// Pixel size of a figure of `n` subject panels of `w` × `h`.
+fn grid_size(n: usize, w: u32, h: u32) -> (u32, u32) {
+    let cols = n.clamp(1, 4) as u32;
+    let rows = n.div_ceil(cols as usize).max(1) as u32;
+    (w * cols + 40, h * rows + 80)
+}
+
+fn draw_courses<DB: DrawingBackend>(root: &DrawingArea<DB, Shift>, d: &ReportData) -> DrawResult
+where
+    DB::ErrorType: 'static,
+{
+    let panels = subject_panels(
+        root,
         &format!("SO2 over the session ({})", d.primary),
-        &title(18),
-        (12, 10),
-    )?;
-    legend_row(
-        &top,
         &[
-            ("arterioles", ARTERIOLE, false),
-            ("venules", VENULE, false),
-            ("reference SpO2", REFERENCE, true),
+            ("arterioles", ARTERIOLE, Mark::Dot),
+            ("venules", VENULE, Mark::Dot),
+            ("settling captures", INK, Mark::Ring),
+            ("reference SpO2", REFERENCE, Mark::Line),
         ],
-        420,
+        380,
+        d.courses.len(),
     )?;
-    let cols = d.courses.len().clamp(1, 4);
-    let rows = d.courses.len().div_ceil(cols).max(1);
-    let panels = body.split_evenly((rows, cols));
     let (ylo, yhi) = range(
         d.courses.iter().flat_map(|c| {
             c.arterioles
@@ -264,6 +361,12 @@ where
                 [(s.start_min, ylo), (s.settle_min, yhi)],
                 shade.mix(0.5).filled(),
             )])?;
+            // The epoch's name at the top of its band.
+            ch.draw_series([Text::new(
+                s.epoch.clone(),
+                (s.start_min + 0.3, yhi.min(105.0) - 0.02 * (yhi - ylo)),
+                label(10),
+            )])?;
         }
         ch.draw_series(LineSeries::new(
             c.spo2.iter().copied(),
@@ -286,24 +389,39 @@ where
     Ok(())
 }
 
+/// How a legend entry is drawn.
+#[derive(Clone, Copy)]
+enum Mark {
+    Dot,
+    Ring,
+    Line,
+    Dash,
+}
+
 /// A row of legend entries drawn in a header strip.
 fn legend_row<DB: DrawingBackend>(
     area: &DrawingArea<DB, Shift>,
-    items: &[(&str, RGBColor, bool)],
+    items: &[(&str, RGBColor, Mark)],
     x0: i32,
 ) -> DrawResult
 where
     DB::ErrorType: 'static,
 {
     let mut x = x0;
-    for (text, col, line) in items {
-        if *line {
-            area.draw(&PathElement::new(
+    for (text, col, mark) in items {
+        match mark {
+            Mark::Line => area.draw(&PathElement::new(
                 vec![(x, 20), (x + 18, 20)],
                 col.stroke_width(2),
-            ))?;
-        } else {
-            area.draw(&Circle::new((x + 9, 20), 4, col.filled()))?;
+            ))?,
+            Mark::Dot => area.draw(&Circle::new((x + 9, 20), 4, col.filled()))?,
+            Mark::Ring => area.draw(&Circle::new((x + 9, 20), 4, col.stroke_width(1)))?,
+            Mark::Dash => area.draw(&plotters::element::DashedPathElement::new(
+                vec![(x, 20), (x + 18, 20)],
+                5,
+                3,
+                col.stroke_width(1),
+            ))?,
         }
         area.draw_text(text, &label(13), (x + 24, 13))?;
         x += 34 + 8 * text.len() as i32;
@@ -318,7 +436,17 @@ fn draw_epoch_change<DB: DrawingBackend>(
 where
     DB::ErrorType: 'static,
 {
-    let panels = root.split_evenly((1, 2));
+    let (top, body) = root.split_vertically(36);
+    legend_row(
+        &top,
+        &[
+            ("arterioles, each subject's mean", ARTERIOLE, Mark::Dot),
+            ("venules, each subject's mean", VENULE, Mark::Dot),
+            ("mixed-model estimate and its interval", BLACK, Mark::Line),
+        ],
+        40,
+    )?;
+    let panels = body.split_evenly((1, 2));
     let n = d.epochs_after.len().max(1);
     for ((kind, col), area) in [("arteriole", ARTERIOLE), ("venule", VENULE)]
         .into_iter()
@@ -405,7 +533,17 @@ fn draw_scatter<DB: DrawingBackend>(root: &DrawingArea<DB, Shift>, d: &ReportDat
 where
     DB::ErrorType: 'static,
 {
-    let panels = root.split_evenly((1, d.agreement.len().max(1)));
+    let (top, body) = root.split_vertically(36);
+    legend_row(
+        &top,
+        &[
+            ("capture means, one colour per method", INK, Mark::Dot),
+            ("identity", INK, Mark::Dash),
+            ("fitted line", BLACK, Mark::Line),
+        ],
+        40,
+    )?;
+    let panels = body.split_evenly((1, d.agreement.len().max(1)));
     let (lo, hi) = range(
         d.agreement.iter().flat_map(|a| a.pairs.iter().map(|p| p.0)),
         0.05,
@@ -466,7 +604,17 @@ fn draw_bland_altman<DB: DrawingBackend>(
 where
     DB::ErrorType: 'static,
 {
-    let panels = root.split_evenly((1, d.agreement.len().max(1)));
+    let (top, body) = root.split_vertically(36);
+    legend_row(
+        &top,
+        &[
+            ("capture means, one colour per method", INK, Mark::Dot),
+            ("bias", BLACK, Mark::Line),
+            ("95 % limits of agreement", BLACK, Mark::Dash),
+        ],
+        40,
+    )?;
+    let panels = body.split_evenly((1, d.agreement.len().max(1)));
     let (xlo, xhi) = range(
         d.agreement
             .iter()
@@ -571,10 +719,9 @@ where
     }
     for (i, s) in a.series.iter().enumerate() {
         let c = method_colour(i);
-        ch.draw_series(LineSeries::new(
-            s.points.iter().copied(),
-            c.mix(0.5).stroke_width(1),
-        ))?;
+        for run in runs(&s.points) {
+            ch.draw_series(LineSeries::new(run, c.mix(0.5).stroke_width(1)))?;
+        }
         ch.draw_series(s.points.iter().map(|p| Circle::new(*p, 3, c.filled())))?
             .label(s.label.as_str())
             .legend(move |(x, y)| Circle::new((x + 9, y), 4, c.filled()));
@@ -691,11 +838,11 @@ pub struct PowerCurves {
 }
 
 /// The power-curve figure, for `satstep power` and the `power` stage.
-pub fn power_curves(dir: &Path, c: &PowerCurves) -> Result<Figure> {
+pub fn power_curves(dir: &Path, c: &PowerCurves, print: Print) -> Result<Figure> {
     create_folder(dir)?;
     let cols = c.rows.iter().map(|r| r.1.len()).max().unwrap_or(1).max(1) as u32;
     let rows = c.rows.len().max(1) as u32;
-    Ok(render!(
+    render(
         dir,
         "power_curve",
         format!(
@@ -703,9 +850,9 @@ pub fn power_curves(dir: &Path, c: &PowerCurves) -> Result<Figure> {
             c.target * 100.0
         ),
         (360 * cols + 40, 300 * rows + 40),
-        draw_power,
-        c
-    ))
+        print,
+        &|r| draw_power(r, c),
+    )
 }
 
 fn draw_power<DB: DrawingBackend>(root: &DrawingArea<DB, Shift>, c: &PowerCurves) -> DrawResult
@@ -796,6 +943,169 @@ where
                     .draw()?;
             }
         }
+    }
+    Ok(())
+}
+
+/// Splits a series where consecutive x values are further apart than 1.5
+/// times the usual step, so that a line does not bridge left-out points.
+fn runs(points: &[(f64, f64)]) -> Vec<Vec<(f64, f64)>> {
+    let mut steps: Vec<f64> = points.windows(2).map(|w| w[1].0 - w[0].0).collect();
+    steps.sort_by(f64::total_cmp);
+    let usual = steps.get(steps.len() / 2).copied().unwrap_or(f64::INFINITY);
+    let mut out: Vec<Vec<(f64, f64)>> = Vec::new();
+    for (i, p) in points.iter().enumerate() {
+        if i == 0 || p.0 - points[i - 1].0 > 1.5 * usual {
+            out.push(Vec::new());
+        }
+        if let Some(last) = out.last_mut() {
+            last.push(*p);
+        }
+    }
+    out
+}
+
+fn draw_vessels<DB: DrawingBackend>(root: &DrawingArea<DB, Shift>, d: &ReportData) -> DrawResult
+where
+    DB::ErrorType: 'static,
+{
+    let panels = subject_panels(
+        root,
+        &format!("SO2 per vessel segment across the epochs ({})", d.primary),
+        &[
+            ("arteriolar segments", ARTERIOLE, Mark::Line),
+            ("venular segments", VENULE, Mark::Line),
+        ],
+        560,
+        d.vessels.len(),
+    )?;
+    let (ylo, yhi) = range(
+        d.vessels
+            .iter()
+            .flat_map(|p| p.lines.iter().flat_map(|l| l.2.iter().flatten().copied())),
+        0.05,
+    );
+    for (p, area) in d.vessels.iter().zip(panels) {
+        let n = p.epochs.len().max(1);
+        let mut ch = ChartBuilder::on(&area)
+            .caption(&p.subject, title(14))
+            .margin(6)
+            .x_label_area_size(30)
+            .y_label_area_size(40)
+            .build_cartesian_2d(-0.3..(n as f64 - 0.7), ylo..yhi.min(105.0))?;
+        let names = p.epochs.clone();
+        ch.configure_mesh()
+            .light_line_style(TRANSPARENT)
+            .bold_line_style(GRID)
+            .x_labels(n)
+            .x_label_formatter(&|x| {
+                names
+                    .get(x.round() as usize)
+                    .filter(|_| (x - x.round()).abs() < 1e-6)
+                    .cloned()
+                    .unwrap_or_default()
+            })
+            .y_label_formatter(&|v| format!("{v:.0}"))
+            .y_desc("SO2 (%)")
+            .label_style(label(11))
+            .axis_desc_style(label(12))
+            .draw()?;
+        for (kind, _, values) in &p.lines {
+            let col = if *kind == crate::config::segments::VesselKind::Arteriole {
+                ARTERIOLE
+            } else {
+                VENULE
+            };
+            // Consecutive epochs with a value are joined; a missing epoch breaks the line.
+            let mut run: Vec<(f64, f64)> = Vec::new();
+            for (i, v) in values.iter().enumerate() {
+                match v {
+                    Some(v) => run.push((i as f64, *v)),
+                    None => {
+                        ch.draw_series(LineSeries::new(
+                            run.drain(..),
+                            col.mix(0.7).stroke_width(1),
+                        ))?;
+                    }
+                }
+            }
+            ch.draw_series(LineSeries::new(run, col.mix(0.7).stroke_width(1)))?;
+            ch.draw_series(
+                values
+                    .iter()
+                    .enumerate()
+                    .filter_map(|(i, v)| v.map(|v| Circle::new((i as f64, v), 2, col.filled()))),
+            )?;
+        }
+    }
+    Ok(())
+}
+
+fn draw_registration<DB: DrawingBackend>(
+    root: &DrawingArea<DB, Shift>,
+    panels: &[RegistrationPanel],
+) -> DrawResult
+where
+    DB::ErrorType: 'static,
+{
+    let areas = subject_panels(
+        root,
+        "Registration over the session",
+        &[
+            ("shift x (px)", PALETTE[0], Mark::Line),
+            ("shift y (px)", PALETTE[5], Mark::Line),
+            ("rotation (° × 10)", PALETTE[2], Mark::Line),
+        ],
+        340,
+        panels.len(),
+    )?;
+    // Rotations are small: tenths of a degree drawn on the pixel axis.
+    const ROTATION_SCALE: f64 = 10.0;
+    let (ylo, yhi) = range(
+        panels.iter().flat_map(|p| {
+            p.points
+                .iter()
+                .flat_map(|q| [q.1, q.2, q.3 * ROTATION_SCALE])
+        }),
+        0.08,
+    );
+    for (p, area) in panels.iter().zip(areas) {
+        let xmax = p
+            .points
+            .iter()
+            .map(|q| q.0)
+            .chain(p.failed.iter().copied())
+            .fold(1.0, f64::max);
+        let mut ch = ChartBuilder::on(&area)
+            .caption(&p.subject, title(14))
+            .margin(6)
+            .x_label_area_size(30)
+            .y_label_area_size(40)
+            .build_cartesian_2d(0.0..xmax * 1.02, ylo..yhi)?;
+        ch.configure_mesh()
+            .light_line_style(TRANSPARENT)
+            .bold_line_style(GRID)
+            .x_label_formatter(&|v| format!("{v:.0}"))
+            .y_label_formatter(&|v| format!("{v:.1}"))
+            .x_desc("time (min)")
+            .y_desc("shift (px)")
+            .label_style(label(11))
+            .axis_desc_style(label(12))
+            .draw()?;
+        for (k, col) in [PALETTE[0], PALETTE[5], PALETTE[2]].into_iter().enumerate() {
+            let pts: Vec<(f64, f64)> = p
+                .points
+                .iter()
+                .map(|q| (q.0, [q.1, q.2, q.3 * ROTATION_SCALE][k]))
+                .collect();
+            ch.draw_series(LineSeries::new(pts.clone(), col.stroke_width(1)))?;
+            ch.draw_series(pts.iter().map(|q| Circle::new(*q, 2, col.filled())))?;
+        }
+        ch.draw_series(
+            p.failed
+                .iter()
+                .map(|t| Cross::new((*t, ylo + 0.04 * (yhi - ylo)), 5, BLACK.stroke_width(2))),
+        )?;
     }
     Ok(())
 }

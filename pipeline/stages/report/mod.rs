@@ -9,7 +9,10 @@
 //! `tables/<name>.{csv,md,tex}`, `figures/<name>.{svg,png}`.
 
 pub mod data;
+mod document;
 pub mod figures;
+mod findings;
+mod qc;
 pub mod style;
 pub mod tables;
 
@@ -28,7 +31,8 @@ use crate::runner::Runner;
 use crate::runner::key::{Key, KeyBuilder, combine};
 use crate::tables::create_folder;
 use crate::tables::write_bytes_atomic;
-use tables::{ReportTable, html_escape, html_prose, markdown_escape as md};
+use document::{Block, Document, Section};
+use tables::ReportTable;
 
 /// The report stage.
 pub(crate) struct Report;
@@ -36,7 +40,7 @@ pub(crate) struct Report;
 impl Stage for Report {
     const NAME: &'static str = "report";
     /// Version of the report's layout; bump when its output changes.
-    const VERSION: u32 = 11;
+    const VERSION: u32 = 13;
     const SUMMARY: &'static str = "the paper's tables and figures, report.html and report.md";
     const UPSTREAM: &'static [&'static str] =
         &["epochs", "transmissions", "fits", "statistics", "power"];
@@ -45,6 +49,13 @@ impl Stage for Report {
     fn settings(study: &Study) -> Key {
         let mut k = KeyBuilder::new("report-settings", Self::VERSION);
         k.value("study", &study.portable());
+        // A simulated study's truth is not an input of the analysis, but the
+        // report compares with it.
+        for f in findings::TRUTH_FILES {
+            if let Ok(b) = std::fs::read(study.root.join(f)) {
+                k.bytes(f, &b);
+            }
+        }
         k.finish()
     }
 
@@ -78,6 +89,7 @@ impl Stage for Report {
                 figure: figures::power_curves(
                     &run.out().join("report").join("figures"),
                     &crate::stages::power::curves(&plan, power_rows),
+                    figures::Print::of(&study.report),
                 )?,
             }),
             _ => None,
@@ -89,6 +101,7 @@ impl Stage for Report {
             fits: &run.output::<Fits>().rows,
             stats: run.output::<StatisticsStage>(),
             power,
+            truth: None,
             methods: &run.methods,
             files: run
                 .inputs
@@ -101,6 +114,17 @@ impl Stage for Report {
                 })
                 .collect(),
         };
+        let truth = match findings::read_truth(&study.root) {
+            Some(Ok(t)) => Some(t),
+            Some(Err(e)) => {
+                runner.warn(format!(
+                    "the study's `truth/` folder could not be read, so the report leaves out the comparison with it: {e}"
+                ));
+                None
+            }
+            None => None,
+        };
+        let inputs = Inputs { truth, ..inputs };
         let images = run.output::<Transmissions>();
         write(
             &inputs,
@@ -157,6 +181,8 @@ pub(crate) struct Inputs<'a> {
     pub stats: &'a StatisticsTables,
     /// The follow-up study's power, when the study plans one.
     pub power: Option<PowerSection>,
+    /// The simulator's true values, for a simulated study.
+    pub truth: Option<findings::Truth>,
     /// The methods text, one paragraph per stage in the stages' order.
     pub methods: &'a [String],
     /// (path relative to the study folder, SHA-256) of every input file.
@@ -189,24 +215,49 @@ fn write(
         tables::accounting(s, inp.epochs, &usage, inp.fits),
         tables::data_quality(s, inp.images, inp.fits),
     ];
+    let truth = inp
+        .truth
+        .as_ref()
+        .map(|t| findings::against_truth(inp.stats, t));
+    let truth_table = truth
+        .as_ref()
+        .map(|t| tables::truth(t, inp.stats.confidence));
     let mut written = Vec::new();
-    for t in results.iter().chain(&quality) {
+    for t in results.iter().chain(&quality).chain(&truth_table) {
+        // Every table must be one `report: appendix:` can name.
+        anyhow::ensure!(
+            crate::config::study::REPORT_TABLES.contains(&t.name),
+            "internal: report table `{}` is missing from REPORT_TABLES",
+            t.name
+        );
         written.extend(t.write(&tdir)?);
     }
-    let data = data::prepare(s, inp.epochs, positions, inp.fits, inp.stats);
-    let figs = figures::all(&dir.join("figures"), &data)?;
+    let data = data::prepare(s, inp.epochs, positions, inp.fits, inp.stats, inp.images);
+    let figs = figures::all(&dir.join("figures"), &data, &s.report)?;
     written.extend(figs.iter().flat_map(|f| f.files.clone()));
     if let Some(p) = &inp.power {
         written.extend(p.figure.files.clone());
     }
-    let doc = Document {
+    let qc_files = qc::write(
+        &dir,
+        &qc::QcInputs {
+            study: s,
+            epochs: inp.epochs,
+            images: inp.images,
+            fits: inp.fits,
+            primary: &data.primary,
+        },
+        positions,
+    )?;
+    let parts = Parts {
+        qc: !qc_files.is_empty(),
         inp,
-        results: &results,
-        quality: &quality,
-        figures: &figs,
         usage: &usage,
-        primary: &data.primary,
+        truth: truth.as_deref(),
+        truth_table: truth_table.as_ref(),
     };
+    written.extend(qc_files);
+    let doc = parts.document(&results, &quality, &figs, &data.primary);
     let html = dir.join("report.html");
     write_bytes_atomic(&html, doc.html().as_bytes())?;
     let md = dir.join("report.md");
@@ -216,16 +267,194 @@ fn write(
     Ok(written)
 }
 
-struct Document<'a> {
+/// What the report's sections are made of, beside the tables and figures.
+struct Parts<'a> {
     inp: &'a Inputs<'a>,
-    results: &'a [ReportTable],
-    quality: &'a [ReportTable],
-    figures: &'a [figures::Figure],
+    /// Whether quality-control sheets were drawn (not for a spectra table).
+    qc: bool,
     usage: &'a [Option<String>],
-    primary: &'a str,
+    truth: Option<&'a [findings::TruthRow]>,
+    truth_table: Option<&'a ReportTable>,
 }
 
-impl Document<'_> {
+impl<'a> Parts<'a> {
+    /// The date under the title: `report: date:`, else the last session's day.
+    fn date(&self) -> Option<chrono::NaiveDate> {
+        let s = self.inp.study;
+        s.report.date.or_else(|| {
+            s.subjects
+                .iter()
+                .flat_map(|x| &x.sessions)
+                .map(|x| x.start.date_naive())
+                .max()
+        })
+    }
+
+    fn byline(&self) -> Vec<String> {
+        let s = self.inp.study;
+        let days: Vec<chrono::NaiveDate> = s
+            .subjects
+            .iter()
+            .flat_map(|x| &x.sessions)
+            .map(|x| x.start.date_naive())
+            .collect();
+        let mut v = vec![format!("Study `{}`.", s.id)];
+        if let (Some(a), Some(b)) = (days.iter().min(), days.iter().max()) {
+            v.push(if a == b {
+                format!("Data acquired on {a}.")
+            } else {
+                format!("Data acquired from {a} to {b}.")
+            });
+        }
+        if let Some(d) = self.date() {
+            v.push(format!(
+                "Report dated {d}{}, written by satstep {}.",
+                if s.report.date.is_some() {
+                    ""
+                } else {
+                    " (the last session's day; `report: date:` sets it)"
+                },
+                env!("CARGO_PKG_VERSION")
+            ));
+        }
+        vec![v.join(" ")]
+    }
+
+    fn document(
+        &self,
+        results: &'a [ReportTable],
+        quality: &'a [ReportTable],
+        figs: &'a [figures::Figure],
+        primary: &str,
+    ) -> Document<'a> {
+        let inp = self.inp;
+        let s = inp.study;
+        // Tables the study sends to the appendix, else the long ones.
+        let in_appendix = |t: &ReportTable| match &s.report.appendix {
+            Some(names) => names.iter().any(|n| n == t.name),
+            None => t.rows.len() > crate::config::study::ReportSettings::LONG_TABLE_ROWS,
+        };
+        let mut appendix = Section::new("appendix", "Appendix: long tables");
+        let mut summary = Section::new("summary", "Summary of findings");
+        let methods: Vec<String> = s.methods.iter().map(|m| m.label.clone()).collect();
+        let mut lines = findings::summary(inp.stats, &methods, &inp.stats.adjustment);
+        lines.push(self.quality_sentence());
+        if let Some(t) = self.truth {
+            lines.push(format!(
+                "This study is simulated. Against the simulator's true values: {}",
+                findings::truth_sentences(t, inp.stats.confidence).join(" ")
+            ));
+        }
+        summary.push(Block::Bullets(lines));
+        let mut sections = vec![summary];
+
+        let mut cohort = Section::new("cohort", "Cohort and protocol");
+        for p in self.cohort() {
+            cohort.push(Block::Prose(p));
+        }
+        cohort.push(Block::Pre(crate::timeline::show::render_timeline(
+            &s.protocol,
+        )));
+        sections.push(cohort);
+
+        let mut res = Section::new("results", "Results");
+        res.push(Block::Prose(format!(
+            "Figures of a single method show `{primary}`{}.",
+            if s.report.primary.is_some() {
+                " (`report: primary:`)"
+            } else {
+                ""
+            }
+        )));
+        for t in results {
+            if in_appendix(t) {
+                appendix.push(Block::Table(t));
+            } else {
+                res.push(Block::Table(t));
+            }
+        }
+        for f in figs.iter().filter(|f| !f.quality) {
+            res.push(Block::Figure(f));
+        }
+        sections.push(res);
+
+        if let (Some(rows), Some(t)) = (self.truth, self.truth_table) {
+            let mut sec = Section::new("truth", "Comparison with the simulated truth");
+            sec.push(Block::Prose(format!(
+                "The study was simulated, so the true SO2 of every vessel is known (`truth/` beside the study file). Per method and vessel kind: the subject × epoch means against their true values, and how many of the epoch contrasts' {:.0} % intervals hold the cohort's true change. Over the {} method and kind rows here, that is a check of this one study, not a calibration; the calibration of the tests on thousands of simulated studies is in DEVELOPERS.md.",
+                inp.stats.confidence * 100.0,
+                rows.len()
+            )));
+            sec.push(Block::Table(t));
+            sections.push(sec);
+        }
+
+        if let Some(p) = &inp.power {
+            let mut sec = Section::new("power", "Power for a follow-up study");
+            sec.push(Block::Prose(POWER_INTRO.into()));
+            sec.push(Block::Bullets(p.lines.clone()));
+            sec.push(Block::Figure(&p.figure));
+            sections.push(sec);
+        }
+
+        let mut methods_sec = Section::new("methods", "Methods");
+        for p in inp.methods {
+            methods_sec.push(Block::Prose(p.clone()));
+        }
+        methods_sec.push(Block::Prose("References:".into()));
+        methods_sec.push(Block::Numbered(
+            REFERENCES.iter().map(|r| r.to_string()).collect(),
+        ));
+        sections.push(methods_sec);
+
+        let mut q = Section::new("quality", "Data quality");
+        for t in quality {
+            if in_appendix(t) {
+                appendix.push(Block::Table(t));
+            } else {
+                q.push(Block::Table(t));
+            }
+        }
+        for f in figs.iter().filter(|f| f.quality) {
+            q.push(Block::Figure(f));
+        }
+        let fails = self.failures();
+        if fails.is_empty() {
+            q.push(Block::Prose(
+                "Every listed capture was read and registered.".into(),
+            ));
+        } else {
+            q.push(Block::Bullets(fails));
+        }
+        if self.qc {
+            q.push(Block::Link(
+                "qc.html".into(),
+                "Quality-control sheets: the segments and their flagged positions drawn over every capture (`qc.html`)".into(),
+            ));
+        }
+        sections.push(q);
+        if !appendix.blocks.is_empty() {
+            sections.push(appendix);
+        }
+
+        let mut prov = Section::new("provenance", "Provenance");
+        prov.push(Block::Prose(format!(
+            "satstep {} · cache format {} · study file `{}`. Per-stage keys, timings and counts are in `manifest.json` beside this folder.",
+            env!("CARGO_PKG_VERSION"),
+            crate::runner::key::CACHE_FORMAT,
+            self.rel(&s.file)
+        )));
+        prov.push(Block::Files(&inp.files));
+        sections.push(prov);
+
+        Document {
+            title: s.title.clone(),
+            byline: self.byline(),
+            cautions: CAUTIONS,
+            sections,
+        }
+    }
+
     fn cohort(&self) -> Vec<String> {
         let s = self.inp.study;
         let ages: Vec<f64> = s.subjects.iter().filter_map(|x| x.age).collect();
@@ -294,6 +523,40 @@ impl Document<'_> {
         v
     }
 
+    /// Data quality in one sentence: captures used, segment fits without
+    /// a value, and the share of joint fits the adequacy test calls misfits.
+    fn quality_sentence(&self) -> String {
+        use crate::oximetry::segment::Adequacy;
+        let used = self.usage.iter().filter(|u| u.is_none()).count();
+        let fits = self.inp.fits;
+        let without = fits.iter().filter(|r| r.so2.is_none()).count();
+        let mut s = format!(
+            "Data quality: {used} of {} captures used; {without} of {} segment fits without an SO2",
+            self.usage.len(),
+            fits.len()
+        );
+        for m in &self.inp.study.methods {
+            let judged: Vec<_> = fits
+                .iter()
+                .filter(|r| r.method == m.label && r.adequacy.is_some())
+                .collect();
+            let bad = judged
+                .iter()
+                .filter(|r| r.adequacy == Some(Adequacy::Misfit))
+                .count();
+            if !judged.is_empty() {
+                s.push_str(&format!(
+                    "; the vessel model of `{}` does not describe the spectra of {bad} of its {} fits ({:.0} %)",
+                    m.label,
+                    judged.len(),
+                    100.0 * bad as f64 / judged.len() as f64
+                ));
+            }
+        }
+        s.push_str(" (details under Data quality).");
+        s
+    }
+
     fn failures(&self) -> Vec<String> {
         let c = &self.inp.epochs.captures;
         let mut v: Vec<String> = (0..c.len())
@@ -321,222 +584,10 @@ impl Document<'_> {
         v
     }
 
-    fn html(&self) -> String {
-        let s = self.inp.study;
-        let mut h = String::new();
-        h.push_str("<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n");
-        h.push_str(&format!("<title>{}</title>\n", html_escape(&s.title)));
-        h.push_str("<style>\nbody{font-family:'DejaVu Sans',Verdana,sans-serif;max-width:1100px;margin:2em auto;padding:0 1em;color:#222;line-height:1.45}\nh1{font-size:1.6em;border-bottom:3px solid #0072b2;padding-bottom:.2em}\nh2{font-size:1.25em;margin-top:2em;color:#0072b2}\n.caution{border-left:5px solid #d55e00;background:#fff6ef;padding:.6em 1em;margin:1em 0}\ntable{border-collapse:collapse;margin:1em 0;font-size:.88em}\ncaption{text-align:left;font-style:italic;padding:.3em 0}\nth,td{padding:.25em .6em;border-bottom:1px solid #ddd}\nthead th{border-bottom:2px solid #444;text-align:left}\n.num{text-align:right;font-variant-numeric:tabular-nums}\nfigure{margin:1.5em 0}\nfigure svg{max-width:100%;height:auto}\nfigcaption{font-size:.9em;color:#444}\npre{background:#f6f6f6;padding:.8em;overflow-x:auto;font-size:.85em}\ncode{font-size:.9em}\n</style>\n</head>\n<body>\n");
-        h.push_str(&format!(
-            "<h1>{}</h1>\n<p>Study <code>{}</code>. Report written by satstep {}.</p>\n",
-            html_escape(&s.title),
-            html_escape(&s.id),
-            env!("CARGO_PKG_VERSION")
-        ));
-        h.push_str("<div class=\"caution\"><strong>Cautions.</strong><ul>");
-        for c in CAUTIONS {
-            h.push_str(&format!("<li>{}</li>", html_escape(c)));
-        }
-        h.push_str("</ul></div>\n");
-        // A short contents list of the sections.
-        h.push_str("<nav><strong>Contents</strong><ol>");
-        let mut sections = vec![("cohort", "Cohort and protocol"), ("results", "Results")];
-        if self.inp.power.is_some() {
-            sections.push(("power", "Power for a follow-up study"));
-        }
-        sections.extend([
-            ("methods", "Methods"),
-            ("quality", "Data quality"),
-            ("provenance", "Provenance"),
-        ]);
-        for (id, title) in sections {
-            h.push_str(&format!("<li><a href=\"#{id}\">{title}</a></li>"));
-        }
-        h.push_str("</ol></nav>\n");
-        h.push_str("<h2 id=\"cohort\">Cohort and protocol</h2>\n");
-        for p in self.cohort() {
-            h.push_str(&format!("<p>{}</p>\n", html_prose(&p)));
-        }
-        h.push_str(&format!(
-            "<pre>{}</pre>\n",
-            html_escape(&crate::timeline::show::render_timeline(&s.protocol))
-        ));
-        h.push_str("<h2 id=\"results\">Results</h2>\n");
-        h.push_str(&format!(
-            "<p>Figures of a single method show <code>{}</code>.</p>\n",
-            html_escape(self.primary)
-        ));
-        // Tables and figures are numbered in the order they appear.
-        let (mut table_no, mut figure_no) = (0, 0);
-        for t in self.results {
-            table_no += 1;
-            h.push_str(&t.html(table_no));
-        }
-        for f in self.figures {
-            figure_no += 1;
-            h.push_str(&format!(
-                "<figure id=\"fig-{}\">\n{}\n<figcaption><strong>Figure {figure_no}.</strong> {}</figcaption>\n</figure>\n",
-                f.name,
-                strip_xml_header(&f.svg),
-                html_prose(&f.caption)
-            ));
-        }
-        if let Some(p) = &self.inp.power {
-            h.push_str("<h2 id=\"power\">Power for a follow-up study</h2>\n");
-            h.push_str(&format!("<p>{}</p>\n<ul>\n", html_prose(POWER_INTRO)));
-            for l in &p.lines {
-                h.push_str(&format!("<li>{}</li>\n", html_prose(l)));
-            }
-            h.push_str("</ul>\n");
-            figure_no += 1;
-            h.push_str(&format!(
-                "<figure id=\"fig-{}\">\n{}\n<figcaption><strong>Figure {figure_no}.</strong> {}</figcaption>\n</figure>\n",
-                p.figure.name,
-                strip_xml_header(&p.figure.svg),
-                html_prose(&p.figure.caption)
-            ));
-        }
-        h.push_str("<h2 id=\"methods\">Methods</h2>\n");
-        for p in self.inp.methods {
-            h.push_str(&format!("<p>{}</p>\n", html_prose(p)));
-        }
-        h.push_str("<h3>References</h3>\n<ol>\n");
-        for r in REFERENCES {
-            h.push_str(&format!("<li>{}</li>\n", html_escape(r)));
-        }
-        h.push_str("</ol>\n<h2 id=\"quality\">Data quality</h2>\n");
-        for t in self.quality {
-            table_no += 1;
-            h.push_str(&t.html(table_no));
-        }
-        let fails = self.failures();
-        if fails.is_empty() {
-            h.push_str("<p>Every listed capture was read and registered.</p>\n");
-        } else {
-            h.push_str("<ul>\n");
-            for f in &fails {
-                h.push_str(&format!("<li>{}</li>\n", html_prose(f)));
-            }
-            h.push_str("</ul>\n");
-        }
-        h.push_str("<h2 id=\"provenance\">Provenance</h2>\n");
-        h.push_str(&format!(
-            "<p>satstep {} · cache format {} · study file <code>{}</code></p>\n",
-            env!("CARGO_PKG_VERSION"),
-            crate::runner::key::CACHE_FORMAT,
-            html_escape(&self.rel(&s.file))
-        ));
-        h.push_str("<p>Per-stage keys, timings and counts are in <code>manifest.json</code> beside this folder.</p>\n<details><summary>Input files and their SHA-256</summary>\n<table><tbody>\n");
-        for (p, k) in &self.inp.files {
-            h.push_str(&format!(
-                "<tr><td><code>{}</code></td><td><code>{}</code></td></tr>\n",
-                html_escape(p),
-                k
-            ));
-        }
-        h.push_str("</tbody></table>\n</details>\n</body>\n</html>\n");
-        h
-    }
-
     fn rel(&self, p: &Path) -> String {
         p.strip_prefix(&self.inp.study.root)
             .unwrap_or(p)
             .to_string_lossy()
             .replace('\\', "/")
-    }
-
-    fn markdown(&self) -> String {
-        let s = self.inp.study;
-        let mut m = format!(
-            "# {}\n\nStudy {}. Report written by satstep {}.\n\n",
-            md(&s.title),
-            md(&s.id),
-            env!("CARGO_PKG_VERSION")
-        );
-        m.push_str("> **Cautions.**\n");
-        for c in CAUTIONS {
-            m.push_str(&format!("> - {c}\n"));
-        }
-        m.push_str("\n## Cohort and protocol\n\n");
-        for p in self.cohort() {
-            m.push_str(&format!("{}\n\n", md(&p)));
-        }
-        m.push_str(&format!(
-            "```\n{}```\n\n## Results\n\nFigures of a single method show `{}`.\n\n",
-            crate::timeline::show::render_timeline(&s.protocol),
-            self.primary
-        ));
-        let (mut table_no, mut figure_no) = (0, 0);
-        for t in self.results {
-            table_no += 1;
-            m.push_str(&format!(
-                "**Table {table_no}.** {}\n\n{}\n",
-                md(&t.caption),
-                t.markdown()
-            ));
-        }
-        for f in self.figures {
-            figure_no += 1;
-            m.push_str(&format!(
-                "![{}](figures/{}.png)\n\n**Figure {figure_no}.** {}\n\n",
-                f.name,
-                f.name,
-                md(&f.caption)
-            ));
-        }
-        if let Some(p) = &self.inp.power {
-            m.push_str(&format!(
-                "## Power for a follow-up study\n\n{}\n\n",
-                md(POWER_INTRO)
-            ));
-            for l in &p.lines {
-                m.push_str(&format!("- {}\n", md(l)));
-            }
-            figure_no += 1;
-            m.push_str(&format!(
-                "\n![{}](figures/{}.png)\n\n**Figure {figure_no}.** {}\n\n",
-                p.figure.name,
-                p.figure.name,
-                md(&p.figure.caption)
-            ));
-        }
-        m.push_str("## Methods\n\n");
-        for p in self.inp.methods {
-            m.push_str(&format!("{}\n\n", md(p)));
-        }
-        m.push_str("### References\n\n");
-        for (i, r) in REFERENCES.iter().enumerate() {
-            m.push_str(&format!("{}. {r}\n", i + 1));
-        }
-        m.push_str("\n## Data quality\n\n");
-        for t in self.quality {
-            table_no += 1;
-            m.push_str(&format!(
-                "**Table {table_no}.** {}\n\n{}\n",
-                md(&t.caption),
-                t.markdown()
-            ));
-        }
-        let fails = self.failures();
-        if fails.is_empty() {
-            m.push_str("Every listed capture was read and registered.\n\n");
-        }
-        for f in &fails {
-            m.push_str(&format!("- {}\n", md(f)));
-        }
-        m.push_str(&format!("\n## Provenance\n\nsatstep {} · cache format {} · study file `{}`\n\nPer-stage keys, timings and counts are in `manifest.json` beside this folder.\n", env!("CARGO_PKG_VERSION"), crate::runner::key::CACHE_FORMAT, self.rel(&s.file)));
-        m.push_str("\n| input file | SHA-256 |\n|---|---|\n");
-        for (p, k) in &self.inp.files {
-            m.push_str(&format!("| `{p}` | `{k}` |\n"));
-        }
-        m
-    }
-}
-
-/// SVG text without its XML declaration, for inlining in HTML.
-fn strip_xml_header(svg: &str) -> &str {
-    match svg.find("<svg") {
-        Some(i) => &svg[i..],
-        None => svg,
     }
 }

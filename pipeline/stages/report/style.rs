@@ -8,7 +8,7 @@ use std::sync::Once;
 
 use plotters::prelude::*;
 
-static FONT: &[u8] = include_bytes!("fonts/DejaVuSans.ttf");
+pub(crate) static FONT: &[u8] = include_bytes!("fonts/DejaVuSans.ttf");
 static REGISTER: Once = Once::new();
 
 /// The family name every text style uses.

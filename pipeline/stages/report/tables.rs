@@ -1029,6 +1029,37 @@ pub fn data_quality(study: &Study, images: &TransmissionTables, fits: &[FitRow])
     t
 }
 
+/// A simulated study's estimates against the simulator's truth.
+pub(crate) fn truth(rows: &[super::findings::TruthRow], confidence: f64) -> ReportTable {
+    let mut t = ReportTable::new(
+        "truth",
+        format!(
+            "Estimates against the simulated truth (SO2 points): the subject × epoch means minus their true values (mean and RMS error), the epoch contrasts minus the cohort's true change (mean), and how many of the contrasts' {:.0} % intervals hold the true change (covered)",
+            confidence * 100.0
+        ),
+        &[
+            ("method", false),
+            ("kind", false),
+            ("mean error", true),
+            ("RMS error", true),
+            ("contrast error", true),
+            ("covered", true),
+        ],
+    )
+    .grouped(1);
+    for r in rows {
+        t.rows.push(vec![
+            r.method.clone(),
+            r.kind.clone(),
+            f(r.means.1, 2),
+            f(r.means.2, 2),
+            f(r.contrasts.1, 2),
+            format!("{} of {}", r.contrasts.2, r.contrasts.0),
+        ]);
+    }
+    t
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -93,16 +93,29 @@ const TABLES: &[(&str, &[&str])] = &[
         &["methods", "kind", "pairs", "bias", "limits of agreement"],
     ),
     ("data_quality", &["item", "count", "of"]),
+    (
+        "truth",
+        &[
+            "method",
+            "kind",
+            "mean error",
+            "RMS error",
+            "contrast error",
+            "covered",
+        ],
+    ),
 ];
 
 const FIGURES: &[&str] = &[
     "time_course",
+    "vessel_courses",
     "epoch_change",
     "retinal_vs_reference",
     "bland_altman",
     "along_segment",
     "band_residuals",
     "sensitivity",
+    "registration",
 ];
 
 /// Checks that braces and environments nest.
@@ -188,7 +201,12 @@ fn the_report_is_complete_and_self_contained() {
         );
         let mut reader = dec.read_info().unwrap();
         let mut buf = vec![0; reader.output_buffer_size()];
+        // Print resolution, stated in the file: 300 dpi at 174 mm wide.
+        let dims = reader.info().pixel_dims.expect("a pHYs chunk");
+        assert_eq!(dims.unit, png::Unit::Meter, "{name}");
+        assert_eq!(dims.xppu, 11811, "{name}: 300 dpi is 11811 px/m");
         let info = reader.next_frame(&mut buf).unwrap();
+        assert_eq!(info.width, 2055, "{name}: 174 mm at 300 dpi");
         let px = &buf[..info.buffer_size()];
         let ch = info.color_type.samples();
         let non_white = px
@@ -240,8 +258,9 @@ fn the_report_is_complete_and_self_contained() {
         );
     }
     for href in html.split("href=\"").skip(1) {
+        // Within the page, or the quality-control page beside it.
         assert!(
-            href.starts_with('#'),
+            href.starts_with('#') || href.starts_with("qc.html\""),
             "report.html links out: {}",
             &href[..40.min(href.len())]
         );
@@ -266,7 +285,66 @@ fn the_report_is_complete_and_self_contained() {
     // A document: a contents list, tables and figures numbered in order,
     // and Markdown's inline code rendered (no backtick shows in the text;
     // the protocol's timeline in <pre> is shown as it is).
-    assert!(html.contains("<nav><strong>Contents</strong><ol><li><a href=\"#cohort\">"));
+    assert!(html.contains("<nav><strong>Contents</strong><ol><li><a href=\"#summary\">"));
+    // The summary of findings speaks the contrasts in words with their
+    // intervals, the agreement, the data quality and, for this simulated
+    // study, the comparison with the truth.
+    let summary = html
+        .split("<h2 id=\"summary\">")
+        .nth(1)
+        .and_then(|t| t.split("<h2").next())
+        .unwrap();
+    for needle in [
+        "<li>With <code>multiband</code>, arteriolar SO2 fell by ",
+        "from air to low-15 (95 % CI ",
+        "Against the reference SpO2, the bias of capture-mean arteriolar SO2 was ",
+        "Data quality: ",
+        "This study is simulated. Against the simulator's true values: ",
+        "the 95 % intervals of the epoch contrasts held the true change in ",
+    ] {
+        assert!(
+            summary.contains(needle),
+            "the summary lacks `{needle}`:\n{summary}"
+        );
+    }
+    // The date under the title is the last session's day (not the day the
+    // report was written, which would break the same-bytes rule).
+    assert!(
+        html.contains("Report dated 2026-"),
+        "no date under the title"
+    );
+    // The simulated truth has a section and a table.
+    assert!(html.contains("<h2 id=\"truth\">Comparison with the simulated truth</h2>"));
+    // Long tables go to the appendix: the variance components here.
+    let appendix = html
+        .split("<h2 id=\"appendix\">")
+        .nth(1)
+        .expect("an appendix");
+    assert!(
+        appendix.contains("Variance components"),
+        "variance components in the appendix"
+    );
+    // The quality-control sheets: one per eye, linked from the report.
+    let qc = std::fs::read_to_string(rep.join("qc.html")).unwrap();
+    for eye in ["V01_s1_OD", "V02_s1_OD", "V03_s1_OD"] {
+        assert!(
+            qc.contains(&format!("src=\"qc/{eye}.png\"")),
+            "{eye} in qc.html"
+        );
+        let png = rep.join(format!("qc/{eye}.png"));
+        let mut r = png::Decoder::new(std::fs::File::open(&png).unwrap())
+            .read_info()
+            .unwrap();
+        let mut buf = vec![0; r.output_buffer_size()];
+        let info = r.next_frame(&mut buf).unwrap();
+        // The segments are drawn in the kinds' colours over the fundus.
+        let px = &buf[..info.buffer_size()];
+        for (kind, rgb) in [("arteriole", [213u8, 94, 0]), ("venule", [0, 114, 178])] {
+            let n = px.chunks(3).filter(|p| *p == rgb).count();
+            assert!(n > 500, "{eye}: {n} pixels of the {kind} colour");
+        }
+    }
+    browser_screenshot(&rep.join("report.html"), dir.path());
     for n in 1..=TABLES.len() {
         assert!(
             html.contains(&format!("<strong>Table {n}.</strong>")),
@@ -397,10 +475,179 @@ fn the_report_is_complete_and_self_contained() {
     }
 }
 
+/// Renders the report in headless Chromium with every network request
+/// refused, and checks the screenshot shows the page: text, the headings'
+/// blue and the cautions' vermillion bar. Skipped without Chromium unless
+/// SATSTEP_REQUIRE_CHROMIUM is set (`.ci/run` installs Debian's `chromium`).
+fn browser_screenshot(html: &Path, dir: &Path) {
+    let browser = ["chromium", "chromium-browser", "google-chrome"]
+        .into_iter()
+        .find(|b| {
+            std::process::Command::new(b)
+                .arg("--version")
+                .output()
+                .is_ok_and(|o| o.status.success())
+        });
+    let Some(browser) = browser else {
+        assert!(
+            std::env::var("SATSTEP_REQUIRE_CHROMIUM").is_err(),
+            "SATSTEP_REQUIRE_CHROMIUM is set but no Chromium is installed"
+        );
+        return;
+    };
+    let shot = dir.join("report-screenshot.png");
+    let o = std::process::Command::new(browser)
+        .args([
+            "--headless",
+            "--no-sandbox",
+            "--disable-gpu",
+            "--hide-scrollbars",
+            "--no-first-run",
+            // No network: every request goes to a proxy that is not there.
+            "--proxy-server=http://127.0.0.1:9",
+            "--proxy-bypass-list=<-loopback>",
+            "--window-size=1200,2000",
+        ])
+        .arg(format!(
+            "--user-data-dir={}",
+            dir.join("browser-profile").display()
+        ))
+        .arg(format!("--screenshot={}", shot.display()))
+        .arg(format!("file://{}", html.display()))
+        .output()
+        .unwrap();
+    assert!(
+        shot.is_file(),
+        "no screenshot: {}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    let mut r = png::Decoder::new(std::fs::File::open(&shot).unwrap())
+        .read_info()
+        .unwrap();
+    let mut buf = vec![0; r.output_buffer_size()];
+    let info = r.next_frame(&mut buf).unwrap();
+    let ch = info.color_type.samples();
+    let px: Vec<&[u8]> = buf[..info.buffer_size()].chunks(ch).collect();
+    let dark = px.iter().filter(|p| p[..3].iter().all(|v| *v < 90)).count();
+    let near = |p: &[u8], c: [u8; 3]| p[..3].iter().zip(c).all(|(a, b)| a.abs_diff(b) < 24);
+    let blue = px.iter().filter(|p| near(p, [0, 114, 178])).count();
+    let vermillion = px.iter().filter(|p| near(p, [213, 94, 0])).count();
+    assert!(
+        dark * 200 > px.len(),
+        "the screenshot shows almost no text ({dark} of {} pixels dark)",
+        px.len()
+    );
+    assert!(
+        blue > 500,
+        "no blue headings or figure colours in the screenshot ({blue} px)"
+    );
+    assert!(
+        vermillion > 500,
+        "no cautions bar in the screenshot ({vermillion} px)"
+    );
+}
+
 #[test]
 fn latex_checker_catches_unbalanced_input() {
     assert!(latex_balanced("\\begin{table}{a}\\end{table}").is_ok());
     assert!(latex_balanced("\\begin{table}{a\\end{table}").is_err());
     assert!(latex_balanced("\\begin{table}\\end{tabular}").is_err());
     assert!(latex_balanced("50 \\% of \\{x\\}").is_ok());
+}
+
+/// The `report:` section: each setting changes what it says and only the
+/// report reruns; mistakes are errors at their line and column.
+#[test]
+fn report_settings_do_what_they_say() {
+    let dir = tempfile::tempdir().unwrap();
+    let s = simulated(dir.path(), "tests/fixtures/runner-scenario.yaml", "s");
+    let study = s.join("study.yaml");
+    let plain = std::fs::read_to_string(&study).unwrap();
+    let o = satstep(dir.path(), &["run", s.to_str().unwrap()]);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    let rep = s.join("results/report");
+    let results_of = |html: &str| -> String {
+        html.split("<h2 id=\"results\">")
+            .nth(1)
+            .unwrap()
+            .split("<h2")
+            .next()
+            .unwrap()
+            .to_string()
+    };
+    let html = std::fs::read_to_string(rep.join("report.html")).unwrap();
+    assert!(
+        results_of(&html).contains("Contrasts of SO2"),
+        "contrasts in the results by default"
+    );
+
+    let with = |section: &str| {
+        let text = plain.replace(
+            "\noutput: results",
+            &format!("\n{section}\noutput: results"),
+        );
+        assert_ne!(text, plain, "the study file ends with `output: results`");
+        std::fs::write(&study, text).unwrap();
+    };
+    with(
+        "report:\n  primary: two-band\n  figure_width_mm: 85\n  dpi: 600\n  appendix: [contrasts]\n  date: 2026-06-01",
+    );
+    let o = satstep(dir.path(), &["run", s.to_str().unwrap()]);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    for stage in ["epochs", "transmissions", "fits", "statistics"] {
+        assert!(
+            o.stderr.contains(&format!("{stage:<13} up to date")),
+            "{stage} reran for a report setting:\n{}",
+            o.stderr
+        );
+    }
+    let html = std::fs::read_to_string(rep.join("report.html")).unwrap();
+    assert!(html.contains("Report dated 2026-06-01,"), "the date");
+    assert!(
+        html.contains("Figures of a single method show <code>two-band</code>"),
+        "the primary method"
+    );
+    let svg = std::fs::read_to_string(rep.join("figures/time_course.svg")).unwrap();
+    assert!(
+        svg.contains("(two-band)"),
+        "the figure shows the primary method"
+    );
+    let appendix = html
+        .split("<h2 id=\"appendix\">")
+        .nth(1)
+        .expect("an appendix");
+    assert!(
+        appendix.contains("Contrasts of SO2"),
+        "contrasts in the appendix"
+    );
+    assert!(
+        !results_of(&html).contains("Contrasts of SO2"),
+        "contrasts not in the results"
+    );
+    // 85 mm at 600 dpi: 2008 px, and 23 622 px per metre in the file.
+    let r = png::Decoder::new(std::fs::File::open(rep.join("figures/epoch_change.png")).unwrap())
+        .read_info()
+        .unwrap();
+    assert_eq!(r.info().width, 2008);
+    assert_eq!(r.info().pixel_dims.unwrap().xppu, 23622);
+
+    // Mistakes: a table that does not exist, a resolution out of range.
+    with("report:\n  appendix: [contrast]\n  dpi: 30");
+    let o = satstep(dir.path(), &["check", s.to_str().unwrap()]);
+    assert_ne!(o.code, 0);
+    let line = plain.lines().count() - 1 + 2;
+    assert!(
+        o.stderr.contains(&format!("study.yaml:{line}:"))
+            && o.stderr
+                .contains("`appendix` (a report table) `contrast` is not known")
+            && o.stderr.contains("contrasts"),
+        "{}",
+        o.stderr
+    );
+    assert!(
+        o.stderr
+            .contains("`dpi` is a print resolution of 72–1200 dots per inch, found 30"),
+        "{}",
+        o.stderr
+    );
 }
