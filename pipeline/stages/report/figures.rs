@@ -149,7 +149,7 @@ pub fn all(dir: &Path, d: &ReportData, settings: &ReportSettings) -> Result<Vec<
     }
     if !d.residuals.is_empty() {
         let n = d.residuals.len() as u32;
-        let mut f = render(dir, "band_residuals", "How well the vessel model describes the spectra: each joint multiband fit's mean residual per band (model − measured, % of the transmission; grey: adequate fits, orange: misfits), the mean over all fits (black bar) and the misfit threshold of ±1.5 % (dashed)".to_string(), (560 * n + 40, 420), print, &|r| draw_residuals(r, &d.residuals))?;
+        let mut f = render(dir, "band_residuals", "How well the vessel model describes the spectra: each joint multiband fit's mean residual per band (model − measured, % of the transmission; grey: adequate fits, orange: misfits), the mean over all fits (black bar) and the misfit threshold of ±1.5 % (dashed)".to_string(), (560 * n + 40, 450), print, &|r| draw_residuals(r, &d.residuals))?;
         f.quality = true;
         out.push(f);
     }
@@ -168,11 +168,22 @@ fn draw_residuals<DB: DrawingBackend>(
 where
     DB::ErrorType: 'static,
 {
-    let (top, body) = root.split_vertically(36);
-    top.draw_text(
+    let (top, body) = root.split_vertically(66);
+    let (heading, key) = top.split_vertically(30);
+    heading.draw_text(
         "Band residuals of the joint multiband fits",
         &title(17),
         (12, 8),
+    )?;
+    legend_row(
+        &key,
+        &[
+            ("adequate fit", RGBColor(150, 150, 150), Mark::Dot),
+            ("misfit", PALETTE[1], Mark::Dot),
+            ("mean over fits", BLACK, Mark::Line),
+            ("misfit threshold", INK, Mark::Dash),
+        ],
+        12,
     )?;
     let limit = crate::oximetry::segment::MISFIT_MIN_RESIDUAL * 100.0;
     let areas = body.split_evenly((1, panels.len().max(1)));

@@ -40,7 +40,7 @@ pub(crate) struct Report;
 impl Stage for Report {
     const NAME: &'static str = "report";
     /// Version of the report's layout; bump when its output changes.
-    const VERSION: u32 = 13;
+    const VERSION: u32 = 14;
     const SUMMARY: &'static str = "the paper's tables and figures, report.html and report.md";
     const UPSTREAM: &'static [&'static str] =
         &["epochs", "transmissions", "fits", "statistics", "power"];
@@ -381,9 +381,9 @@ impl<'a> Parts<'a> {
         if let (Some(rows), Some(t)) = (self.truth, self.truth_table) {
             let mut sec = Section::new("truth", "Comparison with the simulated truth");
             sec.push(Block::Prose(format!(
-                "The study was simulated, so the true SO2 of every vessel is known (`truth/` beside the study file). Per method and vessel kind: the subject × epoch means against their true values, and how many of the epoch contrasts' {:.0} % intervals hold the cohort's true change. Over the {} method and kind rows here, that is a check of this one study, not a calibration; the calibration of the tests on thousands of simulated studies is in DEVELOPERS.md.",
-                inp.stats.confidence * 100.0,
-                rows.len()
+                "The study was simulated, so the true SO2 of every vessel is known (`truth/` beside the study file). Per method and vessel kind ({} rows): the subject × epoch means against their true values, and how many of the epoch contrasts' {:.0} % intervals hold the cohort's true change. This checks one study; how often the intervals hold the truth over thousands of simulated studies is the calibration in DEVELOPERS.md.",
+                rows.len(),
+                inp.stats.confidence * 100.0
             )));
             sec.push(Block::Table(t));
             sections.push(sec);
