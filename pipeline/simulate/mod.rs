@@ -224,6 +224,21 @@ fn read_scenario(r: &mut Reader, node: &crate::config::yaml::Node, dir: &Path) -
             }
         }
     }
+    if let (Some(Layout::Clear), Some(w), Some(h), Some(px)) = (layout, w, h, px) {
+        let need = (CLEAR_MIN_SIDE_MARGINS * clear_margin_px(px)).ceil();
+        if ((w.min(h)) as f64) < need {
+            r.error(
+                m.get("layout").map(|n| n.mark).unwrap_or(m.mark()),
+                format!(
+                    "`layout: clear` keeps vessels {:.0} px from the border, which leaves too little of a {w} × {h} px field to lay them in",
+                    clear_margin_px(px)
+                ),
+            )
+            .hint(format!(
+                "make the image at least {need:.0} px a side at {px} µm per pixel, or use `layout: crowded`"
+            ));
+        }
+    }
     let optics = m
         .get("optics")
         .map(|n| read_optics(r, n))
@@ -390,6 +405,13 @@ fn draw_subject(sc: &Scenario, i: usize) -> SimSubject {
 /// stays inside the image.
 pub(crate) const BORDER_CLEARANCE_UM: f64 = 260.0;
 
+/// The point `s` pixels along a vessel that leaves `from` at `angle` and
+/// turns by `bend` radians over `scale` pixels.
+fn arc_point(from: (f64, f64), angle: f64, bend: f64, scale: f64, s: f64) -> (f64, f64) {
+    let a = angle + bend * s / scale;
+    (from.0 + s * a.cos(), from.1 + s * a.sin())
+}
+
 /// The `k`-th vessel leaving the disc: arterioles and venules alternate,
 /// each with a diameter drawn from its kind's range (µm).
 fn main_vessel(k: usize, rng: &mut impl Rng) -> (VesselKind, &'static str, f64) {
@@ -410,6 +432,17 @@ fn vessel_offset(kind: VesselKind, rng: &mut dyn rand::RngCore) -> f64 {
     Normal::new(0.0, sd).unwrap().sample(rng)
 }
 
+/// How far the `clear` layout keeps vessels from the border, px: the
+/// clearance plus the largest simulated eye motion (about 6 px).
+fn clear_margin_px(pixel_size_um: f64) -> f64 {
+    BORDER_CLEARANCE_UM / pixel_size_um + 6.0
+}
+
+/// The smallest side, in multiples of the margin, on which the `clear`
+/// layout's vessels run long enough to profile (on 256 px at 12 µm each
+/// vessel keeps 40–60 % of its length).
+const CLEAR_MIN_SIDE_MARGINS: f64 = 8.0;
+
 /// The `clear` layout: three arterioles and three venules leave an optic
 /// disc at the left of the field, alternating. Vessels
 /// fan out far enough apart, and stop far enough from the border,
@@ -420,8 +453,7 @@ fn clear_layout(sc: &Scenario, rng: &mut impl Rng) -> Vec<(Segment, f64, f64)> {
     let (w, h) = (sc.width as f64, sc.height as f64);
     let disc = (0.10 * w, 0.5 * h);
     let scale = w.min(h);
-    // Clearance plus the largest simulated eye motion (about 6 px).
-    let margin = BORDER_CLEARANCE_UM / sc.pixel_size_um + 6.0;
+    let margin = clear_margin_px(sc.pixel_size_um);
     let inside =
         |p: &(f64, f64)| p.0 >= margin && p.0 <= w - margin && p.1 >= margin && p.1 <= h - margin;
     let mut out = Vec::new();
@@ -437,11 +469,7 @@ fn clear_layout(sc: &Scenario, rng: &mut impl Rng) -> Vec<(Segment, f64, f64)> {
         // Finely stepped, then cut where the vessel would come too near
         // the border, and thinned to 13 points at most.
         let fine: Vec<(f64, f64)> = (0..=96)
-            .map(|k| {
-                let s = s0 + (s1 - s0) * k as f64 / 96.0;
-                let a = angle + bend * s / scale;
-                (from.0 + s * a.cos(), from.1 + s * a.sin())
-            })
+            .map(|k| arc_point(from, angle, bend, scale, s0 + (s1 - s0) * k as f64 / 96.0))
             .take_while(inside)
             .collect();
         let step = fine.len().div_ceil(12).max(1);
@@ -496,11 +524,7 @@ fn crowded_layout(sc: &Scenario, rng: &mut impl Rng) -> Vec<(Segment, f64, f64)>
                    d: f64,
                    rng: &mut dyn rand::RngCore| {
         let pts: Vec<(f64, f64)> = (0..=12)
-            .map(|k| {
-                let s = s0 + (s1 - s0) * k as f64 / 12.0;
-                let a = angle + bend * s / scale;
-                (from.0 + s * a.cos(), from.1 + s * a.sin())
-            })
+            .map(|k| arc_point(from, angle, bend, scale, s0 + (s1 - s0) * k as f64 / 12.0))
             .collect();
         let offset = vessel_offset(kind, rng);
         let seg = Segment {

@@ -238,17 +238,7 @@ fn write(
     if let Some(p) = &inp.power {
         written.extend(p.figure.files.clone());
     }
-    let qc_files = qc::write(
-        &dir,
-        &qc::QcInputs {
-            study: s,
-            epochs: inp.epochs,
-            images: inp.images,
-            fits: inp.fits,
-            primary: &data.primary,
-        },
-        positions,
-    )?;
+    let qc_files = qc::write(&dir, inp, &data.primary, positions)?;
     let parts = Parts {
         qc: !qc_files.is_empty(),
         inp,
@@ -278,18 +268,8 @@ struct Parts<'a> {
 }
 
 impl<'a> Parts<'a> {
-    /// The date under the title: `report: date:`, else the last session's day.
-    fn date(&self) -> Option<chrono::NaiveDate> {
-        let s = self.inp.study;
-        s.report.date.or_else(|| {
-            s.subjects
-                .iter()
-                .flat_map(|x| &x.sessions)
-                .map(|x| x.start.date_naive())
-                .max()
-        })
-    }
-
+    /// Study id, acquisition days, the report's date and the tool version.
+    /// The date is `report: date:`, else the last session's day.
     fn byline(&self) -> Vec<String> {
         let s = self.inp.study;
         let days: Vec<chrono::NaiveDate> = s
@@ -298,15 +278,16 @@ impl<'a> Parts<'a> {
             .flat_map(|x| &x.sessions)
             .map(|x| x.start.date_naive())
             .collect();
+        let (first, last) = (days.iter().min(), days.iter().max());
         let mut v = vec![format!("Study `{}`.", s.id)];
-        if let (Some(a), Some(b)) = (days.iter().min(), days.iter().max()) {
+        if let (Some(a), Some(b)) = (first, last) {
             v.push(if a == b {
                 format!("Data acquired on {a}.")
             } else {
                 format!("Data acquired from {a} to {b}.")
             });
         }
-        if let Some(d) = self.date() {
+        if let Some(d) = s.report.date.as_ref().or(last) {
             v.push(format!(
                 "Report dated {d}{}, written by satstep {}.",
                 if s.report.date.is_some() {

@@ -16,6 +16,7 @@ use std::path::{Path, PathBuf};
 use anyhow::{Result, anyhow};
 use plotters::prelude::*;
 
+use super::Inputs;
 use super::style::{ARTERIOLE, VENULE, init, label, title};
 use super::tables::html_escape;
 use crate::config::segments::{Segment, VesselKind};
@@ -23,9 +24,8 @@ use crate::config::study::Study;
 use crate::images::ingest::read_capture;
 use crate::images::profile::{Flag, arc_lengths, locate};
 use crate::images::register::Registration;
-use crate::stages::epochs::EpochTables;
 use crate::stages::fits::FitRow;
-use crate::stages::transmissions::{PositionRow, TransmissionTables, capture_files, width_band};
+use crate::stages::transmissions::{PositionRow, capture_files, width_band};
 use crate::tables::{create_folder, write_bytes_atomic};
 
 /// Side of the reference capture's view, px.
@@ -68,22 +68,14 @@ struct Eye<'a> {
     segments: &'a [Segment],
 }
 
-/// What `qc` needs from the stages.
-pub(crate) struct QcInputs<'a> {
-    pub study: &'a Study,
-    pub epochs: &'a EpochTables,
-    pub images: &'a TransmissionTables,
-    pub fits: &'a [FitRow],
-    /// The method whose values decide a segment's colour.
-    pub primary: &'a str,
-}
-
-/// Writes the sheets and `qc.html` under `dir` (the report folder); returns
-/// the files written. A study analysed from a spectra table has no images
+/// Writes the sheets and `qc.html` under `dir` (the report folder), with
+/// segments coloured by the values of the `primary` method; returns the
+/// files written. A study analysed from a spectra table has no images
 /// and gets none.
 pub(crate) fn write(
     dir: &Path,
-    q: &QcInputs,
+    q: &Inputs,
+    primary: &str,
     positions: &dyn Fn(usize) -> Vec<PositionRow>,
 ) -> Result<Vec<PathBuf>> {
     let s = q.study;
@@ -121,7 +113,7 @@ pub(crate) fn write(
     }
     // Segment values of the primary method, per capture.
     let mut values: BTreeMap<(usize, &str), &FitRow> = BTreeMap::new();
-    for r in q.fits.iter().filter(|r| r.method == q.primary) {
+    for r in q.fits.iter().filter(|r| r.method == primary) {
         values.insert((r.capture_index, r.segment.as_str()), r);
     }
     let mut written = Vec::new();
@@ -136,10 +128,10 @@ pub(crate) fn write(
         })?;
         write_bytes_atomic(&path, &png)?;
         written.push(path);
-        html.push_str(&eye_section(eye, q, &values));
+        html.push_str(&eye_section(eye, q, primary, &values));
     }
     let page = dir.join("qc.html");
-    write_bytes_atomic(&page, page_html(s, q.primary, &html).as_bytes())?;
+    write_bytes_atomic(&page, page_html(s, primary, &html).as_bytes())?;
     written.push(page);
     Ok(written)
 }
@@ -148,13 +140,15 @@ pub(crate) fn write(
 /// between its 1st and 99th percentiles so that vessels show on any
 /// exposure.
 fn grey(img: &[f32], w: usize, h: usize, side: u32) -> (Vec<u8>, f64) {
-    let mut sorted: Vec<f32> = img.iter().copied().filter(|v| v.is_finite()).collect();
-    sorted.sort_by(f32::total_cmp);
-    let pick = |q: f64| {
-        sorted
-            .get(((sorted.len().max(1) - 1) as f64 * q) as usize)
-            .copied()
-            .unwrap_or(0.0) as f64
+    // Two order statistics; selection, not a sort, so that a large
+    // capture costs linear time.
+    let mut values: Vec<f32> = img.iter().copied().filter(|v| v.is_finite()).collect();
+    let mut pick = |q: f64| {
+        if values.is_empty() {
+            return 0.0;
+        }
+        let k = ((values.len() - 1) as f64 * q) as usize;
+        *values.select_nth_unstable_by(k, f32::total_cmp).1 as f64
     };
     let (lo, hi) = (pick(0.01), pick(0.99));
     let span = (hi - lo).max(1e-9);
@@ -201,7 +195,7 @@ fn blit(buf: &mut [u8], sheet_w: u32, view: &[u8], side: u32, x0: u32, y0: u32) 
 
 fn sheet(
     eye: &Eye,
-    q: &QcInputs,
+    q: &Inputs,
     files: &[PathBuf],
     wb: usize,
     values: &BTreeMap<(usize, &str), &FitRow>,
@@ -214,6 +208,7 @@ fn sheet(
     let mut buf = vec![255u8; (w * h * 3) as usize];
     // The views first, drawn straight into the buffer; marks on top after.
     let mut placed = Vec::new();
+    let mut band: Option<(Vec<f32>, usize, usize)> = None;
     for (k, &i) in std::iter::once(&eye.captures[0])
         .chain(eye.captures.iter())
         .enumerate()
@@ -228,15 +223,18 @@ fn sheet(
                 top + (j / COLUMNS) * (THUMB + CAPTION + GAP),
             )
         };
-        let img = read_capture(&files[i], nb, None).ok();
-        let scale = match &img {
-            Some(m) => {
-                let (view, scale) = grey(&m.bands[wb], m.width, m.height, side);
-                blit(&mut buf, w, &view, side, x0, y0);
-                Some((scale, m.width as f64 / 2.0, m.height as f64 / 2.0))
-            }
-            None => None,
-        };
+        // The reference capture is drawn twice (large, then as the first
+        // thumbnail) but read once.
+        if k != 1 {
+            band = read_capture(&files[i], nb, None)
+                .ok()
+                .map(|mut m| (m.bands.swap_remove(wb), m.width, m.height));
+        }
+        let scale = band.as_ref().map(|(b, bw, bh)| {
+            let (view, scale) = grey(b, *bw, *bh, side);
+            blit(&mut buf, w, &view, side, x0, y0);
+            (scale, *bw as f64 / 2.0, *bh as f64 / 2.0)
+        });
         placed.push((k, i, side, x0, y0, scale));
     }
     {
@@ -503,7 +501,12 @@ where
 }
 
 /// One eye's part of `qc.html`: its sheet and the reasons values are missing.
-fn eye_section(eye: &Eye, q: &QcInputs, values: &BTreeMap<(usize, &str), &FitRow>) -> String {
+fn eye_section(
+    eye: &Eye,
+    q: &Inputs,
+    primary: &str,
+    values: &BTreeMap<(usize, &str), &FitRow>,
+) -> String {
     let mut h = format!(
         "<h2 id=\"{0}\">{0}</h2>\n<p><img src=\"qc/{0}.png\" alt=\"quality-control sheet of {0}\" style=\"max-width:100%\"></p>\n",
         html_escape(&eye.name)
@@ -537,7 +540,7 @@ fn eye_section(eye: &Eye, q: &QcInputs, values: &BTreeMap<(usize, &str), &FitRow
     if reasons.is_empty() {
         h.push_str(&format!(
             "<p>Every segment of every used capture has an SO2 from <code>{}</code>.</p>\n",
-            html_escape(q.primary)
+            html_escape(primary)
         ));
     } else {
         let list: Vec<String> = reasons
@@ -546,7 +549,7 @@ fn eye_section(eye: &Eye, q: &QcInputs, values: &BTreeMap<(usize, &str), &FitRow
             .collect();
         h.push_str(&format!(
             "<p>Segment fits of <code>{}</code> without an SO2, by reason (the <code>termination</code> code of <code>fits/so2</code>): {}.</p>\n",
-            html_escape(q.primary),
+            html_escape(primary),
             list.join(", ")
         ));
     }

@@ -79,6 +79,40 @@ fn every_scenario_in_the_repository_simulates_into_a_valid_study() {
         let chk = satstep(dir.path(), &["check", out.to_str().unwrap()]);
         assert_eq!(chk.code, 0, "{}: {}", sc.display(), chk.stderr);
         assert!(chk.stderr.contains("(0 warnings)"), "{}", chk.stderr);
+        // `layout:`: the demo's `clear` field has six vessels, every point
+        // at least 260 µm + 6 px (27.7 px, printed to 0.1) from the border of its 256 px
+        // image; the small scenario's default `crowded` field also has the
+        // two branches, and vessels that run nearer the border.
+        let seg = std::fs::read_to_string(
+            std::fs::read_dir(out.join("subjects"))
+                .unwrap()
+                .map(|e| e.unwrap().path().join("segments-OD.yaml"))
+                .find(|p| p.is_file())
+                .unwrap(),
+        )
+        .unwrap();
+        let ids = seg.matches("- id:").count();
+        // Branches are named after their vessel with a `b`.
+        let has_branch = seg
+            .lines()
+            .any(|l| l.trim_start().starts_with("- id:") && l.trim_end().ends_with('b'));
+        if sc.ends_with("demo-study/scenario.yaml") {
+            assert_eq!(ids, 6, "{seg}");
+            assert!(!has_branch, "{seg}");
+            for line in seg.lines().filter(|l| l.contains("points:")) {
+                let nums: Vec<f64> = line
+                    .split(|c: char| !(c.is_ascii_digit() || c == '.' || c == '-'))
+                    .filter_map(|t| t.parse().ok())
+                    .collect();
+                assert!(
+                    nums.iter().all(|v| (27.6..=256.0 - 27.6).contains(v)),
+                    "a point nearer the border than the clear layout allows: {line}"
+                );
+            }
+        } else {
+            assert_eq!(ids, 8, "{seg}");
+            assert!(has_branch, "{seg}");
+        }
         if sc.ends_with("demo-study/scenario.yaml") {
             // The committed study file is exactly what the simulator writes.
             let committed = std::fs::read_to_string(repo().join("demo-study/study.yaml")).unwrap();
@@ -675,6 +709,39 @@ fn statistics_settings_do_what_they_say() {
         o.stderr.contains(
             "warning: `exclusions.min_diameter_um: 100000` leaves no arteriole value of `multiband`"
         ),
+        "{}",
+        o.stderr
+    );
+}
+
+/// `layout: clear` on a field too small to lay its vessels in is an error
+/// at the key, with the size it needs.
+#[test]
+fn a_clear_layout_needs_room() {
+    let dir = tempfile::tempdir().unwrap();
+    let small = std::fs::read_to_string(repo().join("tests/fixtures/small-scenario.yaml"))
+        .unwrap()
+        .replace(
+            "../../protocols/",
+            &format!("{}/protocols/", repo().display()),
+        );
+    let sc = write(dir.path(), "clear.yaml", &format!("{small}layout: clear\n"));
+    let o = satstep(
+        dir.path(),
+        &[
+            "simulate",
+            sc.to_str().unwrap(),
+            "--out",
+            dir.path().join("s").to_str().unwrap(),
+        ],
+    );
+    assert_ne!(o.code, 0);
+    let line = small.lines().count() + 1;
+    assert!(
+        o.stderr.contains(&format!("clear.yaml:{line}:"))
+            && o.stderr
+                .contains("`layout: clear` keeps vessels 28 px from the border")
+            && o.stderr.contains("at least 222 px a side"),
         "{}",
         o.stderr
     );
