@@ -53,6 +53,11 @@ pub enum Command {
         /// Run this stage even if it is up to date (repeatable; `all` for every stage).
         #[arg(long, value_name = "STAGE", value_parser = stage_names())]
         force: Vec<String>,
+        /// Compute only shard I of N of the per-capture work into the
+        /// output's cache, and stop before the cohort-level stages; a plain
+        /// `run` afterwards completes the study from the cache.
+        #[arg(long, value_name = "I/N", value_parser = crate::runner::Shard::parse)]
+        shard: Option<crate::runner::Shard>,
     },
     /// Plan the next study: power and sample size by simulation, from a
     /// pilot's variance components or stated ones.
@@ -164,6 +169,24 @@ pub enum Command {
         #[arg(long, value_name = "DIR")]
         out: Option<PathBuf>,
     },
+    /// Write batch scripts that run a study on a cluster, shard by shard.
+    Cluster {
+        #[command(subcommand)]
+        scheduler: ClusterScheduler,
+    },
+    /// One analysis of a multi-site study from the sites' own runs (their
+    /// tables, not their images), with the site as a term of the epoch model.
+    Pool {
+        /// Each site's results folder (`DIR`, named by its study id, or `NAME=DIR`).
+        #[arg(required = true, num_args = 2.., value_name = "[NAME=]RESULTS")]
+        sites: Vec<String>,
+        /// Folder for the pooled results.
+        #[arg(long, value_name = "DIR")]
+        out: PathBuf,
+        /// The pooled study's id.
+        #[arg(long, value_name = "ID")]
+        id: Option<String>,
+    },
     /// Write a synthetic study with known truth from a scenario file.
     Simulate {
         /// The scenario file.
@@ -171,6 +194,37 @@ pub enum Command {
         /// Folder to write the study into (created if needed).
         #[arg(long, value_name = "DIR")]
         out: PathBuf,
+    },
+}
+
+#[derive(Subcommand, Debug)]
+pub enum ClusterScheduler {
+    /// Slurm: a job array of shards and a final run that waits for them
+    /// (`--dependency=afterok`), with a script that submits both.
+    Slurm {
+        /// The study file, or a folder holding `study.yaml`.
+        study: PathBuf,
+        /// How many shards (array tasks) to split the captures into.
+        #[arg(long, value_name = "N")]
+        shards: usize,
+        /// The partition to submit to (default: the cluster's).
+        #[arg(long, value_name = "NAME")]
+        partition: Option<String>,
+        /// Wall time per job, e.g. `02:00:00` (default: estimated from the study).
+        #[arg(long, value_name = "TIME")]
+        time: Option<String>,
+        /// Memory per job, e.g. `8G` (default: estimated from the study).
+        #[arg(long, value_name = "SIZE")]
+        mem: Option<String>,
+        /// Cores per job.
+        #[arg(long, value_name = "N", default_value_t = 2)]
+        cpus: usize,
+        /// Folder for the scripts (default: `cluster` in the study's output).
+        #[arg(long, value_name = "DIR")]
+        out: Option<PathBuf>,
+        /// The satstep the nodes run, on a path they see (default: this one).
+        #[arg(long, value_name = "PATH")]
+        binary: Option<PathBuf>,
     },
 }
 
@@ -237,7 +291,39 @@ pub fn main_with_args(args: impl IntoIterator<Item = std::ffi::OsString>) -> Exi
         Command::Protocol {
             action: ProtocolAction::Show { file },
         } => commands::protocol::show_protocol(&file, &printer),
-        Command::Run { study, force } => commands::run::run(&study, &force, &printer),
+        Command::Run {
+            study,
+            force,
+            shard,
+        } => commands::run::run(&study, &force, shard, &printer),
+        Command::Cluster {
+            scheduler:
+                ClusterScheduler::Slurm {
+                    study,
+                    shards,
+                    partition,
+                    time,
+                    mem,
+                    cpus,
+                    out,
+                    binary,
+                },
+        } => commands::cluster::slurm(
+            &commands::cluster::ClusterArgs {
+                study,
+                shards,
+                partition,
+                time,
+                mem,
+                cpus,
+                out,
+                binary,
+            },
+            &printer,
+        ),
+        Command::Pool { sites, out, id } => {
+            commands::pool::pool(&commands::pool::PoolArgs { sites, out, id }, &printer)
+        }
         Command::Simulate { scenario, out } => {
             commands::simulate::simulate(&scenario, &out, &printer)
         }

@@ -3,7 +3,9 @@
 //! the process status.
 
 pub mod check;
+pub mod cluster;
 pub mod mixed;
+pub mod pool;
 pub mod power;
 pub mod protocol;
 pub mod run;

@@ -13,7 +13,7 @@ use super::simulate::simulate;
 use crate::config::study::Study;
 use crate::console::Printer;
 use crate::runner::key::hash_file;
-use crate::runner::{Runner, manifest};
+use crate::runner::{Runner, Shard, manifest};
 use crate::stages::epochs::{EpochTables, Epochs};
 use crate::stages::fits::{FitRow, Fits};
 use crate::stages::transmissions::{TransmissionTables, Transmissions};
@@ -22,7 +22,7 @@ use crate::study::{load_study, resolve_study_path};
 
 /// Runs a study: simulates a demo folder's data on first use, validates
 /// the study and runs its stages through the cache.
-pub fn run(arg: &Path, force: &[String], printer: &Printer) -> Result<Exit> {
+pub fn run(arg: &Path, force: &[String], shard: Option<Shard>, printer: &Printer) -> Result<Exit> {
     let path = resolve_study_path(arg);
     // A demo or planning folder ships its scenario; its data are generated on first use.
     let dir = if arg.is_dir() {
@@ -32,6 +32,16 @@ pub fn run(arg: &Path, force: &[String], printer: &Printer) -> Result<Exit> {
     };
     let scenario = dir.join("scenario.yaml");
     if scenario.is_file() && !dir.join("truth").join("captures.parquet").is_file() {
+        if let Some(shard) = shard {
+            // Shards start together: each would simulate the same folder.
+            printer.error(format!(
+                "`{}` has no simulated data yet, and shard {shard} cannot make it alone: run `satstep simulate {} --out {}` once before the shards",
+                dir.display(),
+                scenario.display(),
+                dir.display()
+            ));
+            return Ok(Exit::Problem);
+        }
         printer.info(format!(
             "no simulated data in `{}` yet: simulating it from `{}`",
             dir.display(),
@@ -51,7 +61,7 @@ pub fn run(arg: &Path, force: &[String], printer: &Printer) -> Result<Exit> {
         ));
         return Ok(Exit::Problem);
     };
-    run_stages(&study, force, printer)
+    run_stages(&study, force, shard, printer)
 }
 
 /// Every file the run reads, in a fixed order.
@@ -79,7 +89,12 @@ fn input_files(study: &Study) -> Vec<PathBuf> {
     v
 }
 
-fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit> {
+fn run_stages(
+    study: &Study,
+    force: &[String],
+    shard: Option<Shard>,
+    printer: &Printer,
+) -> Result<Exit> {
     printer.info(format!(
         "study `{}`: {} subjects, {} captures; results under `{}`",
         study.id,
@@ -90,7 +105,10 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
     let out = &study.output;
     std::fs::create_dir_all(out)
         .with_context(|| format!("creating the output folder `{}`", out.display()))?;
-    let runner = Runner::new(out, printer, force);
+    let mut runner = Runner::new(out, printer, force);
+    if let Some(s) = shard {
+        runner = runner.sharded(s);
+    }
     let orphans = crate::tables::remove_orphaned_temporaries(out);
     if orphans > 0 {
         printer.info(format!(
@@ -120,6 +138,21 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
 
     let mut run = Run::new(study, hashed);
     run_all(&mut run, &runner)?;
+    if let Some(shard) = shard {
+        // No manifest and no tables: the final run over every shard's items writes them.
+        let failed = run.output::<Transmissions>().failed().len();
+        printer.info(format!(
+            "shard {shard} done: its captures are in the cache under `{}`{}; once every shard is done, `satstep run {}` completes the study",
+            runner.store.root().display(),
+            if failed > 0 {
+                format!(" ({failed} could not be analysed; the final run names them)")
+            } else {
+                String::new()
+            },
+            study.file.display()
+        ));
+        return Ok(Exit::Ok);
+    }
 
     let failed = run.output::<Transmissions>().failed();
     let exit = if failed.is_empty() {
@@ -131,21 +164,11 @@ fn run_stages(study: &Study, force: &[String], printer: &Printer) -> Result<Exit
         tool: "satstep",
         version: env!("CARGO_PKG_VERSION"),
         cache_format: crate::runner::key::CACHE_FORMAT,
-        finished_utc: chrono::Utc::now()
-            .format("%Y-%m-%dT%H:%M:%S%.3fZ")
-            .to_string(),
+        finished_utc: manifest::utc_now(),
         command: std::env::args().collect(),
         study_file: study.file.display().to_string(),
         study: serde_json::to_value(study)?,
-        inputs: run
-            .inputs
-            .iter()
-            .map(|(p, h)| manifest::InputFile {
-                path: p.display().to_string(),
-                sha256: h.map(|x| x.0.hex()).unwrap_or_else(|| "unreadable".into()),
-                bytes: h.map(|x| x.1).unwrap_or(0),
-            })
-            .collect(),
+        inputs: manifest::InputFile::list(&run.inputs),
         seeds: seeds(study),
         stages: runner.log(),
         captures: capture_counts(

@@ -6,7 +6,18 @@ use std::fmt;
 use std::path::{Path, PathBuf};
 
 /// A position in a text file, both numbers counted from 1.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Default, serde::Serialize)]
+#[derive(
+    Debug,
+    Clone,
+    Copy,
+    PartialEq,
+    Eq,
+    PartialOrd,
+    Ord,
+    Default,
+    serde::Serialize,
+    serde::Deserialize,
+)]
 pub struct Mark {
     pub line: usize,
     pub col: usize,

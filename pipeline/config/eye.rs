@@ -1,6 +1,8 @@
 //! Which eye: the two values every file that names an eye uses.
 
-#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, serde::Serialize)]
+#[derive(
+    Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, serde::Serialize, serde::Deserialize,
+)]
 pub enum Eye {
     /// Right eye (oculus dexter).
     OD,

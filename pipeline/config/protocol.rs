@@ -24,7 +24,7 @@ use super::yaml::Node;
 use crate::physiology::{AIR_O2_FRACTION, equivalent_altitude_m, equivalent_o2_fraction};
 
 /// How the epoch's gas was written.
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "snake_case")]
 pub enum GasSpec {
     Air,
@@ -32,7 +32,7 @@ pub enum GasSpec {
     AltitudeM(f64),
 }
 
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Gas {
     pub written: GasSpec,
     /// Inspired O2 fraction at sea level (for an altitude: the equivalent one).
@@ -53,7 +53,7 @@ impl Gas {
     }
 }
 
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Epoch {
     pub name: String,
     pub gas: Gas,
@@ -62,14 +62,14 @@ pub struct Epoch {
 }
 
 /// A linear combination of epoch means, e.g. `low-15 - air`.
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Contrast {
     pub label: String,
     /// (epoch index, weight); weights sum to zero.
     pub weights: Vec<(usize, f64)>,
 }
 
-#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "snake_case")]
 pub enum ProbeSite {
     Finger,
@@ -93,7 +93,7 @@ impl ProbeSite {
 }
 
 /// How the reference SpO2 is read for a capture.
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct ReferenceSettings {
     pub probe_site: ProbeSite,
     /// The oximeter shows a change this long after the blood has it; the
@@ -116,7 +116,7 @@ impl Default for ReferenceSettings {
     }
 }
 
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Protocol {
     pub name: String,
     pub description: String,

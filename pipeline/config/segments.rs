@@ -49,7 +49,7 @@ impl VesselKind {
     }
 }
 
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Segment {
     pub id: String,
     pub kind: VesselKind,

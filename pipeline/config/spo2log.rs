@@ -13,7 +13,7 @@ use super::csvfile::read_csv;
 use super::diag::{Findings, Mark};
 use super::time::{parse_time, seconds_between};
 
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct ReferenceLog {
     pub path: PathBuf,
     pub time_column: String,

@@ -20,7 +20,7 @@ use super::time::parse_time;
 use super::vessel_model::{EXTENSION_NAMES, Extensions, ModelChoice};
 use super::yaml::{Node, Value};
 
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub enum BandResponse {
     Gaussian {
         centre_nm: f64,
@@ -33,7 +33,7 @@ pub enum BandResponse {
     },
 }
 
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Band {
     pub name: String,
     pub response: BandResponse,
@@ -42,7 +42,7 @@ pub struct Band {
     pub offset_px: Option<(f64, f64)>,
 }
 
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Instrument {
     pub name: String,
     pub pixel_size_um: f64,
@@ -55,7 +55,7 @@ pub struct Instrument {
     pub estimate_band_offsets: bool,
 }
 
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Capture {
     /// As written in the list.
     pub listed: String,
@@ -69,7 +69,7 @@ pub struct Capture {
     pub mark: Mark,
 }
 
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Session {
     pub id: String,
     pub start: DateTime<FixedOffset>,
@@ -88,17 +88,21 @@ pub struct Session {
     pub vessels: BTreeMap<Eye, Vec<Segment>>,
 }
 
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Subject {
     pub id: String,
     pub age: Option<f64>,
     pub sex: Option<String>,
     pub pigmentation: Option<i64>,
+    /// The site that recruited the subject, in a multi-site study: the
+    /// epoch model then carries a site term (`stats::epoch_model`).
+    #[serde(default)]
+    pub site: Option<String>,
     pub sessions: Vec<Session>,
 }
 
 /// How a two-band method turns ODR into SO2.
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub enum Calibration {
     /// SO2 (%) = intercept + slope · ODR.
     Fixed { intercept: f64, slope: f64 },
@@ -112,7 +116,7 @@ pub enum Calibration {
     WithinSubject,
 }
 
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub enum MethodKind {
     TwoBand {
         sensitive: usize,
@@ -132,20 +136,20 @@ pub enum MethodKind {
     },
 }
 
-#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
 pub enum Loss {
     Squared,
     Huber { scale: f64 },
 }
 
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Method {
     /// Label used in tables (defaults to the method's name).
     pub label: String,
     pub kind: MethodKind,
 }
 
-#[derive(Debug, Clone, PartialEq, Default, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, Default, serde::Serialize, serde::Deserialize)]
 pub struct Exclusions {
     pub min_diameter_um: Option<f64>,
     pub subjects: Vec<String>,
@@ -153,7 +157,7 @@ pub struct Exclusions {
 }
 
 /// A capture the study file leaves out, and why.
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct ExcludedCapture {
     /// As written: the capture's path relative to the study file's folder,
     /// or as its capture list writes it when that names one capture only.
@@ -168,7 +172,7 @@ pub struct ExcludedCapture {
 }
 
 /// Adjustment of p values across a model's contrasts.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "snake_case")]
 pub enum Adjustment {
     /// Holm's step-down adjustment (Holm 1979).
@@ -179,7 +183,7 @@ pub enum Adjustment {
 /// The `power:` section: plan a follow-up study from this run's own
 /// variance components (the `power` stage; `satstep power` takes the same
 /// choices on its command line).
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct PowerSettings {
     /// The effects to detect, by contrast label, in SO2 points.
     pub effects: Vec<(String, f64)>,
@@ -215,7 +219,7 @@ pub const REPORT_TABLES: &[&str] = &[
 
 /// The `report:` section: how the report presents the results. Nothing in
 /// it changes a number.
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct ReportSettings {
     /// The method the single-method figures show; `None`: the first joint
     /// multiband method, else the first method.
@@ -256,7 +260,7 @@ impl Default for ReportSettings {
 pub const PLAN_BOUNDS: [(usize, usize); 5] = [(2, 500), (1, 50), (1, 30), (1, 2), (1, 2)];
 
 /// Settings of the statistics stage.
-#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct StatisticsSettings {
     /// Coverage of the confidence intervals of contrasts and slopes.
     pub confidence: f64,
@@ -277,7 +281,7 @@ impl Default for StatisticsSettings {
     }
 }
 
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Study {
     pub id: String,
     pub title: String,
@@ -300,6 +304,22 @@ pub struct Study {
     #[serde(skip)]
     pub spectra: Option<super::spectra::SpectraTable>,
     pub output: PathBuf,
+    /// A pooled analysis (`satstep pool`): the sites' runs it pools, in
+    /// order; empty for a study run from its own captures.
+    #[serde(default)]
+    pub sites: Vec<SiteSource>,
+}
+
+/// One site's run in a pooled analysis: its name, where its results were
+/// read from, and the SHA-256 of its manifest (which holds the hashes of
+/// every file the site's run read).
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct SiteSource {
+    pub name: String,
+    pub results: PathBuf,
+    pub manifest_sha256: String,
+    pub subjects: usize,
+    pub captures: usize,
 }
 
 impl Study {
@@ -406,7 +426,7 @@ const INSTRUMENT_KEYS: &[&str] = &[
     "band_offsets",
 ];
 const BAND_KEYS: &[&str] = &["name", "centre_nm", "fwhm_nm", "response", "offset_px"];
-const SUBJECT_KEYS: &[&str] = &["id", "age", "sex", "pigmentation", "sessions"];
+const SUBJECT_KEYS: &[&str] = &["id", "age", "sex", "pigmentation", "site", "sessions"];
 const SESSION_KEYS: &[&str] = &[
     "id",
     "start",
@@ -711,6 +731,7 @@ fn read_study(r: &mut Reader, node: &Node, file: &Path, root: &Path) -> Option<S
         spectra_file,
         spectra: None,
         output,
+        sites: Vec::new(),
     })
 }
 
@@ -919,6 +940,7 @@ fn read_subject(
     let pigmentation = m
         .get("pigmentation")
         .and_then(|n| r.integer(n, "`pigmentation`"));
+    let site = m.get("site").and_then(|n| r.name(n, "a subject's `site`"));
     let mut sessions = Vec::new();
     if let Some(n) = r.required(&m, "sessions", "a subject") {
         if let Some(items) = r.list(n, "`sessions`") {
@@ -943,6 +965,7 @@ fn read_subject(
         age,
         sex,
         pigmentation,
+        site,
         sessions,
     })
 }

@@ -3,7 +3,19 @@
 //! physics behind each name is in [`crate::oximetry::model`].
 
 /// The base model's extensions, each one shared parameter.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Hash, PartialOrd, Ord, serde::Serialize)]
+#[derive(
+    Debug,
+    Clone,
+    Copy,
+    PartialEq,
+    Eq,
+    Default,
+    Hash,
+    PartialOrd,
+    Ord,
+    serde::Serialize,
+    serde::Deserialize,
+)]
 pub struct Extensions {
     pub veil_slope: bool,
     pub backscatter: bool,
@@ -71,7 +83,7 @@ impl Extensions {
 }
 
 /// Which vessel model a joint multiband method fits.
-#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
 pub enum ModelChoice {
     /// The base model with these extensions.
     Fixed(Extensions),

@@ -10,6 +10,7 @@
 
 /// Why a fit stopped.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "kebab-case")]
 pub enum Termination {
     /// The scaled gradient (cosine between residuals and Jacobian columns) is below `gtol`.
     SmallGradient,

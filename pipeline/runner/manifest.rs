@@ -19,6 +19,27 @@ pub(crate) struct InputFile {
     pub bytes: u64,
 }
 
+impl InputFile {
+    /// A run's input files as the manifest lists them.
+    pub fn list(inputs: &[(std::path::PathBuf, Option<(super::key::Key, u64)>)]) -> Vec<InputFile> {
+        inputs
+            .iter()
+            .map(|(p, h)| InputFile {
+                path: p.display().to_string(),
+                sha256: h.map(|x| x.0.hex()).unwrap_or_else(|| "unreadable".into()),
+                bytes: h.map(|x| x.1).unwrap_or(0),
+            })
+            .collect()
+    }
+}
+
+/// The time a manifest is finished, UTC to the millisecond.
+pub(crate) fn utc_now() -> String {
+    chrono::Utc::now()
+        .format("%Y-%m-%dT%H:%M:%S%.3fZ")
+        .to_string()
+}
+
 #[derive(Debug, Clone, Default, serde::Serialize)]
 pub(crate) struct CaptureCounts {
     pub listed: usize,

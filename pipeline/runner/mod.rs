@@ -68,11 +68,59 @@ pub struct StageLog {
     pub key: String,
 }
 
+/// One part of a study's per-capture work, for runs spread over several
+/// processes or machines (`satstep run --shard I/N`). An item belongs to
+/// shard `I` when its content key, read as a number, leaves `I - 1` over
+/// `N`: the partition needs no list of items and no coordination, shards
+/// never overlap, and the same item falls in the same shard on every run.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Shard {
+    /// 1-based.
+    pub index: usize,
+    pub count: usize,
+}
+
+impl Shard {
+    /// Reads `I/N` with 1 ≤ I ≤ N.
+    pub fn parse(text: &str) -> std::result::Result<Shard, String> {
+        let bad = || {
+            format!(
+                "`--shard {text}` is not a shard: write `I/N` with 1 ≤ I ≤ N, e.g. `--shard 2/4` for the second of four"
+            )
+        };
+        let (i, n) = text.split_once('/').ok_or_else(bad)?;
+        let (index, count): (usize, usize) = (
+            i.trim().parse().map_err(|_| bad())?,
+            n.trim().parse().map_err(|_| bad())?,
+        );
+        if count == 0 || index == 0 || index > count {
+            return Err(bad());
+        }
+        Ok(Shard { index, count })
+    }
+
+    /// Whether the item with this content key is this shard's.
+    pub fn holds(&self, key: &Key) -> bool {
+        let mut head = [0u8; 8];
+        head.copy_from_slice(&key.0[..8]);
+        (u64::from_le_bytes(head) % self.count as u64) as usize == self.index - 1
+    }
+}
+
+impl std::fmt::Display for Shard {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(f, "{}/{}", self.index, self.count)
+    }
+}
+
 pub struct Runner<'a> {
     pub store: Store,
     pub printer: &'a Printer,
     output: PathBuf,
     force: BTreeSet<String>,
+    /// When set, only this shard's items are computed, and the run writes
+    /// nothing but item cache entries (see [`Shard`]).
+    shard: Option<Shard>,
     log: Mutex<Vec<StageLog>>,
     pub warnings: Mutex<Vec<String>>,
 }
@@ -84,9 +132,20 @@ impl<'a> Runner<'a> {
             printer,
             output: output.to_path_buf(),
             force: force.iter().cloned().collect(),
+            shard: None,
             log: Mutex::new(vec![]),
             warnings: Mutex::new(vec![]),
         }
+    }
+
+    /// A runner that computes only `shard`'s items (see [`Shard`]).
+    pub fn sharded(mut self, shard: Shard) -> Self {
+        self.shard = Some(shard);
+        self
+    }
+
+    pub fn shard(&self) -> Option<Shard> {
+        self.shard
     }
 
     fn forced(&self, stage: &str) -> bool {
@@ -126,7 +185,10 @@ impl<'a> Runner<'a> {
         let mut reason = None;
         if self.forced(stage) {
             reason = Some("forced with --force".to_string());
-        } else if let Some(rec) = previous.as_ref().filter(|r| r.key == key.hex()) {
+        } else if let Some(rec) = previous
+            .as_ref()
+            .filter(|r| r.key == key.hex() && self.shard.is_none())
+        {
             match self.store.get::<T>(&area, &key) {
                 Lookup::Hit(value) => {
                     let changed: Vec<&String> = rec
@@ -164,6 +226,20 @@ impl<'a> Runner<'a> {
         }
         let reason = reason.unwrap_or_else(|| explain(previous.as_ref(), &parts));
         let (value, detail) = compute(self)?;
+        if let Some(shard) = self.shard {
+            // A shard's stage result covers its own items only: it is
+            // neither cached nor written, so that shards sharing a folder
+            // never write the same file and the final run builds the whole.
+            self.finish(
+                stage,
+                &format!("ran for shard {shard}"),
+                reason,
+                detail,
+                t0,
+                &key,
+            );
+            return Ok((value, key));
+        }
         self.store.put(&area, &key, &value)?;
         let paths = write(&value, self)?;
         self.record(stage, &key, &parts, &paths)?;
@@ -313,6 +389,12 @@ impl Items<'_> {
             }
             Lookup::Miss => None,
         }
+    }
+
+    /// Whether the item with this key is computed by this run: every item,
+    /// unless the run is one shard of several.
+    pub fn holds(&self, key: &Key) -> bool {
+        self.runner.shard.is_none_or(|s| s.holds(key))
     }
 
     fn computed_one(&self) {

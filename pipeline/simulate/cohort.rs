@@ -160,6 +160,7 @@ impl CohortDesign {
                                     continue;
                                 }
                                 out.push(Observation {
+                                    site: None,
                                     subject: subject.clone(),
                                     session: session.to_string(),
                                     eye: eye.to_string(),

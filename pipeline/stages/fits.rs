@@ -242,11 +242,13 @@ impl Stage for Fits {
             .iter()
             .filter(|m| matches!(m.kind, MethodKind::Multiband { .. }))
             .count();
-        let items = runner.items(
-            Self::NAME,
-            run.output::<Transmissions>().keys.len() * multiband,
-            "fits",
-        );
+        let fitted = run
+            .output::<Transmissions>()
+            .position_counts
+            .iter()
+            .filter(|n| **n > 0)
+            .count();
+        let items = runner.items(Self::NAME, fitted * multiband, "fits");
         let tables = build(
             study,
             run.output::<Epochs>(),
@@ -355,13 +357,29 @@ fn build(
             Ok(out)
         })
         .collect::<Result<_>>()?;
+    let per_method = (0..study.methods.len())
+        .map(|mi| {
+            per_capture
+                .iter()
+                .flat_map(|c| c[mi].iter().cloned())
+                .collect()
+        })
+        .collect();
+    Ok(assemble(study, epochs, per_method))
+}
+
+/// The cohort-level end of the fits stage: each two-band method's diameter
+/// correction and calibration, over the whole cohort's rows at once.
+/// `per_method[m]` holds method `m`'s rows, two-band rows with their ODRs
+/// as measured (a pooled analysis recalibrates the sites' rows here).
+pub(crate) fn assemble(
+    study: &Study,
+    epochs: &EpochTables,
+    per_method: Vec<Vec<FitRow>>,
+) -> FitTables {
     let mut out = Vec::new();
     let mut calibrations = Vec::new();
-    for (mi, m) in study.methods.iter().enumerate() {
-        let mut rows: Vec<FitRow> = per_capture
-            .iter()
-            .flat_map(|c| c[mi].iter().cloned())
-            .collect();
+    for (m, mut rows) in study.methods.iter().zip(per_method) {
         if let MethodKind::TwoBand {
             calibration,
             diameter_correction,
@@ -383,10 +401,10 @@ fn build(
         }
         out.extend(rows);
     }
-    Ok(FitTables {
+    FitTables {
         rows: out,
         calibrations,
-    })
+    }
 }
 
 /// What the fits stage hands on: every segment fit, and each two-band

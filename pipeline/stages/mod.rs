@@ -21,6 +21,7 @@ pub use stage::{Run, Stage};
 pub(crate) trait Listed: Sync {
     fn name(&self) -> &'static str;
     fn summary(&self) -> &'static str;
+    fn cohort_level(&self) -> bool;
     /// Runs the stage through the runner and keeps its result in `run`.
     fn run(&self, run: &mut Run, runner: &Runner) -> Result<()>;
     fn describe(&self, run: &Run) -> Option<String>;
@@ -32,6 +33,9 @@ impl<S: Stage> Listed for S {
     }
     fn summary(&self) -> &'static str {
         S::SUMMARY
+    }
+    fn cohort_level(&self) -> bool {
+        S::COHORT_LEVEL
     }
     fn run(&self, run: &mut Run, runner: &Runner) -> Result<()> {
         let parts = Parts {
@@ -49,7 +53,11 @@ impl<S: Stage> Listed for S {
         )?;
         run.keep::<S>(output);
         run.set_key(S::NAME, key);
-        S::report(run, runner);
+        // A shard sees part of the cohort: what it would say of shares and
+        // counts is said by the final run over the whole.
+        if runner.shard().is_none() {
+            S::report(run, runner);
+        }
         Ok(())
     }
     fn describe(&self, run: &Run) -> Option<String> {
@@ -72,9 +80,38 @@ pub fn names() -> Vec<&'static str> {
     STAGES.iter().map(|s| s.name()).collect()
 }
 
-/// Runs every stage in order.
+/// Runs every stage in order; a shard of a run stops before the first
+/// cohort-level stage.
 pub(crate) fn run_all(run: &mut Run, runner: &Runner) -> Result<()> {
     for stage in STAGES {
+        if runner.shard().is_some() && stage.cohort_level() {
+            break;
+        }
+        run.methods = STAGES.iter().filter_map(|s| s.describe(run)).collect();
+        stage.run(run, runner)?;
+    }
+    Ok(())
+}
+
+/// Runs the cohort-level stages on per-capture results that were computed
+/// elsewhere: a pooled analysis (`satstep pool`) hands in the sites'
+/// capture tables and fits, keyed by `key` (the sites' manifests), and
+/// the statistics, power and report stages run as in a study's own run.
+pub(crate) fn run_cohort(
+    run: &mut Run,
+    runner: &Runner,
+    epochs: epochs::EpochTables,
+    images: transmissions::TransmissionTables,
+    fits: fits::FitTables,
+    key: crate::runner::key::Key,
+) -> Result<()> {
+    run.keep::<epochs::Epochs>(epochs);
+    run.keep::<transmissions::Transmissions>(images);
+    run.keep::<fits::Fits>(fits);
+    for name in ["epochs", "transmissions", "fits"] {
+        run.set_key(name, key);
+    }
+    for stage in STAGES.iter().filter(|s| s.cohort_level()) {
         run.methods = STAGES.iter().filter_map(|s| s.describe(run)).collect();
         stage.run(run, runner)?;
     }

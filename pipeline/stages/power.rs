@@ -29,6 +29,7 @@ pub struct Power;
 impl Stage for Power {
     const NAME: &'static str = "power";
     const VERSION: u32 = 1;
+    const COHORT_LEVEL: bool = true;
     const SUMMARY: &'static str =
         "power of a follow-up study by simulation, from this run's variance components";
     const UPSTREAM: &'static [&'static str] = &["statistics"];

@@ -26,6 +26,10 @@ pub trait Stage: Sync {
     /// The stages whose results this one reads (their keys enter its key).
     const UPSTREAM: &'static [&'static str];
     type Output: Serialize + DeserializeOwned + Send + Sync + 'static;
+    /// Whether the stage works on the whole cohort at once. A shard of a
+    /// run (`--shard I/N`) stops before the first such stage: everything
+    /// before it is per capture and cached item by item.
+    const COHORT_LEVEL: bool = false;
 
     /// The study settings the stage's results depend on, and nothing else.
     fn settings(study: &Study) -> Key;

@@ -162,6 +162,7 @@ pub(crate) struct StatisticsStage;
 impl Stage for StatisticsStage {
     const NAME: &'static str = "statistics";
     const VERSION: u32 = 6;
+    const COHORT_LEVEL: bool = true;
     const SUMMARY: &'static str =
         "summaries, the epoch model and its contrasts, agreement with SpO2, method comparison";
     const UPSTREAM: &'static [&'static str] = &["epochs", "fits"];
@@ -259,6 +260,8 @@ struct Context<'a> {
     fits: &'a [FitRow],
     epoch_names: Vec<String>,
     specs: Vec<ContrastSpec>,
+    /// Each subject's recruiting site, in a multi-site study.
+    sites: BTreeMap<&'a str, &'a str>,
 }
 
 impl<'a> Context<'a> {
@@ -276,6 +279,11 @@ impl<'a> Context<'a> {
                     label: ct.label.clone(),
                     weights: ct.weights.clone(),
                 })
+                .collect(),
+            sites: study
+                .subjects
+                .iter()
+                .filter_map(|s| Some((s.id.as_str(), s.site.as_deref()?)))
                 .collect(),
         }
     }
@@ -479,6 +487,7 @@ fn observations(cx: &Context, g: &Group) -> Vec<Observation> {
                 segment: r.segment.clone(),
                 epoch,
                 so2: r.so2?,
+                site: cx.sites.get(cr.subject.as_str()).map(|s| s.to_string()),
             })
         })
         .collect()
@@ -978,6 +987,25 @@ fn describe(study: &Study, stats: Option<&StatisticsTables>) -> String {
             .filter(|c| c.result.basis != epoch_model::Basis::MixedModel)
             .count();
         text.push_str(&format!(" In this study {} of {} contrasts were tested in the mixed model and {fallbacks} at the subject level.", st.contrasts.len() - fallbacks, st.contrasts.len()));
+    }
+    let sites: std::collections::BTreeSet<&str> = study
+        .subjects
+        .iter()
+        .filter_map(|s| s.site.as_deref())
+        .collect();
+    if sites.len() >= 2 {
+        let how = if sites.len() < epoch_model::RANDOM_SITE_MIN {
+            format!(
+                "as a fixed effect (fewer than {} sites, too few to estimate a variance between sites)",
+                epoch_model::RANDOM_SITE_MIN
+            )
+        } else {
+            "as a random intercept".to_string()
+        };
+        text.push_str(&format!(" Subjects were recruited at {} sites ({}); the site entered the epoch model {how}, so that differences of level between sites are not taken for differences between subjects. The other analyses below pool the sites' subjects without a site term.", sites.len(), sites.iter().copied().collect::<Vec<_>>().join(", ")));
+    }
+    if !study.sites.is_empty() {
+        text.push_str(&format!(" The analysis pooled the {} sites' own runs (their per-capture tables, not their images; each site's manifest hash is in this run's manifest), with each two-band method's diameter correction and calibration recomputed over the pooled cohort.", study.sites.len()));
     }
     if study.statistics.adequate_only {
         text.push_str(" Joint multiband fits whose residuals showed a misfit of the vessel model were left out of all statistics.");

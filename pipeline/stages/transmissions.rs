@@ -164,10 +164,12 @@ impl Stage for Transmissions {
     fn build(run: &Run, runner: &Runner) -> Result<(TransmissionTables, String)> {
         let (study, epochs) = (run.study, run.output::<Epochs>());
         let keys = Self::item_keys(run);
+        let shard = runner.shard();
         let analysed = epochs
             .captures
             .iter()
-            .filter(|c| c.status.analysed())
+            .zip(&keys)
+            .filter(|(c, k)| c.status.analysed() && shard.is_none_or(|s| s.holds(k)))
             .count();
         let items = runner.items(Self::NAME, analysed, "images");
         let t = if study.spectra.is_some() {
@@ -349,7 +351,7 @@ pub(crate) fn from_spectra(
         .collect();
     let (mut counts, mut flags) = (vec![0; n], BTreeMap::new());
     let analysed: Vec<usize> = (0..n)
-        .filter(|i| epochs.captures[*i].status.analysed())
+        .filter(|i| epochs.captures[*i].status.analysed() && items.holds(&keys[*i]))
         .collect();
     let results: Vec<Tally> = analysed
         .par_iter()
@@ -540,7 +542,13 @@ pub fn build(
         let reference: std::sync::OnceLock<Result<Multiband, CaptureError>> =
             std::sync::OnceLock::new();
         // Each capture's positions go to the cache; only counts stay here.
-        let results: Vec<(usize, ImageStatus, usize, BTreeMap<String, usize>)> = analysed
+        // A shard of a run computes its own captures only.
+        let mine: Vec<usize> = analysed
+            .iter()
+            .copied()
+            .filter(|i| items.holds(&keys[*i]))
+            .collect();
+        let results: Vec<(usize, ImageStatus, usize, BTreeMap<String, usize>)> = mine
             .par_iter()
             .map(|&i| {
                 let (st, rows): CaptureItem = items.get_or_compute(&keys[i], || {

@@ -38,6 +38,16 @@
 //! cases, including a baseline with no subject-specific variance.)
 //! The same fallback serves every contrast when the
 //! model cannot be fitted at all. Which test ran is written in each row.
+//!
+//! In a multi-site study (subjects recruited at two sites or more) the
+//! model also carries the site: as fixed effects when there are fewer than
+//! [`RANDOM_SITE_MIN`] sites, whose variance could not be estimated
+//! (Gelman & Hill 2007, *Data Analysis Using Regression and
+//! Multilevel/Hierarchical Models*, §11.4, on few groups), else as a random
+//! intercept `(1 | site)`. Subjects are nested in sites, so the site term
+//! takes up differences of level between sites (instruments, populations)
+//! that would otherwise sit in the subject variance; the epoch contrasts
+//! stay within subjects.
 
 use std::collections::BTreeMap;
 
@@ -48,6 +58,18 @@ use super::agreement::paired_t;
 use super::infer::{Test, contrast_at, holm};
 use super::lmm::{Criterion, LmmData, Model, RandomTerm};
 use super::summary::mean;
+
+/// From this many sites on, the site enters as a random intercept; below,
+/// as fixed effects.
+pub const RANDOM_SITE_MIN: usize = 5;
+
+/// The sites of the observations, sorted; empty when fewer than two.
+fn sites(obs: &[Observation]) -> Vec<String> {
+    let mut v: Vec<String> = obs.iter().filter_map(|o| o.site.clone()).collect();
+    v.sort();
+    v.dedup();
+    if v.len() < 2 { Vec::new() } else { v }
+}
 
 /// lme4's default tolerance for a singular fit (`isSingular(tol = 1e-4)`),
 /// on the relative covariance factor θ.
@@ -63,6 +85,8 @@ pub struct Observation {
     /// Index into the protocol's epochs.
     pub epoch: usize,
     pub so2: f64,
+    /// The recruiting site, in a multi-site study (else `None`).
+    pub site: Option<String>,
 }
 
 /// A contrast between epochs: (epoch index, weight), weights summing to zero.
@@ -206,8 +230,22 @@ fn random_terms(
     let eye = key(&|o| format!("{}:{}", o.subject, o.eye));
     let segment = key(&|o| format!("{}:{}:{}", o.subject, o.eye, o.segment));
     let mut terms = vec![factor("subject", &subject, None)];
-    let mut formula = String::from("so2 ~ epoch + (1 | subject)");
-    let subjects = terms[0].levels.len();
+    let sites = sites(obs);
+    let mut formula = String::from(if sites.is_empty() {
+        "so2 ~ epoch + (1 | subject)"
+    } else if sites.len() < RANDOM_SITE_MIN {
+        "so2 ~ epoch + site + (1 | subject)"
+    } else {
+        "so2 ~ epoch + (1 | site) + (1 | subject)"
+    });
+    if sites.len() >= RANDOM_SITE_MIN {
+        let site = key(&|o| o.site.clone().unwrap_or_default());
+        terms.insert(0, factor("site", &site, None));
+    }
+    let subjects = terms
+        .iter()
+        .find(|t| t.name == "subject")
+        .map_or(0, |t| t.levels.len());
     let session_term = factor("subject:session", &session, None);
     if session_term.levels.len() > subjects {
         terms.push(session_term);
@@ -364,15 +402,28 @@ pub fn analyse(obs: &[Observation], design: &Design) -> EpochAnalysis {
                 .copied()
                 .filter(|e| *e != design.baseline)
                 .collect();
-            let x = DMatrix::from_fn(obs.len(), 1 + others.len(), |i, j| {
+            // Fixed site effects after the epochs' (treatment coding, the
+            // first site in sorted order as reference); contrasts give them
+            // weight zero.
+            let sites = sites(obs);
+            let fixed_sites: &[String] = if sites.len() < RANDOM_SITE_MIN {
+                sites.get(1..).unwrap_or(&[])
+            } else {
+                &[]
+            };
+            let p = 1 + others.len();
+            let x = DMatrix::from_fn(obs.len(), p + fixed_sites.len(), |i, j| {
                 if j == 0 {
                     1.0
-                } else {
+                } else if j < p {
                     (obs[i].epoch == others[j - 1]) as u8 as f64
+                } else {
+                    (obs[i].site.as_deref() == Some(fixed_sites[j - p].as_str())) as u8 as f64
                 }
             });
             let x_names = std::iter::once("(Intercept)".to_string())
                 .chain(others.iter().map(|e| design.epochs[*e].clone()))
+                .chain(fixed_sites.iter().map(|s| format!("site{s}")))
                 .collect();
             let levels: Vec<usize> = terms.iter().map(|t| t.levels.len()).collect();
             let names: Vec<String> = terms.iter().map(|t| t.name.clone()).collect();
@@ -423,7 +474,7 @@ pub fn analyse(obs: &[Observation], design: &Design) -> EpochAnalysis {
                     }
                     continue;
                 }
-                let mut l = vec![0.0; 1 + others.len()];
+                let mut l = vec![0.0; model.fixed_names().len()];
                 for (e, w) in &spec.weights {
                     if let Some(j) = others.iter().position(|o| o == e) {
                         l[1 + j] += w;
@@ -552,6 +603,7 @@ mod tests {
 
     fn obs(subject: &str, epoch: usize, so2: f64) -> Observation {
         Observation {
+            site: None,
             subject: subject.into(),
             session: "s1".into(),
             eye: "OD".into(),

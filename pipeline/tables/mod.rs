@@ -425,7 +425,11 @@ pub(crate) fn write_atomic(
     // cache entries from identical inputs); each renames its own complete file.
     static SERIAL: std::sync::atomic::AtomicU64 = std::sync::atomic::AtomicU64::new(0);
     let serial = SERIAL.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
-    let tmp = dir.join(format!(".{name}.{}-{serial}.tmp", std::process::id()));
+    let tmp = dir.join(format!(
+        ".{name}.{}-{serial}-{}.tmp",
+        std::process::id(),
+        host_tag()
+    ));
     let result = (|| -> std::result::Result<(), FillError> {
         let mut f = fs::File::create(&tmp).map_err(|source| TableError::Create {
             path: tmp.clone(),
@@ -458,11 +462,31 @@ pub fn create_folder(dir: &Path) -> Result<()> {
     })
 }
 
+/// This machine's name as 8 hex digits, in temporary file names: processes
+/// on different machines writing one shared folder (shards of a run on a
+/// cluster) may have the same process id, and must not share a temporary.
+fn host_tag() -> &'static str {
+    static TAG: std::sync::OnceLock<String> = std::sync::OnceLock::new();
+    TAG.get_or_init(|| {
+        let name = fs::read_to_string("/proc/sys/kernel/hostname")
+            .ok()
+            .or_else(|| std::env::var("HOSTNAME").ok())
+            .or_else(|| std::env::var("COMPUTERNAME").ok())
+            .unwrap_or_default();
+        // FNV-1a: short, stable, no dependency.
+        let h = name.trim().bytes().fold(0xcbf2_9ce4_8422_2325u64, |h, b| {
+            (h ^ b as u64).wrapping_mul(0x0100_0000_01b3)
+        });
+        format!("{:08x}", h as u32)
+    })
+}
+
 /// Removes the temporary files an interrupted run left under `dir` (those
-/// this module names `.<name>.<pid>[-<n>].tmp`), and returns how many. A file
-/// is left alone while the process that wrote it runs on this machine, and
-/// for a minute after it was last written: another run may share the
-/// folder (on a shared file system, from another machine).
+/// this module names `.<name>.<pid>-<n>-<host>.tmp`), and returns how many. A
+/// file is left alone while the process that wrote it runs on this machine,
+/// and for a minute after it was last written: another run may share the
+/// folder (on a shared file system, from another machine, where a process
+/// id says nothing).
 pub fn remove_orphaned_temporaries(dir: &Path) -> usize {
     let Ok(entries) = fs::read_dir(dir) else {
         return 0;
@@ -479,15 +503,17 @@ pub fn remove_orphaned_temporaries(dir: &Path) -> usize {
         let Some(stem) = name.strip_suffix(".tmp").filter(|_| name.starts_with('.')) else {
             continue;
         };
-        let Some(pid) = stem
-            .rsplit('.')
-            .next()
-            .and_then(|last| last.split('-').next())
-            .and_then(|p| p.parse::<u32>().ok())
-        else {
+        let Some((pid, host)) = stem.rsplit('.').next().and_then(|last| {
+            let mut parts = last.split('-');
+            let pid = parts.next()?.parse::<u32>().ok()?;
+            Some((pid, parts.nth(1)))
+        }) else {
             continue;
         };
-        let alive = pid == std::process::id() || Path::new(&format!("/proc/{pid}")).exists();
+        // A process id is only known to be alive on the machine that wrote it.
+        let here = host.is_none_or(|h| h == host_tag());
+        let alive =
+            here && (pid == std::process::id() || Path::new(&format!("/proc/{pid}")).exists());
         let recent = e
             .metadata()
             .and_then(|m| m.modified())
@@ -535,12 +561,25 @@ mod tests {
         // No process has a pid above Linux's largest (2^22).
         let orphan = touch(".a.bin.4294967-3.tmp", old);
         let stream = touch(".so2.csv.4294967.tmp", old);
-        let mine = touch(&format!(".b.bin.{}-0.tmp", std::process::id()), old);
+        let pid = std::process::id();
+        let mine = touch(&format!(".b.bin.{pid}-0-{}.tmp", host_tag()), old);
+        // The same process id on another machine of a shared folder says
+        // nothing about this machine's processes.
+        let far = if host_tag() == "00000000" {
+            "00000001"
+        } else {
+            "00000000"
+        };
+        let elsewhere = touch(&format!(".d.bin.{pid}-0-{far}.tmp",), old);
+        let elsewhere_fresh = touch(
+            &format!(".e.bin.{pid}-1-{far}.tmp"),
+            std::time::SystemTime::now(),
+        );
         let fresh = touch(".c.bin.4294967-4.tmp", std::time::SystemTime::now());
         let other = touch("notes.tmp", old);
-        assert_eq!(remove_orphaned_temporaries(dir.path()), 2);
-        assert!(!orphan.exists() && !stream.exists());
-        assert!(mine.exists() && fresh.exists() && other.exists());
+        assert_eq!(remove_orphaned_temporaries(dir.path()), 3);
+        assert!(!orphan.exists() && !stream.exists() && !elsewhere.exists());
+        assert!(mine.exists() && fresh.exists() && other.exists() && elsewhere_fresh.exists());
     }
 
     #[test]

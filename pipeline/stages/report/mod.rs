@@ -41,6 +41,7 @@ impl Stage for Report {
     const NAME: &'static str = "report";
     /// Version of the report's layout; bump when its output changes.
     const VERSION: u32 = 14;
+    const COHORT_LEVEL: bool = true;
     const SUMMARY: &'static str = "the paper's tables and figures, report.html and report.md";
     const UPSTREAM: &'static [&'static str] =
         &["epochs", "transmissions", "fits", "statistics", "power"];
@@ -238,7 +239,12 @@ fn write(
     if let Some(p) = &inp.power {
         written.extend(p.figure.files.clone());
     }
-    let qc_files = qc::write(&dir, inp, &data.primary, positions)?;
+    // A pooled analysis has no images: the sites' own reports carry the sheets.
+    let qc_files = if inp.study.sites.is_empty() {
+        qc::write(&dir, inp, &data.primary, positions)?
+    } else {
+        Vec::new()
+    };
     let parts = Parts {
         qc: !qc_files.is_empty(),
         inp,

@@ -3,3 +3,4 @@
 mod cli;
 mod hostile;
 mod power;
+mod scale;
