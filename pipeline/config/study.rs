@@ -655,11 +655,26 @@ fn read_study(r: &mut Reader, node: &Node, file: &Path, root: &Path) -> Option<S
                         );
                     }
                     seen_subjects.insert(s.id.clone(), mark);
-                    subjects.push(s);
+                    subjects.push((s, mark));
                 }
             }
         }
     }
+    // A site for some subjects and not others would put the others in the
+    // reference site without a word.
+    if let Some((with, _)) = subjects.iter().find(|(s, _)| s.site.is_some()) {
+        for (s, mark) in subjects.iter().filter(|(s, _)| s.site.is_none()) {
+            r.error(
+                *mark,
+                format!(
+                    "subject `{}` has no `site`, but subject `{}` has one: in a multi-site study every subject needs its site",
+                    s.id, with.id
+                ),
+            )
+            .hint("add `site: …` to every subject, or remove it from all");
+        }
+    }
+    let subjects: Vec<Subject> = subjects.into_iter().map(|(s, _)| s).collect();
 
     let methods = match m.get("methods") {
         None => Vec::new(),

@@ -419,3 +419,27 @@ fn sites_that_ran_different_settings_are_not_pooled() {
         o.stderr
     );
 }
+
+#[test]
+fn a_site_for_some_subjects_only_is_an_error() {
+    let tmp = tempfile::tempdir().unwrap();
+    let folder = simulated(tmp.path(), "tests/fixtures/sites-scenario.yaml", "study");
+    let partial = study_with(
+        &folder,
+        "partial",
+        &["V01", "V02", "V03"],
+        &BTreeMap::from([("V01", "north")]),
+    );
+    let o = satstep(tmp.path(), &["check", partial.to_str().unwrap()]);
+    assert_eq!(o.code, 1, "{}", o.stderr);
+    for id in ["V02", "V03"] {
+        assert!(
+            o.stderr.contains(&format!(
+                "subject `{id}` has no `site`, but subject `V01` has one"
+            )),
+            "{}",
+            o.stderr
+        );
+    }
+    assert!(o.stderr.contains("partial.yaml:"), "{}", o.stderr);
+}
