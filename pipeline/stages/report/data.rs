@@ -520,6 +520,10 @@ fn along_segment(
                 && p.transmission.iter().all(|t| *t > 0.0 && t.is_finite())
         })
         .collect();
+    // No positions to show (a pooled analysis has none of the sites'): no figure.
+    if pos.is_empty() {
+        return None;
+    }
     let bands: Vec<SampledBand> = study
         .instrument
         .bands

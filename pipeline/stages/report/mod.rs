@@ -40,7 +40,7 @@ pub(crate) struct Report;
 impl Stage for Report {
     const NAME: &'static str = "report";
     /// Version of the report's layout; bump when its output changes.
-    const VERSION: u32 = 14;
+    const VERSION: u32 = 15;
     const COHORT_LEVEL: bool = true;
     const SUMMARY: &'static str = "the paper's tables and figures, report.html and report.md";
     const UPSTREAM: &'static [&'static str] =
@@ -497,6 +497,36 @@ impl<'a> Parts<'a> {
                 } else {
                     String::new()
                 }
+            ));
+        }
+        let mut sites: BTreeMap<&str, usize> = BTreeMap::new();
+        for x in s.subjects.iter().filter_map(|x| x.site.as_deref()) {
+            *sites.entry(x).or_default() += 1;
+        }
+        if !sites.is_empty() {
+            let listed: Vec<String> = sites.iter().map(|(k, n)| format!("{k}: {n}")).collect();
+            v.push(format!(
+                "Subjects by recruiting site: {}.",
+                listed.join(", ")
+            ));
+        }
+        if !s.sites.is_empty() {
+            let listed: Vec<String> = s
+                .sites
+                .iter()
+                .map(|x| {
+                    format!(
+                        "{} ({} subjects, {} captures; manifest SHA-256 {}…)",
+                        x.name,
+                        x.subjects,
+                        x.captures,
+                        &x.manifest_sha256[..12.min(x.manifest_sha256.len())]
+                    )
+                })
+                .collect();
+            v.push(format!(
+                "Pooled from each site's own run, without images: {}. Per-position figures and quality-control sheets are in the sites' own reports.",
+                listed.join("; ")
             ));
         }
         let bands: Vec<String> = s.instrument.bands.iter().map(|b| b.name.clone()).collect();

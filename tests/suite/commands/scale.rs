@@ -383,7 +383,17 @@ fn pooling_two_sites_gives_the_single_run_with_a_site_term() {
     }
     let report = std::fs::read_to_string(pooled.join("report/report.md")).unwrap();
     assert!(report.contains("pooled the 2 sites' own runs"), "{report}");
+    assert!(
+        report.contains("Subjects by recruiting site: north: 2, south: 2."),
+        "{report}"
+    );
+    assert!(
+        report.contains("Pooled from each site's own run, without images: north (2 subjects"),
+        "{report}"
+    );
     assert!(!pooled.join("report/qc.html").exists());
+    // No per-position figure without the sites' positions.
+    assert!(!pooled.join("report/figures/along_segment.svg").exists());
 }
 
 #[test]
