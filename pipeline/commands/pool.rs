@@ -201,7 +201,11 @@ fn read_site(arg: &str) -> Result<Site> {
     let spans = read("epochs/spans.csv")?;
     let images = read("transmissions/captures.csv")?;
     let so2 = read("fits/so2.csv")?;
-    let positions = read("transmissions/positions.csv")?;
+    // The positions table has a row per profile position: it is streamed
+    // below, never held whole.
+    let ppath = dir.join("transmissions/positions.csv");
+    let plen = std::fs::metadata(&ppath).map(|m| m.len()).unwrap_or(0);
+    files.push((ppath.clone(), hash_file(&ppath)?, plen));
     files.insert(0, (mpath.clone(), hash_file(&mpath)?, bytes.len() as u64));
 
     // Captures.
@@ -264,20 +268,22 @@ fn read_site(arg: &str) -> Result<Site> {
             )
         })
         .collect();
-    let find = |t: &Csv, i: usize, c: [usize; 4]| -> Result<usize> {
+    // The capture a row names, by its four key cells; `line` for the error.
+    let locate = |rec: &csv::StringRecord, c: [usize; 4], path: &Path, line: usize| {
+        let cell = |k: usize| rec.get(c[k]).unwrap_or("");
         index
-            .get(&(t.text(i, c[0]), t.text(i, c[1]), t.text(i, c[2]), t.text(i, c[3])))
+            .get(&(cell(0), cell(1), cell(2), cell(3)))
             .copied()
             .ok_or_else(|| {
                 anyhow!(
-                    "`{}` line {}: capture `{}` of subject `{}` is not in `epochs/captures.csv`; the site's tables are not from one run",
-                    t.path.display(),
-                    i + 2,
-                    t.text(i, c[3]),
-                    t.text(i, c[0])
+                    "`{}` line {line}: capture `{}` of subject `{}` is not in `epochs/captures.csv`; the site's tables are not from one run",
+                    path.display(),
+                    cell(3),
+                    cell(0)
                 )
             })
     };
+    let find = |t: &Csv, i: usize, c: [usize; 4]| locate(&t.rows[i], c, &t.path, i + 2);
     let keys = |t: &Csv| -> Result<[usize; 4]> {
         Ok([
             t.column("subject")?,
@@ -346,10 +352,28 @@ fn read_site(arg: &str) -> Result<Site> {
     // Positions and flags per capture, counted as the site's run counted them.
     let mut position_counts = vec![0usize; captures.len()];
     let mut flag_counts: BTreeMap<String, usize> = BTreeMap::new();
+    let mut reader =
+        csv::Reader::from_path(&ppath).with_context(|| format!("reading `{}`", ppath.display()))?;
+    let positions = Csv {
+        path: ppath.clone(),
+        header: reader
+            .headers()
+            .with_context(|| format!("reading the header of `{}`", ppath.display()))?
+            .iter()
+            .map(str::to_string)
+            .collect(),
+        rows: Vec::new(),
+    };
     let (pk, pfl) = (keys(&positions)?, positions.column("quality_flags")?);
-    for i in 0..positions.rows.len() {
-        position_counts[find(&positions, i, pk)?] += 1;
-        let flags = positions.text(i, pfl);
+    let mut rec = csv::StringRecord::new();
+    let mut line = 1;
+    while reader
+        .read_record(&mut rec)
+        .with_context(|| format!("`{}` line {}", ppath.display(), line + 1))?
+    {
+        line += 1;
+        position_counts[locate(&rec, pk, &ppath, line)?] += 1;
+        let flags = rec.get(pfl).unwrap_or("");
         if flags.is_empty() {
             *flag_counts.entry("unflagged".into()).or_default() += 1;
         }
