@@ -1,6 +1,10 @@
 //! Throughput of the oximetry fits: joint segment fits (200 positions × 8
 //! bands) and single-position fits per second, on one core and on all
-//! cores. Run with `cargo bench --bench engine`.
+//! cores; then the joint fit beside its scipy peer (`benches/peers/
+//! joint_fit.py`: the same model, data, bounds and start fitted by
+//! `scipy.optimize.least_squares`), CPU per fit on one core each, with the
+//! largest SO2 difference between the two. Run with
+//! `cargo bench --bench engine`.
 
 // A benchmark reports on stdout.
 #![allow(clippy::print_stdout)]
@@ -14,7 +18,7 @@ use rayon::prelude::*;
 use satstep::oximetry::bands::SampledBand;
 use satstep::oximetry::model::{Shared, VesselModel};
 use satstep::oximetry::pointwise::fit_position;
-use satstep::oximetry::segment::{FitSettings, SegmentSpectra, fit_segment};
+use satstep::oximetry::segment::{FitSettings, RobustLoss, SegmentSpectra, fit_segment};
 
 fn segment(model: &VesselModel, seed: u64, n: usize) -> SegmentSpectra {
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
@@ -93,6 +97,123 @@ fn main() {
             "  pointwise fit, one position:       {:8.1} fits/s on {threads} core(s) ({n}/{} converged)",
             positions.len() as f64 / dt,
             positions.len()
+        );
+    }
+    against_scipy(&model, &segments);
+}
+
+/// CPU seconds of this process (all threads), from `/proc/self/stat`, so
+/// that satstep's figure is CPU like scipy's `time.process_time`.
+fn cpu_seconds() -> f64 {
+    let stat = std::fs::read_to_string("/proc/self/stat").unwrap_or_default();
+    let fields: Vec<&str> = stat
+        .rsplit_once(')')
+        .map_or(vec![], |(_, rest)| rest.split_whitespace().collect());
+    let ticks = |i: usize| {
+        fields
+            .get(i)
+            .and_then(|v| v.parse::<f64>().ok())
+            .unwrap_or(0.0)
+    };
+    // utime and stime are fields 14 and 15 (1-based), 11 and 12 after the name.
+    (ticks(11) + ticks(12)) / 100.0
+}
+
+/// The joint fit beside the scipy script, both losses.
+fn against_scipy(model: &VesselModel, segments: &[SegmentSpectra]) {
+    let available = std::process::Command::new("python3")
+        .args(["-c", "import scipy"])
+        .output()
+        .is_ok_and(|o| o.status.success());
+    if !available {
+        println!("  scipy: not installed (pip install scipy), peer comparison skipped");
+        return;
+    }
+    let scale = 1.5;
+    let mut runs = vec![];
+    let mut ours = vec![];
+    for loss in [RobustLoss::Squared, RobustLoss::Huber { scale }] {
+        let settings = FitSettings {
+            loss,
+            ..FitSettings::default()
+        };
+        // Best of three, one core, CPU time.
+        let mut best = f64::INFINITY;
+        let mut fits = vec![];
+        for _ in 0..3 {
+            let t0 = cpu_seconds();
+            fits = segments
+                .iter()
+                .map(|s| fit_segment(model, s, &settings).unwrap())
+                .collect::<Vec<_>>();
+            best = best.min(cpu_seconds() - t0);
+        }
+        let name = match loss {
+            RobustLoss::Squared => "linear",
+            RobustLoss::Huber { .. } => "huber",
+        };
+        runs.push(serde_json::json!({"loss": name}));
+        ours.push((name, best, fits));
+    }
+    let s = FitSettings::default();
+    let problem = serde_json::json!({
+        "backscatter": model.backscatter,
+        "bands": model.bands.iter().map(|b| serde_json::json!({
+            "w": b.w, "eo": b.eps_hbo2, "ed": b.eps_hb,
+        })).collect::<Vec<_>>(),
+        "settings": {"so2_lo": s.so2_bounds.0, "so2_hi": s.so2_bounds.1,
+            "hb_lo": s.hb_bounds.0, "hb_hi": s.hb_bounds.1, "veil_max": s.veil_max,
+            "noise": s.noise, "huber_scale": scale},
+        "segments": segments.iter().map(|s| serde_json::json!({
+            "diameters_um": s.diameters_um, "transmissions": s.transmissions,
+        })).collect::<Vec<_>>(),
+        "runs": runs,
+    });
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("problems.json");
+    std::fs::write(&path, serde_json::to_vec(&problem).unwrap()).unwrap();
+    if let Some(keep) = std::env::var_os("SATSTEP_BENCH_KEEP") {
+        std::fs::copy(&path, keep).unwrap();
+    }
+    let script = concat!(env!("CARGO_MANIFEST_DIR"), "/benches/peers/joint_fit.py");
+    let out = std::process::Command::new("python3")
+        .arg(script)
+        .arg(&path)
+        // One core for the peer too: numpy's BLAS would otherwise spread.
+        .env("OMP_NUM_THREADS", "1")
+        .env("OPENBLAS_NUM_THREADS", "1")
+        .env("MKL_NUM_THREADS", "1")
+        .output()
+        .unwrap();
+    if !out.status.success() {
+        println!(
+            "  scipy script failed: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        return;
+    }
+    println!(
+        "joint segment fit against scipy least_squares (trf, analytic sparse Jacobian), one core each, CPU per fit:"
+    );
+    for (line, (name, ours_s, fits)) in String::from_utf8_lossy(&out.stdout).lines().zip(&ours) {
+        let peer: serde_json::Value = serde_json::from_str(line).unwrap();
+        let n = fits.len() as f64;
+        let peer_s = peer["cpu_s"].as_f64().unwrap();
+        let worst = fits
+            .iter()
+            .zip(peer["so2"].as_array().unwrap())
+            .map(|(f, p)| (f.so2 - p.as_f64().unwrap()).abs() * 100.0)
+            .fold(0.0, f64::max);
+        let evals: usize = fits.iter().map(|f| f.evaluations).sum();
+        println!(
+            "  loss {name:6}: satstep {:7.2} ms ({:5.1} evaluations), scipy {:8.2} ms ({:5.1} + {:5.1} evaluations): {:6.1}× faster; largest SO2 difference {:.1e} points",
+            ours_s * 1e3 / n,
+            evals as f64 / n,
+            peer_s * 1e3 / n,
+            peer["nfev"].as_f64().unwrap() / n,
+            peer["njev"].as_f64().unwrap() / n,
+            peer_s / ours_s,
+            worst
         );
     }
 }

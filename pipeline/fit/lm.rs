@@ -94,6 +94,12 @@ pub trait Problem {
     /// ½‖r(x)‖², or `None` where the model is not finite.
     fn cost(&self, x: &[f64]) -> Option<f64>;
     fn linearize(&self, x: &[f64]) -> Self::Lin;
+    /// The cost at a trial point and, for problems where the two come
+    /// cheaper together than apart, the linearisation there too (used if
+    /// the step is taken). The cost must equal [`Problem::cost`]'s.
+    fn cost_and_linearize(&self, x: &[f64]) -> (Option<f64>, Option<Self::Lin>) {
+        (self.cost(x), None)
+    }
     fn lower(&self) -> Vec<f64> {
         vec![f64::NEG_INFINITY; self.n_params()]
     }
@@ -210,7 +216,8 @@ pub fn minimize<P: Problem>(p: &P, x0: &[f64], opt: &Options) -> FitReport {
                 break;
             }
             evaluations += 1;
-            let new_cost = p.cost(&trial).unwrap_or(f64::INFINITY);
+            let (new_cost, new_lin) = p.cost_and_linearize(&trial);
+            let new_cost = new_cost.unwrap_or(f64::INFINITY);
             let pred = lin.predicted_reduction(&delta);
             let actual = cost - new_cost;
             let rho = if pred > 0.0 { actual / pred } else { -1.0 };
@@ -218,8 +225,13 @@ pub fn minimize<P: Problem>(p: &P, x0: &[f64], opt: &Options) -> FitReport {
                 x = trial;
                 let old = cost;
                 cost = new_cost;
-                lin = p.linearize(&x);
-                evaluations += 1;
+                lin = match new_lin {
+                    Some(l) => l,
+                    None => {
+                        evaluations += 1;
+                        p.linearize(&x)
+                    }
+                };
                 lambda *= (1.0f64 / 3.0).max(1.0 - (2.0 * rho - 1.0).powi(3));
                 nu = 2.0;
                 accepted = true;

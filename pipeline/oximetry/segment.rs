@@ -20,10 +20,13 @@
 //! chi-square against the stated measurement noise, iterations, evaluations
 //! and the termination reason.
 
+use std::cell::RefCell;
+
 use nalgebra::{SMatrix, SVector};
 
 use super::model::{
-    D_BACKSCATTER, D_DOUBLE_PASS, D_FUNDUS, D_VEIL_SLOPE, Extensions, N_DERIV, Shared, VesselModel,
+    Along, D_BACKSCATTER, D_DOUBLE_PASS, D_FUNDUS, D_VEIL_SLOPE, Extensions, N_DERIV, Shared,
+    VesselModel,
 };
 use crate::fit::{Linearization, Options, Problem, Termination, minimize};
 
@@ -189,11 +192,17 @@ pub fn adequacy(res: &[Vec<f64>]) -> (Vec<f64>, f64, Adequacy) {
 struct Joint<'a> {
     model: &'a VesselModel,
     data: &'a SegmentSpectra,
-    /// sqrt of the robust weight per (position, band).
-    sqrt_w: Vec<Vec<f64>>,
+    /// `ln T_measured`, `[position · bands + band]`; NaN where the
+    /// measurement is not positive (the model cannot match it).
+    ln_meas: Vec<f64>,
+    /// sqrt of the robust weight, `[position · bands + band]`.
+    sqrt_w: Vec<f64>,
     settings: &'a FitSettings,
     /// Derivative columns of the shared unknowns, in the fit's order.
     cols: Vec<usize>,
+    /// The band averages of the last evaluation, kept so that an
+    /// evaluation allocates nothing.
+    terms: RefCell<Along>,
 }
 
 /// Most shared unknowns of any model: S, hb, k and three extensions.
@@ -201,16 +210,19 @@ const MAX_SHARED: usize = 6;
 type SharedMatrix = SMatrix<f64, MAX_SHARED, MAX_SHARED>;
 type SharedVector = SVector<f64, MAX_SHARED>;
 
-/// Per position: residuals, Jacobian rows for the shared parameters (zero
-/// past the model's own) and the local one.
-struct Block {
-    r: Vec<f64>,
-    jg: Vec<SharedVector>,
-    jl: Vec<f64>,
-}
-
+/// The normal equations `JᵀJ` and `Jᵀr` of the joint fit at one point, in
+/// blocks: `A` (shared × shared), per position `b_p` (shared × its own),
+/// `c_p` (its own, squared), and the gradients. The shared blocks are of
+/// the largest size; past the model's own `g` unknowns A is the identity
+/// and everything else zero, so that those steps are zero. The residuals
+/// and Jacobian themselves are not kept: every quantity the damped loop
+/// needs is one of these blocks.
 pub(crate) struct JointLin {
-    blocks: Vec<Block>,
+    a: SharedMatrix,
+    bs: Vec<SharedVector>,
+    cs: Vec<f64>,
+    gg: SharedVector,
+    gl: Vec<f64>,
     g: usize,
 }
 
@@ -229,18 +241,21 @@ fn shared_of(cols: &[usize], x: &[f64]) -> Shared {
 }
 
 impl<'a> Joint<'a> {
-    fn new(
-        model: &'a VesselModel,
-        data: &'a SegmentSpectra,
-        settings: &'a FitSettings,
-        sqrt_w: Vec<Vec<f64>>,
-    ) -> Self {
+    fn new(model: &'a VesselModel, data: &'a SegmentSpectra, settings: &'a FitSettings) -> Self {
+        let ln_meas = data
+            .transmissions
+            .iter()
+            .flatten()
+            .map(|t| if *t > 0.0 { t.ln() } else { f64::NAN })
+            .collect::<Vec<_>>();
         Joint {
             model,
             data,
-            sqrt_w,
+            sqrt_w: vec![1.0; ln_meas.len()],
+            ln_meas,
             settings,
             cols: model.extensions.shared_columns(),
+            terms: RefCell::new(Along::default()),
         }
     }
 
@@ -252,42 +267,79 @@ impl<'a> Joint<'a> {
         self.cols.len()
     }
 
-    fn block(&self, x: &[f64], p: usize, with_jac: bool) -> Option<Block> {
+    /// Evaluates the model at `x` and hands each position's weighted
+    /// residuals (and with `jac` the model's derivative rows and the
+    /// weight over the model's value, `w/T`) to `visit`; a position where
+    /// the model or the measurement is not positive is handed `None`.
+    fn evaluate(
+        &self,
+        x: &[f64],
+        jac: bool,
+        visit: impl FnMut(usize, Option<(&[f64], &[[f64; N_DERIV]], &[f64])>),
+    ) {
+        self.fill_terms(x, jac);
+        self.visit_positions(x, jac, visit);
+    }
+
+    /// The band averages at `x`'s shared parameters, into `self.terms`.
+    fn fill_terms(&self, x: &[f64], jac: bool) {
+        let sh = shared_of(&self.cols, x);
+        self.model.terms_along(
+            sh.so2,
+            sh.hb_g_per_l,
+            &self.data.diameters_um,
+            jac,
+            &mut self.terms.borrow_mut(),
+        );
+    }
+
+    /// [`Self::evaluate`] with the band averages already in `self.terms`.
+    fn visit_positions(
+        &self,
+        x: &[f64],
+        jac: bool,
+        mut visit: impl FnMut(usize, Option<(&[f64], &[[f64; N_DERIV]], &[f64])>),
+    ) {
         let nb = self.model.n_bands();
         let g = self.g();
         let sh = shared_of(&self.cols, x);
-        let mut t = vec![0.0; nb];
-        let mut j = vec![[0.0; N_DERIV]; nb];
-        self.model.transmission(
-            &sh,
-            x[g + p],
-            self.data.diameters_um[p],
-            &mut t,
-            with_jac.then_some(&mut j[..]),
-        );
-        let mut b = Block {
-            r: Vec::with_capacity(nb),
-            jg: Vec::with_capacity(if with_jac { nb } else { 0 }),
-            jl: Vec::with_capacity(nb),
-        };
-        for k in 0..nb {
-            let meas = self.data.transmissions[p][k];
-            if !(t[k] > 0.0) || !(meas > 0.0) {
-                return None;
-            }
-            let w = self.sqrt_w[p][k];
-            b.r.push(w * (t[k].ln() - meas.ln()));
-            if with_jac {
-                let s = w / t[k];
-                let mut row = SharedVector::zeros();
-                for (i, c) in self.cols.iter().enumerate() {
-                    row[i] = s * j[k][*c];
+        let along = self.terms.borrow();
+        let terms = &along.terms;
+        let mut r = vec![0.0; nb];
+        let mut rows = vec![[0.0; N_DERIV]; nb];
+        let mut scale = vec![0.0; nb];
+        for p in 0..self.n_pos() {
+            let mut ok = true;
+            for k in 0..nb {
+                let i = p * nb + k;
+                let t =
+                    self.model
+                        .combine(k, &sh, x[g + p], &terms[i], jac.then_some(&mut rows[k]));
+                if !(t > 0.0) || self.ln_meas[i].is_nan() {
+                    ok = false;
+                    break;
                 }
-                b.jg.push(row);
-                b.jl.push(s * j[k][D_DOUBLE_PASS]);
+                let w = self.sqrt_w[i];
+                r[k] = w * (t.ln() - self.ln_meas[i]);
+                scale[k] = w / t;
             }
+            visit(p, ok.then_some((&r[..], &rows[..], &scale[..])));
         }
-        Some(b)
+    }
+
+    /// Unweighted residuals at `x`, `[position][band]` (zeros where the
+    /// model is not finite).
+    fn residuals(&mut self, x: &[f64]) -> Vec<Vec<f64>> {
+        let weights = std::mem::replace(&mut self.sqrt_w, vec![1.0; self.ln_meas.len()]);
+        let nb = self.model.n_bands();
+        let mut out = vec![vec![0.0; nb]; self.n_pos()];
+        self.evaluate(x, false, |p, e| {
+            if let Some((r, _, _)) = e {
+                out[p].copy_from_slice(r);
+            }
+        });
+        self.sqrt_w = weights;
+        out
     }
 }
 
@@ -300,31 +352,69 @@ impl<'a> Problem for Joint<'a> {
 
     fn cost(&self, x: &[f64]) -> Option<f64> {
         let mut c = 0.0;
-        for p in 0..self.n_pos() {
-            c += self
-                .block(x, p, false)?
-                .r
-                .iter()
-                .map(|v| v * v)
-                .sum::<f64>();
-        }
-        Some(0.5 * c)
+        let mut ok = true;
+        self.evaluate(x, false, |_, e| match e {
+            // Summed as `cost_and_linearize` sums, so that the two agree to the bit.
+            Some((r, _, _)) => r.iter().for_each(|v| c += v * v),
+            None => ok = false,
+        });
+        ok.then_some(0.5 * c)
     }
 
     fn linearize(&self, x: &[f64]) -> JointLin {
+        self.cost_and_linearize(x).1.expect("always linearised")
+    }
+
+    /// One evaluation with derivatives gives both: a rejected step wastes
+    /// the derivatives, an accepted one saves a second evaluation.
+    fn cost_and_linearize(&self, x: &[f64]) -> (Option<f64>, Option<JointLin>) {
         let g = self.g();
-        JointLin {
-            blocks: (0..self.n_pos())
-                .map(|p| {
-                    self.block(x, p, true).unwrap_or(Block {
-                        r: vec![0.0; 1],
-                        jg: vec![SharedVector::zeros(); 1],
-                        jl: vec![0.0; 1],
-                    })
-                })
-                .collect(),
+        let np = self.n_pos();
+        let mut lin = JointLin {
+            a: SharedMatrix::zeros(),
+            bs: Vec::with_capacity(np),
+            cs: Vec::with_capacity(np),
+            gg: SharedVector::zeros(),
+            gl: Vec::with_capacity(np),
             g,
+        };
+        let mut cost = 0.0;
+        let mut finite = true;
+        self.evaluate(x, true, |_, e| {
+            let (mut b, mut c, mut gp) = (SharedVector::zeros(), 0.0, 0.0);
+            // A position the model cannot evaluate contributes nothing to
+            // the linearisation and makes the cost undefined.
+            match e {
+                Some((r, rows, scale)) => {
+                    for k in 0..r.len() {
+                        cost += r[k] * r[k];
+                        let mut jg = SharedVector::zeros();
+                        for (i, col) in self.cols.iter().enumerate() {
+                            jg[i] = scale[k] * rows[k][*col];
+                        }
+                        let jl = scale[k] * rows[k][D_DOUBLE_PASS];
+                        // Only the model's own g × g block of A.
+                        for i in 0..g {
+                            for j in 0..g {
+                                lin.a[(i, j)] += jg[i] * jg[j];
+                            }
+                            lin.gg[i] += jg[i] * r[k];
+                            b[i] += jl * jg[i];
+                        }
+                        c += jl * jl;
+                        gp += jl * r[k];
+                    }
+                }
+                None => finite = false,
+            }
+            lin.bs.push(b);
+            lin.cs.push(c);
+            lin.gl.push(gp);
+        });
+        for i in g..MAX_SHARED {
+            lin.a[(i, i)] = 1.0;
         }
+        (finite.then_some(0.5 * cost), Some(lin))
     }
 
     fn lower(&self) -> Vec<f64> {
@@ -368,52 +458,11 @@ fn extension_start(col: usize) -> f64 {
     }
 }
 
-/// Normal-equation blocks of the joint fit: A, per position b_p and c_p,
-/// the shared gradient and the per-position gradients. The shared blocks
-/// are of the largest size; past the model's own `g` unknowns A is the
-/// identity and everything else zero, so that those steps are zero.
-type NormalBlocks = (
-    SharedMatrix,
-    Vec<SharedVector>,
-    Vec<f64>,
-    SharedVector,
-    Vec<f64>,
-);
-
 impl JointLin {
-    /// Normal-equation blocks: A, per position b_p, c_p, and gradients.
-    fn normal(&self) -> NormalBlocks {
-        let mut a = SharedMatrix::zeros();
-        let mut gg = SharedVector::zeros();
-        let mut bs = Vec::with_capacity(self.blocks.len());
-        let mut cs = Vec::with_capacity(self.blocks.len());
-        let mut gl = Vec::with_capacity(self.blocks.len());
-        for blk in &self.blocks {
-            let mut b = SharedVector::zeros();
-            let (mut c, mut gp) = (0.0, 0.0);
-            for k in 0..blk.r.len() {
-                let jg = &blk.jg[k];
-                a += jg * jg.transpose();
-                gg += jg * blk.r[k];
-                b += jg * blk.jl[k];
-                c += blk.jl[k] * blk.jl[k];
-                gp += blk.jl[k] * blk.r[k];
-            }
-            bs.push(b);
-            cs.push(c);
-            gl.push(gp);
-        }
-        for i in self.g..MAX_SHARED {
-            a[(i, i)] = 1.0;
-        }
-        (a, bs, cs, gg, gl)
-    }
-
     /// The reduced (Schur) matrix for the shared parameters, undamped.
     fn schur(&self) -> SharedMatrix {
-        let (a, bs, cs, _, _) = self.normal();
-        let mut s = a;
-        for (b, c) in bs.iter().zip(&cs) {
+        let mut s = self.a;
+        for (b, c) in self.bs.iter().zip(&self.cs) {
             if *c > 0.0 {
                 s -= b * b.transpose() / *c;
             }
@@ -424,60 +473,56 @@ impl JointLin {
 
 impl Linearization for JointLin {
     fn jtj_diagonal(&self) -> Vec<f64> {
-        let (a, _, cs, _, _) = self.normal();
-        let mut d: Vec<f64> = (0..self.g).map(|i| a[(i, i)]).collect();
-        d.extend(cs);
+        let mut d: Vec<f64> = (0..self.g).map(|i| self.a[(i, i)]).collect();
+        d.extend(&self.cs);
         d
     }
 
     fn gradient(&self) -> Vec<f64> {
-        let (_, _, _, gg, gl) = self.normal();
-        let mut g: Vec<f64> = gg.iter().take(self.g).copied().collect();
-        g.extend(gl);
+        let mut g: Vec<f64> = self.gg.iter().take(self.g).copied().collect();
+        g.extend(&self.gl);
         g
     }
 
     fn step(&self, lambda: f64, damping: &[f64]) -> Option<Vec<f64>> {
         let g = self.g;
-        let (a, bs, cs, gg, gl) = self.normal();
-        let mut s = a;
+        let mut s = self.a;
         for i in 0..g {
             s[(i, i)] += lambda * damping[i];
         }
-        let mut rhs = -gg;
-        let mut cl = Vec::with_capacity(cs.len());
-        for p in 0..cs.len() {
-            let c = cs[p] + lambda * damping[g + p];
+        let mut rhs = -self.gg;
+        let mut cl = Vec::with_capacity(self.cs.len());
+        for p in 0..self.cs.len() {
+            let c = self.cs[p] + lambda * damping[g + p];
             if !(c > 0.0) {
                 return None;
             }
             cl.push(c);
-            s -= bs[p] * bs[p].transpose() / c;
-            rhs += bs[p] * (gl[p] / c);
+            s.ger(-1.0 / c, &self.bs[p], &self.bs[p], 1.0);
+            rhs.axpy(self.gl[p] / c, &self.bs[p], 1.0);
         }
         let dg = s.cholesky()?.solve(&rhs);
         let mut out: Vec<f64> = dg.iter().take(g).copied().collect();
-        for p in 0..cs.len() {
-            out.push(-(gl[p] + bs[p].dot(&dg)) / cl[p]);
+        for p in 0..self.cs.len() {
+            out.push(-(self.gl[p] + self.bs[p].dot(&dg)) / cl[p]);
         }
         out.iter().all(|v| v.is_finite()).then_some(out)
     }
 
+    /// `−δᵀJᵀr − ½·δᵀJᵀJδ` from the blocks: `δ_gᵀAδ_g + 2Σ δ_p·b_pᵀδ_g +
+    /// Σ c_p·δ_p²` is `‖Jδ‖²`.
     fn predicted_reduction(&self, delta: &[f64]) -> f64 {
         let g = self.g;
-        let mut rjd = 0.0;
-        let mut jd2 = 0.0;
-        for (p, blk) in self.blocks.iter().enumerate() {
-            for k in 0..blk.r.len() {
-                let jd = blk.jg[k]
-                    .iter()
-                    .zip(&delta[..g])
-                    .map(|(j, d)| j * d)
-                    .sum::<f64>()
-                    + blk.jl[k] * delta[g + p];
-                rjd += blk.r[k] * jd;
-                jd2 += jd * jd;
-            }
+        let mut dg = SharedVector::zeros();
+        for i in 0..g {
+            dg[i] = delta[i];
+        }
+        let mut rjd = self.gg.dot(&dg);
+        let mut jd2 = (self.a * dg).dot(&dg);
+        for p in 0..self.cs.len() {
+            let dp = delta[g + p];
+            rjd += self.gl[p] * dp;
+            jd2 += 2.0 * dp * self.bs[p].dot(&dg) + self.cs[p] * dp * dp;
         }
         -rjd - 0.5 * jd2
     }
@@ -514,31 +559,6 @@ pub enum SegmentFitError {
     NoStart,
     #[error("the fit ended at a non-finite cost")]
     NonFinite,
-}
-
-/// Unweighted residuals `ln T_model − ln T_measured` at `x`, `[position][band]`
-/// (zeros where the model is not finite).
-fn residuals(
-    model: &VesselModel,
-    data: &SegmentSpectra,
-    settings: &FitSettings,
-    x: &[f64],
-) -> Vec<Vec<f64>> {
-    let nb = model.n_bands();
-    let unweighted = Joint::new(
-        model,
-        data,
-        settings,
-        vec![vec![1.0; nb]; data.diameters_um.len()],
-    );
-    (0..data.diameters_um.len())
-        .map(|p| {
-            unweighted
-                .block(x, p, false)
-                .map(|b| b.r)
-                .unwrap_or_else(|| vec![0.0; nb])
-        })
-        .collect()
 }
 
 /// What the information criterion needs of a fit's residuals: their
@@ -691,7 +711,7 @@ pub fn fit_segment(
         gtol: 1e-8,
         tau: 1e-3,
     };
-    let mut prob = Joint::new(model, data, settings, vec![vec![1.0; nb]; np]);
+    let mut prob = Joint::new(model, data, settings);
     let g = prob.g();
     // Start from the best of a coarse grid over SO2 (cheap cost
     // evaluations), so that arteriolar and venular segments alike begin on
@@ -716,16 +736,12 @@ pub fn fit_segment(
     let (mut iterations, mut evaluations) = (rep.iterations, rep.evaluations);
     if let RobustLoss::Huber { scale } = settings.loss {
         for _ in 0..10 {
-            let res = residuals(model, data, settings, &rep.x);
+            let res = prob.residuals(&rep.x);
             let w = huber_weights(&res, scale, settings.noise * 0.1);
-            let sw: Vec<Vec<f64>> = w
-                .iter()
-                .map(|r| r.iter().map(|v| v.sqrt()).collect())
-                .collect();
+            let sw: Vec<f64> = w.iter().flatten().map(|v| v.sqrt()).collect();
             let change = sw
                 .iter()
-                .flatten()
-                .zip(prob.sqrt_w.iter().flatten())
+                .zip(&prob.sqrt_w)
                 .map(|(a, b)| (a - b).abs())
                 .fold(0.0, f64::max);
             prob.sqrt_w = sw;
@@ -761,11 +777,11 @@ pub fn fit_segment(
     };
     let downweighted = prob
         .sqrt_w
-        .iter()
+        .chunks(nb)
         .filter(|row| row.iter().any(|w| w * w < 0.5))
         .count();
     let termination: Termination = rep.termination;
-    let res = residuals(model, data, settings, &rep.x);
+    let res = prob.residuals(&rep.x);
     let summary = ResidualSummary::of(&res, g, &settings.loss, settings.noise);
     let (band_residuals, misfit_t, adequacy) = adequacy(&res);
     let extension = |col: usize| {
