@@ -77,6 +77,7 @@ impl Registration {
 }
 
 /// Bilinear sample of a row-major image; `None` outside.
+#[inline]
 pub(crate) fn bilinear(img: &[f32], w: usize, h: usize, x: f64, y: f64) -> Option<f64> {
     if !(x >= 0.0 && y >= 0.0 && x <= (w - 1) as f64 && y <= (h - 1) as f64) {
         return None;
@@ -114,64 +115,96 @@ fn fft2(
     }
 }
 
-/// Integer translation of `moving` relative to `reference` by phase
-/// correlation, with both images windowed (Hann) and de-meaned.
-pub(crate) fn phase_correlation(
-    reference: &[f64],
-    moving: &[f64],
+/// Integer translation by phase correlation (Kuglin & Hines 1975), both
+/// images windowed (Hann) and de-meaned, against one reference image
+/// prepared once: its
+/// windowed spectrum, the window and the FFT plans, so that a capture
+/// tried at several angles pays for the reference's transform once.
+pub(crate) struct PhaseCorrelator {
     w: usize,
     h: usize,
-) -> (f64, f64, f64) {
-    let mut planner = FftPlanner::<f64>::new();
-    let (fr, fc) = (planner.plan_fft_forward(w), planner.plan_fft_forward(h));
-    let (ir, ic) = (planner.plan_fft_inverse(w), planner.plan_fft_inverse(h));
-    let window = |x: usize, y: usize| {
-        let wx = 0.5 - 0.5 * (2.0 * std::f64::consts::PI * x as f64 / (w - 1) as f64).cos();
-        let wy = 0.5 - 0.5 * (2.0 * std::f64::consts::PI * y as f64 / (h - 1) as f64).cos();
-        wx * wy
-    };
-    let prep = |img: &[f64]| {
-        let m = img.iter().sum::<f64>() / img.len() as f64;
-        (0..w * h)
-            .map(|i| Complex::new((img[i] - m) * window(i % w, i / w), 0.0))
-            .collect::<Vec<_>>()
-    };
-    let (mut a, mut b) = (prep(reference), prep(moving));
-    fft2(&mut a, w, h, &fr, &fc);
-    fft2(&mut b, w, h, &fr, &fc);
-    let mut r: Vec<Complex<f64>> = a
-        .iter()
-        .zip(&b)
-        .map(|(x, y)| {
-            let c = y * x.conj();
-            let n = c.norm();
-            if n > 0.0 {
-                c / n
-            } else {
-                Complex::new(0.0, 0.0)
-            }
-        })
-        .collect();
-    fft2(&mut r, w, h, &ir, &ic);
-    let (mut best, mut bi) = (f64::MIN, 0);
-    for (i, v) in r.iter().enumerate() {
-        if v.re > best {
-            best = v.re;
-            bi = i;
-        }
+    /// Hann window per column and per row.
+    wx: Vec<f64>,
+    wy: Vec<f64>,
+    reference: Vec<Complex<f64>>,
+    plans: [Arc<dyn Fft<f64>>; 4],
+}
+
+impl PhaseCorrelator {
+    pub(crate) fn new(reference: &[f64], w: usize, h: usize) -> Self {
+        let mut planner = FftPlanner::<f64>::new();
+        let plans = [
+            planner.plan_fft_forward(w),
+            planner.plan_fft_forward(h),
+            planner.plan_fft_inverse(w),
+            planner.plan_fft_inverse(h),
+        ];
+        let hann = |i: usize, n: usize| {
+            0.5 - 0.5 * (2.0 * std::f64::consts::PI * i as f64 / (n - 1) as f64).cos()
+        };
+        let mut pc = PhaseCorrelator {
+            w,
+            h,
+            wx: (0..w).map(|x| hann(x, w)).collect(),
+            wy: (0..h).map(|y| hann(y, h)).collect(),
+            reference: vec![],
+            plans,
+        };
+        pc.reference = pc.spectrum(reference);
+        pc
     }
-    let (px, py) = ((bi % w) as f64, (bi / w) as f64);
-    let dx = if px > w as f64 / 2.0 {
-        px - w as f64
-    } else {
-        px
-    };
-    let dy = if py > h as f64 / 2.0 {
-        py - h as f64
-    } else {
-        py
-    };
-    (dx, dy, best / (w * h) as f64)
+
+    /// The de-meaned, windowed image's spectrum.
+    fn spectrum(&self, img: &[f64]) -> Vec<Complex<f64>> {
+        let (w, h) = (self.w, self.h);
+        let m = img.iter().sum::<f64>() / img.len() as f64;
+        let mut a: Vec<Complex<f64>> = (0..w * h)
+            .map(|i| Complex::new((img[i] - m) * (self.wx[i % w] * self.wy[i / w]), 0.0))
+            .collect();
+        fft2(&mut a, w, h, &self.plans[0], &self.plans[1]);
+        a
+    }
+
+    /// Integer translation of `moving` relative to the reference, and the
+    /// correlation peak.
+    pub(crate) fn shift(&self, moving: &[f64]) -> (f64, f64, f64) {
+        let (w, h) = (self.w, self.h);
+        let b = self.spectrum(moving);
+        let mut r: Vec<Complex<f64>> = self
+            .reference
+            .iter()
+            .zip(&b)
+            .map(|(x, y)| {
+                let c = y * x.conj();
+                let n = c.norm();
+                if n > 0.0 {
+                    c / n
+                } else {
+                    Complex::new(0.0, 0.0)
+                }
+            })
+            .collect();
+        fft2(&mut r, w, h, &self.plans[2], &self.plans[3]);
+        let (mut best, mut bi) = (f64::MIN, 0);
+        for (i, v) in r.iter().enumerate() {
+            if v.re > best {
+                best = v.re;
+                bi = i;
+            }
+        }
+        let (px, py) = ((bi % w) as f64, (bi / w) as f64);
+        let dx = if px > w as f64 / 2.0 {
+            px - w as f64
+        } else {
+            px
+        };
+        let dy = if py > h as f64 / 2.0 {
+            py - h as f64
+        } else {
+            py
+        };
+        (dx, dy, best / (w * h) as f64)
+    }
 }
 
 struct Ncc<'a> {
@@ -287,19 +320,30 @@ pub(crate) fn blur(img: &[f32], w: usize, h: usize, sigma: f64) -> Vec<f32> {
     let ks: f64 = k.iter().sum();
     let pass = |src: &[f32], horizontal: bool| -> Vec<f32> {
         let mut out = vec![0.0f32; w * h];
+        let (n, stride) = if horizontal { (w, 1) } else { (h, w) };
         for y in 0..h {
             for x in 0..w {
+                let i = if horizontal { x } else { y };
+                let base = y * w + x;
                 let mut acc = 0.0;
-                for (j, kv) in k.iter().enumerate() {
-                    let o = j as isize - r;
-                    let (xx, yy) = if horizontal {
-                        ((x as isize + o).clamp(0, w as isize - 1) as usize, y)
-                    } else {
-                        (x, (y as isize + o).clamp(0, h as isize - 1) as usize)
-                    };
-                    acc += kv * src[yy * w + xx] as f64;
+                if i as isize >= r && i as isize + r < n as isize {
+                    // Away from the edges no index needs clamping.
+                    let start = base - r as usize * stride;
+                    for (j, kv) in k.iter().enumerate() {
+                        acc += kv * src[start + j * stride] as f64;
+                    }
+                } else {
+                    for (j, kv) in k.iter().enumerate() {
+                        let o = j as isize - r;
+                        let (xx, yy) = if horizontal {
+                            ((x as isize + o).clamp(0, w as isize - 1) as usize, y)
+                        } else {
+                            (x, (y as isize + o).clamp(0, h as isize - 1) as usize)
+                        };
+                        acc += kv * src[yy * w + xx] as f64;
+                    }
                 }
-                out[y * w + x] = (acc / ks) as f32;
+                out[base] = (acc / ks) as f32;
             }
         }
         out
@@ -339,6 +383,7 @@ pub fn register(
     let (cxs, cys) = (ws as f64 / 2.0, hs as f64 / 2.0);
     let refd: Vec<f64> = rs.iter().map(|v| *v as f64).collect();
     let steps = (max_angle_deg / 0.5).ceil() as i32;
+    let correlator = PhaseCorrelator::new(&refd, ws, hs);
     let mut coarse = (0.0, 0.0, 0.0, f64::MIN);
     for k in -steps..=steps {
         let ang = k as f64 * 0.5;
@@ -349,7 +394,7 @@ pub fn register(
                 bilinear(&ms, ws, hs, cxs + c * u - s * v, cys + s * u + c * v).unwrap_or(0.0)
             })
             .collect();
-        let (dx, dy, peak) = phase_correlation(&refd, &unrot, ws, hs);
+        let (dx, dy, peak) = correlator.shift(&unrot);
         if peak > coarse.3 {
             coarse = (dx * f as f64, dy * f as f64, ang, peak);
         }
@@ -417,5 +462,71 @@ pub fn register(
         angle_deg: best[2],
         score: ncc.score(&best),
         worst_region: ncc.worst_region(&best),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The blur with every index clamped, as it was written before the
+    /// interior was given a path without clamping.
+    fn blur_clamped(img: &[f32], w: usize, h: usize, sigma: f64) -> Vec<f32> {
+        let r = (3.0 * sigma).ceil() as isize;
+        let k: Vec<f64> = (-r..=r)
+            .map(|i| (-(i * i) as f64 / (2.0 * sigma * sigma)).exp())
+            .collect();
+        let ks: f64 = k.iter().sum();
+        let pass = |src: &[f32], horizontal: bool| -> Vec<f32> {
+            let mut out = vec![0.0f32; w * h];
+            for y in 0..h {
+                for x in 0..w {
+                    let mut acc = 0.0;
+                    for (j, kv) in k.iter().enumerate() {
+                        let o = j as isize - r;
+                        let (xx, yy) = if horizontal {
+                            ((x as isize + o).clamp(0, w as isize - 1) as usize, y)
+                        } else {
+                            (x, (y as isize + o).clamp(0, h as isize - 1) as usize)
+                        };
+                        acc += kv * src[yy * w + xx] as f64;
+                    }
+                    out[y * w + x] = (acc / ks) as f32;
+                }
+            }
+            out
+        };
+        pass(&pass(img, true), false)
+    }
+
+    #[test]
+    fn the_blur_gives_the_same_bits_as_clamping_everywhere() {
+        let (w, h) = (37, 23);
+        let img: Vec<f32> = (0..w * h)
+            .map(|i| ((i * 7919) % 1013) as f32 * 0.37 + (i % 5) as f32)
+            .collect();
+        for sigma in [0.6, 1.0, 2.5] {
+            let (a, b) = (blur(&img, w, h, sigma), blur_clamped(&img, w, h, sigma));
+            assert!(
+                a.iter().zip(&b).all(|(x, y)| x.to_bits() == y.to_bits()),
+                "σ {sigma}"
+            );
+        }
+    }
+
+    #[test]
+    fn phase_correlation_finds_a_whole_pixel_shift() {
+        let (w, h) = (64, 48);
+        let at = |x: f64, y: f64| (0.3 * x).sin() + (0.21 * y).cos() + 0.5 * (0.07 * x * y).sin();
+        let reference: Vec<f64> = (0..w * h)
+            .map(|i| at((i % w) as f64, (i / w) as f64))
+            .collect();
+        // The moving image shows the reference's (x − 5, y + 3) at (x, y).
+        let moving: Vec<f64> = (0..w * h)
+            .map(|i| at((i % w) as f64 - 5.0, (i / w) as f64 + 3.0))
+            .collect();
+        let pc = PhaseCorrelator::new(&reference, w, h);
+        let (dx, dy, peak) = pc.shift(&moving);
+        assert_eq!((dx as i32, dy as i32), (5, -3), "peak {peak}");
     }
 }
