@@ -117,9 +117,9 @@ fn fft2(
 
 /// Integer translation by phase correlation (Kuglin & Hines 1975), both
 /// images windowed (Hann) and de-meaned, against one reference image
-/// prepared once: its
-/// windowed spectrum, the window and the FFT plans, so that a capture
-/// tried at several angles pays for the reference's transform once.
+/// prepared once (its windowed spectrum, the window and the FFT plans), so
+/// that a capture tried at several angles pays for the reference's
+/// transform once.
 pub(crate) struct PhaseCorrelator {
     w: usize,
     h: usize,

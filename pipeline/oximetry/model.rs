@@ -413,40 +413,46 @@ impl VesselModel {
         } else {
             4
         };
-        let sums: Vec<[f64; 11]> = match plan {
-            Some(plan) => plan.interpolate(&grids, m, |g, d| sums_at(g, d * 1e-4)),
-            None => d_um
-                .iter()
-                .flat_map(|d| grids.iter().map(move |g| sums_at(g, d * 1e-4)))
-                .collect(),
+        // One position's sums of one band (the first `m` of
+        // [`GridCoefficients::sums`]) into its averages.
+        let store = |o: &mut PathTerms, a: &[f64], d_um: f64, g: &GridCoefficients| {
+            let d_cm = d_um * 1e-4;
+            if !full {
+                o.t1.v = a[0];
+                o.t2.v = a[3];
+                return;
+            }
+            o.t1 = PathTerm {
+                v: a[0],
+                ds: -d_cm * a[1],
+                dh: -d_cm * a[2],
+            };
+            o.t2 = PathTerm {
+                v: a[3],
+                ds: -2.0 * d_cm * a[4],
+                dh: -2.0 * d_cm * a[5],
+            };
+            if albedo {
+                o.a0 = g.a0;
+                o.a1 = PathTerm {
+                    v: a[6],
+                    ds: a[7] - d_cm * a[9],
+                    dh: a[8] - d_cm * a[10],
+                };
+            }
         };
-        for (b, g) in grids.iter().enumerate() {
-            for (p, &d) in d_um.iter().enumerate() {
-                let a = &sums[p * nb + b];
-                let d_cm = d * 1e-4;
-                let o = &mut out[p * nb + b];
-                if !full {
-                    o.t1.v = a[0];
-                    o.t2.v = a[3];
-                    continue;
-                }
-                o.t1 = PathTerm {
-                    v: a[0],
-                    ds: -d_cm * a[1],
-                    dh: -d_cm * a[2],
-                };
-                o.t2 = PathTerm {
-                    v: a[3],
-                    ds: -2.0 * d_cm * a[4],
-                    dh: -2.0 * d_cm * a[5],
-                };
-                if albedo {
-                    o.a0 = g.a0;
-                    o.a1 = PathTerm {
-                        v: a[6],
-                        ds: a[7] - d_cm * a[9],
-                        dh: a[8] - d_cm * a[10],
-                    };
+        match plan {
+            Some(plan) => plan.interpolate(
+                &grids,
+                m,
+                |g, d| sums_at(g, d * 1e-4),
+                |p, b, a| store(&mut out[p * nb + b], a, d_um[p], &grids[b]),
+            ),
+            None => {
+                for (p, d) in d_um.iter().enumerate() {
+                    for (b, g) in grids.iter().enumerate() {
+                        store(&mut out[p * nb + b], &sums_at(g, d * 1e-4), *d, g);
+                    }
                 }
             }
         }
@@ -487,45 +493,43 @@ fn plan_for<'a>(
     d_um: &[f64],
     mu_max: f64,
 ) -> Option<&'a Interpolation> {
-    {
-        let np = d_um.len();
-        if np < ALONG_MIN_POSITIONS {
-            return None;
-        }
-        let (lo, hi) = d_um
-            .iter()
-            .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), d| {
-                (a.min(*d), b.max(*d))
-            });
-        if !(lo.is_finite() && hi.is_finite()) {
-            return None;
-        }
-        // t² has twice the absorption.
-        let z = 2.0 * mu_max * (hi - lo) / 2.0 * 1e-4;
-        // Rounding: the interpolant adds values up to e^(2z) times the
-        // smallest with weights of either sign (Lebesgue constant below 4
-        // for these nodes), so a sum that falls steeply across the
-        // diameters is summed directly.
-        if 4.0 * f64::EPSILON * (2.0 * z).exp() > ALONG_TOLERANCE {
-            return None;
-        }
-        let limit = np / 2;
-        let mut term = 4.0 * (z + z * z / 4.0).exp();
-        let mut nodes = None;
-        for k in 1..=limit {
-            term *= z / 2.0 / k as f64;
-            if k >= 2 && term <= ALONG_TOLERANCE {
-                nodes = Some(k);
-                break;
-            }
-        }
-        let k = nodes?;
-        let fits = |p: &Interpolation| p.nodes_um.len() == k && p.d_um == d_um;
-        if !cache.as_ref().is_some_and(fits) {
-            *cache = Some(Interpolation::new(d_um, lo, hi, k));
-        }
-        cache.as_ref()
+    let np = d_um.len();
+    if np < ALONG_MIN_POSITIONS {
+        return None;
     }
+    let (lo, hi) = d_um
+        .iter()
+        .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), d| {
+            (a.min(*d), b.max(*d))
+        });
+    if !(lo.is_finite() && hi.is_finite()) {
+        return None;
+    }
+    // t² has twice the absorption.
+    let z = 2.0 * mu_max * (hi - lo) / 2.0 * 1e-4;
+    // Rounding: the interpolant adds values up to e^(2z) times the
+    // smallest with weights of either sign (Lebesgue constant below 4
+    // for these nodes), so a sum that falls steeply across the
+    // diameters is summed directly.
+    if 4.0 * f64::EPSILON * (2.0 * z).exp() > ALONG_TOLERANCE {
+        return None;
+    }
+    let limit = np / 2;
+    let mut term = 4.0 * (z + z * z / 4.0).exp();
+    let mut nodes = None;
+    for k in 1..=limit {
+        term *= z / 2.0 / k as f64;
+        if k >= 2 && term <= ALONG_TOLERANCE {
+            nodes = Some(k);
+            break;
+        }
+    }
+    let k = nodes?;
+    let fits = |p: &Interpolation| p.nodes_um.len() == k && p.d_um == d_um;
+    if !cache.as_ref().is_some_and(fits) {
+        *cache = Some(Interpolation::new(d_um, lo, hi, k));
+    }
+    cache.as_ref()
 }
 
 impl Interpolation {
@@ -567,18 +571,19 @@ impl Interpolation {
     }
 
     /// The first `m` sums of every band, `sums_at(band, node)` at the
-    /// nodes, interpolated to every position: `[position · bands + band]`.
+    /// nodes, interpolated to every position and handed to
+    /// `visit(position, band, sums)`.
     fn interpolate(
         &self,
         grids: &[GridCoefficients],
         m: usize,
         sums_at: impl Fn(&GridCoefficients, f64) -> [f64; 11],
-    ) -> Vec<[f64; 11]> {
+        mut visit: impl FnMut(usize, usize, &[f64]),
+    ) {
         let k = self.nodes_um.len();
-        let nb = grids.len();
         // Node by node, all bands' sums in one contiguous row, so that the
         // weighted accumulation below runs over a long unit-stride row.
-        let width = nb * m;
+        let width = grids.len() * m;
         let mut at_nodes = vec![0.0; k * width];
         for (j, d) in self.nodes_um.iter().enumerate() {
             for (b, g) in grids.iter().enumerate() {
@@ -587,16 +592,12 @@ impl Interpolation {
             }
         }
         let mut row = vec![0.0; width];
-        let mut out = Vec::with_capacity(self.d_um.len() * nb);
-        for weights in self.weights.chunks_exact(k) {
+        for (p, weights) in self.weights.chunks_exact(k).enumerate() {
             weighted_rows(weights, &at_nodes, &mut row);
-            for b in 0..nb {
-                let mut o = [0.0; 11];
-                o[..m].copy_from_slice(&row[b * m..(b + 1) * m]);
-                out.push(o);
+            for (b, sums) in row.chunks_exact(m).enumerate() {
+                visit(p, b, sums);
             }
         }
-        out
     }
 }
 

@@ -200,8 +200,9 @@ struct Joint<'a> {
     settings: &'a FitSettings,
     /// Derivative columns of the shared unknowns, in the fit's order.
     cols: Vec<usize>,
-    /// The band averages of the last evaluation, kept so that an
-    /// evaluation allocates nothing.
+    /// The band averages of the last evaluation and the interpolation
+    /// weights, kept so that evaluations reuse them rather than build them
+    /// anew.
     terms: RefCell<Along>,
 }
 
@@ -275,35 +276,19 @@ impl<'a> Joint<'a> {
         &self,
         x: &[f64],
         jac: bool,
-        visit: impl FnMut(usize, Option<(&[f64], &[[f64; N_DERIV]], &[f64])>),
-    ) {
-        self.fill_terms(x, jac);
-        self.visit_positions(x, jac, visit);
-    }
-
-    /// The band averages at `x`'s shared parameters, into `self.terms`.
-    fn fill_terms(&self, x: &[f64], jac: bool) {
-        let sh = shared_of(&self.cols, x);
-        self.model.terms_along(
-            sh.so2,
-            sh.hb_g_per_l,
-            &self.data.diameters_um,
-            jac,
-            &mut self.terms.borrow_mut(),
-        );
-    }
-
-    /// [`Self::evaluate`] with the band averages already in `self.terms`.
-    fn visit_positions(
-        &self,
-        x: &[f64],
-        jac: bool,
         mut visit: impl FnMut(usize, Option<(&[f64], &[[f64; N_DERIV]], &[f64])>),
     ) {
         let nb = self.model.n_bands();
         let g = self.g();
         let sh = shared_of(&self.cols, x);
-        let along = self.terms.borrow();
+        let mut along = self.terms.borrow_mut();
+        self.model.terms_along(
+            sh.so2,
+            sh.hb_g_per_l,
+            &self.data.diameters_um,
+            jac,
+            &mut along,
+        );
         let terms = &along.terms;
         let mut r = vec![0.0; nb];
         let mut rows = vec![[0.0; N_DERIV]; nb];
