@@ -15,9 +15,10 @@ use rayon::prelude::*;
 use satstep::config::segments::{Segment, VesselKind};
 use satstep::images::ingest::read_capture;
 use satstep::images::profile::ProfileSettings;
+use satstep::images::register::RegistrationTarget;
 use satstep::oximetry::bands::SampledBand;
 use satstep::simulate::render::{Motion, Scene, VesselState, render, write_tiff};
-use satstep::stages::transmissions::analyse_capture;
+use satstep::stages::transmissions::{EyeReference, analyse_capture};
 
 const SIZE: usize = 1024;
 
@@ -117,21 +118,29 @@ fn main() {
         "image stage benchmark: {SIZE} × {SIZE} px × 8 bands, 10 segments; captures rendered in {:.1} s",
         t0.elapsed().as_secs_f64()
     );
-    let reference = read_capture(&ref_path, 8, None).unwrap();
+    let reference = EyeReference::new(read_capture(&ref_path, 8, None).unwrap(), 4);
     let settings = ProfileSettings {
         half_length_px: 220.0 / 12.0 + 4.0,
         ..ProfileSettings::default()
     };
-    // Where the time goes, for one capture.
+    // Where the time goes, per capture on one core: decoding (the floor),
+    // registration, and the whole stage.
     let t = Instant::now();
-    let img = read_capture(&files[0], 8, Some((SIZE, SIZE))).unwrap();
-    let t_read = t.elapsed().as_secs_f64();
+    let images: Vec<_> = files
+        .iter()
+        .map(|f| read_capture(f, 8, Some((SIZE, SIZE))).unwrap())
+        .collect();
+    let t_read = t.elapsed().as_secs_f64() / n as f64;
+    let target = RegistrationTarget::new(&reference.capture.bands[4], SIZE, SIZE);
     let t = Instant::now();
-    let reg =
-        satstep::images::register::register(&reference.bands[4], &img.bands[4], SIZE, SIZE, 2.0);
-    let t_reg = t.elapsed().as_secs_f64();
+    let regs: Vec<_> = images
+        .iter()
+        .map(|img| target.register(&img.bands[4], 2.0))
+        .collect();
+    let t_reg = t.elapsed().as_secs_f64() / n as f64;
+    let reg = regs[0];
     println!(
-        "  one capture: read {t_read:.2} s, register {t_reg:.2} s (score {:.3}, dx {:.2}, dy {:.2}, angle {:.2}°)",
+        "  per capture: read {t_read:.3} s, register {t_reg:.3} s (score {:.3}, dx {:.2}, dy {:.2}, angle {:.2}°)",
         reg.score, reg.dx, reg.dy, reg.angle_deg
     );
     let cores = std::thread::available_parallelism()
@@ -177,5 +186,12 @@ fn main() {
             n as f64 / dt,
             positions / n
         );
+        if threads == 1 {
+            let per = dt / n as f64;
+            println!(
+                "  whole stage on one core: {per:.3} s per capture = {:.1}× decoding",
+                per / t_read
+            );
+        }
     }
 }

@@ -5,6 +5,9 @@
 //! - [`dense`]: small problems with a dense Jacobian, solved by QR of the
 //!   augmented system (no squaring of the condition number), as the NIST
 //!   StRD problems need;
+//! - [`small`]: a few parameters over very many residuals (the
+//!   registration's refinement over tens of thousands of pixels), solved
+//!   through the N × N normal equations without storing the Jacobian;
 //! - the vessel-segment fit (`oximetry::segment`) eliminates the
 //!   per-position parameters through the Schur complement, so its cost
 //!   grows linearly with the number of positions.
@@ -15,5 +18,6 @@
 
 pub mod dense;
 pub mod lm;
+pub mod small;
 
 pub use lm::{FitReport, Linearization, Options, Problem, Termination, minimize};

@@ -12,7 +12,7 @@
 //! offset biases it directly.
 
 use super::ingest::{CaptureError, Multiband, read_capture};
-use super::register::{bilinear, register};
+use super::register::{RegistrationTarget, bilinear};
 use crate::config::study::Instrument;
 
 pub struct Corrections {
@@ -100,18 +100,19 @@ impl Corrections {
                 (None, None) => {}
             }
         }
-        let reference: Option<Vec<f32>> = self
+        // The reference band made ready once for all the others.
+        let reference = self
             .estimate
-            .then(|| img.bands[self.reference_band].clone());
+            .then(|| RegistrationTarget::new(&img.bands[self.reference_band], w, h));
         let mut used = Vec::with_capacity(img.bands.len());
         for b in 0..img.bands.len() {
             let offset = match (self.offsets[b], &reference) {
                 (Some(o), _) => o,
-                (None, Some(r)) if b != self.reference_band => {
+                (None, Some(target)) if b != self.reference_band => {
                     // The capture registration without rotation search: whole-pixel
                     // phase correlation, then sub-pixel normalised cross-correlation
                     // (insensitive to the bands' different contrast).
-                    let reg = register(r, &img.bands[b], w, h, 0.0);
+                    let reg = target.register(&img.bands[b], 0.0);
                     (reg.dx, reg.dy)
                 }
                 _ => (0.0, 0.0),

@@ -102,7 +102,8 @@ pub struct ProfileResult {
 /// absorption strength κ seen in transmission,
 /// `1 − A·(1 − e^(−κ√(1 − u²)))/(1 − e^(−κ))`, which tends to the chord
 /// profile `1 − A·√(1 − u²)` for weak absorption and flattens as κ grows.
-fn shape(s: f64, p: &[f64]) -> (f64, [f64; 4]) {
+/// `ek` is `e^(−κ)`, the same for every sample of one evaluation.
+fn shape(s: f64, p: &[f64], ek: f64) -> (f64, [f64; 4]) {
     let (a, c, r, k) = (p[0], p[1], p[2], p[3]);
     let u = (s - c) / r;
     let g = 1.0 - u * u;
@@ -111,7 +112,6 @@ fn shape(s: f64, p: &[f64]) -> (f64, [f64; 4]) {
     }
     let q = g.sqrt();
     let e = (-k * q).exp();
-    let ek = (-k).exp();
     let d = 1.0 - ek;
     let h = (1.0 - e) / d;
     let dh_dk = (q * e * d - (1.0 - e) * ek) / (d * d);
@@ -156,9 +156,10 @@ fn fit_shape_masked(
     let np = if fixed.is_some() { 2 } else { 4 };
     let model = |x: &[f64], r: &mut DVector<f64>, j: Option<&mut DMatrix<f64>>| {
         let q = full(x);
+        let ek = (-q[3]).exp();
         let mut j = j;
         for i in 0..n {
-            let (m, d) = shape(s[i], &q);
+            let (m, d) = shape(s[i], &q, ek);
             let w = if used(s[i]) { 1.0 } else { 0.0 };
             let d = d.map(|v| v * w);
             r[i] = (m - p[i]) * w;

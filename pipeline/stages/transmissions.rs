@@ -16,7 +16,7 @@ use crate::config::study::{BandResponse, Study};
 use crate::images::correct::Corrections;
 use crate::images::ingest::{CaptureError, Multiband, read_capture};
 use crate::images::profile::{Flag, ProfileSettings, analyse_segment};
-use crate::images::register::{REGIONS, Registration, register};
+use crate::images::register::{REGIONS, Registration, RegistrationTarget};
 use crate::runner::Items;
 use crate::runner::Runner;
 use crate::runner::key::{Key, KeyBuilder, combine, hash_file_or_missing};
@@ -147,7 +147,7 @@ impl Transmissions {
 
 impl Stage for Transmissions {
     const NAME: &'static str = "transmissions";
-    const VERSION: u32 = 6;
+    const VERSION: u32 = 7;
     const SUMMARY: &'static str =
         "registration and transmissions along each vessel segment, capture by capture";
     const UPSTREAM: &'static [&'static str] = &["epochs"];
@@ -539,7 +539,7 @@ pub fn build(
         // The eye's reference capture: its earliest listed capture. It is
         // read only if some capture of the eye is not in the cache.
         let Some(&ref_i) = idx.first() else { continue };
-        let reference: std::sync::OnceLock<Result<Multiband, CaptureError>> =
+        let reference: std::sync::OnceLock<Result<EyeReference, CaptureError>> =
             std::sync::OnceLock::new();
         // Each capture's positions go to the cache; only counts stay here.
         // A shard of a run computes its own captures only.
@@ -552,13 +552,13 @@ pub fn build(
             .par_iter()
             .map(|&i| {
                 let (st, rows): CaptureItem = items.get_or_compute(&keys[i], || {
-                    let read_ref = || -> Result<Multiband, CaptureError> {
+                    let read_ref = || -> Result<EyeReference, CaptureError> {
                         let mut r = read_capture(&files[ref_i], nb, None)?;
                         corrections
                             .as_ref()
                             .map_err(|e| CaptureError::Calibration(Box::new(e.clone())))?
                             .apply(&mut r)?;
-                        Ok(r)
+                        Ok(EyeReference::new(r, wb))
                     };
                     match (reference.get_or_init(read_ref), &corrections) {
                         (Ok(r), Ok(corr)) => analyse_capture(
@@ -604,6 +604,21 @@ pub fn build(
     }
 }
 
+/// An eye's reference capture, its width band made ready once for
+/// registering the eye's other captures to it.
+pub struct EyeReference {
+    pub capture: Multiband,
+    target: RegistrationTarget,
+}
+
+impl EyeReference {
+    pub fn new(capture: Multiband, width_band: usize) -> Self {
+        let target =
+            RegistrationTarget::new(&capture.bands[width_band], capture.width, capture.height);
+        EyeReference { capture, target }
+    }
+}
+
 #[allow(clippy::too_many_arguments)]
 /// One capture through the stage: read, register to the eye's reference
 /// (identity for the reference itself), map the segments, profile them.
@@ -611,7 +626,7 @@ pub fn analyse_capture(
     i: usize,
     is_reference: bool,
     file: &Path,
-    reference: &Multiband,
+    reference: &EyeReference,
     segs: &[Segment],
     nb: usize,
     wb: usize,
@@ -619,7 +634,8 @@ pub fn analyse_capture(
     px_um: f64,
     corr: &Corrections,
 ) -> (ImageStatus, Vec<PositionRow>) {
-    let mut img = match read_capture(file, nb, Some((reference.width, reference.height))) {
+    let size = (reference.capture.width, reference.capture.height);
+    let mut img = match read_capture(file, nb, Some(size)) {
         Ok(m) => m,
         Err(e) => {
             return (
@@ -646,13 +662,7 @@ pub fn analyse_capture(
     let reg = if is_reference {
         Registration::IDENTITY
     } else {
-        register(
-            &reference.bands[wb],
-            &img.bands[wb],
-            img.width,
-            img.height,
-            2.0,
-        )
+        reference.target.register(&img.bands[wb], 2.0)
     };
     // NaN-aware: a score that is not a number is no match.
     if !(reg.score >= MIN_REGISTRATION_SCORE) {
