@@ -213,7 +213,7 @@ fn against_scipy(model: &VesselModel, segments: &[SegmentSpectra]) {
     );
     let stdout = String::from_utf8_lossy(&out.stdout);
     let lines: Vec<&str> = stdout.lines().collect();
-    for ((name, ours_s, fits), peers) in ours.iter().zip(lines.chunks(2)) {
+    for ((name, ours_s, fits), peers) in ours.iter().zip(lines.chunks(tolerances("linear").len())) {
         let n = fits.len() as f64;
         let evals: usize = fits.iter().map(|f| f.evaluations).sum();
         println!(

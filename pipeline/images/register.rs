@@ -228,40 +228,19 @@ impl Ncc<'_> {
         let (cx, cy) = (self.w as f64 / 2.0, self.h as f64 / 2.0);
         // The angle's sine and cosine once, not per point.
         let (sin, cos) = p[2].to_radians().sin_cos();
-        let at =
-            |x: usize, y: usize| rotate_shift(sin, cos, p[0], p[1], (x as f64, y as f64), cx, cy);
         let (mut n, mut sa, mut sb, mut saa, mut sbb, mut sab) = (0.0, 0.0, 0.0, 0.0, 0.0, 0.0);
-        let mut add = |a: f64, b: f64| {
+        for &(x, y) in points {
+            let q = rotate_shift(sin, cos, p[0], p[1], (x as f64, y as f64), cx, cy);
+            let Some(b) = bilinear(self.moving, self.w, self.h, q.0, q.1) else {
+                continue;
+            };
+            let a = self.reference[y * self.w + x] as f64;
             n += 1.0;
             sa += a;
             sb += b;
             saa += a * a;
             sbb += b * b;
             sab += a * b;
-        };
-        if self.all_inside(points, &at) {
-            // Every point lands inside with a right and lower neighbour:
-            // no bounds to test (the same arithmetic as `bilinear`).
-            let (w, img) = (self.w, self.moving);
-            for &(x, y) in points {
-                let q = at(x, y);
-                let (x0, y0) = (q.0 as usize, q.1 as usize);
-                let (fx, fy) = (q.0 - x0 as f64, q.1 - y0 as f64);
-                let i = y0 * w + x0;
-                let (p00, p10) = (img[i] as f64, img[i + 1] as f64);
-                let (p01, p11) = (img[i + w] as f64, img[i + w + 1] as f64);
-                let b =
-                    (p00 * (1.0 - fx) + p10 * fx) * (1.0 - fy) + (p01 * (1.0 - fx) + p11 * fx) * fy;
-                add(self.reference[y * w + x] as f64, b);
-            }
-        } else {
-            for &(x, y) in points {
-                let q = at(x, y);
-                let Some(b) = bilinear(self.moving, self.w, self.h, q.0, q.1) else {
-                    continue;
-                };
-                add(self.reference[y * self.w + x] as f64, b);
-            }
         }
         if n < MIN_POINTS as f64 {
             return -1.0;
@@ -274,33 +253,6 @@ impl Ncc<'_> {
         } else {
             cov / (va * vb).sqrt()
         }
-    }
-
-    /// Do all `points`, moved by `at`, fall strictly inside the moving
-    /// image's last row and column? A rigid motion maps the points'
-    /// bounding box to a rectangle, so its four corners decide.
-    fn all_inside(
-        &self,
-        points: &[(usize, usize)],
-        at: &impl Fn(usize, usize) -> (f64, f64),
-    ) -> bool {
-        let (Some(x0), Some(x1)) = (
-            points.iter().map(|q| q.0).min(),
-            points.iter().map(|q| q.0).max(),
-        ) else {
-            return false;
-        };
-        let y0 = points.iter().map(|q| q.1).min().unwrap_or(0);
-        let y1 = points.iter().map(|q| q.1).max().unwrap_or(0);
-        let (xm, ym) = ((self.w - 1) as f64, (self.h - 1) as f64);
-        [(x0, y0), (x1, y0), (x0, y1), (x1, y1)]
-            .iter()
-            .all(|&(x, y)| {
-                let q = at(x, y);
-                // A margin of a thousandth of a pixel covers rounding between
-                // a corner's and an inner point's coordinates.
-                q.0 >= 0.001 && q.1 >= 0.001 && q.0 < xm - 0.001 && q.1 < ym - 0.001
-            })
     }
 
     /// The lowest correlation over a `REGIONS` × `REGIONS` division of the
@@ -374,7 +326,7 @@ fn refine(
         let rad = std::f64::consts::PI / 180.0;
         for &(px, py) in points {
             let (u, v) = (px as f64 - cx, py as f64 - cy);
-            let q = (cx + cos * u - sin * v + x[0], cy + sin * u + cos * v + x[1]);
+            let q = rotate_shift(sin, cos, x[0], x[1], (px as f64, py as f64), cx, cy);
             let Some([b, bx, by]) = bilinear_gradient(moving, w, h, q.0, q.1) else {
                 continue;
             };
@@ -594,7 +546,6 @@ impl RegistrationTarget {
         };
         let (cxs, cys) = (ws as f64 / 2.0, hs as f64 / 2.0);
         let steps = (max_angle_deg / 0.5).ceil() as i32;
-        let correlator = &self.correlator;
         let mut coarse = (0.0, 0.0, 0.0, f64::MIN);
         for k in -steps..=steps {
             let ang = k as f64 * 0.5;
@@ -605,7 +556,7 @@ impl RegistrationTarget {
                     bilinear(&ms, ws, hs, cxs + c * u - s * v, cys + s * u + c * v).unwrap_or(0.0)
                 })
                 .collect();
-            let (dx, dy, peak) = correlator.shift(&unrot);
+            let (dx, dy, peak) = self.correlator.shift(&unrot);
             if peak > coarse.3 {
                 coarse = (dx * f as f64, dy * f as f64, ang, peak);
             }
