@@ -15,14 +15,15 @@
 //! Flags (kept with the row, never dropped): `off-image` (the profile
 //! leaves the image), `low-contrast` (depth below the limit in the width
 //! band), `poor-fit` (RMS residual of the normalised profile above the
-//! limit), `near-segment` (another segment passes within the profile's
+//! limit, or the shape fit ended on a limit of its search box in depth,
+//! centre or radius: see [`at_limit`]), `near-segment` (another segment passes within the profile's
 //! vessel part plus a margin).
 
-use nalgebra::{DMatrix, DVector};
+use nalgebra::{Matrix3, Vector3};
 
 use super::ingest::Multiband;
-use super::register::bilinear;
-use crate::fit::dense::DenseProblem;
+use super::register::Tap;
+use crate::fit::small::SmallProblem;
 use crate::fit::{Options, minimize};
 
 #[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
@@ -134,6 +135,27 @@ fn fit_shape(
     fit_shape_masked(s, p, start, fixed, half, None)
 }
 
+/// The box the shape fit searches, (A, c, r, κ): depth 0–1, centre within
+/// half the profile's half-length of the segment, radius from 1 px to 0.9 of
+/// the half-length, κ 0.01–30.
+fn shape_bounds(half: f64) -> ([f64; 4], [f64; 4]) {
+    (
+        [0.0, -half / 2.0, 1.0, 0.01],
+        [1.0, half / 2.0, half * 0.9, 30.0],
+    )
+}
+
+/// Did the fit end on a limit of its box in depth (none), centre or
+/// radius? Such a fit has not found the vessel: the optimum lies outside
+/// what a profile across this segment can show (another vessel, a crossing,
+/// or no vessel at all), and where it stops depends on the path the solver
+/// took, not on the data.
+fn at_limit(q: &[f64; 4], half: f64) -> bool {
+    let (lo, hi) = shape_bounds(half);
+    let near = |v: f64, b: f64| (v - b).abs() <= 1e-9 * b.abs().max(1.0);
+    near(q[0], lo[0]) || (1..3).any(|k| near(q[k], lo[k]) || near(q[k], hi[k]))
+}
+
 /// As [`fit_shape`], leaving out the samples inside `skip` (a central
 /// reflex); the rms is over the samples used.
 fn fit_shape_masked(
@@ -144,65 +166,44 @@ fn fit_shape_masked(
     half: f64,
     skip: Option<(f64, f64)>,
 ) -> ([f64; 4], f64) {
-    let n = s.len();
     let used = |x: f64| skip.is_none_or(|(lo, hi)| x <= lo || x >= hi);
     let n_used = s.iter().filter(|x| used(**x)).count().max(1);
-    let full = |x: &[f64]| -> [f64; 4] {
-        match fixed {
-            Some((c, r)) => [x[0], c, r, x[1]],
-            None => [x[0], x[1], x[2], x[3]],
-        }
-    };
-    let np = if fixed.is_some() { 2 } else { 4 };
-    let model = |x: &[f64], r: &mut DVector<f64>, j: Option<&mut DMatrix<f64>>| {
-        let q = full(x);
+    // Residual and shape derivatives of each sample in use.
+    let rows = |q: &[f64; 4], out: &mut dyn FnMut(f64, &[f64; 4])| {
         let ek = (-q[3]).exp();
-        let mut j = j;
-        for i in 0..n {
-            let (m, d) = shape(s[i], &q, ek);
-            let w = if used(s[i]) { 1.0 } else { 0.0 };
-            let d = d.map(|v| v * w);
-            r[i] = (m - p[i]) * w;
-            if let Some(j) = j.as_deref_mut() {
-                if fixed.is_some() {
-                    j[(i, 0)] = d[0];
-                    j[(i, 1)] = d[3];
-                } else {
-                    for k in 0..4 {
-                        j[(i, k)] = d[k];
-                    }
-                }
+        for (x, v) in s.iter().zip(p) {
+            if used(*x) {
+                let (m, d) = shape(*x, q, ek);
+                out(m - v, &d);
             }
         }
         true
     };
-    let (lo, hi) = if fixed.is_some() {
-        (vec![0.0, 0.01], vec![1.0, 30.0])
-    } else {
-        (
-            vec![0.0, -half / 2.0, 1.0, 0.01],
-            vec![1.0, half / 2.0, half * 0.9, 30.0],
-        )
+    let options = Options {
+        max_iterations: 200,
+        ftol: 1e-12,
+        xtol: 1e-12,
+        gtol: 1e-12,
+        tau: 1e-3,
     };
-    let prob = DenseProblem::new(np, n, &model).with_bounds(lo, hi);
-    let x0: Vec<f64> = if fixed.is_some() {
-        vec![start[0], start[3]]
-    } else {
-        start.to_vec()
+    // QR, not the normal equations: see `fit::small`.
+    let (q, cost) = match fixed {
+        Some((c, r)) => {
+            let model = |x: &[f64; 2], out: &mut dyn FnMut(f64, &[f64; 2])| {
+                rows(&[x[0], c, r, x[1]], &mut |res, d| out(res, &[d[0], d[3]]))
+            };
+            let problem = SmallProblem::new(&model, [0.0, 0.01], [1.0, 30.0]).with_qr();
+            let rep = minimize(&problem, &[start[0], start[3]], &options);
+            ([rep.x[0], c, r, rep.x[1]], rep.cost)
+        }
+        None => {
+            let (lo, hi) = shape_bounds(half);
+            let problem = SmallProblem::new(&rows, lo, hi).with_qr();
+            let rep = minimize(&problem, &start, &options);
+            ([rep.x[0], rep.x[1], rep.x[2], rep.x[3]], rep.cost)
+        }
     };
-    let rep = minimize(
-        &prob,
-        &x0,
-        &Options {
-            max_iterations: 200,
-            ftol: 1e-12,
-            xtol: 1e-12,
-            gtol: 1e-12,
-            tau: 1e-3,
-        },
-    );
-    let q = full(&rep.x);
-    (q, (2.0 * rep.cost / n_used as f64).sqrt())
+    (q, (2.0 * cost / n_used as f64).sqrt())
 }
 
 /// The darkest normalised value on each side of the axis within half a
@@ -243,19 +244,26 @@ fn find_reflex(s: &[f64], p: &[f64], c: f64, r: f64) -> Option<(f64, f64)> {
 /// (|s − c| > edge), as `[b0, b1, b2]`: vignetting curves the background
 /// measurably over a profile's length.
 fn background(s: &[f64], v: &[f64], c: f64, edge: f64) -> Option<[f64; 3]> {
-    let pts: Vec<(f64, f64)> = s
-        .iter()
-        .zip(v)
-        .filter(|(x, _)| (*x - c).abs() > edge)
-        .map(|(x, y)| (*x, *y))
-        .collect();
-    let left = pts.iter().filter(|p| p.0 < c).count();
-    if pts.len() < 8 || left < 4 || pts.len() - left < 4 {
+    // Least squares through the normal equations, accumulated in place:
+    // three well-scaled unknowns (s is at most a few tens of pixels).
+    let (mut gram, mut rhs) = (Matrix3::<f64>::zeros(), Vector3::<f64>::zeros());
+    let (mut n, mut left) = (0, 0);
+    for (x, y) in s.iter().zip(v) {
+        if (*x - c).abs() <= edge {
+            continue;
+        }
+        n += 1;
+        if *x < c {
+            left += 1;
+        }
+        let m = Vector3::new(1.0, *x, x * x);
+        gram += m * m.transpose();
+        rhs += m * *y;
+    }
+    if n < 8 || left < 4 || n - left < 4 {
         return None;
     }
-    let a = DMatrix::from_fn(pts.len(), 3, |i, j| pts[i].0.powi(j as i32));
-    let b = DVector::from_iterator(pts.len(), pts.iter().map(|p| p.1));
-    let sol = (a.transpose() * &a).lu().solve(&(a.transpose() * b))?;
+    let sol = gram.lu().solve(&rhs)?;
     Some([sol[0], sol[1], sol[2]])
 }
 
@@ -330,18 +338,21 @@ pub fn analyse_segment(
         let (centre, (tx, ty)) = locate(line, &cum, along);
         let normal = (-ty, tx);
         let mut flags = Vec::new();
+        // The profile's points are located once and read in every band.
+        let taps: Option<Vec<Tap>> = s
+            .iter()
+            .map(|d| {
+                Tap::new(
+                    img.width,
+                    img.height,
+                    centre.0 + d * normal.0,
+                    centre.1 + d * normal.1,
+                )
+            })
+            .collect();
         let sample = |band: usize| -> Option<Vec<f64>> {
-            s.iter()
-                .map(|d| {
-                    bilinear(
-                        &img.bands[band],
-                        img.width,
-                        img.height,
-                        centre.0 + d * normal.0,
-                        centre.1 + d * normal.1,
-                    )
-                })
-                .collect()
+            let taps = taps.as_ref()?;
+            Some(taps.iter().map(|t| t.read(&img.bands[band])).collect())
         };
         let Some(wv) = sample(width_band) else {
             flags.push(Flag::OffImage);
@@ -501,7 +512,7 @@ pub fn analyse_segment(
         // A background extrapolated to zero or below under the vessel makes
         // the ratio meaningless, however well the shape fitted.
         let bad_ratio = trans.iter().any(|t| !t.is_finite() || *t <= 0.0);
-        if !(rms <= st.max_rms + 3.0 * noise) || bad_ratio {
+        if !(rms <= st.max_rms + 3.0 * noise) || bad_ratio || at_limit(&q, half) {
             flags.push(Flag::PoorFit);
         }
         let here = (centre.0 + c * normal.0, centre.1 + c * normal.1);

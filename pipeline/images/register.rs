@@ -81,18 +81,48 @@ impl Registration {
 /// Bilinear sample of a row-major image; `None` outside.
 #[inline]
 pub(crate) fn bilinear(img: &[f32], w: usize, h: usize, x: f64, y: f64) -> Option<f64> {
-    if !(x >= 0.0 && y >= 0.0 && x <= (w - 1) as f64 && y <= (h - 1) as f64) {
-        return None;
+    Some(Tap::new(w, h, x, y)?.read(img))
+}
+
+/// Where and with what weights [`bilinear`] reads one point, so that the
+/// same point can be read in several bands of one capture for the price of
+/// locating it once.
+#[derive(Debug, Clone, Copy)]
+pub(crate) struct Tap {
+    i00: usize,
+    i10: usize,
+    i01: usize,
+    i11: usize,
+    fx: f64,
+    fy: f64,
+}
+
+impl Tap {
+    /// `None` outside the image.
+    pub(crate) fn new(w: usize, h: usize, x: f64, y: f64) -> Option<Tap> {
+        if !(x >= 0.0 && y >= 0.0 && x <= (w - 1) as f64 && y <= (h - 1) as f64) {
+            return None;
+        }
+        // Truncation is the floor here (both are at least 0), without a libm call.
+        let (x0, y0) = (x as usize, y as usize);
+        let (x1, y1) = ((x0 + 1).min(w - 1), (y0 + 1).min(h - 1));
+        Some(Tap {
+            i00: y0 * w + x0,
+            i10: y0 * w + x1,
+            i01: y1 * w + x0,
+            i11: y1 * w + x1,
+            fx: x - x0 as f64,
+            fy: y - y0 as f64,
+        })
     }
-    // Truncation is the floor here (both are at least 0), without a libm call.
-    let (x0, y0) = (x as usize, y as usize);
-    let (x1, y1) = ((x0 + 1).min(w - 1), (y0 + 1).min(h - 1));
-    let (fx, fy) = (x - x0 as f64, y - y0 as f64);
-    let p = |xx: usize, yy: usize| img[yy * w + xx] as f64;
-    Some(
-        (p(x0, y0) * (1.0 - fx) + p(x1, y0) * fx) * (1.0 - fy)
-            + (p(x0, y1) * (1.0 - fx) + p(x1, y1) * fx) * fy,
-    )
+
+    /// The interpolated value in `img` (of the size the tap was made for).
+    pub(crate) fn read(&self, img: &[f32]) -> f64 {
+        let (fx, fy) = (self.fx, self.fy);
+        let p = |i: usize| img[i] as f64;
+        (p(self.i00) * (1.0 - fx) + p(self.i10) * fx) * (1.0 - fy)
+            + (p(self.i01) * (1.0 - fx) + p(self.i11) * fx) * fy
+    }
 }
 
 fn fft2(

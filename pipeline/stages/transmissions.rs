@@ -147,7 +147,7 @@ impl Transmissions {
 
 impl Stage for Transmissions {
     const NAME: &'static str = "transmissions";
-    const VERSION: u32 = 7;
+    const VERSION: u32 = 8;
     const SUMMARY: &'static str =
         "registration and transmissions along each vessel segment, capture by capture";
     const UPSTREAM: &'static [&'static str] = &["epochs"];

@@ -326,6 +326,48 @@ fn profiles_recover_known_transmission_and_diameter() {
     }
 }
 
+/// A profile line beside the vessel rather than on it: the vessel's axis
+/// lies 10 or 12 px to one side, beyond the 8 px the shape fit lets the
+/// centre move (half the 16 px half-length). The fit can only end on that
+/// limit, wherever its path takes it (without the check, at 10 px every
+/// position passed with a diameter of 5.6 px against the true 9.2), and
+/// such positions must carry a flag.
+#[test]
+fn a_fit_that_ends_on_its_limits_is_flagged() {
+    use satstep::images::profile::{Flag, ProfileSettings, analyse_segment};
+    let bands = vec![
+        SampledBand::gaussian(570.0, 10.0),
+        SampledBand::gaussian(600.0, 10.0),
+    ];
+    let (seg, img) = straight_vessel(&bands, 110.0, 0.96, 0.1, true, Default::default());
+    // The vessel runs along (20, 40)–(140, 120); its unit normal is (−0.55, 0.83).
+    let (nx, ny) = (-0.5547, 0.8321);
+    for offset in [10.0, 12.0] {
+        let beside: Vec<(f64, f64)> = seg
+            .points
+            .iter()
+            .map(|(x, y)| (x + offset * nx, y + offset * ny))
+            .collect();
+        let res = analyse_segment(&img, &beside, &[], 0, &ProfileSettings::default());
+        let inside: Vec<_> = res
+            .iter()
+            .filter(|r| !r.flags.contains(&Flag::OffImage))
+            .collect();
+        assert!(inside.len() > 30);
+        let unflagged: Vec<_> = inside.iter().filter(|r| r.flags.is_empty()).collect();
+        assert!(
+            unflagged.is_empty(),
+            "{offset} px aside: {} of {} positions unflagged, e.g. diameter {:.1} px",
+            unflagged.len(),
+            inside.len(),
+            unflagged[0].diameter_px
+        );
+    }
+    // On the vessel itself the same settings leave the positions unflagged.
+    let on = analyse_segment(&img, &seg.points, &[], 0, &ProfileSettings::default());
+    assert!(on.iter().filter(|r| r.flags.is_empty()).count() > on.len() * 9 / 10);
+}
+
 #[test]
 fn dark_flat_and_band_offsets_are_corrected() {
     use satstep::config::study::{Band, BandResponse, Instrument};
