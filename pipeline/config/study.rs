@@ -209,6 +209,8 @@ pub const REPORT_TABLES: &[&str] = &[
     "contrasts",
     "variance_components",
     "agreement",
+    "agreement_by_group",
+    "bias_difference",
     "slope_on_reference",
     "method_comparison",
     "method_agreement",
@@ -269,6 +271,44 @@ pub struct StatisticsSettings {
     /// Leave joint multiband fits the adequacy test calls misfits out of
     /// every statistic (by default they are used and flagged in `fits/so2`).
     pub adequate_only: bool,
+    /// The subject attribute the agreement with the reference is broken
+    /// down by, as pulse-oximeter accuracy practice asks for pigmentation.
+    pub agreement_by: GroupBy,
+}
+
+/// A subject attribute that groups subjects.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum GroupBy {
+    /// The fundus pigmentation grade (higher: darker).
+    Pigmentation,
+    Sex,
+    Site,
+    /// No breakdown.
+    None,
+}
+
+impl GroupBy {
+    pub const NAMES: &[&str] = &["pigmentation", "sex", "site", "none"];
+
+    pub fn name(self) -> &'static str {
+        match self {
+            GroupBy::Pigmentation => "pigmentation",
+            GroupBy::Sex => "sex",
+            GroupBy::Site => "site",
+            GroupBy::None => "none",
+        }
+    }
+
+    /// The subject's group, if it has the attribute.
+    pub fn of(self, s: &Subject) -> Option<String> {
+        match self {
+            GroupBy::Pigmentation => s.pigmentation.map(|g| g.to_string()),
+            GroupBy::Sex => s.sex.clone(),
+            GroupBy::Site => s.site.clone(),
+            GroupBy::None => None,
+        }
+    }
 }
 
 impl Default for StatisticsSettings {
@@ -277,6 +317,7 @@ impl Default for StatisticsSettings {
             confidence: 0.95,
             adjustment: Adjustment::Holm,
             adequate_only: false,
+            agreement_by: GroupBy::Pigmentation,
         }
     }
 }
@@ -416,7 +457,7 @@ const POWER_KEYS: &[&str] = &[
     "simulations",
     "seed",
 ];
-const STATISTICS_KEYS: &[&str] = &["confidence", "adjust", "adequate_only"];
+const STATISTICS_KEYS: &[&str] = &["confidence", "adjust", "adequate_only", "agreement_by"];
 const INSTRUMENT_KEYS: &[&str] = &[
     "name",
     "pixel_size_um",
@@ -1557,6 +1598,15 @@ fn read_statistics(r: &mut Reader, node: &Node) -> Option<StatisticsSettings> {
     }
     if let Some(n) = m.get("adequate_only") {
         s.adequate_only = r.boolean(n, "`adequate_only`")?;
+    }
+    if let Some(n) = m.get("agreement_by") {
+        let v = r.choice(n, "`agreement_by` (a subject attribute)", GroupBy::NAMES)?;
+        s.agreement_by = match v.as_str() {
+            "pigmentation" => GroupBy::Pigmentation,
+            "sex" => GroupBy::Sex,
+            "site" => GroupBy::Site,
+            _ => GroupBy::None,
+        };
     }
     if let Some(n) = m.get("adjust") {
         match r.text(n, "`adjust`")?.as_str() {

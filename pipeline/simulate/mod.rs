@@ -57,6 +57,10 @@ pub struct Scenario {
     pub instrument_name: String,
     pub bands: Vec<(String, f64, f64)>,
     pub veil_max: f64,
+    /// Veil added per fundus pigmentation grade above 1 (default 0): a
+    /// darker fundus returns less light from behind the vessel, so that
+    /// methods which do not fit the veil become biased by pigmentation.
+    pub pigmentation_veil: f64,
     /// How the vessels lie in the field.
     pub layout: Layout,
     /// How the eye's optics depart from the base vessel model.
@@ -80,6 +84,7 @@ const SCENARIO_KEYS: &[&str] = &[
     "image",
     "instrument",
     "veil_max",
+    "pigmentation_veil",
     "layout",
     "optics",
     "power",
@@ -173,6 +178,18 @@ fn read_scenario(r: &mut Reader, node: &crate::config::yaml::Node, dir: &Path) -
         .get("veil_max")
         .and_then(|n| r.number(n, "`veil_max`"))
         .unwrap_or(0.6);
+    let pigmentation_veil = m
+        .get("pigmentation_veil")
+        .and_then(|n| r.number(n, "`pigmentation_veil`"))
+        .unwrap_or(0.0);
+    if !(0.0..=0.2).contains(&pigmentation_veil) {
+        r.error(
+            m.get("pigmentation_veil")
+                .map(|n| n.mark)
+                .unwrap_or(m.mark()),
+            "`pigmentation_veil` is the veil added per pigmentation grade above 1, in 0–0.2",
+        );
+    }
     let layout = match m.get("layout") {
         None => Some(Layout::Crowded),
         Some(n) => r.choice(n, "`layout`", &["crowded", "clear"]).map(|t| {
@@ -266,6 +283,7 @@ fn read_scenario(r: &mut Reader, node: &crate::config::yaml::Node, dir: &Path) -
         instrument_name: inst_name,
         bands,
         veil_max,
+        pigmentation_veil,
         layout: layout?,
         optics: optics?,
         methods_yaml: String::new(),
@@ -385,11 +403,20 @@ fn draw_subject(sc: &Scenario, i: usize) -> SimSubject {
         Layout::Clear => clear_layout(sc, &mut rng),
         Layout::Crowded => crowded_layout(sc, &mut rng),
     };
+    // Drawn in this order whatever the scenario says, so that a setting
+    // changes only what it names.
+    let age = u(&mut rng, 21.0, 58.0) as u32;
+    let sex = if rng.random_bool(0.5) { "F" } else { "M" };
+    let pigmentation: i64 = rng.random_range(1..=4);
+    let mut veil = u(&mut rng, 0.0, sc.veil_max.max(1e-9));
+    if sc.pigmentation_veil > 0.0 {
+        veil = (veil + sc.pigmentation_veil * (pigmentation - 1) as f64).min(0.9);
+    }
     SimSubject {
-        age: u(&mut rng, 21.0, 58.0) as u32,
-        sex: if rng.random_bool(0.5) { "F" } else { "M" },
-        pigmentation: rng.random_range(1..=4),
-        veil: u(&mut rng, 0.0, sc.veil_max.max(1e-9)),
+        age,
+        sex,
+        pigmentation,
+        veil,
         probe_lag_s: p.reference.lag_s + n(&mut rng, 0.0, 3.0),
         physiology,
         start,

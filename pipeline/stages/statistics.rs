@@ -111,6 +111,31 @@ pub struct ComparisonRow {
     pub unit: String,
 }
 
+/// Agreement with the reference within one group of subjects (a
+/// pigmentation grade, by default).
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct GroupAgreementRow {
+    pub method: String,
+    /// The attribute (`pigmentation`, `sex`, `site`).
+    pub attribute: String,
+    pub group: String,
+    pub agreement: Agreement,
+}
+
+/// The difference in bias between the highest and the lowest group (the
+/// darkest and the lightest pigmentation grades), each subject's mean
+/// difference from the reference its unit (Welch's t test).
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct BiasDifferenceRow {
+    pub method: String,
+    pub attribute: String,
+    pub high: String,
+    pub low: String,
+    pub subjects_high: i64,
+    pub subjects_low: i64,
+    pub test: crate::stats::agreement::MeanDifference,
+}
+
 /// A capture-mean arteriolar SO2 and its reference SpO2.
 #[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct AgreementPair {
@@ -130,6 +155,8 @@ pub struct StatisticsTables {
     pub paired: Vec<PairedRow>,
     pub comparison: Vec<ComparisonRow>,
     pub agreement_pairs: Vec<AgreementPair>,
+    pub agreement_groups: Vec<GroupAgreementRow>,
+    pub bias_differences: Vec<BiasDifferenceRow>,
     /// Coverage of the intervals and the p-value adjustment the rows carry.
     pub confidence: f64,
     pub adjustment: String,
@@ -146,6 +173,8 @@ impl StatisticsTables {
         self.paired.extend(other.paired);
         self.comparison.extend(other.comparison);
         self.agreement_pairs.extend(other.agreement_pairs);
+        self.agreement_groups.extend(other.agreement_groups);
+        self.bias_differences.extend(other.bias_differences);
     }
 }
 
@@ -215,6 +244,34 @@ impl Stage for StatisticsStage {
             for ((m, k), (used, narrow)) in by {
                 if used == 0 && narrow > 0 {
                     runner.printer.warn(format!("`exclusions.min_diameter_um: {d}` leaves no {k} value of `{m}` ({narrow} values are narrower): no {k} statistics for it"));
+                }
+            }
+        }
+        // A breakdown by an attribute that few subjects share says nothing
+        // within those groups: say which, rather than let rows vanish.
+        let by = study.statistics.agreement_by;
+        if by != crate::config::study::GroupBy::None {
+            let name = by.name();
+            let mut count: BTreeMap<String, usize> = BTreeMap::new();
+            for s in &study.subjects {
+                if let Some(g) = by.of(s) {
+                    *count.entry(g).or_default() += 1;
+                }
+            }
+            let missing = study.subjects.len() - count.values().sum::<usize>();
+            if count.is_empty() {
+                runner.printer.warn(format!("`statistics.agreement_by: {name}`: no subject has a `{name}`, so the agreement with the reference is not broken down by it (give the subjects one, or set `agreement_by: none`)"));
+            } else {
+                if missing > 0 {
+                    runner.printer.warn(format!("{missing} of {} subjects have no `{name}` and are left out of the agreement by {name} group", study.subjects.len()));
+                }
+                let single: Vec<&str> = count
+                    .iter()
+                    .filter(|(_, n)| **n < 2)
+                    .map(|(g, _)| g.as_str())
+                    .collect();
+                if !single.is_empty() {
+                    runner.printer.warn(format!("{name} group(s) {} have a single subject: no agreement within them, and no difference in bias between the highest and lowest group unless each has at least two subjects", single.join(", ")));
                 }
             }
         }
@@ -718,6 +775,69 @@ fn epoch_model_rows(cx: &Context, g: &Group, obs: &[Observation], st: &mut Stati
 
 /// Arteriolar SO2 against the reference SpO2: bias and limits over
 /// captures, and the slope over subject × epoch means.
+/// The agreement within each group of the study's `agreement_by`
+/// attribute, and the difference in bias between the highest and lowest
+/// group (grades in numeric order, other attributes in text order) over
+/// subjects: each subject's mean of its capture differences, Welch's t.
+fn agreement_by_group(
+    cx: &Context,
+    g: &Group,
+    pairs: &[(String, f64, f64)],
+    st: &mut StatisticsTables,
+) {
+    let by = cx.study.statistics.agreement_by;
+    let group_of: BTreeMap<&str, String> = cx
+        .study
+        .subjects
+        .iter()
+        .filter_map(|s| Some((s.id.as_str(), by.of(s)?)))
+        .collect();
+    let mut groups: BTreeMap<&str, Vec<(String, f64, f64)>> = BTreeMap::new();
+    for p in pairs {
+        if let Some(k) = group_of.get(p.0.as_str()) {
+            groups.entry(k.as_str()).or_default().push(p.clone());
+        }
+    }
+    let mut order: Vec<&str> = groups.keys().copied().collect();
+    order.sort_by(|a, b| match (a.parse::<f64>(), b.parse::<f64>()) {
+        (Ok(x), Ok(y)) => x.total_cmp(&y),
+        _ => a.cmp(b),
+    });
+    for k in &order {
+        if let Some(a) = agreement(&groups[k]) {
+            st.agreement_groups.push(GroupAgreementRow {
+                method: g.label(),
+                attribute: by.name().into(),
+                group: k.to_string(),
+                agreement: a,
+            });
+        }
+    }
+    let subject_means = |k: &str| -> Vec<f64> {
+        let mut by_subject: BTreeMap<&str, Vec<f64>> = BTreeMap::new();
+        for (s, so2, spo2) in &groups[k] {
+            by_subject.entry(s.as_str()).or_default().push(so2 - spo2);
+        }
+        by_subject.values().map(|d| mean(d)).collect()
+    };
+    if let (Some(low), Some(high)) = (order.first(), order.last()) {
+        let (h, l) = (subject_means(high), subject_means(low));
+        if let Some(test) = crate::stats::agreement::welch(&h, &l, cx.study.statistics.confidence)
+            .filter(|_| high != low)
+        {
+            st.bias_differences.push(BiasDifferenceRow {
+                method: g.label(),
+                attribute: by.name().into(),
+                high: high.to_string(),
+                low: low.to_string(),
+                subjects_high: h.len() as i64,
+                subjects_low: l.len() as i64,
+                test,
+            });
+        }
+    }
+}
+
 fn agreement_with_reference(cx: &Context, g: &Group, st: &mut StatisticsTables) {
     let c = cx.captures;
     let mut per_capture: BTreeMap<usize, Vec<f64>> = BTreeMap::new();
@@ -755,6 +875,7 @@ fn agreement_with_reference(cx: &Context, g: &Group, st: &mut StatisticsTables) 
         agreement: a,
         slope,
     });
+    agreement_by_group(cx, g, &pairs, st);
     st.agreement_pairs
         .extend(pairs.iter().map(|(s, so2, spo2)| AgreementPair {
             method: g.label(),
@@ -942,6 +1063,36 @@ impl StatisticsTables {
                 a.iter().map(|r| r.slope.as_ref().map(|s| s.points as i64)),
             );
         written.extend(t.write(&dir, "agreement")?);
+        let a = &self.agreement_groups;
+        let mut t = Table::new();
+        t.text("method", a.iter().map(|r| &r.method))
+            .text("attribute", a.iter().map(|r| &r.attribute))
+            .text("group", a.iter().map(|r| &r.group))
+            .int("captures", a.iter().map(|r| r.agreement.n as i64))
+            .int("subjects", a.iter().map(|r| r.agreement.subjects as i64))
+            .real("bias", a.iter().map(|r| r.agreement.bias))
+            .real("precision", a.iter().map(|r| r.agreement.precision))
+            .real("arms", a.iter().map(|r| r.agreement.arms))
+            .real("loa_lower", a.iter().map(|r| r.agreement.lower))
+            .real("loa_upper", a.iter().map(|r| r.agreement.upper));
+        written.extend(t.write(&dir, "agreement_by_group")?);
+        let b = &self.bias_differences;
+        let mut t = Table::new();
+        t.text("method", b.iter().map(|r| &r.method))
+            .text("attribute", b.iter().map(|r| &r.attribute))
+            .text("high_group", b.iter().map(|r| &r.high))
+            .text("low_group", b.iter().map(|r| &r.low))
+            .int("subjects_high", b.iter().map(|r| r.subjects_high))
+            .int("subjects_low", b.iter().map(|r| r.subjects_low))
+            .real("bias_difference", b.iter().map(|r| r.test.difference))
+            .real("se", b.iter().map(|r| r.test.se))
+            .real("df", b.iter().map(|r| r.test.df))
+            .real("t", b.iter().map(|r| r.test.t))
+            .real("p", b.iter().map(|r| r.test.p))
+            .real("lower", b.iter().map(|r| r.test.lower))
+            .real("upper", b.iter().map(|r| r.test.upper))
+            .real("confidence", b.iter().map(|_| self.confidence));
+        written.extend(t.write(&dir, "bias_difference")?);
         let q = &self.paired;
         let mut t = Table::new();
         t.text("method", q.iter().map(|r| &r.method))
@@ -1006,6 +1157,10 @@ fn describe(study: &Study, stats: Option<&StatisticsTables>) -> String {
     }
     if !study.sites.is_empty() {
         text.push_str(&format!(" The analysis pooled the {} sites' own runs (their per-capture tables, not their images; each site's manifest hash is in this run's manifest), with each two-band method's diameter correction and calibration recomputed over the pooled cohort.", study.sites.len()));
+    }
+    if study.statistics.agreement_by != crate::config::study::GroupBy::None {
+        let by = study.statistics.agreement_by.name();
+        text.push_str(&format!(" The agreement with the reference was also given within each {by} group (bias, precision, Arms and limits of agreement), and the difference in bias between the highest and the lowest {by} group was tested over subjects (each subject's mean difference from the reference, Welch's t test with {level:.0} % interval), as current pulse-oximeter accuracy practice asks for skin pigmentation."));
     }
     if study.statistics.adequate_only {
         text.push_str(" Joint multiband fits whose residuals showed a misfit of the vessel model were left out of all statistics.");

@@ -51,6 +51,15 @@ pub struct Estimate {
     pub upper: f64,
 }
 
+/// One method's agreement with the reference within each group of the
+/// study's `agreement_by` attribute, groups in order.
+pub struct GroupAgreementPanel {
+    pub method: String,
+    pub attribute: String,
+    /// (group, bias, lower and upper limit of agreement, subjects).
+    pub groups: Vec<(String, f64, f64, f64, usize)>,
+}
+
 pub struct AgreementSeries {
     pub method: String,
     /// (SpO2, SO2) per capture.
@@ -101,6 +110,7 @@ pub struct ReportData {
     pub changes: Vec<ChangePoint>,
     pub estimates: Vec<Estimate>,
     pub agreement: Vec<AgreementSeries>,
+    pub agreement_groups: Vec<GroupAgreementPanel>,
     pub along: Option<AlongSegment>,
     pub sensitivity: Option<SensitivityCurves>,
     /// Per joint multiband method: the fits' mean residual per band.
@@ -366,6 +376,7 @@ pub(crate) fn prepare(
                 upper: r.agreement.upper,
             })
             .collect(),
+        agreement_groups: group_panels(stats),
         along: along_segment(study, epochs, positions, fits, &primary, &baseline),
         sensitivity: sensitivity(study),
         primary,
@@ -373,6 +384,25 @@ pub(crate) fn prepare(
         confidence: study.statistics.confidence,
         epochs_after,
     }
+}
+
+/// The agreement-by-group rows gathered per method, in the statistics'
+/// order (methods as run, groups in the attribute's order).
+fn group_panels(stats: &StatisticsTables) -> Vec<GroupAgreementPanel> {
+    let mut out: Vec<GroupAgreementPanel> = Vec::new();
+    for r in &stats.agreement_groups {
+        let a = &r.agreement;
+        let row = (r.group.clone(), a.bias, a.lower, a.upper, a.subjects);
+        match out.iter_mut().find(|p| p.method == r.method) {
+            Some(p) => p.groups.push(row),
+            None => out.push(GroupAgreementPanel {
+                method: r.method.clone(),
+                attribute: r.attribute.clone(),
+                groups: vec![row],
+            }),
+        }
+    }
+    out
 }
 
 fn courses(study: &Study, epochs: &EpochTables, fits: &[FitRow], method: &str) -> Vec<Course> {

@@ -141,6 +141,11 @@ pub fn all(dir: &Path, d: &ReportData, settings: &ReportSettings) -> Result<Vec<
     let n = d.agreement.len().max(1) as u32;
     out.push(render(dir, "retinal_vs_reference", "Capture-mean arteriolar SO2 against the reference SpO2, per method: identity (dashed) and the fitted line of SO2 on SpO2 (subject random intercepts)".to_string(), (340 * n + 40, 416), print, &|r| draw_scatter(r, d))?);
     out.push(render(dir, "bland_altman", "Difference between arteriolar SO2 and reference SpO2 against their mean, per method: bias (solid) and repeated-measures 95 % limits of agreement (dashed; Bland & Altman 2007)".to_string(), (340 * n + 40, 416), print, &|r| draw_bland_altman(r, d))?);
+    if !d.agreement_groups.is_empty() {
+        let n = d.agreement_groups.len() as u32;
+        let attribute = &d.agreement_groups[0].attribute;
+        out.push(render(dir, "agreement_by_group", format!("Difference between arteriolar SO2 and reference SpO2 within each {attribute} group, per method: bias (point) and repeated-measures 95 % limits of agreement (bar); the number of subjects under each group"), (340 * n + 40, 416), print, &|r| draw_group_agreement(r, &d.agreement_groups))?);
+    }
     if let Some(a) = &d.along {
         out.push(render(dir, "along_segment", format!("SO2 along segment {} ({}, subject {}, capture {}): per-position estimates of the two-band ODR and of the multiband model fitted position by position (lines break where flagged positions are left out), and the joint segment fit (line, ± 1 SE band)", a.segment, a.kind, a.subject, a.capture), (900, 420), print, &|r| draw_along(r, a))?);
     }
@@ -409,6 +414,20 @@ enum Mark {
     Dash,
 }
 
+/// Draws the legend in a strip along the top of `root` and returns the
+/// area below it, where the panels go.
+fn under_legend<DB: DrawingBackend>(
+    root: &DrawingArea<DB, Shift>,
+    items: &[(&str, RGBColor, Mark)],
+) -> std::result::Result<DrawingArea<DB, Shift>, Box<dyn std::error::Error>>
+where
+    DB::ErrorType: 'static,
+{
+    let (top, body) = root.split_vertically(36);
+    legend_row(&top, items, 40)?;
+    Ok(body)
+}
+
 /// A row of legend entries drawn in a header strip.
 fn legend_row<DB: DrawingBackend>(
     area: &DrawingArea<DB, Shift>,
@@ -447,15 +466,13 @@ fn draw_epoch_change<DB: DrawingBackend>(
 where
     DB::ErrorType: 'static,
 {
-    let (top, body) = root.split_vertically(36);
-    legend_row(
-        &top,
+    let body = under_legend(
+        root,
         &[
             ("arterioles, each subject's mean", ARTERIOLE, Mark::Dot),
             ("venules, each subject's mean", VENULE, Mark::Dot),
             ("mixed-model estimate and its interval", BLACK, Mark::Line),
         ],
-        40,
     )?;
     let panels = body.split_evenly((1, 2));
     let n = d.epochs_after.len().max(1);
@@ -544,15 +561,13 @@ fn draw_scatter<DB: DrawingBackend>(root: &DrawingArea<DB, Shift>, d: &ReportDat
 where
     DB::ErrorType: 'static,
 {
-    let (top, body) = root.split_vertically(36);
-    legend_row(
-        &top,
+    let body = under_legend(
+        root,
         &[
             ("capture means, one colour per method", INK, Mark::Dot),
             ("identity", INK, Mark::Dash),
             ("fitted line", BLACK, Mark::Line),
         ],
-        40,
     )?;
     let panels = body.split_evenly((1, d.agreement.len().max(1)));
     let (lo, hi) = range(
@@ -615,15 +630,13 @@ fn draw_bland_altman<DB: DrawingBackend>(
 where
     DB::ErrorType: 'static,
 {
-    let (top, body) = root.split_vertically(36);
-    legend_row(
-        &top,
+    let body = under_legend(
+        root,
         &[
             ("capture means, one colour per method", INK, Mark::Dot),
             ("bias", BLACK, Mark::Line),
             ("95 % limits of agreement", BLACK, Mark::Dash),
         ],
-        40,
     )?;
     let panels = body.split_evenly((1, d.agreement.len().max(1)));
     let (xlo, xhi) = range(
@@ -677,6 +690,84 @@ where
                 4,
                 BLACK.stroke_width(1),
             ))?;
+        }
+    }
+    Ok(())
+}
+
+fn draw_group_agreement<DB: DrawingBackend>(
+    root: &DrawingArea<DB, Shift>,
+    panels: &[GroupAgreementPanel],
+) -> DrawResult
+where
+    DB::ErrorType: 'static,
+{
+    let body = under_legend(
+        root,
+        &[
+            ("bias", INK, Mark::Dot),
+            ("95 % limits of agreement", INK, Mark::Line),
+            ("no difference", BLACK, Mark::Dash),
+        ],
+    )?;
+    let areas = body.split_evenly((1, panels.len().max(1)));
+    let (ylo, yhi) = range(
+        panels
+            .iter()
+            .flat_map(|p| p.groups.iter().flat_map(|g| [g.2, g.3, 0.0])),
+        0.08,
+    );
+    for (i, (p, area)) in panels.iter().zip(areas).enumerate() {
+        let n = p.groups.len();
+        let mut ch = ChartBuilder::on(&area)
+            .caption(&p.method, title(14))
+            .margin(10)
+            .x_label_area_size(34)
+            .y_label_area_size(44)
+            .build_cartesian_2d(-0.5..n as f64 - 0.5, ylo..yhi)?;
+        let names: Vec<String> = p
+            .groups
+            .iter()
+            .map(|g| format!("{} (n = {})", g.0, g.4))
+            .collect();
+        ch.configure_mesh()
+            .light_line_style(TRANSPARENT)
+            .bold_line_style(GRID)
+            .x_labels(n)
+            .x_label_formatter(&|v| {
+                let k = v.round();
+                if (v - k).abs() < 1e-6 && k >= 0.0 {
+                    names.get(k as usize).cloned().unwrap_or_default()
+                } else {
+                    String::new()
+                }
+            })
+            .y_label_formatter(&|v| format!("{v:.0}"))
+            .x_desc(p.attribute.as_str())
+            .y_desc("SO2 − SpO2 (points)")
+            .label_style(label(11))
+            .axis_desc_style(label(12))
+            .draw()?;
+        ch.draw_series(DashedLineSeries::new(
+            [(-0.5, 0.0), (n as f64 - 0.5, 0.0)],
+            6,
+            4,
+            BLACK.stroke_width(1),
+        ))?;
+        let colour = method_colour(i);
+        for (k, g) in p.groups.iter().enumerate() {
+            let x = k as f64;
+            ch.draw_series(LineSeries::new(
+                [(x, g.2), (x, g.3)],
+                colour.stroke_width(2),
+            ))?;
+            for v in [g.2, g.3] {
+                ch.draw_series(LineSeries::new(
+                    [(x - 0.12, v), (x + 0.12, v)],
+                    colour.stroke_width(2),
+                ))?;
+            }
+            ch.draw_series([Circle::new((x, g.1), 5, colour.filled())])?;
         }
     }
     Ok(())

@@ -202,16 +202,25 @@ fn write(
     create_folder(&tdir)?;
     let usage = tables::usage(inp.epochs, inp.images, inp.fits);
     let s = inp.study;
-    let results = vec![
+    let mut results = vec![
         tables::participants(s, inp.epochs, &usage),
         tables::so2_by_epoch(s, inp.stats),
         tables::contrasts(s, inp.stats),
         tables::variance_components(inp.stats),
         tables::agreement(inp.stats),
+    ];
+    // By group only where the study records the attribute.
+    if !inp.stats.agreement_groups.is_empty() {
+        results.push(tables::agreement_by_group(inp.stats));
+    }
+    if !inp.stats.bias_differences.is_empty() {
+        results.push(tables::bias_difference(inp.stats));
+    }
+    results.extend([
         tables::slope_on_reference(s, inp.stats),
         tables::method_comparison(inp.stats),
         tables::method_agreement(inp.stats),
-    ];
+    ]);
     let quality = vec![
         tables::accounting(s, inp.epochs, &usage, inp.fits),
         tables::data_quality(s, inp.images, inp.fits),

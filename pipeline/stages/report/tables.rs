@@ -761,6 +761,80 @@ pub fn agreement(stats: &StatisticsTables) -> ReportTable {
     t
 }
 
+/// The agreement with the reference within each group of the study's
+/// `agreement_by` attribute (pigmentation grade by default).
+pub fn agreement_by_group(stats: &StatisticsTables) -> ReportTable {
+    let attribute = stats
+        .agreement_groups
+        .first()
+        .map_or("pigmentation", |r| r.attribute.as_str());
+    let mut t = ReportTable::new(
+        "agreement_by_group",
+        format!("Agreement of capture-mean arteriolar SO2 with the reference SpO2 (points) within each {attribute} group: bias, precision, Arms and the repeated-measures 95 % limits of agreement"),
+        &[
+            ("method", false),
+            (attribute, false),
+            ("captures", true),
+            ("subjects", true),
+            ("bias", true),
+            ("precision", true),
+            ("Arms", true),
+            ("limits of agreement", true),
+        ],
+    )
+    .grouped(1);
+    for r in &stats.agreement_groups {
+        let a = &r.agreement;
+        t.rows.push(vec![
+            r.method.clone(),
+            r.group.clone(),
+            a.n.to_string(),
+            a.subjects.to_string(),
+            f(a.bias, 2),
+            f(a.precision, 2),
+            f(a.arms, 2),
+            format!("{} to {}", f(a.lower, 2), f(a.upper, 2)),
+        ]);
+    }
+    t
+}
+
+/// The difference in bias between the highest and lowest group, subjects
+/// as the unit.
+pub fn bias_difference(stats: &StatisticsTables) -> ReportTable {
+    let level = format!("difference ({:.0} % CI)", stats.confidence * 100.0);
+    let mut t = ReportTable::new(
+        "bias_difference",
+        "Difference in bias against the reference between the highest and the lowest group (for pigmentation: the darkest minus the lightest grade), over subjects (each subject's mean difference; Welch's t test)",
+        &[
+            ("method", false),
+            ("groups", false),
+            ("subjects", true),
+            (level.as_str(), true),
+            ("df", true),
+            ("p", true),
+        ],
+    )
+    .grouped(1);
+    for r in &stats.bias_differences {
+        let d = &r.test;
+        t.rows.push(vec![
+            r.method.clone(),
+            format!("{} {} − {}", r.attribute, r.high, r.low),
+            format!("{} + {}", r.subjects_high, r.subjects_low),
+            format!(
+                "{} ({} to {})",
+                f(d.difference, 2),
+                f(d.lower, 2),
+                f(d.upper, 2)
+            ),
+            f(d.df, 1),
+            format_p(d.p),
+        ]);
+    }
+    t
+}
+
 /// The slope of retinal SO2 on the reference over subject × epoch means.
 pub fn slope_on_reference(study: &Study, stats: &StatisticsTables) -> ReportTable {
     let level = format!("slope ({:.0} % CI)", study.statistics.confidence * 100.0);

@@ -4,6 +4,7 @@ mod blinks;
 mod conventions;
 mod demo;
 mod optics;
+mod pigmentation;
 mod report;
 mod runner;
 mod spectra;

@@ -26,6 +26,14 @@ fn run_study(dir: &Path) -> PathBuf {
     let o = satstep(dir, &["run", s.to_str().unwrap()]);
     assert_eq!(o.code, 0, "{}", o.stderr);
     assert!(o.stderr.contains("report        ran"), "{}", o.stderr);
+    // Three subjects of pigmentation grades 1, 2 and 4: no group has two
+    // subjects, so there is no agreement by group, and the run says why.
+    assert!(
+        o.stderr
+            .contains("pigmentation group(s) 1, 2, 4 have a single subject"),
+        "{}",
+        o.stderr
+    );
     s.join("results/report")
 }
 
