@@ -9,6 +9,7 @@ use crate::config::diag::Findings;
 use crate::config::duration::format_seconds;
 use crate::config::segments::load_segments;
 use crate::config::spo2log::read_log;
+use crate::config::study::SensorLayout;
 use crate::config::time::seconds_between;
 use crate::timeline::assign::session_spans;
 
@@ -34,6 +35,10 @@ pub fn load_study(path: &Path) -> (Option<Study>, Findings) {
 
 /// Each session's segment files and reference log, kept in the session.
 fn read_session_files(study: &mut Study, findings: &mut Findings) {
+    let (layout, bands) = (
+        study.instrument.layout.clone(),
+        study.instrument.bands.len(),
+    );
     for sess in study.subjects.iter_mut().flat_map(|s| &mut s.sessions) {
         for (eye, p) in &sess.segments {
             // A missing file was reported with the study file.
@@ -42,7 +47,7 @@ fn read_session_files(study: &mut Study, findings: &mut Findings) {
                     .captures
                     .iter()
                     .find(|c| c.eye == *eye)
-                    .and_then(|c| capture_size(&c.path));
+                    .and_then(|c| capture_size(&c.path, &layout, bands));
                 if let Some(segs) = load_segments(p, *eye, image, findings) {
                     sess.vessels.insert(*eye, segs);
                 }
@@ -74,15 +79,20 @@ fn check_paths_are_text(study: &Study, findings: &mut Findings) {
     }
 }
 
-/// Width and height of a capture in pixels, from its TIFF header alone;
-/// `None` when it cannot be read (the transmissions stage says why).
-fn capture_size(p: &Path) -> Option<(f64, f64)> {
+/// Width and height of a capture's bands in pixels (a tile's, for a tiled
+/// layout), from its TIFF header alone; `None` when it cannot be read (the
+/// transmissions stage says why).
+fn capture_size(p: &Path, layout: &SensorLayout, bands: usize) -> Option<(f64, f64)> {
     let f = std::fs::File::open(p).ok()?;
     let (w, h) = tiff::decoder::Decoder::new(std::io::BufReader::new(f))
         .ok()?
         .dimensions()
         .ok()?;
-    Some((w as f64, h as f64))
+    match layout.rectangles(bands, w as usize, h as usize) {
+        None => Some((w as f64, h as f64)),
+        Some(Ok(r)) => Some((r[0][2] as f64, r[0][3] as f64)),
+        Some(Err(_)) => None,
+    }
 }
 
 /// A capture outside every epoch is kept (status `outside`) but said.

@@ -67,7 +67,19 @@ impl Estimate {
             .iter()
             .flat_map(|s| &s.sessions)
             .flat_map(|s| &s.captures)
-            .find_map(|c| tiff_size(&c.path))
+            .find_map(|c| {
+                let (w, h) = tiff_size(&c.path)?;
+                // A tiled frame holds every band: the size of one is a tile's.
+                match study
+                    .instrument
+                    .layout
+                    .rectangles(study.instrument.bands.len(), w, h)
+                {
+                    None => Some((w, h)),
+                    Some(Ok(r)) => Some((r[0][2], r[0][3])),
+                    Some(Err(_)) => None,
+                }
+            })
             .unwrap_or((0, 0));
         let eyes: Vec<usize> = study
             .subjects

@@ -53,6 +53,62 @@ pub struct Instrument {
     /// Estimate each capture's band-to-band offsets by phase correlation
     /// against the registration band (bands with `offset_px` keep theirs).
     pub estimate_band_offsets: bool,
+    /// How a capture file holds the bands.
+    pub layout: SensorLayout,
+}
+
+/// How a capture file (and the dark and flat frames) holds the bands.
+#[derive(Debug, Clone, PartialEq, Eq, Default, serde::Serialize, serde::Deserialize)]
+pub enum SensorLayout {
+    /// One TIFF page per band, in band order.
+    #[default]
+    Pages,
+    /// One frame; each band at its rectangle `[x, y, width, height]` (px,
+    /// from the top left), in band order, all of one size.
+    Tiles(Vec<[usize; 4]>),
+    /// One frame cut into `columns` × `rows` equal tiles, the bands in
+    /// reading order (left to right, then down).
+    Grid { columns: usize, rows: usize },
+}
+
+impl SensorLayout {
+    /// Each band's rectangle in a frame of `width` × `height` px, or why the
+    /// frame cannot hold them; `None` for pages.
+    pub fn rectangles(
+        &self,
+        bands: usize,
+        width: usize,
+        height: usize,
+    ) -> Option<Result<Vec<[usize; 4]>, String>> {
+        let rects = match self {
+            SensorLayout::Pages => return None,
+            SensorLayout::Tiles(t) => t.clone(),
+            SensorLayout::Grid { columns, rows } => {
+                if width % columns != 0 || height % rows != 0 {
+                    return Some(Err(format!(
+                        "a {columns} × {rows} grid does not divide a {width} × {height} px frame into equal tiles"
+                    )));
+                }
+                let (tw, th) = (width / columns, height / rows);
+                (0..bands)
+                    .map(|b| [(b % columns) * tw, (b / columns) * th, tw, th])
+                    .collect()
+            }
+        };
+        for (b, r) in rects.iter().enumerate() {
+            if r[0] + r[2] > width || r[1] + r[3] > height {
+                return Some(Err(format!(
+                    "band {}'s tile [{}, {}, {}, {}] reaches beyond the {width} × {height} px frame",
+                    b + 1,
+                    r[0],
+                    r[1],
+                    r[2],
+                    r[3]
+                )));
+            }
+        }
+        Some(Ok(rects))
+    }
 }
 
 #[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
@@ -465,7 +521,10 @@ const INSTRUMENT_KEYS: &[&str] = &[
     "dark",
     "flat",
     "band_offsets",
+    "layout",
 ];
+const LAYOUT_KEYS: &[&str] = &["tiles", "grid"];
+const GRID_KEYS: &[&str] = &["columns", "rows"];
 const BAND_KEYS: &[&str] = &["name", "centre_nm", "fwhm_nm", "response", "offset_px"];
 const SUBJECT_KEYS: &[&str] = &["id", "age", "sex", "pigmentation", "site", "sessions"];
 const SESSION_KEYS: &[&str] = &[
@@ -862,6 +921,10 @@ pub(crate) fn read_instrument(r: &mut Reader, node: &Node, root: &Path) -> Optio
             }
         },
     };
+    let layout = match m.get("layout") {
+        None => Some(SensorLayout::Pages),
+        Some(n) => read_layout(r, n, bands.len()),
+    };
     if !ok {
         return None;
     }
@@ -872,7 +935,100 @@ pub(crate) fn read_instrument(r: &mut Reader, node: &Node, root: &Path) -> Optio
         dark,
         flat,
         estimate_band_offsets,
+        layout: layout?,
     })
+}
+
+/// `layout: pages`, `layout: {tiles: [[x, y, width, height], …]}` (one per
+/// band) or `layout: {grid: {columns: C, rows: R}}`.
+pub(crate) fn read_layout(r: &mut Reader, n: &Node, bands: usize) -> Option<SensorLayout> {
+    const HINT: &str = "`layout: pages` (one TIFF page per band), `layout: {tiles: [[x, y, width, height], …]}` (one rectangle per band, in band order) or `layout: {grid: {columns: 4, rows: 2}}` (equal tiles, bands left to right, then down)";
+    if !matches!(n.value, Value::Map(_)) {
+        let v = r.text(n, "`layout`")?;
+        if v == "pages" {
+            return Some(SensorLayout::Pages);
+        }
+        r.error(n.mark, format!("unknown `layout: {v}`")).hint(HINT);
+        return None;
+    }
+    let m = r.map(n, "`layout`", LAYOUT_KEYS)?;
+    match (m.get("tiles"), m.get("grid")) {
+        (Some(t), None) => {
+            let items = r.list(t, "`tiles`")?;
+            if items.len() != bands {
+                r.error(
+                    t.mark,
+                    format!(
+                        "`tiles` lists {} rectangles; the instrument has {bands} bands",
+                        items.len()
+                    ),
+                )
+                .hint("one `[x, y, width, height]` per band, in band order");
+                return None;
+            }
+            let mut rects = Vec::new();
+            for item in items {
+                let v = r.list(item, "a tile")?;
+                let nums: Vec<i64> = v
+                    .iter()
+                    .filter_map(|x| r.integer(x, "a tile's `[x, y, width, height]`"))
+                    .collect();
+                if nums.len() != 4
+                    || v.len() != 4
+                    || nums[0] < 0
+                    || nums[1] < 0
+                    || nums[2] < 1
+                    || nums[3] < 1
+                {
+                    r.error(item.mark, "a tile is `[x, y, width, height]` in pixels: x and y at least 0, width and height at least 1");
+                    return None;
+                }
+                rects.push([
+                    nums[0] as usize,
+                    nums[1] as usize,
+                    nums[2] as usize,
+                    nums[3] as usize,
+                ]);
+            }
+            if let Some(k) = rects
+                .iter()
+                .position(|q| (q[2], q[3]) != (rects[0][2], rects[0][3]))
+            {
+                r.error(items[k].mark, format!("band {}'s tile is {} × {} px, band 1's {} × {}: every band's tile has one size", k + 1, rects[k][2], rects[k][3], rects[0][2], rects[0][3]));
+                return None;
+            }
+            Some(SensorLayout::Tiles(rects))
+        }
+        (None, Some(g)) => {
+            let gm = r.map(g, "`grid`", GRID_KEYS)?;
+            let c = r
+                .required(&gm, "columns", "`grid`")
+                .and_then(|x| r.integer(x, "`columns`"));
+            let rr = r
+                .required(&gm, "rows", "`grid`")
+                .and_then(|x| r.integer(x, "`rows`"));
+            let (c, rr) = (c?, rr?);
+            if c < 1 || rr < 1 || (c * rr) < bands as i64 {
+                r.error(
+                    g.mark,
+                    format!(
+                        "a {c} × {rr} grid has room for {} tiles; the instrument has {bands} bands",
+                        (c * rr).max(0)
+                    ),
+                );
+                return None;
+            }
+            Some(SensorLayout::Grid {
+                columns: c as usize,
+                rows: rr as usize,
+            })
+        }
+        _ => {
+            r.error(n.mark, "`layout` names either `tiles` or `grid`")
+                .hint(HINT);
+            None
+        }
+    }
 }
 
 fn read_band(r: &mut Reader, node: &Node, root: &Path) -> Option<Band> {

@@ -11,9 +11,9 @@
 //! of nearby intensities, so a flat field matters little for it, but a dark
 //! offset biases it directly.
 
-use super::ingest::{CaptureError, Multiband, read_capture};
+use super::ingest::{CaptureError, Multiband, read_laid_out};
 use super::register::{RegistrationTarget, bilinear};
-use crate::config::study::Instrument;
+use crate::config::study::{Instrument, SensorLayout};
 
 pub struct Corrections {
     dark: Option<Multiband>,
@@ -21,6 +21,8 @@ pub struct Corrections {
     offsets: Vec<Option<(f64, f64)>>,
     estimate: bool,
     reference_band: usize,
+    /// How the instrument's files hold the bands.
+    pub layout: SensorLayout,
 }
 
 impl Corrections {
@@ -32,6 +34,7 @@ impl Corrections {
             offsets: vec![None; bands],
             estimate: false,
             reference_band: 0,
+            layout: SensorLayout::Pages,
         }
     }
 
@@ -41,13 +44,13 @@ impl Corrections {
         let dark = inst
             .dark
             .as_deref()
-            .map(|p| read_capture(p, nb, None))
+            .map(|p| read_laid_out(p, &inst.layout, nb, None))
             .transpose()?;
         let size = dark.as_ref().map(|d| (d.width, d.height));
         let flat = inst
             .flat
             .as_deref()
-            .map(|p| read_capture(p, nb, size))
+            .map(|p| read_laid_out(p, &inst.layout, nb, size))
             .transpose()?;
         Ok(Corrections {
             dark,
@@ -55,6 +58,7 @@ impl Corrections {
             offsets: inst.bands.iter().map(|b| b.offset_px).collect(),
             estimate: inst.estimate_band_offsets,
             reference_band,
+            layout: inst.layout.clone(),
         })
     }
 

@@ -1,11 +1,14 @@
 //! Multi-page TIFF captures, one page per spectral band in the instrument's
 //! order: 8- or 16-bit unsigned, or 32-bit float grey pages, all the same
-//! size. A capture that cannot be read, or does not match the instrument,
+//! size; or, with a tiled sensor layout, one such page holding every band
+//! at its own rectangle. A capture that cannot be read, or does not match the instrument,
 //! is an error for that capture alone ([`CaptureError`]); the study goes on.
 
 use std::path::{Path, PathBuf};
 
 use tiff::ColorType;
+
+use crate::config::study::SensorLayout;
 use tiff::decoder::{Decoder, DecodingResult};
 
 /// A capture's bands as floating-point images, row-major.
@@ -86,6 +89,83 @@ pub enum CaptureError {
     /// A dark or flat frame could not be read.
     #[error("calibration frames: {0}")]
     Calibration(Box<CaptureError>),
+    #[error(
+        "`{path}` has {found} pages; with the instrument's tiled `layout` a capture is one frame holding every band"
+    )]
+    FrameCount { path: PathBuf, found: usize },
+    #[error("`{path}`: {reason}")]
+    Tiles { path: PathBuf, reason: String },
+}
+
+/// Reads a capture laid out as the instrument says: pages as
+/// [`read_capture`] does, or one frame whose tiles are cut out, one per
+/// band. `size` is a band's size (a tile's, for tiles).
+pub fn read_laid_out(
+    path: &Path,
+    layout: &SensorLayout,
+    bands: usize,
+    size: Option<(usize, usize)>,
+) -> Result<Multiband, CaptureError> {
+    if *layout == SensorLayout::Pages {
+        return read_capture(path, bands, size);
+    }
+    let frame = match read_capture(path, 1, None) {
+        Err(CaptureError::BandCount { found, .. }) => {
+            return Err(CaptureError::FrameCount {
+                path: path.into(),
+                found,
+            });
+        }
+        other => other?,
+    };
+    let rects = match layout.rectangles(bands, frame.width, frame.height) {
+        Some(Ok(r)) => r,
+        Some(Err(reason)) => {
+            return Err(CaptureError::Tiles {
+                path: path.into(),
+                reason,
+            });
+        }
+        None => unreachable!("pages are read above"),
+    };
+    let (w, h) = (rects[0][2], rects[0][3]);
+    let src = &frame.bands[0];
+    let tiles = rects
+        .iter()
+        .map(|r| {
+            let mut v = Vec::with_capacity(w * h);
+            for y in r[1]..r[1] + h {
+                let start = y * frame.width + r[0];
+                v.extend_from_slice(&src[start..start + w]);
+            }
+            v
+        })
+        .collect();
+    check_size(path, (w, h), size)?;
+    Ok(Multiband {
+        width: w,
+        height: h,
+        bands: tiles,
+        bit_depth: frame.bit_depth,
+    })
+}
+
+/// A capture's bands of `found` size against the eye's `expected` size.
+fn check_size(
+    path: &Path,
+    found: (usize, usize),
+    expected: Option<(usize, usize)>,
+) -> Result<(), CaptureError> {
+    match expected {
+        Some((w, h)) if found != (w, h) => Err(CaptureError::CaptureSize {
+            path: path.into(),
+            found_w: found.0,
+            found_h: found.1,
+            w,
+            h,
+        }),
+        _ => Ok(()),
+    }
 }
 
 /// Reads a capture and checks its band count (and its size, when given).
@@ -197,17 +277,7 @@ pub fn read_capture(
         });
     }
     let (w, h) = (w0 as usize, h0 as usize);
-    if let Some((ew, eh)) = size {
-        if (w, h) != (ew, eh) {
-            return Err(CaptureError::CaptureSize {
-                path: path.into(),
-                found_w: w,
-                found_h: h,
-                w: ew,
-                h: eh,
-            });
-        }
-    }
+    check_size(path, (w, h), size)?;
     Ok(Multiband {
         width: w,
         height: h,

@@ -27,6 +27,7 @@ use crate::config::protocol::{Protocol, load_protocol};
 use crate::config::read::Reader;
 use crate::config::segments::{Segment, VesselKind};
 use crate::config::study::BandResponse;
+use crate::config::study::SensorLayout;
 use crate::oximetry::bands::SampledBand;
 use crate::oximetry::model::BLOOD_BACKSCATTER;
 use crate::physiology::pressure_at_altitude_mmhg;
@@ -55,6 +56,8 @@ pub struct Scenario {
     pub height: usize,
     pub pixel_size_um: f64,
     pub instrument_name: String,
+    /// How the captures hold the bands: pages, or one frame as a grid of tiles.
+    pub sensor: SensorLayout,
     pub bands: Vec<(String, f64, f64)>,
     pub veil_max: f64,
     /// Veil added per fundus pigmentation grade above 1 (default 0): a
@@ -107,7 +110,7 @@ const OPTICS_KEYS: &[&str] = &[
     "reflex",
 ];
 const IMAGE_KEYS: &[&str] = &["width", "height", "pixel_size_um"];
-const INSTRUMENT_KEYS: &[&str] = &["name", "bands"];
+const INSTRUMENT_KEYS: &[&str] = &["name", "bands", "layout"];
 const BAND_KEYS: &[&str] = &["name", "centre_nm", "fwhm_nm"];
 
 /// Reads and validates a scenario file.
@@ -216,6 +219,7 @@ fn read_scenario(r: &mut Reader, node: &crate::config::yaml::Node, dir: &Path) -
     }
     let mut bands = Vec::new();
     let mut inst_name = "simulated camera".to_string();
+    let mut sensor = SensorLayout::Pages;
     let inst = r.required(&m, "instrument", "the scenario")?;
     if let Some(im) = r.map(inst, "`instrument`", INSTRUMENT_KEYS) {
         if let Some(n) = im.get("name") {
@@ -238,6 +242,16 @@ fn read_scenario(r: &mut Reader, node: &crate::config::yaml::Node, dir: &Path) -
                 if let (Some(name), Some(c), Some(f)) = (name, c, f) {
                     bands.push((name, c, f));
                 }
+            }
+        }
+        if let Some(n) = im.get("layout") {
+            match crate::config::study::read_layout(r, n, bands.len()) {
+                Some(SensorLayout::Tiles(_)) => {
+                    r.error(n.mark, "a scenario writes tiled frames as a grid")
+                        .hint("`layout: {grid: {columns: 4, rows: 2}}`: equal tiles, bands left to right, then down");
+                }
+                Some(l) => sensor = l,
+                None => {}
             }
         }
     }
@@ -281,6 +295,7 @@ fn read_scenario(r: &mut Reader, node: &crate::config::yaml::Node, dir: &Path) -
         height: h?,
         pixel_size_um: px?,
         instrument_name: inst_name,
+        sensor,
         bands,
         veil_max,
         pigmentation_veil,
@@ -788,7 +803,22 @@ pub fn simulate(sc: &Scenario, out: &Path) -> Result<PathBuf> {
                 .join(&s.id)
                 .join("captures")
                 .join(format!("{}.tif", c.name));
-            render::write_tiff(&path, sc.width, sc.height, &pages)?;
+            match sc.sensor {
+                SensorLayout::Grid { columns, rows } => {
+                    // One frame, each band's page at its tile.
+                    let fw = columns * sc.width;
+                    let mut frame = vec![0u16; fw * rows * sc.height];
+                    for (b, page) in pages.iter().enumerate() {
+                        let (x0, y0) = ((b % columns) * sc.width, (b / columns) * sc.height);
+                        for (y, row) in page.chunks(sc.width).enumerate() {
+                            let start = (y0 + y) * fw + x0;
+                            frame[start..start + sc.width].copy_from_slice(row);
+                        }
+                    }
+                    render::write_tiff(&path, fw, rows * sc.height, &[frame])?;
+                }
+                _ => render::write_tiff(&path, sc.width, sc.height, &pages)?,
+            }
             Ok(Rendered { truth, motion })
         })
         .collect();
@@ -1071,6 +1101,12 @@ fn study_yaml(sc: &Scenario, subjects: &[SimSubject]) -> String {
     );
     for (n, c, f) in &sc.bands {
         let _ = writeln!(y, "    - {{name: {n}, centre_nm: {c}, fwhm_nm: {f}}}");
+    }
+    if let SensorLayout::Grid { columns, rows } = sc.sensor {
+        let _ = writeln!(
+            y,
+            "  layout: {{grid: {{columns: {columns}, rows: {rows}}}}}   # one frame per capture, bands left to right, then down"
+        );
     }
     let _ = writeln!(y, "subjects:");
     for s in subjects {

@@ -14,7 +14,7 @@ use super::stage::{Run, Stage};
 use crate::config::segments::{Segment, VesselKind};
 use crate::config::study::{BandResponse, Study};
 use crate::images::correct::Corrections;
-use crate::images::ingest::{CaptureError, Multiband, read_capture};
+use crate::images::ingest::{CaptureError, Multiband, read_laid_out};
 use crate::images::profile::{Flag, ProfileSettings, analyse_segment};
 use crate::images::register::{REGIONS, Registration, RegistrationTarget};
 use crate::runner::Items;
@@ -238,7 +238,8 @@ pub(crate) fn settings_key(study: &Study) -> Key {
         .value(
             "estimate-band-offsets",
             &study.instrument.estimate_band_offsets,
-        );
+        )
+        .value("sensor-layout", &study.instrument.layout);
     for (name, f) in [
         ("dark", &study.instrument.dark),
         ("flat", &study.instrument.flat),
@@ -553,7 +554,8 @@ pub fn build(
             .map(|&i| {
                 let (st, rows): CaptureItem = items.get_or_compute(&keys[i], || {
                     let read_ref = || -> Result<EyeReference, CaptureError> {
-                        let mut r = read_capture(&files[ref_i], nb, None)?;
+                        let mut r =
+                            read_laid_out(&files[ref_i], &study.instrument.layout, nb, None)?;
                         corrections
                             .as_ref()
                             .map_err(|e| CaptureError::Calibration(Box::new(e.clone())))?
@@ -635,7 +637,7 @@ pub fn analyse_capture(
     corr: &Corrections,
 ) -> (ImageStatus, Vec<PositionRow>) {
     let size = (reference.capture.width, reference.capture.height);
-    let mut img = match read_capture(file, nb, Some(size)) {
+    let mut img = match read_laid_out(file, &corr.layout, nb, Some(size)) {
         Ok(m) => m,
         Err(e) => {
             return (
@@ -844,8 +846,19 @@ impl TransmissionTables {
 /// This stage's part of the report's methods text.
 fn describe(study: &Study) -> String {
     let s = profile_settings(study);
+    let read_as = match &study.instrument.layout {
+        crate::config::study::SensorLayout::Pages => {
+            "multi-page TIFF files (one page per band)".to_string()
+        }
+        crate::config::study::SensorLayout::Tiles(_) => {
+            "single TIFF frames holding every band at its own rectangle of the sensor, cut into one image per band".to_string()
+        }
+        crate::config::study::SensorLayout::Grid { columns, rows } => format!(
+            "single TIFF frames holding the bands as a {columns} × {rows} grid of equal tiles, cut into one image per band"
+        ),
+    };
     format!(
-        "Captures were read as multi-page TIFF files (one page per band) and registered to the eye's earliest capture by a rigid transform (translation and rotation; phase correlation followed by normalised cross-correlation with sub-pixel interpolation in the band nearest 570 nm); captures with a match score below {MIN_REGISTRATION_SCORE} were flagged as not registered, and captures whose correlation fell below {MIN_REGION_SCORE} in any of {REGIONS} × {REGIONS} regions of the compared area (a partial blink, lashes or glare) as partly unmatched; neither was analysed. Along each vessel segment, intensity profiles were sampled across the vessel every {:.0} px by bilinear interpolation; a quadratic background was fitted to the outer parts of each profile and an absorbing-cylinder profile to the vessel, giving its centre, width (diameter at {:.1} µm per pixel) and fit residual. Transmission in each band was the intensity on the vessel's centre line divided by the background beneath it. Positions were flagged (off the image, contrast below {:.2}, residual too large, within {:.0} px of another segment) and flagged positions were not used.",
+        "Captures were read as {read_as} and registered to the eye's earliest capture by a rigid transform (translation and rotation; phase correlation followed by normalised cross-correlation with sub-pixel interpolation in the band nearest 570 nm); captures with a match score below {MIN_REGISTRATION_SCORE} were flagged as not registered, and captures whose correlation fell below {MIN_REGION_SCORE} in any of {REGIONS} × {REGIONS} regions of the compared area (a partial blink, lashes or glare) as partly unmatched; neither was analysed. Along each vessel segment, intensity profiles were sampled across the vessel every {:.0} px by bilinear interpolation; a quadratic background was fitted to the outer parts of each profile and an absorbing-cylinder profile to the vessel, giving its centre, width (diameter at {:.1} µm per pixel) and fit residual. Transmission in each band was the intensity on the vessel's centre line divided by the background beneath it. Positions were flagged (off the image, contrast below {:.2}, residual too large, within {:.0} px of another segment) and flagged positions were not used.",
         s.spacing_px, study.instrument.pixel_size_um, s.min_contrast, s.neighbour_margin_px
     )
 }

@@ -21,7 +21,7 @@ use super::style::{ARTERIOLE, VENULE, init, label, title};
 use super::tables::html_escape;
 use crate::config::segments::{Segment, VesselKind};
 use crate::config::study::Study;
-use crate::images::ingest::read_capture;
+use crate::images::ingest::read_laid_out;
 use crate::images::profile::{Flag, arc_lengths, locate};
 use crate::images::register::Registration;
 use crate::stages::fits::FitRow;
@@ -226,7 +226,7 @@ fn sheet(
         // The reference capture is drawn twice (large, then as the first
         // thumbnail) but read once.
         if k != 1 {
-            band = read_capture(&files[i], nb, None)
+            band = read_laid_out(&files[i], &q.study.instrument.layout, nb, None)
                 .ok()
                 .map(|mut m| (m.bands.swap_remove(wb), m.width, m.height));
         }

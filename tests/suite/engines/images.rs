@@ -467,6 +467,7 @@ fn dark_flat_and_band_offsets_are_corrected() {
         dark: Some(dir.path().join("dark.tif")),
         flat: Some(dir.path().join("flat.tif")),
         estimate_band_offsets: true,
+        layout: Default::default(),
     };
     let as_img = |pages: &[Vec<u16>]| Multiband {
         width: w,
@@ -712,5 +713,57 @@ fn the_simulator_renders_blur_and_a_central_reflex() {
     assert!(
         reflex > 0.8 && sharp_reflex < 0.05,
         "{reflex} {sharp_reflex}"
+    );
+}
+
+/// A frame holding two 3 × 2 px bands at given rectangles (with a margin
+/// and a gap between them) is cut into exactly those pixels; a frame with
+/// two pages, or tiles beyond the frame, is refused with the reason.
+#[test]
+fn tiles_are_cut_from_one_frame() {
+    use satstep::config::study::SensorLayout;
+    use satstep::images::ingest::read_laid_out;
+    use satstep::simulate::render::write_tiff;
+    let dir = tempfile::tempdir().unwrap();
+    let (fw, fh) = (9usize, 4usize);
+    let frame: Vec<u16> = (0..fw * fh).map(|i| i as u16).collect();
+    let path = dir.path().join("frame.tif");
+    write_tiff(&path, fw, fh, std::slice::from_ref(&frame)).unwrap();
+    let layout = SensorLayout::Tiles(vec![[1, 1, 3, 2], [5, 2, 3, 2]]);
+    let img = read_laid_out(&path, &layout, 2, Some((3, 2))).unwrap();
+    assert_eq!((img.width, img.height), (3, 2));
+    let at = |x: usize, y: usize| (y * fw + x) as f32;
+    assert_eq!(
+        img.bands[0],
+        vec![at(1, 1), at(2, 1), at(3, 1), at(1, 2), at(2, 2), at(3, 2)]
+    );
+    assert_eq!(
+        img.bands[1],
+        vec![at(5, 2), at(6, 2), at(7, 2), at(5, 3), at(6, 3), at(7, 3)]
+    );
+    let outside = SensorLayout::Tiles(vec![[1, 1, 3, 2], [7, 2, 3, 2]]);
+    let e = read_laid_out(&path, &outside, 2, None)
+        .unwrap_err()
+        .to_string();
+    assert!(
+        e.contains("band 2's tile [7, 2, 3, 2] reaches beyond the 9 × 4 px frame"),
+        "{e}"
+    );
+    let uneven = SensorLayout::Grid {
+        columns: 2,
+        rows: 1,
+    };
+    let e = read_laid_out(&path, &uneven, 2, None)
+        .unwrap_err()
+        .to_string();
+    assert!(e.contains("does not divide a 9 × 4 px frame"), "{e}");
+    let two = dir.path().join("two.tif");
+    write_tiff(&two, fw, fh, &[frame.clone(), frame]).unwrap();
+    let e = read_laid_out(&two, &layout, 2, None)
+        .unwrap_err()
+        .to_string();
+    assert!(
+        e.contains("has 2 pages; with the instrument's tiled `layout`"),
+        "{e}"
     );
 }

@@ -3,6 +3,7 @@
 mod blinks;
 mod conventions;
 mod demo;
+mod layout;
 mod optics;
 mod pigmentation;
 mod report;
