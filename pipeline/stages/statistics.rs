@@ -972,6 +972,18 @@ fn between_methods(cx: &Context, st: &mut StatisticsTables) {
     }
 }
 
+/// The columns of an agreement with the reference, as every agreement
+/// table writes them.
+fn agreement_columns<'t>(t: &'t mut Table, a: &[&Agreement]) -> &'t mut Table {
+    t.int("captures", a.iter().map(|r| r.n as i64))
+        .int("subjects", a.iter().map(|r| r.subjects as i64))
+        .real("bias", a.iter().map(|r| r.bias))
+        .real("precision", a.iter().map(|r| r.precision))
+        .real("arms", a.iter().map(|r| r.arms))
+        .real("loa_lower", a.iter().map(|r| r.lower))
+        .real("loa_upper", a.iter().map(|r| r.upper))
+}
+
 impl StatisticsTables {
     pub fn write(&self, out: &Path) -> Result<Vec<std::path::PathBuf>> {
         let mut written = Vec::new();
@@ -1039,14 +1051,8 @@ impl StatisticsTables {
                 .collect::<Vec<_>>()
         };
         let mut t = Table::new();
-        t.text("method", a.iter().map(|r| &r.method))
-            .int("captures", a.iter().map(|r| r.agreement.n as i64))
-            .int("subjects", a.iter().map(|r| r.agreement.subjects as i64))
-            .real("bias", a.iter().map(|r| r.agreement.bias))
-            .real("precision", a.iter().map(|r| r.agreement.precision))
-            .real("arms", a.iter().map(|r| r.agreement.arms))
-            .real("loa_lower", a.iter().map(|r| r.agreement.lower))
-            .real("loa_upper", a.iter().map(|r| r.agreement.upper))
+        t.text("method", a.iter().map(|r| &r.method));
+        agreement_columns(&mut t, &a.iter().map(|r| &r.agreement).collect::<Vec<_>>())
             .opt_real("slope_on_spo2", sl(|s| s.test.estimate))
             .opt_real("slope_se", sl(|s| s.test.std_error))
             .opt_real("slope_df", sl(|s| s.test.df))
@@ -1067,14 +1073,8 @@ impl StatisticsTables {
         let mut t = Table::new();
         t.text("method", a.iter().map(|r| &r.method))
             .text("attribute", a.iter().map(|r| &r.attribute))
-            .text("group", a.iter().map(|r| &r.group))
-            .int("captures", a.iter().map(|r| r.agreement.n as i64))
-            .int("subjects", a.iter().map(|r| r.agreement.subjects as i64))
-            .real("bias", a.iter().map(|r| r.agreement.bias))
-            .real("precision", a.iter().map(|r| r.agreement.precision))
-            .real("arms", a.iter().map(|r| r.agreement.arms))
-            .real("loa_lower", a.iter().map(|r| r.agreement.lower))
-            .real("loa_upper", a.iter().map(|r| r.agreement.upper));
+            .text("group", a.iter().map(|r| &r.group));
+        agreement_columns(&mut t, &a.iter().map(|r| &r.agreement).collect::<Vec<_>>());
         written.extend(t.write(&dir, "agreement_by_group")?);
         let b = &self.bias_differences;
         let mut t = Table::new();

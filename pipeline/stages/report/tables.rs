@@ -14,6 +14,7 @@ use crate::stages::epochs::EpochTables;
 use crate::stages::fits::FitRow;
 use crate::stages::statistics::{ARTERIOVENOUS, StatisticsTables};
 use crate::stages::transmissions::TransmissionTables;
+use crate::stats::agreement::Agreement;
 use crate::stats::infer::format_p;
 use crate::tables::write_bytes_atomic;
 
@@ -731,6 +732,18 @@ pub fn variance_components(stats: &StatisticsTables) -> ReportTable {
     t
 }
 
+/// An agreement's cells: captures, subjects, bias, precision, Arms, limits.
+fn agreement_cells(a: &Agreement) -> [String; 6] {
+    [
+        a.n.to_string(),
+        a.subjects.to_string(),
+        f(a.bias, 2),
+        f(a.precision, 2),
+        f(a.arms, 2),
+        format!("{} to {}", f(a.lower, 2), f(a.upper, 2)),
+    ]
+}
+
 pub fn agreement(stats: &StatisticsTables) -> ReportTable {
     let mut t = ReportTable::new(
         "agreement",
@@ -747,16 +760,9 @@ pub fn agreement(stats: &StatisticsTables) -> ReportTable {
     )
     .grouped(1);
     for r in &stats.agreement {
-        let a = &r.agreement;
-        t.rows.push(vec![
-            r.method.clone(),
-            a.n.to_string(),
-            a.subjects.to_string(),
-            f(a.bias, 2),
-            f(a.precision, 2),
-            f(a.arms, 2),
-            format!("{} to {}", f(a.lower, 2), f(a.upper, 2)),
-        ]);
+        let mut row = vec![r.method.clone()];
+        row.extend(agreement_cells(&r.agreement));
+        t.rows.push(row);
     }
     t
 }
@@ -784,17 +790,9 @@ pub fn agreement_by_group(stats: &StatisticsTables) -> ReportTable {
     )
     .grouped(1);
     for r in &stats.agreement_groups {
-        let a = &r.agreement;
-        t.rows.push(vec![
-            r.method.clone(),
-            r.group.clone(),
-            a.n.to_string(),
-            a.subjects.to_string(),
-            f(a.bias, 2),
-            f(a.precision, 2),
-            f(a.arms, 2),
-            format!("{} to {}", f(a.lower, 2), f(a.upper, 2)),
-        ]);
+        let mut row = vec![r.method.clone(), r.group.clone()];
+        row.extend(agreement_cells(&r.agreement));
+        t.rows.push(row);
     }
     t
 }
