@@ -566,6 +566,31 @@ fn statistics_settings_do_what_they_say() {
     );
     let (_, before) = read("statistics/summaries.csv");
 
+    // The agreement by group follows its attribute: by sex (M, M, F) the
+    // rows are group M's and the single-subject group is named; `none`
+    // drops the breakdown and its warning.
+    edit("adjust: none}", "adjust: none, agreement_by: sex}");
+    let o = run();
+    let (h, rows) = read("statistics/agreement_by_group.csv");
+    let (a, g) = (
+        h.iter().position(|c| c == "attribute").unwrap(),
+        h.iter().position(|c| c == "group").unwrap(),
+    );
+    assert!(
+        !rows.is_empty() && rows.iter().all(|r| &r[a] == "sex" && &r[g] == "M"),
+        "{rows:?}"
+    );
+    assert!(
+        o.stderr.contains("sex group(s) F have a single subject"),
+        "{}",
+        o.stderr
+    );
+    edit("agreement_by: sex}", "agreement_by: none}");
+    let o = run();
+    assert!(read("statistics/agreement_by_group.csv").1.is_empty());
+    assert!(!o.stderr.contains("single subject"), "{}", o.stderr);
+    edit(", agreement_by: none}", "}");
+
     // A minimum diameter: the median of the measured diameters.
     let (fh, fits) = read("fits/so2.csv");
     let dcol = fh.iter().position(|c| c == "diameter_um").unwrap();
