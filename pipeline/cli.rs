@@ -187,6 +187,72 @@ pub enum Command {
         #[arg(long, value_name = "ID")]
         id: Option<String>,
     },
+    /// Write a study skeleton from a folder of captures: the study file
+    /// (instrument, subjects, sessions, methods, commented), a protocol and
+    /// the capture lists, with capture times from the files or their names.
+    Init {
+        /// The study's folder (`study.yaml` is written there).
+        dir: PathBuf,
+        /// The folder holding one folder of captures per subject (default: DIR).
+        #[arg(long, value_name = "FOLDER")]
+        captures: Option<PathBuf>,
+        /// A ready protocol (step-down-hypoxia, alternating-low-oxygen,
+        /// hyperoxia, simulated-altitude) or a protocol file; a commented
+        /// template when not given.
+        #[arg(long, value_name = "NAME|FILE")]
+        protocol: Option<String>,
+        /// An instrument file (`name`, `pixel_size_um`, `bands`, as a
+        /// study's `instrument:`); a placeholder to fill in when not given.
+        #[arg(long, value_name = "FILE")]
+        instrument: Option<PathBuf>,
+        /// Where capture times come from: the TIFF `DateTime` tag, or the
+        /// file name read with `--name-pattern`.
+        #[arg(long, default_value = "metadata", value_parser = ["metadata", "name"])]
+        time_from: String,
+        /// A chrono pattern for the whole file name without its extension,
+        /// e.g. `capture_%Y%m%d_%H%M%S` (with `--time-from name`).
+        #[arg(long, value_name = "PATTERN")]
+        name_pattern: Option<String>,
+        /// The camera clock's offset from UTC (file times carry none).
+        #[arg(
+            long,
+            default_value = "+00:00",
+            value_name = "±HH:MM",
+            allow_hyphen_values = true
+        )]
+        utc_offset: String,
+        /// The eye of captures whose folder or name says neither `OD` nor `OS`.
+        #[arg(long, default_value = "OD", value_parser = ["OD", "OS"])]
+        eye: String,
+        /// A new session starts after a gap of more than this many hours.
+        #[arg(long, default_value_t = 3.0, value_name = "HOURS")]
+        session_gap: f64,
+        /// Replace an existing `study.yaml` (and the files `init` writes beside it).
+        #[arg(long)]
+        force: bool,
+    },
+    /// Print shell completions for satstep (bash, zsh, fish, elvish, powershell).
+    Completions {
+        #[arg(value_parser = clap::value_parser!(clap_complete::Shell))]
+        shell: clap_complete::Shell,
+    },
+    /// Write satstep's manual pages (roff), one per command, into a folder.
+    Manual {
+        /// The folder for `satstep.1`, `satstep-run.1`, ….
+        #[arg(long, value_name = "DIR", default_value = "man")]
+        out: PathBuf,
+    },
+    /// Print a JSON Schema of a satstep input file, for editors.
+    Schema {
+        /// Which file: the study, a protocol, or an eye's segment file.
+        #[arg(value_parser = ["study", "protocol", "segments"])]
+        file: String,
+    },
+    /// Work with a study's vessel segment files.
+    Segments {
+        #[command(subcommand)]
+        action: SegmentsAction,
+    },
     /// Write a synthetic study with known truth from a scenario file.
     Simulate {
         /// The scenario file.
@@ -226,6 +292,55 @@ pub enum ClusterScheduler {
         #[arg(long, value_name = "PATH")]
         binary: Option<PathBuf>,
     },
+}
+
+#[derive(Subcommand, Debug)]
+pub enum SegmentsAction {
+    /// Propose each eye's vessel segments from its reference capture:
+    /// centre lines traced in the band with the most vessel contrast,
+    /// kinds from the ODR, written as segment files marked `proposed:`
+    /// with an overlay image to review.
+    Propose {
+        /// The study file, or a folder holding `study.yaml`.
+        study: PathBuf,
+        /// Only this eye: `OD`, `V01/OD` or `V01/s1/OD` (repeatable; a
+        /// subject id alone takes all its eyes).
+        #[arg(long = "eye", value_name = "[SUBJECT/[SESSION/]]EYE")]
+        eyes: Vec<String>,
+        /// Replace segment files even if they were edited (or made by hand).
+        #[arg(long)]
+        force: bool,
+        /// Smallest vessel diameter proposed, µm.
+        #[arg(long, default_value_t = 40.0, value_name = "UM")]
+        min_diameter: f64,
+        /// Largest vessel diameter proposed, µm.
+        #[arg(long, default_value_t = 250.0, value_name = "UM")]
+        max_diameter: f64,
+        /// Shortest segment proposed, µm.
+        #[arg(long, default_value_t = 300.0, value_name = "UM")]
+        min_length: f64,
+        /// The optic-disc centre in the reference capture, px (for `--ring`).
+        #[arg(long, value_name = "X,Y", value_parser = pair)]
+        disc: Option<(f64, f64)>,
+        /// Keep only vessels between these distances from the disc centre, µm.
+        #[arg(long, value_name = "INNER,OUTER", value_parser = pair)]
+        ring: Option<(f64, f64)>,
+    },
+}
+
+/// Two numbers `A,B`.
+fn pair(s: &str) -> Result<(f64, f64), String> {
+    let (a, b) = s
+        .split_once(',')
+        .ok_or_else(|| format!("`{s}` is not two numbers `A,B`"))?;
+    let num = |t: &str| {
+        t.trim()
+            .parse::<f64>()
+            .ok()
+            .filter(|v| v.is_finite())
+            .ok_or_else(|| format!("`{t}` is not a number"))
+    };
+    Ok((num(a)?, num(b)?))
 }
 
 #[derive(Subcommand, Debug)]
@@ -324,6 +439,88 @@ pub fn main_with_args(args: impl IntoIterator<Item = std::ffi::OsString>) -> Exi
         Command::Pool { sites, out, id } => {
             commands::pool::pool(&commands::pool::PoolArgs { sites, out, id }, &printer)
         }
+        Command::Init {
+            dir,
+            captures,
+            protocol,
+            instrument,
+            time_from,
+            name_pattern,
+            utc_offset,
+            eye,
+            session_gap,
+            force,
+        } => {
+            let time = match (time_from.as_str(), name_pattern) {
+                ("name", Some(p)) => commands::init::TimeSource::Name(p),
+                ("name", None) => {
+                    printer.error("`--time-from name` needs `--name-pattern PATTERN`, e.g. `capture_%Y%m%d_%H%M%S`");
+                    return Exit::Problem;
+                }
+                _ => commands::init::TimeSource::Metadata,
+            };
+            let utc_offset = match commands::init::parse_offset(&utc_offset) {
+                Ok(o) => o,
+                Err(e) => {
+                    printer.error(format!("`--utc-offset`: {e}"));
+                    return Exit::Problem;
+                }
+            };
+            commands::init::init(
+                &commands::init::InitArgs {
+                    dir,
+                    captures,
+                    protocol,
+                    instrument,
+                    time,
+                    utc_offset,
+                    eye: crate::config::eye::Eye::from_name(&eye)
+                        .unwrap_or(crate::config::eye::Eye::OD),
+                    session_gap_s: session_gap * 3600.0,
+                    force,
+                },
+                &printer,
+            )
+        }
+        Command::Completions { shell } => {
+            let mut cmd = <Cli as clap::CommandFactory>::command();
+            let mut out = Vec::new();
+            clap_complete::generate(shell, &mut cmd, "satstep", &mut out);
+            printer.data(String::from_utf8_lossy(&out));
+            Ok(Exit::Ok)
+        }
+        Command::Manual { out } => {
+            commands::manual::write_pages(<Cli as clap::CommandFactory>::command(), &out, &printer)
+        }
+        Command::Schema { file } => {
+            printer.data(commands::schema::schema(&file));
+            Ok(Exit::Ok)
+        }
+        Command::Segments {
+            action:
+                SegmentsAction::Propose {
+                    study,
+                    eyes,
+                    force,
+                    min_diameter,
+                    max_diameter,
+                    min_length,
+                    disc,
+                    ring,
+                },
+        } => commands::segments::propose(
+            &commands::segments::ProposeArgs {
+                study,
+                eyes,
+                force,
+                min_diameter_um: min_diameter,
+                max_diameter_um: max_diameter,
+                min_length_um: min_length,
+                disc,
+                ring_um: ring,
+            },
+            &printer,
+        ),
         Command::Simulate { scenario, out } => {
             commands::simulate::simulate(&scenario, &out, &printer)
         }

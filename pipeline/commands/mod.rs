@@ -4,11 +4,15 @@
 
 pub mod check;
 pub mod cluster;
+pub mod init;
+pub mod manual;
 pub mod mixed;
 pub mod pool;
 pub mod power;
 pub mod protocol;
 pub mod run;
+pub mod schema;
+pub mod segments;
 pub mod sensitivity;
 pub mod simulate;
 

@@ -149,7 +149,7 @@ impl Protocol {
     }
 }
 
-const PROTOCOL_KEYS: &[&str] = &[
+pub(crate) const PROTOCOL_KEYS: &[&str] = &[
     "name",
     "description",
     "epochs",
@@ -157,13 +157,13 @@ const PROTOCOL_KEYS: &[&str] = &[
     "contrasts",
     "reference",
 ];
-const EPOCH_KEYS: &[&str] = &["name", "gas", "duration", "settle", "note"];
-const GAS_KEYS: &[&str] = &["o2_fraction", "altitude_m"];
+pub(crate) const EPOCH_KEYS: &[&str] = &["name", "gas", "duration", "settle", "note"];
+pub(crate) const GAS_KEYS: &[&str] = &["o2_fraction", "altitude_m"];
 /// Longest reference lag or window accepted (10 min): longer is a typo or
 /// a unit mistake, not an oximeter (a common-practice bound, no source).
 const MAX_REFERENCE_SPAN_S: f64 = 600.0;
 
-const REFERENCE_KEYS: &[&str] = &["probe_site", "lag", "window", "stability_limit"];
+pub(crate) const REFERENCE_KEYS: &[&str] = &["probe_site", "lag", "window", "stability_limit"];
 
 /// Reads and validates a protocol file. All findings are returned together.
 pub fn load_protocol(path: &Path) -> Result<Protocol, Findings> {
@@ -180,6 +180,25 @@ pub fn load_protocol(path: &Path) -> Result<Protocol, Findings> {
         Some(p) if !findings.has_errors() => Ok(p),
         _ => Err(findings),
     }
+}
+
+/// Reads a protocol from its text (`file` names it in findings).
+pub(crate) fn parse_protocol_text(
+    text: &str,
+    file: &Path,
+    findings: &mut Findings,
+) -> Option<Protocol> {
+    let root = match super::yaml::parse(file, text) {
+        Ok(n) => n,
+        Err(fs) => {
+            for f in fs {
+                findings.error(&f.file, f.mark, f.message);
+            }
+            return None;
+        }
+    };
+    let mut r = Reader::new(file, findings);
+    read_protocol(&mut r, &root).filter(|_| !r.findings.has_errors())
 }
 
 /// Reads a protocol from a YAML node (a protocol file's root, or a study

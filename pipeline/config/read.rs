@@ -98,11 +98,18 @@ impl<'n> MapView<'n> {
 pub struct Reader<'a> {
     pub file: &'a Path,
     pub findings: &'a mut Findings,
+    /// A study read to propose its segments may name segment files that
+    /// do not exist yet.
+    pub segment_files_may_be_missing: bool,
 }
 
 impl<'a> Reader<'a> {
     pub fn new(file: &'a Path, findings: &'a mut Findings) -> Self {
-        Reader { file, findings }
+        Reader {
+            file,
+            findings,
+            segment_files_may_be_missing: false,
+        }
     }
 
     pub fn error(&mut self, mark: Mark, message: impl Into<String>) -> &mut Finding {

@@ -10,6 +10,11 @@
 //!     points: [[412.0, 300.5], [455.0, 310.0], [497.5, 331.0]]
 //!     notes: superior temporal, first order
 //! ```
+//!
+//! `satstep segments propose` writes the same format, each segment with a
+//! `proposed: {kind_confidence, diameter_um, odr}` entry that the
+//! reviewer deletes once the segment is checked; a file that still holds
+//! such entries gets a warning when the study is read.
 
 use std::path::Path;
 
@@ -58,12 +63,14 @@ pub struct Segment {
     pub notes: String,
 }
 
-const FILE_KEYS: &[&str] = &["eye", "segments"];
+pub(crate) const FILE_KEYS: &[&str] = &["eye", "segments"];
 
 /// How far outside the image (as a share of its width or height) a point
 /// may lie: eye motion moves vessels by a few per cent, no more.
 const MARGIN: f64 = 0.5;
-const SEGMENT_KEYS: &[&str] = &["id", "kind", "points", "notes"];
+pub(crate) const SEGMENT_KEYS: &[&str] = &["id", "kind", "points", "notes", "proposed"];
+/// What `satstep segments propose` says of a segment it proposed.
+pub const PROPOSED_KEYS: &[&str] = &["kind_confidence", "diameter_um", "odr"];
 
 /// Reads a segment file for `eye`; findings go to `findings`. With the
 /// size of the eye's captures (px), a segment that reaches far outside them
@@ -98,6 +105,7 @@ pub(crate) fn load_segments(
         }
     }
     let mut out: Vec<Segment> = Vec::new();
+    let mut unreviewed: Vec<(String, super::diag::Mark)> = Vec::new();
     let list = r.required(&m, "segments", "a segment file")?;
     for item in r.list(list, "`segments`")? {
         let Some(sm) = r.map(item, "a segment", SEGMENT_KEYS) else {
@@ -154,6 +162,16 @@ pub(crate) fn load_segments(
                 .hint("give points along the vessel, at least a few pixels apart");
             }
         }
+        if let Some(pn) = sm.get("proposed") {
+            if let Some(pm) = r.map(pn, "`proposed`", PROPOSED_KEYS) {
+                for k in PROPOSED_KEYS {
+                    if let Some(v) = pm.get(k) {
+                        r.number(v, k);
+                    }
+                }
+            }
+            unreviewed.push((id.clone().unwrap_or_default(), pn.mark));
+        }
         if let (Some(id), Some(kind)) = (id, kind) {
             if out.iter().any(|s| s.id == id) {
                 r.error(
@@ -168,6 +186,21 @@ pub(crate) fn load_segments(
                 notes,
             });
         }
+    }
+    if let Some((_, mark)) = unreviewed.first() {
+        let ids: Vec<&str> = unreviewed.iter().map(|(id, _)| id.as_str()).collect();
+        findings
+            .warning(
+                path,
+                Some(*mark),
+                format!(
+                    "{} of {} segments are proposals not yet reviewed ({}): their centre lines and kinds were found by `satstep segments propose`",
+                    ids.len(),
+                    out.len(),
+                    ids.join(", ")
+                ),
+            )
+            .hint("check each on the proposal's overlay image, correct what is wrong, and delete its `proposed:` line");
     }
     if out.is_empty() && findings.error_count() == before {
         findings

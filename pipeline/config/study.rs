@@ -33,6 +33,19 @@ pub enum BandResponse {
     },
 }
 
+impl BandResponse {
+    /// The band's centre: given, or the response-weighted mean wavelength.
+    pub fn centre_nm(&self) -> f64 {
+        match self {
+            BandResponse::Gaussian { centre_nm, .. } => *centre_nm,
+            BandResponse::Table { points, .. } => {
+                points.iter().map(|p| p.0 * p.1).sum::<f64>()
+                    / points.iter().map(|p| p.1).sum::<f64>()
+            }
+        }
+    }
+}
+
 #[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Band {
     pub name: String,
@@ -560,6 +573,15 @@ const EXCLUDED_CAPTURE_KEYS: &[&str] = &["file", "reason"];
 /// study even when there are errors so that the session files can be
 /// checked too; [`crate::study::load_study`] reads those and decides.
 pub(crate) fn read_study_file(path: &Path) -> (Option<Study>, Findings) {
+    read_study_file_with(path, false)
+}
+
+/// [`read_study_file`], optionally without requiring the segment files
+/// to exist (`satstep segments propose` writes them).
+pub(crate) fn read_study_file_with(
+    path: &Path,
+    segment_files_may_be_missing: bool,
+) -> (Option<Study>, Findings) {
     let mut findings = Findings::new();
     let Some(root_node) = super::read::load_tree(
         path,
@@ -572,6 +594,7 @@ pub(crate) fn read_study_file(path: &Path) -> (Option<Study>, Findings) {
     let root_dir = path.parent().map(Path::to_path_buf).unwrap_or_default();
     let study = {
         let mut r = Reader::new(path, &mut findings);
+        r.segment_files_may_be_missing = segment_files_may_be_missing;
         read_study(&mut r, &root_node, path, &root_dir)
     };
     // File-level checks that need the whole study.
@@ -1240,9 +1263,9 @@ fn read_session(
                 if let Some(f) = sm.get(eye.as_str()) {
                     if let Some(rel) = r.text(f, "a segment file") {
                         let p = root.join(&rel);
-                        if !p.is_file() {
+                        if !p.is_file() && !r.segment_files_may_be_missing {
                             r.error(f.mark, format!("segment file `{rel}` does not exist"))
-                                .hint("the path is relative to the study file's folder");
+                                .hint("the path is relative to the study file's folder; `satstep segments propose` writes a proposal there from the eye's reference capture");
                         }
                         segments.insert(*eye, p);
                     }
@@ -2120,6 +2143,121 @@ fn check_files(study: &Study, findings: &mut Findings) {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// The properties a JSON Schema allows at `pointer`.
+    fn schema_keys(schema: &str, pointer: &str) -> Vec<String> {
+        let v: serde_json::Value = serde_json::from_str(schema).expect("valid JSON");
+        let mut keys: Vec<String> = v
+            .pointer(pointer)
+            .and_then(|p| p.as_object())
+            .unwrap_or_else(|| panic!("{pointer} is an object"))
+            .keys()
+            .cloned()
+            .collect();
+        keys.sort();
+        keys
+    }
+
+    fn sorted(k: &[&str]) -> Vec<String> {
+        let mut v: Vec<String> = k.iter().map(|s| s.to_string()).collect();
+        v.sort();
+        v
+    }
+
+    /// The JSON Schemas that `satstep schema` prints name exactly the keys
+    /// the readers take, at every level: a key added to a reader and not
+    /// to its schema (or the other way) fails here.
+    #[test]
+    fn the_schemas_name_the_keys_the_readers_take() {
+        let study = include_str!("../../schemas/study.schema.json");
+        let protocol = include_str!("../../schemas/protocol.schema.json");
+        let segments = include_str!("../../schemas/segments.schema.json");
+        let cases: [(&str, &str, &[&str]); 20] = [
+            (study, "/properties", STUDY_KEYS),
+            (study, "/properties/report/properties", REPORT_KEYS),
+            (study, "/properties/power/properties", POWER_KEYS),
+            (study, "/properties/statistics/properties", STATISTICS_KEYS),
+            (study, "/properties/exclusions/properties", EXCLUSION_KEYS),
+            (
+                study,
+                "/properties/exclusions/properties/captures/items/properties",
+                EXCLUDED_CAPTURE_KEYS,
+            ),
+            (study, "/$defs/instrument/properties", INSTRUMENT_KEYS),
+            (
+                study,
+                "/$defs/instrument/properties/layout/oneOf/1/properties",
+                LAYOUT_KEYS,
+            ),
+            (
+                study,
+                "/$defs/instrument/properties/layout/oneOf/1/properties/grid/properties",
+                GRID_KEYS,
+            ),
+            (study, "/$defs/band/properties", BAND_KEYS),
+            (study, "/$defs/subject/properties", SUBJECT_KEYS),
+            (study, "/$defs/session/properties", SESSION_KEYS),
+            (study, "/$defs/capture/properties", CAPTURE_KEYS),
+            (
+                study,
+                "/$defs/session/properties/reference/oneOf/1/properties",
+                LOG_KEYS,
+            ),
+            (
+                study,
+                "/$defs/session/properties/reference/oneOf/1/properties/columns/properties",
+                LOG_COLUMN_KEYS,
+            ),
+            (
+                study,
+                "/$defs/method/oneOf/0/properties",
+                METHOD_KEYS_TWO_BAND,
+            ),
+            (study, "/$defs/method/oneOf/1/properties", METHOD_KEYS_MULTI),
+            (study, "/$defs/calibration/properties", CALIBRATION_KEYS),
+            (
+                protocol,
+                "/properties",
+                super::super::protocol::PROTOCOL_KEYS,
+            ),
+            (
+                protocol,
+                "/$defs/epoch/properties",
+                super::super::protocol::EPOCH_KEYS,
+            ),
+        ];
+        for (schema, pointer, keys) in cases {
+            assert_eq!(schema_keys(schema, pointer), sorted(keys), "{pointer}");
+        }
+        assert_eq!(
+            schema_keys(protocol, "/$defs/epoch/properties/gas/oneOf/1/properties"),
+            sorted(super::super::protocol::GAS_KEYS)
+        );
+        assert_eq!(
+            schema_keys(protocol, "/properties/reference/properties"),
+            sorted(super::super::protocol::REFERENCE_KEYS)
+        );
+        assert_eq!(
+            schema_keys(segments, "/properties"),
+            sorted(super::super::segments::FILE_KEYS)
+        );
+        assert_eq!(
+            schema_keys(segments, "/properties/segments/items/properties"),
+            sorted(super::super::segments::SEGMENT_KEYS)
+        );
+        assert_eq!(
+            schema_keys(
+                segments,
+                "/properties/segments/items/properties/proposed/properties"
+            ),
+            sorted(super::super::segments::PROPOSED_KEYS)
+        );
+        // Each method's name is in the one list of method names.
+        assert_eq!(
+            sorted(METHOD_NAMES),
+            sorted(&["two-band", "multiband", "multiband-pointwise"])
+        );
+    }
 
     #[test]
     fn lexical_keeps_every_parent_above_the_start() {

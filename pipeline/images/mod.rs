@@ -7,3 +7,4 @@ pub mod correct;
 pub mod ingest;
 pub mod profile;
 pub mod register;
+pub mod vessels;

@@ -215,6 +215,57 @@ pub(crate) fn diameter_corrected(odr: f64, diameter_um: f64, slope: f64, referen
     odr - slope * (diameter_um - reference_um)
 }
 
+/// Arteriole or venule for each vessel of one eye, from its ODR, with the
+/// probability that the kind is right. Arterioles carry more oxygen, so
+/// absorb relatively less in an oxygen-sensitive band and have the lower
+/// ODR (the principle of two-band oximetry). The eye's values are split
+/// into two groups where the within-group sum of squares is least; the
+/// probability is that of the two-class linear discriminant with the
+/// pooled within-group SD (equal priors). With fewer than two values, or
+/// groups that do not separate, the probabilities say so.
+pub fn split_kinds(odr: &[f64]) -> Vec<(crate::config::segments::VesselKind, f64)> {
+    use crate::config::segments::VesselKind;
+    let n = odr.len();
+    if n < 2 {
+        return odr.iter().map(|_| (VesselKind::Arteriole, 0.5)).collect();
+    }
+    let mut sorted: Vec<f64> = odr.to_vec();
+    sorted.sort_by(f64::total_cmp);
+    let ss = |v: &[f64]| {
+        let m = v.iter().sum::<f64>() / v.len() as f64;
+        (m, v.iter().map(|x| (x - m) * (x - m)).sum::<f64>())
+    };
+    let (mut best, mut at) = (f64::INFINITY, 1);
+    for k in 1..n {
+        let total = ss(&sorted[..k]).1 + ss(&sorted[k..]).1;
+        if total < best {
+            (best, at) = (total, k);
+        }
+    }
+    let (ma, _) = ss(&sorted[..at]);
+    let (mv, _) = ss(&sorted[at..]);
+    // The pooled SD, floored so that two tight groups do not claim
+    // certainty beyond what a capture's noise allows (0.01 in ODR).
+    let sd = if n > 2 {
+        (best / (n - 2) as f64).sqrt()
+    } else {
+        0.0
+    }
+    .max(0.01);
+    let threshold = 0.5 * (ma + mv);
+    odr.iter()
+        .map(|x| {
+            let kind = if *x < threshold {
+                VesselKind::Arteriole
+            } else {
+                VesselKind::Venule
+            };
+            let z = (x - threshold).abs() * (mv - ma) / (sd * sd);
+            (kind, 1.0 / (1.0 + (-z).exp()))
+        })
+        .collect()
+}
+
 #[cfg(test)]
 // Values here are exact by construction (sums of binary fractions, integers).
 #[allow(clippy::float_cmp)]
@@ -262,5 +313,22 @@ mod tests {
         let g1 = vec![(80.0, 0.60), (120.0, 0.68)];
         let g2 = vec![(90.0, 0.90), (130.0, 0.98)];
         assert!((within_group_slope(&[g1, g2]).unwrap() - 0.002).abs() < 1e-12);
+    }
+
+    #[test]
+    fn kinds_split_where_the_odr_groups_separate() {
+        use crate::config::segments::VesselKind::{Arteriole, Venule};
+        let odr = [0.42, 0.71, 0.40, 0.69, 0.45, 0.74];
+        let k = split_kinds(&odr);
+        let kinds: Vec<_> = k.iter().map(|x| x.0).collect();
+        assert_eq!(
+            kinds,
+            [Arteriole, Venule, Arteriole, Venule, Arteriole, Venule]
+        );
+        assert!(k.iter().all(|x| x.1 > 0.99), "{k:?}");
+        // One group only: the split is arbitrary and says so.
+        let k = split_kinds(&[0.50, 0.51, 0.52, 0.515]);
+        assert!(k.iter().any(|x| x.1 < 0.9), "{k:?}");
+        assert_eq!(split_kinds(&[0.5]), [(Arteriole, 0.5)]);
     }
 }

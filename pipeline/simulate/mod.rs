@@ -101,6 +101,9 @@ pub enum Layout {
     Crowded,
     /// Apart and clear of the border: every profile position usable.
     Clear,
+    /// No vessels at all: a fundus without vessels, for testing that
+    /// vessel tracing proposes nothing where there is nothing.
+    Empty,
 }
 const OPTICS_KEYS: &[&str] = &[
     "veil_slope",
@@ -195,13 +198,13 @@ fn read_scenario(r: &mut Reader, node: &crate::config::yaml::Node, dir: &Path) -
     }
     let layout = match m.get("layout") {
         None => Some(Layout::Crowded),
-        Some(n) => r.choice(n, "`layout`", &["crowded", "clear"]).map(|t| {
-            if t == "clear" {
-                Layout::Clear
-            } else {
-                Layout::Crowded
-            }
-        }),
+        Some(n) => r
+            .choice(n, "`layout`", &["crowded", "clear", "none"])
+            .map(|t| match t.as_str() {
+                "clear" => Layout::Clear,
+                "none" => Layout::Empty,
+                _ => Layout::Crowded,
+            }),
     };
     let (mut w, mut h, mut px) = (Some(256usize), Some(256usize), Some(12.0));
     if let Some(n) = m.get("image") {
@@ -417,6 +420,7 @@ fn draw_subject(sc: &Scenario, i: usize) -> SimSubject {
     let segments = match sc.layout {
         Layout::Clear => clear_layout(sc, &mut rng),
         Layout::Crowded => crowded_layout(sc, &mut rng),
+        Layout::Empty => Vec::new(),
     };
     // Drawn in this order whatever the scenario says, so that a setting
     // changes only what it names.
@@ -798,6 +802,8 @@ pub fn simulate(sc: &Scenario, out: &Path) -> Result<PathBuf> {
             };
             let exposure = rng.random_range(0.9..1.1);
             let pages = render::render(&scene, &vessels, motion, exposure, &mut rng);
+            // The camera's clock, as the capture list gives it.
+            let taken = (s.start + Duration::seconds(c.t_s as i64)).naive_local();
             let path = out
                 .join("subjects")
                 .join(&s.id)
@@ -815,9 +821,9 @@ pub fn simulate(sc: &Scenario, out: &Path) -> Result<PathBuf> {
                             frame[start..start + sc.width].copy_from_slice(row);
                         }
                     }
-                    render::write_tiff(&path, fw, rows * sc.height, &[frame])?;
+                    render::write_tiff_at(&path, fw, rows * sc.height, &[frame], Some(taken))?;
                 }
-                _ => render::write_tiff(&path, sc.width, sc.height, &pages)?,
+                _ => render::write_tiff_at(&path, sc.width, sc.height, &pages, Some(taken))?,
             }
             Ok(Rendered { truth, motion })
         })
@@ -837,7 +843,11 @@ pub fn simulate(sc: &Scenario, out: &Path) -> Result<PathBuf> {
             &dir.join("spo2.csv"),
             spo2_log(sc, s, &courses[si]).as_bytes(),
         )?;
-        let mut seg = String::from("eye: OD\nsegments:\n");
+        let mut seg = String::from(if s.segments.is_empty() {
+            "eye: OD\nsegments: []\n"
+        } else {
+            "eye: OD\nsegments:\n"
+        });
         for (sg, _, _) in &s.segments {
             let pts: Vec<String> = sg
                 .points
@@ -1054,6 +1064,7 @@ fn write_truth(
         match sc.layout {
             Layout::Clear => "clear",
             Layout::Crowded => "crowded",
+            Layout::Empty => "none",
         }
     )?;
     writeln!(r, "band_offsets_px:")?;

@@ -273,10 +273,31 @@ pub fn write_tiff(
     height: usize,
     pages: &[Vec<u16>],
 ) -> Result<(), crate::tables::TableError> {
+    write_tiff_at(path, width, height, pages, None)
+}
+
+/// [`write_tiff`] with the capture's date and time in every page's
+/// `DateTime` tag (TIFF 6.0, tag 306: `YYYY:MM:DD HH:MM:SS`, local time of
+/// the camera, no zone), as cameras record it.
+pub fn write_tiff_at(
+    path: &std::path::Path,
+    width: usize,
+    height: usize,
+    pages: &[Vec<u16>],
+    taken: Option<chrono::NaiveDateTime>,
+) -> Result<(), crate::tables::TableError> {
+    let stamp = taken.map(|t| t.format("%Y:%m:%d %H:%M:%S").to_string());
     crate::tables::write_atomic(path, |f| {
         let mut enc = tiff::encoder::TiffEncoder::new(std::io::BufWriter::new(f))?;
         for p in pages {
-            enc.write_image::<tiff::encoder::colortype::Gray16>(width as u32, height as u32, p)?;
+            let mut image =
+                enc.new_image::<tiff::encoder::colortype::Gray16>(width as u32, height as u32)?;
+            if let Some(s) = &stamp {
+                image
+                    .encoder()
+                    .write_tag(tiff::tags::Tag::DateTime, s.as_str())?;
+            }
+            image.write_data(p)?;
         }
         Ok(())
     })

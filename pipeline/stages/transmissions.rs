@@ -12,7 +12,7 @@ use rayon::prelude::*;
 use super::epochs::{EpochTables, Epochs};
 use super::stage::{Run, Stage};
 use crate::config::segments::{Segment, VesselKind};
-use crate::config::study::{BandResponse, Study};
+use crate::config::study::Study;
 use crate::images::correct::Corrections;
 use crate::images::ingest::{CaptureError, Multiband, read_laid_out};
 use crate::images::profile::{Flag, ProfileSettings, analyse_segment};
@@ -254,17 +254,17 @@ pub(crate) fn settings_key(study: &Study) -> Key {
 /// The band used for registration and widths: the one nearest [`WIDTH_BAND_NM`]
 /// (isosbestic, good vessel contrast in every vessel).
 pub(crate) fn width_band(study: &Study) -> usize {
-    let centre = |r: &BandResponse| match r {
-        BandResponse::Gaussian { centre_nm, .. } => *centre_nm,
-        BandResponse::Table { points, .. } => {
-            points.iter().map(|p| p.0 * p.1).sum::<f64>() / points.iter().map(|p| p.1).sum::<f64>()
-        }
-    };
-    (0..study.instrument.bands.len())
+    nearest_band(study, WIDTH_BAND_NM)
+}
+
+/// The instrument's band whose centre is nearest `nm`.
+pub(crate) fn nearest_band(study: &Study, nm: f64) -> usize {
+    let bands = &study.instrument.bands;
+    (0..bands.len())
         .min_by(|a, b| {
-            (centre(&study.instrument.bands[*a].response) - WIDTH_BAND_NM)
+            (bands[*a].response.centre_nm() - nm)
                 .abs()
-                .total_cmp(&(centre(&study.instrument.bands[*b].response) - WIDTH_BAND_NM).abs())
+                .total_cmp(&(bands[*b].response.centre_nm() - nm).abs())
         })
         .unwrap_or(0)
 }

@@ -12,7 +12,7 @@ pub mod data;
 mod document;
 pub mod figures;
 mod findings;
-mod qc;
+pub(crate) mod qc;
 pub mod style;
 pub mod tables;
 

@@ -358,15 +358,106 @@ fn sheet(
         }
         root.present()?;
     }
+    rgb_png(&buf, w, h)
+}
+
+/// An RGB buffer as PNG bytes.
+fn rgb_png(buf: &[u8], w: u32, h: u32) -> std::result::Result<Vec<u8>, Box<dyn std::error::Error>> {
     let mut out = Vec::new();
     {
         let mut enc = png::Encoder::new(&mut out, w, h);
         enc.set_color(png::ColorType::Rgb);
         enc.set_depth(png::BitDepth::Eight);
         let mut wr = enc.write_header()?;
-        wr.write_image_data(&buf)?;
+        wr.write_image_data(buf)?;
     }
     Ok(out)
+}
+
+/// A proposed segment as its overlay draws it.
+pub(crate) struct ProposedLine<'a> {
+    pub id: &'a str,
+    pub kind: VesselKind,
+    pub points: &'a [(f64, f64)],
+    /// The kind is unsure (drawn dashed).
+    pub unsure: bool,
+}
+
+/// Side of a proposal overlay's view, px.
+const OVERLAY: u32 = 760;
+
+/// A proposal's review image (PNG bytes): the band it was traced in, grey,
+/// with every proposed segment drawn in its kind's colour (dashed where
+/// the kind is unsure) and named, a caption and a key. Saturation is never
+/// painted on the fundus.
+pub(crate) fn proposal_overlay(
+    band: &[f32],
+    bw: usize,
+    bh: usize,
+    caption: &str,
+    lines: &[ProposedLine],
+) -> std::result::Result<Vec<u8>, Box<dyn std::error::Error>> {
+    init();
+    let (w, h) = (OVERLAY + 2 * GAP + 230, OVERLAY + 40 + GAP);
+    let mut buf = vec![255u8; (w * h * 3) as usize];
+    let (view, scale) = grey(band, bw, bh, OVERLAY);
+    blit(&mut buf, w, &view, OVERLAY, GAP, 40);
+    {
+        let root = BitMapBackend::with_buffer(&mut buf, (w, h)).into_drawing_area();
+        root.draw_text(caption, &title(17), (GAP as i32, 12))?;
+        let to_view =
+            |p: (f64, f64)| (GAP as i32 + (p.0 * scale) as i32, 40 + (p.1 * scale) as i32);
+        let bounds = (0.0, 0.0, bw as f64, bh as f64);
+        for l in lines {
+            let colour = if l.kind == VesselKind::Arteriole {
+                ARTERIOLE
+            } else {
+                VENULE
+            };
+            for piece in clip(l.points, bounds) {
+                let pts: Vec<(i32, i32)> = piece.iter().map(|p| to_view(*p)).collect();
+                if l.unsure {
+                    root.draw(&plotters::element::DashedPathElement::new(
+                        pts,
+                        6,
+                        4,
+                        colour.stroke_width(3),
+                    ))?;
+                } else {
+                    root.draw(&PathElement::new(pts, colour.stroke_width(3)))?;
+                }
+            }
+            let mid = to_view(l.points[l.points.len() / 2]);
+            root.draw_text(
+                l.id,
+                &(super::style::FAMILY, 15).into_font().color(&WHITE),
+                (mid.0 + 6, mid.1 - 18),
+            )?;
+        }
+        let (kx, ky) = ((GAP + OVERLAY + 18) as i32, 60);
+        let rows: [(&str, RGBColor, bool); 3] = [
+            ("arteriole", ARTERIOLE, false),
+            ("venule", VENULE, false),
+            ("kind unsure", RGBColor(120, 120, 120), true),
+        ];
+        for (k, (text, colour, dashed)) in rows.into_iter().enumerate() {
+            let y = ky + 24 * k as i32;
+            let pts = vec![(kx, y), (kx + 30, y)];
+            if dashed {
+                root.draw(&plotters::element::DashedPathElement::new(
+                    pts,
+                    6,
+                    4,
+                    colour.stroke_width(3),
+                ))?;
+            } else {
+                root.draw(&PathElement::new(pts, colour.stroke_width(3)))?;
+            }
+            root.draw_text(text, &label(14), (kx + 38, y - 8))?;
+        }
+        root.present()?;
+    }
+    rgb_png(&buf, w, h)
 }
 
 /// The parts of a polyline inside the rectangle (x0, y0, x1, y1), each

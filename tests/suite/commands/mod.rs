@@ -3,4 +3,5 @@
 mod cli;
 mod hostile;
 mod power;
+mod scaffold;
 mod scale;

@@ -9,3 +9,4 @@ mod pigmentation;
 mod report;
 mod runner;
 mod spectra;
+mod tracing;
