@@ -227,7 +227,8 @@ pub fn init(args: &InitArgs, printer: &Printer) -> Result<Exit> {
     }
     // The first epoch's settle time puts the first capture of a session in
     // steady state when the session start is taken from the captures.
-    let first_settle_s = first_settle(&protocol_text);
+    let (baseline, first_settle_s) =
+        first_epoch(&protocol_text).unwrap_or_else(|| ("air".into(), 0.0));
     let mut study = String::new();
     let name = dir
         .canonicalize()
@@ -386,7 +387,6 @@ pub fn init(args: &InitArgs, printer: &Printer) -> Result<Exit> {
             (near(600.0), near(570.0))
         })
         .unwrap_or_else(|| ("SENSITIVE".into(), "ISOSBESTIC".into()));
-    let baseline = first_epoch(&protocol_text).unwrap_or_else(|| "air".into());
     writeln!(
         study,
         "# The oximetry methods. `multiband` fits every band with the vessel model\n\
@@ -523,8 +523,8 @@ fn find_log(sdir: &Path) -> Option<(String, String, String)> {
         .collect();
     csvs.sort();
     csvs.into_iter().find_map(|p| {
-        let text = std::fs::read_to_string(&p).ok()?;
-        let header: Vec<&str> = text.lines().next()?.split(',').map(str::trim).collect();
+        let lines = first_lines(&p, 1);
+        let header: Vec<&str> = lines.first()?.split(',').map(str::trim).collect();
         let tc = header
             .iter()
             .find(|h| h.to_ascii_lowercase().contains("time"))?;
@@ -540,12 +540,26 @@ fn find_log(sdir: &Path) -> Option<(String, String, String)> {
     })
 }
 
+/// The first `n` lines of a text file; a log's header and first sample
+/// are all `init` needs, however long the log.
+fn first_lines(p: &Path, n: usize) -> Vec<String> {
+    use std::io::BufRead;
+    std::fs::File::open(p)
+        .map(|f| {
+            std::io::BufReader::new(f)
+                .lines()
+                .take(n)
+                .map_while(Result::ok)
+                .collect()
+        })
+        .unwrap_or_default()
+}
+
 fn log_start(p: &Path, time_col: &str) -> Option<DateTime<FixedOffset>> {
-    let text = std::fs::read_to_string(p).ok()?;
-    let mut lines = text.lines();
-    let header: Vec<&str> = lines.next()?.split(',').map(str::trim).collect();
+    let lines = first_lines(p, 2);
+    let header: Vec<&str> = lines.first()?.split(',').map(str::trim).collect();
     let i = header.iter().position(|h| *h == time_col)?;
-    let first = lines.next()?.split(',').nth(i)?.trim().to_string();
+    let first = lines.get(1)?.split(',').nth(i)?.trim().to_string();
     crate::config::time::parse_time(&first).ok()
 }
 
@@ -556,26 +570,15 @@ fn floor_minute(t: DateTime<FixedOffset>) -> DateTime<FixedOffset> {
         .unwrap_or(t)
 }
 
-/// The first epoch's settle time, s (0 when it cannot be read).
-fn first_settle(protocol: &str) -> f64 {
+/// The protocol's first epoch: its name and settle time, s.
+fn first_epoch(protocol: &str) -> Option<(String, f64)> {
     let mut findings = crate::config::diag::Findings::new();
     crate::config::protocol::parse_protocol_text(
         protocol,
         Path::new("protocol.yaml"),
         &mut findings,
     )
-    .and_then(|p| p.epochs.first().map(|e| e.settle_s))
-    .unwrap_or(0.0)
-}
-
-fn first_epoch(protocol: &str) -> Option<String> {
-    let mut findings = crate::config::diag::Findings::new();
-    crate::config::protocol::parse_protocol_text(
-        protocol,
-        Path::new("protocol.yaml"),
-        &mut findings,
-    )
-    .and_then(|p| p.epochs.first().map(|e| e.name.clone()))
+    .and_then(|p| p.epochs.first().map(|e| (e.name.clone(), e.settle_s)))
 }
 
 fn csv_cell(s: &str) -> String {
@@ -633,7 +636,8 @@ mod tests {
         for (name, text) in READY_PROTOCOLS {
             assert!(first_epoch(text).is_some(), "{name}");
         }
-        assert_eq!(first_epoch(PROTOCOL_TEMPLATE).as_deref(), Some("air"));
-        assert!((first_settle(PROTOCOL_TEMPLATE) - 180.0).abs() < 1e-9);
+        let (name, settle) = first_epoch(PROTOCOL_TEMPLATE).unwrap();
+        assert_eq!(name, "air");
+        assert!((settle - 180.0).abs() < 1e-9);
     }
 }

@@ -32,7 +32,7 @@ use crate::images::correct::Corrections;
 use crate::images::ingest::{Multiband, read_laid_out};
 use crate::images::profile::analyse_segment;
 use crate::images::vessels::{
-    DetectSettings, centre_lines, length, refine, vessel_contrast, vessel_map,
+    DetectSettings, centre_lines, length, line_response, median, refine, vessel_contrast,
 };
 use crate::oximetry::odr::split_kinds;
 use crate::stages::report::qc::{ProposedLine, proposal_overlay};
@@ -263,7 +263,7 @@ fn propose_eye(
             |a, (b, v)| if v > a.1 { (b, v) } else { a },
         )
         .0;
-    let map = vessel_map(&img.bands[band], img.width, img.height, &settings);
+    let map = line_response(&img.bands[band], img.width, img.height, &settings);
     let mut lines: Vec<Vec<(f64, f64)>> = centre_lines(&map, &settings)
         .into_iter()
         .map(|c| c.points)
@@ -467,15 +467,6 @@ fn edited(file: &Path) -> Option<&'static str> {
 
 fn hex(bytes: &[u8]) -> String {
     bytes.iter().map(|b| format!("{b:02x}")).collect()
-}
-
-fn median(mut v: Vec<f64>) -> f64 {
-    v.retain(|x| x.is_finite());
-    if v.is_empty() {
-        return f64::NAN;
-    }
-    let k = v.len() / 2;
-    *v.select_nth_unstable_by(k, f64::total_cmp).1
 }
 
 /// The pieces of a polyline between `inner` and `outer` px from `disc`,

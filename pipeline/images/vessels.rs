@@ -44,7 +44,7 @@ const SCALES: usize = 7;
 const SIGMA_PER_DIAMETER: f64 = 0.44;
 
 /// The vesselness of every pixel at its best scale.
-pub struct VesselMap {
+pub struct LineResponse {
     pub width: usize,
     pub height: usize,
     /// The response over its high threshold: at least 1 on a vessel.
@@ -57,7 +57,7 @@ pub struct VesselMap {
     pub noise: f64,
 }
 
-impl VesselMap {
+impl LineResponse {
     /// The diameter the best scale at pixel `i` stands for, px.
     pub fn diameter_px(&self, i: usize) -> f64 {
         self.sigma[i] as f64 / SIGMA_PER_DIAMETER
@@ -135,7 +135,7 @@ fn scales(s: &DetectSettings) -> Vec<f64> {
 }
 
 /// The multiscale vesselness of a band (dark vessels on a brighter fundus).
-pub fn vessel_map(img: &[f32], w: usize, h: usize, s: &DetectSettings) -> VesselMap {
+pub fn line_response(img: &[f32], w: usize, h: usize, s: &DetectSettings) -> LineResponse {
     let floor = img
         .iter()
         .copied()
@@ -189,7 +189,7 @@ pub fn vessel_map(img: &[f32], w: usize, h: usize, s: &DetectSettings) -> Vessel
             }
         }
     }
-    VesselMap {
+    LineResponse {
         width: w,
         height: h,
         strength,
@@ -350,7 +350,7 @@ fn ring_pieces(on: &[bool], ring: &[(isize, isize); 8]) -> usize {
 /// the response, because a wide vessel with a flat floor answers best at
 /// scales smaller than itself, near its two edges: its ridges come in
 /// pairs, its medial axis does not.
-fn axis(map: &VesselMap) -> Vec<bool> {
+fn axis(map: &LineResponse) -> Vec<bool> {
     let (w, h) = (map.width, map.height);
     let region: Vec<bool> = map
         .strength
@@ -454,7 +454,7 @@ pub struct Centreline {
 /// Centre lines of the vessels in `map`, split at branch points and
 /// crossings, each at least the settings' length, in a stable order (by
 /// their first pixel).
-pub fn centre_lines(map: &VesselMap, s: &DetectSettings) -> Vec<Centreline> {
+pub fn centre_lines(map: &LineResponse, s: &DetectSettings) -> Vec<Centreline> {
     let (w, h) = (map.width, map.height);
     let mut on = axis(map);
     prune(&mut on, w, h, s.max_diameter_px.ceil() as usize);
@@ -568,7 +568,7 @@ fn split_at_turns(path: &[usize], w: usize, m: usize) -> Vec<&[usize]> {
 /// the fewest points within 0.2 px. The axis is good to about a pixel;
 /// the profiles across it then find the centre to a fraction of one
 /// ([`refine`]).
-fn polyline(map: &VesselMap, path: &[usize]) -> Option<Centreline> {
+fn polyline(map: &LineResponse, path: &[usize]) -> Option<Centreline> {
     if path.len() < 3 {
         return None;
     }
@@ -699,7 +699,8 @@ fn unhook(p: &mut Vec<(f64, f64)>) {
     }
 }
 
-fn median(mut v: Vec<f64>) -> f64 {
+/// The median of the finite values (NaN when there are none).
+pub(crate) fn median(mut v: Vec<f64>) -> f64 {
     v.retain(|x| x.is_finite());
     if v.is_empty() {
         return f64::NAN;
@@ -787,7 +788,7 @@ pub fn vessel_contrast(img: &[f32], w: usize, h: usize, s: &DetectSettings) -> f
         max_diameter_px: 0.5 * (s.min_diameter_px + s.max_diameter_px),
         ..*s
     };
-    let map = vessel_map(img, w, h, &mid);
+    let map = line_response(img, w, h, &mid);
     let mut v: Vec<f32> = map.strength.clone();
     // The strength at the 98th percentile: vessels cover a few per cent
     // of a fundus field.
@@ -834,7 +835,7 @@ mod tests {
     fn a_straight_vessel_gives_one_centre_line_on_its_axis() {
         for a in [0.0, 0.5, 1.2] {
             let img = bar(128, 128, 9.0, 0.3, a);
-            let map = vessel_map(&img, 128, 128, &settings());
+            let map = line_response(&img, 128, 128, &settings());
             let lines = centre_lines(&map, &settings());
             assert_eq!(lines.len(), 1, "angle {a}: {lines:?}");
             let (c, s) = (f64::cos(a), f64::sin(a));
@@ -888,7 +889,7 @@ mod tests {
         let img: Vec<f32> = (0..128 * 128)
             .map(|i| 1000.0 + 60.0 * ((i % 128) as f32 * 0.03).sin() + n.sample(&mut rng) as f32)
             .collect();
-        let map = vessel_map(&img, 128, 128, &settings());
+        let map = line_response(&img, 128, 128, &settings());
         assert!((map.noise - 0.015).abs() < 0.002, "noise {}", map.noise);
         assert!(centre_lines(&map, &settings()).is_empty());
     }
@@ -896,7 +897,7 @@ mod tests {
     #[test]
     fn a_faint_vessel_below_the_contrast_floor_is_not_proposed() {
         let img = bar(128, 128, 9.0, 0.01, 0.3);
-        let map = vessel_map(&img, 128, 128, &settings());
+        let map = line_response(&img, 128, 128, &settings());
         assert!(centre_lines(&map, &settings()).is_empty());
     }
 
