@@ -156,7 +156,7 @@ pub fn init(args: &InitArgs, printer: &Printer) -> Result<Exit> {
     };
     let mut subjects = Vec::new();
     let mut problems = Vec::new();
-    let mut first_pages = None;
+    let mut first_tags = None;
     let mut entries: Vec<PathBuf> = std::fs::read_dir(&root)
         .with_context(|| format!("cannot read the captures folder `{}`", root.display()))?
         .filter_map(|e| e.ok().map(|e| e.path()))
@@ -181,8 +181,8 @@ pub fn init(args: &InitArgs, printer: &Printer) -> Result<Exit> {
                 .unwrap_or(t)
                 .to_string_lossy()
                 .replace('\\', "/");
-            if first_pages.is_none() {
-                first_pages = page_count(t);
+            if first_tags.is_none() {
+                first_tags = camera_tags(t).map(|c| (c, t.clone()));
             }
             match capture_time(t, &args.time, args.utc_offset) {
                 Ok(time) => found.push(Found {
@@ -254,34 +254,71 @@ pub fn init(args: &InitArgs, printer: &Printer) -> Result<Exit> {
          title: \"{name}\"\n\
          protocol: protocol.yaml"
     )?;
-    match &instrument {
-        Some((_, text)) => {
+    // The bands the methods are written for: the instrument file's, else
+    // the captures' own tags when they name every band's centre.
+    let mut placeholder = false;
+    let bands: Option<Vec<(String, f64)>> = match &instrument {
+        Some((i, text)) => {
             writeln!(study, "instrument:")?;
             for line in text.lines() {
                 if !line.trim().is_empty() {
                     writeln!(study, "  {line}")?;
                 }
             }
+            Some(
+                i.bands
+                    .iter()
+                    .map(|b| (b.name.clone(), b.response.centre_nm()))
+                    .collect(),
+            )
         }
         None => {
-            let n = first_pages.unwrap_or(1);
-            writeln!(
-                study,
-                "# The camera: its pixel size on the retina and each band's centre and\n\
-                 # width, in the order of the TIFF pages ({n} pages in the first capture).\n\
-                 # Fill in every `~`; `satstep check` says where one is missing.\n\
-                 instrument:\n  name: \"my camera\"\n  pixel_size_um: ~"
-            )?;
-            writeln!(study, "  bands:")?;
-            for b in 0..n {
+            let (tags, from) = first_tags.unwrap_or_default();
+            let n = tags.pages.max(1);
+            let tagged = !tags.bands.is_empty() && tags.bands.iter().all(|b| b.1.is_some());
+            let num = |v: Option<f64>| v.map_or("~".to_string(), |v| format!("{v}"));
+            if tagged || tags.pixel_um.is_some() {
                 writeln!(
                     study,
-                    "    - {{name: band{}, centre_nm: ~, fwhm_nm: ~}}",
-                    b + 1
+                    "# The camera, as the TIFF tags of `{}` describe it (pixel size from\n\
+                     # XResolution in pixels per cm; band names from PageName, centres and\n\
+                     # widths from ImageDescription): check that the pixel size is the scale\n\
+                     # on the retina and the bands are the camera's. Fill in every `~`.",
+                    from.strip_prefix(dir).unwrap_or(&from).display()
+                )?;
+            } else {
+                writeln!(
+                    study,
+                    "# The camera: its pixel size on the retina and each band's centre and\n\
+                     # width, in the order of the TIFF pages ({n} pages in the first capture).\n\
+                     # Fill in every `~`; `satstep check` says where one is missing."
                 )?;
             }
+            writeln!(
+                study,
+                "instrument:\n  name: \"my camera\"\n  pixel_size_um: {}\n  bands:",
+                tags.pixel_um
+                    .map_or("~".to_string(), |v| format!("{}", (v * 1e3).round() / 1e3))
+            )?;
+            let mut named = Vec::new();
+            for b in 0..n {
+                let (name, centre, fwhm) = tags.bands.get(b).cloned().unwrap_or_default();
+                let name = name
+                    .filter(|_| tagged)
+                    .unwrap_or_else(|| format!("band{}", b + 1));
+                writeln!(
+                    study,
+                    "    - {{name: {name}, centre_nm: {}, fwhm_nm: {}}}",
+                    num(centre.filter(|_| tagged)),
+                    num(fwhm.filter(|_| tagged))
+                )?;
+                placeholder |= !tagged || fwhm.is_none();
+                named.push((name, centre.unwrap_or(f64::NAN)));
+            }
+            placeholder |= tags.pixel_um.is_none();
+            tagged.then_some(named)
         }
-    }
+    };
     writeln!(
         study,
         "# One entry per volunteer; age, sex and pigmentation (grade 1 light to 4\n\
@@ -370,18 +407,14 @@ pub fn init(args: &InitArgs, printer: &Printer) -> Result<Exit> {
     }
     // Methods: the multiband joint fit needs no calibration; the two-band
     // method needs its two bands and a calibration.
-    let (sens, iso) = instrument
+    let (sens, iso) = bands
         .as_ref()
-        .map(|(i, _)| {
+        .map(|bands| {
             let near = |nm: f64| {
-                i.bands
+                bands
                     .iter()
-                    .min_by(|a, b| {
-                        (a.response.centre_nm() - nm)
-                            .abs()
-                            .total_cmp(&(b.response.centre_nm() - nm).abs())
-                    })
-                    .map(|b| b.name.clone())
+                    .min_by(|a, b| (a.1 - nm).abs().total_cmp(&(b.1 - nm).abs()))
+                    .map(|b| b.0.clone())
                     .unwrap_or_default()
             };
             (near(600.0), near(570.0))
@@ -397,10 +430,10 @@ pub fn init(args: &InitArgs, printer: &Printer) -> Result<Exit> {
          methods:\n  - method: multiband\n    loss: huber\n  - method: multiband-pointwise\n    loss: huber\n\
          {}  - method: two-band\n{}    sensitive: {sens}\n{}    isosbestic: {iso}\n{}    calibration: {{mode: two-point, epoch: {baseline}, venule_so2: 60}}\n\
          output: results",
-        if instrument.is_some() { "" } else { "# " },
-        if instrument.is_some() { "" } else { "# " },
-        if instrument.is_some() { "" } else { "# " },
-        if instrument.is_some() { "" } else { "# " },
+        if bands.is_some() { "" } else { "# " },
+        if bands.is_some() { "" } else { "# " },
+        if bands.is_some() { "" } else { "# " },
+        if bands.is_some() { "" } else { "# " },
     )?;
     std::fs::create_dir_all(dir).with_context(|| format!("cannot create `{}`", dir.display()))?;
     for (p, text) in &lists {
@@ -416,8 +449,8 @@ pub fn init(args: &InitArgs, printer: &Printer) -> Result<Exit> {
         args.protocol.as_deref().unwrap_or("a template to edit"),
         lists.len()
     ));
-    if instrument.is_none() {
-        printer.warn("the instrument is a placeholder: fill in its pixel size and bands (or give `--instrument FILE`)");
+    if placeholder {
+        printer.warn("the instrument is not complete: fill in every `~` of its pixel size and bands in the study file (or give `--instrument FILE`)");
     }
     for s in subjects.iter().filter(|s| s.log.is_none()) {
         printer.warn(format!(
@@ -454,15 +487,81 @@ fn collect_tiffs(dir: &Path, out: &mut Vec<PathBuf>) {
     }
 }
 
-fn page_count(p: &Path) -> Option<usize> {
+/// What a capture's TIFF tags say about the camera.
+#[derive(Debug, Default, PartialEq)]
+struct CameraTags {
+    pages: usize,
+    /// Per page: `PageName` (285), and the centre and FWHM read from
+    /// `ImageDescription` (270) ([`wavelengths`]).
+    bands: Vec<(Option<String>, Option<f64>, Option<f64>)>,
+    /// From `XResolution` (282) when `ResolutionUnit` (296) is centimetres
+    /// (3): cameras that write inches mostly write a nominal 72 or 300 dpi
+    /// of the sensor, not the scale on the retina.
+    pixel_um: Option<f64>,
+}
+
+fn camera_tags(p: &Path) -> Option<CameraTags> {
+    use tiff::decoder::ifd::Value;
+    use tiff::tags::Tag;
     let f = std::fs::File::open(p).ok()?;
     let mut d = tiff::decoder::Decoder::new(std::io::BufReader::new(f)).ok()?;
-    let mut n = 1;
-    while d.more_images() {
+    let mut tags = CameraTags::default();
+    loop {
+        let text = |d: &mut tiff::decoder::Decoder<_>, t: Tag| {
+            d.get_tag_ascii_string(t)
+                .ok()
+                .map(|s| s.trim_end_matches('\0').trim().to_string())
+                .filter(|s| !s.is_empty())
+        };
+        let name = text(&mut d, Tag::Unknown(crate::simulate::render::PAGE_NAME_TAG));
+        let (centre, fwhm) = text(&mut d, Tag::ImageDescription)
+            .map(|t| wavelengths(&t))
+            .unwrap_or_default();
+        tags.bands.push((name, centre, fwhm));
+        if tags.pages == 0 {
+            let unit = d
+                .find_tag_unsigned::<u16>(Tag::ResolutionUnit)
+                .ok()
+                .flatten();
+            if let (Some(3), Ok(Some(Value::Rational(n, den)))) =
+                (unit, d.find_tag(Tag::XResolution))
+            {
+                let per_cm = n as f64 / den as f64;
+                tags.pixel_um = (per_cm > 0.0).then(|| 1e4 / per_cm);
+            }
+        }
+        tags.pages += 1;
+        if !d.more_images() {
+            break;
+        }
         d.next_image().ok()?;
-        n += 1;
     }
-    Some(n)
+    Some(tags)
+}
+
+/// A band's centre and FWHM in a free-text description: the numbers given
+/// in nanometres (`548 nm`, `548nm`), the one beside the word `FWHM` the
+/// width and the first other one the centre.
+fn wavelengths(text: &str) -> (Option<f64>, Option<f64>) {
+    let words: Vec<&str> = text
+        .split(|c: char| c.is_whitespace() || ",;:=()".contains(c))
+        .filter(|w| !w.is_empty())
+        .collect();
+    let mut nm: Vec<(usize, f64)> = Vec::new();
+    for (i, w) in words.iter().enumerate() {
+        let v = match w.strip_suffix("nm") {
+            Some("") => i.checked_sub(1).and_then(|j| words[j].parse().ok()),
+            Some(n) => n.parse().ok(),
+            None => None,
+        };
+        if let Some(v) = v.filter(|v: &f64| v.is_finite() && *v > 0.0) {
+            nm.push((i, v));
+        }
+    }
+    let fwhm_at = words.iter().position(|w| w.eq_ignore_ascii_case("fwhm"));
+    let fwhm = fwhm_at.and_then(|f| nm.iter().min_by_key(|(i, _)| i.abs_diff(f)).copied());
+    let centre = nm.iter().find(|x| Some(**x) != fwhm).map(|x| x.1);
+    (centre, fwhm.map(|x| x.1))
 }
 
 /// The capture's time: its TIFF `DateTime` tag or its name, in the camera
@@ -639,5 +738,53 @@ mod tests {
         let (name, settle) = first_epoch(PROTOCOL_TEMPLATE).unwrap();
         assert_eq!(name, "air");
         assert!((settle - 180.0).abs() < 1e-9);
+    }
+
+    #[test]
+    fn band_wavelengths_are_read_from_descriptions() {
+        assert_eq!(
+            wavelengths("548 nm centre, 8 nm FWHM"),
+            (Some(548.0), Some(8.0))
+        );
+        assert_eq!(
+            wavelengths("FWHM=10nm; centre=600.5nm"),
+            (Some(600.5), Some(10.0))
+        );
+        assert_eq!(wavelengths("green 570nm"), (Some(570.0), None));
+        assert_eq!(wavelengths("exposure 12 ms"), (None, None));
+    }
+
+    #[test]
+    fn camera_tags_written_by_the_simulator_are_read_back() {
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join("c.tif");
+        let tags = crate::simulate::render::CaptureTags {
+            taken: None,
+            pixel_um: Some(12.0),
+            bands: vec![("b548".into(), 548.0, 8.0), ("b600".into(), 600.0, 10.0)],
+        };
+        let page = vec![1000u16; 16];
+        crate::simulate::render::write_tiff_at(&p, 4, 4, &[page.clone(), page.clone()], &tags)
+            .unwrap();
+        let read = camera_tags(&p).unwrap();
+        assert_eq!(read.pages, 2);
+        assert!((read.pixel_um.unwrap() - 12.0).abs() < 1e-3);
+        assert_eq!(
+            read.bands,
+            vec![
+                (Some("b548".into()), Some(548.0), Some(8.0)),
+                (Some("b600".into()), Some(600.0), Some(10.0))
+            ]
+        );
+        // Without tags: pages counted, nothing else.
+        crate::simulate::render::write_tiff(&p, 4, 4, &[page]).unwrap();
+        assert_eq!(
+            camera_tags(&p).unwrap(),
+            CameraTags {
+                pages: 1,
+                bands: vec![(None, None, None)],
+                pixel_um: None
+            }
+        );
     }
 }

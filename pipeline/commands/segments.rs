@@ -30,9 +30,9 @@ use crate::config::study::{MethodKind, Study, read_study_file_with, resolve_stud
 use crate::console::Printer;
 use crate::images::correct::Corrections;
 use crate::images::ingest::{Multiband, read_laid_out};
-use crate::images::profile::analyse_segment;
+use crate::images::profile::{analyse_segment, median};
 use crate::images::vessels::{
-    DetectSettings, centre_lines, length, line_response, median, refine, vessel_contrast,
+    DetectSettings, centre_lines, length, line_response, refine, vessel_contrast,
 };
 use crate::oximetry::odr::split_kinds;
 use crate::stages::report::qc::{ProposedLine, proposal_overlay};

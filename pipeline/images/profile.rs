@@ -17,7 +17,9 @@
 //! band), `poor-fit` (RMS residual of the normalised profile above the
 //! limit, or the shape fit ended on a limit of its search box in depth,
 //! centre or radius: see [`at_limit`]), `near-segment` (another segment passes within the profile's
-//! vessel part plus a margin).
+//! vessel part plus a margin), `odd-width` (the fitted diameter is less
+//! than 2/3 or more than 3/2 of the median over the segment's unflagged
+//! positions in the same capture: see [`flag_odd_widths`]).
 
 use nalgebra::{Matrix3, Vector3};
 
@@ -60,6 +62,7 @@ pub enum Flag {
     LowContrast,
     PoorFit,
     NearSegment,
+    OddWidth,
 }
 
 impl Flag {
@@ -78,6 +81,7 @@ impl Flag {
             Flag::LowContrast => "low-contrast",
             Flag::PoorFit => "poor-fit",
             Flag::NearSegment => "near-segment",
+            Flag::OddWidth => "odd-width",
         }
     }
 }
@@ -537,5 +541,44 @@ pub fn analyse_segment(
         k += 1;
         along += st.spacing_px;
     }
+    flag_odd_widths(&mut out);
     out
+}
+
+/// A vessel's width changes slowly along a segment; a profile whose
+/// fitted width is far from the rest has met something else: a vessel
+/// not drawn as a segment beside it or across it (which `near-segment`
+/// cannot know of), the vessel's rounded end, or a branch. Such positions
+/// (below 2/3 or above 3/2 of the median of the unflagged ones, with at
+/// least [`MIN_FOR_WIDTH_MEDIAN`] of them) are flagged `odd-width`.
+fn flag_odd_widths(out: &mut [ProfileResult]) {
+    let widths: Vec<f64> = out
+        .iter()
+        .filter(|p| p.flags.is_empty() && p.diameter_px.is_finite())
+        .map(|p| p.diameter_px)
+        .collect();
+    if widths.len() < MIN_FOR_WIDTH_MEDIAN {
+        return;
+    }
+    let median = median(widths);
+    for p in out.iter_mut().filter(|p| p.flags.is_empty()) {
+        let ratio = p.diameter_px / median;
+        // NaN ratios fall outside too.
+        if !(2.0 / 3.0..=1.5).contains(&ratio) {
+            p.flags.push(Flag::OddWidth);
+        }
+    }
+}
+
+/// Fewer unflagged positions than this give no median width to judge by.
+const MIN_FOR_WIDTH_MEDIAN: usize = 5;
+
+/// The median of the finite values (NaN when there are none).
+pub(crate) fn median(mut v: Vec<f64>) -> f64 {
+    v.retain(|x| x.is_finite());
+    if v.is_empty() {
+        return f64::NAN;
+    }
+    let k = v.len() / 2;
+    *v.select_nth_unstable_by(k, f64::total_cmp).1
 }

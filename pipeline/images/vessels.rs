@@ -624,7 +624,7 @@ pub fn refine(
     band: usize,
     st: &super::profile::ProfileSettings,
 ) -> Option<Vec<(f64, f64)>> {
-    use super::profile::analyse_segment;
+    use super::profile::{analyse_segment, median};
     let prof = analyse_segment(img, line, others, band, st);
     // Only clean positions: beside a neighbour the background, and with
     // it the fitted centre, is pulled towards the neighbour.
@@ -697,16 +697,6 @@ fn unhook(p: &mut Vec<(f64, f64)>) {
         }
         p.remove(0);
     }
-}
-
-/// The median of the finite values (NaN when there are none).
-pub(crate) fn median(mut v: Vec<f64>) -> f64 {
-    v.retain(|x| x.is_finite());
-    if v.is_empty() {
-        return f64::NAN;
-    }
-    let k = v.len() / 2;
-    *v.select_nth_unstable_by(k, f64::total_cmp).1
 }
 
 /// How far a vessel goes on beyond `end`, away from `from`: stepping a

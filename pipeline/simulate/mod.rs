@@ -821,9 +821,21 @@ pub fn simulate(sc: &Scenario, out: &Path) -> Result<PathBuf> {
                             frame[start..start + sc.width].copy_from_slice(row);
                         }
                     }
-                    render::write_tiff_at(&path, fw, rows * sc.height, &[frame], Some(taken))?;
+                    let tags = render::CaptureTags {
+                        taken: Some(taken),
+                        pixel_um: Some(sc.pixel_size_um),
+                        bands: Vec::new(),
+                    };
+                    render::write_tiff_at(&path, fw, rows * sc.height, &[frame], &tags)?;
                 }
-                _ => render::write_tiff_at(&path, sc.width, sc.height, &pages, Some(taken))?,
+                _ => {
+                    let tags = render::CaptureTags {
+                        taken: Some(taken),
+                        pixel_um: Some(sc.pixel_size_um),
+                        bands: sc.bands.clone(),
+                    };
+                    render::write_tiff_at(&path, sc.width, sc.height, &pages, &tags)?
+                }
             }
             Ok(Rendered { truth, motion })
         })

@@ -266,6 +266,9 @@ pub fn render(
     out
 }
 
+/// TIFF 6.0's `PageName` tag.
+pub const PAGE_NAME_TAG: u16 = 285;
+
 /// Writes the bands of one capture as a multi-page 16-bit TIFF, in band order.
 pub fn write_tiff(
     path: &std::path::Path,
@@ -273,29 +276,61 @@ pub fn write_tiff(
     height: usize,
     pages: &[Vec<u16>],
 ) -> Result<(), crate::tables::TableError> {
-    write_tiff_at(path, width, height, pages, None)
+    write_tiff_at(path, width, height, pages, &CaptureTags::default())
 }
 
-/// [`write_tiff`] with the capture's date and time in every page's
-/// `DateTime` tag (TIFF 6.0, tag 306: `YYYY:MM:DD HH:MM:SS`, local time of
-/// the camera, no zone), as cameras record it.
+/// What a camera records beside the pixels, as TIFF 6.0 tags.
+#[derive(Debug, Clone, Default)]
+pub struct CaptureTags {
+    /// The capture's date and time, in every page's `DateTime` tag (306:
+    /// `YYYY:MM:DD HH:MM:SS`, local time of the camera, no zone).
+    pub taken: Option<chrono::NaiveDateTime>,
+    /// The pixel size on the retina, µm: `XResolution`/`YResolution` (282,
+    /// 283) in pixels per centimetre with `ResolutionUnit` (296) 3.
+    pub pixel_um: Option<f64>,
+    /// Per page, its band's name in `PageName` (285) and its centre and
+    /// width in `ImageDescription` (270) as `<centre> nm centre, <fwhm> nm
+    /// FWHM`; none for a frame that holds every band.
+    pub bands: Vec<(String, f64, f64)>,
+}
+
+/// [`write_tiff`] with the tags a camera writes ([`CaptureTags`]).
 pub fn write_tiff_at(
     path: &std::path::Path,
     width: usize,
     height: usize,
     pages: &[Vec<u16>],
-    taken: Option<chrono::NaiveDateTime>,
+    tags: &CaptureTags,
 ) -> Result<(), crate::tables::TableError> {
-    let stamp = taken.map(|t| t.format("%Y:%m:%d %H:%M:%S").to_string());
+    let stamp = tags
+        .taken
+        .map(|t| t.format("%Y:%m:%d %H:%M:%S").to_string());
     crate::tables::write_atomic(path, |f| {
         let mut enc = tiff::encoder::TiffEncoder::new(std::io::BufWriter::new(f))?;
-        for p in pages {
+        for (i, p) in pages.iter().enumerate() {
             let mut image =
                 enc.new_image::<tiff::encoder::colortype::Gray16>(width as u32, height as u32)?;
             if let Some(s) = &stamp {
                 image
                     .encoder()
                     .write_tag(tiff::tags::Tag::DateTime, s.as_str())?;
+            }
+            if let Some(um) = tags.pixel_um {
+                // Pixels per centimetre, to 1/1000 of a pixel.
+                let per_cm = tiff::encoder::Rational {
+                    n: (1e7 / um).round() as u32,
+                    d: 1000,
+                };
+                image.resolution(tiff::tags::ResolutionUnit::Centimeter, per_cm);
+            }
+            if let Some((name, centre, fwhm)) = tags.bands.get(i) {
+                image
+                    .encoder()
+                    .write_tag(tiff::tags::Tag::Unknown(PAGE_NAME_TAG), name.as_str())?;
+                image.encoder().write_tag(
+                    tiff::tags::Tag::ImageDescription,
+                    format!("{centre} nm centre, {fwhm} nm FWHM").as_str(),
+                )?;
             }
             image.write_data(p)?;
         }

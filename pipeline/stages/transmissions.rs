@@ -147,7 +147,8 @@ impl Transmissions {
 
 impl Stage for Transmissions {
     const NAME: &'static str = "transmissions";
-    const VERSION: u32 = 8;
+    // 9: profiles of odd width are flagged (`odd-width`).
+    const VERSION: u32 = 9;
     const SUMMARY: &'static str =
         "registration and transmissions along each vessel segment, capture by capture";
     const UPSTREAM: &'static [&'static str] = &["epochs"];

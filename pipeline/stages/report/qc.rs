@@ -50,14 +50,16 @@ fn flag_colour(f: &Flag) -> RGBColor {
         Flag::OffImage => RGBColor(86, 180, 233),
         Flag::LowContrast => RGBColor(204, 121, 167),
         Flag::PoorFit => RGBColor(0, 158, 115),
+        Flag::OddWidth => RGBColor(0, 114, 178),
     }
 }
 
-const FLAGS: [Flag; 4] = [
+const FLAGS: [Flag; 5] = [
     Flag::NearSegment,
     Flag::OffImage,
     Flag::LowContrast,
     Flag::PoorFit,
+    Flag::OddWidth,
 ];
 
 /// One eye of one session: its captures (indices in the epoch table, the

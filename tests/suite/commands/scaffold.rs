@@ -166,7 +166,7 @@ fn init_refuses_what_it_cannot_do_and_keeps_a_study_file() {
     );
     assert_eq!(o.code, 0, "{}", o.stderr);
     assert!(
-        o.stderr.contains("the instrument is a placeholder"),
+        o.stderr.contains("the instrument is not complete"),
         "{}",
         o.stderr
     );
