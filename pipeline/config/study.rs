@@ -68,6 +68,9 @@ pub struct Instrument {
     pub estimate_band_offsets: bool,
     /// How a capture file holds the bands.
     pub layout: SensorLayout,
+    /// SD of the optics' point-spread function (eye and camera), taken as
+    /// a Gaussian, px; 0 when not given (profiles fitted sharp).
+    pub psf_sd_px: f64,
 }
 
 /// How a capture file (and the dark and flat frames) holds the bands.
@@ -535,6 +538,7 @@ const INSTRUMENT_KEYS: &[&str] = &[
     "flat",
     "band_offsets",
     "layout",
+    "psf_sd_px",
 ];
 const LAYOUT_KEYS: &[&str] = &["tiles", "grid"];
 const GRID_KEYS: &[&str] = &["columns", "rows"];
@@ -885,6 +889,10 @@ fn positive(r: &mut Reader, n: &Node, what: &str) -> Option<f64> {
     Some(v)
 }
 
+/// A blur wider than this leaves no vessel edge to fit at the profile's
+/// length.
+const MAX_PSF_SD_PX: f64 = 5.0;
+
 pub(crate) fn read_instrument(r: &mut Reader, node: &Node, root: &Path) -> Option<Instrument> {
     let m = r.map(node, "`instrument`", INSTRUMENT_KEYS)?;
     let name = m
@@ -948,6 +956,21 @@ pub(crate) fn read_instrument(r: &mut Reader, node: &Node, root: &Path) -> Optio
         None => Some(SensorLayout::Pages),
         Some(n) => read_layout(r, n, bands.len()),
     };
+    let psf_sd_px = match m.get("psf_sd_px") {
+        None => Some(0.0),
+        Some(n) => r.number(n, "`psf_sd_px`").and_then(|v| {
+            if (0.0..=MAX_PSF_SD_PX).contains(&v) {
+                Some(v)
+            } else {
+                r.error(
+                    n.mark,
+                    format!("`psf_sd_px` must be from 0 to {MAX_PSF_SD_PX} px, found {v}"),
+                )
+                .hint("the SD of the Gaussian that blurs a point in the captures, in pixels (e.g. 1.5), measured with an edge or point target");
+                None
+            }
+        }),
+    };
     if !ok {
         return None;
     }
@@ -959,6 +982,7 @@ pub(crate) fn read_instrument(r: &mut Reader, node: &Node, root: &Path) -> Optio
         flat,
         estimate_band_offsets,
         layout: layout?,
+        psf_sd_px: psf_sd_px?,
     })
 }
 

@@ -7,4 +7,5 @@ pub mod correct;
 pub mod ingest;
 pub mod profile;
 pub mod register;
+pub mod shape;
 pub mod vessels;

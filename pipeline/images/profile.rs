@@ -11,6 +11,8 @@
 //! Where a central light reflex brightens the axis, the shape is fitted
 //! without it and T is read at the darkest points beside it (a little high,
 //! as the chord is shorter there: about +5 % at strong absorption).
+//! With the instrument's point-spread function (`psf_sd_px`), the shape is
+//! fitted through the blur, with a reflex term, instead ([`super::shape`]).
 //!
 //! Flags (kept with the row, never dropped): `off-image` (the profile
 //! leaves the image), `low-contrast` (depth below the limit in the width
@@ -25,8 +27,7 @@ use nalgebra::{Matrix3, Vector3};
 
 use super::ingest::Multiband;
 use super::register::Tap;
-use crate::fit::small::SmallProblem;
-use crate::fit::{Options, minimize};
+use super::shape::{Blur, Free, at_limit, fit_blurred, fit_shape, fit_shape_masked};
 
 #[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
 pub struct ProfileSettings {
@@ -39,6 +40,9 @@ pub struct ProfileSettings {
     pub min_contrast: f64,
     pub max_rms: f64,
     pub neighbour_margin_px: f64,
+    /// SD of the optics' Gaussian point-spread function, px; 0 for none
+    /// (the profiles are then fitted sharp, see [`super::shape`]).
+    pub psf_sd_px: f64,
 }
 
 impl Default for ProfileSettings {
@@ -50,6 +54,7 @@ impl Default for ProfileSettings {
             min_contrast: 0.03,
             max_rms: 0.035,
             neighbour_margin_px: 2.0,
+            psf_sd_px: 0.0,
         }
     }
 }
@@ -103,113 +108,6 @@ pub struct ProfileResult {
     pub reflex: bool,
 }
 
-/// Vessel shape and its derivatives in (A, c, r, κ): a cylinder of
-/// absorption strength κ seen in transmission,
-/// `1 − A·(1 − e^(−κ√(1 − u²)))/(1 − e^(−κ))`, which tends to the chord
-/// profile `1 − A·√(1 − u²)` for weak absorption and flattens as κ grows.
-/// `ek` is `e^(−κ)`, the same for every sample of one evaluation.
-fn shape(s: f64, p: &[f64], ek: f64) -> (f64, [f64; 4]) {
-    let (a, c, r, k) = (p[0], p[1], p[2], p[3]);
-    let u = (s - c) / r;
-    let g = 1.0 - u * u;
-    if g <= 0.0 {
-        return (1.0, [0.0; 4]);
-    }
-    let q = g.sqrt();
-    let e = (-k * q).exp();
-    let d = 1.0 - ek;
-    let h = (1.0 - e) / d;
-    let dh_dk = (q * e * d - (1.0 - e) * ek) / (d * d);
-    let dq = if q > 1e-9 {
-        a * k * e * u / (d * q * r)
-    } else {
-        0.0
-    };
-    (1.0 - a * h, [-h, -dq, -dq * u, -a * dh_dk])
-}
-
-/// Fits the shape to `(s, p)`; `fixed` holds (c, r) when only A and β are free.
-fn fit_shape(
-    s: &[f64],
-    p: &[f64],
-    start: [f64; 4],
-    fixed: Option<(f64, f64)>,
-    half: f64,
-) -> ([f64; 4], f64) {
-    fit_shape_masked(s, p, start, fixed, half, None)
-}
-
-/// The box the shape fit searches, (A, c, r, κ): depth 0–1, centre within
-/// half the profile's half-length of the segment, radius from 1 px to 0.9 of
-/// the half-length, κ 0.01–30.
-fn shape_bounds(half: f64) -> ([f64; 4], [f64; 4]) {
-    (
-        [0.0, -half / 2.0, 1.0, 0.01],
-        [1.0, half / 2.0, half * 0.9, 30.0],
-    )
-}
-
-/// Did the fit end on a limit of its box in depth (none), centre or
-/// radius? Such a fit has not found the vessel: the optimum lies outside
-/// what a profile across this segment can show (another vessel, a crossing,
-/// or no vessel at all), and where it stops depends on the path the solver
-/// took, not on the data.
-fn at_limit(q: &[f64; 4], half: f64) -> bool {
-    let (lo, hi) = shape_bounds(half);
-    let near = |v: f64, b: f64| (v - b).abs() <= 1e-9 * b.abs().max(1.0);
-    near(q[0], lo[0]) || (1..3).any(|k| near(q[k], lo[k]) || near(q[k], hi[k]))
-}
-
-/// As [`fit_shape`], leaving out the samples inside `skip` (a central
-/// reflex); the rms is over the samples used.
-fn fit_shape_masked(
-    s: &[f64],
-    p: &[f64],
-    start: [f64; 4],
-    fixed: Option<(f64, f64)>,
-    half: f64,
-    skip: Option<(f64, f64)>,
-) -> ([f64; 4], f64) {
-    let used = |x: f64| skip.is_none_or(|(lo, hi)| x <= lo || x >= hi);
-    let n_used = s.iter().filter(|x| used(**x)).count().max(1);
-    // Residual and shape derivatives of each sample in use.
-    let rows = |q: &[f64; 4], out: &mut dyn FnMut(f64, &[f64; 4])| {
-        let ek = (-q[3]).exp();
-        for (x, v) in s.iter().zip(p) {
-            if used(*x) {
-                let (m, d) = shape(*x, q, ek);
-                out(m - v, &d);
-            }
-        }
-        true
-    };
-    let options = Options {
-        max_iterations: 200,
-        ftol: 1e-12,
-        xtol: 1e-12,
-        gtol: 1e-12,
-        tau: 1e-3,
-    };
-    // QR, not the normal equations: see `fit::small`.
-    let (q, cost) = match fixed {
-        Some((c, r)) => {
-            let model = |x: &[f64; 2], out: &mut dyn FnMut(f64, &[f64; 2])| {
-                rows(&[x[0], c, r, x[1]], &mut |res, d| out(res, &[d[0], d[3]]))
-            };
-            let problem = SmallProblem::new(&model, [0.0, 0.01], [1.0, 30.0]).with_qr();
-            let rep = minimize(&problem, &[start[0], start[3]], &options);
-            ([rep.x[0], c, r, rep.x[1]], rep.cost)
-        }
-        None => {
-            let (lo, hi) = shape_bounds(half);
-            let problem = SmallProblem::new(&rows, lo, hi).with_qr();
-            let rep = minimize(&problem, &start, &options);
-            ([rep.x[0], rep.x[1], rep.x[2], rep.x[3]], rep.cost)
-        }
-    };
-    (q, (2.0 * cost / n_used as f64).sqrt())
-}
-
 /// The darkest normalised value on each side of the axis within half a
 /// radius, as offsets from the centre: (x_left, x_right).
 fn flank_minima(s: &[f64], p: &[f64], c: f64, r: f64) -> Option<(f64, f64, f64, f64)> {
@@ -223,6 +121,34 @@ fn flank_minima(s: &[f64], p: &[f64], c: f64, r: f64) -> Option<(f64, f64, f64, 
     let (l, rr) = (side(-1.0)?, side(1.0)?);
     Some((l.0, l.1, rr.0, rr.1))
 }
+
+/// The profile's own first guess of (A, c, r, κ): its darkest point, and
+/// the width where it is darker than half that depth.
+fn first_guess(s: &[f64], p: &[f64], half: f64) -> [f64; 4] {
+    let imin = (0..p.len())
+        .min_by(|i, j| p[*i].total_cmp(&p[*j]))
+        .unwrap_or(0);
+    let depth = (1.0 - p[imin]).max(0.01);
+    let inside = p.iter().filter(|v| **v < 1.0 - depth / 2.0).count() as f64 * 0.5;
+    [
+        depth,
+        s[imin].clamp(-half / 2.0, half / 2.0),
+        (inside * 0.65).clamp(1.5, half * 0.8),
+        1.0,
+    ]
+}
+
+/// With a blur, a fitted reflex share above this is reported as a reflex
+/// (and its lift taken off T); below, it is noise on a plain vessel.
+const MIN_REFLEX_SHARE: f64 = 0.05;
+
+/// What pixel integration and bilinear sampling add to the optics'
+/// blur, px² (see `analyse_segment`).
+const SAMPLING_VARIANCE_PX2: f64 = 1.0 / 6.0;
+
+/// The F statistic a reflex share must reach to be taken (about p < 1e-5
+/// for one and 60 degrees of freedom).
+const REFLEX_F: f64 = 25.0;
 
 /// A central light reflex: a bright bump on the axis between two darker
 /// flanks, the centre (|u| < 0.1 of the radius) brighter than the darkest
@@ -335,6 +261,19 @@ pub fn analyse_segment(
     let s: Vec<f64> = (0..=(4.0 * half) as usize)
         .map(|i| -half + 0.5 * i as f64)
         .collect();
+    // The profile is blurred by more than the optics: each pixel
+    // integrates its area (a box, variance 1/12 px²) and the profile is
+    // read between pixels by bilinear interpolation (on average another
+    // 1/12 px²).
+    let blur = Blur::new(
+        if st.psf_sd_px > 0.0 {
+            (st.psf_sd_px.powi(2) + SAMPLING_VARIANCE_PX2).sqrt()
+        } else {
+            0.0
+        },
+        0.5,
+    );
+    let blur_sd = st.psf_sd_px.max(0.0);
     let mut out = Vec::new();
     let mut along = st.end_margin_px;
     let mut k = 0;
@@ -387,8 +326,56 @@ pub fn analyse_segment(
         // if found, the shape is refitted without it and T is read at the
         // darkest points beside it.
         let mut reflex: Option<(f64, f64)> = None;
+        // With a blur: the blurred model and its reflex share, (A, c, r, κ, ρ).
+        let mut sharp_and_share: Option<[f64; 5]> = None;
+        let mut blurred_reflex = false;
         let mut fits = 0;
-        while fits < 2 || (reflex.is_some() && fits < 3) {
+        while let Some(blur) = &blur {
+            fits += 1;
+            let Some(bq) = bg.filter(|_| fits <= 2) else {
+                break;
+            };
+            let p: Vec<f64> = s
+                .iter()
+                .zip(&wv)
+                .map(|(x, v)| v / eval_bg(&bq, *x))
+                .collect();
+            let start = match sharp_and_share {
+                Some(q5) => q5,
+                None => {
+                    let q0 = first_guess(&s, &p, half);
+                    [q0[0], q0[1], q0[2], q0[3], 0.0]
+                }
+            };
+            // A reflex is taken only where it explains the profile: the
+            // extra sum of squares its share removes, against the residual
+            // variance with it, beyond an F of [`REFLEX_F`] (1 and n − 5
+            // degrees of freedom). Otherwise the share is noise, or the
+            // cylinder's shape missing the vessel's, and taking it would
+            // lower T.
+            let (plain, r0) = fit_blurred(&s, &p, start, Free::Shape, half, blur);
+            let (with, r1) = fit_blurred(
+                &s,
+                &p,
+                [plain[0], plain[1], plain[2], plain[3], 0.2],
+                Free::All,
+                half,
+                blur,
+            );
+            let n = s.len() as f64;
+            let f = (r0 * r0 - r1 * r1) * n / (r1 * r1 * n / (n - 5.0)).max(1e-300);
+            blurred_reflex = with[4] > MIN_REFLEX_SHARE && f > REFLEX_F;
+            let (fq, r) = if blurred_reflex {
+                (with, r1)
+            } else {
+                (plain, r0)
+            };
+            sharp_and_share = Some(fq);
+            q = [fq[0], fq[1], fq[2], fq[3]];
+            rms = r;
+            bg = background(&s, &wv, q[1], q[2] + 2.0 + 2.0 * blur_sd).or(bg);
+        }
+        while blur.is_none() && (fits < 2 || (reflex.is_some() && fits < 3)) {
             fits += 1;
             let Some(bq) = bg else { break };
             let p: Vec<f64> = s
@@ -406,19 +393,9 @@ pub fn analyse_segment(
                 bg = background(&s, &wv, q[1], q[2] + 2.0).or(bg);
                 continue;
             }
-            let imin = (0..p.len())
-                .min_by(|i, j| p[*i].total_cmp(&p[*j]))
-                .unwrap_or(0);
             // The first fit starts from the profile's own depth and width.
             if fits == 1 {
-                let depth = (1.0 - p[imin]).max(0.01);
-                let inside = p.iter().filter(|v| **v < 1.0 - depth / 2.0).count() as f64 * 0.5;
-                q = [
-                    depth,
-                    s[imin].clamp(-half / 2.0, half / 2.0),
-                    (inside * 0.65).clamp(1.5, half * 0.8),
-                    1.0,
-                ];
+                q = first_guess(&s, &p, half);
             }
             let (fq, r) = fit_shape(&s, &p, q, None, half);
             q = fq;
@@ -457,7 +434,7 @@ pub fn analyse_segment(
                 backs.push(f64::NAN);
                 continue;
             };
-            let Some(bq) = background(&s, &v, c, r + 2.0) else {
+            let Some(bq) = background(&s, &v, c, r + 2.0 + 2.0 * blur_sd) else {
                 trans.push(f64::NAN);
                 backs.push(f64::NAN);
                 continue;
@@ -479,6 +456,10 @@ pub fn analyse_segment(
                     .filter(|(x, _)| (**x - xl).abs() < 0.26 || (**x - xr).abs() < 0.26)
                     .map(|(_, v)| *v)
                     .collect(),
+                // On the centre line. Through a blur, too: the blur and a
+                // reflex cannot be read around there, and what they add on
+                // the centre line has nearly the form of a veil (module
+                // docs), which the multiband fits' veil takes up.
                 None => s
                     .iter()
                     .zip(&p)
@@ -536,7 +517,7 @@ pub fn analyse_segment(
             background: backs,
             rms,
             flags,
-            reflex: reflex.is_some(),
+            reflex: reflex.is_some() || blurred_reflex,
         });
         k += 1;
         along += st.spacing_px;

@@ -1119,9 +1119,15 @@ fn study_yaml(sc: &Scenario, subjects: &[SimSubject]) -> String {
     let _ = writeln!(y, "protocol: protocol.yaml");
     let _ = writeln!(
         y,
-        "instrument:\n  name: \"{}\"\n  pixel_size_um: {}\n  bands:",
+        "instrument:\n  name: \"{}\"\n  pixel_size_um: {}",
         sc.instrument_name, sc.pixel_size_um
     );
+    if sc.optics.psf_px > 0.0 {
+        // The blur the simulator rendered, as a lab that measured its
+        // camera's point-spread function would give it.
+        let _ = writeln!(y, "  psf_sd_px: {}", sc.optics.psf_px);
+    }
+    let _ = writeln!(y, "  bands:");
     for (n, c, f) in &sc.bands {
         let _ = writeln!(y, "    - {{name: {n}, centre_nm: {c}, fwhm_nm: {f}}}");
     }

@@ -214,6 +214,7 @@ pub(crate) fn profile_settings(study: &Study) -> ProfileSettings {
         half_length_px: (PROFILE_HALF_LENGTH_UM / study.instrument.pixel_size_um)
             .max(PROFILE_MIN_HALF_LENGTH_PX)
             + PROFILE_MARGIN_PX,
+        psf_sd_px: study.instrument.psf_sd_px,
         ..ProfileSettings::default()
     }
 }
@@ -858,8 +859,22 @@ fn describe(study: &Study) -> String {
             "single TIFF frames holding the bands as a {columns} × {rows} grid of equal tiles, cut into one image per band"
         ),
     };
+    let (shape, beside) = if s.psf_sd_px > 0.0 {
+        (
+            format!(
+                "The cylinder was seen through the optics' blur: convolved with a Gaussian point-spread function of SD {} px (the instrument's, with the pixel's area and the profile's interpolation added in quadrature), with a central light reflex as a share of the absorbed light given back over the middle third of the diameter, kept where it lowered the residual significantly (F > 25).",
+                s.psf_sd_px
+            ),
+            "; through the blur a reflex cannot be read around, and its light stays in the centre-line value",
+        )
+    } else {
+        (
+            "Where a central light reflex brightened the axis (by more than 2 % of the background over both flanks), the cylinder was fitted without it.".to_string(),
+            ", or at the darkest points beside a reflex",
+        )
+    };
     format!(
-        "Captures were read as {read_as} and registered to the eye's earliest capture by a rigid transform (translation and rotation; phase correlation followed by normalised cross-correlation with sub-pixel interpolation in the band nearest 570 nm); captures with a match score below {MIN_REGISTRATION_SCORE} were flagged as not registered, and captures whose correlation fell below {MIN_REGION_SCORE} in any of {REGIONS} × {REGIONS} regions of the compared area (a partial blink, lashes or glare) as partly unmatched; neither was analysed. Along each vessel segment, intensity profiles were sampled across the vessel every {:.0} px by bilinear interpolation; a quadratic background was fitted to the outer parts of each profile and an absorbing-cylinder profile to the vessel, giving its centre, width (diameter at {:.1} µm per pixel) and fit residual. Transmission in each band was the intensity on the vessel's centre line divided by the background beneath it. Positions were flagged (off the image, contrast below {:.2}, residual too large, within {:.0} px of another segment) and flagged positions were not used.",
+        "Captures were read as {read_as} and registered to the eye's earliest capture by a rigid transform (translation and rotation; phase correlation followed by normalised cross-correlation with sub-pixel interpolation in the band nearest 570 nm); captures with a match score below {MIN_REGISTRATION_SCORE} were flagged as not registered, and captures whose correlation fell below {MIN_REGION_SCORE} in any of {REGIONS} × {REGIONS} regions of the compared area (a partial blink, lashes or glare) as partly unmatched; neither was analysed. Along each vessel segment, intensity profiles were sampled across the vessel every {:.0} px by bilinear interpolation; a quadratic background was fitted to the outer parts of each profile and an absorbing-cylinder profile to the vessel, giving its centre, width (diameter at {:.1} µm per pixel) and fit residual. {shape} Transmission in each band was the intensity on the vessel's centre line divided by the background beneath it{beside}. Positions were flagged (off the image, contrast below {:.2}, residual too large, within {:.0} px of another segment, a width below 2/3 or above 3/2 of the segment's median in that capture) and flagged positions were not used.",
         s.spacing_px, study.instrument.pixel_size_um, s.min_contrast, s.neighbour_margin_px
     )
 }

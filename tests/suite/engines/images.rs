@@ -468,6 +468,7 @@ fn dark_flat_and_band_offsets_are_corrected() {
         flat: Some(dir.path().join("flat.tif")),
         estimate_band_offsets: true,
         layout: Default::default(),
+        psf_sd_px: 0.0,
     };
     let as_img = |pages: &[Vec<u16>]| Multiband {
         width: w,
@@ -766,4 +767,72 @@ fn tiles_are_cut_from_one_frame() {
         e.contains("has 2 pages; with the instrument's tiled `layout`"),
         "{e}"
     );
+}
+
+/// With the instrument's point-spread function given, the profiles are
+/// fitted through it: on blurred arterioles of 80–160 µm (σ = 1 and 2 px),
+/// with and without a central reflex (40 % of the absorbed light given
+/// back over the central third, before the blur), the diameter is within
+/// 5 % of the truth while σ is at most a sixth of the diameter (10 %
+/// beyond: +8.5 % measured at 80 µm and σ = 2 px), and the reflex is found where it is, while the blur leaves it
+/// a bump (σ ≤ 1 px, or vessels of 130 µm and more), and not where it is
+/// not. Without the PSF the same images give diameters 8–30 % too wide
+/// (the test above).
+#[test]
+fn a_blurred_vessel_is_measured_through_the_point_spread_function() {
+    use satstep::images::profile::{ProfileSettings, analyse_segment};
+    use satstep::simulate::optics::Optics;
+    let bands = vec![
+        SampledBand::gaussian(570.0, 10.0),
+        SampledBand::gaussian(600.0, 10.0),
+    ];
+    let median = |mut v: Vec<f64>| {
+        v.sort_by(f64::total_cmp);
+        v[v.len() / 2]
+    };
+    for d_um in [80.0, 100.0, 130.0, 160.0] {
+        for psf in [1.0, 2.0] {
+            for reflex in [0.0, 0.4] {
+                let (seg, img) = straight_vessel(
+                    &bands,
+                    d_um,
+                    0.96,
+                    0.1,
+                    true,
+                    Optics {
+                        psf_px: psf,
+                        reflex,
+                        ..Default::default()
+                    },
+                );
+                let st = ProfileSettings {
+                    psf_sd_px: psf,
+                    ..ProfileSettings::default()
+                };
+                let res = analyse_segment(&img, &seg.points, &[], 0, &st);
+                let ok: Vec<_> = res.iter().filter(|r| r.flags.is_empty()).collect();
+                let case = format!("{d_um} µm, σ {psf} px, reflex {reflex}");
+                assert!(
+                    ok.len() * 10 >= res.len() * 9,
+                    "{case}: {} of {} usable",
+                    ok.len(),
+                    res.len()
+                );
+                let d = median(ok.iter().map(|r| r.diameter_px * 12.0).collect());
+                let found = ok.iter().filter(|r| r.reflex).count() as f64 / ok.len() as f64;
+                eprintln!(
+                    "{case}: diameter {d:.1} µm ({:+.1} %), reflex at {:.0} % of positions",
+                    (d / d_um - 1.0) * 100.0,
+                    found * 100.0
+                );
+                let tol = if psf * 12.0 <= d_um / 6.0 { 0.05 } else { 0.1 };
+                assert!((d / d_um - 1.0).abs() < tol, "{case}: {d}");
+                if reflex == 0.0 {
+                    assert!(found < 0.1, "{case}: false reflex at {found}");
+                } else if psf <= 1.0 || d_um >= 130.0 {
+                    assert!(found > 0.8, "{case}: reflex at {found}");
+                }
+            }
+        }
+    }
 }
