@@ -147,6 +147,7 @@ struct Site {
     status: Vec<ImageStatus>,
     position_counts: Vec<usize>,
     flag_counts: BTreeMap<String, usize>,
+    reflex_counts: BTreeMap<String, [usize; 2]>,
     fits: Vec<FitRow>,
     /// Every file read, with its hash.
     files: Vec<(PathBuf, Key, u64)>,
@@ -352,6 +353,7 @@ fn read_site(arg: &str) -> Result<Site> {
     // Positions and flags per capture, counted as the site's run counted them.
     let mut position_counts = vec![0usize; captures.len()];
     let mut flag_counts: BTreeMap<String, usize> = BTreeMap::new();
+    let mut reflex_counts: BTreeMap<String, [usize; 2]> = BTreeMap::new();
     let mut reader =
         csv::Reader::from_path(&ppath).with_context(|| format!("reading `{}`", ppath.display()))?;
     let positions = Csv {
@@ -365,6 +367,11 @@ fn read_site(arg: &str) -> Result<Site> {
         rows: Vec::new(),
     };
     let (pk, pfl) = (keys(&positions)?, positions.column("quality_flags")?);
+    // Older runs may lack these columns; their reflexes are then not counted.
+    let (pkind, preflex) = (
+        positions.header.iter().position(|h| h == "kind"),
+        positions.header.iter().position(|h| h == "central_reflex"),
+    );
     let mut rec = csv::StringRecord::new();
     let mut line = 1;
     while reader
@@ -376,6 +383,13 @@ fn read_site(arg: &str) -> Result<Site> {
         let flags = rec.get(pfl).unwrap_or("");
         if flags.is_empty() {
             *flag_counts.entry("unflagged".into()).or_default() += 1;
+            if let (Some(k), Some(r)) = (pkind, preflex) {
+                let e = reflex_counts
+                    .entry(rec.get(k).unwrap_or("").to_string())
+                    .or_default();
+                e[0] += 1;
+                e[1] += (rec.get(r) == Some("yes")) as usize;
+            }
         }
         for f in flags.split([';', ',', ' ']).filter(|f| !f.is_empty()) {
             *flag_counts.entry(f.to_string()).or_default() += 1;
@@ -483,6 +497,7 @@ fn read_site(arg: &str) -> Result<Site> {
         status,
         position_counts,
         flag_counts,
+        reflex_counts,
         fits,
         files,
     })
@@ -680,6 +695,7 @@ pub fn pool(args: &PoolArgs, printer: &Printer) -> Result<Exit> {
         spans: Vec::new(),
     };
     let (mut status, mut counts, mut flags) = (Vec::new(), Vec::new(), BTreeMap::new());
+    let mut reflex: BTreeMap<String, [usize; 2]> = BTreeMap::new();
     let mut per_method: Vec<Vec<FitRow>> = vec![Vec::new(); study.methods.len()];
     let mut inputs = Vec::new();
     for s in &sites {
@@ -708,6 +724,7 @@ pub fn pool(args: &PoolArgs, printer: &Printer) -> Result<Exit> {
         for (k, n) in &s.flag_counts {
             *flags.entry(k.clone()).or_default() += n;
         }
+        crate::stages::transmissions::add_reflex_counts(&mut reflex, &s.reflex_counts);
         for f in &s.fits {
             let Some(mi) = study.methods.iter().position(|m| m.label == f.method) else {
                 printer.error(format!(
@@ -741,6 +758,7 @@ pub fn pool(args: &PoolArgs, printer: &Printer) -> Result<Exit> {
         status,
         position_counts: counts,
         flag_counts: flags,
+        reflex_counts: reflex,
         // The sites' profile positions are not pooled (each capture's item
         // would be read from a site's cache); per-position figures are left out.
         keys: vec![Key([0; 32]); epochs.captures.len()],

@@ -126,6 +126,9 @@ pub struct TransmissionTables {
     pub position_counts: Vec<usize>,
     /// Positions by flag (`unflagged` for none), over all captures.
     pub flag_counts: BTreeMap<String, usize>,
+    /// Per vessel kind: unflagged positions, and those of them with a
+    /// central light reflex found.
+    pub reflex_counts: BTreeMap<String, [usize; 2]>,
     /// Each capture's cache key in this stage (downstream item keys build on it).
     pub keys: Vec<Key>,
 }
@@ -147,8 +150,9 @@ impl Transmissions {
 
 impl Stage for Transmissions {
     const NAME: &'static str = "transmissions";
-    // 9: profiles of odd width are flagged (`odd-width`).
-    const VERSION: u32 = 9;
+    // 9: profiles of odd width are flagged (`odd-width`); 10: reflexes
+    // counted per kind.
+    const VERSION: u32 = 10;
     const SUMMARY: &'static str =
         "registration and transmissions along each vessel segment, capture by capture";
     const UPSTREAM: &'static [&'static str] = &["epochs"];
@@ -187,9 +191,14 @@ impl Stage for Transmissions {
         t.write(run.out(), run.study, run.output::<Epochs>(), runner)
     }
 
-    /// Every capture that could not be read or registered, by name.
+    /// Every capture that could not be read or registered, by name; and a
+    /// central reflex on many arteriolar positions where a two-band method
+    /// takes its light in.
     fn report(run: &Run, runner: &Runner) {
         let (epochs, images) = (run.output::<Epochs>(), run.output::<Transmissions>());
+        if let Some(line) = reflex_warning(run.study, images) {
+            runner.warn(line);
+        }
         for i in images.failed() {
             runner.warn(format!(
                 "capture `{}` ({}): {}",
@@ -203,6 +212,40 @@ impl Stage for Transmissions {
     fn describe(run: &Run) -> Option<String> {
         Some(describe(run.study))
     }
+}
+
+/// Share of the usable arteriolar positions with a central reflex from
+/// which a study with a two-band method is warned.
+pub(crate) const REFLEX_WARN_SHARE: f64 = 0.1;
+
+/// The warning for a central reflex on more than [`REFLEX_WARN_SHARE`] of
+/// the usable positions of a kind, when a two-band method reads ODR from
+/// the transmissions (a reflex's light stays in T where it is read on the
+/// centre line, and raises T where it is read beside it less than where it
+/// is not found).
+pub(crate) fn reflex_warning(study: &Study, images: &TransmissionTables) -> Option<String> {
+    let two_band: Vec<&str> = study
+        .methods
+        .iter()
+        .filter(|m| matches!(m.kind, crate::config::study::MethodKind::TwoBand { .. }))
+        .map(|m| m.label.as_str())
+        .collect();
+    if two_band.is_empty() {
+        return None;
+    }
+    let shares: Vec<String> = images
+        .reflex_counts
+        .iter()
+        .filter(|(_, [n, r])| *n > 0 && *r as f64 > REFLEX_WARN_SHARE * *n as f64)
+        .map(|(k, [n, r])| format!("{r} of {n} usable {k} positions"))
+        .collect();
+    (!shares.is_empty()).then(|| {
+        format!(
+            "a central light reflex was found on {} (`central_reflex` in `transmissions/positions.csv`): the two-band ODR of {} takes in what the reflex leaves in the transmissions; the multiband fits' veil takes it up (README, \"Blurred captures\")",
+            shares.join(" and "),
+            two_band.iter().map(|l| format!("`{l}`")).collect::<Vec<_>>().join(", ")
+        )
+    })
 }
 
 /// One capture's item in the stage's cache.
@@ -271,33 +314,58 @@ pub(crate) fn nearest_band(study: &Study, nm: f64) -> usize {
         .unwrap_or(0)
 }
 
-fn tally_flags(rows: &[PositionRow]) -> BTreeMap<String, usize> {
+/// A capture's positions by flag, and per kind its unflagged positions
+/// and those with a reflex.
+fn tally_flags(rows: &[PositionRow]) -> (BTreeMap<String, usize>, BTreeMap<String, [usize; 2]>) {
     let mut flags: BTreeMap<String, usize> = BTreeMap::new();
+    let mut reflex: BTreeMap<String, [usize; 2]> = BTreeMap::new();
     for r in rows {
         if r.flags.is_empty() {
             *flags.entry("unflagged".into()).or_default() += 1;
+            let e = reflex.entry(r.kind.as_str().to_string()).or_default();
+            e[0] += 1;
+            e[1] += r.reflex as usize;
         }
         for f in &r.flags {
             *flags.entry(f.as_str().to_string()).or_default() += 1;
         }
     }
-    flags
+    (flags, reflex)
 }
 
-type Tally = (usize, ImageStatus, usize, BTreeMap<String, usize>);
+/// Adds one capture's reflex counts to a study's.
+pub(crate) fn add_reflex_counts(
+    to: &mut BTreeMap<String, [usize; 2]>,
+    from: &BTreeMap<String, [usize; 2]>,
+) {
+    for (k, [n, r]) in from {
+        let e = to.entry(k.clone()).or_default();
+        e[0] += n;
+        e[1] += r;
+    }
+}
+
+type Tally = (
+    usize,
+    ImageStatus,
+    usize,
+    (BTreeMap<String, usize>, BTreeMap<String, [usize; 2]>),
+);
 
 fn merge(
     results: Vec<Tally>,
     status: &mut [ImageStatus],
     counts: &mut [usize],
     flags: &mut BTreeMap<String, usize>,
+    reflex: &mut BTreeMap<String, [usize; 2]>,
 ) {
-    for (i, st, n, f) in results {
+    for (i, st, n, (f, r)) in results {
         status[i] = st;
         counts[i] = n;
         for (k, c) in f {
             *flags.entry(k).or_default() += c;
         }
+        add_reflex_counts(reflex, &r);
     }
 }
 
@@ -352,7 +420,7 @@ pub(crate) fn from_spectra(
             registration: None,
         })
         .collect();
-    let (mut counts, mut flags) = (vec![0; n], BTreeMap::new());
+    let (mut counts, mut flags, mut reflex) = (vec![0; n], BTreeMap::new(), BTreeMap::new());
     let analysed: Vec<usize> = (0..n)
         .filter(|i| epochs.captures[*i].status.analysed() && items.holds(&keys[*i]))
         .collect();
@@ -400,11 +468,12 @@ pub(crate) fn from_spectra(
             (i, st, rows.len(), tally_flags(&rows))
         })
         .collect();
-    merge(results, &mut status, &mut counts, &mut flags);
+    merge(results, &mut status, &mut counts, &mut flags, &mut reflex);
     TransmissionTables {
         status,
         position_counts: counts,
         flag_counts: flags,
+        reflex_counts: reflex,
         keys,
     }
 }
@@ -527,6 +596,7 @@ pub fn build(
         .collect();
     let mut position_counts = vec![0; epochs.captures.len()];
     let mut flag_counts: BTreeMap<String, usize> = BTreeMap::new();
+    let mut reflex_counts: BTreeMap<String, [usize; 2]> = BTreeMap::new();
     for (key, idx) in &groups {
         let segs = segments.get(key).cloned().unwrap_or_default();
         let analysed: Vec<usize> = idx
@@ -551,7 +621,7 @@ pub fn build(
             .copied()
             .filter(|i| items.holds(&keys[*i]))
             .collect();
-        let results: Vec<(usize, ImageStatus, usize, BTreeMap<String, usize>)> = mine
+        let results: Vec<Tally> = mine
             .par_iter()
             .map(|&i| {
                 let (st, rows): CaptureItem = items.get_or_compute(&keys[i], || {
@@ -598,12 +668,19 @@ pub fn build(
                 (i, st, rows.len(), tally_flags(&rows))
             })
             .collect();
-        merge(results, &mut status, &mut position_counts, &mut flag_counts);
+        merge(
+            results,
+            &mut status,
+            &mut position_counts,
+            &mut flag_counts,
+            &mut reflex_counts,
+        );
     }
     TransmissionTables {
         status,
         position_counts,
         flag_counts,
+        reflex_counts,
         keys,
     }
 }

@@ -1049,6 +1049,13 @@ pub fn data_quality(study: &Study, images: &TransmissionTables, fits: &[FitRow])
             images.total_positions().to_string(),
         ]);
     }
+    for (kind, [n, r]) in &images.reflex_counts {
+        t.rows.push(vec![
+            format!("usable {kind} positions with a central light reflex"),
+            r.to_string(),
+            n.to_string(),
+        ]);
+    }
     for m in &study.methods {
         let vals: Vec<f64> = fits
             .iter()

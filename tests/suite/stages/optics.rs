@@ -390,7 +390,17 @@ fn blurred_captures_are_measured_through_the_point_spread_function() {
     for s in [with.clone(), plain.clone(), sharp.clone()] {
         let o = satstep(dir.path(), &["--no-progress", "run", s.to_str().unwrap()]);
         assert_eq!(o.code, 0, "{}", o.stderr);
+        // The reflex reaches the console where a two-band method reads ODR,
+        // and the report's data-quality table counts it.
+        let warned = o.stderr.contains("a central light reflex was found on")
+            && o.stderr.contains("the two-band ODR of `two-band`");
+        assert_eq!(warned, s != plain, "{}", o.stderr);
     }
+    let report = std::fs::read_to_string(with.join("results/report/report.html")).unwrap();
+    assert!(
+        report.contains("usable arteriole positions with a central light reflex"),
+        "the data-quality table counts the reflex"
+    );
     let (so2_with, diam_with) = errors_against_truth(&with, "results");
     let (so2_plain, _) = errors_against_truth(&plain, "results");
     let (_, diam_sharp) = errors_against_truth(&with, "results-sharp");
