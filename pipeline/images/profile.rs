@@ -104,7 +104,8 @@ pub struct ProfileResult {
     pub background: Vec<f64>,
     pub rms: f64,
     pub flags: Vec<Flag>,
-    /// A central light reflex was found (T read beside it).
+    /// A central light reflex was found (T read beside it; with a blur,
+    /// on the centre line with the reflex's light in it).
     pub reflex: bool,
 }
 
@@ -138,8 +139,9 @@ fn first_guess(s: &[f64], p: &[f64], half: f64) -> [f64; 4] {
     ]
 }
 
-/// With a blur, a fitted reflex share above this is reported as a reflex
-/// (and its lift taken off T); below, it is noise on a plain vessel.
+/// With a blur, a fitted reflex share above this (and significant, see
+/// [`REFLEX_F`]) is reported as a reflex; below, it is noise on a plain
+/// vessel.
 const MIN_REFLEX_SHARE: f64 = 0.05;
 
 /// What pixel integration and bilinear sampling add to the optics'
@@ -326,8 +328,8 @@ pub fn analyse_segment(
         // if found, the shape is refitted without it and T is read at the
         // darkest points beside it.
         let mut reflex: Option<(f64, f64)> = None;
-        // With a blur: the blurred model and its reflex share, (A, c, r, κ, ρ).
-        let mut sharp_and_share: Option<[f64; 5]> = None;
+        // With a blur: the blurred model's fit, (A, c, r, κ, ρ).
+        let mut blurred_fit: Option<[f64; 5]> = None;
         let mut blurred_reflex = false;
         let mut fits = 0;
         while let Some(blur) = &blur {
@@ -340,7 +342,7 @@ pub fn analyse_segment(
                 .zip(&wv)
                 .map(|(x, v)| v / eval_bg(&bq, *x))
                 .collect();
-            let start = match sharp_and_share {
+            let start = match blurred_fit {
                 Some(q5) => q5,
                 None => {
                     let q0 = first_guess(&s, &p, half);
@@ -351,8 +353,8 @@ pub fn analyse_segment(
             // extra sum of squares its share removes, against the residual
             // variance with it, beyond an F of [`REFLEX_F`] (1 and n − 5
             // degrees of freedom). Otherwise the share is noise, or the
-            // cylinder's shape missing the vessel's, and taking it would
-            // lower T.
+            // cylinder's shape missing the vessel's, and would report a
+            // reflex that is not there.
             let (plain, r0) = fit_blurred(&s, &p, start, Free::Shape, half, blur);
             let (with, r1) = fit_blurred(
                 &s,
@@ -370,7 +372,7 @@ pub fn analyse_segment(
             } else {
                 (plain, r0)
             };
-            sharp_and_share = Some(fq);
+            blurred_fit = Some(fq);
             q = [fq[0], fq[1], fq[2], fq[3]];
             rms = r;
             bg = background(&s, &wv, q[1], q[2] + 2.0 + 2.0 * blur_sd).or(bg);

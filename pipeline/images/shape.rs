@@ -12,9 +12,10 @@
 //! +17 % at σ = 1.5 px on a 130 µm vessel) and flattens the reflex's bump
 //! below what a bump test sees. The fit gives the vessel's centre and
 //! width; the transmission is still read from the data on the centre line.
-//! What the blur and a reflex add there is, to first order, `H·A` less
-//! depth and `ρ(1 − T)` more light, the form of a veil, which the
-//! multiband fits' veil takes up. Removing it with the fitted depth and
+//! To first order the blur scales the vessel's depth there by a factor
+//! H < 1 (the kernel's mean of the cylinder's profile), `1 − H·A`, and a
+//! reflex gives back `ρ(1 − T)` of the light: both have the form of a
+//! veil, `k + (1 − k)·T`, which the multiband fits' veil takes up. Removing it with the fitted depth and
 //! share did worse on simulated studies (their depth overshoots at strong
 //! absorption, and a share decided position by position breaks the joint
 //! fit's veil along the segment): DEVELOPERS.md has the figures.

@@ -58,7 +58,7 @@ pub struct PositionRow {
     pub diameter_um: f64,
     /// Why the position is not used; empty when it is.
     pub flags: Vec<Flag>,
-    /// A central light reflex was found (T read beside it).
+    /// A central light reflex was found (see [`crate::images::profile::ProfileResult`]).
     pub reflex: bool,
     pub transmission: Vec<f64>,
 }
