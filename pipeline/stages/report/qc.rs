@@ -410,6 +410,15 @@ pub(crate) fn proposal_overlay(
         let to_view =
             |p: (f64, f64)| (GAP as i32 + (p.0 * scale) as i32, 40 + (p.1 * scale) as i32);
         let bounds = (0.0, 0.0, bw as f64, bh as f64);
+        // A line, dashed where the kind is unsure.
+        let stroke = |pts: Vec<(i32, i32)>, colour: RGBColor, dashed: bool| {
+            let style = colour.stroke_width(3);
+            if dashed {
+                root.draw(&plotters::element::DashedPathElement::new(pts, 6, 4, style))
+            } else {
+                root.draw(&PathElement::new(pts, style))
+            }
+        };
         for l in lines {
             let colour = if l.kind == VesselKind::Arteriole {
                 ARTERIOLE
@@ -418,16 +427,7 @@ pub(crate) fn proposal_overlay(
             };
             for piece in clip(l.points, bounds) {
                 let pts: Vec<(i32, i32)> = piece.iter().map(|p| to_view(*p)).collect();
-                if l.unsure {
-                    root.draw(&plotters::element::DashedPathElement::new(
-                        pts,
-                        6,
-                        4,
-                        colour.stroke_width(3),
-                    ))?;
-                } else {
-                    root.draw(&PathElement::new(pts, colour.stroke_width(3)))?;
-                }
+                stroke(pts, colour, l.unsure)?;
             }
             let mid = to_view(l.points[l.points.len() / 2]);
             root.draw_text(
@@ -444,17 +444,7 @@ pub(crate) fn proposal_overlay(
         ];
         for (k, (text, colour, dashed)) in rows.into_iter().enumerate() {
             let y = ky + 24 * k as i32;
-            let pts = vec![(kx, y), (kx + 30, y)];
-            if dashed {
-                root.draw(&plotters::element::DashedPathElement::new(
-                    pts,
-                    6,
-                    4,
-                    colour.stroke_width(3),
-                ))?;
-            } else {
-                root.draw(&PathElement::new(pts, colour.stroke_width(3)))?;
-            }
+            stroke(vec![(kx, y), (kx + 30, y)], colour, dashed)?;
             root.draw_text(text, &label(14), (kx + 38, y - 8))?;
         }
         root.present()?;
