@@ -474,6 +474,7 @@ fn read_site(arg: &str) -> Result<Site> {
             veil_slope: so2.real(i, fveil)?,
             backscatter_scale: so2.real(i, fback)?,
             fundus_slope: so2.real(i, ffund)?,
+            alternatives: Vec::new(),
         });
     }
     let subjects = study.subjects.len();

@@ -26,8 +26,8 @@ use crate::oximetry::odr::{
 };
 use crate::oximetry::pointwise::fit_pointwise;
 use crate::oximetry::segment::{
-    ADEQUACY_FALSE_ALARM, Adequacy, FitSettings, MISFIT_MIN_RESIDUAL, RobustLoss, SegmentFitError,
-    SegmentSpectra, fit_segment, fit_segment_choosing,
+    ADEQUACY_FALSE_ALARM, Adequacy, Candidate, FitSettings, MISFIT_MIN_RESIDUAL, RobustLoss,
+    SegmentFit, SegmentFitError, SegmentSpectra, choose_across, fit_candidates, fit_segment,
 };
 use crate::oximetry::sensitivity::supported_models;
 use crate::runner::key::{Key, KeyBuilder};
@@ -206,6 +206,18 @@ pub struct FitRow {
     pub veil_slope: Option<f64>,
     pub backscatter_scale: Option<f64>,
     pub fundus_slope: Option<f64>,
+    /// `model: auto`: every candidate model's fit of this capture's
+    /// segment, until the choice across the eye's fits (`choose_models`)
+    /// replaces the row by one of them.
+    pub alternatives: Vec<Alternative>,
+}
+
+/// One candidate model's fit of a segment in one capture, as a whole row
+/// and as the choice sees it.
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
+pub struct Alternative {
+    pub candidate: Candidate,
+    pub row: FitRow,
 }
 
 impl FitRow {
@@ -221,7 +233,7 @@ pub struct Fits;
 
 impl Stage for Fits {
     const NAME: &'static str = "fits";
-    const VERSION: u32 = 7;
+    const VERSION: u32 = 8;
     const SUMMARY: &'static str = "SO2 of every segment of every capture by each method";
     const UPSTREAM: &'static [&'static str] = &["epochs", "transmissions"];
     type Output = FitTables;
@@ -380,6 +392,7 @@ pub(crate) fn assemble(
     let mut out = Vec::new();
     let mut calibrations = Vec::new();
     for (m, mut rows) in study.methods.iter().zip(per_method) {
+        choose_models(&mut rows, epochs);
         if let MethodKind::TwoBand {
             calibration,
             diameter_correction,
@@ -526,6 +539,7 @@ fn fit_capture(
                 veil_slope: None,
                 backscatter_scale: None,
                 fundus_slope: None,
+                alternatives: Vec::new(),
             };
             if pos.len() < MIN_POSITIONS {
                 return row;
@@ -577,29 +591,35 @@ fn fit_capture(
                         }
                     } else {
                         let fitted = match &prep.candidates[..] {
-                            [one] => fit_segment(one, &spectra, settings),
-                            all => fit_segment_choosing(all, &spectra, settings),
+                            [one] => fit_segment(one, &spectra, settings).map(|f| vec![f]),
+                            all => fit_candidates(all, &spectra, settings),
                         };
                         match fitted {
-                            Ok(f) => {
-                                row.model = Some(f.model.name());
-                                let fitted = |v: (f64, f64)| Some(v.0).filter(|x| x.is_finite());
-                                row.veil_slope = fitted(f.veil_slope);
-                                row.backscatter_scale = fitted(f.backscatter_scale);
-                                row.fundus_slope = fitted(f.fundus_slope);
-                                row.so2 = Some(f.so2 * 100.0);
-                                row.so2_se = Some(f.so2_se * 100.0);
-                                row.reduced_chi2 = Some(f.reduced_chi2);
-                                row.adequacy = Some(f.adequacy);
-                                row.misfit_t = Some(f.misfit_t).filter(|t| t.is_finite());
-                                row.band_residuals = sel
+                            Ok(fits) => {
+                                let mut alternatives: Vec<Alternative> = fits
                                     .iter()
-                                    .zip(&f.band_residuals)
-                                    .map(|(b, r)| (*b, r * 100.0))
+                                    .map(|f| {
+                                        let mut r = row.clone();
+                                        fill_joint(&mut r, f, sel);
+                                        Alternative {
+                                            candidate: Candidate::of(f),
+                                            row: r,
+                                        }
+                                    })
                                     .collect();
-                                row.iterations = f.iterations as i64;
-                                row.evaluations = f.evaluations as i64;
-                                Outcome::Joint(f.termination)
+                                // This fit's own choice; `assemble` replaces it
+                                // by the choice across the eye's fits.
+                                let candidates: Vec<Candidate> =
+                                    alternatives.iter().map(|a| a.candidate.clone()).collect();
+                                let (i, se) = choose_across(&[candidates])[0]
+                                    .expect("every alternative was fitted");
+                                let mut chosen = alternatives[i].row.clone();
+                                chosen.so2_se = Some(se * 100.0);
+                                if alternatives.len() > 1 {
+                                    chosen.alternatives = std::mem::take(&mut alternatives);
+                                }
+                                row = chosen;
+                                row.termination.clone()
                             }
                             Err(e) => Outcome::NotFitted(e),
                         }
@@ -609,6 +629,67 @@ fn fit_capture(
             row
         };
         keys.iter().map(fit_one).collect()
+    }
+}
+
+/// A row's fields from a joint fit (`sel`: the method's bands).
+fn fill_joint(row: &mut FitRow, f: &SegmentFit, sel: &[usize]) {
+    row.model = Some(f.model.name());
+    let fitted = |v: (f64, f64)| Some(v.0).filter(|x| x.is_finite());
+    row.veil_slope = fitted(f.veil_slope);
+    row.backscatter_scale = fitted(f.backscatter_scale);
+    row.fundus_slope = fitted(f.fundus_slope);
+    row.so2 = Some(f.so2 * 100.0);
+    row.so2_se = Some(f.so2_se * 100.0);
+    row.reduced_chi2 = Some(f.reduced_chi2);
+    row.adequacy = Some(f.adequacy);
+    row.misfit_t = Some(f.misfit_t).filter(|t| t.is_finite());
+    row.band_residuals = sel
+        .iter()
+        .zip(&f.band_residuals)
+        .map(|(b, r)| (*b, r * 100.0))
+        .collect();
+    row.iterations = f.iterations as i64;
+    row.evaluations = f.evaluations as i64;
+    row.termination = Outcome::Joint(f.termination);
+}
+
+/// `model: auto`'s choice across each eye's fits ([`choose_across`]): the
+/// rows of one method that carry alternatives, grouped by subject, session
+/// and eye (all its segments in all its captures), each replaced by its
+/// fit of the model chosen for the eye, its SE widened by the choice's
+/// uncertainty. Rows without alternatives are left as they are.
+fn choose_models(rows: &mut [FitRow], epochs: &EpochTables) {
+    let mut groups: BTreeMap<(&str, &str, &str), Vec<usize>> = BTreeMap::new();
+    for (i, r) in rows.iter().enumerate() {
+        if !r.alternatives.is_empty() {
+            let c = &epochs.captures[r.capture_index];
+            groups
+                .entry((&c.subject, &c.session, &c.eye))
+                .or_default()
+                .push(i);
+        }
+    }
+    for members in groups.into_values() {
+        let candidates: Vec<Vec<Candidate>> = members
+            .iter()
+            .map(|&i| {
+                rows[i]
+                    .alternatives
+                    .iter()
+                    .map(|a| a.candidate.clone())
+                    .collect()
+            })
+            .collect();
+        for (&i, choice) in members.iter().zip(choose_across(&candidates)) {
+            if let Some((k, se)) = choice {
+                let mut chosen = rows[i].alternatives[k].row.clone();
+                chosen.so2_se = Some(se * 100.0);
+                chosen.capture_index = rows[i].capture_index;
+                rows[i] = chosen;
+            }
+            rows[i].alternatives.clear();
+        }
     }
 }
 
@@ -921,7 +1002,7 @@ fn model_sentence(choice: ModelChoice, bands: &[SampledBand]) -> String {
                 .map(|s| describe(s.extensions))
                 .collect();
             format!(
-                " For each segment the model was chosen by Schwarz's information criterion (with the residual sum of squares under the Huber loss at a cut-off of 1.5 times the stated noise) among the base model and its extensions that these {} bands separate from SO2, that is those that inflate its standard error at most {}-fold: {}; each extension is one parameter shared along the segment.",
+                " For each eye and session one model was chosen for all its segments and captures, by the sum over its fits of Schwarz's information criterion (with the residual sum of squares under the Huber loss at a cut-off of 1.5 times the stated noise, over a count of residuals made effective for their correlation along the segment), among the base model and its extensions that these {} bands separate from SO2, that is those that inflate its standard error at most {}-fold: {}. Each extension is one parameter shared along a segment and fitted anew in each capture; each SO2's standard error includes the uncertainty of the choice (Buckland, Burnham and Augustin, 1997).",
                 bands.len(),
                 crate::oximetry::sensitivity::SUPPORT_MAX_INFLATION,
                 if supported.is_empty() {

@@ -11,7 +11,8 @@ use rayon::prelude::*;
 use satstep::oximetry::bands::SampledBand;
 use satstep::oximetry::model::{BLOOD_BACKSCATTER, Extensions, VesselModel};
 use satstep::oximetry::segment::{
-    Adequacy, FitSettings, SegmentFit, SegmentSpectra, fit_segment, fit_segment_choosing,
+    Adequacy, Candidate, FitSettings, SegmentFit, SegmentSpectra, choose_across, fit_candidates,
+    fit_segment,
 };
 use satstep::simulate::optics::{BandOptics, Optics};
 use satstep::simulate::render::background_reflectance;
@@ -66,12 +67,17 @@ pub fn model(ext: Extensions) -> VesselModel {
     VesselModel::new(&bands(), |_| 1.0, BLOOD_BACKSCATTER).with_extensions(ext)
 }
 
-/// How a fit is chosen: one model, or the information criterion over all.
+/// How a fit is chosen: one model, or the information criterion over all,
+/// as `model: auto` chooses: once per eye, over all its segments (here
+/// [`EYES`] eyes, each with segments at both saturations).
 #[derive(Clone, Copy)]
 pub enum Fitting {
     One(Extensions),
     Auto,
 }
+
+/// Eyes the `auto` fits are grouped into.
+pub const EYES: u64 = 4;
 
 pub struct Summary {
     pub bias: f64,
@@ -87,18 +93,35 @@ pub fn summary(optics: &Optics, k: f64, fitting: Fitting, reps: u64) -> Summary 
         .iter()
         .flat_map(|s| (0..reps).map(move |i| (*s, i)))
         .collect();
-    let fits: Vec<(f64, SegmentFit)> = cases
+    let fitted: Vec<Vec<SegmentFit>> = cases
         .par_iter()
         .map(|(s, i)| {
             let data = spectra(optics, *s, k, 60, i * 7919 + (s * 100.0) as u64);
-            let f = match fitting {
-                Fitting::One(e) => fit_segment(&model(e), &data, &FitSettings::default()),
-                Fitting::Auto => fit_segment_choosing(&candidates, &data, &FitSettings::default()),
+            match fitting {
+                Fitting::One(e) => {
+                    fit_segment(&model(e), &data, &FitSettings::default()).map(|f| vec![f])
+                }
+                Fitting::Auto => fit_candidates(&candidates, &data, &FitSettings::default()),
             }
-            .unwrap();
-            (*s, f)
+            .unwrap()
         })
         .collect();
+    let mut fits: Vec<(f64, SegmentFit)> = Vec::new();
+    for eye in 0..EYES {
+        let members: Vec<usize> = (0..cases.len())
+            .filter(|c| cases[*c].1 % EYES == eye)
+            .collect();
+        let summaries: Vec<Vec<Candidate>> = members
+            .iter()
+            .map(|c| fitted[*c].iter().map(Candidate::of).collect())
+            .collect();
+        for (c, choice) in members.iter().zip(choose_across(&summaries)) {
+            let (j, se) = choice.unwrap();
+            let mut f = fitted[*c][j].clone();
+            f.so2_se = se;
+            fits.push((cases[*c].0, f));
+        }
+    }
     let n = fits.len() as f64;
     let err: Vec<f64> = fits.iter().map(|(s, f)| (f.so2 - s) * 100.0).collect();
     let mut chosen: std::collections::BTreeMap<String, usize> = Default::default();

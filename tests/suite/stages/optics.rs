@@ -106,9 +106,10 @@ fn auto_model_recovers_what_a_wavelength_dependent_veil_hides() {
         "auto: median error {auto_err:+.2}, misfits {:.1} %, {auto_models:?}",
         auto_misfit * 100.0
     );
-    // Measured: base +7.6 points with 95 % misfits; auto −3.6 with 4 %,
-    // veil or fundus slopes in 95 % of fits (the image stage's own errors
-    // leave about −2 points on this scene with no effect at all).
+    // Measured: base +6.8 points with 96 % misfits; auto −3.8 with 6 %,
+    // the veil slope (alone or with the fundus slope) in every fit (the
+    // image stage's own errors leave about −2 points on this scene with no
+    // effect at all).
     assert!(base_misfit >= 0.9, "{base_misfit}");
     assert!(base_err > 5.0, "{base_err}");
     assert!(auto_misfit < 0.1, "{auto_misfit}");
@@ -139,7 +140,7 @@ fn auto_model_recovers_what_a_wavelength_dependent_veil_hides() {
         })
         .collect();
     let contrasts = records(&s.join("results/statistics/contrasts.csv"));
-    let off = |method: &str| -> f64 {
+    let ratios = |method: &str| -> Vec<f64> {
         let ratios: Vec<f64> = contrasts
             .iter()
             .filter(|r| r["method"] == method)
@@ -150,19 +151,26 @@ fn auto_model_recovers_what_a_wavelength_dependent_veil_hides() {
             .collect();
         assert_eq!(ratios.len(), 4, "{method}");
         eprintln!("{method}: measured / true change {ratios:.3?}");
-        ratios.iter().map(|q| (q - 1.0).abs()).sum::<f64>() / ratios.len() as f64
+        ratios
     };
-    // Measured: base 0.83–0.91 of the truth (mean |ratio − 1| 0.13),
-    // auto 0.89–1.09 (0.08); before profiles of odd width were flagged,
-    // 0.81–0.92 (0.14) and 0.95–1.11 (0.05).
-    let (base_off, auto_off) = (off("multiband"), off("multiband-auto"));
+    let off = |method: &str| -> f64 {
+        let r = ratios(method);
+        r.iter().map(|q| (q - 1.0).abs()).sum::<f64>() / r.len() as f64
+    };
+    // Measured: base 0.83–0.91 of the truth (mean |ratio − 1| 0.13);
+    // auto 0.986–1.049 (0.037), with one model per eye. Chosen fit by fit,
+    // auto gave 0.89–1.09, and chosen per segment over its captures
+    // 1.04–1.13 (`choose_across`).
+    let base_off = off("multiband");
     assert!(base_off > 0.08, "{base_off}");
-    assert!(auto_off < 0.7 * base_off, "{auto_off} vs {base_off}");
+    for r in ratios("multiband-auto") {
+        assert!((r - 1.0).abs() < 0.05, "auto: {r}");
+    }
 
     // Two-band: classical calibration (ODR regressed on SpO2, inverted)
     // keeps the induced changes whole, within subjects and across them.
-    // Measured: within-subject 0.96–1.00 of the truth, across subjects
-    // 0.99–1.05; regressing SpO2 on ODR instead gave 0.70 and 0.46.
+    // Measured: within-subject 0.95–1.01 of the truth, across subjects
+    // 0.98–1.06; regressing SpO2 on ODR instead gave 0.70 and 0.46.
     for m in ["two-band", "two-band-within", "two-band-regression"] {
         let o = off(m);
         assert!(o < 0.08, "{m}: {o}");
@@ -282,8 +290,8 @@ fn auto_model_recovers_what_a_wavelength_dependent_veil_hides() {
     assert!(report.contains("calibrated within each subject by classical calibration"));
 
     // The SE of a chosen model includes the uncertainty of the choice, so
-    // it matches the scatter of repeated captures (measured: 0.81; 1.68
-    // before the choice was counted; on SO2 − truth 0.68 and 1.57).
+    // it matches the scatter of repeated captures (measured: 1.00; 1.68
+    // before the choice was counted; on SO2 − truth 0.85 and 1.57).
     let (raw, err) = se_scatter_ratio(&s, "multiband-auto");
     eprintln!("multiband-auto: capture scatter / SE {raw:.2} (errors {err:.2})");
     assert!((1.0 / 1.5..=1.5).contains(&raw), "{raw} {err}");
