@@ -525,8 +525,38 @@ pub fn analyse_segment(
         along += st.spacing_px;
     }
     flag_odd_widths(&mut out);
+    if blur.is_some() {
+        spread_reflex(&mut out);
+    }
     out
 }
+
+/// A reflex belongs to the vessel, not to one profile: where at least
+/// [`REFLEX_SEGMENT_SHARE`] of a segment's usable positions show one by the
+/// test of `analyse_segment` (a share above [`MIN_REFLEX_SHARE`] at an F
+/// above [`REFLEX_F`]), every usable position of the segment is marked.
+/// Through a blur that test misses the reflex on many profiles of a vessel
+/// that carries it (about 40 % of arteriolar ones at σ = 1.5 px), while it
+/// never fired on a vessel without one. Only the mark changes: the other
+/// positions keep the fit without the reflex term, and T is read on the
+/// centre line either way, the reflex's light in it.
+fn spread_reflex(out: &mut [ProfileResult]) {
+    let usable = out.iter().filter(|p| p.flags.is_empty()).count();
+    let shown = out
+        .iter()
+        .filter(|p| p.flags.is_empty() && p.reflex)
+        .count();
+    if usable == 0 || (shown as f64) < REFLEX_SEGMENT_SHARE * usable as f64 {
+        return;
+    }
+    for p in out.iter_mut().filter(|p| p.flags.is_empty()) {
+        p.reflex = true;
+    }
+}
+
+/// The share of a segment's usable positions with a reflex shown above
+/// which the whole segment is marked (`spread_reflex`).
+const REFLEX_SEGMENT_SHARE: f64 = 0.25;
 
 /// A vessel's width changes slowly along a segment; a profile whose
 /// fitted width is far from the rest has met something else: a vessel

@@ -151,8 +151,9 @@ impl Transmissions {
 impl Stage for Transmissions {
     const NAME: &'static str = "transmissions";
     // 9: profiles of odd width are flagged (`odd-width`); 10: reflexes
-    // counted per kind.
-    const VERSION: u32 = 10;
+    // counted per kind; 11: through a blur, a reflex shown on a quarter of
+    // a segment's positions marks them all.
+    const VERSION: u32 = 11;
     const SUMMARY: &'static str =
         "registration and transmissions along each vessel segment, capture by capture";
     const UPSTREAM: &'static [&'static str] = &["epochs"];

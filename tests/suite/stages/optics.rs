@@ -433,7 +433,10 @@ fn blurred_captures_are_measured_through_the_point_spread_function() {
         a * 100.0,
         v * 100.0
     );
-    assert!(a > 0.4 && v < 0.02, "{a} {v}");
+    // Measured: 88 % and 0 % (60 % of arteriolar positions by the
+    // position test alone, before a segment showing it on a quarter of its
+    // positions was marked whole).
+    assert!(a > 0.8 && v < 0.02, "{a} {v}");
 
     for method in ["multiband", "multiband-pointwise", "two-band"] {
         let key = (method.to_string(), "arteriole".to_string());
