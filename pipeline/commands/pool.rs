@@ -334,6 +334,7 @@ fn read_site(arg: &str) -> Result<Site> {
             status: ImageOutcome::NotAnalysed,
             message: None,
             registration: None,
+            blur: None,
         })
         .collect();
     let (ik, ist, imsg) = (
@@ -347,6 +348,7 @@ fn read_site(arg: &str) -> Result<Site> {
             status: images.word(i, ist)?,
             message: images.opt_text(i, imsg),
             registration: None,
+            blur: None,
         };
     }
 

@@ -220,6 +220,35 @@ fn distance_to(points: &[(f64, f64)], p: (f64, f64)) -> f64 {
         .fold(f64::INFINITY, f64::min)
 }
 
+/// A point or a direction in the image, px.
+type Point = (f64, f64);
+
+/// The profile across `line` at `along` pixels down it (`cum` its
+/// [`arc_lengths`]): the centre, the unit normal, and the image points at
+/// the offsets `s` along the normal (`None` where one is off the image).
+fn profile_taps(
+    img: &Multiband,
+    line: &[(f64, f64)],
+    cum: &[f64],
+    along: f64,
+    s: &[f64],
+) -> (Point, Point, Option<Vec<Tap>>) {
+    let (centre, (tx, ty)) = locate(line, cum, along);
+    let normal = (-ty, tx);
+    let taps = s
+        .iter()
+        .map(|d| {
+            Tap::new(
+                img.width,
+                img.height,
+                centre.0 + d * normal.0,
+                centre.1 + d * normal.1,
+            )
+        })
+        .collect();
+    (centre, normal, taps)
+}
+
 /// Analyses one segment (its polyline already in this capture's coordinates).
 /// Cumulative length of a polyline at each of its points, from 0.
 pub(crate) fn arc_lengths(line: &[(f64, f64)]) -> Vec<f64> {
@@ -280,21 +309,9 @@ pub fn analyse_segment(
     let mut along = st.end_margin_px;
     let mut k = 0;
     while along <= total - st.end_margin_px {
-        let (centre, (tx, ty)) = locate(line, &cum, along);
-        let normal = (-ty, tx);
         let mut flags = Vec::new();
         // The profile's points are located once and read in every band.
-        let taps: Option<Vec<Tap>> = s
-            .iter()
-            .map(|d| {
-                Tap::new(
-                    img.width,
-                    img.height,
-                    centre.0 + d * normal.0,
-                    centre.1 + d * normal.1,
-                )
-            })
-            .collect();
+        let (centre, normal, taps) = profile_taps(img, line, &cum, along, &s);
         let sample = |band: usize| -> Option<Vec<f64>> {
             let taps = taps.as_ref()?;
             Some(taps.iter().map(|t| t.read(&img.bands[band])).collect())
@@ -558,6 +575,97 @@ fn spread_reflex(out: &mut [ProfileResult]) {
 /// which the whole segment is marked (`spread_reflex`).
 const REFLEX_SEGMENT_SHARE: f64 = 0.25;
 
+/// The point-spread SDs (px, the optics' part) at which [`blur_evidence`]
+/// weighs a segment's profiles.
+pub const BLUR_GRID_PX: [f64; 7] = [0.0, 0.5, 1.0, 1.5, 2.0, 2.5, 3.0];
+
+/// The Gaussian blur that best describes each of a segment's profiles at
+/// `positions` (distances along the line, px): the blurred vessel model
+/// (its reflex term free, so that a reflex is not taken for a blur) is
+/// fitted at each SD of [`BLUR_GRID_PX`], and the SD of least residual is
+/// refined by [`estimate_blur`]. Profiles that cannot be read or placed
+/// are passed over. For a study run without `psf_sd_px`, so that a blur it
+/// does not know of is found; the position's profile, background and
+/// first fit are those of [`analyse_segment`].
+pub fn blur_evidence(
+    img: &Multiband,
+    line: &[(f64, f64)],
+    positions: &[f64],
+    width_band: usize,
+    st: &ProfileSettings,
+) -> Vec<f64> {
+    let cum = arc_lengths(line);
+    let half = st.half_length_px;
+    let s: Vec<f64> = (0..=(4.0 * half) as usize)
+        .map(|i| -half + 0.5 * i as f64)
+        .collect();
+    let blurs: Vec<Blur> = BLUR_GRID_PX
+        .iter()
+        .filter_map(|sd| Blur::new((sd * sd + SAMPLING_VARIANCE_PX2).sqrt(), 0.5))
+        .collect();
+    let mut best = Vec::new();
+    for &along in positions {
+        let (_, _, taps) = profile_taps(img, line, &cum, along, &s);
+        let Some(wv): Option<Vec<f64>> =
+            taps.map(|t| t.iter().map(|t| t.read(&img.bands[width_band])).collect())
+        else {
+            continue;
+        };
+        let ratio = |bq: &[f64; 3]| -> Vec<f64> {
+            s.iter()
+                .zip(&wv)
+                .map(|(x, v)| v / eval_bg(bq, *x))
+                .collect()
+        };
+        let Some(bq) = background(&s, &wv, 0.0, 0.6 * half) else {
+            continue;
+        };
+        let p = ratio(&bq);
+        let (q, _) = fit_shape(&s, &p, first_guess(&s, &p, half), None, half);
+        // The background outside the widest blur weighed.
+        let edge = q[2] + 2.0 + 2.0 * BLUR_GRID_PX[BLUR_GRID_PX.len() - 1];
+        let Some(bq) = background(&s, &wv, q[1], edge) else {
+            continue;
+        };
+        if q[0] < st.min_contrast || at_limit(&q, half) {
+            continue;
+        }
+        let p = ratio(&bq);
+        let fits: Vec<f64> = blurs
+            .iter()
+            .map(|b| {
+                let (_, r) = fit_blurred(&s, &p, [q[0], q[1], q[2], q[3], 0.0], Free::All, half, b);
+                r * r * s.len() as f64
+            })
+            .collect();
+        best.extend(estimate_blur(&fits));
+    }
+    best
+}
+
+/// The point-spread SD (px) that best describes a profile whose residual
+/// sums of squares at the SDs of [`BLUR_GRID_PX`] are `rss`: the grid's
+/// minimum refined by a parabola through it and its neighbours. `None`
+/// where some fit failed.
+pub fn estimate_blur(rss: &[f64]) -> Option<f64> {
+    if rss.len() != BLUR_GRID_PX.len() || !rss.iter().all(|v| v.is_finite() && *v > 0.0) {
+        return None;
+    }
+    let i = (0..rss.len()).min_by(|a, b| rss[*a].total_cmp(&rss[*b]))?;
+    if i == 0 || i + 1 == rss.len() {
+        return Some(BLUR_GRID_PX[i]);
+    }
+    let (a, b, c) = (rss[i - 1], rss[i], rss[i + 1]);
+    let h = BLUR_GRID_PX[1] - BLUR_GRID_PX[0];
+    let curvature = a - 2.0 * b + c;
+    let shift = if curvature > 0.0 {
+        0.5 * (a - c) / curvature
+    } else {
+        0.0
+    };
+    Some(BLUR_GRID_PX[i] + shift.clamp(-0.5, 0.5) * h)
+}
+
 /// A vessel's width changes slowly along a segment; a profile whose
 /// fitted width is far from the rest has met something else: a vessel
 /// not drawn as a segment beside it or across it (which `near-segment`
@@ -594,4 +702,26 @@ pub(crate) fn median(mut v: Vec<f64>) -> f64 {
     }
     let k = v.len() / 2;
     *v.select_nth_unstable_by(k, f64::total_cmp).1
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_blur_is_read_between_the_grid_points() {
+        // A parabola in the SD with its minimum at 1.3 px is found there;
+        // at the grid's ends the end is taken; a failed fit gives nothing.
+        let rss: Vec<f64> = BLUR_GRID_PX
+            .iter()
+            .map(|sd| 2.0 + (sd - 1.3f64).powi(2))
+            .collect();
+        assert!((estimate_blur(&rss).unwrap() - 1.3).abs() < 1e-12);
+        let rising: Vec<f64> = BLUR_GRID_PX.iter().map(|sd| 1.0 + sd).collect();
+        assert_eq!(estimate_blur(&rising), Some(0.0));
+        let mut failed = rss.clone();
+        failed[3] = f64::NAN;
+        assert_eq!(estimate_blur(&failed), None);
+        assert_eq!(estimate_blur(&rss[1..]), None);
+    }
 }

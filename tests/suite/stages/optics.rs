@@ -69,6 +69,14 @@ fn auto_model_recovers_what_a_wavelength_dependent_veil_hides() {
         "{}",
         o.stderr
     );
+    // These captures are sharp, and weighed so (measured: 0.00–0.27 px).
+    assert!(!o.stderr.contains("look blurred"), "{}", o.stderr);
+    for r in records(&s.join("results/transmissions/captures.csv")) {
+        if let Ok(sd) = r["blur_sd_px"].parse::<f64>() {
+            eprintln!("sharp captures weighed at {sd:.2} px");
+            assert!(sd < 0.5, "{sd}");
+        }
+    }
 
     let truth = true_so2(&s);
     let fits = records(&s.join("results/fits/so2.csv"));
@@ -403,7 +411,24 @@ fn blurred_captures_are_measured_through_the_point_spread_function() {
         let warned = o.stderr.contains("a central light reflex was found on")
             && o.stderr.contains("the two-band ODR of `two-band`");
         assert_eq!(warned, s != plain, "{}", o.stderr);
+        // Only the run that does not know of the blur is told of it.
+        let blurred = o.stderr.contains("the captures look blurred")
+            && o.stderr.contains("`instrument: psf_sd_px`");
+        assert_eq!(blurred, s == sharp, "{}", o.stderr);
     }
+    // It is weighed on each eye's reference capture. Measured: 1.53–1.56
+    // px against the 1.5 rendered.
+    let weighed: Vec<f64> = records(&with.join("results-sharp/transmissions/captures.csv"))
+        .iter()
+        .filter(|r| !r["blur_sd_px"].is_empty())
+        .map(|r| r["blur_sd_px"].parse().unwrap())
+        .collect();
+    eprintln!("blur weighed without the setting: {weighed:.2?} px");
+    assert_eq!(weighed.len(), 3, "one per eye");
+    assert!(
+        weighed.iter().all(|sd| (sd - 1.5).abs() < 0.3),
+        "{weighed:?}"
+    );
     let report = std::fs::read_to_string(with.join("results/report/report.html")).unwrap();
     assert!(
         report.contains("usable arteriole positions with a central light reflex"),
