@@ -1046,14 +1046,14 @@ fn describe(study: &Study) -> String {
     let (shape, beside) = if s.psf_sd_px > 0.0 {
         (
             format!(
-                "The cylinder was seen through the optics' blur: convolved with a Gaussian point-spread function of SD {} px (the instrument's, with the pixel's area and the profile's interpolation added in quadrature), with a central light reflex as a share of the absorbed light given back over the middle third of the diameter, kept where it lowered the residual significantly (F > 25).",
+                "The cylinder was seen through the optics' blur: convolved with a Gaussian point-spread function of SD {} px (the instrument's, with the pixel's area and the profile's interpolation added in quadrature), with a central light reflex as a share of the absorbed light given back over the middle third of the diameter, kept where it lowered the residual significantly (F > 25); a segment with such a reflex at a quarter or more of its usable positions was marked as reflecting at all of them.",
                 s.psf_sd_px
             ),
             "; through the blur a reflex cannot be read around, and its light stays in the centre-line value",
         )
     } else {
         (
-            "Where a central light reflex brightened the axis (by more than 2 % of the background over both flanks), the cylinder was fitted without it.".to_string(),
+            "Where a central light reflex brightened the axis (by more than 2 % of the background over both flanks), the cylinder was fitted without it. No point-spread function was given; each eye's earliest capture was checked for optical blur by fitting the cylinder convolved with Gaussians of SD 0 to 3 px to a sample of its profiles (the median over profiles of the best-fitting SD, reported per eye).".to_string(),
             ", or at the darkest points beside a reflex",
         )
     };

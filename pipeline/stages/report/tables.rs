@@ -1056,6 +1056,26 @@ pub fn data_quality(study: &Study, images: &TransmissionTables, fits: &[FitRow])
             n.to_string(),
         ]);
     }
+    // Without `psf_sd_px`: the eyes whose captures look blurred.
+    let weighed: Vec<f64> = images
+        .status
+        .iter()
+        .filter_map(|s| s.blur.as_ref()?.sd_px())
+        .collect();
+    if !weighed.is_empty() {
+        t.rows.push(vec![
+            format!(
+                "eyes that look blurred (point-spread SD {} px or more)",
+                crate::stages::transmissions::BLUR_WARN_PX
+            ),
+            weighed
+                .iter()
+                .filter(|sd| **sd >= crate::stages::transmissions::BLUR_WARN_PX)
+                .count()
+                .to_string(),
+            weighed.len().to_string(),
+        ]);
+    }
     for m in &study.methods {
         let vals: Vec<f64> = fits
             .iter()

@@ -429,6 +429,13 @@ fn blurred_captures_are_measured_through_the_point_spread_function() {
         weighed.iter().all(|sd| (sd - 1.5).abs() < 0.3),
         "{weighed:?}"
     );
+    // And the report's data-quality table counts the eyes.
+    let md = std::fs::read_to_string(with.join("results-sharp/report/report.md")).unwrap();
+    let row = md
+        .lines()
+        .find(|l| l.contains("eyes that look blurred"))
+        .unwrap_or_else(|| panic!("no blur row in the data-quality table"));
+    assert!(row.replace(' ', "").ends_with("|3|3|"), "{row}");
     let report = std::fs::read_to_string(with.join("results/report/report.html")).unwrap();
     assert!(
         report.contains("usable arteriole positions with a central light reflex"),
