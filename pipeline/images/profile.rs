@@ -585,8 +585,9 @@ pub const BLUR_GRID_PX: [f64; 7] = [0.0, 0.5, 1.0, 1.5, 2.0, 2.5, 3.0];
 /// fitted at each SD of [`BLUR_GRID_PX`], and the SD of least residual is
 /// refined by [`estimate_blur`]. Profiles that cannot be read or placed
 /// are passed over. For a study run without `psf_sd_px`, so that a blur it
-/// does not know of is found; the position's profile, background and
-/// first fit are those of [`analyse_segment`].
+/// does not know of is found. Each profile is read, its background fitted
+/// and the sharp cylinder placed as in [`analyse_segment`]'s first pass;
+/// the background is then refitted outside the widest blur weighed.
 pub fn blur_evidence(
     img: &Multiband,
     line: &[(f64, f64)],
@@ -622,7 +623,6 @@ pub fn blur_evidence(
         };
         let p = ratio(&bq);
         let (q, _) = fit_shape(&s, &p, first_guess(&s, &p, half), None, half);
-        // The background outside the widest blur weighed.
         let edge = q[2] + 2.0 + 2.0 * BLUR_GRID_PX[BLUR_GRID_PX.len() - 1];
         let Some(bq) = background(&s, &wv, q[1], edge) else {
             continue;
