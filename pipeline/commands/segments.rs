@@ -30,7 +30,7 @@ use crate::config::study::{MethodKind, Study, read_study_file_with, resolve_stud
 use crate::console::Printer;
 use crate::images::correct::Corrections;
 use crate::images::ingest::{Multiband, read_laid_out};
-use crate::images::profile::{analyse_segment, median};
+use crate::images::profile::{Neighbour, analyse_segment, median, vessel_radii};
 use crate::images::vessels::{
     DetectSettings, centre_lines, length, line_response, refine, vessel_contrast,
 };
@@ -315,8 +315,11 @@ fn propose_eye(
         })
         .collect();
     let mut kept = Vec::new();
+    // Judged as the transmissions stage will analyse them: each line's
+    // neighbours kept out of its background.
+    let radii = vessel_radii(&img, &lines, wb, &ps);
     for (i, line) in lines.iter().enumerate() {
-        let others = all_but(lines.as_slice(), i);
+        let others = Neighbour::all_but(&lines, &radii, i);
         let prof = analyse_segment(&img, line, &others, wb, &ps);
         let good: Vec<_> = prof.iter().filter(|p| p.flags.is_empty()).collect();
         let start = line[0];

@@ -56,7 +56,7 @@ pub(crate) fn fit_shape(
     fixed: Option<(f64, f64)>,
     half: f64,
 ) -> ([f64; 4], f64) {
-    fit_shape_masked(s, p, start, fixed, half, None)
+    fit_shape_masked(s, p, start, fixed, half, None, &[])
 }
 
 /// The box the shape fit searches, (A, c, r, κ): depth 0–1, centre within
@@ -89,14 +89,22 @@ pub(crate) fn fit_shape_masked(
     fixed: Option<(f64, f64)>,
     half: f64,
     skip: Option<(f64, f64)>,
+    keep: &[bool],
 ) -> ([f64; 4], f64) {
-    let used = |x: f64| skip.is_none_or(|(lo, hi)| x <= lo || x >= hi);
-    let n_used = s.iter().filter(|x| used(**x)).count().max(1);
+    let used = |i: usize, x: f64| {
+        keep.get(i) != Some(&false) && skip.is_none_or(|(lo, hi)| x <= lo || x >= hi)
+    };
+    let n_used = s
+        .iter()
+        .enumerate()
+        .filter(|(i, x)| used(*i, **x))
+        .count()
+        .max(1);
     // Residual and shape derivatives of each sample in use.
     let rows = |q: &[f64; 4], out: &mut dyn FnMut(f64, &[f64; 4])| {
         let ek = (-q[3]).exp();
-        for (x, v) in s.iter().zip(p) {
-            if used(*x) {
+        for (i, (x, v)) in s.iter().zip(p).enumerate() {
+            if used(i, *x) {
                 let (m, d) = shape(*x, q, ek);
                 out(m - v, &d);
             }
@@ -253,6 +261,7 @@ pub(crate) fn fit_blurred(
     free: Free,
     half: f64,
     blur: &Blur,
+    keep: &[bool],
 ) -> ([f64; 5], f64) {
     let options = Options {
         max_iterations: 200,
@@ -262,7 +271,11 @@ pub(crate) fn fit_blurred(
         tau: 1e-3,
     };
     let rows = |q: &[f64; 5], out: &mut dyn FnMut(f64, &[f64; 5])| {
-        blur.eval(s, q, &mut |i, m, d| out(m - p[i], d));
+        blur.eval(s, q, &mut |i, m, d| {
+            if keep.get(i) != Some(&false) {
+                out(m - p[i], d)
+            }
+        });
         true
     };
     let (lo, hi) = shape_bounds(half);
@@ -288,7 +301,10 @@ pub(crate) fn fit_blurred(
             ([rep.x[0], rep.x[1], rep.x[2], rep.x[3], rep.x[4]], rep.cost)
         }
     };
-    (q, (2.0 * cost / s.len().max(1) as f64).sqrt())
+    let n_used = (0..s.len())
+        .filter(|i| keep.get(*i) != Some(&false))
+        .count();
+    (q, (2.0 * cost / n_used.max(1) as f64).sqrt())
 }
 
 /// The largest share of the absorbed light a reflex may give back.
@@ -376,7 +392,7 @@ mod tests {
             } else {
                 Free::Shape
             };
-            let (q, rms) = fit_blurred(&s, &p, start, free, 16.0, &blur);
+            let (q, rms) = fit_blurred(&s, &p, start, free, 16.0, &blur, &[]);
             assert!(rms < 1e-6, "{truth:?}: rms {rms}");
             for k in 0..5 {
                 assert!((q[k] - truth[k]).abs() < 1e-3, "{truth:?}: {q:?}");

@@ -777,12 +777,20 @@ pub fn simulate(sc: &Scenario, out: &Path) -> Result<PathBuf> {
                     };
                     let so2 = (base + off + jitter.sample(&mut rng)).clamp(1.0, 100.0);
                     let d0 = *d0;
-                    truth.push((seg.id.clone(), seg.kind.as_str(), so2, d0));
+                    // The truth is the diameter halfway along: the mean
+                    // over the segment, as a fit's mean over its
+                    // positions sees it.
+                    truth.push((
+                        seg.id.clone(),
+                        seg.kind.as_str(),
+                        so2,
+                        d0 * (1.0 - 0.5 * TAPER),
+                    ));
                     let phase = seg.points[0].0 * 0.1;
                     VesselState {
                         segment: seg,
                         so2: so2 / 100.0,
-                        diameter_um: Box::new(move |f: f64| d0 * (1.0 - 0.12 * f)),
+                        diameter_um: Box::new(move |f: f64| d0 * (1.0 - TAPER * f)),
                         double_pass: Box::new(move |f: f64| 0.30 + 0.12 * (f * 9.0 + phase).sin()),
                     }
                 })
@@ -930,6 +938,10 @@ fn spo2_log(sc: &Scenario, s: &SimSubject, co: &course::Course) -> String {
     out
 }
 
+/// How much a simulated vessel narrows from its first point to its last,
+/// as a share of its diameter there.
+const TAPER: f64 = 0.12;
+
 #[allow(clippy::type_complexity)]
 fn write_truth(
     sc: &Scenario,
@@ -1062,7 +1074,7 @@ fn write_truth(
     )?;
     writeln!(
         r,
-        "backscatter_fraction: {BLOOD_BACKSCATTER}\ndouble_pass_fraction: 0.30 + 0.12 sin(9 f + phase) along each segment\nwell_electrons: 20000\nread_noise_electrons: 6"
+        "backscatter_fraction: {BLOOD_BACKSCATTER}\ndouble_pass_fraction: 0.30 + 0.12 sin(9 f + phase) along each segment\ndiameter: d0 (1 - {TAPER} f) along each segment, its value at f = 0.5 in truth/captures.csv\nwell_electrons: 20000\nread_noise_electrons: 6"
     )?;
     let o = &sc.optics;
     writeln!(

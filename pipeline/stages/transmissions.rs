@@ -15,7 +15,9 @@ use crate::config::segments::{Segment, VesselKind};
 use crate::config::study::Study;
 use crate::images::correct::Corrections;
 use crate::images::ingest::{CaptureError, Multiband, read_laid_out};
-use crate::images::profile::{Flag, ProfileSettings, analyse_segment, blur_evidence};
+use crate::images::profile::{
+    Flag, Neighbour, ProfileSettings, analyse_segment, blur_evidence, vessel_radii,
+};
 use crate::images::register::{REGIONS, Registration, RegistrationTarget};
 use crate::runner::Items;
 use crate::runner::Runner;
@@ -186,7 +188,7 @@ impl Stage for Transmissions {
     // counted per kind; 11: through a blur, a reflex shown on a quarter of
     // a segment's positions marks them all; 12: an eye's reference capture
     // is weighed for a blur when none is given.
-    const VERSION: u32 = 12;
+    const VERSION: u32 = 13;
     const SUMMARY: &'static str =
         "registration and transmissions along each vessel segment, capture by capture";
     const UPSTREAM: &'static [&'static str] = &["epochs"];
@@ -869,13 +871,9 @@ pub fn analyse_capture(
     let mut blur = (is_reference && !(st.psf_sd_px > 0.0)).then(|| BlurEvidence {
         per_profile: Vec::new(),
     });
+    let radii = vessel_radii(&img, &lines, wb, st);
     for (k, seg) in segs.iter().enumerate() {
-        let others: Vec<Vec<(f64, f64)>> = lines
-            .iter()
-            .enumerate()
-            .filter(|(j, _)| *j != k)
-            .map(|(_, l)| l.clone())
-            .collect();
+        let others = Neighbour::all_but(&lines, &radii, k);
         let profiles = analyse_segment(&img, &lines[k], &others, wb, st);
         if let Some(b) = blur.as_mut() {
             let at: Vec<f64> = profiles
@@ -1057,8 +1055,16 @@ fn describe(study: &Study) -> String {
             ", or at the darkest points beside a reflex",
         )
     };
+    let reach = if s.psf_sd_px > 0.0 {
+        format!(
+            "{:.0} px and twice the point-spread function's SD",
+            s.neighbour_margin_px
+        )
+    } else {
+        format!("{:.0} px", s.neighbour_margin_px)
+    };
     format!(
-        "Captures were read as {read_as} and registered to the eye's earliest capture by a rigid transform (translation and rotation; phase correlation followed by normalised cross-correlation with sub-pixel interpolation in the band nearest 570 nm); captures with a match score below {MIN_REGISTRATION_SCORE} were flagged as not registered, and captures whose correlation fell below {MIN_REGION_SCORE} in any of {REGIONS} × {REGIONS} regions of the compared area (a partial blink, lashes or glare) as partly unmatched; neither was analysed. Along each vessel segment, intensity profiles were sampled across the vessel every {:.0} px by bilinear interpolation; a quadratic background was fitted to the outer parts of each profile and an absorbing-cylinder profile to the vessel, giving its centre, width (diameter at {:.1} µm per pixel) and fit residual. {shape} Transmission in each band was the intensity on the vessel's centre line divided by the background beneath it{beside}. Positions were flagged (off the image, contrast below {:.2}, residual too large, within {:.0} px of another segment, a width below 2/3 or above 3/2 of the segment's median in that capture) and flagged positions were not used.",
+        "Captures were read as {read_as} and registered to the eye's earliest capture by a rigid transform (translation and rotation; phase correlation followed by normalised cross-correlation with sub-pixel interpolation in the band nearest 570 nm); captures with a match score below {MIN_REGISTRATION_SCORE} were flagged as not registered, and captures whose correlation fell below {MIN_REGION_SCORE} in any of {REGIONS} × {REGIONS} regions of the compared area (a partial blink, lashes or glare) as partly unmatched; neither was analysed. Along each vessel segment, intensity profiles were sampled across the vessel every {:.0} px by bilinear interpolation; a quadratic background was fitted to the outer parts of each profile (a straight line where fewer than four samples remained on a side) and an absorbing-cylinder profile to the vessel, giving its centre, width (diameter at {:.1} µm per pixel) and fit residual; samples lying on another segment (within its radius, the median over every fourth position of that segment in the same capture, plus {reach}) were left out of both fits. {shape} Transmission in each band was the intensity on the vessel's centre line divided by the background beneath it{beside}. Positions were flagged (off the image, contrast below {:.2}, residual too large, within {:.0} px of another segment or with too little fundus beside the vessel for a background, a width below 2/3 or above 3/2 of the segment's median in that capture) and flagged positions were not used.",
         s.spacing_px, study.instrument.pixel_size_um, s.min_contrast, s.neighbour_margin_px
     )
 }

@@ -247,14 +247,16 @@ fn straight_vessel(
         diameter_um: Box::new(move |_| d_um),
         double_pass: Box::new(|_| 0.3),
     }];
-    let offsets = [(0.0, 0.0), (0.0, 0.0)];
+    let offsets = vec![(0.0, 0.0); bands.len()];
     let scene = Scene {
         width: 160,
         height: 160,
         pixel_um: 12.0,
         bands,
         band_offsets: &offsets,
-        pigmentation: 2.0,
+        pigmentation: std::env::var("PIG")
+            .map(|v| v.parse().unwrap())
+            .unwrap_or(2.0),
         veil,
         hb_g_per_l: 150.0,
         optics,
@@ -373,7 +375,7 @@ fn dark_flat_and_band_offsets_are_corrected() {
     use satstep::config::study::{Band, BandResponse, Instrument};
     use satstep::images::correct::Corrections;
     use satstep::images::ingest::Multiband;
-    use satstep::images::profile::{ProfileSettings, analyse_segment};
+    use satstep::images::profile::{Neighbour, ProfileSettings, analyse_segment};
     // Four vessels in different directions (a single straight one would
     // leave the shift along it undetermined), noise-free; band 2 is
     // misregistered by a known offset, every page has a dark offset and
@@ -478,7 +480,8 @@ fn dark_flat_and_band_offsets_are_corrected() {
     };
     let st = ProfileSettings::default();
     let centre_t = |img: &Multiband| -> Vec<f64> {
-        let others: Vec<Vec<(f64, f64)>> = segs[1..].iter().map(|s| s.points.clone()).collect();
+        let lines: Vec<Vec<(f64, f64)>> = segs.iter().map(|s| s.points.clone()).collect();
+        let others = Neighbour::all_but(&lines, &[], 0);
         let ok: Vec<_> = analyse_segment(img, &seg.points, &others, 0, &st)
             .into_iter()
             .filter(|r| r.flags.is_empty())
@@ -835,4 +838,123 @@ fn a_blurred_vessel_is_measured_through_the_point_spread_function() {
             }
         }
     }
+}
+
+/// A venule running beside an arteriole, 17 px apart axis to axis (the
+/// arteriole 120 µm, the venule 150 µm at 12 µm/px, so 4 px of fundus
+/// between them), noise-free in eight bands. The venule's dark band lies
+/// in the outer part of the arteriole's profiles, where the background is
+/// fitted. Kept out by the neighbour's radius ([`vessel_radii`]), the
+/// arteriole's T comes within 2 % of the truth in every band and its
+/// diameter within 5 %; taken into the background, T is read far too low
+/// where the blood absorbs most.
+#[test]
+fn a_neighbour_is_kept_out_of_the_background() {
+    use satstep::images::profile::{Neighbour, ProfileSettings, analyse_segment, vessel_radii};
+    use satstep::oximetry::model::{Shared, VesselModel};
+    use satstep::simulate::render::background_reflectance;
+    let bands: Vec<SampledBand> = [506.0, 522.0, 548.0, 560.0, 570.0, 586.0, 600.0, 616.0]
+        .iter()
+        .map(|c| SampledBand::gaussian(*c, 8.0))
+        .collect();
+    // Both run from upper left to lower right; the venule 17 px to the
+    // arteriole's lower left, along the normal (−0.6, 0.8).
+    let (dx, dy) = (-0.6 * 17.0, 0.8 * 17.0);
+    let segs = [
+        Segment {
+            id: "A1".into(),
+            kind: VesselKind::Arteriole,
+            points: vec![(30.0, 30.0), (150.0, 120.0)],
+            notes: String::new(),
+        },
+        Segment {
+            id: "V1".into(),
+            kind: VesselKind::Venule,
+            points: vec![(30.0 + dx, 30.0 + dy), (150.0 + dx, 120.0 + dy)],
+            notes: String::new(),
+        },
+    ];
+    let (d_a, so2, veil, hb) = (120.0, 0.95, 0.1, 150.0);
+    let vs: Vec<VesselState> = segs
+        .iter()
+        .zip([(d_a, so2), (150.0, 0.6)])
+        .map(|(seg, (d, s))| VesselState {
+            segment: seg,
+            so2: s,
+            diameter_um: Box::new(move |_| d),
+            double_pass: Box::new(|_| 0.3),
+        })
+        .collect();
+    let offsets = vec![(0.0, 0.0); bands.len()];
+    let scene = Scene {
+        width: 180,
+        height: 180,
+        pixel_um: 12.0,
+        bands: &bands,
+        band_offsets: &offsets,
+        pigmentation: 2.0,
+        veil,
+        hb_g_per_l: hb,
+        optics: Default::default(),
+        well_electrons: 1e15,
+        read_noise_electrons: 0.0,
+    };
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(3);
+    let pages = render(&scene, &vs, Motion::default(), 1.0, &mut rng);
+    let img = satstep::images::ingest::Multiband {
+        width: 180,
+        height: 180,
+        bands: pages.iter().map(|p| as_f32(p)).collect(),
+        bit_depth: 16,
+    };
+    let model = VesselModel::new(
+        &bands,
+        |l| background_reflectance(l, 2.0),
+        BLOOD_BACKSCATTER,
+    );
+    let mut truth = vec![0.0; bands.len()];
+    model.transmission(&Shared::new(so2, hb, veil), 0.3, d_a, &mut truth, None);
+
+    let lines: Vec<Vec<(f64, f64)>> = segs.iter().map(|s| s.points.clone()).collect();
+    let st = ProfileSettings::default();
+    let radii = vessel_radii(&img, &lines, 0, &st);
+    eprintln!("radii {radii:?} px (truth 5.0 and 6.25)");
+    assert!((radii[1] - 6.25).abs() < 0.6, "{radii:?}");
+    // (worst relative T error over the bands, diameter error, usable positions)
+    let measure = |radii: &[f64]| {
+        let all = analyse_segment(
+            &img,
+            &lines[0],
+            &Neighbour::all_but(&lines, radii, 0),
+            0,
+            &st,
+        );
+        let ok: Vec<_> = all.into_iter().filter(|r| r.flags.is_empty()).collect();
+        let mean = |f: &dyn Fn(&satstep::images::profile::ProfileResult) -> f64| {
+            ok.iter().map(f).sum::<f64>() / ok.len() as f64
+        };
+        let worst = (0..bands.len())
+            .map(|b| mean(&|r| r.transmission[b]) / truth[b] - 1.0)
+            .fold(0.0f64, |a, e| if e.abs() > a.abs() { e } else { a });
+        (worst, mean(&|r| r.diameter_px) * 12.0 / d_a - 1.0, ok.len())
+    };
+    let (kept_out, d_out, n_out) = measure(&radii);
+    let (taken_in, d_in, n_in) = measure(&[]);
+    eprintln!(
+        "neighbour kept out: worst T error {:+.2} %, diameter {:+.1} % ({n_out} positions); \
+         taken in: {:+.2} %, {:+.1} % ({n_in})",
+        100.0 * kept_out,
+        100.0 * d_out,
+        100.0 * taken_in,
+        100.0 * d_in
+    );
+    assert!(n_out > 40, "{n_out}");
+    // Measured: +1.5 % (the image stage's own reading of a lone vessel of
+    // this size is about +1 %), 1.6 % wide; taken in, −14.5 % and 5 %.
+    assert!(kept_out.abs() < 0.02, "{kept_out}");
+    assert!(d_out.abs() < 0.05, "{d_out}");
+    assert!(
+        taken_in.abs() > 2.0 * kept_out.abs(),
+        "{taken_in} vs {kept_out}"
+    );
 }

@@ -133,11 +133,15 @@ fn simulated_reference_and_truth_are_physiological() {
     let run = satstep(dir.path(), &["run", out.to_str().unwrap()]);
     assert_eq!(run.code, 0, "{}", run.stderr);
     // The joint fit's SE, through the image stage, matches the scatter of
-    // repeated captures of a vessel within a factor 1.5 (measured: 0.96;
-    // on SO2 − truth 0.71).
+    // repeated captures' errors against their truth within a factor 1.5
+    // (measured: 1.06). The captures' own scatter is 1.69 SE: the
+    // simulator varies each vessel's SO2 by 0.7 points SD from capture to
+    // capture, which is the vessel's, not the measurement's (the SE is
+    // about 0.55 points since neighbours are kept out of the background;
+    // before, 0.96 raw and 0.71 on the errors).
     let (raw, err) = se_scatter_ratio(&out, "multiband");
     eprintln!("multiband: capture scatter / SE {raw:.2} (errors {err:.2})");
-    assert!((1.0 / 1.5..=1.5).contains(&raw), "{raw} {err}");
+    assert!((1.0 / 1.5..=1.5).contains(&err), "{raw} {err}");
     // Reference SpO2 of steady captures per epoch (median over subjects).
     let csv = std::fs::read_to_string(out.join("results/epochs/captures.csv")).unwrap();
     let mut by_epoch: BTreeMap<String, Vec<f64>> = BTreeMap::new();
@@ -493,7 +497,22 @@ fn a_second_visit_is_a_session_level_in_the_epoch_model() {
 #[test]
 fn statistics_settings_do_what_they_say() {
     let dir = tempfile::tempdir().unwrap();
-    let s = simulated(dir.path(), "tests/fixtures/runner-scenario.yaml", "s");
+    // The runner scenario with a veil that rises towards the red, so that
+    // the base model misfits some fits and `adequate_only` has values to
+    // leave out (without it, this scenario's fits all pass).
+    let scenario = dir.path().join("scenario.yaml");
+    std::fs::write(
+        &scenario,
+        std::fs::read_to_string(repo().join("tests/fixtures/runner-scenario.yaml"))
+            .unwrap()
+            .replace(
+                "protocol: ../../protocols/",
+                &format!("protocol: {}/protocols/", repo().display()),
+            )
+            + "optics: {veil_slope: 0.1}\n",
+    )
+    .unwrap();
+    let s = simulated(dir.path(), scenario.to_str().unwrap(), "s");
     let study = s.join("study.yaml");
     let text = std::fs::read_to_string(&study).unwrap();
     let edit = |from: &str, to: &str| {
