@@ -187,7 +187,8 @@ impl Stage for Transmissions {
     // 9: profiles of odd width are flagged (`odd-width`); 10: reflexes
     // counted per kind; 11: through a blur, a reflex shown on a quarter of
     // a segment's positions marks them all; 12: an eye's reference capture
-    // is weighed for a blur when none is given.
+    // is weighed for a blur when none is given; 13: neighbouring vessels
+    // are kept out of a profile's background and shape fit.
     const VERSION: u32 = 13;
     const SUMMARY: &'static str =
         "registration and transmissions along each vessel segment, capture by capture";
