@@ -259,6 +259,14 @@ fn profile_taps(
     (centre, normal, taps)
 }
 
+/// A profile's sample offsets along its normal, px: every half pixel
+/// from −`half` to `half`.
+fn profile_offsets(half: f64) -> Vec<f64> {
+    (0..=(4.0 * half) as usize)
+        .map(|i| -half + 0.5 * i as f64)
+        .collect()
+}
+
 /// Cumulative length of a polyline at each of its points, from 0.
 pub(crate) fn arc_lengths(line: &[(f64, f64)]) -> Vec<f64> {
     let mut cum = vec![0.0];
@@ -354,9 +362,7 @@ pub fn analyse_segment(
     let cum = arc_lengths(line);
     let total = *cum.last().unwrap_or(&0.0);
     let half = st.half_length_px;
-    let s: Vec<f64> = (0..=(4.0 * half) as usize)
-        .map(|i| -half + 0.5 * i as f64)
-        .collect();
+    let s = profile_offsets(half);
     // The profile is blurred by more than the optics: each pixel
     // integrates its area (a box, variance 1/12 px²) and the profile is
     // read between pixels by bilinear interpolation (on average another
@@ -602,13 +608,15 @@ pub fn analyse_segment(
             flags.push(Flag::LowContrast);
         }
         // Poor fit: residuals well above the noise seen in the background
-        // parts of the same profile (beyond `max_rms` + 3 × that noise).
+        // parts of the same profile, neighbours left out (beyond `max_rms` +
+        // 3 × that noise).
         let noise = {
             let pts: Vec<f64> = s
                 .iter()
                 .zip(normalise(&wv, &bg.expect("fitted")))
-                .filter(|(x, _)| (**x - c).abs() > r + 2.0)
-                .map(|(_, v)| v - 1.0)
+                .zip(&keep)
+                .filter(|((x, _), k)| (**x - c).abs() > r + 2.0 && **k)
+                .map(|((_, v), _)| v - 1.0)
                 .collect();
             (pts.iter().map(|e| e * e).sum::<f64>() / pts.len().max(1) as f64).sqrt()
         };
@@ -700,9 +708,7 @@ pub fn blur_evidence(
 ) -> Vec<f64> {
     let cum = arc_lengths(line);
     let half = st.half_length_px;
-    let s: Vec<f64> = (0..=(4.0 * half) as usize)
-        .map(|i| -half + 0.5 * i as f64)
-        .collect();
+    let s = profile_offsets(half);
     let blurs: Vec<Blur> = BLUR_GRID_PX
         .iter()
         .filter_map(|sd| Blur::new((sd * sd + SAMPLING_VARIANCE_PX2).sqrt(), 0.5))
