@@ -296,7 +296,7 @@ pub fn init(args: &InitArgs, printer: &Printer) -> Result<Exit> {
             }
             writeln!(
                 study,
-                "instrument:\n  name: \"my camera\"\n  pixel_size_um: {}\n  bands:",
+                "instrument:\n  name: \"my camera\"\n  pixel_size_um: {}\n  # Add `gain: …` to every band (a white target's signal in it relative to\n  # the others) to weight the multiband fits' bands by the fundus (README).\n  bands:",
                 tags.pixel_um
                     .map_or("~".to_string(), |v| format!("{}", (v * 1e3).round() / 1e3))
             )?;

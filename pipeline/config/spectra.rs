@@ -3,7 +3,7 @@
 //! replaces the images. One row per
 //! capture, vessel segment, profile position and band:
 //!
-//! `[subject,] capture, vessel, kind, position, band, transmission[, diameter_um]`
+//! `[subject,] capture, vessel, kind, position, band, transmission[, diameter_um][, background]`
 //!
 //! `capture` is the capture as listed in the capture lists (with `subject`
 //! when two subjects list the same name); `kind` is `arteriole` or
@@ -11,7 +11,10 @@
 //! I_vessel / I_background (positive; values above 1 are kept, as the image
 //! stage keeps them); `diameter_um` is the vessel diameter at
 //! that position (needed by the multiband methods; the two-band method
-//! works without it). Every position needs a row for every band. Problems
+//! works without it); `background` is the background's level under the
+//! vessel's centre in that band, in the image's units (what `weighting:
+//! fundus` reads the fundus spectrum from; where the column is, every row
+//! needs it). Every position needs a row for every band. Problems
 //! are findings with `file:line:column` (for Parquet, the positions the same
 //! table has as CSV: line = data row + 1, column = the column's number).
 
@@ -31,6 +34,8 @@ pub struct SpectraPosition {
     /// In the instrument's band order.
     pub transmission: Vec<f64>,
     pub diameter_um: f64,
+    /// In the instrument's band order; empty without a `background` column.
+    pub background: Vec<f64>,
 }
 
 /// The table, grouped by (subject or empty, capture as listed).
@@ -40,6 +45,8 @@ pub struct SpectraTable {
     pub captures: BTreeMap<(String, String), Vec<SpectraPosition>>,
     /// Where each (subject, capture) first appears, for messages.
     pub marks: BTreeMap<(String, String), Mark>,
+    /// The table has a `background` column.
+    pub has_background: bool,
 }
 
 const COLUMNS: &[&str] = &[
@@ -51,6 +58,7 @@ const COLUMNS: &[&str] = &[
     "band",
     "transmission",
     "diameter_um",
+    "background",
 ];
 
 /// Reads and checks the table against the instrument's band names.
@@ -86,9 +94,11 @@ pub(crate) fn read_spectra(
         (c_cap?, c_ves?, c_kind?, c_pos?, c_band?, c_t?);
     let c_subj = t.header.iter().position(|h| h == "subject");
     let c_d = t.header.iter().position(|h| h == "diameter_um");
+    let c_bg = t.header.iter().position(|h| h == "background");
     let before = findings.error_count();
-    // (subject, capture, vessel, position) → (kind, per-band T, diameter, first line).
-    type Acc = (VesselKind, Vec<Option<f64>>, f64, usize);
+    // (subject, capture, vessel, position) → (kind, per-band T, diameter,
+    // first line, per-band background).
+    type Acc = (VesselKind, Vec<Option<f64>>, f64, usize, Vec<f64>);
     let mut marks: BTreeMap<(String, String), Mark> = BTreeMap::new();
     let mut acc: BTreeMap<(String, String, String, usize), Acc> = BTreeMap::new();
     for row in &t.rows {
@@ -179,6 +189,32 @@ pub(crate) fn read_spectra(
                 }
             },
         };
+        let background = match c_bg.map(|c| (c, get(c))) {
+            None => f64::NAN,
+            Some((_, None)) => {
+                findings
+                    .error(
+                        path,
+                        Some(Mark::new(row.line, 1)),
+                        format!("{what}: this line has no `background`"),
+                    )
+                    .hint(
+                        "with a `background` column, every row needs the band's background level",
+                    );
+                continue;
+            }
+            Some((_, Some((s, m)))) => match s.trim().parse::<f64>() {
+                Ok(v) if v.is_finite() && v > 0.0 => v,
+                _ => {
+                    findings.error(
+                        path,
+                        Some(m),
+                        format!("{what}: background `{}` is not a positive number", s.trim()),
+                    );
+                    continue;
+                }
+            },
+        };
         let subject = c_subj
             .and_then(get)
             .map(|(s, _)| s.trim().to_string())
@@ -193,7 +229,16 @@ pub(crate) fn read_spectra(
                 ves.0.trim().to_string(),
                 position,
             ))
-            .or_insert_with(|| (vessel_kind, vec![None; bands.len()], diameter, row.line));
+            .or_insert_with(|| {
+                (
+                    vessel_kind,
+                    vec![None; bands.len()],
+                    diameter,
+                    row.line,
+                    vec![f64::NAN; bands.len()],
+                )
+            });
+        e.4[b] = background;
         if e.0 != vessel_kind {
             findings.error(
                 path,
@@ -228,8 +273,9 @@ pub(crate) fn read_spectra(
         path: path.to_path_buf(),
         captures: BTreeMap::new(),
         marks,
+        has_background: c_bg.is_some(),
     };
-    for ((subject, capture, vessel, position), (kind, t, d, line)) in acc {
+    for ((subject, capture, vessel, position), (kind, t, d, line, bg)) in acc {
         let missing: Vec<&str> = t
             .iter()
             .zip(bands)
@@ -249,6 +295,7 @@ pub(crate) fn read_spectra(
                 position,
                 transmission: t.into_iter().map(|v| v.expect("checked")).collect(),
                 diameter_um: d,
+                background: if c_bg.is_some() { bg } else { Vec::new() },
             });
     }
     (findings.error_count() == before).then_some(out)

@@ -53,6 +53,11 @@ pub struct Band {
     /// Where this band's image sits relative to the registration band, px
     /// (content at (x, y) there is at (x + dx, y + dy) here).
     pub offset_px: Option<(f64, f64)>,
+    /// The band's signal from a white target relative to the other bands
+    /// (the camera's sensitivity times the lamp's spectrum there): with it,
+    /// a background level over its gain is the fundus reflectance's band
+    /// average up to one common factor ([`crate::oximetry::fundus`]).
+    pub gain: Option<f64>,
 }
 
 #[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
@@ -205,7 +210,28 @@ pub enum MethodKind {
         /// bands can identify, made once the study is loaded).
         #[serde(skip)]
         model_mark: Option<Mark>,
+        /// What weights each band's average over wavelength.
+        weighting: Weighting,
     },
+}
+
+/// What weights a band's average over wavelength in a multiband model.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+pub enum Weighting {
+    /// The band's response alone.
+    Response,
+    /// The response times the fundus reflectance behind each segment, read
+    /// from its background levels over the bands' gains.
+    Fundus,
+}
+
+impl Weighting {
+    pub fn as_str(&self) -> &'static str {
+        match self {
+            Weighting::Response => "response",
+            Weighting::Fundus => "fundus",
+        }
+    }
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
@@ -542,7 +568,14 @@ const INSTRUMENT_KEYS: &[&str] = &[
 ];
 const LAYOUT_KEYS: &[&str] = &["tiles", "grid"];
 const GRID_KEYS: &[&str] = &["columns", "rows"];
-const BAND_KEYS: &[&str] = &["name", "centre_nm", "fwhm_nm", "response", "offset_px"];
+const BAND_KEYS: &[&str] = &[
+    "name",
+    "centre_nm",
+    "fwhm_nm",
+    "response",
+    "offset_px",
+    "gain",
+];
 const SUBJECT_KEYS: &[&str] = &["id", "age", "sex", "pigmentation", "site", "sessions"];
 const SESSION_KEYS: &[&str] = &[
     "id",
@@ -564,7 +597,15 @@ const METHOD_KEYS_TWO_BAND: &[&str] = &[
     "calibration",
     "diameter_correction",
 ];
-const METHOD_KEYS_MULTI: &[&str] = &["method", "label", "bands", "loss", "huber_scale", "model"];
+const METHOD_KEYS_MULTI: &[&str] = &[
+    "method",
+    "label",
+    "bands",
+    "loss",
+    "huber_scale",
+    "model",
+    "weighting",
+];
 const METHOD_NAMES: &[&str] = &["two-band", "multiband", "multiband-pointwise"];
 const CALIBRATION_KEYS: &[&str] = &["mode", "intercept", "slope", "epoch", "venule_so2"];
 const EXCLUSION_KEYS: &[&str] = &["min_diameter_um", "subjects", "captures"];
@@ -912,6 +953,7 @@ pub(crate) fn read_instrument(r: &mut Reader, node: &Node, root: &Path) -> Optio
                         .hint("list every spectral band in the order of the capture's pages");
                     ok = false;
                 }
+                let mut marks = Vec::new();
                 for item in items {
                     match read_band(r, item, root) {
                         Some(b) => {
@@ -920,9 +962,29 @@ pub(crate) fn read_instrument(r: &mut Reader, node: &Node, root: &Path) -> Optio
                                 ok = false;
                             }
                             bands.push(b);
+                            marks.push(item.mark);
                         }
                         None => ok = false,
                     }
+                }
+                // Gains are relative to each other: a band without one
+                // leaves the others meaningless.
+                let with = bands.iter().filter(|b| b.gain.is_some()).count();
+                if with > 0 && with < bands.len() {
+                    let (b, mark) = bands
+                        .iter()
+                        .zip(&marks)
+                        .find(|(b, _)| b.gain.is_none())
+                        .expect("some band has no gain");
+                    r.error(
+                        *mark,
+                        format!(
+                            "band `{}` has no `gain` while {with} of the instrument's bands have one",
+                            b.name
+                        ),
+                    )
+                    .hint("gains are relative to each other: give every band its `gain`, or none");
+                    ok = false;
                 }
             }
             None => ok = false,
@@ -1123,10 +1185,15 @@ fn read_band(r: &mut Reader, node: &Node, root: &Path) -> Option<Band> {
             ))
         }
     };
+    let gain = match m.get("gain") {
+        None => Some(None),
+        Some(n) => positive(r, n, "`gain`").map(Some),
+    };
     Some(Band {
         name: name?,
         response: response?,
         offset_px,
+        gain: gain?,
     })
 }
 
@@ -1646,13 +1713,15 @@ fn read_methods(
                 None => Some(ModelChoice::Fixed(Extensions::BASE)),
                 Some(n) => read_model(r, n, pointwise),
             };
-            match (bands_sel, loss, model) {
-                (Some(b), Some(l), Some(model)) => Some(MethodKind::Multiband {
+            let weighting = read_weighting(r, m.get("weighting"), instrument_bands);
+            match (bands_sel, loss, model, weighting) {
+                (Some(b), Some(l), Some(model), Some(weighting)) => Some(MethodKind::Multiband {
                     bands: b,
                     loss: l,
                     pointwise,
                     model,
                     model_mark: m.get("model").map(|n| n.mark),
+                    weighting,
                 }),
                 _ => None,
             }
@@ -1662,6 +1731,36 @@ fn read_methods(
         }
     }
     out
+}
+
+/// `weighting:` of a multiband method. Without it, the fundus weights the
+/// bands when every band has a `gain` (the gains are there for nothing
+/// else), and the response alone otherwise. (A spectra table's
+/// `background` column is checked with the table.)
+fn read_weighting(r: &mut Reader, node: Option<&Node>, bands: &[Band]) -> Option<Weighting> {
+    let gains = !bands.is_empty() && bands.iter().all(|b| b.gain.is_some());
+    let Some(node) = node else {
+        return Some(if gains {
+            Weighting::Fundus
+        } else {
+            Weighting::Response
+        });
+    };
+    match r
+        .choice(node, "`weighting`", &["response", "fundus"])?
+        .as_str()
+    {
+        "fundus" if !gains => {
+            r.error(
+                node.mark,
+                "`weighting: fundus` needs every band's `gain`, and the instrument does not give them all",
+            )
+            .hint("add `gain:` to each band (its signal from a white target relative to the other bands), or use `weighting: response`");
+            None
+        }
+        "fundus" => Some(Weighting::Fundus),
+        _ => Some(Weighting::Response),
+    }
 }
 
 /// `model:` of a multiband method: `base`, `auto`, an extension's name or
@@ -2121,6 +2220,26 @@ fn check_spectra(study: &Study, findings: &mut Findings) -> Option<super::spectr
                     ),
                 )
                 .hint("`capture` must be written as in the capture list");
+        }
+    }
+    if !table.has_background {
+        for m in &study.methods {
+            if let MethodKind::Multiband {
+                weighting: Weighting::Fundus,
+                ..
+            } = m.kind
+            {
+                findings
+                    .error(
+                        path,
+                        Some(Mark::new(1, 1)),
+                        format!(
+                            "method `{}` weights its bands by the fundus (every band has a `gain`), and the spectra table has no `background` column to read the fundus from",
+                            m.label
+                        ),
+                    )
+                    .hint("add a `background` column (each band's background level under the vessel's centre), or give the method `weighting: response`");
+            }
         }
     }
     Some(table)

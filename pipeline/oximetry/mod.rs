@@ -8,6 +8,7 @@
 //! - [`sensitivity`]: error propagation from band transmissions to SO2.
 
 pub mod bands;
+pub mod fundus;
 pub mod hemoglobin;
 pub mod model;
 pub mod odr;

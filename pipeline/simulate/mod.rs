@@ -1139,9 +1139,16 @@ fn study_yaml(sc: &Scenario, subjects: &[SimSubject]) -> String {
         // camera's point-spread function would give it.
         let _ = writeln!(y, "  psf_sd_px: {}", sc.optics.psf_px);
     }
+    // The simulated camera gives a white target the same signal in every
+    // band, as a lab would state after calibrating with one; the gains
+    // let the multiband fits weight each band by the fundus behind the
+    // vessel (`weighting: fundus`, the default with gains).
     let _ = writeln!(y, "  bands:");
     for (n, c, f) in &sc.bands {
-        let _ = writeln!(y, "    - {{name: {n}, centre_nm: {c}, fwhm_nm: {f}}}");
+        let _ = writeln!(
+            y,
+            "    - {{name: {n}, centre_nm: {c}, fwhm_nm: {f}, gain: 1}}"
+        );
     }
     if let SensorLayout::Grid { columns, rows } = sc.sensor {
         let _ = writeln!(

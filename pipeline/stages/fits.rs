@@ -15,10 +15,12 @@ use super::epochs::{EpochTables, Epochs};
 use super::stage::{Run, Stage};
 use super::transmissions::{PositionRow, TransmissionTables, Transmissions};
 use crate::config::segments::VesselKind;
-use crate::config::study::{Calibration, Loss, Method, MethodKind, Study};
+use crate::config::study::{Calibration, Loss, Method, MethodKind, Study, Weighting};
 use crate::config::vessel_model::ModelChoice;
 use crate::fit::Termination;
+use crate::images::profile::median;
 use crate::oximetry::bands::SampledBand;
+use crate::oximetry::fundus::FundusSpectrum;
 use crate::oximetry::model::{BLOOD_BACKSCATTER, VesselModel};
 use crate::oximetry::odr::{
     Calibrated, Linear, diameter_corrected, inverse_calibration, leave_one_subject_out,
@@ -112,6 +114,9 @@ pub enum Outcome {
     NoOpticalDensity,
     /// Multiband: a position has no diameter.
     NoDiameter,
+    /// Multiband with `weighting: fundus`: some band has no positive
+    /// background level at the segment's usable positions.
+    NoFundusSpectrum,
     /// Multiband, position by position.
     Pointwise { converged: usize, positions: usize },
     /// Multiband, joint fit: why the optimiser stopped.
@@ -131,6 +136,7 @@ impl Outcome {
             Outcome::Odr => "odr",
             Outcome::NoOpticalDensity => "no-optical-density",
             Outcome::NoDiameter => "no-diameter",
+            Outcome::NoFundusSpectrum => "no-fundus-spectrum",
             Outcome::Pointwise { .. } => "pointwise",
             Outcome::Joint(t) => t.as_str(),
             Outcome::NotFitted(_) => "not-fitted",
@@ -158,6 +164,9 @@ impl std::fmt::Display for Outcome {
             Outcome::NoDiameter => {
                 f.write_str("no diameter: the multiband model needs `diameter_um`")
             }
+            Outcome::NoFundusSpectrum => f.write_str(
+                "no fundus spectrum: some band has no positive background level at the usable positions (`weighting: fundus`)",
+            ),
             Outcome::Pointwise {
                 converged,
                 positions,
@@ -233,7 +242,8 @@ pub struct Fits;
 
 impl Stage for Fits {
     const NAME: &'static str = "fits";
-    const VERSION: u32 = 8;
+    // 9: `weighting: fundus`.
+    const VERSION: u32 = 9;
     const SUMMARY: &'static str = "SO2 of every segment of every capture by each method";
     const UPSTREAM: &'static [&'static str] = &["epochs", "transmissions"];
     type Output = FitTables;
@@ -326,8 +336,11 @@ fn build(
     // Each multiband method's vessel models and fit settings, prepared once:
     // `auto`'s candidates come from an identifiability analysis that would
     // otherwise be repeated for every segment.
-    let prepared: Vec<Option<Prepared>> =
-        study.methods.iter().map(|m| prepare(m, &bands)).collect();
+    let prepared: Vec<Option<Prepared>> = study
+        .methods
+        .iter()
+        .map(|m| prepare(m, study, &bands))
+        .collect();
     let per_capture: Vec<Vec<Vec<FitRow>>> = captures
         .par_iter()
         .map(|&ci| -> Result<Vec<Vec<FitRow>>> {
@@ -456,14 +469,93 @@ fn write_calibrations(rows: &[CalibrationRow], out: &Path) -> Result<Vec<PathBuf
 
 /// A multiband method's models: the base model over its bands (the
 /// pointwise fit's), the models its segment fits choose among (one unless
-/// `model: auto`), and the fit settings.
+/// `model: auto`), and the fit settings. With `weighting: fundus` these
+/// are weighted by the response alone and stand for the form only: each
+/// segment's fit rebuilds them over its own fundus spectrum ([`Prepared::for_segment`]).
 struct Prepared {
     base: VesselModel,
     candidates: Vec<VesselModel>,
     settings: FitSettings,
+    fundus: Option<FundusBands>,
 }
 
-fn prepare(m: &Method, bands: &[SampledBand]) -> Option<Prepared> {
+/// What `weighting: fundus` reads a segment's spectrum with: every band of
+/// the instrument and its gain, and the method's own bands.
+pub(crate) struct FundusBands {
+    all: Vec<SampledBand>,
+    gains: Vec<f64>,
+    selected: Vec<SampledBand>,
+}
+
+impl FundusBands {
+    /// None unless the method weights by the fundus (every band then has a
+    /// gain: the study file's check makes sure).
+    pub(crate) fn of(m: &Method, study: &Study, bands: &[SampledBand]) -> Option<Self> {
+        let MethodKind::Multiband {
+            bands: sel,
+            weighting: Weighting::Fundus,
+            ..
+        } = &m.kind
+        else {
+            return None;
+        };
+        Some(FundusBands {
+            all: bands.to_vec(),
+            gains: study
+                .instrument
+                .bands
+                .iter()
+                .map(|b| b.gain.unwrap_or(f64::NAN))
+                .collect(),
+            selected: sel.iter().map(|b| bands[*b].clone()).collect(),
+        })
+    }
+
+    /// The fundus spectrum behind a segment: per band, the median of its
+    /// positions' background levels over the band's gain. None where a
+    /// band has no positive level.
+    pub(crate) fn spectrum(&self, pos: &[&PositionRow]) -> Option<FundusSpectrum> {
+        let levels: Vec<f64> = (0..self.all.len())
+            .map(|b| {
+                let v: Vec<f64> = pos
+                    .iter()
+                    .filter_map(|p| p.background.get(b).copied())
+                    .filter(|v| v.is_finite() && *v > 0.0)
+                    .collect();
+                if v.is_empty() {
+                    f64::NAN
+                } else {
+                    median(v) / self.gains[b]
+                }
+            })
+            .collect();
+        FundusSpectrum::from_band_levels(&self.all, &levels)
+    }
+
+    /// The base model over the method's bands weighted by `spectrum`.
+    pub(crate) fn model(&self, spectrum: &FundusSpectrum) -> VesselModel {
+        VesselModel::new(&self.selected, |l| spectrum.at(l), BLOOD_BACKSCATTER)
+    }
+}
+
+impl Prepared {
+    /// The base model and the candidates for one segment's positions; None
+    /// when the fundus spectrum cannot be read from them.
+    fn for_segment(&self, pos: &[&PositionRow]) -> Option<(VesselModel, Vec<VesselModel>)> {
+        let Some(f) = &self.fundus else {
+            return Some((self.base.clone(), self.candidates.clone()));
+        };
+        let base = f.model(&f.spectrum(pos)?);
+        let candidates = self
+            .candidates
+            .iter()
+            .map(|c| base.clone().with_extensions(c.extensions))
+            .collect();
+        Some((base, candidates))
+    }
+}
+
+fn prepare(m: &Method, study: &Study, bands: &[SampledBand]) -> Option<Prepared> {
     let MethodKind::Multiband {
         bands: sel,
         loss,
@@ -482,6 +574,7 @@ fn prepare(m: &Method, bands: &[SampledBand]) -> Option<Prepared> {
         base,
         candidates,
         settings,
+        fundus: FundusBands::of(m, study, bands),
     })
 }
 
@@ -568,7 +661,11 @@ fn fit_capture(
                     ..
                 } => {
                     let prep = prep.expect("a multiband method is prepared");
-                    let (model, settings) = (&prep.base, &prep.settings);
+                    let Some((model, candidates)) = prep.for_segment(&pos) else {
+                        row.termination = Outcome::NoFundusSpectrum;
+                        return row;
+                    };
+                    let (model, settings) = (&model, &prep.settings);
                     let spectra = SegmentSpectra {
                         diameters_um: pos.iter().map(|p| p.diameter_um).collect(),
                         transmissions: pos
@@ -590,7 +687,7 @@ fn fit_capture(
                             positions: f.positions.len(),
                         }
                     } else {
-                        let fitted = match &prep.candidates[..] {
+                        let fitted = match &candidates[..] {
                             [one] => fit_segment(one, &spectra, settings).map(|f| vec![f]),
                             all => fit_candidates(all, &spectra, settings),
                         };
@@ -1047,15 +1144,20 @@ fn describe(study: &Study) -> String {
                 loss,
                 pointwise,
                 model,
+                weighting,
                 ..
             } => {
+                let weighted = match weighting {
+                    Weighting::Response => "",
+                    Weighting::Fundus => " Each band's average over wavelength was weighted by its response and by the fundus reflectance behind the segment, read from the background levels under the segment's usable positions (per band the median level divided by the band's stated gain, a white target's relative signal) and interpolated between the bands' mean wavelengths by a natural cubic spline of its logarithm, continued straight beyond the outermost bands, whose band averages reproduce the measured levels.",
+                };
                 let l = match loss {
                     Loss::Squared => "least squares".to_string(),
                     Loss::Huber { scale } => format!("a Huber loss (threshold {scale} noise SD)"),
                 };
                 let names: Vec<String> = bands.iter().map(band).collect();
                 if *pointwise {
-                    format!("`{}`: the same model fitted independently at each position, then averaged along the segment ({}; bands {}).", m.label, l, names.join(", "))
+                    format!("`{}`: the same model fitted independently at each position, then averaged along the segment ({}; bands {}).{weighted}", m.label, l, names.join(", "))
                 } else {
                     format!(
                         "`{}`: a band-integrated vessel transmission model (hemoglobin extinction from Prahl's compilation integrated over each band's response on a 1 nm grid; single- and double-pass Beer–Lambert paths, backscatter, and an additive veil T_obs = (1 − k)·T + k) fitted jointly to all positions of a segment, with SO2, hemoglobin concentration and k shared along the segment and path fractions per position, by bounded Levenberg–Marquardt ({l}; bands {}); standard errors from the Jacobian at the optimum scaled by the residual variance. Each fit's adequacy was tested on its residuals: per band, the mean residual of {} contiguous blocks of positions was compared with its standard error between blocks (t test, Bonferroni over bands for a {:.0} % false-alarm rate), and a band whose mean residual exceeded {:.1} % of the transmission at that level marked the fit as a misfit.",
@@ -1064,7 +1166,8 @@ fn describe(study: &Study) -> String {
                         crate::oximetry::segment::ADEQUACY_BLOCKS,
                         ADEQUACY_FALSE_ALARM * 100.0,
                         MISFIT_MIN_RESIDUAL * 100.0
-                    ) + &model_sentence(
+                    ) + weighted
+                        + &model_sentence(
                         *model,
                         &bands
                             .iter()
@@ -1076,4 +1179,72 @@ fn describe(study: &Study) -> String {
         });
     }
     parts.join(" ")
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn position(background: Vec<f64>) -> PositionRow {
+        PositionRow {
+            capture_index: 0,
+            segment: "A1".into(),
+            kind: VesselKind::Arteriole,
+            position: 0,
+            along_px: 0.0,
+            diameter_um: 100.0,
+            flags: Vec::new(),
+            reflex: false,
+            transmission: vec![0.5; background.len()],
+            background,
+        }
+    }
+
+    #[test]
+    fn the_fundus_spectrum_is_the_background_over_the_gains() {
+        let bands: Vec<SampledBand> = [548.0, 570.0, 586.0, 600.0]
+            .iter()
+            .map(|c| SampledBand::gaussian(*c, 8.0))
+            .collect();
+        let fundus = |l: f64| 0.04 + 0.18 / (1.0 + (-(l - 590.0) / 18.0).exp());
+        let level: Vec<f64> = bands.iter().map(|b| b.average(fundus)).collect();
+        // The camera's gains, and the backgrounds it records at three
+        // positions (a common scale, and the illumination varying along).
+        let camera = [0.5, 2.0, 1.0, 3.0];
+        let positions = [0.9, 1.0, 1.2].map(|k| {
+            position(
+                level
+                    .iter()
+                    .zip(camera)
+                    .map(|(l, g)| 1000.0 * k * l * g)
+                    .collect(),
+            )
+        });
+        let read_with = |stated: &[f64]| {
+            FundusBands {
+                all: bands.clone(),
+                gains: stated.to_vec(),
+                selected: bands.clone(),
+            }
+            .spectrum(&positions.iter().collect::<Vec<_>>())
+            .unwrap()
+        };
+        let truth = FundusSpectrum::from_band_levels(&bands, &level).unwrap();
+        let truth_ratio = truth.at(600.0) / truth.at(548.0);
+        // The stated gains divided out, the spectrum is the fundus's.
+        let read = read_with(&camera);
+        assert!((read.at(600.0) / read.at(548.0) / truth_ratio - 1.0).abs() < 1e-9);
+        // With the gains wrongly stated as equal, it would be another.
+        let raw = read_with(&[1.0; 4]);
+        assert!((raw.at(600.0) / raw.at(548.0) / truth_ratio - 1.0).abs() > 0.5);
+        // A band without a positive level: no spectrum.
+        let mut dark = level.clone();
+        dark[1] = 0.0;
+        let f = FundusBands {
+            all: bands.clone(),
+            gains: vec![1.0; 4],
+            selected: bands.clone(),
+        };
+        assert!(f.spectrum(&[&position(dark)]).is_none());
+    }
 }

@@ -63,6 +63,10 @@ pub struct PositionRow {
     /// A central light reflex was found (see [`crate::images::profile::ProfileResult`]).
     pub reflex: bool,
     pub transmission: Vec<f64>,
+    /// Per band, the background's level under the vessel's centre (the
+    /// corrected image's units): the fundus spectrum's samples for
+    /// `weighting: fundus`.
+    pub background: Vec<f64>,
 }
 
 /// What the transmissions stage made of a capture, as `captures.csv` writes it.
@@ -188,8 +192,9 @@ impl Stage for Transmissions {
     // counted per kind; 11: through a blur, a reflex shown on a quarter of
     // a segment's positions marks them all; 12: an eye's reference capture
     // is weighed for a blur when none is given; 13: neighbouring vessels
-    // are kept out of a profile's background and shape fit.
-    const VERSION: u32 = 13;
+    // are kept out of a profile's background and shape fit; 14: each
+    // position keeps its background levels.
+    const VERSION: u32 = 14;
     const SUMMARY: &'static str =
         "registration and transmissions along each vessel segment, capture by capture";
     const UPSTREAM: &'static [&'static str] = &["epochs"];
@@ -541,6 +546,7 @@ pub(crate) fn from_spectra(
                                 flags: Vec::new(),
                                 reflex: false,
                                 transmission: p.transmission.clone(),
+                                background: p.background.clone(),
                             })
                             .collect(),
                     ),
@@ -898,6 +904,7 @@ pub fn analyse_capture(
                 flags: r.flags,
                 reflex: r.reflex,
                 transmission: r.transmission,
+                background: r.background,
             });
         }
     }
@@ -983,6 +990,13 @@ fn position_table(p: &[PositionRow], study: &Study, epochs: &EpochTables) -> Tab
         t.real(
             &format!("t_{}", band.name),
             p.iter().map(|r| r.transmission[b]),
+        );
+    }
+    for (b, band) in study.instrument.bands.iter().enumerate() {
+        t.real(
+            &format!("background_{}", band.name),
+            p.iter()
+                .map(|r| r.background.get(b).copied().unwrap_or(f64::NAN)),
         );
     }
     t

@@ -14,7 +14,7 @@ use crate::oximetry::odr::segment_odr;
 use crate::oximetry::pointwise::fit_position;
 use crate::oximetry::sensitivity::{OperatingPoint, Unknowns, Weights, so2_errors};
 use crate::stages::epochs::EpochTables;
-use crate::stages::fits::{FitRow, multiband_model};
+use crate::stages::fits::{FitRow, FundusBands, multiband_model};
 use crate::stages::statistics::StatisticsTables;
 use crate::stages::transmissions::{PositionRow, TransmissionTables};
 
@@ -605,7 +605,14 @@ fn along_segment(
                 {
                     continue;
                 }
-                let (model, settings) = multiband_model(&bands, sel, *loss);
+                let (mut model, settings) = multiband_model(&bands, sel, *loss);
+                // The same weighting as the method's fits.
+                if let Some(f) = FundusBands::of(m, study, &bands) {
+                    match f.spectrum(&pos) {
+                        Some(s) => model = f.model(&s),
+                        None => continue,
+                    }
+                }
                 let points = pos
                     .iter()
                     .filter_map(|p| {

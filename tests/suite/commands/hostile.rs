@@ -319,3 +319,66 @@ fn a_full_disk_is_named_with_the_path() {
         environment_error(&o, "No space left on device", "results/");
     }
 }
+
+#[test]
+fn band_gains_are_all_or_none_and_the_fundus_weighting_needs_them() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    study(d);
+    let (b570, b600) = (
+        "{name: b570, centre_nm: 570, fwhm_nm: 10}",
+        "{name: b600, centre_nm: 600, fwhm_nm: 10}",
+    );
+    // Gains are relative: one band's alone means nothing.
+    edit(
+        d,
+        "study.yaml",
+        b570,
+        "{name: b570, centre_nm: 570, fwhm_nm: 10, gain: 1.2}",
+    );
+    let o = refused(
+        d,
+        "study.yaml:8:7: band `b600` has no `gain` while 1 of the instrument's bands have one",
+    );
+    says(&o, "give every band its `gain`, or none");
+    edit(
+        d,
+        "study.yaml",
+        b600,
+        "{name: b600, centre_nm: 600, fwhm_nm: 10, gain: 0}",
+    );
+    let o = refused(d, "study.yaml:8:");
+    says(&o, "`gain`");
+    edit(d, "study.yaml", "gain: 0}", "gain: 0.9}");
+    // A multiband method over four bands: with every gain given, the
+    // fundus weighting is the default and may be named.
+    edit(
+        d,
+        "study.yaml",
+        "    - {name: b600",
+        "    - {name: b586, centre_nm: 586, fwhm_nm: 10, gain: 1}\n    - {name: b548, centre_nm: 548, fwhm_nm: 10, gain: 1}\n    - {name: b600",
+    );
+    let text = std::fs::read_to_string(d.join("study.yaml")).unwrap();
+    write(
+        d,
+        "study.yaml",
+        &format!("{text}  - method: multiband\n    weighting: fundus\n"),
+    );
+    let o = check(d);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    // Without the gains it cannot be done, and `check` says how to fix it.
+    let text = std::fs::read_to_string(d.join("study.yaml"))
+        .unwrap()
+        .replace(", gain: 1.2}", "}")
+        .replace(", gain: 0.9}", "}")
+        .replace(", gain: 1}", "}");
+    write(d, "study.yaml", &text);
+    let o = refused(
+        d,
+        "`weighting: fundus` needs every band's `gain`, and the instrument does not give them all",
+    );
+    says(&o, "or use `weighting: response`");
+    // `response` is always possible.
+    edit(d, "study.yaml", "weighting: fundus", "weighting: response");
+    assert_eq!(check(d).code, 0);
+}

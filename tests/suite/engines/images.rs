@@ -461,6 +461,7 @@ fn dark_flat_and_band_offsets_are_corrected() {
             fwhm_nm: 10.0,
         },
         offset_px: None,
+        gain: None,
     };
     let mut inst = Instrument {
         name: "test".into(),

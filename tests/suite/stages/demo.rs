@@ -134,7 +134,7 @@ fn simulated_reference_and_truth_are_physiological() {
     assert_eq!(run.code, 0, "{}", run.stderr);
     // The joint fit's SE, through the image stage, matches the scatter of
     // repeated captures' errors against their truth within a factor 1.5
-    // (measured: 1.06). The captures' own scatter is 1.69 SE: the
+    // (measured: 1.10). The captures' own scatter is 1.72 SE: the
     // simulator varies each vessel's SO2 by 0.7 points SD from capture to
     // capture, which is the vessel's, not the measurement's (the SE is
     // about 0.55 points since neighbours are kept out of the background;

@@ -114,12 +114,15 @@ fn auto_model_recovers_what_a_wavelength_dependent_veil_hides() {
         "auto: median error {auto_err:+.2}, misfits {:.1} %, {auto_models:?}",
         auto_misfit * 100.0
     );
-    // Measured: base +8.7 points with 92 % misfits; auto −1.4 with none,
-    // the veil slope (alone or with the fundus slope) in every fit. (On
+    // Measured: base +7.9 points with 89.3 % misfits; auto +0.2 with none,
+    // the veil slope in every fit. The fits the test lets pass are of the
+    // three short branch segments (A3b, V1b): fewer positions, less power.
+    // (With the bands weighted by their response alone, base +8.7 with
+    // 92 %, part of them the weighting's own misfits, and auto −1.4. On
     // this scene rendered without the veil slope the base model's median
-    // error is +0.6; before neighbouring vessels were kept out of the
-    // profiles' background it was −1.9, and auto's −3.8 here.)
-    assert!(base_misfit >= 0.9, "{base_misfit}");
+    // error is −0.08 / +0.08 points, arterioles / venules, with 0.8 %
+    // misfits.)
+    assert!(base_misfit >= 0.85, "{base_misfit}");
     assert!(base_err > 5.0, "{base_err}");
     assert!(auto_misfit < 0.1, "{auto_misfit}");
     assert!(auto_err.abs() < 0.6 * base_err, "{auto_err} vs {base_err}");
@@ -166,13 +169,13 @@ fn auto_model_recovers_what_a_wavelength_dependent_veil_hides() {
         let r = ratios(method);
         r.iter().map(|q| (q - 1.0).abs()).sum::<f64>() / r.len() as f64
     };
-    // Measured: base 0.75–0.86 of the truth (mean |ratio − 1| 0.18);
-    // auto 0.93–1.01 (mean 0.025), with one model per eye. Three subjects
-    // measure a change of 8.6 points to ±1.3 (the 95 % interval of auto's
-    // venular low-15 contrast, its 0.93), and the base model on the same
-    // scene without the veil slope gives 0.96 on that contrast: one
-    // contrast's 5 % is below what this study can resolve, so the 5 % is
-    // asked of the mean, and each induced change must lie in its interval.
+    // Measured: base 0.76–0.87 of the truth (mean |ratio − 1| 0.18);
+    // auto 0.96–1.02 (mean 0.023), with one model per eye. Three subjects
+    // measure a change of 8.6 points to about ±1.3 (the 95 % interval of
+    // auto's venular low-15 contrast; it read 0.93 with the bands
+    // weighted by their response alone): one contrast's 5 % is at the edge
+    // of what this study can resolve, so the 5 % is asked of the mean, and
+    // each induced change must lie in its interval.
     let base_off = off("multiband");
     assert!(base_off > 0.08, "{base_off}");
     let auto_off = off("multiband-auto");
@@ -311,8 +314,8 @@ fn auto_model_recovers_what_a_wavelength_dependent_veil_hides() {
     assert!(report.contains("calibrated within each subject by classical calibration"));
 
     // The SE of a chosen model includes the uncertainty of the choice, so
-    // it matches the scatter of repeated captures (measured: 1.22; 1.68
-    // before the choice was counted; on SO2 − truth 0.85 and 1.57).
+    // it matches the scatter of repeated captures (measured: 1.00, on
+    // SO2 − truth 0.81; 1.68 before the choice was counted).
     let (raw, err) = se_scatter_ratio(&s, "multiband-auto");
     eprintln!("multiband-auto: capture scatter / SE {raw:.2} (errors {err:.2})");
     assert!((1.0 / 1.5..=1.5).contains(&raw), "{raw} {err}");

@@ -34,19 +34,23 @@ fn a_spectra_table_replaces_the_images() {
         .filter(|(_, h)| h.starts_with("t_"))
         .map(|(i, h)| (i, h[2..].to_string()))
         .collect();
-    let mut tidy =
-        String::from("subject,capture,vessel,kind,position,band,transmission,diameter_um\n");
+    // With each band's background level: the simulated camera states its
+    // gains, so the multiband methods weight the bands by the fundus.
+    let mut tidy = String::from(
+        "subject,capture,vessel,kind,position,band,transmission,diameter_um,background\n",
+    );
     for r in rows.iter().filter(|r| r[col("quality_flags")].is_empty()) {
         for (i, b) in &bands {
             tidy.push_str(&format!(
-                "{},{},{},{},{},{b},{},{}\n",
+                "{},{},{},{},{},{b},{},{},{}\n",
                 r[col("subject")],
                 r[col("capture")],
                 r[col("segment")],
                 r[col("kind")],
                 r[col("position")],
                 r[*i],
-                r[col("diameter_um")]
+                r[col("diameter_um")],
+                r[col(&format!("background_{b}"))]
             ));
         }
     }
@@ -66,11 +70,27 @@ fn a_spectra_table_replaces_the_images() {
             .unwrap();
         }
     }
-    std::fs::write(sp.join("spectra.csv"), tidy).unwrap();
     let study = std::fs::read_to_string(sp.join("study.yaml"))
         .unwrap()
         .replace("output: results", "spectra: spectra.csv\noutput: results");
     std::fs::write(sp.join("study.yaml"), study).unwrap();
+    // Without the background levels the fundus cannot be read: `check`
+    // says so, and how to go on.
+    let without: String = tidy
+        .lines()
+        .map(|l| format!("{}\n", &l[..l.rfind(',').unwrap()]))
+        .collect();
+    std::fs::write(sp.join("spectra.csv"), without).unwrap();
+    let o = satstep(dir.path(), &["check", sp.to_str().unwrap()]);
+    assert_eq!(o.code, 1, "{}", o.stderr);
+    assert!(
+        o.stderr
+            .contains("spectra.csv:1:1: method `multiband` weights its bands by the fundus")
+            && o.stderr.contains("give the method `weighting: response`"),
+        "{}",
+        o.stderr
+    );
+    std::fs::write(sp.join("spectra.csv"), tidy).unwrap();
     let o = satstep(dir.path(), &["run", sp.to_str().unwrap()]);
     assert_eq!(o.code, 0, "{}", o.stderr);
     assert!(!sp.join("subjects/V01/captures").exists());
@@ -128,7 +148,8 @@ fn a_spectra_table_replaces_the_images() {
     )
     .text("band", text("band"));
     pq.real("transmission", real("transmission"))
-        .real("diameter_um", real("diameter_um"));
+        .real("diameter_um", real("diameter_um"))
+        .real("background", real("background"));
     pq.write(&dir.path().join("pq"), "spectra").unwrap();
     std::fs::copy(
         dir.path().join("pq/spectra.parquet"),

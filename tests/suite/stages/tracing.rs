@@ -378,6 +378,13 @@ fn a_study_started_with_init_and_proposed_segments_gives_the_hand_made_so2() {
         "{study}"
     );
     assert!(!o.stderr.contains("not complete"), "{}", o.stderr);
+    // The lab states its camera's band gains from a white target, as the
+    // simulated study does (equal), so both weight the bands alike.
+    std::fs::write(
+        lab.join("study.yaml"),
+        study.replace("fwhm_nm: 8}", "fwhm_nm: 8, gain: 1}"),
+    )
+    .unwrap();
     // Before the proposals, `check` names the missing segment files and how to make them.
     let o = satstep(tmp.path(), &["check", lab.to_str().unwrap()]);
     assert_eq!(o.code, 1);
