@@ -417,6 +417,7 @@ fn read_site(arg: &str) -> Result<Site> {
         c("backscatter_scale")?,
         c("fundus_slope")?,
     );
+    let frise = c("fundus_rise")?;
     let (fit_, fev, fterm, fdet, fpos, fdia) = (
         c("iterations")?,
         c("evaluations")?,
@@ -476,6 +477,7 @@ fn read_site(arg: &str) -> Result<Site> {
             veil_slope: so2.real(i, fveil)?,
             backscatter_scale: so2.real(i, fback)?,
             fundus_slope: so2.real(i, ffund)?,
+            fundus_rise: so2.real(i, frise)?,
             alternatives: Vec::new(),
         });
     }

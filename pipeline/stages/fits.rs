@@ -36,6 +36,40 @@ use crate::runner::key::{Key, KeyBuilder};
 use crate::runner::{Items, Runner};
 use crate::tables::Table;
 
+/// Wavelengths (nm) between which a fundus's reflectance rises: melanin
+/// absorbs less towards the red and the choroid's blood much less beyond
+/// about 590 nm, so a fundus is brighter at 610 than at 560 nm in every eye
+/// (a fact of the trade).
+pub(crate) const RISE_NM: (f64, f64) = (560.0, 610.0);
+
+/// One warning per method that weights its bands by the fundus and reads
+/// the fundus as falling from 560 to 610 nm in most segment fits (median
+/// [`FitRow::fundus_rise`] below 1): the stated band gains are then wrong,
+/// most likely given as their inverses, and the weighting they drive with
+/// them.
+pub(crate) fn gain_warnings(rows: &[FitRow], study: &Study) -> Vec<String> {
+    let mut out = Vec::new();
+    for m in &study.methods {
+        let rises: Vec<f64> = rows
+            .iter()
+            .filter(|r| r.method == m.label)
+            .filter_map(|r| r.fundus_rise)
+            .collect();
+        if rises.is_empty() {
+            continue;
+        }
+        let n = rises.len();
+        let mid = median(rises);
+        if mid < 1.0 {
+            out.push(format!(
+                "`{}`: through the bands' stated `gain`s the fundus behind the vessels reads {mid:.2} times as bright at {} nm as at {} nm (median over {n} segment fits), where a fundus is brighter towards the red; the gains are likely wrong (each is a white target's signal in the band relative to the others, not its inverse), and so is the weighting of the bands by the fundus: check them, or give the method `weighting: response`",
+                m.label, RISE_NM.1, RISE_NM.0
+            ));
+        }
+    }
+    out
+}
+
 /// Share of a method's joint fits that may misfit before the run warns.
 pub(crate) const MISFIT_WARN_SHARE: f64 = 0.1;
 
@@ -215,6 +249,9 @@ pub struct FitRow {
     pub veil_slope: Option<f64>,
     pub backscatter_scale: Option<f64>,
     pub fundus_slope: Option<f64>,
+    /// `weighting: fundus`: the fundus reflectance read behind the segment
+    /// at [`RISE_NM`]`.1` over that at [`RISE_NM`]`.0` (see [`gain_warnings`]).
+    pub fundus_rise: Option<f64>,
     /// `model: auto`: every candidate model's fit of this capture's
     /// segment, until the choice across the eye's fits (`choose_models`)
     /// replaces the row by one of them.
@@ -296,13 +333,14 @@ impl Stage for Fits {
     }
 
     /// Says when a method's model does not describe the spectra of more
-    /// than [`MISFIT_WARN_SHARE`] of its fits, naming the bands and segments.
+    /// than [`MISFIT_WARN_SHARE`] of its fits, naming the bands and
+    /// segments, and when the stated band gains read the fundus backwards.
     fn report(run: &Run, runner: &Runner) {
-        for line in misfit_warnings(
-            &run.output::<Fits>().rows,
-            run.output::<Epochs>(),
-            run.study,
-        ) {
+        let rows = &run.output::<Fits>().rows;
+        for line in misfit_warnings(rows, run.output::<Epochs>(), run.study)
+            .into_iter()
+            .chain(gain_warnings(rows, run.study))
+        {
             runner.warn(line);
         }
     }
@@ -532,6 +570,15 @@ impl FundusBands {
         FundusSpectrum::from_band_levels(&self.all, &levels)
     }
 
+    /// `R(610 nm) / R(560 nm)` of a spectrum read through these bands, when
+    /// their mean wavelengths reach both (no extrapolation is judged).
+    pub(crate) fn rise(&self, spectrum: &FundusSpectrum) -> Option<f64> {
+        let centres: Vec<f64> = self.all.iter().map(SampledBand::centroid_nm).collect();
+        let reach = |nm: f64| centres.iter().any(|c| *c <= nm) && centres.iter().any(|c| *c >= nm);
+        (reach(RISE_NM.0) && reach(RISE_NM.1))
+            .then(|| spectrum.at(RISE_NM.1) / spectrum.at(RISE_NM.0))
+    }
+
     /// The base model over the method's bands weighted by `spectrum`.
     pub(crate) fn model(&self, spectrum: &FundusSpectrum) -> VesselModel {
         VesselModel::new(&self.selected, |l| spectrum.at(l), BLOOD_BACKSCATTER)
@@ -539,19 +586,24 @@ impl FundusBands {
 }
 
 impl Prepared {
-    /// The base model and the candidates for one segment's positions; None
-    /// when the fundus spectrum cannot be read from them.
-    fn for_segment(&self, pos: &[&PositionRow]) -> Option<(VesselModel, Vec<VesselModel>)> {
+    /// The base model and the candidates for one segment's positions, and
+    /// the fundus's rise read behind it ([`FundusBands::rise`]); None when
+    /// the fundus spectrum cannot be read from them.
+    fn for_segment(
+        &self,
+        pos: &[&PositionRow],
+    ) -> Option<(VesselModel, Vec<VesselModel>, Option<f64>)> {
         let Some(f) = &self.fundus else {
-            return Some((self.base.clone(), self.candidates.clone()));
+            return Some((self.base.clone(), self.candidates.clone(), None));
         };
-        let base = f.model(&f.spectrum(pos)?);
+        let spectrum = f.spectrum(pos)?;
+        let base = f.model(&spectrum);
         let candidates = self
             .candidates
             .iter()
             .map(|c| base.clone().with_extensions(c.extensions))
             .collect();
-        Some((base, candidates))
+        Some((base, candidates, f.rise(&spectrum)))
     }
 }
 
@@ -632,6 +684,7 @@ fn fit_capture(
                 veil_slope: None,
                 backscatter_scale: None,
                 fundus_slope: None,
+                fundus_rise: None,
                 alternatives: Vec::new(),
             };
             if pos.len() < MIN_POSITIONS {
@@ -661,10 +714,11 @@ fn fit_capture(
                     ..
                 } => {
                     let prep = prep.expect("a multiband method is prepared");
-                    let Some((model, candidates)) = prep.for_segment(&pos) else {
+                    let Some((model, candidates, rise)) = prep.for_segment(&pos) else {
                         row.termination = Outcome::NoFundusSpectrum;
                         return row;
                     };
+                    row.fundus_rise = rise;
                     let (model, settings) = (&model, &prep.settings);
                     let spectra = SegmentSpectra {
                         diameters_um: pos.iter().map(|p| p.diameter_um).collect(),
@@ -1042,6 +1096,7 @@ fn write(rows: &[FitRow], epochs: &EpochTables, study: &Study, out: &Path) -> Re
             rows.iter().map(|r| r.backscatter_scale),
         )
         .opt_real("fundus_slope", rows.iter().map(|r| r.fundus_slope))
+        .opt_real("fundus_rise", rows.iter().map(|r| r.fundus_rise))
         .int("iterations", rows.iter().map(|r| r.iterations))
         .int("evaluations", rows.iter().map(|r| r.evaluations))
         .text("termination", rows.iter().map(|r| r.termination.code()))

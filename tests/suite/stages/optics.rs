@@ -3,7 +3,7 @@
 //! `model: auto` side by side: the base model's fits are flagged and its
 //! contrasts shrink; `auto` chooses extensions and gets both closer to the
 //! truth. The study file's `model:` is checked against what the bands can
-//! identify.
+//! identify. Band gains that read the fundus backwards are warned of.
 
 use std::collections::BTreeMap;
 
@@ -495,4 +495,52 @@ fn blurred_captures_are_measured_through_the_point_spread_function() {
         );
         assert!(left.abs() < 1.5, "{method}: {left}");
     }
+}
+
+#[test]
+fn band_gains_that_read_the_fundus_backwards_are_warned_of() {
+    let dir = tempfile::tempdir().unwrap();
+    let s = simulated(dir.path(), "tests/fixtures/sites-scenario.yaml", "g");
+    let o = satstep(dir.path(), &["--no-progress", "run", s.to_str().unwrap()]);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    assert!(!o.stderr.contains("stated `gain`s"), "{}", o.stderr);
+    // The simulator's fundus (a sigmoid near 590 nm, melanin by grade) is
+    // 2.7–3.3 times as bright at 610 as at 560 nm; each segment reads it
+    // so, within the image noise (measured 2.52–3.64).
+    let rises: Vec<f64> = records(&s.join("results/fits/so2.csv"))
+        .iter()
+        .filter(|r| r["method"] == "multiband" && !r["fundus_rise"].is_empty())
+        .map(|r| r["fundus_rise"].parse().unwrap())
+        .collect();
+    assert!(rises.len() > 20, "{}", rises.len());
+    let (lo, hi) = rises
+        .iter()
+        .fold((f64::INFINITY, 0.0f64), |a, v| (a.0.min(*v), a.1.max(*v)));
+    eprintln!("fundus read at 610 over 560 nm: {lo:.2}–{hi:.2}");
+    assert!(lo > 2.2 && hi < 4.0, "{lo} {hi}");
+    // Gains stated as if the camera were thirty times as sensitive at
+    // 616 nm as at 506 (the simulated camera is flat): the fundus reads
+    // darker towards the red, and the run says the gains are wrong.
+    let study = s.join("study.yaml");
+    let mut text = std::fs::read_to_string(&study).unwrap();
+    for c in [506, 548, 570, 586, 600, 616] {
+        let gain = ((c as f64 - 506.0) / 30.0).exp();
+        text = text.replace(
+            &format!("centre_nm: {c}, fwhm_nm: 8, gain: 1}}"),
+            &format!("centre_nm: {c}, fwhm_nm: 8, gain: {gain:.3}}}"),
+        );
+    }
+    assert!(!text.contains("gain: 1}"), "{text}");
+    std::fs::write(&study, text).unwrap();
+    let o = satstep(dir.path(), &["--no-progress", "run", s.to_str().unwrap()]);
+    assert_eq!(o.code, 0, "{}", o.stderr);
+    assert!(
+        o.stderr.contains(
+            "`multiband`: through the bands' stated `gain`s the fundus behind the vessels reads"
+        ) && o.stderr.contains("not its inverse"),
+        "{}",
+        o.stderr
+    );
+    let manifest = std::fs::read_to_string(s.join("results/manifest.json")).unwrap();
+    assert!(manifest.contains("stated `gain`s"), "{manifest}");
 }
