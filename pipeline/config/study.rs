@@ -976,11 +976,18 @@ pub(crate) fn read_instrument(r: &mut Reader, node: &Node, root: &Path) -> Optio
                         .zip(&marks)
                         .find(|(b, _)| b.gain.is_none())
                         .expect("some band has no gain");
+                    let given: Vec<String> = bands
+                        .iter()
+                        .filter(|b| b.gain.is_some())
+                        .map(|b| format!("`{}`", b.name))
+                        .collect();
                     r.error(
                         *mark,
                         format!(
-                            "band `{}` has no `gain` while {with} of the instrument's bands have one",
-                            b.name
+                            "band `{}` has no `gain`, though {} {} one",
+                            b.name,
+                            given.join(", "),
+                            if with == 1 { "has" } else { "have" }
                         ),
                     )
                     .hint("gains are relative to each other: give every band its `gain`, or none");

@@ -34,8 +34,10 @@ pub struct FundusSpectrum {
     m: Vec<f64>,
 }
 
-/// Corrections of the knots so that band averages match; three leave the
-/// averages within 1e-5 of the measured ones on the simulator's fundus.
+/// Corrections of the knots so that band averages match. On the
+/// simulator's fundus through eight 8 nm bands the averages are off by
+/// 5e-3 before any, 2e-5 after two and 7e-7 after four (the spectrum
+/// itself stays within 0.7 % of the rendered one from 540 to 620 nm).
 const KNOT_PASSES: usize = 4;
 
 impl FundusSpectrum {
@@ -159,14 +161,23 @@ mod tests {
 
     #[test]
     fn band_averages_match_the_measured_levels() {
-        let r = |l: f64| 0.04 + 0.18 / (1.0 + (-(l - 590.0) / 18.0).exp());
+        // The simulator's fundus (`simulate::render::background_reflectance`
+        // at grade 4), written out so that this module stands alone.
+        let r = |l: f64| {
+            (0.04 + 0.18 / (1.0 + (-(l - 590.0) / 18.0).exp())) * (-(550.0 / l).powi(4)).exp()
+        };
         let b = bands();
         let levels: Vec<f64> = b.iter().map(|x| x.average(r)).collect();
         let s = FundusSpectrum::from_band_levels(&b, &levels).unwrap();
         for (x, want) in b.iter().zip(&levels) {
             let got = x.average(|l| s.at(l));
-            assert!((got / want - 1.0).abs() < 1e-5, "{got} vs {want}");
+            assert!((got / want - 1.0).abs() < 2e-6, "{got} vs {want}");
         }
+        // Between the bands the spline is not the sigmoid, but close.
+        let worst = (540..=620)
+            .map(|l| (s.at(l as f64) / r(l as f64) - 1.0).abs())
+            .fold(0.0, f64::max);
+        assert!(worst < 0.01, "{worst}");
     }
 
     #[test]

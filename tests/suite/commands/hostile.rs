@@ -338,7 +338,7 @@ fn band_gains_are_all_or_none_and_the_fundus_weighting_needs_them() {
     );
     let o = refused(
         d,
-        "study.yaml:8:7: band `b600` has no `gain` while 1 of the instrument's bands have one",
+        "study.yaml:8:7: band `b600` has no `gain`, though `b570` has one",
     );
     says(&o, "give every band its `gain`, or none");
     edit(
