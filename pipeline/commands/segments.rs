@@ -295,7 +295,8 @@ fn propose_eye(
     let mut reasons = Vec::new();
     let mut refined = Vec::new();
     for (i, line) in lines.iter().enumerate() {
-        let others = all_but(lines.as_slice(), i);
+        // Radii unknown yet: neighbours only flag the positions they cross.
+        let others = Neighbour::all_but(&lines, &[], i);
         match refine(&img, line, &others, wb, &ps) {
             Some(r) if length(&r) >= settings.min_length_px => refined.push(r),
             _ => reasons.push(format!(
@@ -308,7 +309,7 @@ fn propose_eye(
     // line that stopped beside a neighbour's traced end now sees it.
     let lines: Vec<Vec<(f64, f64)>> = (0..refined.len())
         .filter_map(|i| {
-            let others = all_but(refined.as_slice(), i);
+            let others = Neighbour::all_but(&refined, &[], i);
             refine(&img, &refined[i], &others, wb, &ps)
                 .filter(|r| length(r) >= settings.min_length_px)
                 .or_else(|| Some(refined[i].clone()))
@@ -440,16 +441,6 @@ fn propose_eye(
         reasons,
         overlay,
     })
-}
-
-/// Every line but the `i`-th: a line's neighbours.
-fn all_but(lines: &[Vec<(f64, f64)>], i: usize) -> Vec<Vec<(f64, f64)>> {
-    lines
-        .iter()
-        .enumerate()
-        .filter(|(j, _)| *j != i)
-        .map(|(_, l)| l.clone())
-        .collect()
 }
 
 /// Why an existing segment file must not be replaced, or `None` when it

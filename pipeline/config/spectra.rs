@@ -189,9 +189,9 @@ pub(crate) fn read_spectra(
                 }
             },
         };
-        let background = match c_bg.map(|c| (c, get(c))) {
+        let background = match c_bg.map(get) {
             None => f64::NAN,
-            Some((_, None)) => {
+            Some(None) => {
                 findings
                     .error(
                         path,
@@ -203,7 +203,7 @@ pub(crate) fn read_spectra(
                     );
                 continue;
             }
-            Some((_, Some((s, m)))) => match s.trim().parse::<f64>() {
+            Some(Some((s, m))) => match s.trim().parse::<f64>() {
                 Ok(v) if v.is_finite() && v > 0.0 => v,
                 _ => {
                     findings.error(

@@ -620,19 +620,12 @@ pub fn length(l: &[(f64, f64)]) -> f64 {
 pub fn refine(
     img: &super::ingest::Multiband,
     line: &[(f64, f64)],
-    others: &[Vec<(f64, f64)>],
+    others: &[super::profile::Neighbour],
     band: usize,
     st: &super::profile::ProfileSettings,
 ) -> Option<Vec<(f64, f64)>> {
     use super::profile::{analyse_segment, median};
-    let others: Vec<super::profile::Neighbour> = others
-        .iter()
-        .map(|l| super::profile::Neighbour {
-            line: l.clone(),
-            radius_px: f64::NAN,
-        })
-        .collect();
-    let prof = analyse_segment(img, line, &others, band, st);
+    let prof = analyse_segment(img, line, others, band, st);
     // Only clean positions: beside a neighbour the background, and with
     // it the fitted centre, is pulled towards the neighbour.
     let good: Vec<_> = prof.iter().filter(|p| p.flags.is_empty()).collect();

@@ -523,6 +523,9 @@ pub(crate) struct FundusBands {
     all: Vec<SampledBand>,
     gains: Vec<f64>,
     selected: Vec<SampledBand>,
+    /// The bands' mean wavelengths reach both of [`RISE_NM`] (no
+    /// extrapolation is judged).
+    reach_rise: bool,
 }
 
 impl FundusBands {
@@ -537,7 +540,10 @@ impl FundusBands {
         else {
             return None;
         };
+        let centres: Vec<f64> = bands.iter().map(SampledBand::centroid_nm).collect();
+        let reach = |nm: f64| centres.iter().any(|c| *c <= nm) && centres.iter().any(|c| *c >= nm);
         Some(FundusBands {
+            reach_rise: reach(RISE_NM.0) && reach(RISE_NM.1),
             all: bands.to_vec(),
             gains: study
                 .instrument
@@ -571,11 +577,9 @@ impl FundusBands {
     }
 
     /// `R(610 nm) / R(560 nm)` of a spectrum read through these bands, when
-    /// their mean wavelengths reach both (no extrapolation is judged).
+    /// their mean wavelengths reach both.
     pub(crate) fn rise(&self, spectrum: &FundusSpectrum) -> Option<f64> {
-        let centres: Vec<f64> = self.all.iter().map(SampledBand::centroid_nm).collect();
-        let reach = |nm: f64| centres.iter().any(|c| *c <= nm) && centres.iter().any(|c| *c >= nm);
-        (reach(RISE_NM.0) && reach(RISE_NM.1))
+        self.reach_rise
             .then(|| spectrum.at(RISE_NM.1) / spectrum.at(RISE_NM.0))
     }
 
@@ -1280,6 +1284,7 @@ mod tests {
                 all: bands.clone(),
                 gains: stated.to_vec(),
                 selected: bands.clone(),
+                reach_rise: false,
             }
             .spectrum(&positions.iter().collect::<Vec<_>>())
             .unwrap()
@@ -1299,6 +1304,7 @@ mod tests {
             all: bands.clone(),
             gains: vec![1.0; 4],
             selected: bands.clone(),
+            reach_rise: false,
         };
         assert!(f.spectrum(&[&position(dark)]).is_none());
     }
