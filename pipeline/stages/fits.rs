@@ -21,15 +21,16 @@ use crate::fit::Termination;
 use crate::images::profile::median;
 use crate::oximetry::bands::SampledBand;
 use crate::oximetry::fundus::FundusSpectrum;
-use crate::oximetry::model::{BLOOD_BACKSCATTER, VesselModel};
+use crate::oximetry::model::{BLOOD_BACKSCATTER, Extensions, VesselModel};
 use crate::oximetry::odr::{
     Calibrated, Linear, diameter_corrected, inverse_calibration, leave_one_subject_out,
     segment_odr, two_point, two_point_slope_se, within_group_slope,
 };
 use crate::oximetry::pointwise::fit_pointwise;
 use crate::oximetry::segment::{
-    ADEQUACY_FALSE_ALARM, Adequacy, Candidate, FitSettings, MISFIT_MIN_RESIDUAL, RobustLoss,
-    SegmentFit, SegmentFitError, SegmentSpectra, choose_across, fit_candidates, fit_segment,
+    ADEQUACY_FALSE_ALARM, Adequacy, Candidate, EyeFit, FitSettings, MISFIT_MIN_RESIDUAL,
+    RobustLoss, SegmentFit, SegmentFitError, SegmentSpectra, base_describes_eye, choose_across,
+    choose_for_eye, eye_misfits, fit_candidates, fit_segment,
 };
 use crate::oximetry::sensitivity::supported_models;
 use crate::runner::key::{Key, KeyBuilder};
@@ -87,7 +88,7 @@ pub(crate) fn misfit_warnings(rows: &[FitRow], epochs: &EpochTables, study: &Stu
         let misfits: Vec<&FitRow> = fitted
             .iter()
             .copied()
-            .filter(|r| r.adequacy == Some(Adequacy::Misfit))
+            .filter(|r| r.adequacy.is_some_and(Adequacy::is_misfit))
             .collect();
         if fitted.is_empty() || (misfits.len() as f64) <= MISFIT_WARN_SHARE * fitted.len() as f64 {
             continue;
@@ -119,13 +120,18 @@ pub(crate) fn misfit_warnings(rows: &[FitRow], epochs: &EpochTables, study: &Stu
             }
         }
         let shown: Vec<String> = segs.iter().take(5).cloned().collect();
+        let alone = misfits
+            .iter()
+            .filter(|r| r.adequacy == Some(Adequacy::Misfit))
+            .count();
         out.push(format!(
-            "`{}`: the vessel model does not describe the spectra of {} of {} segment fits ({:.0} %, more than {:.0} %): bands {} off on average (model − measured); e.g. {}{}. SO2 from these fits may be biased by several points: look at the residual columns of `fits/so2`, and fit an extended model (`model: auto`, or the extensions `satstep sensitivity` says the bands support) or restrict the statistics to adequate fits",
+            "`{}`: the vessel model does not describe the spectra of {} of {} segment fits ({:.0} %, more than {:.0} %; {alone} on their own, {} with the other segments of their eye): bands {} off on average (model − measured); e.g. {}{}. SO2 from these fits may be biased by several points: look at the residual columns of `fits/so2`, and fit an extended model (`model: auto`, or the extensions `satstep sensitivity` says the bands support) or restrict the statistics to adequate fits",
             m.label,
             misfits.len(),
             fitted.len(),
             100.0 * misfits.len() as f64 / fitted.len() as f64,
             100.0 * MISFIT_WARN_SHARE,
+            misfits.len() - alone,
             names.join(", "),
             shown.join(", "),
             if segs.len() > shown.len() { ", …" } else { "" }
@@ -280,7 +286,7 @@ pub struct Fits;
 impl Stage for Fits {
     const NAME: &'static str = "fits";
     // 9: `weighting: fundus`.
-    const VERSION: u32 = 9;
+    const VERSION: u32 = 10;
     const SUMMARY: &'static str = "SO2 of every segment of every capture by each method";
     const UPSTREAM: &'static [&'static str] = &["epochs", "transmissions"];
     type Output = FitTables;
@@ -444,6 +450,7 @@ pub(crate) fn assemble(
     let mut calibrations = Vec::new();
     for (m, mut rows) in study.methods.iter().zip(per_method) {
         choose_models(&mut rows, epochs);
+        judge_eyes(&mut rows, epochs);
         if let MethodKind::TwoBand {
             calibration,
             diameter_correction,
@@ -809,10 +816,12 @@ fn fill_joint(row: &mut FitRow, f: &SegmentFit, sel: &[usize]) {
     row.termination = Outcome::Joint(f.termination);
 }
 
-/// `model: auto`'s choice across each eye's fits ([`choose_across`]): the
-/// rows of one method that carry alternatives, grouped by subject, session
-/// and eye (all its segments in all its captures), each replaced by its
-/// fit of the model chosen for the eye, its SE widened by the choice's
+/// `model: auto`'s choice across each eye's fits ([`choose_for_eye`]):
+/// the rows of one method that carry alternatives, grouped by subject,
+/// session and eye (all its segments in all its captures), each replaced
+/// by its fit of the model chosen for the eye: the base model where its
+/// fits describe the eye ([`base_describes_eye`]), else the model the
+/// information criterion chooses, its SE widened by the choice's
 /// uncertainty. Rows without alternatives are left as they are.
 fn choose_models(rows: &mut [FitRow], epochs: &EpochTables) {
     let mut groups: BTreeMap<(&str, &str, &str), Vec<usize>> = BTreeMap::new();
@@ -836,7 +845,20 @@ fn choose_models(rows: &mut [FitRow], epochs: &EpochTables) {
                     .collect()
             })
             .collect();
-        for (&i, choice) in members.iter().zip(choose_across(&candidates)) {
+        // Whether the base model describes the eye, from its base fits.
+        let base: Vec<(&FitRow, Vec<f64>)> = members
+            .iter()
+            .filter_map(|&i| {
+                rows[i]
+                    .alternatives
+                    .iter()
+                    .find(|a| a.candidate.model == Extensions::BASE.name())
+                    .map(|a| (&a.row, fractions(&a.row)))
+            })
+            .collect();
+        let keep_base = base.len() == members.len()
+            && base_describes_eye(&base.iter().map(|(r, v)| eye_fit(r, v)).collect::<Vec<_>>());
+        for (&i, choice) in members.iter().zip(choose_for_eye(&candidates, keep_base)) {
             if let Some((k, se)) = choice {
                 let mut chosen = rows[i].alternatives[k].row.clone();
                 chosen.so2_se = Some(se * 100.0);
@@ -845,6 +867,53 @@ fn choose_models(rows: &mut [FitRow], epochs: &EpochTables) {
             }
             rows[i].alternatives.clear();
         }
+    }
+}
+
+/// The adequacy test of each eye's joint fits together ([`eye_misfits`]):
+/// one method's rows with an adequacy, grouped by subject, session and eye.
+/// In an eye that misfits, every fit that passed on its own becomes
+/// `eye-misfit`.
+fn judge_eyes(rows: &mut [FitRow], epochs: &EpochTables) {
+    let judged: Vec<usize> = (0..rows.len())
+        .filter(|&i| rows[i].adequacy.is_some() && !rows[i].band_residuals.is_empty())
+        .collect();
+    let residuals: Vec<Vec<f64>> = judged.iter().map(|&i| fractions(&rows[i])).collect();
+    let mut eyes: BTreeMap<(&str, &str, &str), Vec<usize>> = BTreeMap::new();
+    for (k, &i) in judged.iter().enumerate() {
+        let c = &epochs.captures[rows[i].capture_index];
+        eyes.entry((&c.subject, &c.session, &c.eye))
+            .or_default()
+            .push(k);
+    }
+    let mut misfit_rows = Vec::new();
+    for members in eyes.values() {
+        let fits: Vec<EyeFit> = members
+            .iter()
+            .map(|&k| eye_fit(&rows[judged[k]], &residuals[k]))
+            .collect();
+        if eye_misfits(&fits) {
+            misfit_rows.extend(members.iter().map(|&k| judged[k]));
+        }
+    }
+    for i in misfit_rows {
+        if rows[i].adequacy == Some(Adequacy::Ok) {
+            rows[i].adequacy = Some(Adequacy::EyeMisfit);
+        }
+    }
+}
+
+/// A row's band residuals as fractions of the transmission.
+fn fractions(r: &FitRow) -> Vec<f64> {
+    r.band_residuals.iter().map(|(_, v)| v / 100.0).collect()
+}
+
+/// A joint fit's row as the eye's adequacy test sees it.
+fn eye_fit<'a>(r: &'a FitRow, residuals: &'a [f64]) -> EyeFit<'a> {
+    EyeFit {
+        segment: &r.segment,
+        band_residuals: residuals,
+        adequacy: r.adequacy.unwrap_or(Adequacy::Ok),
     }
 }
 
@@ -1127,7 +1196,7 @@ fn write(rows: &[FitRow], epochs: &EpochTables, study: &Study, out: &Path) -> Re
 
 /// What a joint method's model choice adds to the methods text.
 fn model_sentence(choice: ModelChoice, bands: &[SampledBand]) -> String {
-    let describe = |e: crate::oximetry::model::Extensions| {
+    let describe = |e: Extensions| {
         let mut parts = Vec::new();
         if e.veil_slope {
             parts.push("a veil linear in wavelength");
@@ -1145,7 +1214,7 @@ fn model_sentence(choice: ModelChoice, bands: &[SampledBand]) -> String {
         parts.join(", ")
     };
     match choice {
-        ModelChoice::Fixed(e) if e == crate::oximetry::model::Extensions::BASE => String::new(),
+        ModelChoice::Fixed(e) if e == Extensions::BASE => String::new(),
         ModelChoice::Fixed(e) => format!(
             " The model was extended by {}, each one parameter shared along the segment.",
             describe(e)
@@ -1219,12 +1288,13 @@ fn describe(study: &Study) -> String {
                     format!("`{}`: the same model fitted independently at each position, then averaged along the segment ({}; bands {}).{weighted}", m.label, l, names.join(", "))
                 } else {
                     format!(
-                        "`{}`: a band-integrated vessel transmission model (hemoglobin extinction from Prahl's compilation integrated over each band's response on a 1 nm grid; single- and double-pass Beer–Lambert paths, backscatter, and an additive veil T_obs = (1 − k)·T + k) fitted jointly to all positions of a segment, with SO2, hemoglobin concentration and k shared along the segment and path fractions per position, by bounded Levenberg–Marquardt ({l}; bands {}); standard errors from the Jacobian at the optimum scaled by the residual variance. Each fit's adequacy was tested on its residuals: per band, the mean residual of {} contiguous blocks of positions was compared with its standard error between blocks (t test, Bonferroni over bands for a {:.0} % false-alarm rate), and a band whose mean residual exceeded {:.1} % of the transmission at that level marked the fit as a misfit.",
+                        "`{}`: a band-integrated vessel transmission model (hemoglobin extinction from Prahl's compilation integrated over each band's response on a 1 nm grid; single- and double-pass Beer–Lambert paths, backscatter, and an additive veil T_obs = (1 − k)·T + k) fitted jointly to all positions of a segment, with SO2, hemoglobin concentration and k shared along the segment and path fractions per position, by bounded Levenberg–Marquardt ({l}; bands {}); standard errors from the Jacobian at the optimum scaled by the residual variance. Each fit's adequacy was tested on its residuals: per band, the mean residual of {} contiguous blocks of positions was compared with its standard error between blocks (t test, Bonferroni over bands for a {:.0} % false-alarm rate), and a band whose mean residual exceeded {:.1} % of the transmission at that level marked the fit as a misfit. The fits of each eye were also tested together, with each segment's band residuals averaged over its captures as one value: a band whose mean over the eye's segments differed from zero by the same t test across segments and by more than {:.2} % marked every fit of that eye as a misfit of the eye.",
                         m.label,
                         names.join(", "),
                         crate::oximetry::segment::ADEQUACY_BLOCKS,
                         ADEQUACY_FALSE_ALARM * 100.0,
-                        MISFIT_MIN_RESIDUAL * 100.0
+                        MISFIT_MIN_RESIDUAL * 100.0,
+                        crate::oximetry::segment::EYE_MISFIT_MIN_RESIDUAL * 100.0
                     ) + weighted
                         + &model_sentence(
                         *model,

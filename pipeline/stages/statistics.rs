@@ -372,7 +372,7 @@ impl<'a> Context<'a> {
 
     /// A misfit left out by `statistics.adequate_only`.
     fn misfit_left_out(&self, r: &FitRow) -> bool {
-        self.study.statistics.adequate_only && r.adequacy == Some(Adequacy::Misfit)
+        self.study.statistics.adequate_only && r.adequacy.is_some_and(Adequacy::is_misfit)
     }
 
     /// The values the statistics use: steady captures, a finite SO2, wide
@@ -1163,7 +1163,7 @@ fn describe(study: &Study, stats: Option<&StatisticsTables>) -> String {
         text.push_str(&format!(" The agreement with the reference was also given within each {by} group (bias, precision, Arms and limits of agreement), and the difference in bias between the highest and the lowest {by} group was tested over subjects (each subject's mean difference from the reference, Welch's t test with {level:.0} % interval), as current pulse-oximeter accuracy practice asks for skin pigmentation."));
     }
     if study.statistics.adequate_only {
-        text.push_str(" Joint multiband fits whose residuals showed a misfit of the vessel model were left out of all statistics.");
+        text.push_str(" Joint multiband fits whose residuals showed a misfit of the vessel model, on their own or with the other fits of their eye, were left out of all statistics.");
     }
     if let Some(d) = study.exclusions.min_diameter_um {
         text.push_str(&format!(" Segment values with a measured diameter below {d} µm were left out of all statistics and counted per subject and epoch."));

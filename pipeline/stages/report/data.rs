@@ -270,7 +270,7 @@ fn residual_panels(study: &Study, fits: &[FitRow]) -> Vec<ResidualPanel> {
             let of = |misfit: bool| -> Vec<f64> {
                 judged
                     .iter()
-                    .filter(|r| (r.adequacy == Some(Adequacy::Misfit)) == misfit)
+                    .filter(|r| (r.adequacy.is_some_and(Adequacy::is_misfit)) == misfit)
                     .filter_map(|r| r.band_residuals.iter().find(|(i, _)| *i == b))
                     .map(|(_, v)| *v)
                     .collect()
@@ -284,7 +284,7 @@ fn residual_panels(study: &Study, fits: &[FitRow]) -> Vec<ResidualPanel> {
             method: m.label.clone(),
             misfits: judged
                 .iter()
-                .filter(|r| r.adequacy == Some(Adequacy::Misfit))
+                .filter(|r| r.adequacy.is_some_and(Adequacy::is_misfit))
                 .count(),
             fits: judged.len(),
             bands,

@@ -154,7 +154,7 @@ pub fn all(dir: &Path, d: &ReportData, settings: &ReportSettings) -> Result<Vec<
     }
     if !d.residuals.is_empty() {
         let n = d.residuals.len() as u32;
-        let mut f = render(dir, "band_residuals", "How well the vessel model describes the spectra: each joint multiband fit's mean residual per band (model − measured, % of the transmission; grey: adequate fits, orange: misfits), the mean over all fits (black bar) and the misfit threshold of ±1.5 % (dashed)".to_string(), (560 * n + 40, 450), print, &|r| draw_residuals(r, &d.residuals))?;
+        let mut f = render(dir, "band_residuals", "How well the vessel model describes the spectra: each joint multiband fit's mean residual per band (model − measured, % of the transmission; grey: adequate fits, orange: misfits on their own or with the other fits of their eye), the mean over all fits (black bar) and a single fit's misfit threshold of ±1.5 % (dashed)".to_string(), (560 * n + 40, 450), print, &|r| draw_residuals(r, &d.residuals))?;
         f.quality = true;
         out.push(f);
     }

@@ -568,7 +568,7 @@ impl<'a> Parts<'a> {
                 .collect();
             let bad = judged
                 .iter()
-                .filter(|r| r.adequacy == Some(Adequacy::Misfit))
+                .filter(|r| r.adequacy.is_some_and(Adequacy::is_misfit))
                 .count();
             if !judged.is_empty() {
                 s.push_str(&format!(

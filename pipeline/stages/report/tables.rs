@@ -1100,11 +1100,14 @@ pub fn data_quality(study: &Study, images: &TransmissionTables, fits: &[FitRow])
         if !judged.is_empty() {
             let misfits = judged
                 .iter()
-                .filter(|r| r.adequacy == Some(crate::oximetry::segment::Adequacy::Misfit))
+                .filter(|r| {
+                    r.adequacy
+                        .is_some_and(crate::oximetry::segment::Adequacy::is_misfit)
+                })
                 .count();
             t.rows.push(vec![
                 format!(
-                    "{}: fits the vessel model does not describe (misfit{})",
+                    "{}: fits the vessel model does not describe (misfit, on their own or with their eye{})",
                     m.label,
                     if study.statistics.adequate_only {
                         "; left out of the statistics"

@@ -96,8 +96,12 @@ fn auto_model_recovers_what_a_wavelength_dependent_veil_hides() {
                 Some(r["so2"].parse::<f64>().unwrap() - t)
             })
             .collect();
-        let misfit =
-            rows.iter().filter(|r| r["adequacy"] == "misfit").count() as f64 / rows.len() as f64;
+        // On their own or with their eye.
+        let misfit = rows
+            .iter()
+            .filter(|r| r["adequacy"] == "misfit" || r["adequacy"] == "eye-misfit")
+            .count() as f64
+            / rows.len() as f64;
         let mut models = BTreeMap::new();
         for r in &rows {
             *models.entry(r["model"].clone()).or_default() += 1;
@@ -114,15 +118,15 @@ fn auto_model_recovers_what_a_wavelength_dependent_veil_hides() {
         "auto: median error {auto_err:+.2}, misfits {:.1} %, {auto_models:?}",
         auto_misfit * 100.0
     );
-    // Measured: base +7.9 points with 89.3 % misfits; auto +0.2 with none,
-    // the veil slope in every fit. The fits the test lets pass are of the
-    // three short branch segments (A3b, V1b): fewer positions, less power.
-    // (With the bands weighted by their response alone, base +8.7 with
-    // 92 %, part of them the weighting's own misfits, and auto −1.4. On
-    // this scene rendered without the veil slope the base model's median
-    // error is −0.08 / +0.08 points, arterioles / venules, with 0.8 %
-    // misfits.)
-    assert!(base_misfit >= 0.85, "{base_misfit}");
+    // Measured: base +7.9 points, every fit a misfit: 89.3 % on their own,
+    // the rest (of the three short branch segments A3b and V1b, whose own
+    // test has too few positions) with their eye; auto +0.2 with none, the
+    // veil slope in every fit. (With the bands weighted by their response
+    // alone, base +8.7 with 92 % on their own, part of them the
+    // weighting's own misfits, and auto −1.4. On this scene rendered
+    // without the veil slope the base model's median error is −0.03
+    // points, with 0.8 % misfits on their own and no eye a misfit.)
+    assert!(base_misfit >= 0.9, "{base_misfit}");
     assert!(base_err > 5.0, "{base_err}");
     assert!(auto_misfit < 0.1, "{auto_misfit}");
     assert!(auto_err.abs() < 0.6 * base_err, "{auto_err} vs {base_err}");
