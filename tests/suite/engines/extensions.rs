@@ -117,6 +117,9 @@ pub struct Summary {
     pub misfit: f64,
     /// Share of fits that misfit on their own or with their eye.
     pub misfit_with_eye: f64,
+    /// The change from SO2 60 to 95 % the fits measure, over the true 35
+    /// points: what an epoch contrast would report.
+    pub contrast: f64,
     pub chosen: Vec<(String, usize)>,
 }
 
@@ -184,7 +187,16 @@ fn summary_at(bands: &[SampledBand], optics: &Optics, k: f64, fitting: Fitting) 
     let share = |p: &dyn Fn(&SegmentFit, bool) -> bool| {
         fits.iter().filter(|(_, f, e)| p(f, *e)).count() as f64 / n
     };
+    let mean_at = |s: f64| {
+        let v: Vec<f64> = fits
+            .iter()
+            .filter(|(t, ..)| (*t - s).abs() < 1e-9)
+            .map(|(_, f, _)| f.so2)
+            .collect();
+        v.iter().sum::<f64>() / v.len() as f64
+    };
     Summary {
+        contrast: (mean_at(0.95) - mean_at(0.6)) / 0.35,
         bias: err.iter().sum::<f64>() / n,
         rms: (err.iter().map(|e| e * e).sum::<f64>() / n).sqrt(),
         misfit: share(&|f, _| f.adequacy == Adequacy::Misfit),
@@ -290,13 +302,17 @@ fn effects() -> Vec<(&'static str, Optics, Option<Extensions>)> {
 /// - the base model is biased by each veil and fundus effect (> 4 points),
 ///   its own extension and `auto` bring SO2 within 2 points at veils up to
 ///   0.4, and `auto` stays within 1 point where there is no effect;
+/// - `auto`'s change from SO2 60 to 95 % is within 5 % of the truth at veil
+///   0.1 and within 8 % at 0.4 (measured 1.01–1.03 and 1.06–1.07; the base
+///   model's 0.68–1.32);
 /// - the adequacy test, each fit's with its eye's, flags the base fits of
 ///   every veil and fundus effect at both veils in ≥ 90 % of segments, and
 ///   < 5 % where there is no effect.
 ///
 /// The backscatter spectrum is refused for these bands (its SO2 standard
 /// error is 3 times the base model's, `support`), so `auto` leaves its bias
-/// of 1–3 points; the test holds it below 3 (with bands in the blue it is
+/// of 0.6–2.0 points; the test holds it below 3. It shifts both saturations
+/// alike, so the contrasts stay within 1 % (with bands in the blue it is
 /// supported and removed:
 /// [`blue_bands_identify_the_backscatter_spectrum`]). Nor can the
 /// adequacy test see it reliably: on noise-free spectra the base model's
@@ -306,9 +322,9 @@ fn effects() -> Vec<(&'static str, Optics, Option<Extensions>)> {
 fn extensions_remove_the_biases_the_base_model_cannot_see() {
     let mut failures = Vec::new();
     eprintln!(
-        "| effect | veil k | base bias | base RMS | base misfits, alone / with the eye | base residual, no noise | extension bias | extension RMS | auto bias | auto RMS | auto misfits, alone / with the eye |"
+        "| effect | veil k | base bias | base RMS | base misfits, alone / with the eye | base residual, no noise | extension bias | extension RMS | auto bias | auto RMS | auto misfits, alone / with the eye | contrast, base / auto |"
     );
-    eprintln!("|---|---|---|---|---|---|---|---|---|---|---|");
+    eprintln!("|---|---|---|---|---|---|---|---|---|---|---|---|");
     for (name, optics, own) in effects() {
         for k in [0.1, 0.4] {
             let base = summary(&optics, k, Fitting::One(Extensions::BASE));
@@ -316,7 +332,7 @@ fn extensions_remove_the_biases_the_base_model_cannot_see() {
             let auto = summary(&optics, k, Fitting::Auto);
             let residual = noise_free_residual(&optics, k);
             eprintln!(
-                "| {name} | {k} | {:+.2} | {:.2} | {:.0} / {:.0} % | {residual:.2} % | {} | {} | {:+.2} | {:.2} | {:.0} / {:.0} % |",
+                "| {name} | {k} | {:+.2} | {:.2} | {:.0} / {:.0} % | {residual:.2} % | {} | {} | {:+.2} | {:.2} | {:.0} / {:.0} % | {:.3} / {:.3} |",
                 base.bias,
                 base.rms,
                 base.misfit * 100.0,
@@ -330,7 +346,9 @@ fn extensions_remove_the_biases_the_base_model_cannot_see() {
                 auto.bias,
                 auto.rms,
                 auto.misfit * 100.0,
-                auto.misfit_with_eye * 100.0
+                auto.misfit_with_eye * 100.0,
+                base.contrast,
+                auto.contrast
             );
             eprintln!("    auto chose {:?}", auto.chosen);
             let mut check = |ok: bool, what: String| {
@@ -367,6 +385,15 @@ fn extensions_remove_the_biases_the_base_model_cannot_see() {
                         format!("extension bias {:.2}", own_fit.bias),
                     );
                     check(auto.bias.abs() < 2.0, format!("auto bias {:.2}", auto.bias));
+                    // At veil 0.4 the extended fits' contrasts come out
+                    // 6–7 % large: their SO2 is biased by the noise itself,
+                    // −1.5 points at 60 % and −0.7 at 95 % (none without
+                    // noise, −0.6 and −0.3 at half the noise).
+                    let limit = if k < 0.2 { 0.05 } else { 0.08 };
+                    check(
+                        (auto.contrast - 1.0).abs() < limit,
+                        format!("auto contrast {:.3}", auto.contrast),
+                    );
                     check(
                         base.misfit_with_eye >= 0.9,
                         format!("base misfits only {:.2}", base.misfit_with_eye),
@@ -406,8 +433,19 @@ fn blue_bands_identify_the_backscatter_spectrum() {
             let own = summary_at(&wide, &optics, k, Fitting::One(backscatter));
             let auto = summary_at(&wide, &optics, k, Fitting::Auto);
             eprintln!(
-                "{name}, k {k}, eleven bands: base {:+.2} (RMS {:.2}), extension {:+.2} ({:.2}), auto {:+.2} ({:.2}), auto chose {:?}",
-                base.bias, base.rms, own.bias, own.rms, auto.bias, auto.rms, auto.chosen
+                "{name}, k {k}, eleven bands: base {:+.2} (RMS {:.2}, misfits {:.0} / {:.0} %, contrast {:.3}), extension {:+.2} ({:.2}, contrast {:.3}), auto {:+.2} ({:.2}, contrast {:.3}), auto chose {:?}",
+                base.bias,
+                base.rms,
+                base.misfit * 100.0,
+                base.misfit_with_eye * 100.0,
+                base.contrast,
+                own.bias,
+                own.rms,
+                own.contrast,
+                auto.bias,
+                auto.rms,
+                auto.contrast,
+                auto.chosen
             );
             for (what, v) in [("extension", own.bias), ("auto", auto.bias)] {
                 if v.abs() >= 2.0 {
