@@ -322,6 +322,8 @@ fn auto_model_recovers_what_a_wavelength_dependent_veil_hides() {
     // The methods text says how the model was chosen and how the two-band
     // lines were calibrated.
     assert!(report.contains("Schwarz's information criterion"));
+    assert!(report.contains("The base model was kept where its fits described the eye"));
+    assert!(report.contains("tested together"));
     assert!(report.contains("calibrated within each subject by classical calibration"));
 
     // The SE of a chosen model includes the uncertainty of the choice, so
