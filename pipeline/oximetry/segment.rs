@@ -1083,7 +1083,7 @@ mod tests {
         );
     }
 
-    /// Ten segments' band means: noise of SD 0.5 % around `offset` in the
+    /// Ten segments' band means: noise of SD 0.27 % around `offset` in the
     /// last band, around zero elsewhere (a fixed pseudo-random sequence).
     fn eye(offset: f64) -> Vec<Vec<f64>> {
         let noise = [0.4, -0.7, 0.1, 0.9, -0.3, -0.5, 0.6, -0.2, 0.3, -0.6];

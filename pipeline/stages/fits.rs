@@ -285,7 +285,8 @@ pub struct Fits;
 
 impl Stage for Fits {
     const NAME: &'static str = "fits";
-    // 9: `weighting: fundus`.
+    // 9: `weighting: fundus`; 10: `eye-misfit`, and `auto` keeps the base
+    // model where it describes the eye.
     const VERSION: u32 = 10;
     const SUMMARY: &'static str = "SO2 of every segment of every capture by each method";
     const UPSTREAM: &'static [&'static str] = &["epochs", "transmissions"];
