@@ -225,15 +225,6 @@ pub enum Weighting {
     Fundus,
 }
 
-impl Weighting {
-    pub fn as_str(&self) -> &'static str {
-        match self {
-            Weighting::Response => "response",
-            Weighting::Fundus => "fundus",
-        }
-    }
-}
-
 #[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
 pub enum Loss {
     Squared,

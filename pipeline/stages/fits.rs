@@ -825,16 +825,7 @@ fn fill_joint(row: &mut FitRow, f: &SegmentFit, sel: &[usize]) {
 /// information criterion chooses, its SE widened by the choice's
 /// uncertainty. Rows without alternatives are left as they are.
 fn choose_models(rows: &mut [FitRow], epochs: &EpochTables) {
-    let mut groups: BTreeMap<(&str, &str, &str), Vec<usize>> = BTreeMap::new();
-    for (i, r) in rows.iter().enumerate() {
-        if !r.alternatives.is_empty() {
-            let c = &epochs.captures[r.capture_index];
-            groups
-                .entry((&c.subject, &c.session, &c.eye))
-                .or_default()
-                .push(i);
-        }
-    }
+    let groups = by_eye(rows, epochs, |r| !r.alternatives.is_empty());
     for members in groups.into_values() {
         let candidates: Vec<Vec<Candidate>> = members
             .iter()
@@ -876,25 +867,19 @@ fn choose_models(rows: &mut [FitRow], epochs: &EpochTables) {
 /// In an eye that misfits, every fit that passed on its own becomes
 /// `eye-misfit`.
 fn judge_eyes(rows: &mut [FitRow], epochs: &EpochTables) {
-    let judged: Vec<usize> = (0..rows.len())
-        .filter(|&i| rows[i].adequacy.is_some() && !rows[i].band_residuals.is_empty())
-        .collect();
-    let residuals: Vec<Vec<f64>> = judged.iter().map(|&i| fractions(&rows[i])).collect();
-    let mut eyes: BTreeMap<(&str, &str, &str), Vec<usize>> = BTreeMap::new();
-    for (k, &i) in judged.iter().enumerate() {
-        let c = &epochs.captures[rows[i].capture_index];
-        eyes.entry((&c.subject, &c.session, &c.eye))
-            .or_default()
-            .push(k);
-    }
+    let eyes = by_eye(rows, epochs, |r| {
+        r.adequacy.is_some() && !r.band_residuals.is_empty()
+    });
     let mut misfit_rows = Vec::new();
-    for members in eyes.values() {
+    for members in eyes.into_values() {
+        let residuals: Vec<Vec<f64>> = members.iter().map(|&i| fractions(&rows[i])).collect();
         let fits: Vec<EyeFit> = members
             .iter()
-            .map(|&k| eye_fit(&rows[judged[k]], &residuals[k]))
+            .zip(&residuals)
+            .map(|(&i, v)| eye_fit(&rows[i], v))
             .collect();
         if eye_misfits(&fits) {
-            misfit_rows.extend(members.iter().map(|&k| judged[k]));
+            misfit_rows.extend(members);
         }
     }
     for i in misfit_rows {
@@ -902,6 +887,23 @@ fn judge_eyes(rows: &mut [FitRow], epochs: &EpochTables) {
             rows[i].adequacy = Some(Adequacy::EyeMisfit);
         }
     }
+}
+
+/// The indices of the rows that `keep`, grouped by the subject, session
+/// and eye of their capture.
+fn by_eye<'a>(
+    rows: &[FitRow],
+    epochs: &'a EpochTables,
+    keep: impl Fn(&FitRow) -> bool,
+) -> BTreeMap<(&'a str, &'a str, &'a str), Vec<usize>> {
+    let mut eyes: BTreeMap<(&str, &str, &str), Vec<usize>> = BTreeMap::new();
+    for (i, r) in rows.iter().enumerate().filter(|(_, r)| keep(r)) {
+        let c = &epochs.captures[r.capture_index];
+        eyes.entry((&c.subject, &c.session, &c.eye))
+            .or_default()
+            .push(i);
+    }
+    eyes
 }
 
 /// A row's band residuals as fractions of the transmission.
