@@ -418,6 +418,7 @@ fn read_site(arg: &str) -> Result<Site> {
         c("fundus_slope")?,
     );
     let frise = c("fundus_rise")?;
+    let ftied = c("tied_models")?;
     let (fit_, fev, fterm, fdet, fpos, fdia) = (
         c("iterations")?,
         c("evaluations")?,
@@ -478,6 +479,7 @@ fn read_site(arg: &str) -> Result<Site> {
             backscatter_scale: so2.real(i, fback)?,
             fundus_slope: so2.real(i, ffund)?,
             fundus_rise: so2.real(i, frise)?,
+            tied_models: so2.opt_text(i, ftied),
             alternatives: Vec::new(),
         });
     }

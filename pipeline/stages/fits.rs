@@ -71,6 +71,46 @@ pub(crate) fn gain_warnings(rows: &[FitRow], study: &Study) -> Vec<String> {
     out
 }
 
+/// One warning per `model: auto` method with eyes whose segments could not
+/// tell models apart ([`FitRow::tied_models`]): the eyes, the models, and
+/// what was fitted instead.
+pub(crate) fn tie_warnings(rows: &[FitRow], epochs: &EpochTables, study: &Study) -> Vec<String> {
+    let c = &epochs.captures;
+    let mut out = Vec::new();
+    for m in &study.methods {
+        // Per eye: the tied models and the model fitted.
+        let mut eyes: BTreeMap<String, (String, String)> = BTreeMap::new();
+        for r in rows.iter().filter(|r| r.method == m.label) {
+            if let (Some(t), Some(model)) = (&r.tied_models, &r.model) {
+                let cap = &c[r.capture_index];
+                eyes.entry(format!("{} {} {}", cap.subject, cap.session, cap.eye))
+                    .or_insert_with(|| (t.clone(), model.clone()));
+            }
+        }
+        if eyes.is_empty() {
+            continue;
+        }
+        let list: Vec<String> = eyes
+            .iter()
+            .map(|(eye, (t, model))| {
+                let others: Vec<String> = t
+                    .split(", ")
+                    .filter(|n| n != model)
+                    .map(|n| format!("`{n}`"))
+                    .collect();
+                format!("{eye}: `{model}`, {} alike", others.join(", "))
+            })
+            .collect();
+        out.push(format!(
+            "`{}`: in {} eye(s) the segments could not tell the vessel model chosen from others, though the information criterion summed over all fits preferred it ({}). Its SO2 may be off by the difference between them, which these bands do not resolve; the SE includes that difference, and `tied_models` in `fits/so2` names them. Bands below 500 nm separate the extensions better (`satstep sensitivity`), or a study may name its model",
+            m.label,
+            eyes.len(),
+            list.join("; ")
+        ));
+    }
+    out
+}
+
 /// Share of a method's joint fits that may misfit before the run warns.
 pub(crate) const MISFIT_WARN_SHARE: f64 = 0.1;
 
@@ -250,6 +290,11 @@ pub struct FitRow {
     /// Joint multiband fits: the model fitted (`base` or its extensions),
     /// the one `model: auto` chose.
     pub model: Option<String>,
+    /// `model: auto`: the models the eye's segments could not tell apart,
+    /// `, `-joined, the one fitted first; the SE weighs them alike (see
+    /// `choose_for_eye`).
+    #[serde(default)]
+    pub tied_models: Option<String>,
     /// Joint multiband fits: the extensions' parameters where fitted
     /// (veil change per 100 nm, albedo scale, double-pass change per 100 nm).
     pub veil_slope: Option<f64>,
@@ -286,8 +331,9 @@ pub struct Fits;
 impl Stage for Fits {
     const NAME: &'static str = "fits";
     // 9: `weighting: fundus`; 10: `eye-misfit`, and `auto` keeps the base
-    // model where it describes the eye.
-    const VERSION: u32 = 10;
+    // model where it describes the eye; 11: `auto` asks the segments to
+    // agree (`tied_models`).
+    const VERSION: u32 = 11;
     const SUMMARY: &'static str = "SO2 of every segment of every capture by each method";
     const UPSTREAM: &'static [&'static str] = &["epochs", "transmissions"];
     type Output = FitTables;
@@ -341,11 +387,14 @@ impl Stage for Fits {
 
     /// Says when a method's model does not describe the spectra of more
     /// than [`MISFIT_WARN_SHARE`] of its fits, naming the bands and
-    /// segments, and when the stated band gains read the fundus backwards.
+    /// segments, when `auto` found models its segments could not tell
+    /// apart, and when the stated band gains read the fundus backwards.
     fn report(run: &Run, runner: &Runner) {
         let rows = &run.output::<Fits>().rows;
-        for line in misfit_warnings(rows, run.output::<Epochs>(), run.study)
+        let epochs = run.output::<Epochs>();
+        for line in misfit_warnings(rows, epochs, run.study)
             .into_iter()
+            .chain(tie_warnings(rows, epochs, run.study))
             .chain(gain_warnings(rows, run.study))
         {
             runner.warn(line);
@@ -697,6 +746,7 @@ fn fit_capture(
                 backscatter_scale: None,
                 fundus_slope: None,
                 fundus_rise: None,
+                tied_models: None,
                 alternatives: Vec::new(),
             };
             if pos.len() < MIN_POSITIONS {
@@ -823,7 +873,9 @@ fn fill_joint(row: &mut FitRow, f: &SegmentFit, sel: &[usize]) {
 /// by its fit of the model chosen for the eye: the base model where its
 /// fits describe the eye ([`base_describes_eye`]), else the model the
 /// information criterion chooses, its SE widened by the choice's
-/// uncertainty. Rows without alternatives are left as they are.
+/// uncertainty and by the models the segments could not tell from it
+/// ([`FitRow::tied_models`]). Rows without alternatives are left as they
+/// are.
 fn choose_models(rows: &mut [FitRow], epochs: &EpochTables) {
     let groups = by_eye(rows, epochs, |r| !r.alternatives.is_empty());
     for members in groups.into_values() {
@@ -850,11 +902,15 @@ fn choose_models(rows: &mut [FitRow], epochs: &EpochTables) {
             .collect();
         let keep_base = base.len() == members.len()
             && base_describes_eye(&base.iter().map(|(r, v)| eye_fit(r, v)).collect::<Vec<_>>());
-        for (&i, choice) in members.iter().zip(choose_for_eye(&candidates, keep_base)) {
-            if let Some((k, se)) = choice {
+        let segments: Vec<&str> = members.iter().map(|&i| rows[i].segment.as_str()).collect();
+        let choice = choose_for_eye(&candidates, &segments, keep_base);
+        let tied = (!choice.tied.is_empty()).then(|| choice.tied.join(", "));
+        for (&i, pick) in members.iter().zip(choice.picks) {
+            if let Some((k, se)) = pick {
                 let mut chosen = rows[i].alternatives[k].row.clone();
                 chosen.so2_se = Some(se * 100.0);
                 chosen.capture_index = rows[i].capture_index;
+                chosen.tied_models = tied.clone();
                 rows[i] = chosen;
             }
             rows[i].alternatives.clear();
@@ -1166,6 +1222,7 @@ fn write(rows: &[FitRow], epochs: &EpochTables, study: &Study, out: &Path) -> Re
         )
         .opt_real("misfit_t", rows.iter().map(|r| r.misfit_t))
         .opt_text("model", rows.iter().map(|r| r.model.clone()))
+        .opt_text("tied_models", rows.iter().map(|r| r.tied_models.clone()))
         .opt_real("veil_slope", rows.iter().map(|r| r.veil_slope))
         .opt_real(
             "backscatter_scale",
@@ -1230,7 +1287,7 @@ fn model_sentence(choice: ModelChoice, bands: &[SampledBand]) -> String {
                 .map(|s| describe(s.extensions))
                 .collect();
             format!(
-                " For each eye and session one model was chosen for all its segments and captures. The base model was kept where its fits described the eye (at least three segments, the eye's fits together not a misfit, and at most {:.0} % of them misfits on their own); otherwise the model was chosen by the sum over the eye's fits of Schwarz's information criterion (with the residual sum of squares under the Huber loss at a cut-off of 1.5 times the stated noise, over a count of residuals made effective for their correlation along the segment), among the base model and its extensions that these {} bands separate from SO2, that is those that inflate its standard error at most {}-fold: {}. Each extension is one parameter shared along a segment and fitted anew in each capture; where the criterion chose, each SO2's standard error includes the uncertainty of the choice (Buckland, Burnham and Augustin, 1997).",
+                " For each eye and session one model was chosen for all its segments and captures. The base model was kept where its fits described the eye (at least three segments, the eye's fits together not a misfit, and at most {:.0} % of them misfits on their own); otherwise the model was chosen by the sum over the eye's fits of Schwarz's information criterion (with the residual sum of squares under the Huber loss at a cut-off of 1.5 times the stated noise, over a count of residuals made effective for their correlation along the segment), among the base model and its extensions that these {} bands separate from SO2, that is those that inflate its standard error at most {}-fold: {}. Each extension is one parameter shared along a segment and fitted anew in each capture; where the criterion chose, each SO2's standard error includes the uncertainty of the choice (Buckland, Burnham and Augustin, 1997). Because the image stage's errors repeat from capture to capture, the criterion's choice stood only where the segments agreed with it: another model was set aside only where its excess criterion, averaged over each segment's captures and then over the segments, exceeded its standard error between the segments by more than Student's one-sided {:.0} % quantile (at least three segments); the standard errors then weighed the models left alike.",
                 crate::oximetry::segment::KEEP_BASE_MISFIT_SHARE * 100.0,
                 bands.len(),
                 crate::oximetry::sensitivity::SUPPORT_MAX_INFLATION,
@@ -1238,7 +1295,8 @@ fn model_sentence(choice: ModelChoice, bands: &[SampledBand]) -> String {
                     "none".to_string()
                 } else {
                     supported.join("; ")
-                }
+                },
+                100.0 * (1.0 - crate::oximetry::segment::MODEL_EXCLUSION_LEVEL)
             )
         }
     }

@@ -206,11 +206,7 @@ pub fn se_scatter_ratio(study: &Path, method: &str) -> (f64, f64) {
             continue;
         }
         let (v, se): (f64, f64) = (r["so2"].parse().unwrap(), r["so2_se"].parse().unwrap());
-        let Some(t) = truth.get(&(
-            r["subject"].clone(),
-            r["capture"].clone(),
-            r["segment"].clone(),
-        )) else {
+        let Some(t) = truth_of(&truth, &r) else {
             continue;
         };
         if se < 5.0 {
@@ -242,6 +238,20 @@ pub fn se_scatter_ratio(study: &Path, method: &str) -> (f64, f64) {
 }
 
 /// A simulated study's true SO2 by (subject, capture, segment), from `truth/`.
+/// The true SO2 of a `fits/so2` row `r`, from [`true_so2`].
+pub fn truth_of(
+    truth: &BTreeMap<(String, String, String), f64>,
+    r: &BTreeMap<String, String>,
+) -> Option<f64> {
+    truth
+        .get(&(
+            r["subject"].clone(),
+            r["capture"].clone(),
+            r["segment"].clone(),
+        ))
+        .copied()
+}
+
 pub fn true_so2(study: &Path) -> BTreeMap<(String, String, String), f64> {
     records(&study.join("truth/captures.csv"))
         .into_iter()

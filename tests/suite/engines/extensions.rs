@@ -168,7 +168,9 @@ fn summary_at(bands: &[SampledBand], optics: &Optics, k: f64, fitting: Fitting) 
             .collect();
         let keep_base = base.len() == members.len() && base_describes_eye(&eye_fits(&names, &base));
         let mut chosen = Vec::new();
-        for (c, choice) in members.iter().zip(choose_for_eye(&summaries, keep_base)) {
+        let segments: Vec<&str> = names.iter().map(String::as_str).collect();
+        let choice = choose_for_eye(&summaries, &segments, keep_base);
+        for (c, choice) in members.iter().zip(choice.picks) {
             let (j, se) = choice.unwrap();
             let mut f = fitted[*c][j].clone();
             f.so2_se = se;
