@@ -72,8 +72,8 @@ pub(crate) fn gain_warnings(rows: &[FitRow], study: &Study) -> Vec<String> {
 }
 
 /// One warning per `model: auto` method with eyes whose segments could not
-/// tell models apart ([`FitRow::tied_models`]): the eyes, the models, and
-/// what was fitted instead.
+/// tell models apart ([`FitRow::tied_models`]): the eyes, the model
+/// fitted in each and the models tied with it.
 pub(crate) fn tie_warnings(rows: &[FitRow], epochs: &EpochTables, study: &Study) -> Vec<String> {
     let c = &epochs.captures;
     let mut out = Vec::new();

@@ -1118,6 +1118,17 @@ pub fn data_quality(study: &Study, images: &TransmissionTables, fits: &[FitRow])
                 misfits.to_string(),
                 judged.len().to_string(),
             ]);
+            let tied = judged.iter().filter(|r| r.tied_models.is_some()).count();
+            if tied > 0 {
+                t.rows.push(vec![
+                    format!(
+                        "{}: fits whose eye's segments could not tell the model chosen from others (`tied_models`; the SE includes their difference)",
+                        m.label
+                    ),
+                    tied.to_string(),
+                    judged.len().to_string(),
+                ]);
+            }
         }
         t.rows.push(vec![
             format!("{}: segments without an SO2", m.label),
