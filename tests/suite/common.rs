@@ -267,3 +267,66 @@ pub fn true_so2(study: &Path) -> BTreeMap<(String, String, String), f64> {
         })
         .collect()
 }
+
+/// With a TeX engine installed (`.ci/run` installs one and sets
+/// SATSTEP_REQUIRE_TEX): the report tables `names` under `report`
+/// compile under their stated preamble, each fits the text width of an
+/// article page at its natural size (the test document makes a table that
+/// would be scaled down say so) and none runs over a page. Works in `dir`.
+pub fn tables_fit_the_page(report: &Path, names: &[&str], dir: &Path) {
+    let have_tex = std::process::Command::new("pdflatex")
+        .arg("--version")
+        .output()
+        .is_ok();
+    assert!(
+        have_tex || std::env::var("SATSTEP_REQUIRE_TEX").is_err(),
+        "SATSTEP_REQUIRE_TEX is set but pdflatex is not installed"
+    );
+    if !have_tex {
+        return;
+    }
+    let mut doc = String::from(
+        "\\documentclass{article}\n\\usepackage{booktabs}\n\\usepackage{array}\n\\usepackage{graphicx}\n\\renewcommand{\\resizebox}[3]{\\typeout{satstep: table scaled}#3}\n\\begin{document}\n",
+    );
+    for name in names {
+        doc.push_str(&format!(
+            "\\input{{{}}}\n\\clearpage\n",
+            report.join(format!("tables/{name}.tex")).display()
+        ));
+    }
+    doc.push_str("\\end{document}\n");
+    let tex = dir.join("tables.tex");
+    std::fs::write(&tex, doc).unwrap();
+    let st = std::process::Command::new("pdflatex")
+        .args(["-interaction=nonstopmode", "-halt-on-error"])
+        .arg(&tex)
+        .current_dir(dir)
+        .output()
+        .unwrap();
+    assert!(
+        st.status.success(),
+        "{}",
+        String::from_utf8_lossy(&st.stdout)
+    );
+    let log = std::fs::read_to_string(dir.join("tables.log")).unwrap();
+    // A table wider than the text is scaled to it (a table that still
+    // overflows, or is taller than the page, is a failure).
+    for complaint in [
+        "Overfull \\hbox",
+        "Overfull \\vbox",
+        "Float too large",
+        "satstep: table scaled",
+    ] {
+        assert!(
+            !log.contains(complaint),
+            "{complaint} in the tables:\n{log}"
+        );
+    }
+    let pages = log
+        .split("Output written on ")
+        .nth(1)
+        .and_then(|t| t.split('(').nth(1))
+        .and_then(|t| t.split(' ').next())
+        .and_then(|n| n.parse::<usize>().ok());
+    assert_eq!(pages, Some(names.len()), "{log}");
+}

@@ -90,15 +90,34 @@ impl ReportTable {
         let g = self.groups;
         let shown = g..self.columns.len();
         // Long text (a test's name, a unit) wraps in a ragged column of its
-        // own instead of widening the table.
-        let wrap = if shown.len() > 4 { "7em" } else { "11em" };
+        // own instead of widening the table. A single such column beside
+        // at most two others may take more of the page: at 11em the
+        // data-quality table's items ran to four lines each, and with three
+        // methods the table off the page.
+        let wraps = |i: usize| {
+            !self.numeric[i]
+                && self
+                    .rows
+                    .iter()
+                    .map(|r| r[i].chars().count())
+                    .max()
+                    .unwrap_or(0)
+                    > LATEX_WRAP_CHARS
+        };
+        let wrapping = shown.clone().filter(|i| wraps(*i)).count();
+        let wrap = if shown.len() > 4 {
+            "7em"
+        } else if wrapping == 1 && shown.len() <= 3 {
+            "20em"
+        } else {
+            "11em"
+        };
         let align: String = shown
             .clone()
             .map(|i| {
-                let widest = self.rows.iter().map(|r| r[i].chars().count()).max();
                 if self.numeric[i] {
                     "r".to_string()
-                } else if widest.unwrap_or(0) > LATEX_WRAP_CHARS {
+                } else if wraps(i) {
                     format!(">{{\\raggedright\\arraybackslash}}p{{{wrap}}}")
                 } else {
                     "l".to_string()
