@@ -105,10 +105,12 @@ pub enum Fitting {
 /// adequacy test of an eye's fits together: with [`REPS`] segments per
 /// saturation, ten segments each, as many as an eye of the simulated
 /// studies has (six to eight, each over many captures).
-pub const EYES: u64 = 4;
+pub const EYES: u64 = 16;
 
-/// Segments per saturation in the table's rows.
-pub const REPS: u64 = 20;
+/// Segments per saturation in the table's rows. With 20 the Monte Carlo
+/// SE of a row's contrast was about 0.02, and `auto`'s contrasts at veil
+/// 0.4 read 1.06–1.07; with 80 they read 1.02–1.03 (SE about 0.01).
+pub const REPS: u64 = 80;
 
 pub struct Summary {
     pub bias: f64,
@@ -120,6 +122,8 @@ pub struct Summary {
     /// The change from SO2 60 to 95 % the fits measure, over the true 35
     /// points: what an epoch contrast would report.
     pub contrast: f64,
+    /// Its Monte Carlo standard error, from the scatter of the fits.
+    pub contrast_se: f64,
     pub chosen: Vec<(String, usize)>,
 }
 
@@ -189,16 +193,22 @@ fn summary_at(bands: &[SampledBand], optics: &Optics, k: f64, fitting: Fitting) 
     let share = |p: &dyn Fn(&SegmentFit, bool) -> bool| {
         fits.iter().filter(|(_, f, e)| p(f, *e)).count() as f64 / n
     };
+    // Mean and its squared standard error at each saturation.
     let mean_at = |s: f64| {
         let v: Vec<f64> = fits
             .iter()
             .filter(|(t, ..)| (*t - s).abs() < 1e-9)
             .map(|(_, f, _)| f.so2)
             .collect();
-        v.iter().sum::<f64>() / v.len() as f64
+        let n = v.len() as f64;
+        let m = v.iter().sum::<f64>() / n;
+        let var = v.iter().map(|x| (x - m).powi(2)).sum::<f64>() / (n - 1.0);
+        (m, var / n)
     };
+    let ((lo, lo_v), (hi, hi_v)) = (mean_at(0.6), mean_at(0.95));
     Summary {
-        contrast: (mean_at(0.95) - mean_at(0.6)) / 0.35,
+        contrast: (hi - lo) / 0.35,
+        contrast_se: (lo_v + hi_v).sqrt() / 0.35,
         bias: err.iter().sum::<f64>() / n,
         rms: (err.iter().map(|e| e * e).sum::<f64>() / n).sqrt(),
         misfit: share(&|f, _| f.adequacy == Adequacy::Misfit),
@@ -304,16 +314,16 @@ fn effects() -> Vec<(&'static str, Optics, Option<Extensions>)> {
 /// - the base model is biased by each veil and fundus effect (> 4 points),
 ///   its own extension and `auto` bring SO2 within 2 points at veils up to
 ///   0.4, and `auto` stays within 1 point where there is no effect;
-/// - `auto`'s change from SO2 60 to 95 % is within 5 % of the truth at veil
-///   0.1 and within 8 % at 0.4 (measured 1.01–1.03 and 1.06–1.07; the base
-///   model's 0.68–1.32);
+/// - `auto`'s change from SO2 60 to 95 % is within 5 % of the truth at
+///   veils up to 0.4 (measured 1.005–1.013 at 0.1 and 1.020–1.032 at 0.4;
+///   the base model's 0.67–1.32);
 /// - the adequacy test, each fit's with its eye's, flags the base fits of
 ///   every veil and fundus effect at both veils in ≥ 90 % of segments, and
 ///   < 5 % where there is no effect.
 ///
 /// The backscatter spectrum is refused for these bands (its SO2 standard
 /// error is 3 times the base model's, `support`), so `auto` leaves its bias
-/// of 0.6–2.0 points; the test holds it below 3. It shifts both saturations
+/// of 0.6–2.1 points; the test holds it below 3. It shifts both saturations
 /// alike, so the contrasts stay within 1 % (with bands in the blue it is
 /// supported and removed:
 /// [`blue_bands_identify_the_backscatter_spectrum`]). Nor can the
@@ -334,7 +344,7 @@ fn extensions_remove_the_biases_the_base_model_cannot_see() {
             let auto = summary(&optics, k, Fitting::Auto);
             let residual = noise_free_residual(&optics, k);
             eprintln!(
-                "| {name} | {k} | {:+.2} | {:.2} | {:.0} / {:.0} % | {residual:.2} % | {} | {} | {:+.2} | {:.2} | {:.0} / {:.0} % | {:.3} / {:.3} |",
+                "| {name} | {k} | {:+.2} | {:.2} | {:.0} / {:.0} % | {residual:.2} % | {} | {} | {:+.2} | {:.2} | {:.0} / {:.0} % | {:.3} / {:.3} (SE {:.3}) |",
                 base.bias,
                 base.rms,
                 base.misfit * 100.0,
@@ -350,7 +360,8 @@ fn extensions_remove_the_biases_the_base_model_cannot_see() {
                 auto.misfit * 100.0,
                 auto.misfit_with_eye * 100.0,
                 base.contrast,
-                auto.contrast
+                auto.contrast,
+                auto.contrast_se
             );
             eprintln!("    auto chose {:?}", auto.chosen);
             let mut check = |ok: bool, what: String| {
@@ -388,13 +399,15 @@ fn extensions_remove_the_biases_the_base_model_cannot_see() {
                     );
                     check(auto.bias.abs() < 2.0, format!("auto bias {:.2}", auto.bias));
                     // At veil 0.4 the extended fits' contrasts come out
-                    // 6–7 % large: their SO2 is biased by the noise itself,
-                    // −1.5 points at 60 % and −0.7 at 95 % (none without
-                    // noise, −0.6 and −0.3 at half the noise).
-                    let limit = if k < 0.2 { 0.05 } else { 0.08 };
+                    // 2–3 % large (SE about 0.01): their SO2 is biased by
+                    // the noise itself, more at 60 % than at 95 % (none
+                    // without noise, half as much at half the noise).
                     check(
-                        (auto.contrast - 1.0).abs() < limit,
-                        format!("auto contrast {:.3}", auto.contrast),
+                        (auto.contrast - 1.0).abs() < 0.05,
+                        format!(
+                            "auto contrast {:.3} (SE {:.3})",
+                            auto.contrast, auto.contrast_se
+                        ),
                     );
                     check(
                         base.misfit_with_eye >= 0.9,
@@ -410,9 +423,10 @@ fn extensions_remove_the_biases_the_base_model_cannot_see() {
 /// With three bands in the blue (450–490 nm) beside the eight, the
 /// backscatter spectrum is separated from SO2 (`support`), and its
 /// extension, and `auto` choosing among what these bands support, bring
-/// SO2 within 2 points of the truth at both veils, where the base model
-/// is off by up to 2 points and the eight bands leave `auto` up to 2.6
-/// off (the table above).
+/// SO2 within 2 points of the truth at both veils (measured: the
+/// extension within 0.63, `auto` within 1.29), where the base model is off
+/// by up to 1.3 points and the eight bands leave `auto` up to 2.1 off (the
+/// table above).
 #[test]
 fn blue_bands_identify_the_backscatter_spectrum() {
     use satstep::oximetry::sensitivity::support;
