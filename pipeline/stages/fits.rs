@@ -102,7 +102,7 @@ pub(crate) fn tie_warnings(rows: &[FitRow], epochs: &EpochTables, study: &Study)
             })
             .collect();
         out.push(format!(
-            "`{}`: in {} eye(s) the segments could not tell the vessel model chosen from others, though the information criterion summed over all fits preferred it ({}). Its SO2 may be off by the difference between them, which these bands do not resolve; the SE includes that difference, and `tied_models` in `fits/so2` names them. Bands below 500 nm separate the extensions better (`satstep sensitivity`), or a study may name its model",
+            "`{}`: in {} eye(s) the segments could not tell the vessel model chosen from others, though the information criterion summed over all fits preferred it ({}). Its SO2 may be off by the difference between them, which these bands do not resolve; the SE includes that difference, and `tied_models` in `fits/so2` names them. On simulated studies, three bands added below 500 nm let the segments tell the veil slope from the fundus slope; a study that knows its eyes' optics may instead name its model",
             m.label,
             eyes.len(),
             list.join("; ")
