@@ -241,22 +241,18 @@ pub struct EyeFit<'a> {
 /// The band means of each segment among `fits`, averaged over its fits,
 /// for [`eye_adequacy`]; segments in order of first appearance.
 fn segment_means(fits: &[EyeFit]) -> Vec<Vec<f64>> {
-    let mut order: Vec<&str> = Vec::new();
-    let mut sums: Vec<(Vec<f64>, usize)> = Vec::new();
-    for f in fits {
-        let i = match order.iter().position(|s| *s == f.segment) {
-            Some(i) => i,
-            None => {
-                order.push(f.segment);
-                sums.push((vec![0.0; f.band_residuals.len()], 0));
-                order.len() - 1
-            }
-        };
-        if sums[i].0.len() == f.band_residuals.len() {
-            for (a, r) in sums[i].0.iter_mut().zip(f.band_residuals) {
+    let (unit, n) = unit_indices(fits.iter().map(|f| f.segment));
+    let mut sums: Vec<(Vec<f64>, usize)> = vec![(Vec::new(), 0); n];
+    for (f, &u) in fits.iter().zip(&unit) {
+        let (sum, count) = &mut sums[u];
+        if *count == 0 {
+            *sum = vec![0.0; f.band_residuals.len()];
+        }
+        if sum.len() == f.band_residuals.len() {
+            for (a, r) in sum.iter_mut().zip(f.band_residuals) {
                 *a += r;
             }
-            sums[i].1 += 1;
+            *count += 1;
         }
     }
     sums.into_iter()
@@ -264,6 +260,33 @@ fn segment_means(fits: &[EyeFit]) -> Vec<Vec<f64>> {
         .map(|(v, n)| v.into_iter().map(|x| x / n as f64).collect())
         .filter(|v: &Vec<f64>| v.iter().all(|x| x.is_finite()))
         .collect()
+}
+
+/// Each of `names`' index among the distinct names in order of first
+/// appearance, and how many distinct names there are: the segments a
+/// list of an eye's fits belongs to.
+fn unit_indices<'a>(names: impl IntoIterator<Item = &'a str>) -> (Vec<usize>, usize) {
+    let mut order: Vec<&str> = Vec::new();
+    let unit = names
+        .into_iter()
+        .map(|s| match order.iter().position(|o| *o == s) {
+            Some(i) => i,
+            None => {
+                order.push(s);
+                order.len() - 1
+            }
+        })
+        .collect();
+    (unit, order.len())
+}
+
+/// The mean of `v` over its standard error (n − 1 df); the SE is kept
+/// from zero so that identical values give a finite `t`.
+fn t_of_mean(v: &[f64]) -> f64 {
+    let n = v.len() as f64;
+    let m = v.iter().sum::<f64>() / n;
+    let var = v.iter().map(|x| (x - m).powi(2)).sum::<f64>() / (n - 1.0);
+    m / (var / n).sqrt().max(1e-12)
 }
 
 /// Whether an eye's fits of one model misfit together ([`eye_adequacy`]
@@ -358,7 +381,8 @@ pub fn choose_for_eye(
             tied: Vec::new(),
         };
     }
-    let picks = choose_across(fits);
+    let criteria = fit_criteria(fits);
+    let picks = choose_with(fits, &criteria);
     let clear = EyeChoice {
         picks: picks.clone(),
         tied: Vec::new(),
@@ -373,7 +397,7 @@ pub fn choose_for_eye(
     if !fits.iter().all(|c| c.iter().any(|f| f.model == best)) {
         return clear;
     }
-    let tied = tied_models(fits, segments, &best);
+    let tied = tied_models(fits, &criteria, segments, &best);
     if tied.len() < 2 {
         return clear;
     }
@@ -395,26 +419,24 @@ pub fn choose_for_eye(
     EyeChoice { picks, tied }
 }
 
-/// The models that `segments` cannot tell from `best` (see
-/// [`choose_for_eye`]), `best` first; only `best` with fewer than three
-/// segments.
-fn tied_models(fits: &[Vec<Candidate>], segments: &[&str], best: &str) -> Vec<String> {
+/// The models that `segments` cannot tell from `best` by their fits'
+/// `criteria` (see [`choose_for_eye`]), `best` first; only `best` with
+/// fewer than three segments.
+fn tied_models(
+    fits: &[Vec<Candidate>],
+    criteria: &[Vec<f64>],
+    segments: &[&str],
+    best: &str,
+) -> Vec<String> {
     use statrs::distribution::{ContinuousCDF, StudentsT};
-    let criteria = fit_criteria(fits);
-    let mut order: Vec<&str> = Vec::new();
-    for s in segments {
-        if !order.contains(s) {
-            order.push(s);
-        }
-    }
+    let (unit, n) = unit_indices(segments.iter().copied());
     let mut tied = vec![best.to_string()];
-    let Some(q) = StudentsT::new(0.0, 1.0, order.len().saturating_sub(1) as f64)
-        .ok()
-        .filter(|_| order.len() >= 3)
-        .map(|t| t.inverse_cdf(1.0 - MODEL_EXCLUSION_LEVEL))
-    else {
+    if n < 3 {
         return tied;
-    };
+    }
+    let q = StudentsT::new(0.0, 1.0, (n - 1) as f64)
+        .map(|t| t.inverse_cdf(1.0 - MODEL_EXCLUSION_LEVEL))
+        .unwrap_or(f64::INFINITY);
     let Some(first) = fits.iter().find(|c| !c.is_empty()) else {
         return tied;
     };
@@ -423,31 +445,24 @@ fn tied_models(fits: &[Vec<Candidate>], segments: &[&str], best: &str) -> Vec<St
         .map(|f| f.model.as_str())
         .filter(|m| *m != best)
     {
-        let mut d = Vec::new();
-        for s in &order {
-            let diffs: Vec<f64> = fits
-                .iter()
-                .zip(&criteria)
-                .zip(segments)
-                .filter(|(_, seg)| *seg == s)
-                .filter_map(|((c, cr), _)| {
-                    let i = c.iter().position(|f| f.model == m)?;
-                    let j = c.iter().position(|f| f.model == best)?;
-                    Some(cr[i] - cr[j])
-                })
-                .filter(|x| x.is_finite())
-                .collect();
-            if !diffs.is_empty() {
-                d.push(diffs.iter().sum::<f64>() / diffs.len() as f64);
+        // Per segment: the sum and count of the fits' criterion differences.
+        let mut sums = vec![(0.0, 0usize); n];
+        for ((c, cr), &u) in fits.iter().zip(criteria).zip(&unit) {
+            let i = c.iter().position(|f| f.model == m);
+            let j = c.iter().position(|f| f.model == best);
+            if let (Some(i), Some(j)) = (i, j) {
+                let d = cr[i] - cr[j];
+                if d.is_finite() {
+                    sums[u].0 += d;
+                    sums[u].1 += 1;
+                }
             }
         }
-        if d.len() < order.len() {
+        if sums.iter().any(|(_, k)| *k == 0) {
             continue;
         }
-        let n = d.len() as f64;
-        let mean = d.iter().sum::<f64>() / n;
-        let var = d.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / (n - 1.0);
-        if mean / (var / n).sqrt().max(1e-12) <= q {
+        let means: Vec<f64> = sums.iter().map(|(d, k)| d / *k as f64).collect();
+        if t_of_mean(&means) <= q {
             tied.push(m.to_string());
         }
     }
@@ -469,9 +484,7 @@ fn band_t_test(units: &[Vec<f64>], level: &[f64], floor: f64) -> (f64, bool) {
     let mut worst = 0.0f64;
     let mut misfit = false;
     for b in 0..nb {
-        let m = units.iter().map(|u| u[b]).sum::<f64>() / k as f64;
-        let var = units.iter().map(|u| (u[b] - m).powi(2)).sum::<f64>() / (k - 1) as f64;
-        let t = m / (var / k as f64).sqrt().max(1e-12);
+        let t = t_of_mean(&units.iter().map(|u| u[b]).collect::<Vec<_>>());
         worst = worst.max(t.abs());
         misfit |= t.abs() > q && level[b].abs() > floor;
     }
@@ -989,7 +1002,11 @@ fn fit_criteria(fits: &[Vec<Candidate>]) -> Vec<Vec<f64>> {
 /// with no candidates gets `None`. When no model was fitted in every one,
 /// each fit chooses on its own.
 pub fn choose_across(fits: &[Vec<Candidate>]) -> Vec<Option<(usize, f64)>> {
-    let criteria = fit_criteria(fits);
+    choose_with(fits, &fit_criteria(fits))
+}
+
+/// [`choose_across`] with each fit's candidates' criteria given.
+fn choose_with(fits: &[Vec<Candidate>], criteria: &[Vec<f64>]) -> Vec<Option<(usize, f64)>> {
     let Some(first) = fits.iter().find(|c| !c.is_empty()) else {
         return vec![None; fits.len()];
     };
@@ -998,7 +1015,7 @@ pub fn choose_across(fits: &[Vec<Candidate>]) -> Vec<Option<(usize, f64)>> {
         .iter()
         .filter_map(|cand| {
             let mut sum = 0.0;
-            for (c, crit) in fits.iter().zip(&criteria) {
+            for (c, crit) in fits.iter().zip(criteria) {
                 let i = c.iter().position(|f| f.model == cand.model)?;
                 sum += crit[i];
             }

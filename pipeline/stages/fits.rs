@@ -75,30 +75,32 @@ pub(crate) fn gain_warnings(rows: &[FitRow], study: &Study) -> Vec<String> {
 /// tell models apart ([`FitRow::tied_models`]): the eyes, the model
 /// fitted in each and the models tied with it.
 pub(crate) fn tie_warnings(rows: &[FitRow], epochs: &EpochTables, study: &Study) -> Vec<String> {
-    let c = &epochs.captures;
     let mut out = Vec::new();
     for m in &study.methods {
-        // Per eye: the tied models and the model fitted.
-        let mut eyes: BTreeMap<String, (String, String)> = BTreeMap::new();
-        for r in rows.iter().filter(|r| r.method == m.label) {
-            if let (Some(t), Some(model)) = (&r.tied_models, &r.model) {
-                let cap = &c[r.capture_index];
-                eyes.entry(format!("{} {} {}", cap.subject, cap.session, cap.eye))
-                    .or_insert_with(|| (t.clone(), model.clone()));
-            }
-        }
+        let eyes = by_eye(rows, epochs, |r| {
+            r.method == m.label && r.tied_models.is_some() && r.model.is_some()
+        });
         if eyes.is_empty() {
             continue;
         }
+        // Every fit of an eye names the same models: its first says.
         let list: Vec<String> = eyes
             .iter()
-            .map(|(eye, (t, model))| {
-                let others: Vec<String> = t
+            .map(|((subject, session, eye), members)| {
+                let r = &rows[members[0]];
+                let model = r.model.as_deref().unwrap_or_default();
+                let others: Vec<String> = r
+                    .tied_models
+                    .as_deref()
+                    .unwrap_or_default()
                     .split(", ")
-                    .filter(|n| n != model)
+                    .filter(|n| *n != model)
                     .map(|n| format!("`{n}`"))
                     .collect();
-                format!("{eye}: `{model}`, {} alike", others.join(", "))
+                format!(
+                    "{subject} {session} {eye}: `{model}`, {} alike",
+                    others.join(", ")
+                )
             })
             .collect();
         out.push(format!(
